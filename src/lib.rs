@@ -1,0 +1,9 @@
+//! Spillway: a surplus load-diversion controller for solar sites that may not export.
+//!
+//! The crate mirrors the pipeline: `units` ← `rules` ← `config` ← `engine`, with
+//! `sources` and `actuators` at the edges and `daemon` the only place that owns a
+//! runtime. See `ARCHITECTURE.md` for the map and the invariants.
+
+pub mod diag;
+pub mod rules;
+pub mod units;
