@@ -1,1 +1,3 @@
-//! Plant simulator.
+//! Plant simulator for Spillway: sun, PV array, household, loads, battery and meters.
+
+pub mod pv_output;

@@ -1,0 +1,29 @@
+//! The seam between the solar chain and the rest of the plant: what a PV system
+//! delivers in one step, given the active-power limit it is asked to obey.
+
+/// One step of a PV system's output. Powers in W, irradiance in W/m², temperature in °C.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct PvSample {
+    /// AC power delivered after losses, clipping and the active-power limit.
+    pub ac_w: f64,
+    /// AC power the system could deliver with no limit set (clipping still applies).
+    pub available_ac_w: f64,
+    /// DC power at the inverter input.
+    pub dc_w: f64,
+    /// Plane-of-array irradiance (first array, or area-weighted mean).
+    pub poa_w_m2: f64,
+    /// Global horizontal irradiance including clouds.
+    pub ghi_w_m2: f64,
+    /// Cell temperature (first array).
+    pub cell_temp_c: f64,
+    /// Clear-sky index applied this step (1 = clear).
+    pub clear_sky_index: f64,
+}
+
+/// Anything that produces PV power step by step: the modelled array, a replayed CSV,
+/// or a fixed profile in a test.
+pub trait PvSource {
+    /// Advances over `[t_ms, t_ms + dt_s)` and returns the output for that step.
+    /// `limit_w` is the inverter's active-power limit (`None` = no limit).
+    fn step(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> PvSample;
+}
