@@ -1,3 +1,4 @@
 //! Plant simulator for Spillway: sun, PV array, household, loads, battery and meters.
 
 pub mod pv_output;
+pub mod quantity;
