@@ -360,6 +360,11 @@ macro_rules! quantity_type {
                 format_quantity(f, self.0, $dimension)
             }
         }
+        impl std::iter::Sum for $name {
+            fn sum<I: Iterator<Item = $name>>(iter: I) -> $name {
+                $name(iter.map(|v| v.0).sum())
+            }
+        }
     };
 }
 

@@ -108,3 +108,5 @@ pub struct EvalInput<'a> {
     /// `now` in the site's time zone.
     pub local: LocalClock,
 }
+mod placeholder;
+pub use placeholder::*;

@@ -1,0 +1,344 @@
+//! Scalar readers for the site file: quantities with units, durations, times of day,
+//! windows, names and small enumerations — each reporting a located diagnostic and
+//! returning `None` on a bad value, so the loader can carry on and find the next one.
+
+use std::time::Duration;
+
+use chrono::NaiveTime;
+
+use super::model::Window;
+use super::yaml::{Diagnostics, Node, Value};
+use crate::diag::{Diagnostic, did_you_mean};
+use crate::units::{self, Dimension, UnitError};
+
+/// Reads text (a name, a topic, an address). Numbers and booleans are refused so that
+/// `payload: on` (a YAML boolean) is caught rather than silently turned into "true".
+pub fn text<'n>(node: &'n Node, what: &str, diags: &mut Diagnostics) -> Option<&'n str> {
+    match &node.value {
+        Value::Str(s) => Some(s.as_str()),
+        other => {
+            let hint = match other {
+                Value::Bool(_) => "quote it: YAML reads on/off/yes/no as booleans",
+                Value::Int(_) | Value::Float(_) => "quote it if a number is meant as text",
+                _ => "write it as text",
+            };
+            diags.push(
+                Diagnostic::error(
+                    "C0101",
+                    format!("{what} must be text, found {}", other.kind()),
+                    node.span.clone(),
+                )
+                .with_label("expected text")
+                .with_note(hint),
+            );
+            None
+        }
+    }
+}
+
+/// Reads text where YAML may have turned a word into a boolean or a number
+/// (`on` → true, `123` → 123): returns the scalar as written.
+pub fn word(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<String> {
+    match node.scalar_text() {
+        Some(t) => Some(t),
+        None => {
+            diags.error(
+                "C0101",
+                format!("{what} must be a single value, found {}", node.value.kind()),
+                node.span.clone(),
+                "expected a value",
+            );
+            None
+        }
+    }
+}
+
+/// Reads a quantity of `dimension`, returning it in the base unit. A bare number is
+/// accepted only for plain numbers and for zero ("0 is zero in any unit").
+pub fn quantity(
+    node: &Node,
+    dimension: Dimension,
+    what: &str,
+    diags: &mut Diagnostics,
+) -> Option<f64> {
+    let expected = || {
+        format!(
+            "expected {} in {}",
+            dimension.describe(),
+            dimension.example_units()
+        )
+    };
+    let (value, found) = match &node.value {
+        Value::Int(i) => (*i as f64, Dimension::Scalar),
+        Value::Float(f) => (*f, Dimension::Scalar),
+        Value::Str(s) => match units::parse_quantity(s) {
+            Ok(q) => (q.value, q.dimension),
+            Err(UnitError::UnknownUnit(u)) => {
+                let mut d = Diagnostic::error(
+                    "C0301",
+                    format!("unknown unit \"{u}\" in {what}"),
+                    node.span.clone(),
+                )
+                .with_label(expected());
+                if let Some(s) = did_you_mean(&u, units::unit_symbols()) {
+                    d = d.with_note(format!("did you mean \"{s}\"?"));
+                }
+                diags.push(d);
+                return None;
+            }
+            Err(UnitError::NotANumber(_)) => {
+                diags.error(
+                    "C0302",
+                    format!("{what} must be a number with a unit"),
+                    node.span.clone(),
+                    expected(),
+                );
+                return None;
+            }
+        },
+        other => {
+            diags.error(
+                "C0302",
+                format!(
+                    "{what} must be a number with a unit, found {}",
+                    other.kind()
+                ),
+                node.span.clone(),
+                expected(),
+            );
+            return None;
+        }
+    };
+    if found == dimension || (found == Dimension::Scalar && value == 0.0) {
+        return Some(value);
+    }
+    if found == Dimension::Scalar {
+        diags.push(
+            Diagnostic::error("C0303", format!("{what} needs a unit"), node.span.clone())
+                .with_label(expected())
+                .with_note(format!(
+                    "write it as `{}{}`",
+                    units::trim_number(value),
+                    dimension.base_unit()
+                )),
+        );
+    } else {
+        diags.push(
+            Diagnostic::error(
+                "C0304",
+                format!(
+                    "{what} must be {}, but this is {}",
+                    dimension.describe(),
+                    found.describe()
+                ),
+                node.span.clone(),
+            )
+            .with_label(expected()),
+        );
+    }
+    None
+}
+
+/// Reads a non-negative duration.
+pub fn duration(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<Duration> {
+    let seconds = quantity(node, Dimension::Duration, what, diags)?;
+    if seconds < 0.0 || !seconds.is_finite() {
+        diags.error(
+            "C0305",
+            format!("{what} cannot be negative"),
+            node.span.clone(),
+            "expected a duration ≥ 0",
+        );
+        return None;
+    }
+    Some(Duration::from_secs_f64(seconds))
+}
+
+/// Reads a positive, finite power/energy/etc., rejecting negatives.
+pub fn positive(
+    node: &Node,
+    dimension: Dimension,
+    what: &str,
+    diags: &mut Diagnostics,
+) -> Option<f64> {
+    let v = quantity(node, dimension, what, diags)?;
+    if v <= 0.0 || !v.is_finite() {
+        diags.error(
+            "C0305",
+            format!("{what} must be greater than zero"),
+            node.span.clone(),
+            "expected a positive value",
+        );
+        return None;
+    }
+    Some(v)
+}
+
+/// Parses `HH:MM` or `HH:MM:SS`; `24:00` is the end of the day (midnight).
+pub fn parse_time_of_day(text: &str) -> Option<NaiveTime> {
+    let text = text.trim();
+    if text == "24:00" {
+        return Some(NaiveTime::MIN);
+    }
+    NaiveTime::parse_from_str(text, "%H:%M")
+        .or_else(|_| NaiveTime::parse_from_str(text, "%H:%M:%S"))
+        .ok()
+}
+
+/// Reads a time of day.
+pub fn time_of_day(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<NaiveTime> {
+    let parsed = match &node.value {
+        Value::Str(s) => parse_time_of_day(s),
+        _ => None,
+    };
+    if parsed.is_none() {
+        diags.push(
+            Diagnostic::error(
+                "C0306",
+                format!("{what} must be a time of day such as \"17:00\""),
+                node.span.clone(),
+            )
+            .with_label("expected HH:MM (24-hour clock)"),
+        );
+    }
+    parsed
+}
+
+/// Reads a window `HH:MM..HH:MM` (half-open; wraps over midnight if the start is later).
+pub fn window(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<Window> {
+    let parsed = match &node.value {
+        Value::Str(s) => s.split_once("..").and_then(|(a, b)| {
+            Some(Window {
+                start: parse_time_of_day(a)?,
+                end: parse_time_of_day(b)?,
+            })
+        }),
+        _ => None,
+    };
+    match parsed {
+        Some(w) if w.start == w.end => {
+            diags.error(
+                "C0307",
+                format!("{what} is empty: it starts and ends at the same time"),
+                node.span.clone(),
+                "start and end must differ",
+            );
+            None
+        }
+        Some(w) => Some(w),
+        None => {
+            diags.push(
+                Diagnostic::error(
+                    "C0307",
+                    format!("{what} must be a window such as \"15:00..17:00\""),
+                    node.span.clone(),
+                )
+                .with_label("expected HH:MM..HH:MM"),
+            );
+            None
+        }
+    }
+}
+
+/// Reads a boolean.
+pub fn boolean(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<bool> {
+    match &node.value {
+        Value::Bool(b) => Some(*b),
+        other => {
+            diags.error(
+                "C0102",
+                format!("{what} must be true or false, found {}", other.kind()),
+                node.span.clone(),
+                "expected true or false",
+            );
+            None
+        }
+    }
+}
+
+/// Reads a whole number in `[min, max]`.
+pub fn integer(
+    node: &Node,
+    min: i64,
+    max: i64,
+    what: &str,
+    diags: &mut Diagnostics,
+) -> Option<i64> {
+    match &node.value {
+        Value::Int(i) if (min..=max).contains(i) => Some(*i),
+        Value::Int(i) => {
+            diags.error(
+                "C0103",
+                format!("{what} is {i}, outside {min}..={max}"),
+                node.span.clone(),
+                format!("expected {min} to {max}"),
+            );
+            None
+        }
+        other => {
+            diags.error(
+                "C0103",
+                format!("{what} must be a whole number, found {}", other.kind()),
+                node.span.clone(),
+                "expected a whole number",
+            );
+            None
+        }
+    }
+}
+
+/// Reads a plain number (no unit).
+pub fn number(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<f64> {
+    quantity(node, Dimension::Scalar, what, diags)
+}
+
+/// Reads one of a fixed set of words. YAML booleans are read as `on`/`off`.
+pub fn choice<'c>(
+    node: &Node,
+    choices: &[&'c str],
+    what: &str,
+    diags: &mut Diagnostics,
+) -> Option<&'c str> {
+    let written = match &node.value {
+        Value::Str(s) => s.clone(),
+        Value::Bool(true) => "on".to_owned(),
+        Value::Bool(false) => "off".to_owned(),
+        other => other.kind().to_owned(),
+    };
+    if let Some(c) = choices.iter().find(|c| **c == written) {
+        return Some(c);
+    }
+    let mut d = Diagnostic::error(
+        "C0104",
+        format!("{what} cannot be \"{written}\""),
+        node.span.clone(),
+    )
+    .with_label(format!("expected one of: {}", choices.join(", ")));
+    if let Some(s) = did_you_mean(&written, choices.iter().copied()) {
+        d = d.with_note(format!("did you mean \"{s}\"?"));
+    }
+    diags.push(d);
+    None
+}
+
+/// Reads a name (`[a-z_][a-z0-9_]*`): load, point and device names appear in rules.
+pub fn name<'n>(node: &'n Node, what: &str, diags: &mut Diagnostics) -> Option<&'n str> {
+    let s = text(node, what, diags)?;
+    if is_name(s) {
+        Some(s)
+    } else {
+        diags.push(
+            Diagnostic::error("C0105", format!("{what} \"{s}\" is not a usable name"), node.span.clone())
+                .with_label("use lowercase letters, digits and _")
+                .with_note("names appear in rules, so they start with a letter and contain only a-z, 0-9 and _"),
+        );
+        None
+    }
+}
+
+/// Whether `s` is a valid name for a load, point or device.
+pub fn is_name(s: &str) -> bool {
+    let mut chars = s.chars();
+    matches!(chars.next(), Some(c) if c.is_ascii_lowercase() || c == '_')
+        && chars.all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '_')
+}

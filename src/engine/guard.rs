@@ -1,0 +1,148 @@
+//! The export guard: curtails the inverter when the loads cannot absorb the surplus,
+//! holds the grid at its target, releases slowly, and escalates to the safe limit if
+//! export persists past the deadline (an inverter that ignores its limit).
+//!
+//! Cutting is immediate and proportional (the whole excess in one tick); releasing is
+//! rate-limited, so a load that starts can take over the power before it is exported.
+
+use std::time::Duration;
+
+use super::decision::{LimitReason, Mode};
+use crate::config::model::Site;
+use crate::units::{Power, Timestamp};
+
+/// Guard state between ticks.
+#[derive(Debug, Clone, Default)]
+pub struct Guard {
+    limit: Option<Power>,
+    export_since: Option<Timestamp>,
+    escalated: bool,
+}
+
+impl Guard {
+    /// Whether a limit is in force.
+    pub fn curtailing(&self) -> bool {
+        self.limit.is_some()
+    }
+
+    /// Surplus hidden by the curtailment: what the inverter could add if released.
+    /// Known exactly when the site has a `pv_available` point; otherwise, while the
+    /// inverter sits at its limit, the rest of its rating is assumed available (an
+    /// optimistic guess: a load that starts on it and finds too little is stopped by
+    /// its stop rule, and no export results either way).
+    pub fn hidden_headroom(&self, site: &Site, values: &[f64]) -> Power {
+        let (Some(limit), Some(inv)) = (self.limit, &site.inverter) else {
+            return Power::ZERO;
+        };
+        let value = |p: Option<crate::config::model::PointId>| {
+            p.map(|p| values[p.0]).filter(|v| v.is_finite())
+        };
+        let pv = value(site.roles.pv);
+        if let (Some(avail), Some(pv)) = (value(site.roles.pv_available), pv) {
+            return Power((avail - pv).max(0.0));
+        }
+        let pinned_margin = (inv.rated.0 * 0.02).max(50.0);
+        match pv {
+            Some(pv) if pv >= limit.0 - pinned_margin => (inv.rated - limit).max(Power::ZERO),
+            _ => Power::ZERO,
+        }
+    }
+
+    /// Decides the inverter limit for this tick. `delta_loads` is how much more the
+    /// loads will draw after this tick's commands; `absorbable` is how much more the
+    /// modulating loads could still take.
+    #[allow(clippy::too_many_arguments)]
+    pub fn decide(
+        &mut self,
+        site: &Site,
+        values: &[f64],
+        grid: Option<Power>,
+        delta_loads: Power,
+        absorbable: Power,
+        mode: Mode,
+        now: Timestamp,
+        dt: Duration,
+    ) -> (Option<Power>, LimitReason) {
+        let (Some(inv), Some(export_limit)) = (&site.inverter, site.export_limit()) else {
+            self.limit = None;
+            return (None, LimitReason::None);
+        };
+        if mode == Mode::Failsafe {
+            self.limit = Some(inv.safe_limit);
+            self.export_since = None;
+            self.escalated = false;
+            return (self.limit, LimitReason::Failsafe);
+        }
+        let Some(grid) = grid else {
+            return (
+                self.limit,
+                if self.limit.is_some() {
+                    LimitReason::ExportGuard
+                } else {
+                    LimitReason::None
+                },
+            );
+        };
+        let tolerance = site.guard.tolerance;
+        // Hold a no-export site at its small import; a limited one just under its limit.
+        let target = if export_limit.0 <= 0.0 {
+            site.import_target.max(tolerance)
+        } else {
+            -export_limit + tolerance
+        };
+
+        // Escalation: export above limit + tolerance for longer than the deadline.
+        if -grid > export_limit + tolerance {
+            let since = *self.export_since.get_or_insert(now);
+            if now.since(since) >= site.guard.deadline {
+                self.escalated = true;
+            }
+        } else {
+            self.export_since = None;
+            self.escalated = false;
+        }
+        if self.escalated {
+            self.limit = Some(inv.safe_limit);
+            return (self.limit, LimitReason::Escalated);
+        }
+
+        let pv = site
+            .roles
+            .pv
+            .map(|p| values[p.0])
+            .filter(|v| v.is_finite())
+            .map(Power);
+        let expected = grid + delta_loads;
+        let need = target - expected; // > 0: this much PV must go
+        let _ = absorbable;
+        let next = match self.limit {
+            None if expected < -export_limit => {
+                let base = pv.unwrap_or(inv.rated);
+                Some(base - need)
+            }
+            None => None,
+            Some(current) => {
+                let base = pv.map_or(current, |p| p.min(current));
+                if need.0 > 0.0 {
+                    Some(base - need)
+                } else {
+                    // Release gently; a release past the rating ends the curtailment.
+                    Some(current + (site.guard.release_rate * dt.as_secs_f64()).min(-need))
+                }
+            }
+        };
+        self.limit = match next {
+            Some(l) if l >= inv.rated => None,
+            Some(l) => Some(l.clamp(Power::ZERO, inv.rated)),
+            None => None,
+        };
+        (
+            self.limit,
+            if self.limit.is_some() {
+                LimitReason::ExportGuard
+            } else {
+                LimitReason::None
+            },
+        )
+    }
+}

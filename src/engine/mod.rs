@@ -1,0 +1,1149 @@
+//! The decision core: a deterministic state machine, `step(now, &snapshot) -> &Decisions`.
+//!
+//! It owns no socket, no timer, no thread and no random number generator, and never
+//! reads the clock: the live daemon feeds it real time, `simulate` feeds it simulated
+//! time, and both get the same decisions for the same inputs.
+//!
+//! One tick, in order:
+//! 1. local calendar (day and month roll-over, obligations judged at midnight);
+//! 2. freshness of every point; the site mode (normal, fail-safe, recovering, outage);
+//! 3. the value table rules read: points, derived signals, each load's state;
+//! 4. loads in priority order, each seeing the surplus left at its priority;
+//! 5. the export guard: inverter curtailment when the loads cannot absorb the rest;
+//! 6. counters, switchings and reasons.
+
+mod clock;
+mod counters;
+mod decision;
+mod guard;
+mod modulation;
+mod obligations;
+mod snapshot;
+
+use std::collections::VecDeque;
+use std::sync::Arc;
+use std::time::Duration;
+
+pub use clock::{LocalDay, SiteClock};
+pub use counters::{PersistedLoad, PersistedState, SiteCounters};
+pub use decision::{Command, Decisions, LimitReason, LoadDecision, Mode, Reason, Switching};
+pub use obligations::ObligationResult;
+pub use snapshot::{Quality, Sample, Snapshot};
+
+use crate::config::model::{Connection, LoadId, LoadKind, PointId, SafeState, Site};
+use crate::rules::{EvalInput, LocalClock, RuleState, Slot, Truth};
+use crate::units::{Current, Energy, Power, Ratio, Temperature, Timestamp};
+use guard::Guard;
+use modulation::Pi;
+use obligations::{ObligationState, Situation};
+
+/// After signals return, each load may switch at most once during this period.
+const SETTLE: Duration = Duration::from_secs(60);
+/// Longest gap between two ticks that is integrated into the energy counters; a longer
+/// gap (the daemon was stopped) is not invented as energy.
+const MAX_INTEGRATION_GAP: Duration = Duration::from_secs(60);
+/// How long a stepped load must see room for the next stage (or lack of room for the
+/// current one) before it changes stage (`common practice` for element switching).
+const STAGE_HOLD: Duration = Duration::from_secs(15);
+
+/// A time-limited manual command for one load.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Override {
+    /// What to do: `On`, `Off`, or a level for modulating loads.
+    pub command: Command,
+    /// When it expires by itself.
+    pub until: Timestamp,
+}
+
+/// Mutable state of one load between ticks.
+#[derive(Debug, Clone)]
+struct LoadState {
+    command: Command,
+    reason: Reason,
+    /// When the load last went from off to on or back.
+    changed_at: Timestamp,
+    starts: VecDeque<Timestamp>,
+    runtime_today: Duration,
+    energy_today: Energy,
+    power: Power,
+    start: Option<RuleState>,
+    stop: Option<RuleState>,
+    inhibit: Option<RuleState>,
+    obligations: Vec<ObligationState>,
+    /// Stepped loads: since when the surplus has pointed up (+1) or down (−1).
+    stage_trend: Option<(i8, Timestamp)>,
+    /// Batteries: reached the upper state of charge, waiting for the resume level.
+    full: bool,
+    /// Settling after recovery: whether this load has used its one switching.
+    settled: bool,
+    override_: Option<Override>,
+    /// Points whose staleness sends this load to its safe state.
+    deps: Vec<PointId>,
+}
+
+/// The engine.
+#[derive(Debug, Clone)]
+pub struct Engine {
+    site: Arc<Site>,
+    clock: SiteClock,
+    values: Vec<f64>,
+    last_now: Option<Timestamp>,
+    day: Option<LocalDay>,
+    local: LocalClock,
+    loads: Vec<LoadState>,
+    pi: Pi,
+    guard: Guard,
+    counters: SiteCounters,
+    mode: Mode,
+    /// Failsafe ended at this instant (start of recovery).
+    recovered_at: Option<Timestamp>,
+    outage_since: Option<Timestamp>,
+    float: bool,
+    guard_points: Vec<PointId>,
+    decisions: Decisions,
+    results: Vec<ObligationResult>,
+}
+
+impl Engine {
+    /// An engine for a checked site. Every load starts off, every signal missing.
+    pub fn new(site: Arc<Site>) -> Self {
+        let guard_points = guard_points(&site);
+        let loads = site
+            .loads
+            .iter()
+            .map(|l| LoadState {
+                command: Command::Off,
+                reason: Reason::Waiting,
+                changed_at: Timestamp::NEVER,
+                starts: VecDeque::new(),
+                runtime_today: Duration::ZERO,
+                energy_today: Energy::ZERO,
+                power: Power::ZERO,
+                start: l.start.as_ref().map(|r| r.rule.new_state()),
+                stop: l.stop.as_ref().map(|r| r.rule.new_state()),
+                inhibit: l.inhibit.as_ref().map(|r| r.rule.new_state()),
+                obligations: vec![ObligationState::default(); l.obligations.len()],
+                stage_trend: None,
+                full: false,
+                settled: true,
+                override_: None,
+                deps: load_deps(&site, l, &guard_points),
+            })
+            .collect();
+        let decisions = Decisions {
+            now: Timestamp(0),
+            loads: vec![
+                LoadDecision {
+                    command: Command::Off,
+                    reason: Reason::Waiting
+                };
+                site.loads.len()
+            ],
+            inverter_limit: None,
+            limit_reason: LimitReason::None,
+            mode: Mode::Failsafe,
+            surplus: Power::ZERO,
+            grid: None,
+            switchings: Vec::new(),
+        };
+        Engine {
+            clock: SiteClock::new(site.timezone),
+            values: vec![f64::NAN; site.slots.len],
+            last_now: None,
+            day: None,
+            local: LocalClock {
+                seconds_of_day: 0,
+                weekday: chrono::Weekday::Mon,
+            },
+            loads,
+            pi: Pi::new(site.guard.kp, site.guard.ki),
+            guard: Guard::default(),
+            counters: SiteCounters::default(),
+            mode: Mode::Failsafe,
+            recovered_at: None,
+            outage_since: None,
+            float: false,
+            guard_points,
+            decisions,
+            results: Vec::new(),
+            site,
+        }
+    }
+
+    /// The site this engine runs.
+    pub fn site(&self) -> &Arc<Site> {
+        &self.site
+    }
+
+    /// Sets a manual override; it expires by itself at `until` and never defeats an
+    /// inhibit rule, the fail-safe or the export guard.
+    pub fn set_override(&mut self, load: LoadId, command: Command, until: Timestamp) {
+        if let Some(l) = self.loads.get_mut(load.0) {
+            l.override_ = Some(Override { command, until });
+        }
+    }
+
+    /// Removes a load's override.
+    pub fn clear_override(&mut self, load: LoadId) {
+        if let Some(l) = self.loads.get_mut(load.0) {
+            l.override_ = None;
+        }
+    }
+
+    /// The active override of a load.
+    pub fn override_of(&self, load: LoadId) -> Option<Override> {
+        self.loads.get(load.0).and_then(|l| l.override_)
+    }
+
+    /// Site counters (today and this month).
+    pub fn counters(&self) -> SiteCounters {
+        self.counters
+    }
+
+    /// A load's run time and energy today.
+    pub fn load_today(&self, load: LoadId) -> (Duration, Energy) {
+        self.loads
+            .get(load.0)
+            .map_or((Duration::ZERO, Energy::ZERO), |l| {
+                (l.runtime_today, l.energy_today)
+            })
+    }
+
+    /// Obligation verdicts emitted since the last call (at local midnights).
+    pub fn take_obligation_results(&mut self) -> Vec<ObligationResult> {
+        std::mem::take(&mut self.results)
+    }
+
+    /// The last decisions.
+    pub fn decisions(&self) -> &Decisions {
+        &self.decisions
+    }
+
+    /// The value of a slot at the last tick (NaN when unknown).
+    pub fn value(&self, slot: Slot) -> f64 {
+        self.values
+            .get(slot.0 as usize)
+            .copied()
+            .unwrap_or(f64::NAN)
+    }
+
+    /// A sentence saying why a load is where it is, with the rule's current values.
+    pub fn explain(&self, load: LoadId) -> String {
+        let (Some(state), Some(l)) = (self.loads.get(load.0), self.site.loads.get(load.0)) else {
+            return String::new();
+        };
+        let input = EvalInput {
+            values: &self.values,
+            now: self.decisions.now,
+            local: self.local,
+        };
+        let rule_detail =
+            |rt: &Option<crate::config::model::RuleText>, st: &Option<RuleState>| match (rt, st) {
+                (Some(r), Some(s)) => Some(r.rule.explain(&input, s)),
+                _ => None,
+            };
+        let base = match state.reason {
+            Reason::SignalLost { point } => {
+                format!(
+                    "safe state: point \"{}\" is stale or missing",
+                    self.site.points.get(point).map_or("?", |p| p.name.as_str())
+                )
+            }
+            Reason::Obligation { index } => {
+                format!(
+                    "on from the grid: obligation \"{}\" is behind",
+                    l.obligations
+                        .get(index)
+                        .map_or(String::new(), |o| o.describe())
+                )
+            }
+            other => other.to_string(),
+        };
+        let detail = match state.reason {
+            Reason::Started | Reason::Waiting | Reason::MinOff { .. } => {
+                rule_detail(&l.start, &state.start)
+            }
+            Reason::Stopped | Reason::Running | Reason::MinOn { .. } => {
+                rule_detail(&l.stop, &state.stop)
+            }
+            Reason::Inhibited => rule_detail(&l.inhibit, &state.inhibit),
+            _ => None,
+        };
+        match detail {
+            Some(d) if !d.is_empty() => format!("{base} ({d})"),
+            _ => base,
+        }
+    }
+
+    /// Counters to persist.
+    pub fn persisted(&self) -> PersistedState {
+        let day = self.day.map_or(0, |d| d.day);
+        let month = self
+            .day
+            .map_or(0, |d| i64::from(d.year) * 12 + i64::from(d.month));
+        PersistedState {
+            day,
+            month,
+            import_today_wh: self.counters.import_today.0,
+            export_today_wh: self.counters.export_today.0,
+            import_month_wh: self.counters.import_month.0,
+            export_month_wh: self.counters.export_month.0,
+            diverted_today_wh: self.counters.diverted_today.0,
+            loads: self
+                .site
+                .loads
+                .iter()
+                .zip(&self.loads)
+                .map(|(l, s)| PersistedLoad {
+                    name: l.name.clone(),
+                    runtime_today_s: s.runtime_today.as_secs_f64(),
+                    energy_today_wh: s.energy_today.0,
+                    last_cycle_ms: s
+                        .obligations
+                        .iter()
+                        .map(|o| o.last_cycle.map(|t| t.0))
+                        .collect(),
+                })
+                .collect(),
+        }
+    }
+
+    /// Restores counters saved by [`Engine::persisted`], if they belong to the local day
+    /// (and month) of `now`; stale counters are dropped, cycle history is always kept.
+    pub fn restore(&mut self, saved: &PersistedState, now: Timestamp) {
+        let (day, _) = self.clock.day(now);
+        self.day = Some(day);
+        let month = i64::from(day.year) * 12 + i64::from(day.month);
+        if saved.month == month {
+            self.counters.import_month = Energy(saved.import_month_wh);
+            self.counters.export_month = Energy(saved.export_month_wh);
+        }
+        let same_day = saved.day == day.day;
+        if same_day {
+            self.counters.import_today = Energy(saved.import_today_wh);
+            self.counters.export_today = Energy(saved.export_today_wh);
+            self.counters.diverted_today = Energy(saved.diverted_today_wh);
+        }
+        for p in &saved.loads {
+            let Some((id, _)) = self.site.load(&p.name) else {
+                continue;
+            };
+            let s = &mut self.loads[id.0];
+            if same_day {
+                s.runtime_today = Duration::from_secs_f64(p.runtime_today_s.max(0.0));
+                s.energy_today = Energy(p.energy_today_wh);
+            }
+            for (o, last) in s.obligations.iter_mut().zip(&p.last_cycle_ms) {
+                o.last_cycle = last.map(Timestamp);
+            }
+        }
+    }
+
+    /// One tick: decide every load and the inverter limit for `now`.
+    pub fn step(&mut self, now: Timestamp, snapshot: &Snapshot) -> &Decisions {
+        let site = Arc::clone(&self.site);
+        let dt = match self.last_now {
+            Some(prev) if now > prev => now.since(prev),
+            _ => Duration::ZERO,
+        };
+        self.last_now = Some(now);
+        self.local = self.clock.at(now);
+        self.calendar(now);
+
+        // Freshness: stale or missing values become NaN, which rules read as unknown.
+        for (i, p) in site.points.iter().enumerate() {
+            let s = snapshot.samples.get(i).copied().unwrap_or(Sample::MISSING);
+            let fresh = s.value.is_finite()
+                && s.at <= now.plus(Duration::from_secs(5))
+                && now.since(s.at) <= p.stale_after;
+            self.values[i] = if fresh { s.value } else { f64::NAN };
+        }
+        let guard_ok = self
+            .guard_points
+            .iter()
+            .all(|p| self.values[p.0].is_finite());
+        self.update_mode(now, guard_ok);
+
+        // Power each load draws now: its own meter if fresh, otherwise as commanded.
+        let mut managed = Power::ZERO;
+        for (l, s) in site.loads.iter().zip(self.loads.iter_mut()) {
+            s.power = match l.power.map(|p| self.values[p.0]) {
+                Some(v) if v.is_finite() => Power(v.max(0.0)),
+                _ => s.command.power(&l.kind),
+            };
+            managed += s.power;
+        }
+
+        // Site flows.
+        let grid = site
+            .roles
+            .grid
+            .map(|p| self.values[p.0])
+            .filter(|v| v.is_finite())
+            .map(Power);
+        let hidden = self.guard.hidden_headroom(&site, &self.values);
+        let base_surplus = match &site.connection {
+            Connection::Grid { .. } => grid.map(|g| managed - g),
+            Connection::OffGrid(og) => self.off_grid_surplus(og, managed),
+        };
+        let site_surplus = base_surplus.map(|s| s + hidden);
+        if let Some(g) = grid {
+            let dt = dt.min(MAX_INTEGRATION_GAP);
+            self.counters.integrate(g, managed, dt);
+        }
+        for (l, s) in site.loads.iter().zip(self.loads.iter_mut()) {
+            let _ = l;
+            let dt = dt.min(MAX_INTEGRATION_GAP);
+            if s.command.is_on() {
+                s.runtime_today += dt;
+            }
+            s.energy_today += s.power.over(dt);
+        }
+        self.write_derived(now, grid, site_surplus);
+
+        // Loads, highest priority first.
+        let input_local = self.local;
+        let pi_target = site.import_target;
+        let mut u_total = match grid {
+            Some(g) if self.mode == Mode::Normal || self.mode == Mode::Outage => {
+                let modulating_now: Power = site
+                    .loads
+                    .iter()
+                    .zip(&self.loads)
+                    .filter(|(l, _)| l.kind.is_modulating())
+                    .map(|(_, s)| s.power)
+                    .sum();
+                let cap: Power = site
+                    .loads
+                    .iter()
+                    .filter(|l| l.kind.is_modulating())
+                    .map(|l| l.kind.max_power())
+                    .sum();
+                self.pi.update(pi_target - g, modulating_now, cap, dt)
+            }
+            _ => {
+                self.pi.reset();
+                Power::ZERO
+            }
+        };
+        let reserved = self.reserved_lower(now);
+        let mut used = Power::ZERO;
+        let mut switchings = std::mem::take(&mut self.decisions.switchings);
+        switchings.clear();
+        let mut absorbable = Power::ZERO;
+        let mut new_power = Power::ZERO;
+        for i in 0..site.loads.len() {
+            let surplus_i = site_surplus.map(|s| s - used - reserved[i]);
+            self.values[site.slots.site.surplus.0 as usize] = surplus_i.map_or(f64::NAN, |p| p.0);
+            let input = EvalInput {
+                values: &self.values,
+                now,
+                local: input_local,
+            };
+            let (command, reason, headroom) = decide(
+                &site,
+                i,
+                &mut self.loads[i],
+                &input,
+                self.mode,
+                surplus_i,
+                &mut u_total,
+                now,
+                self.recovered_at,
+                self.outage_since,
+            );
+            absorbable += headroom;
+            let st = &mut self.loads[i];
+            let was_on = st.command.is_on();
+            if command != st.command {
+                switchings.push(Switching {
+                    load: LoadId(i),
+                    from: st.command,
+                    to: command,
+                    reason,
+                });
+                if command.is_on() != was_on {
+                    st.changed_at = now;
+                    if command.is_on() {
+                        st.starts.push_back(now);
+                    }
+                    if self
+                        .recovered_at
+                        .is_some_and(|r| now.since(r) < SETTLE + site.failsafe.recovery_hold)
+                    {
+                        st.settled = true;
+                    }
+                }
+                // A new state of the load: its opposite rule starts afresh.
+                if command.is_on() != was_on {
+                    reset_rule_states(&site, i, st);
+                }
+            }
+            st.command = command;
+            st.reason = reason;
+            let p = command.power(&site.loads[i].kind);
+            if command.is_on() {
+                used += p;
+            }
+            new_power += p;
+        }
+        // Export guard on the power the loads will draw after this tick's commands.
+        let delta_loads = new_power - managed;
+        let (limit, limit_reason) = self.guard.decide(
+            &site,
+            &self.values,
+            grid,
+            delta_loads,
+            absorbable,
+            self.mode,
+            now,
+            dt,
+        );
+
+        let d = &mut self.decisions;
+        d.now = now;
+        for (out, st) in d.loads.iter_mut().zip(&self.loads) {
+            *out = LoadDecision {
+                command: st.command,
+                reason: st.reason,
+            };
+        }
+        d.inverter_limit = limit;
+        d.limit_reason = limit_reason;
+        d.mode = self.mode;
+        d.surplus = site_surplus.unwrap_or(Power::ZERO);
+        d.grid = grid;
+        d.switchings = switchings;
+        &self.decisions
+    }
+
+    fn calendar(&mut self, now: Timestamp) {
+        let (day, _) = self.clock.day(now);
+        let Some(previous) = self.day else {
+            self.day = Some(day);
+            return;
+        };
+        if previous.day == day.day {
+            return;
+        }
+        let new_month = (previous.year, previous.month) != (day.year, day.month);
+        self.counters.roll_over(new_month);
+        for (i, (l, s)) in self
+            .site
+            .loads
+            .iter()
+            .zip(self.loads.iter_mut())
+            .enumerate()
+        {
+            for (j, (ob, st)) in l
+                .obligations
+                .iter()
+                .zip(s.obligations.iter_mut())
+                .enumerate()
+            {
+                let met = st.end_of_day(ob, s.runtime_today, now);
+                self.results.push(ObligationResult {
+                    load: LoadId(i),
+                    index: j,
+                    day: previous.day,
+                    met,
+                });
+            }
+            s.runtime_today = Duration::ZERO;
+            s.energy_today = Energy::ZERO;
+        }
+        self.day = Some(day);
+    }
+
+    fn update_mode(&mut self, now: Timestamp, guard_ok: bool) {
+        let site = &self.site;
+        let outage = site
+            .roles
+            .grid_available
+            .map(|p| self.values[p.0])
+            .filter(|v| v.is_finite())
+            .map(|v| v < 0.5);
+        let backup = matches!(
+            site.connection,
+            Connection::Grid {
+                backup: Some(_),
+                ..
+            }
+        );
+        self.mode = if !guard_ok {
+            self.recovered_at = None;
+            Mode::Failsafe
+        } else {
+            if matches!(self.mode, Mode::Failsafe) {
+                self.recovered_at = Some(now);
+                for l in &mut self.loads {
+                    l.settled = false;
+                }
+            }
+            match self.recovered_at {
+                Some(r) if now.since(r) < site.failsafe.recovery_hold => Mode::Recovering,
+                _ => match (backup, outage) {
+                    (true, Some(true)) => Mode::Outage,
+                    (true, None) if self.outage_since.is_some() => Mode::Outage,
+                    _ => Mode::Normal,
+                },
+            }
+        };
+        match (self.mode, self.outage_since) {
+            (Mode::Outage, None) => self.outage_since = Some(now),
+            (Mode::Normal, Some(_)) => self.outage_since = None,
+            _ => {}
+        }
+    }
+
+    fn off_grid_surplus(
+        &mut self,
+        og: &crate::config::model::OffGridSettings,
+        managed: Power,
+    ) -> Option<Power> {
+        let r = &self.site.roles;
+        let v = |p: Option<PointId>| p.map(|p| self.values[p.0]).filter(|v| v.is_finite());
+        let voltage = v(r.battery_voltage)?;
+        let battery = match v(r.battery_power) {
+            Some(p) => p,
+            None => v(r.battery_current)? * voltage,
+        };
+        let soc_full = v(r.battery_soc).is_some_and(|s| s >= og.full_soc.0);
+        if voltage >= og.float_voltage.0 || soc_full {
+            self.float = true;
+        } else if voltage < og.float_voltage.0 - og.float_hysteresis.0 {
+            self.float = false;
+        }
+        // In float the charge controller is holding PV back: assume some headroom. Below
+        // float the battery has first call on the power, up to its acceptance.
+        let adjust = if self.float {
+            og.float_headroom
+        } else {
+            -og.charge_acceptance
+        };
+        Some(managed + Power(battery) + adjust)
+    }
+
+    fn write_derived(&mut self, now: Timestamp, grid: Option<Power>, site_surplus: Option<Power>) {
+        let s = &self.site.slots.site;
+        let nan_or = |p: Option<Power>| p.map_or(f64::NAN, |p| p.0);
+        let off_grid = matches!(self.site.connection, Connection::OffGrid(_));
+        let (import, export) = match (grid, off_grid) {
+            (_, true) => (Some(Power::ZERO), Some(Power::ZERO)),
+            (Some(g), _) => (Some(g.max(Power::ZERO)), Some((-g).max(Power::ZERO))),
+            (None, _) => (None, None),
+        };
+        let v = &mut self.values;
+        v[s.site_surplus.0 as usize] = nan_or(site_surplus);
+        v[s.import.0 as usize] = nan_or(import);
+        v[s.export.0 as usize] = nan_or(export);
+        v[s.import_today.0 as usize] = self.counters.import_today.0;
+        v[s.export_today.0 as usize] = self.counters.export_today.0;
+        v[s.import_month.0 as usize] = self.counters.import_month.0;
+        v[s.export_month.0 as usize] = self.counters.export_month.0;
+        v[s.diverted_today.0 as usize] = self.counters.diverted_today.0;
+        v[s.curtailed.0 as usize] = if self.guard.curtailing() { 1.0 } else { 0.0 };
+        for (ls, st) in self.site.slots.loads.iter().zip(&self.loads) {
+            v[ls.on.0 as usize] = if st.command.is_on() { 1.0 } else { 0.0 };
+            v[ls.power.0 as usize] = st.power.0;
+            v[ls.runtime_today.0 as usize] = st.runtime_today.as_secs_f64();
+            v[ls.energy_today.0 as usize] = st.energy_today.0;
+            v[ls.since_change.0 as usize] = if st.changed_at == Timestamp::NEVER {
+                1e9
+            } else {
+                now.since(st.changed_at).as_secs_f64()
+            };
+        }
+    }
+
+    /// For each load, the power of lower-priority loads that cannot be stopped now
+    /// (minimum on-time, obligation, override): it is not surplus for this load.
+    fn reserved_lower(&self, now: Timestamp) -> Vec<Power> {
+        let n = self.loads.len();
+        let mut reserved = vec![Power::ZERO; n];
+        let mut acc = Power::ZERO;
+        for i in (0..n).rev() {
+            reserved[i] = acc;
+            let st = &self.loads[i];
+            let l = &self.site.loads[i];
+            let locked = st.command.is_on()
+                && !l.kind.is_modulating()
+                && (now.since(st.changed_at) < l.min_on
+                    || matches!(
+                        st.reason,
+                        Reason::Obligation { .. } | Reason::Override { .. } | Reason::Settling
+                    ));
+            if locked {
+                acc += st.power;
+            }
+        }
+        reserved
+    }
+}
+
+fn reset_rule_states(site: &Site, i: usize, st: &mut LoadState) {
+    let l = &site.loads[i];
+    if let (Some(r), Some(s)) = (&l.start, st.start.as_mut()) {
+        *s = r.rule.new_state();
+    }
+    if let (Some(r), Some(s)) = (&l.stop, st.stop.as_mut()) {
+        *s = r.rule.new_state();
+    }
+}
+
+/// Points whose loss puts the whole site in fail-safe.
+fn guard_points(site: &Site) -> Vec<PointId> {
+    let r = &site.roles;
+    match &site.connection {
+        Connection::Grid { export, .. } => match export.limit() {
+            Some(_) => r.grid.into_iter().collect(),
+            None => Vec::new(),
+        },
+        Connection::OffGrid(_) => [r.battery_voltage, r.battery_current.or(r.battery_power)]
+            .into_iter()
+            .flatten()
+            .collect(),
+    }
+}
+
+/// Points a load's rules and obligations read, directly or through derived signals.
+fn load_deps(
+    site: &Site,
+    load: &crate::config::model::Load,
+    guard_points: &[PointId],
+) -> Vec<PointId> {
+    let n = site.points.len() as u32;
+    let s = &site.slots.site;
+    let flow_slots = [s.surplus, s.site_surplus, s.import, s.export];
+    let flow_points: Vec<PointId> = match &site.connection {
+        Connection::Grid { .. } => site.roles.grid.into_iter().collect(),
+        Connection::OffGrid(_) => guard_points.to_vec(),
+    };
+    let mut deps = Vec::new();
+    for rt in [&load.start, &load.stop, &load.inhibit]
+        .into_iter()
+        .flatten()
+    {
+        for slot in rt.rule.slots() {
+            if slot.0 < n {
+                deps.push(PointId(slot.0 as usize));
+            } else if flow_slots.contains(slot) {
+                deps.extend(flow_points.iter().copied());
+            }
+        }
+    }
+    if !load.obligations.is_empty()
+        && let Some(t) = load.temperature
+        && load
+            .obligations
+            .iter()
+            .any(|o| !matches!(o, crate::config::model::Obligation::RunDaily { .. }))
+    {
+        deps.push(t);
+    }
+    if let LoadKind::Battery { soc, .. } = &load.kind {
+        deps.push(*soc);
+    }
+    deps.sort();
+    deps.dedup();
+    deps
+}
+
+fn truth(
+    rule: &Option<crate::config::model::RuleText>,
+    state: &mut Option<RuleState>,
+    input: &EvalInput<'_>,
+) -> Option<Truth> {
+    match (rule, state.as_mut()) {
+        (Some(r), Some(s)) => Some(r.rule.eval(input, s)),
+        _ => None,
+    }
+}
+
+fn time_left(now: Timestamp, since: Timestamp, hold: Duration) -> Option<Duration> {
+    if since == Timestamp::NEVER {
+        return None;
+    }
+    let elapsed = now.since(since);
+    (elapsed < hold).then(|| hold - elapsed)
+}
+
+/// Decides one load. Returns its command, the reason, and how much more power it could
+/// absorb immediately (for the export guard).
+#[allow(clippy::too_many_arguments)]
+fn decide(
+    site: &Site,
+    i: usize,
+    st: &mut LoadState,
+    input: &EvalInput<'_>,
+    mode: Mode,
+    surplus: Option<Power>,
+    u_total: &mut Power,
+    now: Timestamp,
+    recovered_at: Option<Timestamp>,
+    outage_since: Option<Timestamp>,
+) -> (Command, Reason, Power) {
+    let l = &site.loads[i];
+    // Rules are evaluated every tick so that held-for timers and windows stay current.
+    let inhibit = truth(&l.inhibit, &mut st.inhibit, input);
+    let start = truth(&l.start, &mut st.start, input);
+    let stop = truth(&l.stop, &mut st.stop, input);
+    if let Some(o) = st.override_
+        && o.until <= now
+    {
+        st.override_ = None;
+    }
+    let safe = |st: &LoadState| match l.safe_state {
+        SafeState::Off => Command::Off,
+        SafeState::On => full_command(&l.kind),
+        SafeState::Hold => st.command,
+    };
+
+    // 1. Safety first: fail-safe, lost signals, inhibit.
+    if mode == Mode::Failsafe {
+        return (safe(st), Reason::Failsafe, Power::ZERO);
+    }
+    if let Some(p) = st.deps.iter().find(|p| !input.values[p.0].is_finite()) {
+        return (safe(st), Reason::SignalLost { point: p.0 }, Power::ZERO);
+    }
+    if mode == Mode::Recovering {
+        let left = recovered_at.map_or(Duration::ZERO, |r| {
+            site.failsafe.recovery_hold.saturating_sub(now.since(r))
+        });
+        return (safe(st), Reason::Recovering { left }, Power::ZERO);
+    }
+    if inhibit == Some(Truth::True) {
+        return (Command::Off, Reason::Inhibited, Power::ZERO);
+    }
+    // 2. Grid outage: shed lowest priorities first, one per interval.
+    if mode == Mode::Outage && l.shed_on_outage {
+        let interval = match &site.connection {
+            Connection::Grid {
+                backup: Some(b), ..
+            } => b.shed_interval,
+            _ => Duration::ZERO,
+        };
+        let rank = site
+            .loads
+            .iter()
+            .skip(i + 1)
+            .filter(|o| o.shed_on_outage)
+            .count() as u32;
+        let since = outage_since.map_or(Duration::ZERO, |o| now.since(o));
+        if interval.is_zero() || since >= interval * rank {
+            return (Command::Off, Reason::Shed, Power::ZERO);
+        }
+    }
+    // 3. A person's override.
+    if let Some(o) = st.override_ {
+        let command = match (o.command, &l.kind) {
+            (Command::On, k) => full_command(k),
+            (c, _) => c,
+        };
+        return (command, Reason::Override { until: o.until }, Power::ZERO);
+    }
+    // 4. Obligations that must be met from the grid now.
+    let temperature = l
+        .temperature
+        .map(|p| input.values[p.0])
+        .filter(|v| v.is_finite())
+        .map(Temperature);
+    let situation = Situation {
+        now,
+        seconds_of_day: input.local.seconds_of_day,
+        runtime_today: st.runtime_today,
+        temperature,
+    };
+    let mut forced = None;
+    for (j, (ob, os)) in l
+        .obligations
+        .iter()
+        .zip(st.obligations.iter_mut())
+        .enumerate()
+    {
+        if os.demand(ob, &situation).force_on && forced.is_none() {
+            forced = Some(j);
+        }
+    }
+    if let Some(j) = forced {
+        let command = if l.kind.is_modulating() {
+            full_command(&l.kind)
+        } else {
+            on_command(&l.kind, st.command)
+        };
+        return (command, Reason::Obligation { index: j }, Power::ZERO);
+    }
+
+    // 5. The rules, with hysteresis and anti-chatter limits.
+    let settling = recovered_at
+        .is_some_and(|r| now.since(r) < site.failsafe.recovery_hold + SETTLE)
+        && st.settled;
+    let is_on = st.command.is_on();
+    let enabled = if is_on {
+        match stop {
+            Some(Truth::True) => match time_left(now, st.changed_at, l.min_on) {
+                Some(left) => Err(Reason::MinOn { left }),
+                None if settling => Err(Reason::Settling),
+                None => Ok(false),
+            },
+            _ => Ok(true),
+        }
+    } else {
+        match start {
+            Some(Truth::True) | None if start.is_some() || l.kind.is_modulating() => {
+                if let Some(left) = time_left(now, st.changed_at, l.min_off) {
+                    Err(Reason::MinOff { left })
+                } else if let Some(cap) = l.max_starts_per_hour
+                    && {
+                        while st
+                            .starts
+                            .front()
+                            .is_some_and(|t| now.since(*t) >= Duration::from_secs(3600))
+                        {
+                            st.starts.pop_front();
+                        }
+                        st.starts.len() as u32 >= cap
+                    }
+                {
+                    Err(Reason::StartsCapped { cap })
+                } else if settling {
+                    Err(Reason::Settling)
+                } else {
+                    Ok(true)
+                }
+            }
+            _ => Ok(false),
+        }
+    };
+    let keep = |st: &LoadState, reason| (st.command, reason, Power::ZERO);
+    match (&l.kind, enabled) {
+        (_, Err(reason)) => keep(st, reason),
+        (LoadKind::Switched { .. }, Ok(true)) => (
+            Command::On,
+            if is_on {
+                Reason::Running
+            } else {
+                Reason::Started
+            },
+            Power::ZERO,
+        ),
+        (LoadKind::Switched { .. } | LoadKind::Stepped { .. }, Ok(false)) => (
+            Command::Off,
+            if is_on {
+                Reason::Stopped
+            } else {
+                Reason::Waiting
+            },
+            Power::ZERO,
+        ),
+        (LoadKind::Stepped { stages, .. }, Ok(true)) => {
+            let stage = step_stage(stages, st, surplus, now);
+            (
+                Command::Stage(stage),
+                if is_on {
+                    Reason::Running
+                } else {
+                    Reason::Started
+                },
+                Power::ZERO,
+            )
+        }
+        (kind, Ok(enabled)) => modulate(kind, st, enabled, input, u_total, is_on),
+    }
+}
+
+/// Full power for a kind (safe state `on`, boosts, obligations).
+fn full_command(kind: &LoadKind) -> Command {
+    match kind {
+        LoadKind::Switched { .. } => Command::On,
+        LoadKind::Stepped { stages, .. } => Command::Stage(stages.len() as u8),
+        LoadKind::Proportional { .. } => Command::Setpoint(Ratio(100.0)),
+        LoadKind::Charger { max, .. } => Command::Current(*max),
+        LoadKind::Battery { max_charge, .. } => Command::Charge(*max_charge),
+    }
+}
+
+/// Turning a load on keeps a stepped load's current stage, or starts at stage 1.
+fn on_command(kind: &LoadKind, current: Command) -> Command {
+    match (kind, current) {
+        (LoadKind::Stepped { .. }, Command::Stage(n)) if n > 0 => Command::Stage(n),
+        (LoadKind::Stepped { .. }, _) => Command::Stage(1),
+        (k, _) => full_command(k),
+    }
+}
+
+/// Stepped loads climb a stage when the surplus covers the next stage for
+/// [`STAGE_HOLD`], and drop one when it no longer covers the current stage as long.
+fn step_stage(
+    stages: &[crate::units::Power],
+    st: &mut LoadState,
+    surplus: Option<Power>,
+    now: Timestamp,
+) -> u8 {
+    let current = match st.command {
+        Command::Stage(n) if n > 0 => n,
+        _ => return 1,
+    };
+    let Some(surplus) = surplus else {
+        return current;
+    };
+    let idx = usize::from(current) - 1;
+    let trend: i8 = if idx + 1 < stages.len() && surplus >= stages[idx + 1] {
+        1
+    } else if current > 1 && surplus < stages[idx] {
+        -1
+    } else {
+        0
+    };
+    if trend == 0 {
+        st.stage_trend = None;
+        return current;
+    }
+    match st.stage_trend {
+        Some((t, since)) if t == trend && now.since(since) >= STAGE_HOLD => {
+            st.stage_trend = None;
+            (i16::from(current) + i16::from(trend)) as u8
+        }
+        Some((t, _)) if t == trend => current,
+        _ => {
+            st.stage_trend = Some((trend, now));
+            current
+        }
+    }
+}
+
+/// Proportional loads, chargers and batteries take their share of the PI controller's
+/// total in priority order. Returns the command, reason and remaining headroom.
+fn modulate(
+    kind: &LoadKind,
+    st: &mut LoadState,
+    enabled: bool,
+    input: &EvalInput<'_>,
+    u_total: &mut Power,
+    is_on: bool,
+) -> (Command, Reason, Power) {
+    let max = kind.max_power();
+    if !enabled {
+        return (
+            Command::Off,
+            if is_on {
+                Reason::Stopped
+            } else {
+                Reason::Waiting
+            },
+            Power::ZERO,
+        );
+    }
+    if let LoadKind::Battery {
+        soc,
+        soc_max,
+        soc_resume,
+        ..
+    } = kind
+    {
+        let soc_now = input.values[soc.0];
+        if soc_now >= soc_max.0 {
+            st.full = true;
+        } else if soc_now <= soc_resume.0 {
+            st.full = false;
+        }
+        if st.full {
+            return (Command::Off, Reason::Full, Power::ZERO);
+        }
+    }
+    let share = u_total.min(max).max(Power::ZERO);
+    *u_total -= share;
+    let (command, drawn, reason) = match kind {
+        LoadKind::Proportional {
+            rated, min, step, ..
+        } => {
+            let pct = quantize(share.0 / rated.0 * 100.0, step.0).min(100.0);
+            if pct < min.0.max(f64::EPSILON) {
+                (
+                    Command::Off,
+                    Power::ZERO,
+                    Reason::BelowMinimum {
+                        available: share,
+                        minimum: *rated * (min.0 / 100.0),
+                    },
+                )
+            } else {
+                (
+                    Command::Setpoint(Ratio(pct)),
+                    *rated * (pct / 100.0),
+                    Reason::Following {
+                        power: *rated * (pct / 100.0),
+                    },
+                )
+            }
+        }
+        LoadKind::Charger {
+            watts_per_amp,
+            min,
+            max: max_a,
+            step,
+            hold_min_from_grid,
+            ..
+        } => {
+            let amps = quantize(share.0 / watts_per_amp, step.0).min(max_a.0);
+            let min_power = Power(min.0 * watts_per_amp);
+            if amps >= min.0 {
+                (
+                    Command::Current(Current(amps)),
+                    Power(amps * watts_per_amp),
+                    Reason::Following {
+                        power: Power(amps * watts_per_amp),
+                    },
+                )
+            } else if is_on || *hold_min_from_grid {
+                // Running chargers hold their minimum until the stop rule ends the session,
+                // so a passing cloud does not cycle the contactor.
+                (
+                    Command::Current(*min),
+                    min_power,
+                    Reason::Following { power: min_power },
+                )
+            } else {
+                (
+                    Command::Off,
+                    Power::ZERO,
+                    Reason::BelowMinimum {
+                        available: share,
+                        minimum: min_power,
+                    },
+                )
+            }
+        }
+        LoadKind::Battery { .. } => {
+            let p = share;
+            if p.0 < 1.0 {
+                (
+                    Command::Charge(Power::ZERO),
+                    Power::ZERO,
+                    Reason::Following { power: Power::ZERO },
+                )
+            } else {
+                (Command::Charge(p), p, Reason::Following { power: p })
+            }
+        }
+        LoadKind::Switched { .. } | LoadKind::Stepped { .. } => {
+            (Command::Off, Power::ZERO, Reason::Waiting)
+        }
+    };
+    // What was taken beyond the share (a held minimum) is not left for others.
+    if drawn > share {
+        *u_total = (*u_total - (drawn - share)).max(Power::ZERO);
+    }
+    (command, reason, (max - drawn).max(Power::ZERO))
+}
+
+/// Rounds down to the resolution `step` (rounding down never over-absorbs into import).
+fn quantize(value: f64, step: f64) -> f64 {
+    if step <= 0.0 {
+        return value.max(0.0);
+    }
+    ((value / step) + 1e-9).floor().max(0.0) * step
+}
+
+#[cfg(test)]
+mod tests;

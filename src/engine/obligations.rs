@@ -1,0 +1,272 @@
+//! Daily and periodic duties of a load: run N hours a day, reach a temperature by a
+//! time, hold a high temperature every so often. Met from surplus where the rules
+//! manage it; forced on from the grid inside the permitted window where they did not;
+//! reported as met or missed at the end of each local day.
+
+use std::time::Duration;
+
+use crate::config::model::{LoadId, Obligation};
+use crate::units::{Temperature, Timestamp};
+
+/// Progress of one obligation.
+#[derive(Debug, Clone, Default)]
+pub struct ObligationState {
+    /// ReachBy: the target was seen at the deadline today.
+    pub met_today: bool,
+    /// ReachBy: currently heating from the grid (hysteresis).
+    pub forcing: bool,
+    /// Cycle: since when the temperature has been at or above the target.
+    pub hot_since: Option<Timestamp>,
+    /// Cycle: when the last cycle completed (`None` = never, so it is due).
+    pub last_cycle: Option<Timestamp>,
+}
+
+/// A day's verdict on one obligation, emitted at local midnight.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ObligationResult {
+    /// The load.
+    pub load: LoadId,
+    /// Index into the load's obligations.
+    pub index: usize,
+    /// Local day (days since 1970-01-01, local time) judged.
+    pub day: i64,
+    /// Whether it was met.
+    pub met: bool,
+}
+
+/// Hysteresis below a temperature target before forced heating restarts
+/// (`common practice`: a thermostat deadband of about 1–3 K).
+const RESTART_BELOW: f64 = 1.5;
+/// A tank within this of the target at the deadline counts as having reached it
+/// (sensor resolution and thermostat deadband; `common practice`).
+const MET_TOLERANCE: f64 = 0.5;
+
+/// What an obligation asks of its load this tick.
+pub struct Demand {
+    /// Force the load on from the grid.
+    pub force_on: bool,
+}
+
+/// Inputs an obligation looks at.
+pub struct Situation {
+    /// Now.
+    pub now: Timestamp,
+    /// Seconds since local midnight.
+    pub seconds_of_day: u32,
+    /// The load's run time today.
+    pub runtime_today: Duration,
+    /// The load's temperature point, if fresh.
+    pub temperature: Option<Temperature>,
+}
+
+fn seconds(t: chrono::NaiveTime) -> u32 {
+    t.signed_duration_since(chrono::NaiveTime::MIN)
+        .num_seconds() as u32
+}
+
+/// Seconds from `now` to the end of `window` if `now` is inside it.
+fn time_left_in(window: &crate::config::model::Window, sod: u32) -> Option<u32> {
+    if !window.contains(sod) {
+        return None;
+    }
+    let end = seconds(window.end);
+    Some(if end > sod {
+        end - sod
+    } else {
+        86_400 - sod + end
+    })
+}
+
+impl ObligationState {
+    /// What the obligation demands now. Called once per tick, before the rules.
+    pub fn demand(&mut self, ob: &Obligation, s: &Situation) -> Demand {
+        match ob {
+            Obligation::RunDaily {
+                duration,
+                grid_window,
+            } => {
+                let missing = duration.saturating_sub(s.runtime_today);
+                let force_on = match grid_window.and_then(|w| time_left_in(&w, s.seconds_of_day)) {
+                    // Start just late enough to need only what is missing (plus a minute of margin).
+                    Some(left) => {
+                        !missing.is_zero()
+                            && Duration::from_secs(u64::from(left))
+                                <= missing + Duration::from_secs(60)
+                    }
+                    None => false,
+                };
+                Demand { force_on }
+            }
+            Obligation::ReachBy {
+                target,
+                by,
+                grid_window,
+            } => {
+                let sod = s.seconds_of_day;
+                let deadline = seconds(*by);
+                if let Some(t) = s.temperature
+                    && sod <= deadline
+                    && t.0 >= target.0 - MET_TOLERANCE
+                    && sod + 60 >= deadline
+                {
+                    // Judged in the last minute before the deadline.
+                    self.met_today = true;
+                }
+                let in_window = grid_window.is_some_and(|w| w.contains(sod)) && sod < deadline;
+                let force_on = match (in_window, s.temperature) {
+                    (true, Some(t)) => {
+                        if t.0 >= target.0 {
+                            self.forcing = false;
+                        } else if t.0 < target.0 - RESTART_BELOW || self.forcing {
+                            self.forcing = true;
+                        }
+                        self.forcing
+                    }
+                    _ => {
+                        self.forcing = false;
+                        false
+                    }
+                };
+                Demand { force_on }
+            }
+            Obligation::Cycle {
+                target,
+                hold,
+                every,
+                grid_window,
+            } => {
+                match s.temperature {
+                    Some(t) if t.0 >= target.0 => {
+                        let since = *self.hot_since.get_or_insert(s.now);
+                        if s.now.since(since) >= *hold {
+                            self.last_cycle = Some(s.now);
+                        }
+                    }
+                    _ => self.hot_since = None,
+                }
+                let due = self
+                    .last_cycle
+                    .is_none_or(|last| s.now.since(last) >= *every);
+                let in_window = grid_window.is_some_and(|w| w.contains(s.seconds_of_day));
+                Demand {
+                    force_on: due && in_window,
+                }
+            }
+        }
+    }
+
+    /// Judges the day that just ended and resets the daily part of the state.
+    pub fn end_of_day(&mut self, ob: &Obligation, runtime_today: Duration, now: Timestamp) -> bool {
+        let met = match ob {
+            Obligation::RunDaily { duration, .. } => runtime_today >= *duration,
+            Obligation::ReachBy { .. } => self.met_today,
+            Obligation::Cycle { every, .. } => {
+                // Met as long as the cycle is not overdue by more than a day.
+                self.last_cycle
+                    .is_some_and(|last| now.since(last) <= *every + Duration::from_secs(86_400))
+            }
+        };
+        self.met_today = false;
+        self.forcing = false;
+        met
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::model::Window;
+    use chrono::NaiveTime;
+
+    fn t(h: u32, m: u32) -> NaiveTime {
+        NaiveTime::from_hms_opt(h, m, 0).unwrap()
+    }
+
+    fn at(sod: u32, runtime_h: f64, temp: Option<f64>) -> Situation {
+        Situation {
+            now: Timestamp(i64::from(sod) * 1000),
+            seconds_of_day: sod,
+            runtime_today: Duration::from_secs_f64(runtime_h * 3600.0),
+            temperature: temp.map(Temperature),
+        }
+    }
+
+    #[test]
+    fn daily_run_starts_from_grid_just_late_enough_to_finish_in_the_window() {
+        let ob = Obligation::RunDaily {
+            duration: Duration::from_secs(5 * 3600),
+            grid_window: Some(Window {
+                start: t(16, 0),
+                end: t(21, 0),
+            }),
+        };
+        let mut s = ObligationState::default();
+        // 2 h done: 3 h missing, so it must start by 18:00 (minus the minute of margin).
+        assert!(!s.demand(&ob, &at(17 * 3600, 2.0, None)).force_on);
+        assert!(s.demand(&ob, &at(18 * 3600 - 30, 2.0, None)).force_on);
+        // Done: no forcing.
+        assert!(!s.demand(&ob, &at(20 * 3600, 5.0, None)).force_on);
+        assert!(!s.end_of_day(&ob, Duration::from_secs(4 * 3600), Timestamp(0)));
+        assert!(s.end_of_day(&ob, Duration::from_secs(5 * 3600), Timestamp(0)));
+    }
+
+    #[test]
+    fn reach_by_heats_in_the_window_with_hysteresis_and_judges_at_the_deadline() {
+        let ob = Obligation::ReachBy {
+            target: Temperature(60.0),
+            by: t(17, 0),
+            grid_window: Some(Window {
+                start: t(15, 0),
+                end: t(17, 0),
+            }),
+        };
+        let mut s = ObligationState::default();
+        assert!(
+            !s.demand(&ob, &at(14 * 3600, 0.0, Some(50.0))).force_on,
+            "before the window"
+        );
+        assert!(s.demand(&ob, &at(15 * 3600, 0.0, Some(50.0))).force_on);
+        assert!(
+            !s.demand(&ob, &at(16 * 3600, 0.0, Some(60.0))).force_on,
+            "reached"
+        );
+        assert!(
+            !s.demand(&ob, &at(16 * 3600 + 60, 0.0, Some(59.0))).force_on,
+            "within the restart deadband"
+        );
+        assert!(
+            s.demand(&ob, &at(16 * 3600 + 120, 0.0, Some(58.0)))
+                .force_on,
+            "below the deadband"
+        );
+        let _ = s.demand(&ob, &at(17 * 3600 - 30, 0.0, Some(59.8)));
+        assert!(s.end_of_day(&ob, Duration::ZERO, Timestamp(0)));
+    }
+
+    #[test]
+    fn cycle_is_due_until_the_temperature_is_held_long_enough() {
+        let ob = Obligation::Cycle {
+            target: Temperature(60.0),
+            hold: Duration::from_secs(600),
+            every: Duration::from_secs(7 * 86_400),
+            grid_window: Some(Window {
+                start: t(11, 0),
+                end: t(15, 0),
+            }),
+        };
+        let mut s = ObligationState::default();
+        assert!(
+            s.demand(&ob, &at(12 * 3600, 0.0, Some(55.0))).force_on,
+            "never done: due"
+        );
+        assert!(
+            s.demand(&ob, &at(12 * 3600 + 60, 0.0, Some(60.5))).force_on,
+            "hot, not held yet"
+        );
+        assert!(
+            !s.demand(&ob, &at(12 * 3600 + 700, 0.0, Some(60.5)))
+                .force_on,
+            "held 10 min: done"
+        );
+    }
+}
