@@ -1,6 +1,7 @@
 //! Site configuration: the YAML file in, a fully checked [`model::Site`] out, or every
 //! located diagnostic that stands in the way.
 
+pub mod describe;
 pub mod load;
 pub mod model;
 pub mod values;

@@ -1,0 +1,44 @@
+//! The command line: parse arguments, call the library, map outcomes to exit codes.
+//! Nothing here decides anything; each verb is a thin wrapper over a library call.
+
+mod check;
+
+use std::io::IsTerminal;
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+/// Spillway: divert solar surplus into useful loads, never export where it is forbidden.
+#[derive(Debug, Parser)]
+#[command(name = "spillway", version, about, long_about = None)]
+pub struct Cli {
+    /// What to do.
+    #[command(subcommand)]
+    pub command: Verb,
+}
+
+/// The verbs.
+#[derive(Debug, Subcommand)]
+pub enum Verb {
+    /// Check a site file and print the model as Spillway understood it.
+    Check {
+        /// The site file (YAML).
+        site: PathBuf,
+        /// Print only errors and warnings, not the model.
+        #[arg(long)]
+        quiet: bool,
+    },
+}
+
+/// Whether to colour diagnostics.
+pub fn color() -> bool {
+    std::io::stderr().is_terminal() && std::env::var_os("NO_COLOR").is_none()
+}
+
+/// Runs a parsed command line.
+pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
+    match cli.command {
+        Verb::Check { site, quiet } => check::run(&site, quiet),
+    }
+}

@@ -1,0 +1,312 @@
+//! The resolved model as a person reads it: what `spillway check` prints. Loads in
+//! priority order, each rule as the engine understood it, every threshold with units.
+
+use std::fmt::Write as _;
+
+use super::model::*;
+use crate::units::{format_duration, trim_number};
+
+/// Renders the whole site.
+pub fn describe(site: &Site) -> String {
+    let mut out = String::new();
+    let _ = writeln!(out, "{} — time zone {}", site.name, site.timezone.name());
+    let connection = match &site.connection {
+        Connection::Grid { export, backup } => {
+            let export = match export {
+                ExportPolicy::Allowed => "export allowed".to_owned(),
+                ExportPolicy::Forbidden => "export forbidden".to_owned(),
+                ExportPolicy::Limited(p) => format!("export limited to {p}"),
+            };
+            format!(
+                "grid-tied{}, {export}",
+                if backup.is_some() { " with backup" } else { "" }
+            )
+        }
+        Connection::OffGrid(og) => format!(
+            "off-grid: float at {} (−{} to leave), full at {}, battery takes up to {} before dump loads, {} assumed spare in float",
+            og.float_voltage,
+            og.float_hysteresis,
+            og.full_soc,
+            og.charge_acceptance,
+            og.float_headroom
+        ),
+    };
+    let _ = writeln!(
+        out,
+        "  {connection}; import target {}; engine tick {}",
+        site.import_target,
+        format_duration(site.tick)
+    );
+    let _ = writeln!(
+        out,
+        "  export guard: tolerance {}, escalates to the safe limit after {}, releases at {}/s",
+        site.guard.tolerance,
+        format_duration(site.guard.deadline),
+        site.guard.release_rate
+    );
+    let _ = writeln!(
+        out,
+        "  fail-safe: points stale after {} unless set per point; loads held {} after signals return",
+        format_duration(site.failsafe.stale_after),
+        format_duration(site.failsafe.recovery_hold)
+    );
+    if let Some(inv) = &site.inverter {
+        let _ = writeln!(
+            out,
+            "  inverter: rated {}, limit {}, safe limit {}, re-written every {}",
+            inv.rated,
+            write_text(site, &inv.limit),
+            inv.safe_limit,
+            format_duration(inv.refresh)
+        );
+    }
+    if let Some(m) = &site.mqtt {
+        let _ = writeln!(
+            out,
+            "  MQTT: {}:{} as {}{}, topics under {}/",
+            m.host,
+            m.port,
+            m.client_id,
+            if m.tls.is_some() { " over TLS" } else { "" },
+            m.topic_prefix
+        );
+    }
+
+    let _ = writeln!(out, "\ndevices");
+    for d in &site.devices {
+        let link = match &d.link {
+            Link::ModbusTcp { host, port, unit } => format!("Modbus TCP {host}:{port} unit {unit}"),
+            Link::ModbusRtu {
+                path, baud, unit, ..
+            } => format!("Modbus RTU {path} {baud} Bd unit {unit}"),
+            Link::Mqtt => "MQTT".to_owned(),
+        };
+        let _ = writeln!(
+            out,
+            "  {:<12} {link}{}, poll {}, timeout {}",
+            d.name,
+            if d.sunspec { ", SunSpec" } else { "" },
+            format_duration(d.poll),
+            format_duration(d.timeout)
+        );
+    }
+
+    let _ = writeln!(out, "\npoints");
+    for p in &site.points {
+        let device = &site.devices[p.device.0].name;
+        let source = match &p.read {
+            PointRead::Modbus(m) => {
+                let table = match m.table {
+                    Table::Coil => "coil",
+                    Table::DiscreteInput => "discrete input",
+                    Table::InputRegister => "input register",
+                    Table::HoldingRegister => "holding register",
+                };
+                let scale = match m.scale {
+                    Scale::Factor(f) if f == 1.0 => String::new(),
+                    Scale::Factor(f) => format!(" × {}", trim_number(f)),
+                    Scale::Register { address, .. } => format!(" × 10^sf(register {address})"),
+                };
+                let ty = if m.value_type == ValueType::Bool {
+                    String::new()
+                } else {
+                    format!(" {:?}", m.value_type).to_lowercase()
+                };
+                format!("{table} {}{ty}{scale}", m.address)
+            }
+            PointRead::SunSpec(s) => format!("SunSpec {}.{}", s.model, s.point),
+            PointRead::Mqtt(m) => match &m.payload {
+                Payload::Plain => format!("topic {}", m.topic),
+                Payload::Json(ptr) => format!("topic {} at {ptr}", m.topic),
+            },
+        };
+        let what = if p.boolean {
+            "on/off".to_owned()
+        } else {
+            p.dimension
+                .describe()
+                .trim_start_matches("a ")
+                .trim_start_matches("an ")
+                .to_owned()
+        };
+        let role = if ROLE_NAMES.iter().any(|(n, _)| *n == p.name) {
+            "  (site role)"
+        } else {
+            ""
+        };
+        let _ = writeln!(
+            out,
+            "  {:<16} {device}: {source}; {what}, every {}, stale after {}{role}",
+            p.name,
+            format_duration(p.poll),
+            format_duration(p.stale_after)
+        );
+    }
+
+    let _ = writeln!(out, "\nloads, in priority order");
+    if site.loads.is_empty() {
+        let _ = writeln!(out, "  (none)");
+    }
+    for (i, l) in site.loads.iter().enumerate() {
+        let _ = writeln!(
+            out,
+            "  {}. {} (priority {}) — {}",
+            i + 1,
+            l.name,
+            l.priority,
+            kind_text(site, &l.kind)
+        );
+        for (word, rule) in [
+            ("start", &l.start),
+            ("stop", &l.stop),
+            ("inhibit", &l.inhibit),
+        ] {
+            if let Some(r) = rule {
+                let default = if r.origin.ends_with("(default)") {
+                    "   (default)"
+                } else {
+                    ""
+                };
+                let _ = writeln!(out, "     {word:<8} {}{default}", r.rule.describe());
+            }
+        }
+        let mut limits = Vec::new();
+        if !l.min_on.is_zero() {
+            limits.push(format!("min on {}", format_duration(l.min_on)));
+        }
+        if !l.min_off.is_zero() {
+            limits.push(format!("min off {}", format_duration(l.min_off)));
+        }
+        if let Some(n) = l.max_starts_per_hour {
+            limits.push(format!("at most {n} starts an hour"));
+        }
+        limits.push(format!(
+            "safe state {}",
+            match l.safe_state {
+                SafeState::Off => "off",
+                SafeState::On => "on",
+                SafeState::Hold => "hold",
+            }
+        ));
+        if matches!(
+            site.connection,
+            Connection::Grid {
+                backup: Some(_),
+                ..
+            }
+        ) {
+            limits.push(if l.shed_on_outage {
+                "shed in an outage".to_owned()
+            } else {
+                "kept in an outage".to_owned()
+            });
+        }
+        let _ = writeln!(out, "     {}", limits.join(", "));
+        if let Some(p) = l.power {
+            let _ = writeln!(out, "     metered by {}", site.points[p.0].name);
+        }
+        for ob in &l.obligations {
+            let window = ob
+                .grid_window()
+                .map_or(" (from surplus only)".to_owned(), |w| {
+                    format!(
+                        " (grid allowed {}–{})",
+                        w.start.format("%H:%M"),
+                        w.end.format("%H:%M")
+                    )
+                });
+            let temp = match (ob, l.temperature) {
+                (Obligation::RunDaily { .. }, _) | (_, None) => String::new(),
+                (_, Some(t)) => format!(" on {}", site.points[t.0].name),
+            };
+            let _ = writeln!(out, "     obligation: {}{temp}{window}", ob.describe());
+        }
+    }
+    out
+}
+
+fn kind_text(site: &Site, kind: &LoadKind) -> String {
+    match kind {
+        LoadKind::Switched { rated, switch } => {
+            format!("switched, {rated}, {}", write_text(site, switch))
+        }
+        LoadKind::Stepped { stages, command } => {
+            let stages: Vec<String> = stages.iter().map(ToString::to_string).collect();
+            let how = match command {
+                StageCommand::Relays(w) => w
+                    .iter()
+                    .map(|w| write_text(site, w))
+                    .collect::<Vec<_>>()
+                    .join(" / "),
+                StageCommand::Register(w) => format!("stage number to {}", write_text(site, w)),
+            };
+            format!("stepped {}, {how}", stages.join(" → "))
+        }
+        LoadKind::Proportional {
+            rated,
+            min,
+            step,
+            setpoint,
+            ..
+        } => {
+            format!(
+                "proportional up to {rated} (min {min}, step {step}), setpoint to {}",
+                write_text(site, setpoint)
+            )
+        }
+        LoadKind::Charger {
+            watts_per_amp,
+            min,
+            max,
+            step,
+            setpoint,
+            hold_min_from_grid,
+            ..
+        } => format!(
+            "charger {min}–{max} in steps of {step} ({} W per A), current to {}; {}",
+            trim_number(*watts_per_amp),
+            write_text(site, setpoint),
+            if *hold_min_from_grid {
+                "holds its minimum from the grid"
+            } else {
+                "pauses below its minimum"
+            }
+        ),
+        LoadKind::Battery {
+            max_charge,
+            soc_max,
+            soc_resume,
+            soc,
+            setpoint,
+        } => format!(
+            "battery charging up to {max_charge} until {} reaches {soc_max} (resumes below {soc_resume}), power to {}",
+            site.points[soc.0].name,
+            write_text(site, setpoint)
+        ),
+    }
+}
+
+fn write_text(site: &Site, w: &Write) -> String {
+    let device = &site.devices[w.device().0].name;
+    match w {
+        Write::Coil { address, .. } => format!("coil {address} on {device}"),
+        Write::Register {
+            address,
+            value_type,
+            scale,
+            ..
+        } => {
+            let scale = if *scale == 1.0 {
+                String::new()
+            } else {
+                format!(" ÷ {}", trim_number(*scale))
+            };
+            format!(
+                "register {address} ({}{scale}) on {device}",
+                format!("{value_type:?}").to_lowercase()
+            )
+        }
+        Write::Mqtt { topic, .. } => format!("topic {topic} via {device}"),
+        Write::SunSpecLimit { .. } => format!("SunSpec power limit on {device}"),
+    }
+}
