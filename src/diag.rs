@@ -201,6 +201,14 @@ pub fn did_you_mean<'a>(
     name: &str,
     candidates: impl IntoIterator<Item = &'a str>,
 ) -> Option<&'a str> {
+    let candidates: Vec<&'a str> = candidates.into_iter().collect();
+    // A difference of case only ("kw" for "kW") is the likeliest slip of all.
+    if let Some(c) = candidates
+        .iter()
+        .find(|c| c.eq_ignore_ascii_case(name) && **c != name)
+    {
+        return Some(c);
+    }
     candidates
         .into_iter()
         .map(|c| (strsim::jaro_winkler(name, c), c))

@@ -109,6 +109,8 @@ pub fn load_str(path: &str, text: &str) -> Result<Loaded, LoadError> {
         diags: &mut diags,
     }
     .site(&tree);
+    // File order reads best: a user fixes top to bottom.
+    diags.list.sort_by_key(|d| d.primary.span.start);
     match site {
         Some(site) if !diags.has_errors() => Ok(Loaded {
             site,
@@ -1392,7 +1394,7 @@ impl Builder<'_, '_> {
         };
         if let (Some(cap), Some(n)) = (max_starts, starts_node) {
             let cycle = (min_on + min_off).as_secs_f64();
-            if cycle > 0.0 && f64::from(cap) > 3600.0 / cycle {
+            if cycle > 0.0 && cycle <= 86_400.0 && f64::from(cap) > 3600.0 / cycle {
                 self.diags.push(
                     Diagnostic::warning(
                         "C0229",

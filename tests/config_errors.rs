@@ -1,0 +1,90 @@
+//! Broken site files give located diagnostics: file, line and column, the offending
+//! text under a caret, what was expected. Pinned by golden files next to each fixture;
+//! re-bless with `UPDATE_EXPECT=1 cargo test --test config_errors`.
+
+use std::path::Path;
+
+fn check(name: &str) {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/test_data/broken");
+    let yaml = dir.join(format!("{name}.yaml"));
+    let text = std::fs::read_to_string(&yaml).unwrap();
+    let shown = format!("tests/test_data/broken/{name}.yaml");
+    let rendered = match spillway::config::load_str(&shown, &text) {
+        Ok(loaded) => format!(
+            "loaded with {} warning(s)\n{}",
+            loaded.warnings.len(),
+            spillway::diag::render(&shown, &text, &loaded.warnings, false)
+        ),
+        Err(e) => e.render(false),
+    };
+    let golden = dir.join(format!("{name}.expected"));
+    if std::env::var_os("UPDATE_EXPECT").is_some() {
+        std::fs::write(&golden, &rendered).unwrap();
+        return;
+    }
+    let expected = std::fs::read_to_string(&golden).unwrap_or_default();
+    assert_eq!(
+        rendered, expected,
+        "diagnostics for {name} changed; re-bless with UPDATE_EXPECT=1 if intended\n{rendered}"
+    );
+}
+
+#[test]
+fn yaml_syntax_errors_are_located() {
+    check("yaml-syntax");
+}
+
+#[test]
+fn unknown_keys_are_reported_with_a_suggestion() {
+    check("unknown-key");
+}
+
+#[test]
+fn wrong_and_missing_units_are_reported() {
+    check("wrong-units");
+}
+
+#[test]
+fn duplicate_load_names_are_reported_with_both_places() {
+    check("duplicate-loads");
+}
+
+#[test]
+fn impossible_settings_are_reported() {
+    check("impossible-settings");
+}
+
+#[test]
+fn limiting_export_without_a_grid_meter_is_an_error() {
+    check("no-grid-meter");
+}
+
+#[test]
+fn unknown_devices_points_and_time_zones_get_suggestions() {
+    check("bad-references");
+}
+
+#[test]
+fn unknown_signals_and_unit_mismatches_in_rules_are_located_in_the_file() {
+    check("unknown-signal");
+}
+
+#[test]
+fn a_stop_rule_that_holds_whenever_the_start_rule_does_is_an_error() {
+    check("chattering-rules");
+}
+
+#[test]
+fn every_error_of_a_file_is_reported_in_one_run() {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/test_data/broken");
+    let text = std::fs::read_to_string(dir.join("wrong-units.yaml")).unwrap();
+    let Err(spillway::config::LoadError::Invalid { diagnostics, .. }) =
+        spillway::config::load_str("x.yaml", &text)
+    else {
+        panic!("expected errors")
+    };
+    assert!(
+        diagnostics.iter().filter(|d| d.is_error()).count() >= 4,
+        "{diagnostics:#?}"
+    );
+}
