@@ -13,7 +13,7 @@ fn big_site() -> String {
     let mut y = String::from(
         "site:\n  name: Bench\n  timezone: Europe/Lisbon\n  export: forbidden\n  import_target: 40W\n\
          devices:\n  meter: { modbus_tcp: 127.0.0.1:5020, unit: 1 }\n  relays: { modbus_tcp: 127.0.0.1:5020, unit: 3 }\n\
-         inverter:\n  rated: 10kW\n  limit: { device: meter, register: 900, unit: \"%\" }\n\
+         inverter:\n  rated: 10kW\n  limit: { device: meter, register: 900 }\n\
          points:\n  grid: { device: meter, register: 0, type: i32, unit: W }\n  pv: { device: meter, register: 2, type: u32, unit: W }\n",
     );
     for i in 0..30 {
@@ -42,8 +42,7 @@ fn big_site() -> String {
 }
 
 fn bench_site(c: &mut Criterion, name: &str, yaml: &str) {
-    let loaded = spillway::config::load_str("bench.yaml", yaml)
-        .unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let loaded = spillway::config::load_str("bench.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
     let site = Arc::new(loaded.site);
     let mut engine = Engine::new(Arc::clone(&site));
     let mut snapshot = Snapshot::empty(&site);
@@ -72,11 +71,8 @@ fn bench_site(c: &mut Criterion, name: &str, yaml: &str) {
 
 fn engine_step(c: &mut Criterion) {
     bench_site(c, "engine_step_16_loads_32_signals", &big_site());
-    let example = std::fs::read_to_string(concat!(
-        env!("CARGO_MANIFEST_DIR"),
-        "/config/zero-export-house.yaml"
-    ))
-    .unwrap_or_default();
+    let example = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/config/zero-export-house.yaml"))
+        .unwrap_or_default();
     bench_site(c, "engine_step_zero_export_example", &example);
 }
 

@@ -161,11 +161,7 @@ pub fn render(path: &str, text: &str, diagnostics: &[Diagnostic], color: bool) -
             report = report.with_note(note);
         }
         // Writing into a Vec cannot fail; a rendering failure still leaves the summary line.
-        if report
-            .finish()
-            .write((path, Source::from(text)), &mut out)
-            .is_err()
-        {
+        if report.finish().write((path, Source::from(text)), &mut out).is_err() {
             out.extend_from_slice(render_short(path, text, std::slice::from_ref(d)).as_bytes());
         }
     }
@@ -197,16 +193,10 @@ pub fn render_short(path: &str, text: &str, diagnostics: &[Diagnostic]) -> Strin
 }
 
 /// The closest candidate to a misspelt name, if one is close enough to suggest.
-pub fn did_you_mean<'a>(
-    name: &str,
-    candidates: impl IntoIterator<Item = &'a str>,
-) -> Option<&'a str> {
+pub fn did_you_mean<'a>(name: &str, candidates: impl IntoIterator<Item = &'a str>) -> Option<&'a str> {
     let candidates: Vec<&'a str> = candidates.into_iter().collect();
     // A difference of case only ("kw" for "kW") is the likeliest slip of all.
-    if let Some(c) = candidates
-        .iter()
-        .find(|c| c.eq_ignore_ascii_case(name) && **c != name)
-    {
+    if let Some(c) = candidates.iter().find(|c| c.eq_ignore_ascii_case(name) && **c != name) {
         return Some(c);
     }
     candidates
@@ -243,10 +233,7 @@ mod tests {
 
     #[test]
     fn suggests_close_names_only() {
-        assert_eq!(
-            did_you_mean("tank_tmp", ["tank_temp", "pool"]),
-            Some("tank_temp")
-        );
+        assert_eq!(did_you_mean("tank_tmp", ["tank_temp", "pool"]), Some("tank_temp"));
         assert_eq!(did_you_mean("xyz", ["tank_temp", "pool"]), None);
     }
 }

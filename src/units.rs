@@ -259,21 +259,16 @@ pub fn parse_quantity(text: &str) -> Result<Quantity, UnitError> {
     let text = text.trim();
     let number_end = text
         .char_indices()
-        .find(|&(i, c)| {
-            !(c.is_ascii_digit() || c == '.' || c == '_' || ((c == '-' || c == '+') && i == 0))
-        })
+        .find(|&(i, c)| !(c.is_ascii_digit() || c == '.' || c == '_' || ((c == '-' || c == '+') && i == 0)))
         .map_or(text.len(), |(i, _)| i);
     let (number, rest) = text.split_at(number_end);
     let number: String = number.chars().filter(|&c| c != '_').collect();
-    let value: f64 = number
-        .parse()
-        .map_err(|_| UnitError::NotANumber(text.to_owned()))?;
+    let value: f64 = number.parse().map_err(|_| UnitError::NotANumber(text.to_owned()))?;
     let symbol = rest.trim();
     if symbol.is_empty() {
         return Ok(Quantity::new(value, Dimension::Scalar));
     }
-    let (dimension, factor) =
-        unit(symbol).ok_or_else(|| UnitError::UnknownUnit(symbol.to_owned()))?;
+    let (dimension, factor) = unit(symbol).ok_or_else(|| UnitError::UnknownUnit(symbol.to_owned()))?;
     Ok(Quantity::new(value * factor, dimension))
 }
 
@@ -439,17 +434,11 @@ impl Timestamp {
     }
     /// This instant moved forward by `d`.
     pub fn plus(self, d: Duration) -> Timestamp {
-        Timestamp(
-            self.0
-                .saturating_add(i64::try_from(d.as_millis()).unwrap_or(i64::MAX)),
-        )
+        Timestamp(self.0.saturating_add(i64::try_from(d.as_millis()).unwrap_or(i64::MAX)))
     }
     /// This instant moved back by `d`.
     pub fn minus(self, d: Duration) -> Timestamp {
-        Timestamp(
-            self.0
-                .saturating_sub(i64::try_from(d.as_millis()).unwrap_or(i64::MAX)),
-        )
+        Timestamp(self.0.saturating_sub(i64::try_from(d.as_millis()).unwrap_or(i64::MAX)))
     }
 }
 
@@ -471,11 +460,7 @@ mod tests {
     fn check(text: &str, value: f64, dimension: Dimension) {
         let q = parse_quantity(text).unwrap();
         assert_eq!(q.dimension, dimension, "{text}");
-        assert!(
-            (q.value - value).abs() < 1e-9,
-            "{text}: {} != {value}",
-            q.value
-        );
+        assert!((q.value - value).abs() < 1e-9, "{text}: {} != {value}", q.value);
     }
 
     #[test]
@@ -497,14 +482,8 @@ mod tests {
 
     #[test]
     fn rejects_unknown_units_and_non_numbers() {
-        assert_eq!(
-            parse_quantity("3 kw"),
-            Err(UnitError::UnknownUnit("kw".into()))
-        );
-        assert!(matches!(
-            parse_quantity("kW"),
-            Err(UnitError::NotANumber(_))
-        ));
+        assert_eq!(parse_quantity("3 kw"), Err(UnitError::UnknownUnit("kw".into())));
+        assert!(matches!(parse_quantity("kW"), Err(UnitError::NotANumber(_))));
     }
 
     #[test]
@@ -520,9 +499,6 @@ mod tests {
 
     #[test]
     fn power_over_time_is_energy() {
-        assert_eq!(
-            Power(3000.0).over(Duration::from_secs(1800)),
-            Energy(1500.0)
-        );
+        assert_eq!(Power(3000.0).over(Duration::from_secs(1800)), Energy(1500.0));
     }
 }

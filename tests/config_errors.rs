@@ -78,8 +78,7 @@ fn a_stop_rule_that_holds_whenever_the_start_rule_does_is_an_error() {
 fn every_error_of_a_file_is_reported_in_one_run() {
     let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/test_data/broken");
     let text = std::fs::read_to_string(dir.join("wrong-units.yaml")).unwrap();
-    let Err(spillway::config::LoadError::Invalid { diagnostics, .. }) =
-        spillway::config::load_str("x.yaml", &text)
+    let Err(spillway::config::LoadError::Invalid { diagnostics, .. }) = spillway::config::load_str("x.yaml", &text)
     else {
         panic!("expected errors")
     };

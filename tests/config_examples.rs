@@ -12,12 +12,7 @@ fn every_example_site_loads() {
                 Ok(loaded) => assert!(
                     loaded.warnings.is_empty(),
                     "{}",
-                    spillway::diag::render(
-                        &loaded.source.path,
-                        &loaded.source.text,
-                        &loaded.warnings,
-                        false
-                    )
+                    spillway::diag::render(&loaded.source.path, &loaded.source.text, &loaded.warnings, false)
                 ),
                 Err(e) => panic!("{}", e.render(false)),
             }

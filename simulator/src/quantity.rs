@@ -91,11 +91,7 @@ pub fn parse(text: &str, kind: Kind) -> Result<f64, String> {
     let split = text
         .char_indices()
         .find(|&(i, c)| {
-            !(c.is_ascii_digit()
-                || c == '.'
-                || c == '_'
-                || c == 'e' && i > 0
-                || ((c == '-' || c == '+') && i == 0))
+            !(c.is_ascii_digit() || c == '.' || c == '_' || c == 'e' && i > 0 || ((c == '-' || c == '+') && i == 0))
         })
         .map_or(text.len(), |(i, _)| i);
     let (number, symbol) = text.split_at(split);
@@ -109,10 +105,7 @@ pub fn parse(text: &str, kind: Kind) -> Result<f64, String> {
     }
     match TABLE.iter().find(|(s, _, _)| *s == symbol) {
         Some((_, k, factor)) if *k == kind => Ok(value * factor),
-        Some(_) => Err(format!(
-            "`{text}` has the wrong unit: expected {}",
-            kind.describe()
-        )),
+        Some(_) => Err(format!("`{text}` has the wrong unit: expected {}", kind.describe())),
         None => Err(format!(
             "unknown unit `{symbol}` in `{text}`: expected {}",
             kind.describe()

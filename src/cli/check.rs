@@ -23,11 +23,7 @@ pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
             if !quiet {
                 print!("{}", config::describe::describe(&loaded.site));
             }
-            println!(
-                "{}: ok ({} warning(s))",
-                loaded.source.path,
-                loaded.warnings.len()
-            );
+            println!("{}: ok ({} warning(s))", loaded.source.path, loaded.warnings.len());
             Ok(ExitCode::SUCCESS)
         }
         Err(e @ LoadError::Invalid { .. }) => {

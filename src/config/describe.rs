@@ -24,11 +24,7 @@ pub fn describe(site: &Site) -> String {
         }
         Connection::OffGrid(og) => format!(
             "off-grid: float at {} (−{} to leave), full at {}, battery takes up to {} before dump loads, {} assumed spare in float",
-            og.float_voltage,
-            og.float_hysteresis,
-            og.full_soc,
-            og.charge_acceptance,
-            og.float_headroom
+            og.float_voltage, og.float_hysteresis, og.full_soc, og.charge_acceptance, og.float_headroom
         ),
     };
     let _ = writeln!(
@@ -76,9 +72,7 @@ pub fn describe(site: &Site) -> String {
     for d in &site.devices {
         let link = match &d.link {
             Link::ModbusTcp { host, port, unit } => format!("Modbus TCP {host}:{port} unit {unit}"),
-            Link::ModbusRtu {
-                path, baud, unit, ..
-            } => format!("Modbus RTU {path} {baud} Bd unit {unit}"),
+            Link::ModbusRtu { path, baud, unit, .. } => format!("Modbus RTU {path} {baud} Bd unit {unit}"),
             Link::Mqtt => "MQTT".to_owned(),
         };
         let _ = writeln!(
@@ -156,11 +150,7 @@ pub fn describe(site: &Site) -> String {
             l.priority,
             kind_text(site, &l.kind)
         );
-        for (word, rule) in [
-            ("start", &l.start),
-            ("stop", &l.stop),
-            ("inhibit", &l.inhibit),
-        ] {
+        for (word, rule) in [("start", &l.start), ("stop", &l.stop), ("inhibit", &l.inhibit)] {
             if let Some(r) = rule {
                 let default = if r.origin.ends_with("(default)") {
                     "   (default)"
@@ -188,13 +178,7 @@ pub fn describe(site: &Site) -> String {
                 SafeState::Hold => "hold",
             }
         ));
-        if matches!(
-            site.connection,
-            Connection::Grid {
-                backup: Some(_),
-                ..
-            }
-        ) {
+        if matches!(site.connection, Connection::Grid { backup: Some(_), .. }) {
             limits.push(if l.shed_on_outage {
                 "shed in an outage".to_owned()
             } else {
@@ -206,15 +190,9 @@ pub fn describe(site: &Site) -> String {
             let _ = writeln!(out, "     metered by {}", site.points[p.0].name);
         }
         for ob in &l.obligations {
-            let window = ob
-                .grid_window()
-                .map_or(" (from surplus only)".to_owned(), |w| {
-                    format!(
-                        " (grid allowed {}–{})",
-                        w.start.format("%H:%M"),
-                        w.end.format("%H:%M")
-                    )
-                });
+            let window = ob.grid_window().map_or(" (from surplus only)".to_owned(), |w| {
+                format!(" (grid allowed {}–{})", w.start.format("%H:%M"), w.end.format("%H:%M"))
+            });
             let temp = match (ob, l.temperature) {
                 (Obligation::RunDaily { .. }, _) | (_, None) => String::new(),
                 (_, Some(t)) => format!(" on {}", site.points[t.0].name),
@@ -233,11 +211,7 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
         LoadKind::Stepped { stages, command } => {
             let stages: Vec<String> = stages.iter().map(ToString::to_string).collect();
             let how = match command {
-                StageCommand::Relays(w) => w
-                    .iter()
-                    .map(|w| write_text(site, w))
-                    .collect::<Vec<_>>()
-                    .join(" / "),
+                StageCommand::Relays(w) => w.iter().map(|w| write_text(site, w)).collect::<Vec<_>>().join(" / "),
                 StageCommand::Register(w) => format!("stage number to {}", write_text(site, w)),
             };
             format!("stepped {}, {how}", stages.join(" → "))

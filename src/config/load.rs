@@ -40,6 +40,8 @@ pub struct Loaded {
     pub source: SourceFile,
     /// The parsed tree.
     pub tree: Node,
+    /// The tariff, if the file has one (offline runs price with it).
+    pub tariff: Option<super::tariff::Tariff>,
 }
 
 /// Why a site file could not be loaded.
@@ -69,15 +71,13 @@ impl LoadError {
     pub fn render(&self, color: bool) -> String {
         match self {
             LoadError::Io { .. } => format!("error: {self}\n"),
-            LoadError::Invalid { file, diagnostics } => {
-                diag::render(&file.path, &file.text, diagnostics, color)
-            }
+            LoadError::Invalid { file, diagnostics } => diag::render(&file.path, &file.text, diagnostics, color),
         }
     }
 }
 
 /// Top-level keys other layers own; the loader accepts them and leaves them alone.
-pub const OTHER_SECTIONS: &[&str] = &["plant", "tariff", "expect", "simulation"];
+pub const OTHER_SECTIONS: &[&str] = &["plant", "expect", "simulation"];
 
 /// Reads and checks a site file.
 pub fn load_file(path: &Path) -> Result<Loaded, LoadError> {
@@ -104,11 +104,13 @@ pub fn load_str(path: &str, text: &str) -> Result<Loaded, LoadError> {
         }
     };
     let mut diags = Diagnostics::default();
-    let site = Builder {
+    let mut builder = Builder {
         text,
         diags: &mut diags,
-    }
-    .site(&tree);
+        tariff: None,
+    };
+    let site = builder.site(&tree);
+    let tariff = builder.tariff.take();
     // File order reads best: a user fixes top to bottom.
     diags.list.sort_by_key(|d| d.primary.span.start);
     match site {
@@ -117,6 +119,7 @@ pub fn load_str(path: &str, text: &str) -> Result<Loaded, LoadError> {
             warnings: diags.list,
             source: file,
             tree,
+            tariff,
         }),
         _ => {
             if !diags.has_errors() {
@@ -133,6 +136,7 @@ pub fn load_str(path: &str, text: &str) -> Result<Loaded, LoadError> {
 struct Builder<'t, 'd> {
     text: &'t str,
     diags: &'d mut Diagnostics,
+    tariff: Option<super::tariff::Tariff>,
 }
 
 /// Raw facts about a point gathered before the model is assembled.
@@ -174,17 +178,16 @@ impl Builder<'_, '_> {
         let inverter_node = top.get("inverter");
         let loads_node = top.get("loads");
         let mqtt_node = top.get("mqtt");
+        let tariff_node = top.get("tariff");
         top.finish(self.diags);
+        self.tariff = tariff_node.and_then(|n| super::tariff::read(n, self.diags));
 
         let header = site_node.and_then(|n| self.site_header(n));
-        let mqtt = mqtt_node
-            .and_then(|n| self.mqtt(n, header.as_ref().map_or("site", |h| h.name.as_str())));
+        let mqtt = mqtt_node.and_then(|n| self.mqtt(n, header.as_ref().map_or("site", |h| h.name.as_str())));
         let devices = devices_node
             .map(|n| self.devices(n, mqtt.is_some()))
             .unwrap_or_default();
-        let stale_default = header
-            .as_ref()
-            .map_or(DEFAULT_STALE_AFTER, |h| h.failsafe.stale_after);
+        let stale_default = header.as_ref().map_or(DEFAULT_STALE_AFTER, |h| h.failsafe.stale_after);
         let (points, point_info) = points_node
             .map(|n| self.points(n, &devices, stale_default))
             .unwrap_or_default();
@@ -208,19 +211,12 @@ impl Builder<'_, '_> {
         let mut load_names: Vec<(String, Range<usize>, u32, usize)> = Vec::new();
         for (i, node) in load_nodes.iter().enumerate() {
             let (name, span, priority) = self.load_header(node, i);
-            if let Some((_, first, _, _)) = load_names
-                .iter()
-                .find(|(n, _, _, _)| *n == name && !name.is_empty())
-            {
+            if let Some((_, first, _, _)) = load_names.iter().find(|(n, _, _, _)| *n == name && !name.is_empty()) {
                 self.diags.push(
-                    Diagnostic::error(
-                        "C0201",
-                        format!("two loads are called \"{name}\""),
-                        span.clone(),
-                    )
-                    .with_label("second load with this name")
-                    .with_secondary(first.clone(), "first one here")
-                    .with_note("load names must be unique: rules refer to loads by name"),
+                    Diagnostic::error("C0201", format!("two loads are called \"{name}\""), span.clone())
+                        .with_label("second load with this name")
+                        .with_secondary(first.clone(), "first one here")
+                        .with_note("load names must be unique: rules refer to loads by name"),
                 );
             }
             if points.iter().any(|p| p.name == name) {
@@ -291,9 +287,7 @@ impl Builder<'_, '_> {
             .require("name", self.diags)
             .and_then(|n| values::text(n, "the site name", self.diags))
             .map(str::to_owned);
-        let timezone = m
-            .require("timezone", self.diags)
-            .and_then(|n| self.timezone(n));
+        let timezone = m.require("timezone", self.diags).and_then(|n| self.timezone(n));
         let grid_kind = m
             .get("grid")
             .map(|n| values::choice(n, &["tied", "backup", "off"], "`grid`", self.diags))
@@ -303,8 +297,8 @@ impl Builder<'_, '_> {
             .map(|n| self.export_policy(n))
             .unwrap_or(Some(ExportPolicy::Allowed));
         let import_target_node = m.get("import_target");
-        let import_target = import_target_node
-            .map(|n| values::quantity(n, Dimension::Power, "the import target", self.diags));
+        let import_target =
+            import_target_node.map(|n| values::quantity(n, Dimension::Power, "the import target", self.diags));
         let tick = m
             .get("tick")
             .map(|n| values::duration(n, "the engine tick", self.diags))
@@ -394,14 +388,9 @@ impl Builder<'_, '_> {
         match Tz::from_str(text) {
             Ok(tz) => Some(tz),
             Err(_) => {
-                let mut d = Diagnostic::error(
-                    "C0206",
-                    format!("unknown time zone \"{text}\""),
-                    node.span.clone(),
-                )
-                .with_label("expected an IANA zone such as Europe/Lisbon");
-                if let Some(s) = did_you_mean(text, chrono_tz::TZ_VARIANTS.iter().map(|t| t.name()))
-                {
+                let mut d = Diagnostic::error("C0206", format!("unknown time zone \"{text}\""), node.span.clone())
+                    .with_label("expected an IANA zone such as Europe/Lisbon");
+                if let Some(s) = did_you_mean(text, chrono_tz::TZ_VARIANTS.iter().map(|t| t.name())) {
                     d = d.with_note(format!("did you mean \"{s}\"?"));
                 }
                 self.diags.push(d);
@@ -415,8 +404,7 @@ impl Builder<'_, '_> {
             Value::Str(s) if s == "allowed" => Some(ExportPolicy::Allowed),
             Value::Str(s) if s == "forbidden" => Some(ExportPolicy::Forbidden),
             Value::Str(s) if units::parse_quantity(s).is_ok() => {
-                let limit =
-                    values::quantity(node, Dimension::Power, "the export limit", self.diags)?;
+                let limit = values::quantity(node, Dimension::Power, "the export limit", self.diags)?;
                 if limit < 0.0 {
                     self.diags.error(
                         "C0207",
@@ -468,24 +456,15 @@ impl Builder<'_, '_> {
                 .is_some();
         }
         if let Some(n) = m.get("release_rate") {
-            ok &= values::positive(
-                n,
-                Dimension::Power,
-                "the release rate (per second)",
-                self.diags,
-            )
-            .map(|v| g.release_rate = Power(v))
-            .is_some();
+            ok &= values::positive(n, Dimension::Power, "the release rate (per second)", self.diags)
+                .map(|v| g.release_rate = Power(v))
+                .is_some();
         }
         if let Some(n) = m.get("kp") {
-            ok &= values::number(n, "kp", self.diags)
-                .map(|v| g.kp = v)
-                .is_some();
+            ok &= values::number(n, "kp", self.diags).map(|v| g.kp = v).is_some();
         }
         if let Some(n) = m.get("ki") {
-            ok &= values::number(n, "ki", self.diags)
-                .map(|v| g.ki = v)
-                .is_some();
+            ok &= values::number(n, "ki", self.diags).map(|v| g.ki = v).is_some();
         }
         m.finish(self.diags);
         ok.then_some(g)
@@ -564,9 +543,9 @@ impl Builder<'_, '_> {
 
     fn mqtt(&mut self, node: &Node, site_name: &str) -> Option<MqttSettings> {
         let mut m = MapReader::new(node, "the `mqtt` section", self.diags)?;
-        let broker = m.require("broker", self.diags).and_then(|n| {
-            values::text(n, "the broker address", self.diags).map(|t| (t, n.span.clone()))
-        });
+        let broker = m
+            .require("broker", self.diags)
+            .and_then(|n| values::text(n, "the broker address", self.diags).map(|t| (t, n.span.clone())));
         let client_id = m
             .get("client_id")
             .and_then(|n| values::text(n, "the client id", self.diags))
@@ -607,16 +586,11 @@ impl Builder<'_, '_> {
         let topic_prefix = m
             .get("topic_prefix")
             .and_then(|n| values::text(n, "the topic prefix", self.diags))
-            .map_or_else(
-                || format!("spillway/{slug}"),
-                |s| s.trim_end_matches('/').to_owned(),
-            );
+            .map_or_else(|| format!("spillway/{slug}"), |s| s.trim_end_matches('/').to_owned());
         let qos = m.get("qos").map_or(Some(Qos::AtLeastOnce), |n| self.qos(n));
-        let keep_alive = m
-            .get("keep_alive")
-            .map_or(Some(Duration::from_secs(30)), |n| {
-                values::duration(n, "the keep-alive", self.diags)
-            });
+        let keep_alive = m.get("keep_alive").map_or(Some(Duration::from_secs(30)), |n| {
+            values::duration(n, "the keep-alive", self.diags)
+        });
         m.finish(self.diags);
         let (broker, broker_span) = broker?;
         let (host, port) = match split_host_port(broker, 1883) {
@@ -779,9 +753,9 @@ impl Builder<'_, '_> {
         let parity = m.get("parity").map_or(Some("none"), |n| {
             values::choice(n, &["none", "even", "odd"], "the parity", self.diags)
         });
-        let stop_bits = m.get("stop_bits").map_or(Some(1), |n| {
-            values::integer(n, 1, 2, "the stop bits", self.diags)
-        });
+        let stop_bits = m
+            .get("stop_bits")
+            .map_or(Some(1), |n| values::integer(n, 1, 2, "the stop bits", self.diags));
         m.finish(self.diags);
         Some(Link::ModbusRtu {
             path: path?,
@@ -796,12 +770,7 @@ impl Builder<'_, '_> {
         })
     }
 
-    fn points(
-        &mut self,
-        node: &Node,
-        devices: &[Device],
-        stale_default: Duration,
-    ) -> (Vec<Point>, Vec<PointInfo>) {
+    fn points(&mut self, node: &Node, devices: &[Device], stale_default: Duration) -> (Vec<Point>, Vec<PointInfo>) {
         let mut points = Vec::new();
         let mut info = Vec::new();
         let Some(m) = MapReader::new(node, "the `points` section", self.diags) else {
@@ -817,16 +786,10 @@ impl Builder<'_, '_> {
                 );
                 continue;
             }
-            if SITE_SIGNALS.iter().any(|(n, _, _)| *n == key.name)
-                || key.name == "clock"
-                || key.name == "weekday"
-            {
+            if SITE_SIGNALS.iter().any(|(n, _, _)| *n == key.name) || key.name == "clock" || key.name == "weekday" {
                 self.diags.error(
                     "C0214",
-                    format!(
-                        "\"{}\" is computed by Spillway and cannot be a point",
-                        key.name
-                    ),
+                    format!("\"{}\" is computed by Spillway and cannot be a point", key.name),
                     key.span.clone(),
                     "choose another name",
                 );
@@ -842,13 +805,7 @@ impl Builder<'_, '_> {
         (points, info)
     }
 
-    fn point(
-        &mut self,
-        name: &str,
-        node: &Node,
-        devices: &[Device],
-        stale_default: Duration,
-    ) -> Option<Point> {
+    fn point(&mut self, name: &str, node: &Node, devices: &[Device], stale_default: Duration) -> Option<Point> {
         let what = format!("point \"{name}\"");
         let mut m = MapReader::new(node, &what, self.diags)?;
         let device_node = m.require("device", self.diags);
@@ -876,8 +833,16 @@ impl Builder<'_, '_> {
             .count();
         if sources != 1 {
             self.diags.push(
-                Diagnostic::error("C0215", format!("{what} needs exactly one of `register`, `coil`, `discrete`, `sunspec` or `topic`"), span.clone())
-                    .with_label(if sources == 0 { "where is it read from?" } else { "more than one source given" }),
+                Diagnostic::error(
+                    "C0215",
+                    format!("{what} needs exactly one of `register`, `coil`, `discrete`, `sunspec` or `topic`"),
+                    span.clone(),
+                )
+                .with_label(if sources == 0 {
+                    "where is it read from?"
+                } else {
+                    "more than one source given"
+                }),
             );
             return None;
         }
@@ -903,23 +868,16 @@ impl Builder<'_, '_> {
         // The unit decides the dimension; bits are booleans.
         let bit = coil.is_some() || discrete.is_some();
         let (dimension, unit_factor, boolean) = match unit_node {
-            Some(n) if matches!(&n.value, Value::Str(s) if s == "bool") => {
-                (Dimension::Scalar, 1.0, true)
-            }
+            Some(n) if matches!(&n.value, Value::Str(s) if s == "bool") => (Dimension::Scalar, 1.0, true),
             Some(n) => {
                 let text = values::word(n, "the unit", self.diags)?;
                 match units::unit(text.trim()) {
                     Some((d, f)) => (d, f, false),
-                    None if text.trim() == "1" || text.trim() == "none" => {
-                        (Dimension::Scalar, 1.0, false)
-                    }
+                    None if text.trim() == "1" || text.trim() == "none" => (Dimension::Scalar, 1.0, false),
                     None => {
-                        let mut d = Diagnostic::error(
-                            "C0301",
-                            format!("unknown unit \"{text}\" for {what}"),
-                            n.span.clone(),
-                        )
-                        .with_label("expected W, kW, Wh, kWh, °C, %, V, A, s, bool or none");
+                        let mut d =
+                            Diagnostic::error("C0301", format!("unknown unit \"{text}\" for {what}"), n.span.clone())
+                                .with_label("expected W, kW, Wh, kWh, °C, %, V, A, s, bool or none");
                         if let Some(s) = did_you_mean(&text, units::unit_symbols()) {
                             d = d.with_note(format!("did you mean \"{s}\"?"));
                         }
@@ -961,13 +919,9 @@ impl Builder<'_, '_> {
                     let ptr = values::text(j, "the JSON pointer", self.diags)?;
                     if !(ptr.is_empty() || ptr.starts_with('/')) {
                         self.diags.push(
-                            Diagnostic::error(
-                                "C0219",
-                                format!("\"{ptr}\" is not a JSON pointer"),
-                                j.span.clone(),
-                            )
-                            .with_label("a JSON pointer starts with /")
-                            .with_note("e.g. `/ENERGY/Power` for {\"ENERGY\": {\"Power\": 512}}"),
+                            Diagnostic::error("C0219", format!("\"{ptr}\" is not a JSON pointer"), j.span.clone())
+                                .with_label("a JSON pointer starts with /")
+                                .with_note("e.g. `/ENERGY/Power` for {\"ENERGY\": {\"Power\": 512}}"),
                         );
                         return None;
                     }
@@ -988,10 +942,7 @@ impl Builder<'_, '_> {
             if !device.sunspec {
                 self.diags.error(
                     "C0220",
-                    format!(
-                        "{what}: device \"{}\" is not marked `sunspec: true`",
-                        device.name
-                    ),
+                    format!("{what}: device \"{}\" is not marked `sunspec: true`", device.name),
                     n.span.clone(),
                     "SunSpec points need a SunSpec device",
                 );
@@ -1021,12 +972,7 @@ impl Builder<'_, '_> {
                 (Table::DiscreteInput, n)
             } else {
                 let table = match table {
-                    Some(t) => match values::choice(
-                        t,
-                        &["holding", "input"],
-                        "the register table",
-                        self.diags,
-                    )? {
+                    Some(t) => match values::choice(t, &["holding", "input"], "the register table", self.diags)? {
                         "input" => Table::InputRegister,
                         _ => Table::HoldingRegister,
                     },
@@ -1034,8 +980,7 @@ impl Builder<'_, '_> {
                 };
                 (table, register?)
             };
-            let address =
-                values::integer(address_node, 0, 65535, "the address", self.diags)? as u16;
+            let address = values::integer(address_node, 0, 65535, "the address", self.diags)? as u16;
             let value_type = match type_node {
                 Some(t) if bit => {
                     self.diags.error(
@@ -1051,12 +996,7 @@ impl Builder<'_, '_> {
                 None => ValueType::U16,
             };
             let word_order = match order_node {
-                Some(o) => match values::choice(
-                    o,
-                    &["high_first", "low_first"],
-                    "the word order",
-                    self.diags,
-                )? {
+                Some(o) => match values::choice(o, &["high_first", "low_first"], "the word order", self.diags)? {
                     "low_first" => WordOrder::LowFirst,
                     _ => WordOrder::HighFirst,
                 },
@@ -1104,9 +1044,7 @@ impl Builder<'_, '_> {
                     span,
                 )
                 .with_label("stale_after must be longer than the poll period")
-                .with_note(
-                    "allow at least one missed poll: stale_after ≥ 2 × poll is common practice",
-                ),
+                .with_note("allow at least one missed poll: stale_after ≥ 2 × poll is common practice"),
             );
             return None;
         }
@@ -1142,16 +1080,12 @@ impl Builder<'_, '_> {
 
     fn scale(&mut self, node: &Node) -> Option<Scale> {
         match &node.value {
-            Value::Int(_) | Value::Float(_) => Some(Scale::Factor(values::number(
-                node,
-                "the scale",
-                self.diags,
-            )?)),
+            Value::Int(_) | Value::Float(_) => Some(Scale::Factor(values::number(node, "the scale", self.diags)?)),
             Value::Map(_) => {
                 let mut m = MapReader::new(node, "the scale", self.diags)?;
-                let address = m.require("register", self.diags).and_then(|n| {
-                    values::integer(n, 0, 65535, "the scale-factor register", self.diags)
-                });
+                let address = m
+                    .require("register", self.diags)
+                    .and_then(|n| values::integer(n, 0, 65535, "the scale-factor register", self.diags));
                 let table = m.get("table").map_or(Some("holding"), |n| {
                     values::choice(n, &["holding", "input"], "the register table", self.diags)
                 });
@@ -1177,21 +1111,13 @@ impl Builder<'_, '_> {
         }
     }
 
-    fn device_ref<'a>(
-        &mut self,
-        node: &Node,
-        devices: &'a [Device],
-    ) -> Option<(DeviceId, &'a Device)> {
+    fn device_ref<'a>(&mut self, node: &Node, devices: &'a [Device]) -> Option<(DeviceId, &'a Device)> {
         let name = values::text(node, "the device", self.diags)?;
         match devices.iter().position(|d| d.name == name) {
             Some(i) => Some((DeviceId(i), &devices[i])),
             None => {
-                let mut d = Diagnostic::error(
-                    "C0226",
-                    format!("no device called \"{name}\""),
-                    node.span.clone(),
-                )
-                .with_label("unknown device");
+                let mut d = Diagnostic::error("C0226", format!("no device called \"{name}\""), node.span.clone())
+                    .with_label("unknown device");
                 if let Some(s) = did_you_mean(name, devices.iter().map(|d| d.name.as_str())) {
                     d = d.with_note(format!("did you mean \"{s}\"?"));
                 } else if devices.is_empty() {
@@ -1210,9 +1136,7 @@ impl Builder<'_, '_> {
                 continue;
             };
             let expected_bool = p.name == "grid_available";
-            if (expected_bool && !p.boolean)
-                || (!expected_bool && (p.dimension != *dim || p.boolean))
-            {
+            if (expected_bool && !p.boolean) || (!expected_bool && (p.dimension != *dim || p.boolean)) {
                 self.diags.error(
                     "C0227",
                     format!(
@@ -1253,9 +1177,7 @@ impl Builder<'_, '_> {
         let priority = entries.iter().find(|(k, _)| k.name == "priority");
         let (name, span) = match name {
             Some((_, n)) => (
-                values::name(n, "the load name", self.diags)
-                    .unwrap_or("")
-                    .to_owned(),
+                values::name(n, "the load name", self.diags).unwrap_or("").to_owned(),
                 n.span.clone(),
             ),
             None => {
@@ -1274,12 +1196,7 @@ impl Builder<'_, '_> {
         (name, span, priority)
     }
 
-    fn load(
-        &mut self,
-        node: &Node,
-        header: &(String, Range<usize>, u32, usize),
-        ctx: &LoadCtx<'_>,
-    ) -> Option<Load> {
+    fn load(&mut self, node: &Node, header: &(String, Range<usize>, u32, usize), ctx: &LoadCtx<'_>) -> Option<Load> {
         let (name, name_span, priority, _) = header;
         if name.is_empty() {
             return None;
@@ -1299,22 +1216,12 @@ impl Builder<'_, '_> {
             Some(k) => self.load_kind(k, &mut m, &what, ctx),
             None => None,
         };
-        let power = m.get("power").and_then(|n| {
-            self.point_ref(
-                n,
-                ctx.points,
-                Some(Dimension::Power),
-                "the load's power meter",
-            )
-        });
-        let temperature = m.get("temperature").and_then(|n| {
-            self.point_ref(
-                n,
-                ctx.points,
-                Some(Dimension::Temperature),
-                "the load's temperature",
-            )
-        });
+        let power = m
+            .get("power")
+            .and_then(|n| self.point_ref(n, ctx.points, Some(Dimension::Power), "the load's power meter"));
+        let temperature = m
+            .get("temperature")
+            .and_then(|n| self.point_ref(n, ctx.points, Some(Dimension::Temperature), "the load's temperature"));
         let start_node = m.get("start");
         let start = start_node.and_then(|n| self.rule(n, ctx.scope, &format!("{name}.start")));
         let stop_node = m.get("stop");
@@ -1331,20 +1238,18 @@ impl Builder<'_, '_> {
             values::duration(n, "the minimum off-time", self.diags)
         });
         let starts_node = m.get("max_starts_per_hour");
-        let max_starts = starts_node.map(|n| {
-            values::integer(n, 1, 3600, "the starts-per-hour cap", self.diags).map(|v| v as u32)
-        });
+        let max_starts =
+            starts_node.map(|n| values::integer(n, 1, 3600, "the starts-per-hour cap", self.diags).map(|v| v as u32));
         let safe_state = m.get("safe_state").map_or(Some(SafeState::Off), |n| {
-            values::choice(n, &["off", "on", "hold"], "the safe state", self.diags).map(|s| match s
-            {
+            values::choice(n, &["off", "on", "hold"], "the safe state", self.diags).map(|s| match s {
                 "on" => SafeState::On,
                 "hold" => SafeState::Hold,
                 _ => SafeState::Off,
             })
         });
-        let shed = m.get("shed_on_outage").map_or(Some(true), |n| {
-            values::boolean(n, "`shed_on_outage`", self.diags)
-        });
+        let shed = m
+            .get("shed_on_outage")
+            .map_or(Some(true), |n| values::boolean(n, "`shed_on_outage`", self.diags));
         let obligations_node = m.get("obligations");
         let load_span = m.span();
         m.finish(self.diags);
@@ -1354,16 +1259,12 @@ impl Builder<'_, '_> {
             (Some(k), no_start, no_stop) if no_start || no_stop => {
                 let (s, t) = default_rules(k);
                 let start = if no_start {
-                    s.and_then(|text| {
-                        self.default_rule(&text, ctx.scope, &format!("{name}.start (default)"))
-                    })
+                    s.and_then(|text| self.default_rule(&text, ctx.scope, &format!("{name}.start (default)")))
                 } else {
                     start
                 };
                 let stop = if no_stop {
-                    t.and_then(|text| {
-                        self.default_rule(&text, ctx.scope, &format!("{name}.stop (default)"))
-                    })
+                    t.and_then(|text| self.default_rule(&text, ctx.scope, &format!("{name}.stop (default)")))
                 } else {
                     stop
                 };
@@ -1382,9 +1283,18 @@ impl Builder<'_, '_> {
                 && let Some(n) = node
             {
                 self.diags.push(
-                    Diagnostic::error("C0228", format!("{what}: a minimum {word}-time of {} is longer than a day", units::format_duration(value)), n.span.clone())
-                        .with_label("longer than 24 h")
-                        .with_note("the load could switch at most once a day; this is almost certainly a unit slip (min vs h)"),
+                    Diagnostic::error(
+                        "C0228",
+                        format!(
+                            "{what}: a minimum {word}-time of {} is longer than a day",
+                            units::format_duration(value)
+                        ),
+                        n.span.clone(),
+                    )
+                    .with_label("longer than 24 h")
+                    .with_note(
+                        "the load could switch at most once a day; this is almost certainly a unit slip (min vs h)",
+                    ),
                 );
             }
         }
@@ -1463,18 +1373,12 @@ impl Builder<'_, '_> {
         })
     }
 
-    fn load_kind(
-        &mut self,
-        kind: &str,
-        m: &mut MapReader<'_>,
-        what: &str,
-        ctx: &LoadCtx<'_>,
-    ) -> Option<LoadKind> {
+    fn load_kind(&mut self, kind: &str, m: &mut MapReader<'_>, what: &str, ctx: &LoadCtx<'_>) -> Option<LoadKind> {
         match kind {
             "switched" => {
-                let rated = m.require("rated", self.diags).and_then(|n| {
-                    values::positive(n, Dimension::Power, "the rated power", self.diags)
-                });
+                let rated = m
+                    .require("rated", self.diags)
+                    .and_then(|n| values::positive(n, Dimension::Power, "the rated power", self.diags));
                 let switch = m
                     .require("switch", self.diags)
                     .and_then(|n| self.write(n, ctx.devices, WriteKind::Switch));
@@ -1489,17 +1393,18 @@ impl Builder<'_, '_> {
                 let command = match (m.get("switch"), m.get("stage_register")) {
                     (Some(n), None) => {
                         let Value::Seq(items) = &n.value else {
-                            self.diags.error("C0232", format!("{what}: `switch` of a stepped load is a list, one relay per stage"), n.span.clone(), "expected a list");
+                            self.diags.error(
+                                "C0232",
+                                format!("{what}: `switch` of a stepped load is a list, one relay per stage"),
+                                n.span.clone(),
+                                "expected a list",
+                            );
                             return None;
                         };
                         if items.len() != stages.len() {
                             self.diags.error(
                                 "C0232",
-                                format!(
-                                    "{what} has {} stages but {} relays",
-                                    stages.len(),
-                                    items.len()
-                                ),
+                                format!("{what} has {} stages but {} relays", stages.len(), items.len()),
                                 n.span.clone(),
                                 "give one relay per stage",
                             );
@@ -1511,20 +1416,23 @@ impl Builder<'_, '_> {
                             .collect();
                         StageCommand::Relays(writes.into_iter().collect::<Option<Vec<_>>>()?)
                     }
-                    (None, Some(n)) => {
-                        StageCommand::Register(self.write(n, ctx.devices, WriteKind::Value)?)
-                    }
+                    (None, Some(n)) => StageCommand::Register(self.write(n, ctx.devices, WriteKind::Value)?),
                     _ => {
-                        self.diags.error("C0232", format!("{what} needs either `switch` (a relay per stage) or `stage_register`"), m.span(), "how are the stages commanded?");
+                        self.diags.error(
+                            "C0232",
+                            format!("{what} needs either `switch` (a relay per stage) or `stage_register`"),
+                            m.span(),
+                            "how are the stages commanded?",
+                        );
                         return None;
                     }
                 };
                 Some(LoadKind::Stepped { stages, command })
             }
             "proportional" => {
-                let rated = m.require("rated", self.diags).and_then(|n| {
-                    values::positive(n, Dimension::Power, "the rated power", self.diags)
-                });
+                let rated = m
+                    .require("rated", self.diags)
+                    .and_then(|n| values::positive(n, Dimension::Power, "the rated power", self.diags));
                 let setpoint = m
                     .require("setpoint", self.diags)
                     .and_then(|n| self.write(n, ctx.devices, WriteKind::Value));
@@ -1563,12 +1471,11 @@ impl Builder<'_, '_> {
                     values::integer(n, 1, 3, "the number of phases", self.diags)
                 });
                 let min_node = m.require("min_current", self.diags);
-                let min = min_node.and_then(|n| {
-                    values::positive(n, Dimension::Current, "the minimum current", self.diags)
-                });
-                let max = m.require("max_current", self.diags).and_then(|n| {
-                    values::positive(n, Dimension::Current, "the maximum current", self.diags)
-                });
+                let min =
+                    min_node.and_then(|n| values::positive(n, Dimension::Current, "the minimum current", self.diags));
+                let max = m
+                    .require("max_current", self.diags)
+                    .and_then(|n| values::positive(n, Dimension::Current, "the maximum current", self.diags));
                 let step = m.get("step").map_or(Some(1.0), |n| {
                     values::positive(n, Dimension::Current, "the current step", self.diags)
                 });
@@ -1602,13 +1509,11 @@ impl Builder<'_, '_> {
                 })
             }
             _ => {
-                let max_charge = m.require("max_charge", self.diags).and_then(|n| {
-                    values::positive(n, Dimension::Power, "the maximum charge power", self.diags)
-                });
+                let max_charge = m
+                    .require("max_charge", self.diags)
+                    .and_then(|n| values::positive(n, Dimension::Power, "the maximum charge power", self.diags));
                 let soc = match m.get("soc") {
-                    Some(n) => {
-                        self.point_ref(n, ctx.points, Some(Dimension::Ratio), "the state of charge")
-                    }
+                    Some(n) => self.point_ref(n, ctx.points, Some(Dimension::Ratio), "the state of charge"),
                     None => match ctx.roles.battery_soc {
                         Some(id) => Some(id),
                         None => {
@@ -1624,21 +1529,11 @@ impl Builder<'_, '_> {
                 };
                 let soc_max_node = m.get("soc_max");
                 let soc_max = soc_max_node.map_or(Some(100.0), |n| {
-                    values::quantity(
-                        n,
-                        Dimension::Ratio,
-                        "the maximum state of charge",
-                        self.diags,
-                    )
+                    values::quantity(n, Dimension::Ratio, "the maximum state of charge", self.diags)
                 });
-                let soc_resume = m.get("soc_resume").map(|n| {
-                    values::quantity(
-                        n,
-                        Dimension::Ratio,
-                        "the resume state of charge",
-                        self.diags,
-                    )
-                });
+                let soc_resume = m
+                    .get("soc_resume")
+                    .map(|n| values::quantity(n, Dimension::Ratio, "the resume state of charge", self.diags));
                 let setpoint = m
                     .require("setpoint", self.diags)
                     .and_then(|n| self.write(n, ctx.devices, WriteKind::Value));
@@ -1650,12 +1545,8 @@ impl Builder<'_, '_> {
                 if soc_resume >= soc_max || !(0.0..=100.0).contains(&soc_max) {
                     self.diags.error(
                         "C0236",
-                        format!(
-                            "{what}: charging resumes at {soc_resume} % but stops at {soc_max} %"
-                        ),
-                        soc_max_node
-                            .map(|n| n.span.clone())
-                            .unwrap_or_else(|| m.span()),
+                        format!("{what}: charging resumes at {soc_resume} % but stops at {soc_max} %"),
+                        soc_max_node.map(|n| n.span.clone()).unwrap_or_else(|| m.span()),
                         "soc_resume must be below soc_max, both within 0–100 %",
                     );
                     return None;
@@ -1689,9 +1580,7 @@ impl Builder<'_, '_> {
             {
                 self.diags.error(
                     "C0237",
-                    format!(
-                        "{what}: stage powers must increase (each stage is the total at that stage)"
-                    ),
+                    format!("{what}: stage powers must increase (each stage is the total at that stage)"),
                     item.span.clone(),
                     "not above the previous stage",
                 );
@@ -1720,12 +1609,8 @@ impl Builder<'_, '_> {
     ) -> Option<PointId> {
         let name = values::text(node, what, self.diags)?;
         let Some(i) = points.iter().position(|p| p.name == name) else {
-            let mut d = Diagnostic::error(
-                "C0238",
-                format!("no point called \"{name}\""),
-                node.span.clone(),
-            )
-            .with_label(format!("{what} must name a point"));
+            let mut d = Diagnostic::error("C0238", format!("no point called \"{name}\""), node.span.clone())
+                .with_label(format!("{what} must name a point"));
             if let Some(s) = did_you_mean(name, points.iter().map(|p| p.name.as_str())) {
                 d = d.with_note(format!("did you mean \"{s}\"?"));
             }
@@ -1783,10 +1668,7 @@ impl Builder<'_, '_> {
                 for e in errors {
                     self.diags.error(
                         "C0999",
-                        format!(
-                            "internal: default rule `{text}` does not compile: {}",
-                            e.message
-                        ),
+                        format!("internal: default rule `{text}` does not compile: {}", e.message),
                         0..0,
                         "please report this",
                     );
@@ -1814,10 +1696,7 @@ impl Builder<'_, '_> {
         m.finish(self.diags);
         let (device_id, device) = self.device_ref(device_node?, devices)?;
         let is_mqtt = matches!(device.link, Link::Mqtt);
-        let targets = [coil, register, topic]
-            .iter()
-            .filter(|t| t.is_some())
-            .count();
+        let targets = [coil, register, topic].iter().filter(|t| t.is_some()).count();
         if targets != 1 {
             self.diags.error(
                 "C0240",
@@ -1926,12 +1805,7 @@ impl Builder<'_, '_> {
             None => ValueType::U16,
         };
         let word_order = match order {
-            Some(o) => match values::choice(
-                o,
-                &["high_first", "low_first"],
-                "the word order",
-                self.diags,
-            )? {
+            Some(o) => match values::choice(o, &["high_first", "low_first"], "the word order", self.diags)? {
                 "low_first" => WordOrder::LowFirst,
                 _ => WordOrder::HighFirst,
             },
@@ -1952,14 +1826,9 @@ impl Builder<'_, '_> {
 
     fn inverter(&mut self, node: &Node, devices: &[Device]) -> Option<InverterControl> {
         let mut m = MapReader::new(node, "the `inverter` section", self.diags)?;
-        let rated = m.require("rated", self.diags).and_then(|n| {
-            values::positive(
-                n,
-                Dimension::Power,
-                "the inverter's rated power",
-                self.diags,
-            )
-        });
+        let rated = m
+            .require("rated", self.diags)
+            .and_then(|n| values::positive(n, Dimension::Power, "the inverter's rated power", self.diags));
         let limit_node = m.require("limit", self.diags);
         let unit = m.get("limit_unit").map_or(Some("%"), |n| {
             values::choice(n, &["%", "W"], "the limit unit", self.diags)
@@ -1992,12 +1861,9 @@ impl Builder<'_, '_> {
                     );
                     return None;
                 }
-                Write::SunSpecLimit {
-                    device: DeviceId(i),
-                }
+                Write::SunSpecLimit { device: DeviceId(i) }
             }
-            Some(n) if matches!(&n.value, Value::Map(e) if e.iter().any(|(k, _)| k.name == "sunspec")) =>
-            {
+            Some(n) if matches!(&n.value, Value::Map(e) if e.iter().any(|(k, _)| k.name == "sunspec")) => {
                 let mut lm = MapReader::new(n, "the inverter limit", self.diags)?;
                 let dev = lm
                     .require("device", self.diags)
@@ -2042,12 +1908,7 @@ impl Builder<'_, '_> {
         })
     }
 
-    fn obligations(
-        &mut self,
-        node: &Node,
-        has_temperature: bool,
-        what: &str,
-    ) -> Option<Vec<Obligation>> {
+    fn obligations(&mut self, node: &Node, has_temperature: bool, what: &str) -> Option<Vec<Obligation>> {
         let Value::Seq(items) = &node.value else {
             self.diags.error(
                 "C0246",
@@ -2139,12 +2000,7 @@ impl Builder<'_, '_> {
         }
         if let Some(n) = reach {
             needs_temp(self, n);
-            let target = values::quantity(
-                n,
-                Dimension::Temperature,
-                "the target temperature",
-                self.diags,
-            )?;
+            let target = values::quantity(n, Dimension::Temperature, "the target temperature", self.diags)?;
             let Some(by_node) = by else {
                 self.diags.error(
                     "C0251",
@@ -2163,12 +2019,7 @@ impl Builder<'_, '_> {
         }
         let n = cycle?;
         needs_temp(self, n);
-        let target = values::quantity(
-            n,
-            Dimension::Temperature,
-            "the cycle temperature",
-            self.diags,
-        )?;
+        let target = values::quantity(n, Dimension::Temperature, "the cycle temperature", self.diags)?;
         let every = match every {
             Some(e) => values::duration(e, "`every`", self.diags)?,
             None => Duration::from_secs(7 * 86_400),
@@ -2178,12 +2029,8 @@ impl Builder<'_, '_> {
             None => Duration::ZERO,
         };
         if every < Duration::from_secs(3600) {
-            self.diags.error(
-                "C0252",
-                "a cycle repeats at most hourly",
-                span,
-                "`every` is too short",
-            );
+            self.diags
+                .error("C0252", "a cycle repeats at most hourly", span, "`every` is too short");
             return None;
         }
         Some(Obligation::Cycle {
@@ -2206,9 +2053,7 @@ impl Builder<'_, '_> {
                             spans.export.clone().unwrap_or(site_span.clone()),
                         )
                         .with_label("export is limited here")
-                        .with_note(
-                            "define a point called `grid` (import positive) under `points:`",
-                        ),
+                        .with_note("define a point called `grid` (import positive) under `points:`"),
                     );
                 }
                 if matches!(export, ExportPolicy::Forbidden | ExportPolicy::Limited(_))
@@ -2229,9 +2074,7 @@ impl Builder<'_, '_> {
                             site_span.clone(),
                         )
                         .with_label("grid: backup")
-                        .with_note(
-                            "define a boolean point `grid_available` (1 while the grid is up)",
-                        ),
+                        .with_note("define a boolean point `grid_available` (1 while the grid is up)"),
                     );
                 }
                 if let (Some(limit), Some(span)) = (export.limit(), spans.import_target.clone())
@@ -2291,14 +2134,8 @@ struct HeaderSpans {
 }
 
 fn window_len(w: &Window) -> Duration {
-    let s = w
-        .start
-        .signed_duration_since(chrono::NaiveTime::MIN)
-        .num_seconds();
-    let e = w
-        .end
-        .signed_duration_since(chrono::NaiveTime::MIN)
-        .num_seconds();
+    let s = w.start.signed_duration_since(chrono::NaiveTime::MIN).num_seconds();
+    let e = w.end.signed_duration_since(chrono::NaiveTime::MIN).num_seconds();
     let len = if s < e { e - s } else { 86_400 - s + e };
     Duration::from_secs(len as u64)
 }
@@ -2405,13 +2242,7 @@ fn scope(points: &[Point], load_names: &[String], slots: &SlotLayout) -> SiteSco
         names.insert((*name).to_owned(), (slot, ty));
     }
     for (name, ls) in load_names.iter().zip(&slots.loads) {
-        let attr_slots = [
-            ls.on,
-            ls.power,
-            ls.runtime_today,
-            ls.energy_today,
-            ls.since_change,
-        ];
+        let attr_slots = [ls.on, ls.power, ls.runtime_today, ls.energy_today, ls.since_change];
         for ((attr, dim, _), slot) in LOAD_ATTRIBUTES.iter().zip(attr_slots) {
             let ty = dim.map_or(Type::Bool, Type::Number);
             names.insert(format!("{name}.{attr}"), (slot, ty));
@@ -2424,9 +2255,7 @@ fn scope(points: &[Point], load_names: &[String], slots: &SlotLayout) -> SiteSco
 /// priority covers it with a margin for 30 s, stop when it has imported a good part
 /// of its power for 30 s. Modulating loads without rules are always enabled.
 fn default_rules(kind: &LoadKind) -> (Option<String>, Option<String>) {
-    let rule = |op: &str, p: Power, hold: &str| {
-        Some(format!("surplus {op} {}W for {hold}", p.0.round() as i64))
-    };
+    let rule = |op: &str, p: Power, hold: &str| Some(format!("surplus {op} {}W for {hold}", p.0.round() as i64));
     let pair = |on: Power, hold: &str| {
         (
             rule(">=", on + Power(100.0), hold),
@@ -2435,17 +2264,10 @@ fn default_rules(kind: &LoadKind) -> (Option<String>, Option<String>) {
     };
     match kind {
         LoadKind::Switched { rated, .. } => pair(*rated, "30s"),
-        LoadKind::Stepped { stages, .. } => {
-            pair(stages.first().copied().unwrap_or_default(), "30s")
-        }
-        LoadKind::Charger {
-            watts_per_amp, min, ..
-        } => {
+        LoadKind::Stepped { stages, .. } => pair(stages.first().copied().unwrap_or_default(), "30s"),
+        LoadKind::Charger { watts_per_amp, min, .. } => {
             let min_power = Power(min.0 * watts_per_amp);
-            (
-                rule(">=", min_power, "1min"),
-                rule("<", min_power * 0.75, "2min"),
-            )
+            (rule(">=", min_power, "1min"), rule("<", min_power * 0.75, "2min"))
         }
         LoadKind::Proportional { .. } | LoadKind::Battery { .. } => (None, None),
     }

@@ -4,6 +4,7 @@
 pub mod describe;
 pub mod load;
 pub mod model;
+pub mod tariff;
 pub mod values;
 pub mod yaml;
 

@@ -598,9 +598,7 @@ impl LoadKind {
         match self {
             LoadKind::Switched { rated, .. } | LoadKind::Proportional { rated, .. } => *rated,
             LoadKind::Stepped { stages, .. } => stages.last().copied().unwrap_or_default(),
-            LoadKind::Charger {
-                watts_per_amp, max, ..
-            } => Power(watts_per_amp * max.0),
+            LoadKind::Charger { watts_per_amp, max, .. } => Power(watts_per_amp * max.0),
             LoadKind::Battery { max_charge, .. } => *max_charge,
         }
     }
@@ -656,10 +654,7 @@ pub struct Window {
 impl Window {
     /// Whether a time of day (seconds since local midnight) is inside.
     pub fn contains(&self, seconds_of_day: u32) -> bool {
-        let s = self
-            .start
-            .signed_duration_since(NaiveTime::MIN)
-            .num_seconds() as u32;
+        let s = self.start.signed_duration_since(NaiveTime::MIN).num_seconds() as u32;
         let e = self.end.signed_duration_since(NaiveTime::MIN).num_seconds() as u32;
         if s <= e {
             (s..e).contains(&seconds_of_day)
@@ -714,10 +709,7 @@ impl Obligation {
                 format!("reach {target} by {}", by.format("%H:%M"))
             }
             Obligation::Cycle {
-                target,
-                hold,
-                every,
-                ..
+                target, hold, every, ..
             } => format!(
                 "hold {target} for {} every {}",
                 crate::units::format_duration(*hold),
@@ -866,16 +858,8 @@ pub const SITE_SIGNALS: &[(&str, Dimension, &str)] = &[
         Dimension::Power,
         "export plus the power of every managed load now on",
     ),
-    (
-        "import",
-        Dimension::Power,
-        "grid import now, 0 while exporting",
-    ),
-    (
-        "export",
-        Dimension::Power,
-        "grid export now, 0 while importing",
-    ),
+    ("import", Dimension::Power, "grid import now, 0 while exporting"),
+    ("export", Dimension::Power, "grid export now, 0 while importing"),
     (
         "import_today",
         Dimension::Energy,
@@ -886,16 +870,8 @@ pub const SITE_SIGNALS: &[(&str, Dimension, &str)] = &[
         Dimension::Energy,
         "energy exported since local midnight",
     ),
-    (
-        "import_month",
-        Dimension::Energy,
-        "energy imported this calendar month",
-    ),
-    (
-        "export_month",
-        Dimension::Energy,
-        "energy exported this calendar month",
-    ),
+    ("import_month", Dimension::Energy, "energy imported this calendar month"),
+    ("export_month", Dimension::Energy, "energy exported this calendar month"),
     (
         "diverted_today",
         Dimension::Energy,
@@ -927,9 +903,5 @@ pub const LOAD_ATTRIBUTES: &[(&str, Option<Dimension>, &str)] = &[
         Some(Dimension::Energy),
         "energy drawn since local midnight",
     ),
-    (
-        "since_change",
-        Some(Dimension::Duration),
-        "time since it last switched",
-    ),
+    ("since_change", Some(Dimension::Duration), "time since it last switched"),
 ];

@@ -55,31 +55,16 @@ pub fn word(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<String> 
 
 /// Reads a quantity of `dimension`, returning it in the base unit. A bare number is
 /// accepted only for plain numbers and for zero ("0 is zero in any unit").
-pub fn quantity(
-    node: &Node,
-    dimension: Dimension,
-    what: &str,
-    diags: &mut Diagnostics,
-) -> Option<f64> {
-    let expected = || {
-        format!(
-            "expected {} in {}",
-            dimension.describe(),
-            dimension.example_units()
-        )
-    };
+pub fn quantity(node: &Node, dimension: Dimension, what: &str, diags: &mut Diagnostics) -> Option<f64> {
+    let expected = || format!("expected {} in {}", dimension.describe(), dimension.example_units());
     let (value, found) = match &node.value {
         Value::Int(i) => (*i as f64, Dimension::Scalar),
         Value::Float(f) => (*f, Dimension::Scalar),
         Value::Str(s) => match units::parse_quantity(s) {
             Ok(q) => (q.value, q.dimension),
             Err(UnitError::UnknownUnit(u)) => {
-                let mut d = Diagnostic::error(
-                    "C0301",
-                    format!("unknown unit \"{u}\" in {what}"),
-                    node.span.clone(),
-                )
-                .with_label(expected());
+                let mut d = Diagnostic::error("C0301", format!("unknown unit \"{u}\" in {what}"), node.span.clone())
+                    .with_label(expected());
                 if let Some(s) = did_you_mean(&u, units::unit_symbols()) {
                     d = d.with_note(format!("did you mean \"{s}\"?"));
                 }
@@ -99,10 +84,7 @@ pub fn quantity(
         other => {
             diags.error(
                 "C0302",
-                format!(
-                    "{what} must be a number with a unit, found {}",
-                    other.kind()
-                ),
+                format!("{what} must be a number with a unit, found {}", other.kind()),
                 node.span.clone(),
                 expected(),
             );
@@ -155,12 +137,7 @@ pub fn duration(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<Dura
 }
 
 /// Reads a positive, finite power/energy/etc., rejecting negatives.
-pub fn positive(
-    node: &Node,
-    dimension: Dimension,
-    what: &str,
-    diags: &mut Diagnostics,
-) -> Option<f64> {
+pub fn positive(node: &Node, dimension: Dimension, what: &str, diags: &mut Diagnostics) -> Option<f64> {
     let v = quantity(node, dimension, what, diags)?;
     if v <= 0.0 || !v.is_finite() {
         diags.error(
@@ -257,13 +234,7 @@ pub fn boolean(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<bool>
 }
 
 /// Reads a whole number in `[min, max]`.
-pub fn integer(
-    node: &Node,
-    min: i64,
-    max: i64,
-    what: &str,
-    diags: &mut Diagnostics,
-) -> Option<i64> {
+pub fn integer(node: &Node, min: i64, max: i64, what: &str, diags: &mut Diagnostics) -> Option<i64> {
     match &node.value {
         Value::Int(i) if (min..=max).contains(i) => Some(*i),
         Value::Int(i) => {
@@ -293,12 +264,7 @@ pub fn number(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<f64> {
 }
 
 /// Reads one of a fixed set of words. YAML booleans are read as `on`/`off`.
-pub fn choice<'c>(
-    node: &Node,
-    choices: &[&'c str],
-    what: &str,
-    diags: &mut Diagnostics,
-) -> Option<&'c str> {
+pub fn choice<'c>(node: &Node, choices: &[&'c str], what: &str, diags: &mut Diagnostics) -> Option<&'c str> {
     let written = match &node.value {
         Value::Str(s) => s.clone(),
         Value::Bool(true) => "on".to_owned(),
@@ -308,12 +274,8 @@ pub fn choice<'c>(
     if let Some(c) = choices.iter().find(|c| **c == written) {
         return Some(c);
     }
-    let mut d = Diagnostic::error(
-        "C0104",
-        format!("{what} cannot be \"{written}\""),
-        node.span.clone(),
-    )
-    .with_label(format!("expected one of: {}", choices.join(", ")));
+    let mut d = Diagnostic::error("C0104", format!("{what} cannot be \"{written}\""), node.span.clone())
+        .with_label(format!("expected one of: {}", choices.join(", ")));
     if let Some(s) = did_you_mean(&written, choices.iter().copied()) {
         d = d.with_note(format!("did you mean \"{s}\"?"));
     }
@@ -328,9 +290,13 @@ pub fn name<'n>(node: &'n Node, what: &str, diags: &mut Diagnostics) -> Option<&
         Some(s)
     } else {
         diags.push(
-            Diagnostic::error("C0105", format!("{what} \"{s}\" is not a usable name"), node.span.clone())
-                .with_label("use lowercase letters, digits and _")
-                .with_note("names appear in rules, so they start with a letter and contain only a-z, 0-9 and _"),
+            Diagnostic::error(
+                "C0105",
+                format!("{what} \"{s}\" is not a usable name"),
+                node.span.clone(),
+            )
+            .with_label("use lowercase letters, digits and _")
+            .with_note("names appear in rules, so they start with a letter and contain only a-z, 0-9 and _"),
         );
         None
     }

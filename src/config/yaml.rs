@@ -82,14 +82,8 @@ impl Node {
 
 fn span_of(loc: &serde_saphyr::Location) -> Range<usize> {
     let span = loc.span();
-    let start = span
-        .byte_offset()
-        .and_then(|o| usize::try_from(o).ok())
-        .unwrap_or(0);
-    let len = span
-        .byte_len()
-        .and_then(|l| usize::try_from(l).ok())
-        .unwrap_or(0);
+    let start = span.byte_offset().and_then(|o| usize::try_from(o).ok()).unwrap_or(0);
+    let len = span.byte_len().and_then(|l| usize::try_from(l).ok()).unwrap_or(0);
     start..start + len
 }
 
@@ -219,10 +213,7 @@ fn offset_of_line_col(text: &str, line: usize, col: usize) -> usize {
     let mut offset = 0;
     for (i, l) in text.split_inclusive('\n').enumerate() {
         if i + 1 == line {
-            return offset
-                + l.char_indices()
-                    .nth(col.saturating_sub(1))
-                    .map_or(l.len(), |(b, _)| b);
+            return offset + l.char_indices().nth(col.saturating_sub(1)).map_or(l.len(), |(b, _)| b);
         }
         offset += l.len();
     }
@@ -277,9 +268,7 @@ impl<'n> MapReader<'n> {
                 let mut used = vec![false; entries.len()];
                 // Duplicate keys: YAML forbids them, but parsers differ; report them here.
                 for (i, (k, _)) in entries.iter().enumerate() {
-                    if let Some((first, _)) =
-                        entries[..i].iter().find(|(other, _)| other.name == k.name)
-                    {
+                    if let Some((first, _)) = entries[..i].iter().find(|(other, _)| other.name == k.name) {
                         diags.push(
                             Diagnostic::error(
                                 "C0003",
@@ -310,10 +299,7 @@ impl<'n> MapReader<'n> {
             other => {
                 diags.error(
                     "C0002",
-                    format!(
-                        "{what} must be a mapping of keys to values, found {}",
-                        other.kind()
-                    ),
+                    format!("{what} must be a mapping of keys to values, found {}", other.kind()),
                     node.span.clone(),
                     "expected `key: value` lines here",
                 );
@@ -441,17 +427,11 @@ mod tests {
     fn keys_and_values_carry_their_byte_spans() {
         let text = "site:\n  name: Test\nloads:\n  - rated: 3kW\n";
         let node = parse(text).unwrap();
-        let Value::Map(top) = &node.value else {
-            panic!()
-        };
+        let Value::Map(top) = &node.value else { panic!() };
         assert_eq!(top[0].0.name, "site");
         assert_eq!(&text[top[0].0.span.clone()], "site");
-        let Value::Seq(loads) = &top[1].1.value else {
-            panic!()
-        };
-        let Value::Map(load) = &loads[0].value else {
-            panic!()
-        };
+        let Value::Seq(loads) = &top[1].1.value else { panic!() };
+        let Value::Map(load) = &loads[0].value else { panic!() };
         assert_eq!(&text[load[0].1.span.clone()], "3kW");
     }
 
@@ -473,10 +453,7 @@ mod tests {
         let _ = m.get("rated");
         m.finish(&mut diags);
         assert_eq!(diags.list.len(), 1);
-        assert_eq!(
-            diags.list[0].notes,
-            vec!["did you mean \"rated\"?".to_owned()]
-        );
+        assert_eq!(diags.list[0].notes, vec!["did you mean \"rated\"?".to_owned()]);
         assert_eq!(&text[diags.list[0].primary.span.clone()], "ratd");
     }
 
@@ -486,9 +463,6 @@ mod tests {
         let node = parse(text).unwrap();
         let Value::Map(m) = &node.value else { panic!() };
         assert_eq!(locate_text(text, &m[0].1, "x > 1W"), 4);
-        assert_eq!(
-            &text[locate_text(text, &m[1].1, "y < 2W\n")..][..6],
-            "y < 2W"
-        );
+        assert_eq!(&text[locate_text(text, &m[1].1, "y < 2W\n")..][..6], "y < 2W");
     }
 }

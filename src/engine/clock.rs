@@ -130,18 +130,12 @@ mod tests {
         let mut c = SiteClock::new(tz);
         // 2026-03-29: Lisbon moves from 01:00 WET to 02:00 WEST. 00:30 UTC is 00:30 local,
         // 01:30 UTC is 02:30 local (source: the IANA tz database via chrono-tz).
-        let before =
-            Timestamp::from_utc(chrono::Utc.with_ymd_and_hms(2026, 3, 29, 0, 30, 0).unwrap());
-        let after =
-            Timestamp::from_utc(chrono::Utc.with_ymd_and_hms(2026, 3, 29, 1, 30, 0).unwrap());
+        let before = Timestamp::from_utc(chrono::Utc.with_ymd_and_hms(2026, 3, 29, 0, 30, 0).unwrap());
+        let after = Timestamp::from_utc(chrono::Utc.with_ymd_and_hms(2026, 3, 29, 1, 30, 0).unwrap());
         assert_eq!(c.at(before).seconds_of_day, 30 * 60);
         assert_eq!(c.at(after).seconds_of_day, (2 * 60 + 30) * 60);
         // 2026-10-25: back from 02:00 WEST to 01:00 WET; 01:30 UTC is 01:30 local.
-        let autumn = Timestamp::from_utc(
-            chrono::Utc
-                .with_ymd_and_hms(2026, 10, 25, 1, 30, 0)
-                .unwrap(),
-        );
+        let autumn = Timestamp::from_utc(chrono::Utc.with_ymd_and_hms(2026, 10, 25, 1, 30, 0).unwrap());
         assert_eq!(c.at(autumn).seconds_of_day, (60 + 30) * 60);
     }
 

@@ -46,9 +46,7 @@ impl Command {
                 stages.get(usize::from(n) - 1).copied().unwrap_or_default()
             }
             (Command::Setpoint(r), LoadKind::Proportional { rated, .. }) => *rated * (r.0 / 100.0),
-            (Command::Current(a), LoadKind::Charger { watts_per_amp, .. }) => {
-                Power(a.0 * watts_per_amp)
-            }
+            (Command::Current(a), LoadKind::Charger { watts_per_amp, .. }) => Power(a.0 * watts_per_amp),
             (Command::Charge(p), LoadKind::Battery { .. }) => p,
             (Command::On, other) => other.max_power(),
             _ => Power::ZERO,
@@ -260,16 +258,8 @@ impl fmt::Display for Reason {
             Reason::Stopped => f.write_str("stopped: stop rule is true"),
             Reason::Running => f.write_str("on: stop rule not true"),
             Reason::Waiting => f.write_str("off: start rule not true"),
-            Reason::MinOn { left } => write!(
-                f,
-                "held on: minimum on-time ({} left)",
-                format_duration(*left)
-            ),
-            Reason::MinOff { left } => write!(
-                f,
-                "held off: minimum off-time ({} left)",
-                format_duration(*left)
-            ),
+            Reason::MinOn { left } => write!(f, "held on: minimum on-time ({} left)", format_duration(*left)),
+            Reason::MinOff { left } => write!(f, "held off: minimum off-time ({} left)", format_duration(*left)),
             Reason::StartsCapped { cap } => write!(f, "held off: {cap} starts in the last hour"),
             Reason::Settling => f.write_str("held: settling after signals returned"),
             Reason::Following { power } => write!(f, "following the surplus at {power}"),

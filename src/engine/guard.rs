@@ -34,9 +34,7 @@ impl Guard {
         let (Some(limit), Some(inv)) = (self.limit, &site.inverter) else {
             return Power::ZERO;
         };
-        let value = |p: Option<crate::config::model::PointId>| {
-            p.map(|p| values[p.0]).filter(|v| v.is_finite())
-        };
+        let value = |p: Option<crate::config::model::PointId>| p.map(|p| values[p.0]).filter(|v| v.is_finite());
         let pv = value(site.roles.pv);
         if let (Some(avail), Some(pv)) = (value(site.roles.pv_available), pv) {
             return Power((avail - pv).max(0.0));
@@ -106,12 +104,7 @@ impl Guard {
             return (self.limit, LimitReason::Escalated);
         }
 
-        let pv = site
-            .roles
-            .pv
-            .map(|p| values[p.0])
-            .filter(|v| v.is_finite())
-            .map(Power);
+        let pv = site.roles.pv.map(|p| values[p.0]).filter(|v| v.is_finite()).map(Power);
         let expected = grid + delta_loads;
         let need = target - expected; // > 0: this much PV must go
         let _ = absorbable;

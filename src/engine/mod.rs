@@ -204,9 +204,7 @@ impl Engine {
     pub fn load_today(&self, load: LoadId) -> (Duration, Energy) {
         self.loads
             .get(load.0)
-            .map_or((Duration::ZERO, Energy::ZERO), |l| {
-                (l.runtime_today, l.energy_today)
-            })
+            .map_or((Duration::ZERO, Energy::ZERO), |l| (l.runtime_today, l.energy_today))
     }
 
     /// Obligation verdicts emitted since the last call (at local midnights).
@@ -221,10 +219,7 @@ impl Engine {
 
     /// The value of a slot at the last tick (NaN when unknown).
     pub fn value(&self, slot: Slot) -> f64 {
-        self.values
-            .get(slot.0 as usize)
-            .copied()
-            .unwrap_or(f64::NAN)
+        self.values.get(slot.0 as usize).copied().unwrap_or(f64::NAN)
     }
 
     /// A sentence saying why a load is where it is, with the rule's current values.
@@ -237,11 +232,10 @@ impl Engine {
             now: self.decisions.now,
             local: self.local,
         };
-        let rule_detail =
-            |rt: &Option<crate::config::model::RuleText>, st: &Option<RuleState>| match (rt, st) {
-                (Some(r), Some(s)) => Some(r.rule.explain(&input, s)),
-                _ => None,
-            };
+        let rule_detail = |rt: &Option<crate::config::model::RuleText>, st: &Option<RuleState>| match (rt, st) {
+            (Some(r), Some(s)) => Some(r.rule.explain(&input, s)),
+            _ => None,
+        };
         let base = match state.reason {
             Reason::SignalLost { point } => {
                 format!(
@@ -252,20 +246,14 @@ impl Engine {
             Reason::Obligation { index } => {
                 format!(
                     "on from the grid: obligation \"{}\" is behind",
-                    l.obligations
-                        .get(index)
-                        .map_or(String::new(), |o| o.describe())
+                    l.obligations.get(index).map_or(String::new(), |o| o.describe())
                 )
             }
             other => other.to_string(),
         };
         let detail = match state.reason {
-            Reason::Started | Reason::Waiting | Reason::MinOff { .. } => {
-                rule_detail(&l.start, &state.start)
-            }
-            Reason::Stopped | Reason::Running | Reason::MinOn { .. } => {
-                rule_detail(&l.stop, &state.stop)
-            }
+            Reason::Started | Reason::Waiting | Reason::MinOff { .. } => rule_detail(&l.start, &state.start),
+            Reason::Stopped | Reason::Running | Reason::MinOn { .. } => rule_detail(&l.stop, &state.stop),
             Reason::Inhibited => rule_detail(&l.inhibit, &state.inhibit),
             _ => None,
         };
@@ -278,9 +266,7 @@ impl Engine {
     /// Counters to persist.
     pub fn persisted(&self) -> PersistedState {
         let day = self.day.map_or(0, |d| d.day);
-        let month = self
-            .day
-            .map_or(0, |d| i64::from(d.year) * 12 + i64::from(d.month));
+        let month = self.day.map_or(0, |d| i64::from(d.year) * 12 + i64::from(d.month));
         PersistedState {
             day,
             month,
@@ -298,11 +284,7 @@ impl Engine {
                     name: l.name.clone(),
                     runtime_today_s: s.runtime_today.as_secs_f64(),
                     energy_today_wh: s.energy_today.0,
-                    last_cycle_ms: s
-                        .obligations
-                        .iter()
-                        .map(|o| o.last_cycle.map(|t| t.0))
-                        .collect(),
+                    last_cycle_ms: s.obligations.iter().map(|o| o.last_cycle.map(|t| t.0)).collect(),
                 })
                 .collect(),
         }
@@ -353,15 +335,11 @@ impl Engine {
         // Freshness: stale or missing values become NaN, which rules read as unknown.
         for (i, p) in site.points.iter().enumerate() {
             let s = snapshot.samples.get(i).copied().unwrap_or(Sample::MISSING);
-            let fresh = s.value.is_finite()
-                && s.at <= now.plus(Duration::from_secs(5))
-                && now.since(s.at) <= p.stale_after;
+            let fresh =
+                s.value.is_finite() && s.at <= now.plus(Duration::from_secs(5)) && now.since(s.at) <= p.stale_after;
             self.values[i] = if fresh { s.value } else { f64::NAN };
         }
-        let guard_ok = self
-            .guard_points
-            .iter()
-            .all(|p| self.values[p.0].is_finite());
+        let guard_ok = self.guard_points.iter().all(|p| self.values[p.0].is_finite());
         self.update_mode(now, guard_ok);
 
         // Power each load draws now: its own meter if fresh, otherwise as commanded.
@@ -489,16 +467,9 @@ impl Engine {
         }
         // Export guard on the power the loads will draw after this tick's commands.
         let delta_loads = new_power - managed;
-        let (limit, limit_reason) = self.guard.decide(
-            &site,
-            &self.values,
-            grid,
-            delta_loads,
-            absorbable,
-            self.mode,
-            now,
-            dt,
-        );
+        let (limit, limit_reason) =
+            self.guard
+                .decide(&site, &self.values, grid, delta_loads, absorbable, self.mode, now, dt);
 
         let d = &mut self.decisions;
         d.now = now;
@@ -528,19 +499,8 @@ impl Engine {
         }
         let new_month = (previous.year, previous.month) != (day.year, day.month);
         self.counters.roll_over(new_month);
-        for (i, (l, s)) in self
-            .site
-            .loads
-            .iter()
-            .zip(self.loads.iter_mut())
-            .enumerate()
-        {
-            for (j, (ob, st)) in l
-                .obligations
-                .iter()
-                .zip(s.obligations.iter_mut())
-                .enumerate()
-            {
+        for (i, (l, s)) in self.site.loads.iter().zip(self.loads.iter_mut()).enumerate() {
+            for (j, (ob, st)) in l.obligations.iter().zip(s.obligations.iter_mut()).enumerate() {
                 let met = st.end_of_day(ob, s.runtime_today, now);
                 self.results.push(ObligationResult {
                     load: LoadId(i),
@@ -563,13 +523,7 @@ impl Engine {
             .map(|p| self.values[p.0])
             .filter(|v| v.is_finite())
             .map(|v| v < 0.5);
-        let backup = matches!(
-            site.connection,
-            Connection::Grid {
-                backup: Some(_),
-                ..
-            }
-        );
+        let backup = matches!(site.connection, Connection::Grid { backup: Some(_), .. });
         self.mode = if !guard_ok {
             self.recovered_at = None;
             Mode::Failsafe
@@ -596,11 +550,7 @@ impl Engine {
         }
     }
 
-    fn off_grid_surplus(
-        &mut self,
-        og: &crate::config::model::OffGridSettings,
-        managed: Power,
-    ) -> Option<Power> {
+    fn off_grid_surplus(&mut self, og: &crate::config::model::OffGridSettings, managed: Power) -> Option<Power> {
         let r = &self.site.roles;
         let v = |p: Option<PointId>| p.map(|p| self.values[p.0]).filter(|v| v.is_finite());
         let voltage = v(r.battery_voltage)?;
@@ -707,11 +657,7 @@ fn guard_points(site: &Site) -> Vec<PointId> {
 }
 
 /// Points a load's rules and obligations read, directly or through derived signals.
-fn load_deps(
-    site: &Site,
-    load: &crate::config::model::Load,
-    guard_points: &[PointId],
-) -> Vec<PointId> {
+fn load_deps(site: &Site, load: &crate::config::model::Load, guard_points: &[PointId]) -> Vec<PointId> {
     let n = site.points.len() as u32;
     let s = &site.slots.site;
     let flow_slots = [s.surplus, s.site_surplus, s.import, s.export];
@@ -720,10 +666,7 @@ fn load_deps(
         Connection::OffGrid(_) => guard_points.to_vec(),
     };
     let mut deps = Vec::new();
-    for rt in [&load.start, &load.stop, &load.inhibit]
-        .into_iter()
-        .flatten()
-    {
+    for rt in [&load.start, &load.stop, &load.inhibit].into_iter().flatten() {
         for slot in rt.rule.slots() {
             if slot.0 < n {
                 deps.push(PointId(slot.0 as usize));
@@ -818,17 +761,10 @@ fn decide(
     // 2. Grid outage: shed lowest priorities first, one per interval.
     if mode == Mode::Outage && l.shed_on_outage {
         let interval = match &site.connection {
-            Connection::Grid {
-                backup: Some(b), ..
-            } => b.shed_interval,
+            Connection::Grid { backup: Some(b), .. } => b.shed_interval,
             _ => Duration::ZERO,
         };
-        let rank = site
-            .loads
-            .iter()
-            .skip(i + 1)
-            .filter(|o| o.shed_on_outage)
-            .count() as u32;
+        let rank = site.loads.iter().skip(i + 1).filter(|o| o.shed_on_outage).count() as u32;
         let since = outage_since.map_or(Duration::ZERO, |o| now.since(o));
         if interval.is_zero() || since >= interval * rank {
             return (Command::Off, Reason::Shed, Power::ZERO);
@@ -855,12 +791,7 @@ fn decide(
         temperature,
     };
     let mut forced = None;
-    for (j, (ob, os)) in l
-        .obligations
-        .iter()
-        .zip(st.obligations.iter_mut())
-        .enumerate()
-    {
+    for (j, (ob, os)) in l.obligations.iter().zip(st.obligations.iter_mut()).enumerate() {
         if os.demand(ob, &situation).force_on && forced.is_none() {
             forced = Some(j);
         }
@@ -875,9 +806,7 @@ fn decide(
     }
 
     // 5. The rules, with hysteresis and anti-chatter limits.
-    let settling = recovered_at
-        .is_some_and(|r| now.since(r) < site.failsafe.recovery_hold + SETTLE)
-        && st.settled;
+    let settling = recovered_at.is_some_and(|r| now.since(r) < site.failsafe.recovery_hold + SETTLE) && st.settled;
     let is_on = st.command.is_on();
     let enabled = if is_on {
         match stop {
@@ -920,31 +849,19 @@ fn decide(
         (_, Err(reason)) => keep(st, reason),
         (LoadKind::Switched { .. }, Ok(true)) => (
             Command::On,
-            if is_on {
-                Reason::Running
-            } else {
-                Reason::Started
-            },
+            if is_on { Reason::Running } else { Reason::Started },
             Power::ZERO,
         ),
         (LoadKind::Switched { .. } | LoadKind::Stepped { .. }, Ok(false)) => (
             Command::Off,
-            if is_on {
-                Reason::Stopped
-            } else {
-                Reason::Waiting
-            },
+            if is_on { Reason::Stopped } else { Reason::Waiting },
             Power::ZERO,
         ),
         (LoadKind::Stepped { stages, .. }, Ok(true)) => {
             let stage = step_stage(stages, st, surplus, now);
             (
                 Command::Stage(stage),
-                if is_on {
-                    Reason::Running
-                } else {
-                    Reason::Started
-                },
+                if is_on { Reason::Running } else { Reason::Started },
                 Power::ZERO,
             )
         }
@@ -974,12 +891,7 @@ fn on_command(kind: &LoadKind, current: Command) -> Command {
 
 /// Stepped loads climb a stage when the surplus covers the next stage for
 /// [`STAGE_HOLD`], and drop one when it no longer covers the current stage as long.
-fn step_stage(
-    stages: &[crate::units::Power],
-    st: &mut LoadState,
-    surplus: Option<Power>,
-    now: Timestamp,
-) -> u8 {
+fn step_stage(stages: &[crate::units::Power], st: &mut LoadState, surplus: Option<Power>, now: Timestamp) -> u8 {
     let current = match st.command {
         Command::Stage(n) if n > 0 => n,
         _ => return 1,
@@ -1026,11 +938,7 @@ fn modulate(
     if !enabled {
         return (
             Command::Off,
-            if is_on {
-                Reason::Stopped
-            } else {
-                Reason::Waiting
-            },
+            if is_on { Reason::Stopped } else { Reason::Waiting },
             Power::ZERO,
         );
     }
@@ -1054,9 +962,7 @@ fn modulate(
     let share = u_total.min(max).max(Power::ZERO);
     *u_total -= share;
     let (command, drawn, reason) = match kind {
-        LoadKind::Proportional {
-            rated, min, step, ..
-        } => {
+        LoadKind::Proportional { rated, min, step, .. } => {
             let pct = quantize(share.0 / rated.0 * 100.0, step.0).min(100.0);
             if pct < min.0.max(f64::EPSILON) {
                 (
@@ -1126,9 +1032,7 @@ fn modulate(
                 (Command::Charge(p), p, Reason::Following { power: p })
             }
         }
-        LoadKind::Switched { .. } | LoadKind::Stepped { .. } => {
-            (Command::Off, Power::ZERO, Reason::Waiting)
-        }
+        LoadKind::Switched { .. } | LoadKind::Stepped { .. } => (Command::Off, Power::ZERO, Reason::Waiting),
     };
     // What was taken beyond the share (a held minimum) is not left for others.
     if drawn > share {

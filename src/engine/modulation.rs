@@ -64,12 +64,7 @@ mod tests {
         for _ in 0..ticks {
             let g = -export + drawn;
             grid.push(g);
-            let u = pi.update(
-                Power(40.0 - g),
-                Power(drawn),
-                Power(3000.0),
-                Duration::from_secs(1),
-            );
+            let u = pi.update(Power(40.0 - g), Power(drawn), Power(3000.0), Duration::from_secs(1));
             drawn = u.0;
         }
         grid
@@ -81,30 +76,17 @@ mod tests {
         let last = *grid.last().unwrap();
         assert!((last - 40.0).abs() < 1.0, "settles at the target: {last}");
         let peak_import = grid.iter().cloned().fold(f64::MIN, f64::max);
-        assert!(
-            peak_import < 40.0 + 150.0,
-            "little overshoot: {peak_import}"
-        );
+        assert!(peak_import < 40.0 + 150.0, "little overshoot: {peak_import}");
     }
 
     #[test]
     fn does_not_wind_up_when_the_loads_are_at_their_capacity() {
         let mut pi = Pi::new(0.1, 0.5);
         for _ in 0..100 {
-            pi.update(
-                Power(5000.0),
-                Power(3000.0),
-                Power(3000.0),
-                Duration::from_secs(1),
-            );
+            pi.update(Power(5000.0), Power(3000.0), Power(3000.0), Duration::from_secs(1));
         }
         // Export gone: the total comes down at once instead of unwinding a huge integral.
-        let u = pi.update(
-            Power(-500.0),
-            Power(3000.0),
-            Power(3000.0),
-            Duration::from_secs(1),
-        );
+        let u = pi.update(Power(-500.0), Power(3000.0), Power(3000.0), Duration::from_secs(1));
         assert!(u.0 < 3000.0, "{u}");
     }
 }

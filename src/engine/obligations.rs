@@ -60,8 +60,7 @@ pub struct Situation {
 }
 
 fn seconds(t: chrono::NaiveTime) -> u32 {
-    t.signed_duration_since(chrono::NaiveTime::MIN)
-        .num_seconds() as u32
+    t.signed_duration_since(chrono::NaiveTime::MIN).num_seconds() as u32
 }
 
 /// Seconds from `now` to the end of `window` if `now` is inside it.
@@ -70,28 +69,19 @@ fn time_left_in(window: &crate::config::model::Window, sod: u32) -> Option<u32> 
         return None;
     }
     let end = seconds(window.end);
-    Some(if end > sod {
-        end - sod
-    } else {
-        86_400 - sod + end
-    })
+    Some(if end > sod { end - sod } else { 86_400 - sod + end })
 }
 
 impl ObligationState {
     /// What the obligation demands now. Called once per tick, before the rules.
     pub fn demand(&mut self, ob: &Obligation, s: &Situation) -> Demand {
         match ob {
-            Obligation::RunDaily {
-                duration,
-                grid_window,
-            } => {
+            Obligation::RunDaily { duration, grid_window } => {
                 let missing = duration.saturating_sub(s.runtime_today);
                 let force_on = match grid_window.and_then(|w| time_left_in(&w, s.seconds_of_day)) {
                     // Start just late enough to need only what is missing (plus a minute of margin).
                     Some(left) => {
-                        !missing.is_zero()
-                            && Duration::from_secs(u64::from(left))
-                                <= missing + Duration::from_secs(60)
+                        !missing.is_zero() && Duration::from_secs(u64::from(left)) <= missing + Duration::from_secs(60)
                     }
                     None => false,
                 };
@@ -144,9 +134,7 @@ impl ObligationState {
                     }
                     _ => self.hot_since = None,
                 }
-                let due = self
-                    .last_cycle
-                    .is_none_or(|last| s.now.since(last) >= *every);
+                let due = self.last_cycle.is_none_or(|last| s.now.since(last) >= *every);
                 let in_window = grid_window.is_some_and(|w| w.contains(s.seconds_of_day));
                 Demand {
                     force_on: due && in_window,
@@ -226,17 +214,13 @@ mod tests {
             "before the window"
         );
         assert!(s.demand(&ob, &at(15 * 3600, 0.0, Some(50.0))).force_on);
-        assert!(
-            !s.demand(&ob, &at(16 * 3600, 0.0, Some(60.0))).force_on,
-            "reached"
-        );
+        assert!(!s.demand(&ob, &at(16 * 3600, 0.0, Some(60.0))).force_on, "reached");
         assert!(
             !s.demand(&ob, &at(16 * 3600 + 60, 0.0, Some(59.0))).force_on,
             "within the restart deadband"
         );
         assert!(
-            s.demand(&ob, &at(16 * 3600 + 120, 0.0, Some(58.0)))
-                .force_on,
+            s.demand(&ob, &at(16 * 3600 + 120, 0.0, Some(58.0))).force_on,
             "below the deadband"
         );
         let _ = s.demand(&ob, &at(17 * 3600 - 30, 0.0, Some(59.8)));
@@ -264,8 +248,7 @@ mod tests {
             "hot, not held yet"
         );
         assert!(
-            !s.demand(&ob, &at(12 * 3600 + 700, 0.0, Some(60.5)))
-                .force_on,
+            !s.demand(&ob, &at(12 * 3600 + 700, 0.0, Some(60.5))).force_on,
             "held 10 min: done"
         );
     }

@@ -58,9 +58,6 @@ impl Snapshot {
 
     /// The sample of a point.
     pub fn get(&self, point: PointId) -> Sample {
-        self.samples
-            .get(point.0)
-            .copied()
-            .unwrap_or(Sample::MISSING)
+        self.samples.get(point.0).copied().unwrap_or(Sample::MISSING)
     }
 }

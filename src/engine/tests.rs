@@ -51,10 +51,7 @@ impl Harness {
     }
 
     fn point(&self, name: &str) -> PointId {
-        self.site
-            .point(name)
-            .unwrap_or_else(|| panic!("no point {name}"))
-            .0
+        self.site.point(name).unwrap_or_else(|| panic!("no point {name}")).0
     }
 
     /// Sets a point's value; it keeps being reported fresh every tick.
@@ -90,11 +87,7 @@ impl Harness {
     }
 
     fn load(&self, name: &str) -> usize {
-        self.site
-            .load(name)
-            .unwrap_or_else(|| panic!("no load {name}"))
-            .0
-            .0
+        self.site.load(name).unwrap_or_else(|| panic!("no load {name}")).0.0
     }
 
     fn command(&self, name: &str) -> Command {
@@ -124,7 +117,7 @@ points:
   pump_power: { device: meter, register: 40, unit: W }
 inverter:
   rated: 5kW
-  limit: { device: inverter, register: 100, unit: "%" }
+  limit: { device: inverter, register: 100 }
 "#;
 
 fn site(header: &str, loads: &str) -> String {
@@ -156,11 +149,7 @@ fn surplus_is_export_plus_the_power_of_managed_loads_that_are_on() {
     let mut h = Harness::new(&site("  export: allowed", TWO_LOADS));
     h.set("grid", -1500.0);
     let d = h.run(secs(30));
-    assert_eq!(
-        h.command("pump"),
-        Command::On,
-        "pump starts on 1.5 kW export"
-    );
+    assert_eq!(h.command("pump"), Command::On, "pump starts on 1.5 kW export");
     // With the pump on, export falls to 500 W; the surplus is still 1.5 kW.
     h.set("grid", -500.0);
     let d2 = h.tick();
@@ -216,21 +205,11 @@ fn a_higher_priority_load_takes_the_surplus_of_a_lower_one_once_its_min_on_time_
     );
     // After the pump's minimum on-time the tank may count the pump's power as surplus.
     h.run(secs(240));
-    assert_eq!(
-        h.command("tank"),
-        Command::On,
-        "{}",
-        h.engine.explain(LoadId(0))
-    );
+    assert_eq!(h.command("tank"), Command::On, "{}", h.engine.explain(LoadId(0)));
     // Now both draw; the pump's surplus is gone and import shows: the pump stops.
     h.set("grid", 400.0);
     h.run(secs(15));
-    assert_eq!(
-        h.command("pump"),
-        Command::Off,
-        "{}",
-        h.engine.explain(LoadId(1))
-    );
+    assert_eq!(h.command("pump"), Command::Off, "{}", h.engine.explain(LoadId(1)));
 }
 
 // ---------------------------------------------------------------- hysteresis and anti-chatter
@@ -313,10 +292,7 @@ fn the_starts_per_hour_cap_holds_a_load_off() {
         h.tick();
     }
     assert_eq!(starts, 3);
-    assert!(
-        matches!(h.reason("heater"), Reason::StartsCapped { cap: 3 })
-            || h.command("heater") == Command::Off
-    );
+    assert!(matches!(h.reason("heater"), Reason::StartsCapped { cap: 3 }) || h.command("heater") == Command::Off);
     // An hour later it may start again.
     h.set("grid", -1500.0);
     h.run(secs(3600));
@@ -444,11 +420,7 @@ fn a_battery_stops_charging_at_its_upper_soc_and_resumes_below_the_resume_level(
     assert_eq!(h.reason("battery"), Reason::Full);
     h.set("soc", 92.0);
     h.tick();
-    assert_eq!(
-        h.reason("battery"),
-        Reason::Full,
-        "hysteresis: not yet below 90 %"
-    );
+    assert_eq!(h.reason("battery"), Reason::Full, "hysteresis: not yet below 90 %");
     h.set("soc", 89.0);
     h.run(secs(3));
     assert!(matches!(h.command("battery"), Command::Charge(p) if p.0 > 0.0));
@@ -458,10 +430,7 @@ fn a_battery_stops_charging_at_its_upper_soc_and_resumes_below_the_resume_level(
 
 #[test]
 fn the_export_guard_curtails_within_one_tick_when_no_load_can_absorb() {
-    let mut h = Harness::new(&site(
-        "  export: forbidden\n  import_target: 40W",
-        TWO_LOADS,
-    ));
+    let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
     h.set("pv", 4000.0);
     h.set("grid", 100.0);
     h.run(secs(5));
@@ -479,10 +448,7 @@ fn the_export_guard_curtails_within_one_tick_when_no_load_can_absorb() {
 
 #[test]
 fn curtailment_is_released_gradually_once_import_returns() {
-    let mut h = Harness::new(&site(
-        "  export: forbidden\n  import_target: 40W",
-        TWO_LOADS,
-    ));
+    let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
     h.set("pv", 4000.0);
     h.set("grid", -1500.0);
     let first = h.tick().inverter_limit.unwrap();
@@ -499,10 +465,7 @@ fn curtailment_is_released_gradually_once_import_returns() {
 
 #[test]
 fn the_guard_escalates_to_the_safe_limit_when_export_outlasts_its_deadline() {
-    let mut h = Harness::new(&site(
-        "  export: forbidden\n  import_target: 40W",
-        TWO_LOADS,
-    ));
+    let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
     // An inverter that ignores its limit: export stays.
     h.set("pv", 4000.0);
     h.set("grid", -1500.0);
@@ -535,10 +498,7 @@ fn default_stale_timeout_and_guard_deadline_fit_inside_g100_issue_1_five_seconds
 
 #[test]
 fn stale_grid_signal_sends_loads_to_safe_states_and_curtails_within_the_timeout() {
-    let mut h = Harness::new(&site(
-        "  export: forbidden\n  import_target: 40W",
-        TWO_LOADS,
-    ));
+    let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
     h.set("pv", 4000.0);
     h.set("grid", -3500.0);
     h.run(secs(25));
@@ -565,10 +525,7 @@ fn stale_grid_signal_sends_loads_to_safe_states_and_curtails_within_the_timeout(
 
 #[test]
 fn fresh_data_returning_causes_at_most_one_switching_per_load_in_the_next_minute() {
-    let mut h = Harness::new(&site(
-        "  export: forbidden\n  import_target: 40W",
-        TWO_LOADS,
-    ));
+    let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
     h.set("pv", 4000.0);
     h.set("grid", -3500.0);
     h.run(secs(60));
@@ -604,10 +561,7 @@ fn a_load_whose_own_signal_goes_stale_takes_its_safe_state_while_others_run() {
     h.set("grid", -4500.0);
     h.set("tank_temp", 40.0);
     h.run(secs(3));
-    assert_eq!(
-        (h.command("tank"), h.command("pump")),
-        (Command::On, Command::On)
-    );
+    assert_eq!((h.command("tank"), h.command("pump")), (Command::On, Command::On));
     h.silence("tank_temp");
     h.run(secs(61));
     assert_eq!(h.command("tank"), Command::Off);
@@ -715,8 +669,7 @@ fn an_override_never_defeats_the_failsafe() {
     let mut h = Harness::new(&site("  export: forbidden", TWO_LOADS));
     h.set("grid", 200.0);
     h.tick();
-    h.engine
-        .set_override(LoadId(1), Command::On, h.now.plus(secs(3600)));
+    h.engine.set_override(LoadId(1), Command::On, h.now.plus(secs(3600)));
     h.silence("grid");
     h.run(secs(5));
     assert_eq!(h.command("pump"), Command::Off);
@@ -753,20 +706,10 @@ fn a_grid_outage_sheds_non_essential_loads_lowest_priority_first() {
     h.set("grid", -100.0);
     h.set("grid_available", 1.0);
     h.run(secs(5));
-    assert!(
-        h.engine
-            .decisions()
-            .loads
-            .iter()
-            .all(|l| l.command == Command::On)
-    );
+    assert!(h.engine.decisions().loads.iter().all(|l| l.command == Command::On));
     h.set("grid_available", 0.0);
     h.tick();
-    assert_eq!(
-        h.command("pump"),
-        Command::Off,
-        "lowest priority shed at once"
-    );
+    assert_eq!(h.command("pump"), Command::Off, "lowest priority shed at once");
     assert_eq!(h.command("tank"), Command::On);
     h.run(secs(31));
     assert_eq!(h.command("tank"), Command::Off);
@@ -805,12 +748,7 @@ loads:
     h.set("battery_voltage", 54.6);
     h.set("battery_current", 1.0);
     h.run(secs(31));
-    assert_eq!(
-        h.command("dump"),
-        Command::On,
-        "{}",
-        h.engine.explain(LoadId(0))
-    );
+    assert_eq!(h.command("dump"), Command::On, "{}", h.engine.explain(LoadId(0)));
     // The dump load is more than the array can give: the battery discharges, voltage sags.
     h.set("battery_voltage", 53.0);
     h.set("battery_current", -20.0);
@@ -833,9 +771,7 @@ fn clock_windows_in_rules_follow_local_time_across_a_dst_change() {
     h.set("grid", 0.0);
     // 2026-10-25 is the autumn change in Lisbon (02:00 WEST → 01:00 WET). 09:30 local is
     // 09:30 UTC after it (source: IANA tz database through chrono-tz).
-    h.now = Timestamp::from_utc(
-        chrono::TimeZone::with_ymd_and_hms(&chrono::Utc, 2026, 10, 25, 9, 0, 0).unwrap(),
-    );
+    h.now = Timestamp::from_utc(chrono::TimeZone::with_ymd_and_hms(&chrono::Utc, 2026, 10, 25, 9, 0, 0).unwrap());
     h.run(secs(1800));
     assert_eq!(h.command("pump"), Command::On);
     h.run(secs(1800));

@@ -51,9 +51,5 @@ pub fn satisfiable(_a: &Rule) -> Option<bool> {
     None
 }
 pub fn to_diagnostic(d: &RuleDiagnostic, offset: usize) -> crate::diag::Diagnostic {
-    crate::diag::Diagnostic::error(
-        d.code,
-        d.message.clone(),
-        d.span.start + offset..d.span.end + offset,
-    )
+    crate::diag::Diagnostic::error(d.code, d.message.clone(), d.span.start + offset..d.span.end + offset)
 }
