@@ -1,0 +1,1 @@
+//! Daylight saving time.
