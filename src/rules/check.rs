@@ -251,7 +251,7 @@ impl Checker<'_> {
                                     duration.span.clone(),
                                 )
                                 .label("zero duration")
-                                .secondary(cond.span.clone(), "this is true as soon as it is true")
+                                .secondary(cond.span.clone(), "counts at once, with no hold")
                                 .note(
                                     "remove `for 0s`, or give a real hold time such as `for 30s`",
                                 ),
@@ -359,7 +359,13 @@ impl Checker<'_> {
                     name_span.clone(),
                 )
                 .label("no such function");
-                if let Some(better) = did_you_mean(name, ["avg", "min", "max"]) {
+                let alias = match name {
+                    "average" | "mean" => Some("avg"),
+                    "minimum" => Some("min"),
+                    "maximum" => Some("max"),
+                    _ => did_you_mean(name, ["avg", "min", "max"]),
+                };
+                if let Some(better) = alias {
                     d = d.note(format!("did you mean `{better}`?"));
                 }
                 d.note("the functions are avg, min and max, as in `avg(surplus, 5min)`")
@@ -695,7 +701,7 @@ impl Checker<'_> {
             bare.span.clone(),
         )
         .label("needs a unit")
-        .secondary(other.span.clone(), format!("this is {}", dim.describe()));
+        .secondary(other.span.clone(), self.is_label(other, Type::Number(dim)));
         if let Some(help) = format::unit_suggestion(value, dim) {
             d = d.note(help);
         }

@@ -183,17 +183,23 @@ impl Parser<'_> {
         Ok(())
     }
 
-    /// The error for a missing operand after `after`.
+    /// Where to point for token `t`: the end of the rule is shown as its last
+    /// character, so the caret is visible.
+    fn at(&self, t: &Token) -> Range<usize> {
+        if t.tok == Tok::Eof {
+            let end = self.text.trim_end().len();
+            let start = self.text[..end].char_indices().last().map_or(0, |(i, _)| i);
+            start..end
+        } else {
+            t.span.clone()
+        }
+    }
+
+    /// The error for a missing operand.
     fn expected_operand(&self, what: &str) -> RuleDiagnostic {
         let t = self.token();
         let found = self.describe(t);
-        let span = if t.tok == Tok::Eof {
-            // Point at the last real character so the caret is visible.
-            let end = self.text.trim_end().len();
-            end.saturating_sub(1)..end
-        } else {
-            t.span.clone()
-        };
+        let span = self.at(t);
         let label = if t.tok == Tok::Eof {
             format!("expected {what} after this")
         } else {
@@ -314,7 +320,7 @@ impl Parser<'_> {
                 return Err(error(
                     "R0106",
                     format!("expected `,` or `]`, found {}", self.describe(t)),
-                    t.span.clone(),
+                    self.at(t),
                 )
                 .label("the list is not closed")
                 .secondary(open.span, "the list starts here"));
@@ -338,7 +344,7 @@ impl Parser<'_> {
             return Err(error(
                 "R0105",
                 format!("expected `..` in a range, found {}", self.describe(t)),
-                t.span.clone(),
+                self.at(t),
             )
             .label("expected `..` here")
             .secondary(lo.span.clone(), "the range starts here")
@@ -432,7 +438,7 @@ impl Parser<'_> {
                     return Err(error(
                         "R0106",
                         format!("expected `)`, found {}", self.describe(found)),
-                        found.span.clone(),
+                        self.at(found),
                     )
                     .label("expected `)` here")
                     .secondary(t.span, "this `(` is not closed"));
@@ -471,7 +477,7 @@ impl Parser<'_> {
             return Err(error(
                 "R0106",
                 format!("expected `,` or `)`, found {}", self.describe(t)),
-                t.span.clone(),
+                self.at(t),
             )
             .label("expected `)` here")
             .secondary(open.span, "this `(` is not closed"));
