@@ -168,7 +168,7 @@ pub fn compile_as(
         match parser::parse(text, &tokens) {
             Ok(expr) => check::check(text, &expr, scope, expected, &mut diags),
             Err(d) => {
-                diags.push(d);
+                diags.push(*d);
                 None
             }
         }

@@ -96,7 +96,8 @@ pub(crate) enum ExprKind {
 }
 
 /// Parses a whole rule. Lexer tokens must end in `Eof`.
-pub(crate) fn parse(text: &str, tokens: &[Token]) -> Result<Expr, RuleDiagnostic> {
+/// The error is boxed: diagnostics are large and the happy path should not pay for them.
+pub(crate) fn parse(text: &str, tokens: &[Token]) -> PResult {
     let mut p = Parser {
         text,
         tokens,
@@ -104,9 +105,11 @@ pub(crate) fn parse(text: &str, tokens: &[Token]) -> Result<Expr, RuleDiagnostic
         depth: 0,
     };
     if p.peek() == &Tok::Eof {
-        return Err(error("R0109", "the rule is empty", 0..text.len())
-            .label("nothing here")
-            .note("write a condition such as `surplus > 3kW`"));
+        return fail(
+            error("R0109", "the rule is empty", 0..text.len())
+                .label("nothing here")
+                .note("write a condition such as `surplus > 3kW`"),
+        );
     }
     let expr = p.or_expr()?;
     if p.peek() != &Tok::Eof {
@@ -127,7 +130,7 @@ pub(crate) fn parse(text: &str, tokens: &[Token]) -> Result<Expr, RuleDiagnostic
             .secondary(expr.span.clone(), "this is a complete condition")
             .note("join conditions with `and` or `or`"),
         };
-        return Err(d);
+        return fail(d);
     }
     Ok(expr)
 }
@@ -139,7 +142,11 @@ struct Parser<'a> {
     depth: usize,
 }
 
-type PResult = Result<Expr, RuleDiagnostic>;
+type PResult = Result<Expr, Box<RuleDiagnostic>>;
+
+fn fail<T>(d: RuleDiagnostic) -> Result<T, Box<RuleDiagnostic>> {
+    Err(Box::new(d))
+}
 
 fn join(a: &Range<usize>, b: &Range<usize>) -> Range<usize> {
     a.start.min(b.start)..a.end.max(b.end)
@@ -173,12 +180,14 @@ impl Parser<'_> {
         }
     }
 
-    fn enter(&mut self, span: Range<usize>) -> Result<(), RuleDiagnostic> {
+    fn enter(&mut self, span: Range<usize>) -> Result<(), Box<RuleDiagnostic>> {
         self.depth += 1;
         if self.depth > MAX_DEPTH {
-            return Err(error("R0113", "the rule nests too deeply", span)
-                .label(format!("more than {MAX_DEPTH} levels of nesting"))
-                .note("simplify the rule"));
+            return fail(
+                error("R0113", "the rule nests too deeply", span)
+                    .label(format!("more than {MAX_DEPTH} levels of nesting"))
+                    .note("simplify the rule"),
+            );
         }
         Ok(())
     }
@@ -248,9 +257,10 @@ impl Parser<'_> {
         while self.peek() == &Tok::For {
             self.bump();
             if matches!(self.peek(), Tok::Eof | Tok::And | Tok::Or | Tok::RParen) {
-                return Err(self
-                    .expected_operand("a duration")
-                    .note("write how long the condition must hold, as in `for 30s`"));
+                return fail(
+                    self.expected_operand("a duration")
+                        .note("write how long the condition must hold, as in `for 30s`"),
+                );
             }
             let duration = self.unary()?;
             let span = join(&cond.span, &duration.span);
@@ -288,7 +298,7 @@ impl Parser<'_> {
         };
         if Self::cmp_op(self.peek()).is_some() || self.peek() == &Tok::In {
             let t = self.token();
-            return Err(
+            return fail(
                 error("R0107", "comparisons cannot be chained", t.span.clone())
                     .label("a second comparison")
                     .secondary(expr.span.clone(), "this is already a comparison")
@@ -317,13 +327,15 @@ impl Parser<'_> {
             }
             if self.peek() != &Tok::RBracket {
                 let t = self.token();
-                return Err(error(
-                    "R0106",
-                    format!("expected `,` or `]`, found {}", self.describe(t)),
-                    self.at(t),
-                )
-                .label("the list is not closed")
-                .secondary(open.span, "the list starts here"));
+                return fail(
+                    error(
+                        "R0106",
+                        format!("expected `,` or `]`, found {}", self.describe(t)),
+                        self.at(t),
+                    )
+                    .label("the list is not closed")
+                    .secondary(open.span, "the list starts here"),
+                );
             }
             let close = self.bump();
             self.depth -= 1;
@@ -334,21 +346,24 @@ impl Parser<'_> {
             });
         }
         if self.peek() == &Tok::Eof {
-            return Err(self
-                .expected_operand("a range or a list")
-                .note("write `clock in 10:00..16:00` or `weekday in [sat, sun]`"));
+            return fail(
+                self.expected_operand("a range or a list")
+                    .note("write `clock in 10:00..16:00` or `weekday in [sat, sun]`"),
+            );
         }
         let lo = self.sum()?;
         if self.peek() != &Tok::DotDot {
             let t = self.token();
-            return Err(error(
-                "R0105",
-                format!("expected `..` in a range, found {}", self.describe(t)),
-                self.at(t),
-            )
-            .label("expected `..` here")
-            .secondary(lo.span.clone(), "the range starts here")
-            .note("write a range as `10:00..16:00` or `mon..fri`, a list as `[sat, sun]`"));
+            return fail(
+                error(
+                    "R0105",
+                    format!("expected `..` in a range, found {}", self.describe(t)),
+                    self.at(t),
+                )
+                .label("expected `..` here")
+                .secondary(lo.span.clone(), "the range starts here")
+                .note("write a range as `10:00..16:00` or `mon..fri`, a list as `[sat, sun]`"),
+            );
         }
         self.bump();
         let hi = self.sum()?;
@@ -435,20 +450,22 @@ impl Parser<'_> {
                 let inner = self.or_expr()?;
                 if self.peek() != &Tok::RParen {
                     let found = self.token();
-                    return Err(error(
-                        "R0106",
-                        format!("expected `)`, found {}", self.describe(found)),
-                        self.at(found),
-                    )
-                    .label("expected `)` here")
-                    .secondary(t.span, "this `(` is not closed"));
+                    return fail(
+                        error(
+                            "R0106",
+                            format!("expected `)`, found {}", self.describe(found)),
+                            self.at(found),
+                        )
+                        .label("expected `)` here")
+                        .secondary(t.span, "this `(` is not closed"),
+                    );
                 }
                 self.bump();
                 self.depth -= 1;
                 return Ok(inner);
             }
             _ => {
-                return Err(self
+                return fail(self
                     .expected_operand("a value")
                     .note("a value is a name, a number with its unit, a time such as 10:00, a weekday, or `(`…`)`"));
             }
@@ -474,13 +491,15 @@ impl Parser<'_> {
         }
         if self.peek() != &Tok::RParen {
             let t = self.token();
-            return Err(error(
-                "R0106",
-                format!("expected `,` or `)`, found {}", self.describe(t)),
-                self.at(t),
-            )
-            .label("expected `)` here")
-            .secondary(open.span, "this `(` is not closed"));
+            return fail(
+                error(
+                    "R0106",
+                    format!("expected `,` or `)`, found {}", self.describe(t)),
+                    self.at(t),
+                )
+                .label("expected `)` here")
+                .secondary(open.span, "this `(` is not closed"),
+            );
         }
         let close = self.bump();
         self.depth -= 1;
