@@ -174,23 +174,24 @@ impl Model {
             },
         };
         match p.nodes[i as usize] {
-            Node::Slot(s) | Node::BoolSlot(s) => {
-                Some(self.var(Key::Slot(s), domain_of(meta.ty), true))
-            }
+            Node::Slot(s)
+            | Node::BoolSlot(s)
+            | Node::RatioSlot(s)
+            | Node::TimeSlot(s)
+            | Node::DaySlot(s) => Some(self.var(Key::Slot(s), domain_of(meta.ty), true)),
             Node::Clock => Some(self.var(Key::Clock, domain_of(Type::TimeOfDay), false)),
             Node::Weekday => Some(self.var(Key::Weekday, Domain::Days, false)),
             Node::Agg { input, .. } => match mode {
                 // A steady signal's window is the signal itself.
-                Mode::Steady => match p.nodes[input as usize] {
-                    Node::Slot(_) => self.value_var(p, input, mode),
-                    _ => None,
-                },
+                Mode::Steady if is_slot(&p.nodes[input as usize]) => self.value_var(p, input, mode),
+                Mode::Steady => None,
                 // Handled by `formula`: a window is unknown at the first tick.
                 Mode::Start => None,
                 Mode::Free => {
-                    let domain = match p.nodes[input as usize] {
-                        Node::Slot(_) => domain_of(p.meta[input as usize].ty),
-                        _ => domain_of(Type::Number(Dimension::Scalar)),
+                    let domain = if is_slot(&p.nodes[input as usize]) {
+                        domain_of(p.meta[input as usize].ty)
+                    } else {
+                        domain_of(Type::Number(Dimension::Scalar))
                     };
                     Some(self.var(
                         Key::Text(format!("window {}", describe(p, i))),
@@ -391,6 +392,11 @@ pub(crate) fn constant(p: &Program, i: u32) -> Option<f64> {
         }
         _ => return None,
     })
+}
+
+/// A numeric signal read straight from the engine's table.
+fn is_slot(n: &Node) -> bool {
+    matches!(n, Node::Slot(_) | Node::RatioSlot(_))
 }
 
 /// Whether the numeric subtree `i` reads a window (an aggregate operand, possibly

@@ -279,10 +279,14 @@ impl Checker<'_> {
             "clock" => Some((Node::Clock, Type::TimeOfDay, None)),
             "weekday" => Some((Node::Weekday, Type::Weekday, None)),
             _ => self.scope.lookup(name).map(|(slot, ty)| {
-                let node = if ty == Type::Bool {
-                    Node::BoolSlot(slot.0)
-                } else {
-                    Node::Slot(slot.0)
+                // Signals with a bounded domain are read through a node that keeps them
+                // inside it, so that evaluation agrees with the static analysis.
+                let node = match ty {
+                    Type::Bool => Node::BoolSlot(slot.0),
+                    Type::Number(Dimension::Ratio) => Node::RatioSlot(slot.0),
+                    Type::TimeOfDay => Node::TimeSlot(slot.0),
+                    Type::Weekday => Node::DaySlot(slot.0),
+                    Type::Number(_) => Node::Slot(slot.0),
                 };
                 (node, ty, Some(slot))
             }),

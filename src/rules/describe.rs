@@ -69,7 +69,11 @@ fn write_node(p: &Program, i: u32, out: &mut String) {
     let child_level = |c: u32| level(&p.nodes[c as usize]);
     match node {
         Node::Const(c) => out.push_str(&constant(p, i, c)),
-        Node::Slot(_) | Node::BoolSlot(_) => {
+        Node::Slot(_)
+        | Node::BoolSlot(_)
+        | Node::RatioSlot(_)
+        | Node::TimeSlot(_)
+        | Node::DaySlot(_) => {
             out.push_str(p.meta[i as usize].name.as_deref().unwrap_or("?"));
         }
         Node::Clock => out.push_str("clock"),
@@ -193,9 +197,13 @@ impl Explainer<'_> {
         let text = describe(self.p, i);
         match self.p.nodes[i as usize] {
             Node::Const(_) => text,
-            Node::Slot(_) | Node::BoolSlot(_) | Node::Clock | Node::Weekday => {
-                format!("{text} {}", self.show(i))
-            }
+            Node::Slot(_)
+            | Node::BoolSlot(_)
+            | Node::RatioSlot(_)
+            | Node::TimeSlot(_)
+            | Node::DaySlot(_)
+            | Node::Clock
+            | Node::Weekday => format!("{text} {}", self.show(i)),
             _ => format!("{text} = {}", self.show(i)),
         }
     }
@@ -215,7 +223,13 @@ impl Explainer<'_> {
         let t = truth_of(self.value(i));
         match p.nodes[i as usize] {
             Node::Const(_) => out.push_str(&self.show(i)),
-            Node::BoolSlot(_) | Node::Slot(_) | Node::Clock | Node::Weekday => {
+            Node::BoolSlot(_)
+            | Node::Slot(_)
+            | Node::RatioSlot(_)
+            | Node::TimeSlot(_)
+            | Node::DaySlot(_)
+            | Node::Clock
+            | Node::Weekday => {
                 let _ = write!(out, "{} is {}", describe(p, i), self.show(i));
             }
             Node::Not(a) => self.node(a, out),

@@ -245,15 +245,8 @@ impl Lexer<'_, '_> {
             .chars()
             .filter(|&c| c != '_')
             .collect();
+        // Too many digits parse to infinity, reported below with the unit.
         let value: f64 = digits.parse().unwrap_or(f64::INFINITY);
-        if !value.is_finite() {
-            self.diags.push(
-                error("R0104", "this number is too large", start..number_end)
-                    .label("not a finite number"),
-            );
-            self.push(Tok::Invalid, start);
-            return;
-        }
         // The unit, attached (`3kW`) or after blanks (`3 kW`).
         let mut unit_start = self.pos;
         while let Some(c) = self.text[unit_start..].chars().next() {
@@ -277,6 +270,10 @@ impl Lexer<'_, '_> {
                         .is_some_and(|c| is_name_char(c) || c == '.')));
         if !is_unit {
             self.pos = number_end;
+            if !value.is_finite() {
+                self.too_large(start);
+                return;
+            }
             self.push(
                 Tok::Number {
                     value,
@@ -289,6 +286,7 @@ impl Lexer<'_, '_> {
         }
         self.pos = unit_end;
         match units::unit(symbol) {
+            Some((_, factor)) if !(value * factor).is_finite() => self.too_large(start),
             Some((dimension, factor)) => self.push(
                 Tok::Number {
                     value: value * factor,
@@ -313,6 +311,15 @@ impl Lexer<'_, '_> {
                 self.push(Tok::Invalid, start);
             }
         }
+    }
+
+    /// Reports a number (with its unit) that does not fit in an f64.
+    fn too_large(&mut self, start: usize) {
+        self.diags.push(
+            error("R0104", "this number is too large", start..self.pos)
+                .label("not a finite number"),
+        );
+        self.push(Tok::Invalid, start);
     }
 
     /// `HH:MM`, already past the hour digits.

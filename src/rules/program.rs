@@ -76,6 +76,12 @@ pub(crate) enum Node {
     Slot(u32),
     /// A boolean from the engine's table: any non-zero number is true.
     BoolSlot(u32),
+    /// A percentage from the engine's table, clamped into 0–100 %.
+    RatioSlot(u32),
+    /// A time of day from the engine's table; unknown outside 0 ≤ t < 86400 s.
+    TimeSlot(u32),
+    /// A weekday from the engine's table; unknown unless a whole number 0–6.
+    DaySlot(u32),
     /// The local time of day, seconds since midnight.
     Clock,
     /// The local weekday, 0 = Monday.
@@ -111,9 +117,14 @@ impl Node {
     /// The operands of this node, in order.
     pub(crate) fn children(&self) -> impl Iterator<Item = u32> {
         let (a, b, c) = match *self {
-            Node::Const(_) | Node::Slot(_) | Node::BoolSlot(_) | Node::Clock | Node::Weekday => {
-                (None, None, None)
-            }
+            Node::Const(_)
+            | Node::Slot(_)
+            | Node::BoolSlot(_)
+            | Node::RatioSlot(_)
+            | Node::TimeSlot(_)
+            | Node::DaySlot(_)
+            | Node::Clock
+            | Node::Weekday => (None, None, None),
             Node::Neg(x) | Node::Not(x) | Node::InSet(x, _) => (Some(x), None, None),
             Node::Hold { input, .. } | Node::Agg { input, .. } => (Some(input), None, None),
             Node::Arith(_, x, y) | Node::Cmp(_, x, y) | Node::And(x, y) | Node::Or(x, y) => {
@@ -148,6 +159,9 @@ pub(crate) struct Program {
     pub slots: Vec<Slot>,
     pub horizon_ms: i64,
 }
+
+/// Seconds in a day on the wall clock.
+const DAY_SECONDS: u32 = 86_400;
 
 /// No hold in progress.
 pub(crate) const NOT_HOLDING: i64 = i64::MIN;
@@ -216,7 +230,9 @@ impl Program {
             // Time went backwards (a clock was set): no timer or window can be trusted.
             state.restart();
         }
-        let clock = f64::from(input.local.seconds_of_day);
+        // The contract says 0..86400; clamping keeps a stray 86400 (or more) inside the
+        // day, where the static analysis assumes the clock is.
+        let clock = f64::from(input.local.seconds_of_day.min(DAY_SECONDS - 1));
         let weekday = f64::from(input.local.weekday.num_days_from_monday());
         let v = &mut state.values;
         for (i, node) in self.nodes.iter().enumerate() {
@@ -226,6 +242,27 @@ impl Program {
                 Node::BoolSlot(s) => {
                     let raw = input.values.get(s as usize).copied().unwrap_or(f64::NAN);
                     if raw.is_nan() { raw } else { truth(raw != 0.0) }
+                }
+                Node::RatioSlot(s) => {
+                    // NaN passes through `clamp` unchanged.
+                    let raw = input.values.get(s as usize).copied().unwrap_or(f64::NAN);
+                    raw.clamp(0.0, 100.0)
+                }
+                Node::TimeSlot(s) => {
+                    let raw = input.values.get(s as usize).copied().unwrap_or(f64::NAN);
+                    if (0.0..f64::from(DAY_SECONDS)).contains(&raw) {
+                        raw
+                    } else {
+                        f64::NAN
+                    }
+                }
+                Node::DaySlot(s) => {
+                    let raw = input.values.get(s as usize).copied().unwrap_or(f64::NAN);
+                    if (0.0..7.0).contains(&raw) && raw.fract() == 0.0 {
+                        raw
+                    } else {
+                        f64::NAN
+                    }
                 }
                 Node::Clock => clock,
                 Node::Weekday => weekday,

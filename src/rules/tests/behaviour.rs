@@ -552,3 +552,36 @@ fn steady_state_evaluation_keeps_its_buffers() {
         "no buffer grew after warm-up"
     );
 }
+
+#[test]
+fn rules_are_bounded_in_length_and_nesting() {
+    let deep = format!("{}tank.on{}", "(".repeat(40), ")".repeat(40));
+    assert_eq!(codes(&errors(&deep)), ["R0113"]);
+    let long = vec!["tank.on"; 200].join(" and ");
+    assert_eq!(codes(&errors(&long)), ["R0114"]);
+    let fine = vec!["tank.on"; 100].join(" and ");
+    assert_eq!(rule(&fine).describe(), fine);
+}
+
+#[test]
+fn bounded_signals_are_kept_inside_their_domain() {
+    // A percentage glitching past 100 % reads as 100 %, so `soc > 100%` stays false
+    // as the analysis promises.
+    let mut r = Run::new("soc >= 100% and not (soc > 100%)");
+    assert_eq!(r.set("soc", 104.0).at(0.0), True);
+    // A time of day outside the day is no time at all.
+    let mut r = Run::new("sunset >= 00:00");
+    assert_eq!(r.set("sunset", -60.0).at(0.0), Unknown);
+    assert_eq!(r.set("sunset", 90_000.0).at(1.0), Unknown);
+    assert_eq!(r.set("sunset", 3600.0).at(2.0), True);
+    // A clock reading past the end of the day stays in its last second.
+    let mut r = Run::new("clock < 24:00");
+    r.at(0.0);
+    r.clock.seconds_of_day = 86_400;
+    let input = crate::rules::EvalInput {
+        values: &r.values,
+        now: crate::units::Timestamp::from_millis(r.now_ms + 1000),
+        local: r.clock,
+    };
+    assert_eq!(r.rule.eval(&input, &mut r.state), True);
+}

@@ -190,6 +190,30 @@ proptest! {
     }
 
     #[test]
+    fn implies_is_never_contradicted_by_a_run(
+        a in condition(),
+        b in condition(),
+        ticks in prop::collection::vec(tick(false), 1..12),
+    ) {
+        let (ra, rb) = (compiled(&a)?, compiled(&b)?);
+        // Also try `a` against a weakening of itself, which implication must accept.
+        let weaker = compiled(&format!("({a}) or ({b})"))?;
+        prop_assert_ne!(implies(&ra, &weaker), Some(false), "{} must imply its weakening", a);
+        for (other, text) in [(&rb, &b), (&weaker, &b)] {
+            if implies(&ra, other) == Some(true) {
+                let x = run(&ra, &ticks);
+                let y = run(other, &ticks);
+                for ((ta, _), (tb, _)) in x.iter().zip(&y) {
+                    prop_assert!(
+                        *ta != Truth::True || *tb == Truth::True,
+                        "{} was said to imply {} but a run disagrees", a, text
+                    );
+                }
+            }
+        }
+    }
+
+    #[test]
     fn arbitrary_text_never_panics_the_compiler(text in "\\PC{0,60}") {
         let _ = compile(&text, &Site);
     }
