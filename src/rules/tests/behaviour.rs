@@ -585,3 +585,24 @@ fn bounded_signals_are_kept_inside_their_domain() {
     };
     assert_eq!(r.rule.eval(&input, &mut r.state), True);
 }
+
+#[test]
+fn the_documented_examples_compile_without_warnings() {
+    let doc = include_str!("../../../docs/rules.md");
+    let examples = doc
+        .split("## Examples")
+        .nth(1)
+        .and_then(|rest| rest.split("```text").nth(1))
+        .and_then(|block| block.split("```").next())
+        .unwrap_or_default();
+    let rules: Vec<&str> = examples
+        .lines()
+        .map(str::trim)
+        .filter(|l| !l.is_empty() && !l.starts_with('#'))
+        .collect();
+    assert!(rules.len() >= 10, "found {} examples", rules.len());
+    for text in rules {
+        let c = compiled(text);
+        assert!(c.warnings.is_empty(), "{text}: {:?}", c.warnings);
+    }
+}

@@ -4,6 +4,7 @@
 
 use chrono::Weekday;
 use proptest::prelude::*;
+use proptest::test_runner::FileFailurePersistence;
 
 use crate::rules::tests::support::{NAMES, Site};
 use crate::rules::{EvalInput, LocalClock, Rule, Truth, compile, implies, satisfiable};
@@ -147,7 +148,13 @@ fn compiled(text: &str) -> Result<Rule, TestCaseError> {
 }
 
 proptest! {
-    #![proptest_config(ProptestConfig { cases: 256, ..ProptestConfig::default() })]
+    // Failing seeds are kept beside this file (props.regressions), inside the rules
+    // module, and replayed first on the next run.
+    #![proptest_config(ProptestConfig {
+        cases: 256,
+        failure_persistence: Some(Box::new(FileFailurePersistence::WithSource("regressions"))),
+        ..ProptestConfig::default()
+    })]
 
     #[test]
     fn describe_reads_back_to_the_same_rule(

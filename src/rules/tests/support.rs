@@ -26,6 +26,8 @@ pub(crate) const NAMES: &[(&str, Type)] = &[
     ("pool.on", Type::Bool),
     ("cycles", Type::Number(Dimension::Scalar)),
     ("sunset", Type::TimeOfDay),
+    ("pool.runtime_today", Type::Number(Dimension::Duration)),
+    ("battery.current", Type::Number(Dimension::Current)),
 ];
 
 /// A scope over [`NAMES`]: slot `i` is the `i`-th name.
