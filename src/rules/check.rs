@@ -92,10 +92,7 @@ fn horizon(nodes: &[Node]) -> i64 {
             _ => below,
         };
     }
-    h.last()
-        .copied()
-        .unwrap_or(0)
-        .max(h.iter().copied().max().unwrap_or(0))
+    h.iter().copied().max().unwrap_or(0)
 }
 
 /// "a power", "a time of day", "a condition".

@@ -129,13 +129,8 @@ fn write_node(p: &Program, i: u32, out: &mut String) {
         }
         Node::InSet(x, mask) => {
             write_child(p, x, child_level(x) <= Level::Compare, out);
-            out.push_str(" in [");
-            let days: Vec<&str> = (0..7u8)
-                .filter(|d| mask & (1 << d) != 0)
-                .map(|d| format::weekday(f64::from(d)))
-                .collect();
-            out.push_str(&days.join(", "));
-            out.push(']');
+            out.push_str(" in ");
+            out.push_str(&day_list(mask));
         }
         Node::Agg {
             kind, input, ms, ..
@@ -147,6 +142,16 @@ fn write_node(p: &Program, i: u32, out: &mut String) {
     }
 }
 
+/// `[sat, sun]`: the days of a weekday set, Monday first.
+fn day_list(mask: u8) -> String {
+    let days: Vec<&str> = (0..7u8)
+        .filter(|d| mask & (1 << d) != 0)
+        .map(|d| format::weekday(f64::from(d)))
+        .collect();
+    format!("[{}]", days.join(", "))
+}
+
+/// A rule value as three-valued truth: NaN is unknown, any other non-zero is true.
 pub(crate) fn truth_of(v: f64) -> Truth {
     if v.is_nan() {
         Truth::Unknown
@@ -327,15 +332,13 @@ impl Explainer<'_> {
                     describe(p, hi)
                 );
             }
-            Node::InSet(x, _) => {
+            Node::InSet(x, mask) => {
                 if t == Truth::Unknown {
                     out.push_str(&self.unknown(x));
                     return;
                 }
-                let text = describe(p, i);
-                let list = text.rsplit(" in ").next().unwrap_or("");
                 let not = if t == Truth::True { "" } else { "not " };
-                let _ = write!(out, "{} is {not}in {list}", self.operand(x));
+                let _ = write!(out, "{} is {not}in {}", self.operand(x), day_list(mask));
             }
             Node::Neg(_) | Node::Arith(..) | Node::Agg { .. } => {
                 let _ = write!(out, "{} = {}", describe(p, i), self.show(i));

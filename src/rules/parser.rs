@@ -433,7 +433,22 @@ impl Parser<'_> {
             Tok::Day(d) => ExprKind::Day(*d),
             Tok::True => ExprKind::Bool(true),
             Tok::False => ExprKind::Bool(false),
-            Tok::Invalid => ExprKind::Invalid,
+            Tok::Invalid => {
+                self.bump();
+                if self.peek() == &Tok::LParen {
+                    // `Avg(…)`: the name was reported; read its arguments so that the
+                    // parenthesis does not cause a second error.
+                    let call = self.call(String::new(), t.span)?;
+                    return Ok(Expr {
+                        kind: ExprKind::Invalid,
+                        span: call.span,
+                    });
+                }
+                return Ok(Expr {
+                    kind: ExprKind::Invalid,
+                    span: t.span,
+                });
+            }
             Tok::Name(name) => {
                 self.bump();
                 if self.peek() == &Tok::LParen {

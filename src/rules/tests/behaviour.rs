@@ -606,3 +606,15 @@ fn the_documented_examples_compile_without_warnings() {
         assert!(c.warnings.is_empty(), "{text}: {:?}", c.warnings);
     }
 }
+
+#[test]
+fn one_mistake_gives_one_error() {
+    assert_eq!(codes(&errors("Avg(surplus, 5min) > 1kW")), ["R0110"]);
+    assert_eq!(codes(&errors("surplus > 3kw and tank.on")), ["R0102"]);
+    assert_eq!(
+        codes(&errors("tank_tmp > 58°C and tank_tmp < 70°C")),
+        ["R0201", "R0201"]
+    );
+    assert_eq!(codes(&errors("(surplus > 3kw) for 30s")), ["R0102"]);
+    assert_eq!(codes(&errors("not surplus")), ["R0302"]);
+}
