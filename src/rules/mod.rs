@@ -14,8 +14,29 @@
 //!   stale or missing signal), and unknown propagates with Kleene logic.
 
 use std::ops::Range;
+use std::sync::Arc;
+use std::time::Duration;
 
 use crate::units::{Dimension, Timestamp};
+
+mod analysis;
+mod check;
+mod describe;
+mod diagnostic;
+mod format;
+mod lexer;
+mod parser;
+mod program;
+mod window;
+
+#[cfg(test)]
+mod tests;
+
+pub use analysis::{implies, satisfiable};
+pub use diagnostic::to_diagnostic;
+pub use program::RuleState;
+
+use program::Program;
 
 /// Where a name's value lives in the engine's value table.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
@@ -108,5 +129,124 @@ pub struct EvalInput<'a> {
     /// `now` in the site's time zone.
     pub local: LocalClock,
 }
-mod placeholder;
-pub use placeholder::*;
+
+/// A rule that passed every check, and the warnings found on the way.
+#[derive(Debug, Clone)]
+pub struct Compiled {
+    /// The rule, ready to evaluate.
+    pub rule: Rule,
+    /// Findings that do not stop the rule from being used (codes `R04xx`).
+    pub warnings: Vec<RuleDiagnostic>,
+}
+
+/// A compiled rule: immutable and cheap to clone or share between threads; the mutable
+/// side of an evaluation lives in a [`RuleState`].
+#[derive(Debug, Clone)]
+pub struct Rule {
+    program: Arc<Program>,
+}
+
+/// Compiles a rule, which must be a condition, against the names of `scope`.
+///
+/// On failure the vector holds every error found (and any warnings), sorted by
+/// position, each with its span inside `text`.
+pub fn compile(text: &str, scope: &dyn Scope) -> Result<Compiled, Vec<RuleDiagnostic>> {
+    compile_as(text, scope, Type::Bool)
+}
+
+/// Compiles an expression of the `expected` type: [`Type::Bool`] for a rule, or a
+/// number such as `Type::Number(Dimension::Power)` for a computed signal (read it with
+/// [`Rule::value`]). Same checks as [`compile`].
+pub fn compile_as(text: &str, scope: &dyn Scope, expected: Type) -> Result<Compiled, Vec<RuleDiagnostic>> {
+    let mut diags = Vec::new();
+    let (tokens, complete) = lexer::lex(text, &mut diags);
+    let program = if complete {
+        match parser::parse(text, &tokens) {
+            Ok(expr) => check::check(text, &expr, scope, expected, &mut diags),
+            Err(d) => {
+                diags.push(*d);
+                None
+            }
+        }
+    } else {
+        None
+    };
+    let program = match program {
+        Some(p) if !diags.iter().any(RuleDiagnostic::is_error) => p,
+        _ => {
+            diags.sort_by_key(|d| (d.span.start, d.span.end));
+            return Err(diags);
+        }
+    };
+    analysis::lint(&program, &mut diags);
+    diags.sort_by_key(|d| (d.span.start, d.span.end));
+    Ok(Compiled {
+        rule: Rule {
+            program: Arc::new(program),
+        },
+        warnings: diags,
+    })
+}
+
+impl Rule {
+    pub(crate) fn program(&self) -> &Program {
+        &self.program
+    }
+
+    /// The text the rule was compiled from.
+    pub fn source(&self) -> &str {
+        &self.program.source
+    }
+
+    /// The rule's type: [`Type::Bool`] for rules from [`compile`].
+    pub fn ty(&self) -> Type {
+        self.program.meta[self.program.root as usize].ty
+    }
+
+    /// Fresh timers and windows for evaluating this rule.
+    pub fn new_state(&self) -> RuleState {
+        RuleState::new(&self.program)
+    }
+
+    /// Evaluates the rule at one engine tick. Call it once per tick, with `now` never
+    /// going backwards: held-for timers and windows sample here. A second call at the
+    /// same instant re-evaluates without adding a sample; time going backwards restarts
+    /// every timer and window. Never allocates once the windows have grown to their
+    /// steady size.
+    pub fn eval(&self, input: &EvalInput<'_>, state: &mut RuleState) -> Truth {
+        describe::truth_of(self.program.run(input, state))
+    }
+
+    /// Like [`Rule::eval`], for an expression from [`compile_as`]: the value in base
+    /// units, `NaN` when unknown (for a condition: 1.0, 0.0 or `NaN`).
+    pub fn value(&self, input: &EvalInput<'_>, state: &mut RuleState) -> f64 {
+        self.program.run(input, state)
+    }
+
+    /// Every slot the rule reads, sorted, without repeats.
+    pub fn slots(&self) -> &[Slot] {
+        &self.program.slots
+    }
+
+    /// The canonical text: explicit grouping, normalised units, one space around
+    /// operators; `surplus > 3.2kW for 30s` becomes `(surplus > 3.2 kW) for 30 s`. It
+    /// compiles back to the same rule.
+    pub fn describe(&self) -> String {
+        describe::describe(&self.program, self.program.root)
+    }
+
+    /// Why the rule is what it is after the last [`Rule::eval`], with the values it saw:
+    /// `surplus 2.1 kW is not > 3.2 kW`, `surplus > 3.2 kW held 12 s of 30 s`.
+    ///
+    /// Reads only what that evaluation left in `state`; `input` is accepted so callers
+    /// pass the tick they are explaining, and is not re-evaluated.
+    pub fn explain(&self, _input: &EvalInput<'_>, state: &RuleState) -> String {
+        describe::explain(&self.program, state)
+    }
+
+    /// The longest chain of nested windows and holds: how much history the rule needs
+    /// before every part of it can be known.
+    pub fn horizon(&self) -> Duration {
+        Duration::from_millis(u64::try_from(self.program.horizon_ms).unwrap_or(0))
+    }
+}
