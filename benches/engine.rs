@@ -17,11 +17,7 @@ fn big_site() -> String {
          points:\n  grid: { device: meter, register: 0, type: i32, unit: W }\n  pv: { device: meter, register: 2, type: u32, unit: W }\n",
     );
     for i in 0..30 {
-        let _ = writeln!(
-            y,
-            "  t{i}: {{ device: meter, register: {}, type: i16, scale: 0.1, unit: °C }}",
-            10 + i
-        );
+        let _ = writeln!(y, "  t{i}: {{ device: meter, register: {}, type: i16, scale: 0.1, unit: °C }}", 10 + i);
     }
     y.push_str("loads:\n");
     for i in 0..16 {

@@ -74,11 +74,7 @@ fn values() -> Vec<[f64; 3]> {
     (0..1024)
         .map(|i| {
             let x = f64::from(i);
-            [
-                3200.0 + 400.0 * (x / 37.0).sin(),
-                50.0 + 6.0 * (x / 300.0).sin(),
-                if i % 97 < 50 { 1.0 } else { 0.0 },
-            ]
+            [3200.0 + 400.0 * (x / 37.0).sin(), 50.0 + 6.0 * (x / 300.0).sin(), if i % 97 < 50 { 1.0 } else { 0.0 }]
         })
         .collect()
 }
@@ -92,10 +88,7 @@ fn run(rule: &Rule, state: &mut spillway::rules::RuleState, table: &[[f64; 3]], 
         let input = EvalInput {
             values,
             now: Timestamp::from_millis(now * 1000),
-            local: LocalClock {
-                seconds_of_day: (now % 86_400) as u32,
-                weekday: Weekday::Mon,
-            },
+            local: LocalClock { seconds_of_day: (now % 86_400) as u32, weekday: Weekday::Mon },
         };
         if rule.eval(&input, state).is_true() {
             true_ticks += 1;
@@ -130,27 +123,19 @@ fn bench(c: &mut Criterion) {
             let input = EvalInput {
                 values: &table[(now as usize) % table.len()],
                 now: Timestamp::from_millis(now * 1000),
-                local: LocalClock {
-                    seconds_of_day: (now % 86_400) as u32,
-                    weekday: Weekday::Mon,
-                },
+                local: LocalClock { seconds_of_day: (now % 86_400) as u32, weekday: Weekday::Mon },
             };
             black_box(rule.eval(black_box(&input), &mut state))
         })
     });
-    c.bench_function("rules/compile typical rule", |b| {
-        b.iter(|| black_box(compile(black_box(RULE), &Site).is_ok()))
-    });
+    c.bench_function("rules/compile typical rule", |b| b.iter(|| black_box(compile(black_box(RULE), &Site).is_ok())));
     let mut short = rule.new_state();
     run(&rule, &mut short, &table, 0, 1_000);
     c.bench_function("rules/explain typical rule", |b| {
         let input = EvalInput {
             values: &table[0],
             now: Timestamp::from_millis(1_000_000),
-            local: LocalClock {
-                seconds_of_day: 0,
-                weekday: Weekday::Mon,
-            },
+            local: LocalClock { seconds_of_day: 0, weekday: Weekday::Mon },
         };
         b.iter(|| black_box(rule.explain(&input, &short)))
     });

@@ -52,10 +52,7 @@ impl Diagnostic {
             severity: Severity::Error,
             code,
             message: message.into(),
-            primary: LabelledSpan {
-                span,
-                message: String::new(),
-            },
+            primary: LabelledSpan { span, message: String::new() },
             secondary: Vec::new(),
             notes: Vec::new(),
         }
@@ -63,10 +60,7 @@ impl Diagnostic {
 
     /// A warning at `span`.
     pub fn warning(code: &'static str, message: impl Into<String>, span: Range<usize>) -> Self {
-        Diagnostic {
-            severity: Severity::Warning,
-            ..Diagnostic::error(code, message, span)
-        }
+        Diagnostic { severity: Severity::Warning, ..Diagnostic::error(code, message, span) }
     }
 
     /// Sets the text beside the primary underline.
@@ -77,10 +71,7 @@ impl Diagnostic {
 
     /// Adds a secondary labelled range.
     pub fn with_secondary(mut self, span: Range<usize>, message: impl Into<String>) -> Self {
-        self.secondary.push(LabelledSpan {
-            span,
-            message: message.into(),
-        });
+        self.secondary.push(LabelledSpan { span, message: message.into() });
         self
     }
 
@@ -123,20 +114,15 @@ fn clamp_span(text: &str, span: &Range<usize>) -> Range<usize> {
 /// source line and a caret, then the notes. `color` is for terminals.
 pub fn render(path: &str, text: &str, diagnostics: &[Diagnostic], color: bool) -> String {
     let mut out = Vec::new();
-    let config = Config::default()
-        .with_color(color)
-        .with_index_type(IndexType::Byte)
-        .with_compact(false);
+    let config = Config::default().with_color(color).with_index_type(IndexType::Byte).with_compact(false);
     for d in diagnostics {
         let kind = match d.severity {
             Severity::Error => ReportKind::Error,
             Severity::Warning => ReportKind::Warning,
         };
         let primary = clamp_span(text, &d.primary.span);
-        let mut report = Report::build(kind, (path, primary.clone()))
-            .with_config(config)
-            .with_code(d.code)
-            .with_message(&d.message);
+        let mut report =
+            Report::build(kind, (path, primary.clone())).with_config(config).with_code(d.code).with_message(&d.message);
         let mut label = Label::new((path, primary)).with_order(0);
         if !d.primary.message.is_empty() {
             label = label.with_message(&d.primary.message);
@@ -181,13 +167,7 @@ pub fn render_short(path: &str, text: &str, diagnostics: &[Diagnostic]) -> Strin
     let mut out = String::new();
     for d in diagnostics {
         let (line, col) = line_col(text, d.primary.span.start);
-        let _ = writeln!(
-            out,
-            "{path}:{line}:{col}: {}[{}]: {}",
-            severity_word(d.severity),
-            d.code,
-            d.message
-        );
+        let _ = writeln!(out, "{path}:{line}:{col}: {}[{}]: {}", severity_word(d.severity), d.code, d.message);
     }
     out
 }

@@ -89,94 +89,27 @@ struct UnitDef {
 }
 
 const UNITS: &[UnitDef] = &[
-    UnitDef {
-        symbol: "W",
-        dimension: Dimension::Power,
-        factor: 1.0,
-    },
-    UnitDef {
-        symbol: "kW",
-        dimension: Dimension::Power,
-        factor: 1e3,
-    },
-    UnitDef {
-        symbol: "MW",
-        dimension: Dimension::Power,
-        factor: 1e6,
-    },
-    UnitDef {
-        symbol: "Wh",
-        dimension: Dimension::Energy,
-        factor: 1.0,
-    },
-    UnitDef {
-        symbol: "kWh",
-        dimension: Dimension::Energy,
-        factor: 1e3,
-    },
-    UnitDef {
-        symbol: "MWh",
-        dimension: Dimension::Energy,
-        factor: 1e6,
-    },
-    UnitDef {
-        symbol: "°C",
-        dimension: Dimension::Temperature,
-        factor: 1.0,
-    },
-    UnitDef {
-        symbol: "degC",
-        dimension: Dimension::Temperature,
-        factor: 1.0,
-    },
-    UnitDef {
-        symbol: "%",
-        dimension: Dimension::Ratio,
-        factor: 1.0,
-    },
-    UnitDef {
-        symbol: "V",
-        dimension: Dimension::Voltage,
-        factor: 1.0,
-    },
-    UnitDef {
-        symbol: "A",
-        dimension: Dimension::Current,
-        factor: 1.0,
-    },
-    UnitDef {
-        symbol: "ms",
-        dimension: Dimension::Duration,
-        factor: 1e-3,
-    },
-    UnitDef {
-        symbol: "s",
-        dimension: Dimension::Duration,
-        factor: 1.0,
-    },
-    UnitDef {
-        symbol: "min",
-        dimension: Dimension::Duration,
-        factor: 60.0,
-    },
-    UnitDef {
-        symbol: "h",
-        dimension: Dimension::Duration,
-        factor: 3600.0,
-    },
-    UnitDef {
-        symbol: "d",
-        dimension: Dimension::Duration,
-        factor: 86400.0,
-    },
+    UnitDef { symbol: "W", dimension: Dimension::Power, factor: 1.0 },
+    UnitDef { symbol: "kW", dimension: Dimension::Power, factor: 1e3 },
+    UnitDef { symbol: "MW", dimension: Dimension::Power, factor: 1e6 },
+    UnitDef { symbol: "Wh", dimension: Dimension::Energy, factor: 1.0 },
+    UnitDef { symbol: "kWh", dimension: Dimension::Energy, factor: 1e3 },
+    UnitDef { symbol: "MWh", dimension: Dimension::Energy, factor: 1e6 },
+    UnitDef { symbol: "°C", dimension: Dimension::Temperature, factor: 1.0 },
+    UnitDef { symbol: "degC", dimension: Dimension::Temperature, factor: 1.0 },
+    UnitDef { symbol: "%", dimension: Dimension::Ratio, factor: 1.0 },
+    UnitDef { symbol: "V", dimension: Dimension::Voltage, factor: 1.0 },
+    UnitDef { symbol: "A", dimension: Dimension::Current, factor: 1.0 },
+    UnitDef { symbol: "ms", dimension: Dimension::Duration, factor: 1e-3 },
+    UnitDef { symbol: "s", dimension: Dimension::Duration, factor: 1.0 },
+    UnitDef { symbol: "min", dimension: Dimension::Duration, factor: 60.0 },
+    UnitDef { symbol: "h", dimension: Dimension::Duration, factor: 3600.0 },
+    UnitDef { symbol: "d", dimension: Dimension::Duration, factor: 86400.0 },
 ];
 
 /// Looks a unit symbol up: its dimension and the factor that turns it into the base unit.
 pub fn unit(symbol: &str) -> Option<(Dimension, f64)> {
-    UNITS
-        .iter()
-        .find(|u| u.symbol == symbol)
-        .map(|u| (u.dimension, u.factor))
+    UNITS.iter().find(|u| u.symbol == symbol).map(|u| (u.dimension, u.factor))
 }
 
 /// Every unit symbol, for "did you mean" hints and documentation.
@@ -220,11 +153,7 @@ fn format_quantity(f: &mut fmt::Formatter<'_>, value: f64, dimension: Dimension)
         other => (value, other.base_unit()),
     };
     let text = trim_number(scaled);
-    if symbol.is_empty() {
-        f.write_str(&text)
-    } else {
-        write!(f, "{text} {symbol}")
-    }
+    if symbol.is_empty() { f.write_str(&text) } else { write!(f, "{text} {symbol}") }
 }
 
 /// Formats a number with at most three decimals and no trailing zeros.

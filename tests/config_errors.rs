@@ -82,8 +82,5 @@ fn every_error_of_a_file_is_reported_in_one_run() {
     else {
         panic!("expected errors")
     };
-    assert!(
-        diagnostics.iter().filter(|d| d.is_error()).count() >= 4,
-        "{diagnostics:#?}"
-    );
+    assert!(diagnostics.iter().filter(|d| d.is_error()).count() >= 4, "{diagnostics:#?}");
 }

@@ -96,9 +96,7 @@ pub fn parse(text: &str, kind: Kind) -> Result<f64, String> {
         .map_or(text.len(), |(i, _)| i);
     let (number, symbol) = text.split_at(split);
     let number: String = number.chars().filter(|&c| c != '_').collect();
-    let value: f64 = number
-        .parse()
-        .map_err(|_| format!("expected {}, found `{text}`", kind.describe()))?;
+    let value: f64 = number.parse().map_err(|_| format!("expected {}, found `{text}`", kind.describe()))?;
     let symbol = symbol.trim();
     if symbol.is_empty() {
         return Ok(value);
@@ -106,10 +104,7 @@ pub fn parse(text: &str, kind: Kind) -> Result<f64, String> {
     match TABLE.iter().find(|(s, _, _)| *s == symbol) {
         Some((_, k, factor)) if *k == kind => Ok(value * factor),
         Some(_) => Err(format!("`{text}` has the wrong unit: expected {}", kind.describe())),
-        None => Err(format!(
-            "unknown unit `{symbol}` in `{text}`: expected {}",
-            kind.describe()
-        )),
+        None => Err(format!("unknown unit `{symbol}` in `{text}`: expected {}", kind.describe())),
     }
 }
 

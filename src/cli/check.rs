@@ -10,15 +10,7 @@ pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
     match config::load_file(path) {
         Ok(loaded) => {
             if !loaded.warnings.is_empty() {
-                eprint!(
-                    "{}",
-                    diag::render(
-                        &loaded.source.path,
-                        &loaded.source.text,
-                        &loaded.warnings,
-                        super::color()
-                    )
-                );
+                eprint!("{}", diag::render(&loaded.source.path, &loaded.source.text, &loaded.warnings, super::color()));
             }
             if !quiet {
                 print!("{}", config::describe::describe(&loaded.site));

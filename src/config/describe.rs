@@ -17,10 +17,7 @@ pub fn describe(site: &Site) -> String {
                 ExportPolicy::Forbidden => "export forbidden".to_owned(),
                 ExportPolicy::Limited(p) => format!("export limited to {p}"),
             };
-            format!(
-                "grid-tied{}, {export}",
-                if backup.is_some() { " with backup" } else { "" }
-            )
+            format!("grid-tied{}, {export}", if backup.is_some() { " with backup" } else { "" })
         }
         Connection::OffGrid(og) => format!(
             "off-grid: float at {} (−{} to leave), full at {}, battery takes up to {} before dump loads, {} assumed spare in float",
@@ -97,7 +94,7 @@ pub fn describe(site: &Site) -> String {
                     Table::HoldingRegister => "holding register",
                 };
                 let scale = match m.scale {
-                    Scale::Factor(f) if f == 1.0 => String::new(),
+                    Scale::Factor(1.0) => String::new(),
                     Scale::Factor(f) => format!(" × {}", trim_number(f)),
                     Scale::Register { address, .. } => format!(" × 10^sf(register {address})"),
                 };
@@ -117,17 +114,9 @@ pub fn describe(site: &Site) -> String {
         let what = if p.boolean {
             "on/off".to_owned()
         } else {
-            p.dimension
-                .describe()
-                .trim_start_matches("a ")
-                .trim_start_matches("an ")
-                .to_owned()
+            p.dimension.describe().trim_start_matches("a ").trim_start_matches("an ").to_owned()
         };
-        let role = if ROLE_NAMES.iter().any(|(n, _)| *n == p.name) {
-            "  (site role)"
-        } else {
-            ""
-        };
+        let role = if ROLE_NAMES.iter().any(|(n, _)| *n == p.name) { "  (site role)" } else { "" };
         let _ = writeln!(
             out,
             "  {:<16} {device}: {source}; {what}, every {}, stale after {}{role}",
@@ -142,21 +131,10 @@ pub fn describe(site: &Site) -> String {
         let _ = writeln!(out, "  (none)");
     }
     for (i, l) in site.loads.iter().enumerate() {
-        let _ = writeln!(
-            out,
-            "  {}. {} (priority {}) — {}",
-            i + 1,
-            l.name,
-            l.priority,
-            kind_text(site, &l.kind)
-        );
+        let _ = writeln!(out, "  {}. {} (priority {}) — {}", i + 1, l.name, l.priority, kind_text(site, &l.kind));
         for (word, rule) in [("start", &l.start), ("stop", &l.stop), ("inhibit", &l.inhibit)] {
             if let Some(r) = rule {
-                let default = if r.origin.ends_with("(default)") {
-                    "   (default)"
-                } else {
-                    ""
-                };
+                let default = if r.origin.ends_with("(default)") { "   (default)" } else { "" };
                 let _ = writeln!(out, "     {word:<8} {}{default}", r.rule.describe());
             }
         }
@@ -179,11 +157,7 @@ pub fn describe(site: &Site) -> String {
             }
         ));
         if matches!(site.connection, Connection::Grid { backup: Some(_), .. }) {
-            limits.push(if l.shed_on_outage {
-                "shed in an outage".to_owned()
-            } else {
-                "kept in an outage".to_owned()
-            });
+            limits.push(if l.shed_on_outage { "shed in an outage".to_owned() } else { "kept in an outage".to_owned() });
         }
         let _ = writeln!(out, "     {}", limits.join(", "));
         if let Some(p) = l.power {
@@ -216,43 +190,16 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
             };
             format!("stepped {}, {how}", stages.join(" → "))
         }
-        LoadKind::Proportional {
-            rated,
-            min,
-            step,
-            setpoint,
-            ..
-        } => {
-            format!(
-                "proportional up to {rated} (min {min}, step {step}), setpoint to {}",
-                write_text(site, setpoint)
-            )
+        LoadKind::Proportional { rated, min, step, setpoint, .. } => {
+            format!("proportional up to {rated} (min {min}, step {step}), setpoint to {}", write_text(site, setpoint))
         }
-        LoadKind::Charger {
-            watts_per_amp,
-            min,
-            max,
-            step,
-            setpoint,
-            hold_min_from_grid,
-            ..
-        } => format!(
+        LoadKind::Charger { watts_per_amp, min, max, step, setpoint, hold_min_from_grid, .. } => format!(
             "charger {min}–{max} in steps of {step} ({} W per A), current to {}; {}",
             trim_number(*watts_per_amp),
             write_text(site, setpoint),
-            if *hold_min_from_grid {
-                "holds its minimum from the grid"
-            } else {
-                "pauses below its minimum"
-            }
+            if *hold_min_from_grid { "holds its minimum from the grid" } else { "pauses below its minimum" }
         ),
-        LoadKind::Battery {
-            max_charge,
-            soc_max,
-            soc_resume,
-            soc,
-            setpoint,
-        } => format!(
+        LoadKind::Battery { max_charge, soc_max, soc_resume, soc, setpoint } => format!(
             "battery charging up to {max_charge} until {} reaches {soc_max} (resumes below {soc_resume}), power to {}",
             site.points[soc.0].name,
             write_text(site, setpoint)
@@ -264,21 +211,9 @@ fn write_text(site: &Site, w: &Write) -> String {
     let device = &site.devices[w.device().0].name;
     match w {
         Write::Coil { address, .. } => format!("coil {address} on {device}"),
-        Write::Register {
-            address,
-            value_type,
-            scale,
-            ..
-        } => {
-            let scale = if *scale == 1.0 {
-                String::new()
-            } else {
-                format!(" ÷ {}", trim_number(*scale))
-            };
-            format!(
-                "register {address} ({}{scale}) on {device}",
-                format!("{value_type:?}").to_lowercase()
-            )
+        Write::Register { address, value_type, scale, .. } => {
+            let scale = if *scale == 1.0 { String::new() } else { format!(" ÷ {}", trim_number(*scale)) };
+            format!("register {address} ({}{scale}) on {device}", format!("{value_type:?}").to_lowercase())
         }
         Write::Mqtt { topic, .. } => format!("topic {topic} via {device}"),
         Write::SunSpecLimit { .. } => format!("SunSpec power limit on {device}"),

@@ -81,54 +81,33 @@ pub const OTHER_SECTIONS: &[&str] = &["plant", "expect", "simulation"];
 
 /// Reads and checks a site file.
 pub fn load_file(path: &Path) -> Result<Loaded, LoadError> {
-    let text = std::fs::read_to_string(path).map_err(|source| LoadError::Io {
-        path: path.display().to_string(),
-        source,
-    })?;
+    let text =
+        std::fs::read_to_string(path).map_err(|source| LoadError::Io { path: path.display().to_string(), source })?;
     load_str(&path.display().to_string(), &text)
 }
 
 /// Checks a site file's text; `path` is only used in messages.
 pub fn load_str(path: &str, text: &str) -> Result<Loaded, LoadError> {
-    let file = SourceFile {
-        path: path.to_owned(),
-        text: text.to_owned(),
-    };
+    let file = SourceFile { path: path.to_owned(), text: text.to_owned() };
     let tree = match yaml::parse(text) {
         Ok(tree) => tree,
         Err(d) => {
-            return Err(LoadError::Invalid {
-                file,
-                diagnostics: vec![d],
-            });
+            return Err(LoadError::Invalid { file, diagnostics: vec![*d] });
         }
     };
     let mut diags = Diagnostics::default();
-    let mut builder = Builder {
-        text,
-        diags: &mut diags,
-        tariff: None,
-    };
+    let mut builder = Builder { text, diags: &mut diags, tariff: None };
     let site = builder.site(&tree);
     let tariff = builder.tariff.take();
     // File order reads best: a user fixes top to bottom.
     diags.list.sort_by_key(|d| d.primary.span.start);
     match site {
-        Some(site) if !diags.has_errors() => Ok(Loaded {
-            site,
-            warnings: diags.list,
-            source: file,
-            tree,
-            tariff,
-        }),
+        Some(site) if !diags.has_errors() => Ok(Loaded { site, warnings: diags.list, source: file, tree, tariff }),
         _ => {
             if !diags.has_errors() {
                 diags.error("C0000", "the site could not be built", 0..0, "");
             }
-            Err(LoadError::Invalid {
-                file,
-                diagnostics: diags.list,
-            })
+            Err(LoadError::Invalid { file, diagnostics: diags.list })
         }
     }
 }
@@ -184,13 +163,9 @@ impl Builder<'_, '_> {
 
         let header = site_node.and_then(|n| self.site_header(n));
         let mqtt = mqtt_node.and_then(|n| self.mqtt(n, header.as_ref().map_or("site", |h| h.name.as_str())));
-        let devices = devices_node
-            .map(|n| self.devices(n, mqtt.is_some()))
-            .unwrap_or_default();
+        let devices = devices_node.map(|n| self.devices(n, mqtt.is_some())).unwrap_or_default();
         let stale_default = header.as_ref().map_or(DEFAULT_STALE_AFTER, |h| h.failsafe.stale_after);
-        let (points, point_info) = points_node
-            .map(|n| self.points(n, &devices, stale_default))
-            .unwrap_or_default();
+        let (points, point_info) = points_node.map(|n| self.points(n, &devices, stale_default)).unwrap_or_default();
         let roles = self.roles(&points, &point_info);
 
         // Load names first, so rules may refer to any load's state.
@@ -247,12 +222,7 @@ impl Builder<'_, '_> {
         let slots = layout(points.len(), sorted_names.len());
         let scope = scope(&points, &sorted_names, &slots);
 
-        let ctx = LoadCtx {
-            devices: &devices,
-            points: &points,
-            roles: &roles,
-            scope: &scope,
-        };
+        let ctx = LoadCtx { devices: &devices, points: &points, roles: &roles, scope: &scope };
         let mut loads = Vec::new();
         for &i in &order {
             if let Some(load) = self.load(load_nodes[i], &load_names[i], &ctx) {
@@ -283,19 +253,15 @@ impl Builder<'_, '_> {
 
     fn site_header(&mut self, node: &Node) -> Option<Header> {
         let mut m = MapReader::new(node, "the `site` section", self.diags)?;
-        let name = m
-            .require("name", self.diags)
-            .and_then(|n| values::text(n, "the site name", self.diags))
-            .map(str::to_owned);
+        let name =
+            m.require("name", self.diags).and_then(|n| values::text(n, "the site name", self.diags)).map(str::to_owned);
         let timezone = m.require("timezone", self.diags).and_then(|n| self.timezone(n));
         let grid_kind = m
             .get("grid")
             .map(|n| values::choice(n, &["tied", "backup", "off"], "`grid`", self.diags))
             .unwrap_or(Some("tied"));
         let export_node = m.get("export");
-        let export = export_node
-            .map(|n| self.export_policy(n))
-            .unwrap_or(Some(ExportPolicy::Allowed));
+        let export = export_node.map(|n| self.export_policy(n)).unwrap_or(Some(ExportPolicy::Allowed));
         let import_target_node = m.get("import_target");
         let import_target =
             import_target_node.map(|n| values::quantity(n, Dimension::Power, "the import target", self.diags));
@@ -332,11 +298,7 @@ impl Builder<'_, '_> {
                         "this site is grid-connected",
                     );
                 }
-                let backup = if kind == "backup" {
-                    Some(self.backup(backup_node)?)
-                } else {
-                    None
-                };
+                let backup = if kind == "backup" { Some(self.backup(backup_node)?) } else { None };
                 if kind != "backup"
                     && let Some(n) = backup_node
                 {
@@ -414,11 +376,7 @@ impl Builder<'_, '_> {
                     );
                     return None;
                 }
-                Some(if limit == 0.0 {
-                    ExportPolicy::Forbidden
-                } else {
-                    ExportPolicy::Limited(Power(limit))
-                })
+                Some(if limit == 0.0 { ExportPolicy::Forbidden } else { ExportPolicy::Limited(Power(limit)) })
             }
             _ => {
                 self.diags.push(
@@ -439,8 +397,8 @@ impl Builder<'_, '_> {
             tolerance: Power(10.0),
             deadline: DEFAULT_GUARD_DEADLINE,
             release_rate: Power(200.0),
-            kp: 0.5,
-            ki: 0.4,
+            kp: 0.1,
+            ki: 0.5,
         };
         let Some(node) = node else { return Some(g) };
         let mut m = MapReader::new(node, "the `guard` section", self.diags)?;
@@ -451,9 +409,7 @@ impl Builder<'_, '_> {
                 .is_some();
         }
         if let Some(n) = m.get("deadline") {
-            ok &= values::duration(n, "the guard deadline", self.diags)
-                .map(|v| g.deadline = v)
-                .is_some();
+            ok &= values::duration(n, "the guard deadline", self.diags).map(|v| g.deadline = v).is_some();
         }
         if let Some(n) = m.get("release_rate") {
             ok &= values::positive(n, Dimension::Power, "the release rate (per second)", self.diags)
@@ -471,22 +427,15 @@ impl Builder<'_, '_> {
     }
 
     fn failsafe(&mut self, node: Option<&Node>) -> Option<FailsafeSettings> {
-        let mut f = FailsafeSettings {
-            stale_after: DEFAULT_STALE_AFTER,
-            recovery_hold: Duration::from_secs(10),
-        };
+        let mut f = FailsafeSettings { stale_after: DEFAULT_STALE_AFTER, recovery_hold: Duration::from_secs(10) };
         let Some(node) = node else { return Some(f) };
         let mut m = MapReader::new(node, "the `failsafe` section", self.diags)?;
         let mut ok = true;
         if let Some(n) = m.get("stale_after") {
-            ok &= values::duration(n, "the stale timeout", self.diags)
-                .map(|v| f.stale_after = v)
-                .is_some();
+            ok &= values::duration(n, "the stale timeout", self.diags).map(|v| f.stale_after = v).is_some();
         }
         if let Some(n) = m.get("recovery_hold") {
-            ok &= values::duration(n, "the recovery hold", self.diags)
-                .map(|v| f.recovery_hold = v)
-                .is_some();
+            ok &= values::duration(n, "the recovery hold", self.diags).map(|v| f.recovery_hold = v).is_some();
         }
         m.finish(self.diags);
         ok.then_some(f)
@@ -506,18 +455,18 @@ impl Builder<'_, '_> {
         let float_voltage = m
             .require("float_voltage", self.diags)
             .and_then(|n| values::positive(n, Dimension::Voltage, "the float voltage", self.diags));
-        let hysteresis = m.get("float_hysteresis").map_or(Some(0.8), |n| {
-            values::quantity(n, Dimension::Voltage, "the float hysteresis", self.diags)
-        });
-        let full_soc = m.get("full_soc").map_or(Some(98.0), |n| {
-            values::quantity(n, Dimension::Ratio, "the full state of charge", self.diags)
-        });
-        let acceptance = m.get("charge_acceptance").map_or(Some(2000.0), |n| {
-            values::quantity(n, Dimension::Power, "the charge acceptance", self.diags)
-        });
-        let headroom = m.get("float_headroom").map_or(Some(500.0), |n| {
-            values::quantity(n, Dimension::Power, "the float headroom", self.diags)
-        });
+        let hysteresis = m
+            .get("float_hysteresis")
+            .map_or(Some(0.8), |n| values::quantity(n, Dimension::Voltage, "the float hysteresis", self.diags));
+        let full_soc = m
+            .get("full_soc")
+            .map_or(Some(98.0), |n| values::quantity(n, Dimension::Ratio, "the full state of charge", self.diags));
+        let acceptance = m
+            .get("charge_acceptance")
+            .map_or(Some(2000.0), |n| values::quantity(n, Dimension::Power, "the charge acceptance", self.diags));
+        let headroom = m
+            .get("float_headroom")
+            .map_or(Some(500.0), |n| values::quantity(n, Dimension::Power, "the float headroom", self.diags));
         m.finish(self.diags);
         Some(OffGridSettings {
             float_voltage: Voltage(float_voltage?),
@@ -529,9 +478,7 @@ impl Builder<'_, '_> {
     }
 
     fn backup(&mut self, node: Option<&Node>) -> Option<BackupSettings> {
-        let mut b = BackupSettings {
-            shed_interval: Duration::ZERO,
-        };
+        let mut b = BackupSettings { shed_interval: Duration::ZERO };
         let Some(node) = node else { return Some(b) };
         let mut m = MapReader::new(node, "the `backup` section", self.diags)?;
         if let Some(n) = m.get("shed_interval") {
@@ -546,14 +493,9 @@ impl Builder<'_, '_> {
         let broker = m
             .require("broker", self.diags)
             .and_then(|n| values::text(n, "the broker address", self.diags).map(|t| (t, n.span.clone())));
-        let client_id = m
-            .get("client_id")
-            .and_then(|n| values::text(n, "the client id", self.diags))
-            .map(str::to_owned);
-        let username = m
-            .get("username")
-            .and_then(|n| values::text(n, "the user name", self.diags))
-            .map(str::to_owned);
+        let client_id =
+            m.get("client_id").and_then(|n| values::text(n, "the client id", self.diags)).map(str::to_owned);
+        let username = m.get("username").and_then(|n| values::text(n, "the user name", self.diags)).map(str::to_owned);
         let password_env = m
             .get("password_env")
             .and_then(|n| values::text(n, "the password variable", self.diags))
@@ -569,28 +511,23 @@ impl Builder<'_, '_> {
                 Value::Bool(false) => None,
                 _ => {
                     let mut t = MapReader::new(n, "the `tls` section", self.diags)?;
-                    let ca = t
-                        .get("ca_file")
-                        .and_then(|n| values::text(n, "the CA file", self.diags))
-                        .map(str::to_owned);
+                    let ca =
+                        t.get("ca_file").and_then(|n| values::text(n, "the CA file", self.diags)).map(str::to_owned);
                     t.finish(self.diags);
                     Some(TlsSettings { ca_file: ca })
                 }
             },
         };
-        let slug: String = site_name
-            .to_lowercase()
-            .chars()
-            .map(|c| if c.is_ascii_alphanumeric() { c } else { '-' })
-            .collect();
+        let slug: String =
+            site_name.to_lowercase().chars().map(|c| if c.is_ascii_alphanumeric() { c } else { '-' }).collect();
         let topic_prefix = m
             .get("topic_prefix")
             .and_then(|n| values::text(n, "the topic prefix", self.diags))
             .map_or_else(|| format!("spillway/{slug}"), |s| s.trim_end_matches('/').to_owned());
         let qos = m.get("qos").map_or(Some(Qos::AtLeastOnce), |n| self.qos(n));
-        let keep_alive = m.get("keep_alive").map_or(Some(Duration::from_secs(30)), |n| {
-            values::duration(n, "the keep-alive", self.diags)
-        });
+        let keep_alive = m
+            .get("keep_alive")
+            .map_or(Some(Duration::from_secs(30)), |n| values::duration(n, "the keep-alive", self.diags));
         m.finish(self.diags);
         let (broker, broker_span) = broker?;
         let (host, port) = match split_host_port(broker, 1883) {
@@ -662,24 +599,14 @@ impl Builder<'_, '_> {
         let tcp = m.get("modbus_tcp");
         let rtu = m.get("modbus_rtu");
         let mqtt = m.get("mqtt");
-        let unit = m
-            .get("unit")
-            .map(|n| values::integer(n, 0, 255, "the Modbus unit id", self.diags).map(|u| u as u8));
-        let poll = m.get("poll").map_or(Some(DEFAULT_POLL), |n| {
-            values::duration(n, "the poll period", self.diags)
-        });
-        let timeout = m.get("timeout").map_or(Some(DEFAULT_TIMEOUT), |n| {
-            values::duration(n, "the request timeout", self.diags)
-        });
-        let sunspec = m
-            .get("sunspec")
-            .map_or(Some(false), |n| values::boolean(n, "`sunspec`", self.diags));
+        let unit = m.get("unit").map(|n| values::integer(n, 0, 255, "the Modbus unit id", self.diags).map(|u| u as u8));
+        let poll = m.get("poll").map_or(Some(DEFAULT_POLL), |n| values::duration(n, "the poll period", self.diags));
+        let timeout =
+            m.get("timeout").map_or(Some(DEFAULT_TIMEOUT), |n| values::duration(n, "the request timeout", self.diags));
+        let sunspec = m.get("sunspec").map_or(Some(false), |n| values::boolean(n, "`sunspec`", self.diags));
         let span = m.span();
         m.finish(self.diags);
-        let given = [tcp.is_some(), rtu.is_some(), mqtt.is_some()]
-            .iter()
-            .filter(|b| **b)
-            .count();
+        let given = [tcp.is_some(), rtu.is_some(), mqtt.is_some()].iter().filter(|b| **b).count();
         if given != 1 {
             self.diags.push(
                 Diagnostic::error(
@@ -732,13 +659,7 @@ impl Builder<'_, '_> {
                 "remove `sunspec` or use modbus_tcp/modbus_rtu",
             );
         }
-        Some(Device {
-            name: name.to_owned(),
-            link,
-            poll: poll?,
-            timeout: timeout?,
-            sunspec: sunspec?,
-        })
+        Some(Device { name: name.to_owned(), link, poll: poll?, timeout: timeout?, sunspec: sunspec? })
     }
 
     fn rtu(&mut self, node: &Node, unit: u8) -> Option<Link> {
@@ -747,15 +668,12 @@ impl Builder<'_, '_> {
             .require("port", self.diags)
             .and_then(|n| values::text(n, "the serial port", self.diags))
             .map(str::to_owned);
-        let baud = m.get("baud").map_or(Some(9600), |n| {
-            values::integer(n, 300, 4_000_000, "the baud rate", self.diags)
-        });
-        let parity = m.get("parity").map_or(Some("none"), |n| {
-            values::choice(n, &["none", "even", "odd"], "the parity", self.diags)
-        });
-        let stop_bits = m
-            .get("stop_bits")
-            .map_or(Some(1), |n| values::integer(n, 1, 2, "the stop bits", self.diags));
+        let baud =
+            m.get("baud").map_or(Some(9600), |n| values::integer(n, 300, 4_000_000, "the baud rate", self.diags));
+        let parity = m
+            .get("parity")
+            .map_or(Some("none"), |n| values::choice(n, &["none", "even", "odd"], "the parity", self.diags));
+        let stop_bits = m.get("stop_bits").map_or(Some(1), |n| values::integer(n, 1, 2, "the stop bits", self.diags));
         m.finish(self.diags);
         Some(Link::ModbusRtu {
             path: path?,
@@ -797,9 +715,7 @@ impl Builder<'_, '_> {
             }
             if let Some(p) = self.point(&key.name, pnode, devices, stale_default) {
                 points.push(p);
-                info.push(PointInfo {
-                    name_span: key.span.clone(),
-                });
+                info.push(PointInfo { name_span: key.span.clone() });
             }
         }
         (points, info)
@@ -827,10 +743,7 @@ impl Builder<'_, '_> {
         m.finish(self.diags);
 
         let (device_id, device) = self.device_ref(device_node?, devices)?;
-        let sources = [register, coil, discrete, sunspec, topic]
-            .iter()
-            .filter(|n| n.is_some())
-            .count();
+        let sources = [register, coil, discrete, sunspec, topic].iter().filter(|n| n.is_some()).count();
         if sources != 1 {
             self.diags.push(
                 Diagnostic::error(
@@ -887,11 +800,7 @@ impl Builder<'_, '_> {
                 }
             }
             None if bit => (Dimension::Scalar, 1.0, true),
-            None => match sunspec
-                .and_then(|n| n.scalar_text())
-                .as_deref()
-                .and_then(sunspec_default_unit)
-            {
+            None => match sunspec.and_then(|n| n.scalar_text()).as_deref().and_then(sunspec_default_unit) {
                 Some(d) => (d, 1.0, false),
                 None => {
                     self.diags.push(
@@ -906,12 +815,7 @@ impl Builder<'_, '_> {
         let read = if let Some(n) = topic {
             let topic = values::text(n, "the topic", self.diags)?;
             if topic.contains(['+', '#']) {
-                self.diags.error(
-                    "C0218",
-                    "a point's topic cannot contain wildcards",
-                    n.span.clone(),
-                    "name one topic",
-                );
+                self.diags.error("C0218", "a point's topic cannot contain wildcards", n.span.clone(), "name one topic");
                 return None;
             }
             let payload = match json {
@@ -933,11 +837,7 @@ impl Builder<'_, '_> {
                 Some(q) => self.qos(q)?,
                 None => Qos::AtLeastOnce,
             };
-            PointRead::Mqtt(MqttRead {
-                topic: topic.to_owned(),
-                payload,
-                qos,
-            })
+            PointRead::Mqtt(MqttRead { topic: topic.to_owned(), payload, qos })
         } else if let Some(n) = sunspec {
             if !device.sunspec {
                 self.diags.error(
@@ -949,10 +849,7 @@ impl Builder<'_, '_> {
                 return None;
             }
             let text = values::word(n, "the SunSpec point", self.diags)?;
-            let Some((model, point)) = text
-                .split_once('.')
-                .and_then(|(m, p)| Some((m.parse::<u16>().ok()?, p)))
-            else {
+            let Some((model, point)) = text.split_once('.').and_then(|(m, p)| Some((m.parse::<u16>().ok()?, p))) else {
                 self.diags.error(
                     "C0221",
                     format!("\"{text}\" is not MODEL.POINT"),
@@ -961,10 +858,7 @@ impl Builder<'_, '_> {
                 );
                 return None;
             };
-            PointRead::SunSpec(SunSpecRead {
-                model,
-                point: point.to_owned(),
-            })
+            PointRead::SunSpec(SunSpecRead { model, point: point.to_owned() })
         } else {
             let (table, address_node) = if let Some(n) = coil {
                 (Table::Coil, n)
@@ -1016,13 +910,7 @@ impl Builder<'_, '_> {
                 );
                 return None;
             }
-            PointRead::Modbus(ModbusRead {
-                table,
-                address,
-                value_type,
-                word_order,
-                scale,
-            })
+            PointRead::Modbus(ModbusRead { table, address, value_type, word_order, scale })
         };
         let poll = match poll {
             Some(n) => values::duration(n, "the poll period", self.diags)?,
@@ -1062,12 +950,7 @@ impl Builder<'_, '_> {
 
     fn value_type(&mut self, node: &Node) -> Option<ValueType> {
         Some(
-            match values::choice(
-                node,
-                &["u16", "i16", "u32", "i32", "u64", "f32"],
-                "the register type",
-                self.diags,
-            )? {
+            match values::choice(node, &["u16", "i16", "u32", "i32", "u64", "f32"], "the register type", self.diags)? {
                 "i16" => ValueType::I16,
                 "u32" => ValueType::U32,
                 "i32" => ValueType::I32,
@@ -1091,11 +974,7 @@ impl Builder<'_, '_> {
                 });
                 m.finish(self.diags);
                 Some(Scale::Register {
-                    table: if table? == "input" {
-                        Table::InputRegister
-                    } else {
-                        Table::HoldingRegister
-                    },
+                    table: if table? == "input" { Table::InputRegister } else { Table::HoldingRegister },
                     address: address? as u16,
                 })
             }
@@ -1142,11 +1021,7 @@ impl Builder<'_, '_> {
                     format!(
                         "point \"{}\" takes a site role and must be {}",
                         p.name,
-                        if expected_bool {
-                            "a boolean (`unit: bool`)".to_owned()
-                        } else {
-                            dim.describe().to_owned()
-                        }
+                        if expected_bool { "a boolean (`unit: bool`)".to_owned() } else { dim.describe().to_owned() }
                     ),
                     info[i].name_span.clone(),
                     "wrong unit for this role",
@@ -1176,10 +1051,7 @@ impl Builder<'_, '_> {
         let name = entries.iter().find(|(k, _)| k.name == "name");
         let priority = entries.iter().find(|(k, _)| k.name == "priority");
         let (name, span) = match name {
-            Some((_, n)) => (
-                values::name(n, "the load name", self.diags).unwrap_or("").to_owned(),
-                n.span.clone(),
-            ),
+            Some((_, n)) => (values::name(n, "the load name", self.diags).unwrap_or("").to_owned(), n.span.clone()),
             None => {
                 self.diags.error(
                     "C0004",
@@ -1226,17 +1098,13 @@ impl Builder<'_, '_> {
         let start = start_node.and_then(|n| self.rule(n, ctx.scope, &format!("{name}.start")));
         let stop_node = m.get("stop");
         let stop = stop_node.and_then(|n| self.rule(n, ctx.scope, &format!("{name}.stop")));
-        let inhibit = m
-            .get("inhibit")
-            .and_then(|n| self.rule(n, ctx.scope, &format!("{name}.inhibit")));
+        let inhibit = m.get("inhibit").and_then(|n| self.rule(n, ctx.scope, &format!("{name}.inhibit")));
         let min_on_node = m.get("min_on");
-        let min_on = min_on_node.map_or(Some(Duration::ZERO), |n| {
-            values::duration(n, "the minimum on-time", self.diags)
-        });
+        let min_on =
+            min_on_node.map_or(Some(Duration::ZERO), |n| values::duration(n, "the minimum on-time", self.diags));
         let min_off_node = m.get("min_off");
-        let min_off = min_off_node.map_or(Some(Duration::ZERO), |n| {
-            values::duration(n, "the minimum off-time", self.diags)
-        });
+        let min_off =
+            min_off_node.map_or(Some(Duration::ZERO), |n| values::duration(n, "the minimum off-time", self.diags));
         let starts_node = m.get("max_starts_per_hour");
         let max_starts =
             starts_node.map(|n| values::integer(n, 1, 3600, "the starts-per-hour cap", self.diags).map(|v| v as u32));
@@ -1247,9 +1115,7 @@ impl Builder<'_, '_> {
                 _ => SafeState::Off,
             })
         });
-        let shed = m
-            .get("shed_on_outage")
-            .map_or(Some(true), |n| values::boolean(n, "`shed_on_outage`", self.diags));
+        let shed = m.get("shed_on_outage").map_or(Some(true), |n| values::boolean(n, "`shed_on_outage`", self.diags));
         let obligations_node = m.get("obligations");
         let load_span = m.span();
         m.finish(self.diags);
@@ -1272,9 +1138,8 @@ impl Builder<'_, '_> {
             }
             _ => (start, stop),
         };
-        let obligations = obligations_node
-            .map(|n| self.obligations(n, temperature.is_some(), &what))
-            .unwrap_or(Some(Vec::new()));
+        let obligations =
+            obligations_node.map(|n| self.obligations(n, temperature.is_some(), &what)).unwrap_or(Some(Vec::new()));
         let min_on = min_on?;
         let min_off = min_off?;
         let day = Duration::from_secs(86_400);
@@ -1379,13 +1244,9 @@ impl Builder<'_, '_> {
                 let rated = m
                     .require("rated", self.diags)
                     .and_then(|n| values::positive(n, Dimension::Power, "the rated power", self.diags));
-                let switch = m
-                    .require("switch", self.diags)
-                    .and_then(|n| self.write(n, ctx.devices, WriteKind::Switch));
-                Some(LoadKind::Switched {
-                    rated: Power(rated?),
-                    switch: switch?,
-                })
+                let switch =
+                    m.require("switch", self.diags).and_then(|n| self.write(n, ctx.devices, WriteKind::Switch));
+                Some(LoadKind::Switched { rated: Power(rated?), switch: switch? })
             }
             "stepped" => {
                 let stages_node = m.require("stages", self.diags)?;
@@ -1410,10 +1271,8 @@ impl Builder<'_, '_> {
                             );
                             return None;
                         }
-                        let writes: Vec<Option<Write>> = items
-                            .iter()
-                            .map(|i| self.write(i, ctx.devices, WriteKind::Switch))
-                            .collect();
+                        let writes: Vec<Option<Write>> =
+                            items.iter().map(|i| self.write(i, ctx.devices, WriteKind::Switch)).collect();
                         StageCommand::Relays(writes.into_iter().collect::<Option<Vec<_>>>()?)
                     }
                     (None, Some(n)) => StageCommand::Register(self.write(n, ctx.devices, WriteKind::Value)?),
@@ -1433,18 +1292,15 @@ impl Builder<'_, '_> {
                 let rated = m
                     .require("rated", self.diags)
                     .and_then(|n| values::positive(n, Dimension::Power, "the rated power", self.diags));
-                let setpoint = m
-                    .require("setpoint", self.diags)
-                    .and_then(|n| self.write(n, ctx.devices, WriteKind::Value));
-                let min = m.get("min").map_or(Some(0.0), |n| {
-                    values::quantity(n, Dimension::Ratio, "the minimum setpoint", self.diags)
-                });
-                let step = m.get("step").map_or(Some(1.0), |n| {
-                    values::positive(n, Dimension::Ratio, "the setpoint step", self.diags)
-                });
-                let enable = m
-                    .get("enable")
-                    .and_then(|n| self.write(n, ctx.devices, WriteKind::Switch));
+                let setpoint =
+                    m.require("setpoint", self.diags).and_then(|n| self.write(n, ctx.devices, WriteKind::Value));
+                let min = m
+                    .get("min")
+                    .map_or(Some(0.0), |n| values::quantity(n, Dimension::Ratio, "the minimum setpoint", self.diags));
+                let step = m
+                    .get("step")
+                    .map_or(Some(1.0), |n| values::positive(n, Dimension::Ratio, "the setpoint step", self.diags));
+                let enable = m.get("enable").and_then(|n| self.write(n, ctx.devices, WriteKind::Switch));
                 let (min, step) = (min?, step?);
                 if !(0.0..100.0).contains(&min) {
                     self.diags.error(
@@ -1464,30 +1320,26 @@ impl Builder<'_, '_> {
                 })
             }
             "charger" => {
-                let volts = m.get("voltage").map_or(Some(230.0), |n| {
-                    values::positive(n, Dimension::Voltage, "the supply voltage", self.diags)
-                });
-                let phases = m.get("phases").map_or(Some(1), |n| {
-                    values::integer(n, 1, 3, "the number of phases", self.diags)
-                });
+                let volts = m
+                    .get("voltage")
+                    .map_or(Some(230.0), |n| values::positive(n, Dimension::Voltage, "the supply voltage", self.diags));
+                let phases =
+                    m.get("phases").map_or(Some(1), |n| values::integer(n, 1, 3, "the number of phases", self.diags));
                 let min_node = m.require("min_current", self.diags);
                 let min =
                     min_node.and_then(|n| values::positive(n, Dimension::Current, "the minimum current", self.diags));
                 let max = m
                     .require("max_current", self.diags)
                     .and_then(|n| values::positive(n, Dimension::Current, "the maximum current", self.diags));
-                let step = m.get("step").map_or(Some(1.0), |n| {
-                    values::positive(n, Dimension::Current, "the current step", self.diags)
-                });
-                let setpoint = m
-                    .require("setpoint", self.diags)
-                    .and_then(|n| self.write(n, ctx.devices, WriteKind::Value));
-                let enable = m
-                    .get("enable")
-                    .and_then(|n| self.write(n, ctx.devices, WriteKind::Switch));
-                let below = m.get("below_min").map_or(Some("pause"), |n| {
-                    values::choice(n, &["pause", "hold"], "`below_min`", self.diags)
-                });
+                let step = m
+                    .get("step")
+                    .map_or(Some(1.0), |n| values::positive(n, Dimension::Current, "the current step", self.diags));
+                let setpoint =
+                    m.require("setpoint", self.diags).and_then(|n| self.write(n, ctx.devices, WriteKind::Value));
+                let enable = m.get("enable").and_then(|n| self.write(n, ctx.devices, WriteKind::Switch));
+                let below = m
+                    .get("below_min")
+                    .map_or(Some("pause"), |n| values::choice(n, &["pause", "hold"], "`below_min`", self.diags));
                 let (min, max) = (min?, max?);
                 if min > max {
                     self.diags.error(
@@ -1534,9 +1386,8 @@ impl Builder<'_, '_> {
                 let soc_resume = m
                     .get("soc_resume")
                     .map(|n| values::quantity(n, Dimension::Ratio, "the resume state of charge", self.diags));
-                let setpoint = m
-                    .require("setpoint", self.diags)
-                    .and_then(|n| self.write(n, ctx.devices, WriteKind::Value));
+                let setpoint =
+                    m.require("setpoint", self.diags).and_then(|n| self.write(n, ctx.devices, WriteKind::Value));
                 let soc_max = soc_max?;
                 let soc_resume = match soc_resume {
                     Some(v) => v?,
@@ -1589,12 +1440,7 @@ impl Builder<'_, '_> {
             out.push(Power(p));
         }
         if out.is_empty() {
-            self.diags.error(
-                "C0237",
-                format!("{what} has no stages"),
-                node.span.clone(),
-                "list at least one stage",
-            );
+            self.diags.error("C0237", format!("{what} has no stages"), node.span.clone(), "list at least one stage");
             return None;
         }
         Some(out)
@@ -1643,10 +1489,7 @@ impl Builder<'_, '_> {
                 for w in &compiled.warnings {
                     self.diags.push(rules::to_diagnostic(w, offset));
                 }
-                Some(RuleText {
-                    rule: compiled.rule,
-                    origin: origin.to_owned(),
-                })
+                Some(RuleText { rule: compiled.rule, origin: origin.to_owned() })
             }
             Err(errors) => {
                 for e in &errors {
@@ -1659,10 +1502,7 @@ impl Builder<'_, '_> {
 
     fn default_rule(&mut self, text: &str, scope: &SiteScope, origin: &str) -> Option<RuleText> {
         match rules::compile(text, scope) {
-            Ok(c) => Some(RuleText {
-                rule: c.rule,
-                origin: origin.to_owned(),
-            }),
+            Ok(c) => Some(RuleText { rule: c.rule, origin: origin.to_owned() }),
             Err(errors) => {
                 // A default rule that does not compile is a bug in Spillway, not in the file.
                 for e in errors {
@@ -1718,31 +1558,16 @@ impl Builder<'_, '_> {
             }
             let topic = values::text(n, "the command topic", self.diags)?.to_owned();
             if topic.contains(['+', '#']) {
-                self.diags.error(
-                    "C0218",
-                    "a command topic cannot contain wildcards",
-                    n.span.clone(),
-                    "name one topic",
-                );
+                self.diags.error("C0218", "a command topic cannot contain wildcards", n.span.clone(), "name one topic");
                 return None;
             }
             let on = on.map_or(Some("ON".to_owned()), |n| {
-                values::word(n, "the on payload", self.diags).map(|s| {
-                    if s == "true" && matches!(n.value, Value::Bool(_)) {
-                        "ON".to_owned()
-                    } else {
-                        s
-                    }
-                })
+                values::word(n, "the on payload", self.diags)
+                    .map(|s| if s == "true" && matches!(n.value, Value::Bool(_)) { "ON".to_owned() } else { s })
             });
             let off = off.map_or(Some("OFF".to_owned()), |n| {
-                values::word(n, "the off payload", self.diags).map(|s| {
-                    if s == "false" && matches!(n.value, Value::Bool(_)) {
-                        "OFF".to_owned()
-                    } else {
-                        s
-                    }
-                })
+                values::word(n, "the off payload", self.diags)
+                    .map(|s| if s == "false" && matches!(n.value, Value::Bool(_)) { "OFF".to_owned() } else { s })
             });
             let value = payload.map_or(Some("{value}".to_owned()), |n| {
                 values::text(n, "the payload template", self.diags).map(str::to_owned)
@@ -1762,15 +1587,7 @@ impl Builder<'_, '_> {
                 );
                 return None;
             }
-            return Some(Write::Mqtt {
-                device: device_id,
-                topic,
-                on: on?,
-                off: off?,
-                value,
-                retain: retain?,
-                qos,
-            });
+            return Some(Write::Mqtt { device: device_id, topic, on: on?, off: off?, value, retain: retain?, qos });
         }
         if is_mqtt {
             let n = coil.or(register)?;
@@ -1784,19 +1601,11 @@ impl Builder<'_, '_> {
         }
         if let Some(n) = coil {
             if kind == WriteKind::Value {
-                self.diags.error(
-                    "C0243",
-                    "a setpoint cannot be written to a coil",
-                    n.span.clone(),
-                    "use `register`",
-                );
+                self.diags.error("C0243", "a setpoint cannot be written to a coil", n.span.clone(), "use `register`");
                 return None;
             }
             let address = values::integer(n, 0, 65535, "the coil address", self.diags)? as u16;
-            return Some(Write::Coil {
-                device: device_id,
-                address,
-            });
+            return Some(Write::Coil { device: device_id, address });
         }
         let n = register?;
         let address = values::integer(n, 0, 65535, "the register address", self.diags)? as u16;
@@ -1815,13 +1624,7 @@ impl Builder<'_, '_> {
             Some(s) => values::positive(s, Dimension::Scalar, "the scale", self.diags)?,
             None => 1.0,
         };
-        Some(Write::Register {
-            device: device_id,
-            address,
-            value_type,
-            word_order,
-            scale,
-        })
+        Some(Write::Register { device: device_id, address, value_type, word_order, scale })
     }
 
     fn inverter(&mut self, node: &Node, devices: &[Device]) -> Option<InverterControl> {
@@ -1830,16 +1633,13 @@ impl Builder<'_, '_> {
             .require("rated", self.diags)
             .and_then(|n| values::positive(n, Dimension::Power, "the inverter's rated power", self.diags));
         let limit_node = m.require("limit", self.diags);
-        let unit = m.get("limit_unit").map_or(Some("%"), |n| {
-            values::choice(n, &["%", "W"], "the limit unit", self.diags)
-        });
+        let unit =
+            m.get("limit_unit").map_or(Some("%"), |n| values::choice(n, &["%", "W"], "the limit unit", self.diags));
         let safe_node = m.get("safe_limit");
-        let safe = safe_node.map_or(Some(0.0), |n| {
-            values::quantity(n, Dimension::Power, "the safe limit", self.diags)
-        });
-        let refresh = m.get("refresh").map_or(Some(Duration::from_secs(10)), |n| {
-            values::duration(n, "the refresh period", self.diags)
-        });
+        let safe = safe_node.map_or(Some(0.0), |n| values::quantity(n, Dimension::Power, "the safe limit", self.diags));
+        let refresh = m
+            .get("refresh")
+            .map_or(Some(Duration::from_secs(10)), |n| values::duration(n, "the refresh period", self.diags));
         m.finish(self.diags);
         let limit = match limit_node {
             Some(n) if matches!(&n.value, Value::Str(s) if s == "sunspec") => {
@@ -1865,9 +1665,7 @@ impl Builder<'_, '_> {
             }
             Some(n) if matches!(&n.value, Value::Map(e) if e.iter().any(|(k, _)| k.name == "sunspec")) => {
                 let mut lm = MapReader::new(n, "the inverter limit", self.diags)?;
-                let dev = lm
-                    .require("device", self.diags)
-                    .and_then(|d| self.device_ref(d, devices));
+                let dev = lm.require("device", self.diags).and_then(|d| self.device_ref(d, devices));
                 let _ = lm.get("sunspec");
                 lm.finish(self.diags);
                 let (id, d) = dev?;
@@ -1898,11 +1696,7 @@ impl Builder<'_, '_> {
         Some(InverterControl {
             rated: Power(rated),
             limit,
-            limit_unit: if unit? == "W" {
-                LimitUnit::Watts
-            } else {
-                LimitUnit::Percent
-            },
+            limit_unit: if unit? == "W" { LimitUnit::Watts } else { LimitUnit::Percent },
             safe_limit: Power(safe),
             refresh: refresh?,
         })
@@ -1910,12 +1704,7 @@ impl Builder<'_, '_> {
 
     fn obligations(&mut self, node: &Node, has_temperature: bool, what: &str) -> Option<Vec<Obligation>> {
         let Value::Seq(items) = &node.value else {
-            self.diags.error(
-                "C0246",
-                "`obligations` is a list",
-                node.span.clone(),
-                "expected `- run: 6h` style items",
-            );
+            self.diags.error("C0246", "`obligations` is a list", node.span.clone(), "expected `- run: 6h` style items");
             return None;
         };
         let mut out = Vec::new();
@@ -1993,10 +1782,7 @@ impl Builder<'_, '_> {
                     );
                 }
             }
-            return Some(Obligation::RunDaily {
-                duration: d,
-                grid_window,
-            });
+            return Some(Obligation::RunDaily { duration: d, grid_window });
         }
         if let Some(n) = reach {
             needs_temp(self, n);
@@ -2011,11 +1797,7 @@ impl Builder<'_, '_> {
                 return None;
             };
             let by = values::time_of_day(by_node, "`by`", self.diags)?;
-            return Some(Obligation::ReachBy {
-                target: Temperature(target),
-                by,
-                grid_window,
-            });
+            return Some(Obligation::ReachBy { target: Temperature(target), by, grid_window });
         }
         let n = cycle?;
         needs_temp(self, n);
@@ -2029,16 +1811,10 @@ impl Builder<'_, '_> {
             None => Duration::ZERO,
         };
         if every < Duration::from_secs(3600) {
-            self.diags
-                .error("C0252", "a cycle repeats at most hourly", span, "`every` is too short");
+            self.diags.error("C0252", "a cycle repeats at most hourly", span, "`every` is too short");
             return None;
         }
-        Some(Obligation::Cycle {
-            target: Temperature(target),
-            hold,
-            every,
-            grid_window,
-        })
+        Some(Obligation::Cycle { target: Temperature(target), hold, every, grid_window })
     }
 
     fn site_checks(&mut self, site: &Site, spans: &HeaderSpans, inverter_written: bool) {
@@ -2068,13 +1844,9 @@ impl Builder<'_, '_> {
                 }
                 if backup.is_some() && site.roles.grid_available.is_none() {
                     self.diags.push(
-                        Diagnostic::error(
-                            "C0255",
-                            "a backup site needs a `grid_available` point",
-                            site_span.clone(),
-                        )
-                        .with_label("grid: backup")
-                        .with_note("define a boolean point `grid_available` (1 while the grid is up)"),
+                        Diagnostic::error("C0255", "a backup site needs a `grid_available` point", site_span.clone())
+                            .with_label("grid: backup")
+                            .with_note("define a boolean point `grid_available` (1 while the grid is up)"),
                     );
                 }
                 if let (Some(limit), Some(span)) = (export.limit(), spans.import_target.clone())
@@ -2204,21 +1976,13 @@ fn layout(points: usize, loads: usize) -> SlotLayout {
             since_change: take(),
         })
         .collect();
-    SlotLayout {
-        len: next as usize,
-        site,
-        loads,
-    }
+    SlotLayout { len: next as usize, site, loads }
 }
 
 fn scope(points: &[Point], load_names: &[String], slots: &SlotLayout) -> SiteScope {
     let mut names = HashMap::new();
     for (i, p) in points.iter().enumerate() {
-        let ty = if p.boolean {
-            Type::Bool
-        } else {
-            Type::Number(p.dimension)
-        };
+        let ty = if p.boolean { Type::Bool } else { Type::Number(p.dimension) };
         names.insert(p.name.clone(), (Slot(i as u32), ty));
     }
     let site = [
@@ -2234,11 +1998,7 @@ fn scope(points: &[Point], load_names: &[String], slots: &SlotLayout) -> SiteSco
         slots.site.curtailed,
     ];
     for ((name, dim, _), slot) in SITE_SIGNALS.iter().zip(site) {
-        let ty = if *name == "curtailed" {
-            Type::Bool
-        } else {
-            Type::Number(*dim)
-        };
+        let ty = if *name == "curtailed" { Type::Bool } else { Type::Number(*dim) };
         names.insert((*name).to_owned(), (slot, ty));
     }
     for (name, ls) in load_names.iter().zip(&slots.loads) {
@@ -2257,10 +2017,7 @@ fn scope(points: &[Point], load_names: &[String], slots: &SlotLayout) -> SiteSco
 fn default_rules(kind: &LoadKind) -> (Option<String>, Option<String>) {
     let rule = |op: &str, p: Power, hold: &str| Some(format!("surplus {op} {}W for {hold}", p.0.round() as i64));
     let pair = |on: Power, hold: &str| {
-        (
-            rule(">=", on + Power(100.0), hold),
-            rule("<", (on - Power(250.0)).max(on * 0.5), hold),
-        )
+        (rule(">=", on + Power(100.0), hold), rule("<", (on - Power(250.0)).max(on * 0.5), hold))
     };
     match kind {
         LoadKind::Switched { rated, .. } => pair(*rated, "30s"),

@@ -60,27 +60,15 @@ pub struct Site {
 impl Site {
     /// The load called `name`.
     pub fn load(&self, name: &str) -> Option<(LoadId, &Load)> {
-        self.loads
-            .iter()
-            .enumerate()
-            .find(|(_, l)| l.name == name)
-            .map(|(i, l)| (LoadId(i), l))
+        self.loads.iter().enumerate().find(|(_, l)| l.name == name).map(|(i, l)| (LoadId(i), l))
     }
     /// The point called `name`.
     pub fn point(&self, name: &str) -> Option<(PointId, &Point)> {
-        self.points
-            .iter()
-            .enumerate()
-            .find(|(_, p)| p.name == name)
-            .map(|(i, p)| (PointId(i), p))
+        self.points.iter().enumerate().find(|(_, p)| p.name == name).map(|(i, p)| (PointId(i), p))
     }
     /// The device called `name`.
     pub fn device(&self, name: &str) -> Option<(DeviceId, &Device)> {
-        self.devices
-            .iter()
-            .enumerate()
-            .find(|(_, d)| d.name == name)
-            .map(|(i, d)| (DeviceId(i), d))
+        self.devices.iter().enumerate().find(|(_, d)| d.name == name).map(|(i, d)| (DeviceId(i), d))
     }
     /// The export limit: `None` when export is allowed without limit.
     pub fn export_limit(&self) -> Option<Power> {
@@ -604,10 +592,7 @@ impl LoadKind {
     }
     /// True for loads whose power the engine sets continuously.
     pub fn is_modulating(&self) -> bool {
-        matches!(
-            self,
-            LoadKind::Proportional { .. } | LoadKind::Charger { .. } | LoadKind::Battery { .. }
-        )
+        matches!(self, LoadKind::Proportional { .. } | LoadKind::Charger { .. } | LoadKind::Battery { .. })
     }
     /// A short word for the kind (`switched`, `stepped`, …).
     pub fn word(&self) -> &'static str {
@@ -656,11 +641,7 @@ impl Window {
     pub fn contains(&self, seconds_of_day: u32) -> bool {
         let s = self.start.signed_duration_since(NaiveTime::MIN).num_seconds() as u32;
         let e = self.end.signed_duration_since(NaiveTime::MIN).num_seconds() as u32;
-        if s <= e {
-            (s..e).contains(&seconds_of_day)
-        } else {
-            seconds_of_day >= s || seconds_of_day < e
-        }
+        if s <= e { (s..e).contains(&seconds_of_day) } else { seconds_of_day >= s || seconds_of_day < e }
     }
 }
 
@@ -708,9 +689,7 @@ impl Obligation {
             Obligation::ReachBy { target, by, .. } => {
                 format!("reach {target} by {}", by.format("%H:%M"))
             }
-            Obligation::Cycle {
-                target, hold, every, ..
-            } => format!(
+            Obligation::Cycle { target, hold, every, .. } => format!(
                 "hold {target} for {} every {}",
                 crate::units::format_duration(*hold),
                 crate::units::format_duration(*every)
@@ -848,60 +827,24 @@ pub struct LoadSlots {
 /// The names of the derived site signals, their dimension and doc line, in
 /// [`SiteSlots`] order. Shared by the loader's scope and the documentation.
 pub const SITE_SIGNALS: &[(&str, Dimension, &str)] = &[
-    (
-        "surplus",
-        Dimension::Power,
-        "surplus available to this load at its priority",
-    ),
-    (
-        "site_surplus",
-        Dimension::Power,
-        "export plus the power of every managed load now on",
-    ),
+    ("surplus", Dimension::Power, "surplus available to this load at its priority"),
+    ("site_surplus", Dimension::Power, "export plus the power of every managed load now on"),
     ("import", Dimension::Power, "grid import now, 0 while exporting"),
     ("export", Dimension::Power, "grid export now, 0 while importing"),
-    (
-        "import_today",
-        Dimension::Energy,
-        "energy imported since local midnight",
-    ),
-    (
-        "export_today",
-        Dimension::Energy,
-        "energy exported since local midnight",
-    ),
+    ("import_today", Dimension::Energy, "energy imported since local midnight"),
+    ("export_today", Dimension::Energy, "energy exported since local midnight"),
     ("import_month", Dimension::Energy, "energy imported this calendar month"),
     ("export_month", Dimension::Energy, "energy exported this calendar month"),
-    (
-        "diverted_today",
-        Dimension::Energy,
-        "energy drawn by managed loads since local midnight",
-    ),
-    (
-        "curtailed",
-        Dimension::Scalar,
-        "1 while the inverter is being curtailed",
-    ),
+    ("diverted_today", Dimension::Energy, "energy drawn by managed loads since local midnight"),
+    ("curtailed", Dimension::Scalar, "1 while the inverter is being curtailed"),
 ];
 
 /// Per-load attribute names (`tank.on`), their type and doc line, in [`LoadSlots`] order.
 /// `None` dimension means a boolean.
 pub const LOAD_ATTRIBUTES: &[(&str, Option<Dimension>, &str)] = &[
     ("on", None, "true while the load is on"),
-    (
-        "power",
-        Some(Dimension::Power),
-        "power drawn now (metered, or as commanded)",
-    ),
-    (
-        "runtime_today",
-        Some(Dimension::Duration),
-        "time on since local midnight",
-    ),
-    (
-        "energy_today",
-        Some(Dimension::Energy),
-        "energy drawn since local midnight",
-    ),
+    ("power", Some(Dimension::Power), "power drawn now (metered, or as commanded)"),
+    ("runtime_today", Some(Dimension::Duration), "time on since local midnight"),
+    ("energy_today", Some(Dimension::Energy), "energy drawn since local midnight"),
     ("since_change", Some(Dimension::Duration), "time since it last switched"),
 ];

@@ -121,11 +121,7 @@ impl Tariff {
     pub fn block_label(&self, index: usize) -> String {
         match &self.import {
             ImportPrice::Blocks(blocks) => {
-                let lower = if index == 0 {
-                    0.0
-                } else {
-                    blocks[index - 1].up_to_kwh.unwrap_or(0.0)
-                };
+                let lower = if index == 0 { 0.0 } else { blocks[index - 1].up_to_kwh.unwrap_or(0.0) };
                 match blocks.get(index).and_then(|b| b.up_to_kwh) {
                     Some(u) => format!("block {}: {lower:.0}–{u:.0} kWh", index + 1),
                     None => format!("block {}: above {lower:.0} kWh", index + 1),
@@ -165,12 +161,8 @@ fn price(node: &Node, per: &str, what: &str, diags: &mut Diagnostics) -> Option<
         Ok(v) if v.is_finite() => Some(v),
         _ => {
             diags.push(
-                Diagnostic::error(
-                    "C0401",
-                    format!("{what} \"{text}\" is not a price per {per}"),
-                    node.span.clone(),
-                )
-                .with_label(format!("expected a number, optionally followed by /{per}")),
+                Diagnostic::error("C0401", format!("{what} \"{text}\" is not a price per {per}"), node.span.clone())
+                    .with_label(format!("expected a number, optionally followed by /{per}")),
             );
             None
         }
@@ -180,18 +172,10 @@ fn price(node: &Node, per: &str, what: &str, diags: &mut Diagnostics) -> Option<
 /// Reads the `tariff:` section.
 pub fn read(node: &Node, diags: &mut Diagnostics) -> Option<Tariff> {
     let mut m = MapReader::new(node, "the `tariff` section", diags)?;
-    let currency = m
-        .get("currency")
-        .and_then(|n| values::text(n, "the currency", diags))
-        .unwrap_or("")
-        .to_owned();
+    let currency = m.get("currency").and_then(|n| values::text(n, "the currency", diags)).unwrap_or("").to_owned();
     let import = m.get("import").map(|n| price(n, "kWh", "the import price", diags));
-    let export = m
-        .get("export")
-        .map_or(Some(0.0), |n| price(n, "kWh", "the export credit", diags));
-    let standing = m
-        .get("standing")
-        .map_or(Some(0.0), |n| price(n, "day", "the standing charge", diags));
+    let export = m.get("export").map_or(Some(0.0), |n| price(n, "kWh", "the export credit", diags));
+    let standing = m.get("standing").map_or(Some(0.0), |n| price(n, "day", "the standing charge", diags));
     let cost = m.get("array_cost").map(|n| price(n, "kWp", "the array cost", diags));
     let tou_node = m.get("time_of_use");
     let blocks_node = m.get("blocks");
@@ -209,17 +193,11 @@ pub fn read(node: &Node, diags: &mut Diagnostics) -> Option<Tariff> {
             return None;
         }
         (None, Some(b)) => ImportPrice::Blocks(read_blocks(b, diags)?),
-        (Some(p), None) => ImportPrice::Flat {
-            price: p?,
-            time_of_use: tou_node.map_or(Some(Vec::new()), |n| read_tou(n, diags))?,
-        },
+        (Some(p), None) => {
+            ImportPrice::Flat { price: p?, time_of_use: tou_node.map_or(Some(Vec::new()), |n| read_tou(n, diags))? }
+        }
         (None, None) => {
-            diags.error(
-                "C0403",
-                "the tariff needs an `import` price or `blocks`",
-                span,
-                "how is import priced?",
-            );
+            diags.error("C0403", "the tariff needs an `import` price or `blocks`", span, "how is import priced?");
             return None;
         }
     };
@@ -257,15 +235,10 @@ fn read_tou(node: &Node, diags: &mut Diagnostics) -> Option<Vec<TouPeriod>> {
     let mut out = Vec::new();
     for item in items {
         let mut m = MapReader::new(item, "a time-of-use window", diags)?;
-        let window = m
-            .require("window", diags)
-            .and_then(|n| values::window(n, "the window", diags));
-        let p = m
-            .require("price", diags)
-            .and_then(|n| price(n, "kWh", "the price", diags));
-        let days = m.get("days").map_or(Some("all"), |n| {
-            values::choice(n, &["all", "weekdays", "weekends"], "`days`", diags)
-        });
+        let window = m.require("window", diags).and_then(|n| values::window(n, "the window", diags));
+        let p = m.require("price", diags).and_then(|n| price(n, "kWh", "the price", diags));
+        let days =
+            m.get("days").map_or(Some("all"), |n| values::choice(n, &["all", "weekdays", "weekends"], "`days`", diags));
         m.finish(diags);
         out.push(TouPeriod {
             window: window?,
@@ -295,9 +268,7 @@ fn read_blocks(node: &Node, diags: &mut Diagnostics) -> Option<Vec<Block>> {
         let mut m = MapReader::new(item, "a tariff block", diags)?;
         let up_to_node = m.get("up_to");
         let up_to = up_to_node.map(|n| values::positive(n, Dimension::Energy, "the block's upper bound", diags));
-        let p = m
-            .require("price", diags)
-            .and_then(|n| price(n, "kWh", "the price", diags));
+        let p = m.require("price", diags).and_then(|n| price(n, "kWh", "the price", diags));
         m.finish(diags);
         let up_to_kwh = match up_to {
             Some(v) => Some(v? / 1000.0),
@@ -306,12 +277,7 @@ fn read_blocks(node: &Node, diags: &mut Diagnostics) -> Option<Vec<Block>> {
         let last = i + 1 == items.len();
         match (up_to_kwh, last) {
             (None, false) => {
-                diags.error(
-                    "C0405",
-                    "only the last block may be open-ended",
-                    item.span.clone(),
-                    "add `up_to:`",
-                );
+                diags.error("C0405", "only the last block may be open-ended", item.span.clone(), "add `up_to:`");
                 return None;
             }
             (Some(_), true) => {
@@ -328,23 +294,13 @@ fn read_blocks(node: &Node, diags: &mut Diagnostics) -> Option<Vec<Block>> {
         if let (Some(u), Some(prev)) = (up_to_kwh, out.last().and_then(|b| b.up_to_kwh))
             && u <= prev
         {
-            diags.error(
-                "C0405",
-                "block bounds must increase",
-                item.span.clone(),
-                "not above the previous block",
-            );
+            diags.error("C0405", "block bounds must increase", item.span.clone(), "not above the previous block");
             return None;
         }
         out.push(Block { up_to_kwh, price: p? });
     }
     if out.is_empty() {
-        diags.error(
-            "C0405",
-            "`blocks` is empty",
-            node.span.clone(),
-            "list at least one block",
-        );
+        diags.error("C0405", "`blocks` is empty", node.span.clone(), "list at least one block");
         return None;
     }
     Some(out)

@@ -23,13 +23,9 @@ pub fn text<'n>(node: &'n Node, what: &str, diags: &mut Diagnostics) -> Option<&
                 _ => "write it as text",
             };
             diags.push(
-                Diagnostic::error(
-                    "C0101",
-                    format!("{what} must be text, found {}", other.kind()),
-                    node.span.clone(),
-                )
-                .with_label("expected text")
-                .with_note(hint),
+                Diagnostic::error("C0101", format!("{what} must be text, found {}", other.kind()), node.span.clone())
+                    .with_label("expected text")
+                    .with_note(hint),
             );
             None
         }
@@ -72,12 +68,7 @@ pub fn quantity(node: &Node, dimension: Dimension, what: &str, diags: &mut Diagn
                 return None;
             }
             Err(UnitError::NotANumber(_)) => {
-                diags.error(
-                    "C0302",
-                    format!("{what} must be a number with a unit"),
-                    node.span.clone(),
-                    expected(),
-                );
+                diags.error("C0302", format!("{what} must be a number with a unit"), node.span.clone(), expected());
                 return None;
             }
         },
@@ -98,21 +89,13 @@ pub fn quantity(node: &Node, dimension: Dimension, what: &str, diags: &mut Diagn
         diags.push(
             Diagnostic::error("C0303", format!("{what} needs a unit"), node.span.clone())
                 .with_label(expected())
-                .with_note(format!(
-                    "write it as `{}{}`",
-                    units::trim_number(value),
-                    dimension.base_unit()
-                )),
+                .with_note(format!("write it as `{}{}`", units::trim_number(value), dimension.base_unit())),
         );
     } else {
         diags.push(
             Diagnostic::error(
                 "C0304",
-                format!(
-                    "{what} must be {}, but this is {}",
-                    dimension.describe(),
-                    found.describe()
-                ),
+                format!("{what} must be {}, but this is {}", dimension.describe(), found.describe()),
                 node.span.clone(),
             )
             .with_label(expected()),
@@ -125,12 +108,7 @@ pub fn quantity(node: &Node, dimension: Dimension, what: &str, diags: &mut Diagn
 pub fn duration(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<Duration> {
     let seconds = quantity(node, Dimension::Duration, what, diags)?;
     if seconds < 0.0 || !seconds.is_finite() {
-        diags.error(
-            "C0305",
-            format!("{what} cannot be negative"),
-            node.span.clone(),
-            "expected a duration ≥ 0",
-        );
+        diags.error("C0305", format!("{what} cannot be negative"), node.span.clone(), "expected a duration ≥ 0");
         return None;
     }
     Some(Duration::from_secs_f64(seconds))
@@ -157,9 +135,7 @@ pub fn parse_time_of_day(text: &str) -> Option<NaiveTime> {
     if text == "24:00" {
         return Some(NaiveTime::MIN);
     }
-    NaiveTime::parse_from_str(text, "%H:%M")
-        .or_else(|_| NaiveTime::parse_from_str(text, "%H:%M:%S"))
-        .ok()
+    NaiveTime::parse_from_str(text, "%H:%M").or_else(|_| NaiveTime::parse_from_str(text, "%H:%M:%S")).ok()
 }
 
 /// Reads a time of day.
@@ -170,12 +146,8 @@ pub fn time_of_day(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<N
     };
     if parsed.is_none() {
         diags.push(
-            Diagnostic::error(
-                "C0306",
-                format!("{what} must be a time of day such as \"17:00\""),
-                node.span.clone(),
-            )
-            .with_label("expected HH:MM (24-hour clock)"),
+            Diagnostic::error("C0306", format!("{what} must be a time of day such as \"17:00\""), node.span.clone())
+                .with_label("expected HH:MM (24-hour clock)"),
         );
     }
     parsed
@@ -184,12 +156,9 @@ pub fn time_of_day(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<N
 /// Reads a window `HH:MM..HH:MM` (half-open; wraps over midnight if the start is later).
 pub fn window(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<Window> {
     let parsed = match &node.value {
-        Value::Str(s) => s.split_once("..").and_then(|(a, b)| {
-            Some(Window {
-                start: parse_time_of_day(a)?,
-                end: parse_time_of_day(b)?,
-            })
-        }),
+        Value::Str(s) => s
+            .split_once("..")
+            .and_then(|(a, b)| Some(Window { start: parse_time_of_day(a)?, end: parse_time_of_day(b)? })),
         _ => None,
     };
     match parsed {
@@ -290,13 +259,9 @@ pub fn name<'n>(node: &'n Node, what: &str, diags: &mut Diagnostics) -> Option<&
         Some(s)
     } else {
         diags.push(
-            Diagnostic::error(
-                "C0105",
-                format!("{what} \"{s}\" is not a usable name"),
-                node.span.clone(),
-            )
-            .with_label("use lowercase letters, digits and _")
-            .with_note("names appear in rules, so they start with a letter and contain only a-z, 0-9 and _"),
+            Diagnostic::error("C0105", format!("{what} \"{s}\" is not a usable name"), node.span.clone())
+                .with_label("use lowercase letters, digits and _")
+                .with_note("names appear in rules, so they start with a letter and contain only a-z, 0-9 and _"),
         );
         None
     }

@@ -165,15 +165,7 @@ fn attach(raw: Spanned<RawValue>) -> Node {
         RawValue::Map(entries) => Value::Map(
             entries
                 .into_iter()
-                .map(|(k, v)| {
-                    (
-                        Key {
-                            span: span_of(&k.referenced),
-                            name: k.value,
-                        },
-                        attach(v),
-                    )
-                })
+                .map(|(k, v)| (Key { span: span_of(&k.referenced), name: k.value }, attach(v)))
                 .collect(),
         ),
     };
@@ -181,7 +173,7 @@ fn attach(raw: Spanned<RawValue>) -> Node {
 }
 
 /// Parses YAML text into a spanned tree, or a located syntax error.
-pub fn parse(text: &str) -> Result<Node, Diagnostic> {
+pub fn parse(text: &str) -> Result<Node, Box<Diagnostic>> {
     match serde_saphyr::from_str::<Spanned<RawValue>>(text) {
         Ok(raw) => Ok(attach(raw)),
         Err(e) => {
@@ -191,9 +183,9 @@ pub fn parse(text: &str) -> Result<Node, Diagnostic> {
                 start..(start + 1).min(text.len())
             });
             let message = first_line_of_error(&e.to_string());
-            Err(Diagnostic::error("C0001", format!("the file is not valid YAML: {message}"), span.unwrap_or(0..0))
+            Err(Box::new(Diagnostic::error("C0001", format!("the file is not valid YAML: {message}"), span.unwrap_or(0..0))
                 .with_label("here")
-                .with_note("check indentation (spaces, not tabs) and quote text that contains `: ` or starts with `{`, `[`, `*` or `&`"))
+                .with_note("check indentation (spaces, not tabs) and quote text that contains `: ` or starts with `{`, `[`, `*` or `&`")))
         }
     }
 }
@@ -281,21 +273,11 @@ impl<'n> MapReader<'n> {
                         used[i] = true;
                     }
                 }
-                Some(MapReader {
-                    span: node.span.clone(),
-                    entries,
-                    used,
-                    known: Vec::new(),
-                    what,
-                })
+                Some(MapReader { span: node.span.clone(), entries, used, known: Vec::new(), what })
             }
-            Value::Null => Some(MapReader {
-                span: node.span.clone(),
-                entries: &[],
-                used: Vec::new(),
-                known: Vec::new(),
-                what,
-            }),
+            Value::Null => {
+                Some(MapReader { span: node.span.clone(), entries: &[], used: Vec::new(), known: Vec::new(), what })
+            }
             other => {
                 diags.error(
                     "C0002",
@@ -318,10 +300,7 @@ impl<'n> MapReader<'n> {
 
     /// The key's own span, if present (for "this key" labels).
     pub fn key_span(&self, key: &str) -> Option<Range<usize>> {
-        self.entries
-            .iter()
-            .find(|(k, _)| k.name == key)
-            .map(|(k, _)| k.span.clone())
+        self.entries.iter().find(|(k, _)| k.name == key).map(|(k, _)| k.span.clone())
     }
 
     /// The value of `key`, reporting its absence.
@@ -359,11 +338,7 @@ impl<'n> MapReader<'n> {
     /// skipping duplicates (already reported).
     pub fn into_named_entries(self) -> impl Iterator<Item = &'n (Key, Node)> {
         let skip = self.used;
-        self.entries
-            .iter()
-            .enumerate()
-            .filter(move |(i, _)| !skip.get(*i).copied().unwrap_or(false))
-            .map(|(_, e)| e)
+        self.entries.iter().enumerate().filter(move |(i, _)| !skip.get(*i).copied().unwrap_or(false)).map(|(_, e)| e)
     }
 
     /// Reports every key that was never asked for.
@@ -372,12 +347,9 @@ impl<'n> MapReader<'n> {
             if *used {
                 continue;
             }
-            let mut d = Diagnostic::error(
-                "C0005",
-                format!("unknown key \"{}\" in {}", key.name, self.what),
-                key.span.clone(),
-            )
-            .with_label("not a key Spillway knows here");
+            let mut d =
+                Diagnostic::error("C0005", format!("unknown key \"{}\" in {}", key.name, self.what), key.span.clone())
+                    .with_label("not a key Spillway knows here");
             match did_you_mean(&key.name, self.known.iter().copied()) {
                 Some(s) => d = d.with_note(format!("did you mean \"{s}\"?")),
                 None => {

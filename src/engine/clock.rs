@@ -40,13 +40,7 @@ pub struct SiteClock {
 impl SiteClock {
     /// A clock for a time zone; the first [`SiteClock::at`] fills the cache.
     pub fn new(tz: Tz) -> Self {
-        SiteClock {
-            tz,
-            offset_ms: 0,
-            valid_until: i64::MIN,
-            valid_from: i64::MAX,
-            day: None,
-        }
+        SiteClock { tz, offset_ms: 0, valid_until: i64::MIN, valid_from: i64::MAX, day: None }
     }
 
     fn refresh(&mut self, now: i64) {
@@ -54,12 +48,7 @@ impl SiteClock {
             return;
         }
         let utc = Timestamp(now).to_utc();
-        self.offset_ms = i64::from(
-            self.tz
-                .offset_from_utc_datetime(&utc.naive_utc())
-                .fix()
-                .local_minus_utc(),
-        ) * 1000;
+        self.offset_ms = i64::from(self.tz.offset_from_utc_datetime(&utc.naive_utc()).fix().local_minus_utc()) * 1000;
         self.valid_from = now - now.rem_euclid(QUARTER_HOUR_MS);
         self.valid_until = self.valid_from + QUARTER_HOUR_MS;
     }
@@ -72,10 +61,7 @@ impl SiteClock {
         let ms_of_day = local.rem_euclid(DAY_MS);
         // 1970-01-01 was a Thursday.
         let weekday = Weekday::try_from(((day + 3).rem_euclid(7)) as u8).unwrap_or(Weekday::Mon);
-        LocalClock {
-            seconds_of_day: (ms_of_day / 1000) as u32,
-            weekday,
-        }
+        LocalClock { seconds_of_day: (ms_of_day / 1000) as u32, weekday }
     }
 
     /// The local day of `now`, and whether it differs from the previous call's.
@@ -85,15 +71,8 @@ impl SiteClock {
         match self.day {
             Some(d) if d.day == day => (d, false),
             previous => {
-                let date = chrono::DateTime::from_timestamp_millis(day * DAY_MS)
-                    .unwrap_or_default()
-                    .date_naive();
-                let d = LocalDay {
-                    day,
-                    year: date.year(),
-                    month: date.month(),
-                    day_of_month: date.day(),
-                };
+                let date = chrono::DateTime::from_timestamp_millis(day * DAY_MS).unwrap_or_default().date_naive();
+                let d = LocalDay { day, year: date.year(), month: date.month(), day_of_month: date.day() };
                 self.day = Some(d);
                 (d, previous.is_some())
             }
@@ -116,12 +95,7 @@ mod tests {
     use chrono::TimeZone;
 
     fn ts(tz: Tz, y: i32, mo: u32, d: u32, h: u32, mi: u32) -> Timestamp {
-        Timestamp::from_utc(
-            tz.with_ymd_and_hms(y, mo, d, h, mi, 0)
-                .single()
-                .unwrap()
-                .with_timezone(&chrono::Utc),
-        )
+        Timestamp::from_utc(tz.with_ymd_and_hms(y, mo, d, h, mi, 0).single().unwrap().with_timezone(&chrono::Utc))
     }
 
     #[test]

@@ -243,11 +243,9 @@ impl fmt::Display for Reason {
         match self {
             Reason::SignalLost { point } => write!(f, "safe state: signal #{point} is stale"),
             Reason::Failsafe => f.write_str("safe state: a guard signal is stale"),
-            Reason::Recovering { left } => write!(
-                f,
-                "held in safe state after signals returned ({} left)",
-                format_duration(*left)
-            ),
+            Reason::Recovering { left } => {
+                write!(f, "held in safe state after signals returned ({} left)", format_duration(*left))
+            }
             Reason::Inhibited => f.write_str("off: inhibit rule is true"),
             Reason::Shed => f.write_str("off: shed during a grid outage"),
             Reason::Override { until } => write!(f, "override until {until}"),

@@ -72,22 +72,11 @@ impl Guard {
             return (self.limit, LimitReason::Failsafe);
         }
         let Some(grid) = grid else {
-            return (
-                self.limit,
-                if self.limit.is_some() {
-                    LimitReason::ExportGuard
-                } else {
-                    LimitReason::None
-                },
-            );
+            return (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None });
         };
         let tolerance = site.guard.tolerance;
         // Hold a no-export site at its small import; a limited one just under its limit.
-        let target = if export_limit.0 <= 0.0 {
-            site.import_target.max(tolerance)
-        } else {
-            -export_limit + tolerance
-        };
+        let target = if export_limit.0 <= 0.0 { site.import_target.max(tolerance) } else { -export_limit + tolerance };
 
         // Escalation: export above limit + tolerance for longer than the deadline.
         if -grid > export_limit + tolerance {
@@ -106,21 +95,26 @@ impl Guard {
 
         let pv = site.roles.pv.map(|p| values[p.0]).filter(|v| v.is_finite()).map(Power);
         let expected = grid + delta_loads;
-        let need = target - expected; // > 0: this much PV must go
-        let _ = absorbable;
+        let rate = site.guard.release_rate * dt.as_secs_f64();
         let next = match self.limit {
-            None if expected < -export_limit => {
-                let base = pv.unwrap_or(inv.rated);
-                Some(base - need)
-            }
+            // Engage only on export beyond the limit that the loads could not take.
+            None if expected < -export_limit => Some(pv.unwrap_or(inv.rated) - (target - expected)),
             None => None,
             Some(current) => {
                 let base = pv.map_or(current, |p| p.min(current));
-                if need.0 > 0.0 {
-                    Some(base - need)
+                if expected < target - tolerance {
+                    // Cut the whole excess at once.
+                    Some(base - (target - expected))
+                } else if expected > target + tolerance {
+                    // Importing more than the target: give the PV back gently.
+                    Some(current + rate.min(expected - target))
+                } else if absorbable.0 > 0.0 {
+                    // At the target, but a modulating load could take more: probe upwards,
+                    // never by more than would push the grid past the export limit.
+                    let step = rate.min(absorbable).min((expected + export_limit).max(Power::ZERO));
+                    Some(current + step)
                 } else {
-                    // Release gently; a release past the rating ends the curtailment.
-                    Some(current + (site.guard.release_rate * dt.as_secs_f64()).min(-need))
+                    Some(current)
                 }
             }
         };
@@ -129,13 +123,6 @@ impl Guard {
             Some(l) => Some(l.clamp(Power::ZERO, inv.rated)),
             None => None,
         };
-        (
-            self.limit,
-            if self.limit.is_some() {
-                LimitReason::ExportGuard
-            } else {
-                LimitReason::None
-            },
-        )
+        (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None })
     }
 }

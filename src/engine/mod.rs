@@ -99,6 +99,8 @@ pub struct Engine {
     recovered_at: Option<Timestamp>,
     outage_since: Option<Timestamp>,
     float: bool,
+    /// Whether the site has ever left the initial fail-safe.
+    ever_normal: bool,
     guard_points: Vec<PointId>,
     decisions: Decisions,
     results: Vec<ObligationResult>,
@@ -132,13 +134,7 @@ impl Engine {
             .collect();
         let decisions = Decisions {
             now: Timestamp(0),
-            loads: vec![
-                LoadDecision {
-                    command: Command::Off,
-                    reason: Reason::Waiting
-                };
-                site.loads.len()
-            ],
+            loads: vec![LoadDecision { command: Command::Off, reason: Reason::Waiting }; site.loads.len()],
             inverter_limit: None,
             limit_reason: LimitReason::None,
             mode: Mode::Failsafe,
@@ -151,10 +147,7 @@ impl Engine {
             values: vec![f64::NAN; site.slots.len],
             last_now: None,
             day: None,
-            local: LocalClock {
-                seconds_of_day: 0,
-                weekday: chrono::Weekday::Mon,
-            },
+            local: LocalClock { seconds_of_day: 0, weekday: chrono::Weekday::Mon },
             loads,
             pi: Pi::new(site.guard.kp, site.guard.ki),
             guard: Guard::default(),
@@ -163,6 +156,7 @@ impl Engine {
             recovered_at: None,
             outage_since: None,
             float: false,
+            ever_normal: false,
             guard_points,
             decisions,
             results: Vec::new(),
@@ -202,9 +196,7 @@ impl Engine {
 
     /// A load's run time and energy today.
     pub fn load_today(&self, load: LoadId) -> (Duration, Energy) {
-        self.loads
-            .get(load.0)
-            .map_or((Duration::ZERO, Energy::ZERO), |l| (l.runtime_today, l.energy_today))
+        self.loads.get(load.0).map_or((Duration::ZERO, Energy::ZERO), |l| (l.runtime_today, l.energy_today))
     }
 
     /// Obligation verdicts emitted since the last call (at local midnights).
@@ -227,11 +219,7 @@ impl Engine {
         let (Some(state), Some(l)) = (self.loads.get(load.0), self.site.loads.get(load.0)) else {
             return String::new();
         };
-        let input = EvalInput {
-            values: &self.values,
-            now: self.decisions.now,
-            local: self.local,
-        };
+        let input = EvalInput { values: &self.values, now: self.decisions.now, local: self.local };
         let rule_detail = |rt: &Option<crate::config::model::RuleText>, st: &Option<RuleState>| match (rt, st) {
             (Some(r), Some(s)) => Some(r.rule.explain(&input, s)),
             _ => None,
@@ -353,12 +341,7 @@ impl Engine {
         }
 
         // Site flows.
-        let grid = site
-            .roles
-            .grid
-            .map(|p| self.values[p.0])
-            .filter(|v| v.is_finite())
-            .map(Power);
+        let grid = site.roles.grid.map(|p| self.values[p.0]).filter(|v| v.is_finite()).map(Power);
         let hidden = self.guard.hidden_headroom(&site, &self.values);
         let base_surplus = match &site.connection {
             Connection::Grid { .. } => grid.map(|g| managed - g),
@@ -391,13 +374,18 @@ impl Engine {
                     .filter(|(l, _)| l.kind.is_modulating())
                     .map(|(_, s)| s.power)
                     .sum();
-                let cap: Power = site
-                    .loads
-                    .iter()
-                    .filter(|l| l.kind.is_modulating())
-                    .map(|l| l.kind.max_power())
-                    .sum();
-                self.pi.update(pi_target - g, modulating_now, cap, dt)
+                let cap: Power = site.loads.iter().filter(|l| l.kind.is_modulating()).map(|l| l.kind.max_power()).sum();
+                let u = self.pi.update(pi_target - g, modulating_now, cap, dt);
+                // Export beyond the limit: the loads take all they can at once (the guard
+                // curtails only the rest), rather than ramping while export persists.
+                match site.export_limit() {
+                    Some(limit) if -g > limit => {
+                        let jump = (modulating_now + (pi_target - g)).min(cap).max(u);
+                        self.pi.set_output(jump);
+                        jump
+                    }
+                    _ => u,
+                }
             }
             _ => {
                 self.pi.reset();
@@ -410,14 +398,12 @@ impl Engine {
         switchings.clear();
         let mut absorbable = Power::ZERO;
         let mut new_power = Power::ZERO;
+        // Indexes several parallel vectors (site loads, their states, reservations).
+        #[allow(clippy::needless_range_loop)]
         for i in 0..site.loads.len() {
             let surplus_i = site_surplus.map(|s| s - used - reserved[i]);
             self.values[site.slots.site.surplus.0 as usize] = surplus_i.map_or(f64::NAN, |p| p.0);
-            let input = EvalInput {
-                values: &self.values,
-                now,
-                local: input_local,
-            };
+            let input = EvalInput { values: &self.values, now, local: input_local };
             let (command, reason, headroom) = decide(
                 &site,
                 i,
@@ -434,21 +420,13 @@ impl Engine {
             let st = &mut self.loads[i];
             let was_on = st.command.is_on();
             if command != st.command {
-                switchings.push(Switching {
-                    load: LoadId(i),
-                    from: st.command,
-                    to: command,
-                    reason,
-                });
+                switchings.push(Switching { load: LoadId(i), from: st.command, to: command, reason });
                 if command.is_on() != was_on {
                     st.changed_at = now;
                     if command.is_on() {
                         st.starts.push_back(now);
                     }
-                    if self
-                        .recovered_at
-                        .is_some_and(|r| now.since(r) < SETTLE + site.failsafe.recovery_hold)
-                    {
+                    if self.recovered_at.is_some_and(|r| now.since(r) < SETTLE + site.failsafe.recovery_hold) {
                         st.settled = true;
                     }
                 }
@@ -468,16 +446,12 @@ impl Engine {
         // Export guard on the power the loads will draw after this tick's commands.
         let delta_loads = new_power - managed;
         let (limit, limit_reason) =
-            self.guard
-                .decide(&site, &self.values, grid, delta_loads, absorbable, self.mode, now, dt);
+            self.guard.decide(&site, &self.values, grid, delta_loads, absorbable, self.mode, now, dt);
 
         let d = &mut self.decisions;
         d.now = now;
         for (out, st) in d.loads.iter_mut().zip(&self.loads) {
-            *out = LoadDecision {
-                command: st.command,
-                reason: st.reason,
-            };
+            *out = LoadDecision { command: st.command, reason: st.reason };
         }
         d.inverter_limit = limit;
         d.limit_reason = limit_reason;
@@ -502,12 +476,7 @@ impl Engine {
         for (i, (l, s)) in self.site.loads.iter().zip(self.loads.iter_mut()).enumerate() {
             for (j, (ob, st)) in l.obligations.iter().zip(s.obligations.iter_mut()).enumerate() {
                 let met = st.end_of_day(ob, s.runtime_today, now);
-                self.results.push(ObligationResult {
-                    load: LoadId(i),
-                    index: j,
-                    day: previous.day,
-                    met,
-                });
+                self.results.push(ObligationResult { load: LoadId(i), index: j, day: previous.day, met });
             }
             s.runtime_today = Duration::ZERO;
             s.energy_today = Energy::ZERO;
@@ -517,18 +486,15 @@ impl Engine {
 
     fn update_mode(&mut self, now: Timestamp, guard_ok: bool) {
         let site = &self.site;
-        let outage = site
-            .roles
-            .grid_available
-            .map(|p| self.values[p.0])
-            .filter(|v| v.is_finite())
-            .map(|v| v < 0.5);
+        let outage = site.roles.grid_available.map(|p| self.values[p.0]).filter(|v| v.is_finite()).map(|v| v < 0.5);
         let backup = matches!(site.connection, Connection::Grid { backup: Some(_), .. });
         self.mode = if !guard_ok {
             self.recovered_at = None;
             Mode::Failsafe
         } else {
-            if matches!(self.mode, Mode::Failsafe) {
+            // Returning from a fail-safe is held calm; the very first fresh data at
+            // start-up is not a return (every load starts off anyway).
+            if matches!(self.mode, Mode::Failsafe) && self.ever_normal {
                 self.recovered_at = Some(now);
                 for l in &mut self.loads {
                     l.settled = false;
@@ -543,6 +509,9 @@ impl Engine {
                 },
             }
         };
+        if self.mode != Mode::Failsafe {
+            self.ever_normal = true;
+        }
         match (self.mode, self.outage_since) {
             (Mode::Outage, None) => self.outage_since = Some(now),
             (Mode::Normal, Some(_)) => self.outage_since = None,
@@ -566,11 +535,7 @@ impl Engine {
         }
         // In float the charge controller is holding PV back: assume some headroom. Below
         // float the battery has first call on the power, up to its acceptance.
-        let adjust = if self.float {
-            og.float_headroom
-        } else {
-            -og.charge_acceptance
-        };
+        let adjust = if self.float { og.float_headroom } else { -og.charge_acceptance };
         Some(managed + Power(battery) + adjust)
     }
 
@@ -598,11 +563,8 @@ impl Engine {
             v[ls.power.0 as usize] = st.power.0;
             v[ls.runtime_today.0 as usize] = st.runtime_today.as_secs_f64();
             v[ls.energy_today.0 as usize] = st.energy_today.0;
-            v[ls.since_change.0 as usize] = if st.changed_at == Timestamp::NEVER {
-                1e9
-            } else {
-                now.since(st.changed_at).as_secs_f64()
-            };
+            v[ls.since_change.0 as usize] =
+                if st.changed_at == Timestamp::NEVER { 1e9 } else { now.since(st.changed_at).as_secs_f64() };
         }
     }
 
@@ -619,10 +581,7 @@ impl Engine {
             let locked = st.command.is_on()
                 && !l.kind.is_modulating()
                 && (now.since(st.changed_at) < l.min_on
-                    || matches!(
-                        st.reason,
-                        Reason::Obligation { .. } | Reason::Override { .. } | Reason::Settling
-                    ));
+                    || matches!(st.reason, Reason::Obligation { .. } | Reason::Override { .. } | Reason::Settling));
             if locked {
                 acc += st.power;
             }
@@ -649,10 +608,9 @@ fn guard_points(site: &Site) -> Vec<PointId> {
             Some(_) => r.grid.into_iter().collect(),
             None => Vec::new(),
         },
-        Connection::OffGrid(_) => [r.battery_voltage, r.battery_current.or(r.battery_power)]
-            .into_iter()
-            .flatten()
-            .collect(),
+        Connection::OffGrid(_) => {
+            [r.battery_voltage, r.battery_current.or(r.battery_power)].into_iter().flatten().collect()
+        }
     }
 }
 
@@ -677,10 +635,7 @@ fn load_deps(site: &Site, load: &crate::config::model::Load, guard_points: &[Poi
     }
     if !load.obligations.is_empty()
         && let Some(t) = load.temperature
-        && load
-            .obligations
-            .iter()
-            .any(|o| !matches!(o, crate::config::model::Obligation::RunDaily { .. }))
+        && load.obligations.iter().any(|o| !matches!(o, crate::config::model::Obligation::RunDaily { .. }))
     {
         deps.push(t);
     }
@@ -731,10 +686,14 @@ fn decide(
     let inhibit = truth(&l.inhibit, &mut st.inhibit, input);
     let start = truth(&l.start, &mut st.start, input);
     let stop = truth(&l.stop, &mut st.stop, input);
+    // An expired override hands the load back to its rules as if from off, so a boost
+    // does not linger just because the stop rule is not true.
+    let mut is_on = st.command.is_on();
     if let Some(o) = st.override_
         && o.until <= now
     {
         st.override_ = None;
+        is_on = false;
     }
     let safe = |st: &LoadState| match l.safe_state {
         SafeState::Off => Command::Off,
@@ -750,9 +709,7 @@ fn decide(
         return (safe(st), Reason::SignalLost { point: p.0 }, Power::ZERO);
     }
     if mode == Mode::Recovering {
-        let left = recovered_at.map_or(Duration::ZERO, |r| {
-            site.failsafe.recovery_hold.saturating_sub(now.since(r))
-        });
+        let left = recovered_at.map_or(Duration::ZERO, |r| site.failsafe.recovery_hold.saturating_sub(now.since(r)));
         return (safe(st), Reason::Recovering { left }, Power::ZERO);
     }
     if inhibit == Some(Truth::True) {
@@ -779,17 +736,9 @@ fn decide(
         return (command, Reason::Override { until: o.until }, Power::ZERO);
     }
     // 4. Obligations that must be met from the grid now.
-    let temperature = l
-        .temperature
-        .map(|p| input.values[p.0])
-        .filter(|v| v.is_finite())
-        .map(Temperature);
-    let situation = Situation {
-        now,
-        seconds_of_day: input.local.seconds_of_day,
-        runtime_today: st.runtime_today,
-        temperature,
-    };
+    let temperature = l.temperature.map(|p| input.values[p.0]).filter(|v| v.is_finite()).map(Temperature);
+    let situation =
+        Situation { now, seconds_of_day: input.local.seconds_of_day, runtime_today: st.runtime_today, temperature };
     let mut forced = None;
     for (j, (ob, os)) in l.obligations.iter().zip(st.obligations.iter_mut()).enumerate() {
         if os.demand(ob, &situation).force_on && forced.is_none() {
@@ -797,17 +746,16 @@ fn decide(
         }
     }
     if let Some(j) = forced {
-        let command = if l.kind.is_modulating() {
-            full_command(&l.kind)
-        } else {
-            on_command(&l.kind, st.command)
-        };
+        let command = if l.kind.is_modulating() { full_command(&l.kind) } else { on_command(&l.kind, st.command) };
         return (command, Reason::Obligation { index: j }, Power::ZERO);
+    }
+    // A grid top-up that is no longer needed hands the load back to its rules as if off.
+    if matches!(st.reason, Reason::Obligation { .. }) {
+        is_on = false;
     }
 
     // 5. The rules, with hysteresis and anti-chatter limits.
     let settling = recovered_at.is_some_and(|r| now.since(r) < site.failsafe.recovery_hold + SETTLE) && st.settled;
-    let is_on = st.command.is_on();
     let enabled = if is_on {
         match stop {
             Some(Truth::True) => match time_left(now, st.changed_at, l.min_on) {
@@ -824,11 +772,7 @@ fn decide(
                     Err(Reason::MinOff { left })
                 } else if let Some(cap) = l.max_starts_per_hour
                     && {
-                        while st
-                            .starts
-                            .front()
-                            .is_some_and(|t| now.since(*t) >= Duration::from_secs(3600))
-                        {
+                        while st.starts.front().is_some_and(|t| now.since(*t) >= Duration::from_secs(3600)) {
                             st.starts.pop_front();
                         }
                         st.starts.len() as u32 >= cap
@@ -847,23 +791,15 @@ fn decide(
     let keep = |st: &LoadState, reason| (st.command, reason, Power::ZERO);
     match (&l.kind, enabled) {
         (_, Err(reason)) => keep(st, reason),
-        (LoadKind::Switched { .. }, Ok(true)) => (
-            Command::On,
-            if is_on { Reason::Running } else { Reason::Started },
-            Power::ZERO,
-        ),
-        (LoadKind::Switched { .. } | LoadKind::Stepped { .. }, Ok(false)) => (
-            Command::Off,
-            if is_on { Reason::Stopped } else { Reason::Waiting },
-            Power::ZERO,
-        ),
+        (LoadKind::Switched { .. }, Ok(true)) => {
+            (Command::On, if is_on { Reason::Running } else { Reason::Started }, Power::ZERO)
+        }
+        (LoadKind::Switched { .. } | LoadKind::Stepped { .. }, Ok(false)) => {
+            (Command::Off, if is_on { Reason::Stopped } else { Reason::Waiting }, Power::ZERO)
+        }
         (LoadKind::Stepped { stages, .. }, Ok(true)) => {
             let stage = step_stage(stages, st, surplus, now);
-            (
-                Command::Stage(stage),
-                if is_on { Reason::Running } else { Reason::Started },
-                Power::ZERO,
-            )
+            (Command::Stage(stage), if is_on { Reason::Running } else { Reason::Started }, Power::ZERO)
         }
         (kind, Ok(enabled)) => modulate(kind, st, enabled, input, u_total, is_on),
     }
@@ -936,19 +872,9 @@ fn modulate(
 ) -> (Command, Reason, Power) {
     let max = kind.max_power();
     if !enabled {
-        return (
-            Command::Off,
-            if is_on { Reason::Stopped } else { Reason::Waiting },
-            Power::ZERO,
-        );
+        return (Command::Off, if is_on { Reason::Stopped } else { Reason::Waiting }, Power::ZERO);
     }
-    if let LoadKind::Battery {
-        soc,
-        soc_max,
-        soc_resume,
-        ..
-    } = kind
-    {
+    if let LoadKind::Battery { soc, soc_max, soc_resume, .. } = kind {
         let soc_now = input.values[soc.0];
         if soc_now >= soc_max.0 {
             st.full = true;
@@ -968,66 +894,37 @@ fn modulate(
                 (
                     Command::Off,
                     Power::ZERO,
-                    Reason::BelowMinimum {
-                        available: share,
-                        minimum: *rated * (min.0 / 100.0),
-                    },
+                    Reason::BelowMinimum { available: share, minimum: *rated * (min.0 / 100.0) },
                 )
             } else {
                 (
                     Command::Setpoint(Ratio(pct)),
                     *rated * (pct / 100.0),
-                    Reason::Following {
-                        power: *rated * (pct / 100.0),
-                    },
+                    Reason::Following { power: *rated * (pct / 100.0) },
                 )
             }
         }
-        LoadKind::Charger {
-            watts_per_amp,
-            min,
-            max: max_a,
-            step,
-            hold_min_from_grid,
-            ..
-        } => {
+        LoadKind::Charger { watts_per_amp, min, max: max_a, step, hold_min_from_grid, .. } => {
             let amps = quantize(share.0 / watts_per_amp, step.0).min(max_a.0);
             let min_power = Power(min.0 * watts_per_amp);
             if amps >= min.0 {
                 (
                     Command::Current(Current(amps)),
                     Power(amps * watts_per_amp),
-                    Reason::Following {
-                        power: Power(amps * watts_per_amp),
-                    },
+                    Reason::Following { power: Power(amps * watts_per_amp) },
                 )
             } else if is_on || *hold_min_from_grid {
                 // Running chargers hold their minimum until the stop rule ends the session,
                 // so a passing cloud does not cycle the contactor.
-                (
-                    Command::Current(*min),
-                    min_power,
-                    Reason::Following { power: min_power },
-                )
+                (Command::Current(*min), min_power, Reason::Following { power: min_power })
             } else {
-                (
-                    Command::Off,
-                    Power::ZERO,
-                    Reason::BelowMinimum {
-                        available: share,
-                        minimum: min_power,
-                    },
-                )
+                (Command::Off, Power::ZERO, Reason::BelowMinimum { available: share, minimum: min_power })
             }
         }
         LoadKind::Battery { .. } => {
             let p = share;
             if p.0 < 1.0 {
-                (
-                    Command::Charge(Power::ZERO),
-                    Power::ZERO,
-                    Reason::Following { power: Power::ZERO },
-                )
+                (Command::Charge(Power::ZERO), Power::ZERO, Reason::Following { power: Power::ZERO })
             } else {
                 (Command::Charge(p), p, Reason::Following { power: p })
             }

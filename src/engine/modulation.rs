@@ -22,17 +22,19 @@ pub struct Pi {
 impl Pi {
     /// A controller with proportional gain `kp` and integral gain `ki` (per second).
     pub fn new(kp: f64, ki: f64) -> Self {
-        Pi {
-            kp,
-            ki,
-            u: Power::ZERO,
-            last_error: None,
-        }
+        Pi { kp, ki, u: Power::ZERO, last_error: None }
     }
 
     /// Forgets the state (fail-safe, lost grid measurement).
     pub fn reset(&mut self) {
         self.u = Power::ZERO;
+        self.last_error = None;
+    }
+
+    /// Sets the output directly (a feed-forward jump); the next update continues from it.
+    pub fn set_output(&mut self, u: Power) {
+        self.u = u;
+        // The jump is not a change of error the proportional term should answer.
         self.last_error = None;
     }
 

@@ -87,11 +87,7 @@ impl ObligationState {
                 };
                 Demand { force_on }
             }
-            Obligation::ReachBy {
-                target,
-                by,
-                grid_window,
-            } => {
+            Obligation::ReachBy { target, by, grid_window } => {
                 let sod = s.seconds_of_day;
                 let deadline = seconds(*by);
                 if let Some(t) = s.temperature
@@ -119,12 +115,7 @@ impl ObligationState {
                 };
                 Demand { force_on }
             }
-            Obligation::Cycle {
-                target,
-                hold,
-                every,
-                grid_window,
-            } => {
+            Obligation::Cycle { target, hold, every, grid_window } => {
                 match s.temperature {
                     Some(t) if t.0 >= target.0 => {
                         let since = *self.hot_since.get_or_insert(s.now);
@@ -136,9 +127,7 @@ impl ObligationState {
                 }
                 let due = self.last_cycle.is_none_or(|last| s.now.since(last) >= *every);
                 let in_window = grid_window.is_some_and(|w| w.contains(s.seconds_of_day));
-                Demand {
-                    force_on: due && in_window,
-                }
+                Demand { force_on: due && in_window }
             }
         }
     }
@@ -150,8 +139,7 @@ impl ObligationState {
             Obligation::ReachBy { .. } => self.met_today,
             Obligation::Cycle { every, .. } => {
                 // Met as long as the cycle is not overdue by more than a day.
-                self.last_cycle
-                    .is_some_and(|last| now.since(last) <= *every + Duration::from_secs(86_400))
+                self.last_cycle.is_some_and(|last| now.since(last) <= *every + Duration::from_secs(86_400))
             }
         };
         self.met_today = false;
@@ -183,10 +171,7 @@ mod tests {
     fn daily_run_starts_from_grid_just_late_enough_to_finish_in_the_window() {
         let ob = Obligation::RunDaily {
             duration: Duration::from_secs(5 * 3600),
-            grid_window: Some(Window {
-                start: t(16, 0),
-                end: t(21, 0),
-            }),
+            grid_window: Some(Window { start: t(16, 0), end: t(21, 0) }),
         };
         let mut s = ObligationState::default();
         // 2 h done: 3 h missing, so it must start by 18:00 (minus the minute of margin).
@@ -203,26 +188,14 @@ mod tests {
         let ob = Obligation::ReachBy {
             target: Temperature(60.0),
             by: t(17, 0),
-            grid_window: Some(Window {
-                start: t(15, 0),
-                end: t(17, 0),
-            }),
+            grid_window: Some(Window { start: t(15, 0), end: t(17, 0) }),
         };
         let mut s = ObligationState::default();
-        assert!(
-            !s.demand(&ob, &at(14 * 3600, 0.0, Some(50.0))).force_on,
-            "before the window"
-        );
+        assert!(!s.demand(&ob, &at(14 * 3600, 0.0, Some(50.0))).force_on, "before the window");
         assert!(s.demand(&ob, &at(15 * 3600, 0.0, Some(50.0))).force_on);
         assert!(!s.demand(&ob, &at(16 * 3600, 0.0, Some(60.0))).force_on, "reached");
-        assert!(
-            !s.demand(&ob, &at(16 * 3600 + 60, 0.0, Some(59.0))).force_on,
-            "within the restart deadband"
-        );
-        assert!(
-            s.demand(&ob, &at(16 * 3600 + 120, 0.0, Some(58.0))).force_on,
-            "below the deadband"
-        );
+        assert!(!s.demand(&ob, &at(16 * 3600 + 60, 0.0, Some(59.0))).force_on, "within the restart deadband");
+        assert!(s.demand(&ob, &at(16 * 3600 + 120, 0.0, Some(58.0))).force_on, "below the deadband");
         let _ = s.demand(&ob, &at(17 * 3600 - 30, 0.0, Some(59.8)));
         assert!(s.end_of_day(&ob, Duration::ZERO, Timestamp(0)));
     }
@@ -233,23 +206,11 @@ mod tests {
             target: Temperature(60.0),
             hold: Duration::from_secs(600),
             every: Duration::from_secs(7 * 86_400),
-            grid_window: Some(Window {
-                start: t(11, 0),
-                end: t(15, 0),
-            }),
+            grid_window: Some(Window { start: t(11, 0), end: t(15, 0) }),
         };
         let mut s = ObligationState::default();
-        assert!(
-            s.demand(&ob, &at(12 * 3600, 0.0, Some(55.0))).force_on,
-            "never done: due"
-        );
-        assert!(
-            s.demand(&ob, &at(12 * 3600 + 60, 0.0, Some(60.5))).force_on,
-            "hot, not held yet"
-        );
-        assert!(
-            !s.demand(&ob, &at(12 * 3600 + 700, 0.0, Some(60.5))).force_on,
-            "held 10 min: done"
-        );
+        assert!(s.demand(&ob, &at(12 * 3600, 0.0, Some(55.0))).force_on, "never done: due");
+        assert!(s.demand(&ob, &at(12 * 3600 + 60, 0.0, Some(60.5))).force_on, "hot, not held yet");
+        assert!(!s.demand(&ob, &at(12 * 3600 + 700, 0.0, Some(60.5))).force_on, "held 10 min: done");
     }
 }

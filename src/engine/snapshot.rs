@@ -17,10 +17,7 @@ pub struct Sample {
 
 impl Sample {
     /// A sample that never arrived.
-    pub const MISSING: Sample = Sample {
-        value: f64::NAN,
-        at: Timestamp::NEVER,
-    };
+    pub const MISSING: Sample = Sample { value: f64::NAN, at: Timestamp::NEVER };
 }
 
 /// How usable a sample is at a given instant.
@@ -44,9 +41,7 @@ pub struct Snapshot {
 impl Snapshot {
     /// A snapshot with every point missing.
     pub fn empty(site: &Site) -> Self {
-        Snapshot {
-            samples: vec![Sample::MISSING; site.points.len()],
-        }
+        Snapshot { samples: vec![Sample::MISSING; site.points.len()] }
     }
 
     /// Records a measurement.

@@ -129,12 +129,7 @@ impl Model {
         if let Some(i) = self.vars.iter().position(|v| v.key == key) {
             return i;
         }
-        self.vars.push(Var {
-            key,
-            domain,
-            unknown,
-            consts: Vec::new(),
-        });
+        self.vars.push(Var { key, domain, unknown, consts: Vec::new() });
         self.vars.len() - 1
     }
 
@@ -155,23 +150,11 @@ impl Model {
     fn value_var(&mut self, p: &Program, i: u32, mode: Mode) -> Option<usize> {
         let meta = &p.meta[i as usize];
         let domain_of = |ty: Type| match ty {
-            Type::Number(Dimension::Ratio) => Domain::Real {
-                lo: 0.0,
-                hi: 100.0,
-                open_hi: false,
-            },
-            Type::TimeOfDay => Domain::Real {
-                lo: 0.0,
-                hi: DAY_SECONDS,
-                open_hi: true,
-            },
+            Type::Number(Dimension::Ratio) => Domain::Real { lo: 0.0, hi: 100.0, open_hi: false },
+            Type::TimeOfDay => Domain::Real { lo: 0.0, hi: DAY_SECONDS, open_hi: true },
             Type::Weekday => Domain::Days,
             Type::Bool => Domain::Flag,
-            Type::Number(_) => Domain::Real {
-                lo: f64::NEG_INFINITY,
-                hi: f64::INFINITY,
-                open_hi: true,
-            },
+            Type::Number(_) => Domain::Real { lo: f64::NEG_INFINITY, hi: f64::INFINITY, open_hi: true },
         };
         match p.nodes[i as usize] {
             Node::Slot(s) | Node::BoolSlot(s) | Node::RatioSlot(s) | Node::TimeSlot(s) | Node::DaySlot(s) => {
@@ -202,10 +185,7 @@ impl Model {
     fn formula(&mut self, p: &Program, i: u32, mode: Mode) -> F {
         let node = p.nodes[i as usize];
         if mode == Mode::Start
-            && matches!(
-                node,
-                Node::Cmp(..) | Node::InClock(..) | Node::InDays(..) | Node::InSet(..)
-            )
+            && matches!(node, Node::Cmp(..) | Node::InClock(..) | Node::InDays(..) | Node::InSet(..))
             && node.children().any(|c| reads_window(p, c))
         {
             return F::K(f64::NAN);
@@ -224,10 +204,7 @@ impl Model {
                     let inner = self.formula(p, input, mode);
                     let key = Key::Text(format!("held {}", describe(p, i)));
                     let h = self.var(key, Domain::Flag, false);
-                    F::Hold {
-                        inner: Box::new(inner),
-                        h,
-                    }
+                    F::Hold { inner: Box::new(inner), h }
                 }
                 Mode::Steady if reads_clock(p, input) => self.opaque(p, i, mode),
                 Mode::Steady => self.formula(p, input, mode),
@@ -242,19 +219,11 @@ impl Model {
             Node::Cmp(op, a, b) => match (constant(p, a), constant(p, b)) {
                 (Some(x), Some(y)) => F::K(truth(op.holds(x, y))),
                 (None, Some(c)) => match self.value_var(p, a, mode) {
-                    Some(v) => F::Cmp {
-                        var: self.constrain(v, c),
-                        op,
-                        c,
-                    },
+                    Some(v) => F::Cmp { var: self.constrain(v, c), op, c },
                     None => self.opaque(p, i, mode),
                 },
                 (Some(c), None) => match self.value_var(p, b, mode) {
-                    Some(v) => F::Cmp {
-                        var: self.constrain(v, c),
-                        op: op.mirrored(),
-                        c,
-                    },
+                    Some(v) => F::Cmp { var: self.constrain(v, c), op: op.mirrored(), c },
                     None => self.opaque(p, i, mode),
                 },
                 (None, None) => self.opaque(p, i, mode),
@@ -272,19 +241,7 @@ impl Model {
                 };
                 self.constrain(v, lo_c);
                 self.constrain(v, hi_c);
-                if clock {
-                    F::InClock {
-                        var: v,
-                        lo: lo_c,
-                        hi: hi_c,
-                    }
-                } else {
-                    F::InDays {
-                        var: v,
-                        lo: lo_c,
-                        hi: hi_c,
-                    }
-                }
+                if clock { F::InClock { var: v, lo: lo_c, hi: hi_c } } else { F::InDays { var: v, lo: lo_c, hi: hi_c } }
             }
             Node::InSet(x, mask) => {
                 if let Some(xc) = constant(p, x) {
@@ -332,11 +289,7 @@ fn cells_of(v: &Var) -> Vec<f64> {
                     }
                     reps.push(last);
                     if last < hi {
-                        reps.push(if hi.is_infinite() {
-                            last + 1.0 + last.abs()
-                        } else {
-                            last + (hi - last) / 2.0
-                        });
+                        reps.push(if hi.is_infinite() { last + 1.0 + last.abs() } else { last + (hi - last) / 2.0 });
                     }
                 }
                 _ => reps.push(0.0),
@@ -432,11 +385,7 @@ fn eval(f: &F, vals: &[f64]) -> f64 {
         }
         F::InClock { var, lo, hi } | F::InDays { var, lo, hi } => {
             let x = vals[*var];
-            if x.is_nan() {
-                x
-            } else {
-                truth(in_range(matches!(f, F::InClock { .. }), x, *lo, *hi))
-            }
+            if x.is_nan() { x } else { truth(in_range(matches!(f, F::InClock { .. }), x, *lo, *hi)) }
         }
         F::InSet { var, mask } => {
             let x = vals[*var];
@@ -500,10 +449,7 @@ struct Outcome {
 }
 
 fn outcome(model: &Model, f: &F) -> Option<Outcome> {
-    let mut o = Outcome {
-        can_be_true: false,
-        always_true_when_known: true,
-    };
+    let mut o = Outcome { can_be_true: false, always_true_when_known: true };
     let complete = each_cell(model, |vals| {
         let v = eval(f, vals);
         if v == 1.0 {
@@ -627,11 +573,7 @@ fn lint_chain(p: &Program, i: u32, diags: &mut Vec<RuleDiagnostic>) {
     let always = |o: &Option<Outcome>| o.is_some_and(|o| o.can_be_true && o.always_true_when_known);
     // The result of the chain is forced by its own operator's "absorbing" value: never
     // true for `and`, always true for `or`. Otherwise look inside each operand.
-    let forced = if is_and {
-        !whole.can_be_true
-    } else {
-        whole.can_be_true && whole.always_true_when_known
-    };
+    let forced = if is_and { !whole.can_be_true } else { whole.can_be_true && whole.always_true_when_known };
     if !forced {
         for &c in &parts {
             lint_node(p, c, diags);
@@ -659,11 +601,7 @@ fn lint_chain(p: &Program, i: u32, diags: &mut Vec<RuleDiagnostic>) {
     let (code, message, label) = if is_and {
         ("R0403", "this condition can never be true", "never true")
     } else {
-        (
-            "R0405",
-            "this condition is always true when its signals are known",
-            "always true",
-        )
+        ("R0405", "this condition is always true when its signals are known", "always true")
     };
     diags.push(warning(code, message, span(p, i)).label(label));
 }
@@ -676,13 +614,9 @@ fn pair_warning(p: &Program, x: u32, y: u32, is_and: bool) -> RuleDiagnostic {
             .secondary(span(p, x), "this condition")
             .note("no value satisfies both, so the whole `and` is never true")
     } else {
-        warning(
-            "R0405",
-            format!("`{dx}` or `{dy}` is always true when its signals are known"),
-            span(p, y),
-        )
-        .label("covers what the other condition leaves out")
-        .secondary(span(p, x), "this condition")
+        warning("R0405", format!("`{dx}` or `{dy}` is always true when its signals are known"), span(p, y))
+            .label("covers what the other condition leaves out")
+            .secondary(span(p, x), "this condition")
     }
 }
 
@@ -693,13 +627,9 @@ fn constant_atom(p: &Program, i: u32, always: bool) -> RuleDiagnostic {
     let node = p.nodes[i as usize];
     let operands: Vec<u32> = node.children().collect();
     if operands.iter().all(|&c| constant(p, c).is_some()) {
-        return warning(
-            "R0401",
-            format!("`{text}` compares constants and is {verdict}"),
-            span(p, i),
-        )
-        .label(verdict)
-        .note("compare a signal with a constant, as in `surplus > 3kW`");
+        return warning("R0401", format!("`{text}` compares constants and is {verdict}"), span(p, i))
+            .label(verdict)
+            .note("compare a signal with a constant, as in `surplus > 3kW`");
     }
     match node {
         Node::InClock(..) | Node::InDays(..) | Node::InSet(..) => {
@@ -709,16 +639,10 @@ fn constant_atom(p: &Program, i: u32, always: bool) -> RuleDiagnostic {
                 (_, false) => "the range or list holds no day",
                 (_, true) => "the range or list holds every day of the week",
             };
-            warning("R0406", format!("`{text}` is {verdict}"), span(p, i))
-                .label(verdict)
-                .note(note)
+            warning("R0406", format!("`{text}` is {verdict}"), span(p, i)).label(verdict).note(note)
         }
         _ => {
-            let var = operands
-                .iter()
-                .copied()
-                .find(|&c| constant(p, c).is_none())
-                .unwrap_or(i);
+            let var = operands.iter().copied().find(|&c| constant(p, c).is_none()).unwrap_or(i);
             let range = match p.meta[var as usize].ty {
                 Type::Number(Dimension::Ratio) => "a percentage runs from 0 % to 100 %",
                 Type::TimeOfDay => "a time of day runs from 00:00 to 24:00",

@@ -129,24 +129,13 @@ impl Checker<'_> {
         // Rules are capped at a few hundred tokens, far below u32::MAX nodes.
         let index = u32::try_from(self.nodes.len()).unwrap_or(u32::MAX);
         self.nodes.push(node);
-        self.meta.push(Meta {
-            span,
-            ty: ty.unwrap_or(Type::Bool),
-            name: None,
-        });
+        self.meta.push(Meta { span, ty: ty.unwrap_or(Type::Bool), name: None });
         index
     }
 
     fn val(&mut self, node: Node, ty: Option<Type>, span: Range<usize>) -> Val {
         let node = self.push(node, ty, span.clone());
-        Val {
-            node,
-            ty,
-            span,
-            bare: None,
-            literal: false,
-            name: None,
-        }
+        Val { node, ty, span, bare: None, literal: false, name: None }
     }
 
     fn literal(&mut self, value: f64, ty: Type, span: Range<usize>, bare: bool) -> Val {
@@ -199,11 +188,7 @@ impl Checker<'_> {
                         let what = format!("`{}` joins conditions", op.symbol());
                         let ok_l = self.need_bool(&l, &what, op_span);
                         let ok_r = self.need_bool(&r, &what, op_span);
-                        let node = if *op == BinOp::And {
-                            Node::And(l.node, r.node)
-                        } else {
-                            Node::Or(l.node, r.node)
-                        };
+                        let node = if *op == BinOp::And { Node::And(l.node, r.node) } else { Node::Or(l.node, r.node) };
                         let ty = (ok_l && ok_r).then_some(Type::Bool);
                         self.val(node, ty, span)
                     }
@@ -214,13 +199,10 @@ impl Checker<'_> {
             ExprKind::For(cond, duration) => {
                 let v = self.expr(cond);
                 // `for` is the keyword between the condition and the duration.
-                let keyword = self
-                    .text(&(cond.span.end..duration.span.start))
-                    .find("for")
-                    .map_or(span.clone(), |at| {
-                        let start = cond.span.end + at;
-                        start..start + "for".len()
-                    });
+                let keyword = self.text(&(cond.span.end..duration.span.start)).find("for").map_or(span.clone(), |at| {
+                    let start = cond.span.end + at;
+                    start..start + "for".len()
+                });
                 let ok = self.need_bool(&v, "`for` holds a condition", &keyword);
                 let ms = self.duration(duration, "hold time", MAX_HOLD_MS);
                 match (ok, ms) {
@@ -235,11 +217,7 @@ impl Checker<'_> {
                         }
                         let timer = self.holds;
                         self.holds += 1;
-                        let node = Node::Hold {
-                            input: v.node,
-                            ms,
-                            timer,
-                        };
+                        let node = Node::Hold { input: v.node, ms, timer };
                         self.val(node, Some(Type::Bool), span)
                     }
                     _ => self.invalid(span),
@@ -295,15 +273,7 @@ impl Checker<'_> {
         let mut names = self.scope.names();
         names.extend(BUILTINS.iter().map(|&b| b.to_owned()));
         let mut d = error("R0201", format!("unknown name `{name}`"), span.clone()).label("not defined for this site");
-        let full_days = [
-            "monday",
-            "tuesday",
-            "wednesday",
-            "thursday",
-            "friday",
-            "saturday",
-            "sunday",
-        ];
+        let full_days = ["monday", "tuesday", "wednesday", "thursday", "friday", "saturday", "sunday"];
         if full_days.contains(&name) {
             d = d.note("write weekdays with three letters: mon, tue, wed, thu, fri, sat, sun");
         } else if let Some(better) = did_you_mean(name, names.iter().map(String::as_str)) {
@@ -344,13 +314,9 @@ impl Checker<'_> {
         let f = kind.name();
         let [signal, window] = args else {
             self.report(
-                error(
-                    "R0204",
-                    format!("`{f}` takes 2 arguments, found {}", args.len()),
-                    span.clone(),
-                )
-                .label("wrong number of arguments")
-                .note(format!("write `{f}(signal, window)`, as in `{f}(surplus, 5min)`")),
+                error("R0204", format!("`{f}` takes 2 arguments, found {}", args.len()), span.clone())
+                    .label("wrong number of arguments")
+                    .note(format!("write `{f}(signal, window)`, as in `{f}(surplus, 5min)`")),
             );
             return self.invalid(span);
         };
@@ -360,13 +326,9 @@ impl Checker<'_> {
             Some(Type::Number(_)) => true,
             Some(t) => {
                 self.report(
-                    error(
-                        "R0310",
-                        format!("`{f}` needs a number, found {}", type_name(t)),
-                        v.span.clone(),
-                    )
-                    .label(self.is_label(&v, t))
-                    .note(format!("{f} works on measured values such as powers and temperatures")),
+                    error("R0310", format!("`{f}` needs a number, found {}", type_name(t)), v.span.clone())
+                        .label(self.is_label(&v, t))
+                        .note(format!("{f} works on measured values such as powers and temperatures")),
                 );
                 false
             }
@@ -384,12 +346,7 @@ impl Checker<'_> {
             (true, Some(ms)) => {
                 let index = u32::try_from(self.windows.len()).unwrap_or(u32::MAX);
                 self.windows.push(kind);
-                let node = Node::Agg {
-                    kind,
-                    input: v.node,
-                    ms,
-                    window: index,
-                };
+                let node = Node::Agg { kind, input: v.node, ms, window: index };
                 self.val(node, v.ty, span)
             }
             _ => self.invalid(span),
@@ -406,11 +363,7 @@ impl Checker<'_> {
         }
         match &inner.kind {
             ExprKind::Invalid => None,
-            ExprKind::Number {
-                value,
-                dimension: Dimension::Duration,
-                ..
-            } => {
+            ExprKind::Number { value, dimension: Dimension::Duration, .. } => {
                 let ms = (value * 1000.0).round();
                 if negative && ms != 0.0 {
                     self.report(
@@ -433,13 +386,9 @@ impl Checker<'_> {
             ExprKind::Number { value, dimension, bare } => {
                 let value = if negative { -value } else { *value };
                 let mut d = if *bare {
-                    error(
-                        "R0304",
-                        format!("expected a duration for the {what}, found a plain number"),
-                        e.span.clone(),
-                    )
-                    .label("needs a unit")
-                    .note(format::unit_suggestion(value, Dimension::Duration).unwrap_or_default())
+                    error("R0304", format!("expected a duration for the {what}, found a plain number"), e.span.clone())
+                        .label("needs a unit")
+                        .note(format::unit_suggestion(value, Dimension::Duration).unwrap_or_default())
                 } else {
                     error(
                         "R0304",
@@ -448,22 +397,15 @@ impl Checker<'_> {
                     )
                     .label(format!("this is {}", dimension.describe()))
                 };
-                d = d.note(format!(
-                    "durations are written with {}",
-                    Dimension::Duration.example_units()
-                ));
+                d = d.note(format!("durations are written with {}", Dimension::Duration.example_units()));
                 self.report(d);
                 None
             }
             _ => {
                 self.report(
-                    error(
-                        "R0305",
-                        format!("the {what} must be a duration literal"),
-                        e.span.clone(),
-                    )
-                    .label("not a literal")
-                    .note("write the duration itself, as in `30s` or `5 min`"),
+                    error("R0305", format!("the {what} must be a duration literal"), e.span.clone())
+                        .label("not a literal")
+                        .note("write the duration itself, as in `30s` or `5 min`"),
                 );
                 None
             }
@@ -479,11 +421,7 @@ impl Checker<'_> {
                     self.nodes[v.node as usize] = Node::Const(-c);
                 }
                 self.meta[v.node as usize].span = span.clone();
-                Val {
-                    span,
-                    bare: v.bare.map(|b| -b),
-                    ..v
-                }
+                Val { span, bare: v.bare.map(|b| -b), ..v }
             }
             Some(Type::Number(_)) | None => {
                 let ty = v.ty;
@@ -512,23 +450,18 @@ impl Checker<'_> {
             Some(t) => {
                 let text = self.text(&v.span).to_owned();
                 let help = match t {
-                    Type::Number(d) => format!(
-                        "compare it with a threshold, as in `{text} > {}`",
-                        format::example_threshold(d)
-                    ),
+                    Type::Number(d) => {
+                        format!("compare it with a threshold, as in `{text} > {}`", format::example_threshold(d))
+                    }
                     Type::TimeOfDay => format!("compare it, as in `{text} >= 16:00`"),
                     Type::Weekday => format!("compare it, as in `{text} == sat`"),
                     Type::Bool => String::new(),
                 };
                 self.report(
-                    error(
-                        "R0302",
-                        format!("expected a condition, found {}", type_name(t)),
-                        v.span.clone(),
-                    )
-                    .label(self.is_label(v, t))
-                    .secondary(op_span.clone(), why.to_owned())
-                    .note(help),
+                    error("R0302", format!("expected a condition, found {}", type_name(t)), v.span.clone())
+                        .label(self.is_label(v, t))
+                        .secondary(op_span.clone(), why.to_owned())
+                        .note(help),
                 );
                 false
             }
@@ -547,25 +480,17 @@ impl Checker<'_> {
             return self.val(node, None, span);
         };
         let (Type::Number(a), Type::Number(b)) = (lt, rt) else {
-            let (bad, t) = if matches!(lt, Type::Number(_)) {
-                (&r, rt)
-            } else {
-                (&l, lt)
-            };
+            let (bad, t) = if matches!(lt, Type::Number(_)) { (&r, rt) } else { (&l, lt) };
             let note = match t {
                 Type::TimeOfDay => "compare times of day directly, as in `clock >= 16:00`",
                 Type::Bool => "combine conditions with `and`, `or` and `not`",
                 _ => "arithmetic works on numbers only",
             };
             self.report(
-                error(
-                    "R0311",
-                    format!("cannot do arithmetic with {}", type_name(t)),
-                    bad.span.clone(),
-                )
-                .label(self.is_label(bad, t))
-                .secondary(op_span.clone(), "arithmetic operator")
-                .note(note),
+                error("R0311", format!("cannot do arithmetic with {}", type_name(t)), bad.span.clone())
+                    .label(self.is_label(bad, t))
+                    .secondary(op_span.clone(), "arithmetic operator")
+                    .note(note),
             );
             return self.val(node, None, span);
         };
@@ -625,13 +550,10 @@ impl Checker<'_> {
             None => "the other side".to_owned(),
         };
         let number = self.text(&bare.span).to_owned();
-        let mut d = error(
-            "R0303",
-            format!("`{number}` has no unit but {whose} is {}", dim.describe()),
-            bare.span.clone(),
-        )
-        .label("needs a unit")
-        .secondary(other.span.clone(), self.is_label(other, Type::Number(dim)));
+        let mut d =
+            error("R0303", format!("`{number}` has no unit but {whose} is {}", dim.describe()), bare.span.clone())
+                .label("needs a unit")
+                .secondary(other.span.clone(), self.is_label(other, Type::Number(dim)));
         if let Some(help) = format::unit_suggestion(value, dim) {
             d = d.note(help);
         }
@@ -657,9 +579,7 @@ impl Checker<'_> {
             // The bare literal 0 compares with any dimension: `grid < 0`.
             (Type::Number(_), Type::Number(_)) if l.bare == Some(0.0) || r.bare == Some(0.0) => true,
             (Type::Number(a), Type::Number(b)) => {
-                let d = self
-                    .bare_against(&l, &r, a, b)
-                    .unwrap_or_else(|| self.mismatch(&l, lt, &r, rt));
+                let d = self.bare_against(&l, &r, a, b).unwrap_or_else(|| self.mismatch(&l, lt, &r, rt));
                 self.report(d);
                 false
             }
@@ -692,13 +612,9 @@ impl Checker<'_> {
     }
 
     fn mismatch(&self, l: &Val, lt: Type, r: &Val, rt: Type) -> RuleDiagnostic {
-        let mut d = error(
-            "R0301",
-            format!("cannot compare {} with {}", type_name(lt), type_name(rt)),
-            r.span.clone(),
-        )
-        .label(self.is_label(r, rt))
-        .secondary(l.span.clone(), self.is_label(l, lt));
+        let mut d = error("R0301", format!("cannot compare {} with {}", type_name(lt), type_name(rt)), r.span.clone())
+            .label(self.is_label(r, rt))
+            .secondary(l.span.clone(), self.is_label(l, lt));
         match (lt, r.bare) {
             (Type::Number(d0), _) if d0 != Dimension::Scalar => {
                 d = d.note(format!("{} is written in {}", d0.describe(), d0.example_units()));
@@ -782,13 +698,9 @@ impl Checker<'_> {
                 "lists hold weekdays, as in `weekday in [sat, sun]`".to_owned()
             };
             self.report(
-                error(
-                    "R0307",
-                    format!("a list needs a weekday on the left, found {}", type_name(t)),
-                    xv.span.clone(),
-                )
-                .label(self.is_label(&xv, t))
-                .note(note),
+                error("R0307", format!("a list needs a weekday on the left, found {}", type_name(t)), xv.span.clone())
+                    .label(self.is_label(&xv, t))
+                    .note(note),
             );
             return self.invalid(span);
         }
@@ -801,13 +713,9 @@ impl Checker<'_> {
                 _ => {
                     ok = false;
                     self.report(
-                        error(
-                            "R0307",
-                            "a list of weekdays holds weekday names only",
-                            item.span.clone(),
-                        )
-                        .label("not a weekday name")
-                        .note("write weekdays as mon, tue, wed, thu, fri, sat, sun"),
+                        error("R0307", "a list of weekdays holds weekday names only", item.span.clone())
+                            .label("not a weekday name")
+                            .note("write weekdays as mon, tue, wed, thu, fri, sat, sun"),
                     );
                 }
             }
@@ -840,26 +748,15 @@ impl Checker<'_> {
         }
         let text = self.text(&root.span).to_owned();
         let mut d = if expected == Type::Bool {
-            error(
-                "R0308",
-                format!("a rule must be a condition, found {}", type_name(t)),
-                root.span.clone(),
-            )
+            error("R0308", format!("a rule must be a condition, found {}", type_name(t)), root.span.clone())
         } else {
-            error(
-                "R0308",
-                format!("expected {}, found {}", type_name(expected), type_name(t)),
-                root.span.clone(),
-            )
+            error("R0308", format!("expected {}, found {}", type_name(expected), type_name(t)), root.span.clone())
         }
         .label(self.is_label(root, t));
         if expected == Type::Bool
             && let Type::Number(dim) = t
         {
-            d = d.note(format!(
-                "compare it with a threshold, as in `{text} > {}`",
-                format::example_threshold(dim)
-            ));
+            d = d.note(format!("compare it with a threshold, as in `{text} > {}`", format::example_threshold(dim)));
         }
         self.report(d);
     }

@@ -138,10 +138,7 @@ fn write_node(p: &Program, i: u32, out: &mut String) {
 
 /// `[sat, sun]`: the days of a weekday set, Monday first.
 fn day_list(mask: u8) -> String {
-    let days: Vec<&str> = (0..7u8)
-        .filter(|d| mask & (1 << d) != 0)
-        .map(|d| format::weekday(f64::from(d)))
-        .collect();
+    let days: Vec<&str> = (0..7u8).filter(|d| mask & (1 << d) != 0).map(|d| format::weekday(f64::from(d))).collect();
     format!("[{}]", days.join(", "))
 }
 
@@ -210,11 +207,7 @@ impl Explainer<'_> {
     /// `describe`, in parentheses unless it is a single comparison or atom.
     fn grouped(&self, i: u32) -> String {
         let text = describe(self.p, i);
-        if level(&self.p.nodes[i as usize]) >= Level::Compare {
-            text
-        } else {
-            format!("({text})")
-        }
+        if level(&self.p.nodes[i as usize]) >= Level::Compare { text } else { format!("({text})") }
     }
 
     fn node(&self, i: u32, out: &mut String) {
@@ -282,11 +275,8 @@ impl Explainer<'_> {
             Node::Cmp(op, a, b) => {
                 let (va, vb) = (self.value(a), self.value(b));
                 if va.is_nan() || vb.is_nan() {
-                    let unknown: Vec<String> = [a, b]
-                        .into_iter()
-                        .filter(|&c| self.value(c).is_nan())
-                        .map(|c| self.unknown(c))
-                        .collect();
+                    let unknown: Vec<String> =
+                        [a, b].into_iter().filter(|&c| self.value(c).is_nan()).map(|c| self.unknown(c)).collect();
                     out.push_str(&unknown.join(" and "));
                     return;
                 }
@@ -299,13 +289,7 @@ impl Explainer<'_> {
                     return;
                 }
                 let not = if t == Truth::True { "" } else { "not " };
-                let _ = write!(
-                    out,
-                    "{} is {not}in {}..{}",
-                    self.operand(x),
-                    describe(p, lo),
-                    describe(p, hi)
-                );
+                let _ = write!(out, "{} is {not}in {}..{}", self.operand(x), describe(p, lo), describe(p, hi));
             }
             Node::InSet(x, mask) => {
                 if t == Truth::Unknown {

@@ -22,10 +22,7 @@ pub(crate) fn error(code: &'static str, message: impl Into<String>, span: Range<
 
 /// A warning with a stable code.
 pub(crate) fn warning(code: &'static str, message: impl Into<String>, span: Range<usize>) -> RuleDiagnostic {
-    RuleDiagnostic {
-        severity: Severity::Warning,
-        ..error(code, message, span)
-    }
+    RuleDiagnostic { severity: Severity::Warning, ..error(code, message, span) }
 }
 
 impl RuleDiagnostic {

@@ -31,11 +31,7 @@ pub(crate) fn literal(value: f64, dimension: Dimension) -> String {
         // Rust's shortest round-trip formatting is exact by construction.
         None => (plain(value), dimension.base_unit()),
     };
-    if symbol.is_empty() {
-        number
-    } else {
-        format!("{number} {symbol}")
-    }
+    if symbol.is_empty() { number } else { format!("{number} {symbol}") }
 }
 
 /// A decimal rendering of `value / factor` that, multiplied back by `factor` the way the
@@ -78,11 +74,7 @@ pub(crate) fn approx(value: f64, dimension: Dimension) -> String {
     if value.is_infinite() {
         let sign = if value < 0.0 { "-" } else { "" };
         let unit = dimension.base_unit();
-        return if unit.is_empty() {
-            format!("{sign}infinite")
-        } else {
-            format!("{sign}infinite {unit}")
-        };
+        return if unit.is_empty() { format!("{sign}infinite") } else { format!("{sign}infinite {unit}") };
     }
     Quantity::new(value, dimension).to_string()
 }
@@ -95,11 +87,7 @@ pub(crate) fn time_of_day(seconds: f64) -> String {
     // Times of day are small non-negative numbers; the cast saturates outside that.
     let total = seconds.max(0.0).floor() as u64;
     let (h, m, s) = (total / 3600, total / 60 % 60, total % 60);
-    if s == 0 {
-        format!("{h:02}:{m:02}")
-    } else {
-        format!("{h:02}:{m:02}:{s:02}")
-    }
+    if s == 0 { format!("{h:02}:{m:02}") } else { format!("{h:02}:{m:02}:{s:02}") }
 }
 
 /// `mon` … `sun` for 0 … 6.

@@ -77,18 +77,10 @@ pub(crate) const KEYWORDS: [&str; 7] = ["and", "or", "not", "for", "in", "true",
 /// Lexes `text`. Returns the tokens (always ending in `Eof`) and whether lexing had to
 /// stop early; diagnostics go to `diags`.
 pub(crate) fn lex(text: &str, diags: &mut Vec<RuleDiagnostic>) -> (Vec<Token>, bool) {
-    let mut lexer = Lexer {
-        text,
-        pos: 0,
-        tokens: Vec::new(),
-        diags,
-    };
+    let mut lexer = Lexer { text, pos: 0, tokens: Vec::new(), diags };
     let complete = lexer.run();
     let end = text.len();
-    lexer.tokens.push(Token {
-        tok: Tok::Eof,
-        span: end..end,
-    });
+    lexer.tokens.push(Token { tok: Tok::Eof, span: end..end });
     (lexer.tokens, complete)
 }
 
@@ -117,10 +109,7 @@ impl Lexer<'_, '_> {
     }
 
     fn push(&mut self, tok: Tok, start: usize) {
-        self.tokens.push(Token {
-            tok,
-            span: start..self.pos,
-        });
+        self.tokens.push(Token { tok, span: start..self.pos });
     }
 
     /// Lexes everything; false when an unexpected character stopped it.
@@ -203,13 +192,9 @@ impl Lexer<'_, '_> {
     fn misspelt(&mut self, start: usize, len: usize, help: &str) -> usize {
         let written = &self.text[start..start + len];
         self.diags.push(
-            error(
-                "R0101",
-                format!("`{written}` is not an operator here"),
-                start..start + len,
-            )
-            .label("unknown operator")
-            .note(help),
+            error("R0101", format!("`{written}` is not an operator here"), start..start + len)
+                .label("unknown operator")
+                .note(help),
         );
         len
     }
@@ -260,37 +245,22 @@ impl Lexer<'_, '_> {
                 || (!KEYWORDS.contains(&symbol)
                     && !WEEKDAYS.contains(&symbol)
                     && symbol.chars().count() <= 5
-                    && !self.text[unit_end..]
-                        .chars()
-                        .next()
-                        .is_some_and(|c| is_name_char(c) || c == '.')));
+                    && !self.text[unit_end..].chars().next().is_some_and(|c| is_name_char(c) || c == '.')));
         if !is_unit {
             self.pos = number_end;
             if !value.is_finite() {
                 self.too_large(start);
                 return;
             }
-            self.push(
-                Tok::Number {
-                    value,
-                    dimension: Dimension::Scalar,
-                    bare: true,
-                },
-                start,
-            );
+            self.push(Tok::Number { value, dimension: Dimension::Scalar, bare: true }, start);
             return;
         }
         self.pos = unit_end;
         match units::unit(symbol) {
             Some((_, factor)) if !(value * factor).is_finite() => self.too_large(start),
-            Some((dimension, factor)) => self.push(
-                Tok::Number {
-                    value: value * factor,
-                    dimension,
-                    bare: false,
-                },
-                start,
-            ),
+            Some((dimension, factor)) => {
+                self.push(Tok::Number { value: value * factor, dimension, bare: false }, start)
+            }
             None => {
                 let mut d = error("R0102", format!("unknown unit `{symbol}`"), unit_start..unit_end)
                     .label("not a unit")
@@ -306,8 +276,7 @@ impl Lexer<'_, '_> {
 
     /// Reports a number (with its unit) that does not fit in an f64.
     fn too_large(&mut self, start: usize) {
-        self.diags
-            .push(error("R0104", "this number is too large", start..self.pos).label("not a finite number"));
+        self.diags.push(error("R0104", "this number is too large", start..self.pos).label("not a finite number"));
         self.push(Tok::Invalid, start);
     }
 
@@ -364,13 +333,9 @@ impl Lexer<'_, '_> {
         if self.peek() == Some('.') && self.peek_at(1) != Some('.') {
             self.pos += 1;
             self.diags.push(
-                error(
-                    "R0111",
-                    format!("expected an attribute name after `{word}.`"),
-                    start..self.pos,
-                )
-                .label("incomplete name")
-                .note("attributes look like `tank.on` or `tank.runtime_today`"),
+                error("R0111", format!("expected an attribute name after `{word}.`"), start..self.pos)
+                    .label("incomplete name")
+                    .note("attributes look like `tank.on` or `tank.runtime_today`"),
             );
             self.push(Tok::Invalid, start);
             return;
@@ -390,13 +355,9 @@ impl Lexer<'_, '_> {
                 } else if word.chars().any(|c| c.is_ascii_uppercase()) {
                     let lower = word.to_ascii_lowercase();
                     let d = if units::unit(word).is_some() {
-                        error(
-                            "R0112",
-                            format!("the unit `{word}` must follow a number"),
-                            start..self.pos,
-                        )
-                        .label("a unit on its own")
-                        .note(format!("write a number before it, as in `3{word}`"))
+                        error("R0112", format!("the unit `{word}` must follow a number"), start..self.pos)
+                            .label("a unit on its own")
+                            .note(format!("write a number before it, as in `3{word}`"))
                     } else {
                         error("R0110", format!("names are lowercase: `{word}`"), start..self.pos)
                             .label("uppercase letters")

@@ -180,12 +180,7 @@ pub fn compile_as(text: &str, scope: &dyn Scope, expected: Type) -> Result<Compi
     };
     analysis::lint(&program, &mut diags);
     diags.sort_by_key(|d| (d.span.start, d.span.end));
-    Ok(Compiled {
-        rule: Rule {
-            program: Arc::new(program),
-        },
-        warnings: diags,
-    })
+    Ok(Compiled { rule: Rule { program: Arc::new(program) }, warnings: diags })
 }
 
 impl Rule {

@@ -98,12 +98,7 @@ pub(crate) enum ExprKind {
 /// Parses a whole rule. Lexer tokens must end in `Eof`.
 /// The error is boxed: diagnostics are large and the happy path should not pay for them.
 pub(crate) fn parse(text: &str, tokens: &[Token]) -> PResult {
-    let mut p = Parser {
-        text,
-        tokens,
-        pos: 0,
-        depth: 0,
-    };
+    let mut p = Parser { text, tokens, pos: 0, depth: 0 };
     if p.peek() == &Tok::Eof {
         return fail(
             error("R0109", "the rule is empty", 0..text.len())
@@ -206,11 +201,8 @@ impl Parser<'_> {
         let t = self.token();
         let found = self.describe(t);
         let span = self.at(t);
-        let label = if t.tok == Tok::Eof {
-            format!("expected {what} after this")
-        } else {
-            format!("expected {what} here")
-        };
+        let label =
+            if t.tok == Tok::Eof { format!("expected {what} after this") } else { format!("expected {what} here") };
         error("R0105", format!("expected {what}, found {found}"), span).label(label)
     }
 
@@ -241,10 +233,7 @@ impl Parser<'_> {
             let inner = self.not_expr()?;
             self.depth -= 1;
             let span = join(&op.span, &inner.span);
-            return Ok(Expr {
-                kind: ExprKind::Not(Box::new(inner)),
-                span,
-            });
+            return Ok(Expr { kind: ExprKind::Not(Box::new(inner)), span });
         }
         self.for_expr()
     }
@@ -255,16 +244,12 @@ impl Parser<'_> {
             self.bump();
             if matches!(self.peek(), Tok::Eof | Tok::And | Tok::Or | Tok::RParen) {
                 return fail(
-                    self.expected_operand("a duration")
-                        .note("write how long the condition must hold, as in `for 30s`"),
+                    self.expected_operand("a duration").note("write how long the condition must hold, as in `for 30s`"),
                 );
             }
             let duration = self.unary()?;
             let span = join(&cond.span, &duration.span);
-            cond = Expr {
-                kind: ExprKind::For(Box::new(cond), Box::new(duration)),
-                span,
-            };
+            cond = Expr { kind: ExprKind::For(Box::new(cond), Box::new(duration)), span };
         }
         Ok(cond)
     }
@@ -325,22 +310,15 @@ impl Parser<'_> {
             if self.peek() != &Tok::RBracket {
                 let t = self.token();
                 return fail(
-                    error(
-                        "R0106",
-                        format!("expected `,` or `]`, found {}", self.describe(t)),
-                        self.at(t),
-                    )
-                    .label("the list is not closed")
-                    .secondary(open.span, "the list starts here"),
+                    error("R0106", format!("expected `,` or `]`, found {}", self.describe(t)), self.at(t))
+                        .label("the list is not closed")
+                        .secondary(open.span, "the list starts here"),
                 );
             }
             let close = self.bump();
             self.depth -= 1;
             let span = join(&lhs.span, &close.span);
-            return Ok(Expr {
-                kind: ExprKind::InList(Box::new(lhs), items),
-                span,
-            });
+            return Ok(Expr { kind: ExprKind::InList(Box::new(lhs), items), span });
         }
         if self.peek() == &Tok::Eof {
             return fail(
@@ -352,23 +330,16 @@ impl Parser<'_> {
         if self.peek() != &Tok::DotDot {
             let t = self.token();
             return fail(
-                error(
-                    "R0105",
-                    format!("expected `..` in a range, found {}", self.describe(t)),
-                    self.at(t),
-                )
-                .label("expected `..` here")
-                .secondary(lo.span.clone(), "the range starts here")
-                .note("write a range as `10:00..16:00` or `mon..fri`, a list as `[sat, sun]`"),
+                error("R0105", format!("expected `..` in a range, found {}", self.describe(t)), self.at(t))
+                    .label("expected `..` here")
+                    .secondary(lo.span.clone(), "the range starts here")
+                    .note("write a range as `10:00..16:00` or `mon..fri`, a list as `[sat, sun]`"),
             );
         }
         self.bump();
         let hi = self.sum()?;
         let span = join(&lhs.span, &hi.span);
-        Ok(Expr {
-            kind: ExprKind::InRange(Box::new(lhs), Box::new(lo), Box::new(hi)),
-            span,
-        })
+        Ok(Expr { kind: ExprKind::InRange(Box::new(lhs), Box::new(lo), Box::new(hi)), span })
     }
 
     fn sum(&mut self) -> PResult {
@@ -406,10 +377,7 @@ impl Parser<'_> {
             let inner = self.unary()?;
             self.depth -= 1;
             let span = join(&op.span, &inner.span);
-            return Ok(Expr {
-                kind: ExprKind::Neg(Box::new(inner)),
-                span,
-            });
+            return Ok(Expr { kind: ExprKind::Neg(Box::new(inner)), span });
         }
         self.atom()
     }
@@ -417,11 +385,9 @@ impl Parser<'_> {
     fn atom(&mut self) -> PResult {
         let t = self.token().clone();
         let kind = match &t.tok {
-            Tok::Number { value, dimension, bare } => ExprKind::Number {
-                value: *value,
-                dimension: *dimension,
-                bare: *bare,
-            },
+            Tok::Number { value, dimension, bare } => {
+                ExprKind::Number { value: *value, dimension: *dimension, bare: *bare }
+            }
             Tok::Time(s) => ExprKind::Time(*s),
             Tok::Day(d) => ExprKind::Day(*d),
             Tok::True => ExprKind::Bool(true),
@@ -432,25 +398,16 @@ impl Parser<'_> {
                     // `Avg(…)`: the name was reported; read its arguments so that the
                     // parenthesis does not cause a second error.
                     let call = self.call(String::new(), t.span)?;
-                    return Ok(Expr {
-                        kind: ExprKind::Invalid,
-                        span: call.span,
-                    });
+                    return Ok(Expr { kind: ExprKind::Invalid, span: call.span });
                 }
-                return Ok(Expr {
-                    kind: ExprKind::Invalid,
-                    span: t.span,
-                });
+                return Ok(Expr { kind: ExprKind::Invalid, span: t.span });
             }
             Tok::Name(name) => {
                 self.bump();
                 if self.peek() == &Tok::LParen {
                     return self.call(name.clone(), t.span);
                 }
-                return Ok(Expr {
-                    kind: ExprKind::Name(name.clone()),
-                    span: t.span,
-                });
+                return Ok(Expr { kind: ExprKind::Name(name.clone()), span: t.span });
             }
             Tok::LParen => {
                 self.bump();
@@ -459,13 +416,9 @@ impl Parser<'_> {
                 if self.peek() != &Tok::RParen {
                     let found = self.token();
                     return fail(
-                        error(
-                            "R0106",
-                            format!("expected `)`, found {}", self.describe(found)),
-                            self.at(found),
-                        )
-                        .label("expected `)` here")
-                        .secondary(t.span, "this `(` is not closed"),
+                        error("R0106", format!("expected `)`, found {}", self.describe(found)), self.at(found))
+                            .label("expected `)` here")
+                            .secondary(t.span, "this `(` is not closed"),
                     );
                 }
                 self.bump();
@@ -501,32 +454,20 @@ impl Parser<'_> {
         if self.peek() != &Tok::RParen {
             let t = self.token();
             return fail(
-                error(
-                    "R0106",
-                    format!("expected `,` or `)`, found {}", self.describe(t)),
-                    self.at(t),
-                )
-                .label("expected `)` here")
-                .secondary(open.span, "this `(` is not closed"),
+                error("R0106", format!("expected `,` or `)`, found {}", self.describe(t)), self.at(t))
+                    .label("expected `)` here")
+                    .secondary(open.span, "this `(` is not closed"),
             );
         }
         let close = self.bump();
         self.depth -= 1;
-        Ok(Expr {
-            span: join(&name_span, &close.span),
-            kind: ExprKind::Call { name, name_span, args },
-        })
+        Ok(Expr { span: join(&name_span, &close.span), kind: ExprKind::Call { name, name_span, args } })
     }
 }
 
 fn binary(op: BinOp, op_span: Range<usize>, lhs: Expr, rhs: Expr) -> Expr {
     Expr {
         span: join(&lhs.span, &rhs.span),
-        kind: ExprKind::Binary {
-            op,
-            op_span,
-            lhs: Box::new(lhs),
-            rhs: Box::new(rhs),
-        },
+        kind: ExprKind::Binary { op, op_span, lhs: Box::new(lhs), rhs: Box::new(rhs) },
     }
 }

@@ -248,19 +248,11 @@ impl Program {
                 }
                 Node::TimeSlot(s) => {
                     let raw = input.values.get(s as usize).copied().unwrap_or(f64::NAN);
-                    if (0.0..f64::from(DAY_SECONDS)).contains(&raw) {
-                        raw
-                    } else {
-                        f64::NAN
-                    }
+                    if (0.0..f64::from(DAY_SECONDS)).contains(&raw) { raw } else { f64::NAN }
                 }
                 Node::DaySlot(s) => {
                     let raw = input.values.get(s as usize).copied().unwrap_or(f64::NAN);
-                    if (0.0..7.0).contains(&raw) && raw.fract() == 0.0 {
-                        raw
-                    } else {
-                        f64::NAN
-                    }
+                    if (0.0..7.0).contains(&raw) && raw.fract() == 0.0 { raw } else { f64::NAN }
                 }
                 Node::Clock => clock,
                 Node::Weekday => weekday,
@@ -277,11 +269,7 @@ impl Program {
                 }
                 Node::Cmp(op, a, b) => {
                     let (a, b) = (v[a as usize], v[b as usize]);
-                    if a.is_nan() || b.is_nan() {
-                        f64::NAN
-                    } else {
-                        truth(op.holds(a, b))
-                    }
+                    if a.is_nan() || b.is_nan() { f64::NAN } else { truth(op.holds(a, b)) }
                 }
                 Node::And(a, b) => {
                     let (a, b) = (v[a as usize], v[b as usize]);

@@ -6,32 +6,17 @@ use crate::rules::{implies, satisfiable};
 #[test]
 fn satisfiable_finds_contradictions_and_proves_witnesses() {
     assert_eq!(satisfiable(&rule("surplus > 5kW and surplus < 3kW")), Some(false));
-    assert_eq!(
-        satisfiable(&rule("surplus > 3.2kW for 30s and tank_temp < 58°C")),
-        Some(true)
-    );
+    assert_eq!(satisfiable(&rule("surplus > 3.2kW for 30s and tank_temp < 58°C")), Some(true));
     assert_eq!(satisfiable(&rule("soc > 100%")), Some(false));
     assert_eq!(satisfiable(&rule("clock in 10:00..10:00")), Some(false));
-    assert_eq!(
-        satisfiable(&rule("weekday in [sat, sun] and weekday in mon..fri")),
-        Some(false)
-    );
+    assert_eq!(satisfiable(&rule("weekday in [sat, sun] and weekday in mon..fri")), Some(false));
     assert_eq!(satisfiable(&rule("tank.on and not tank.on")), Some(false));
     // A hold cannot be true while its condition is false.
-    assert_eq!(
-        satisfiable(&rule("(surplus > 5kW) for 30s and surplus < 3kW")),
-        Some(false)
-    );
+    assert_eq!(satisfiable(&rule("(surplus > 5kW) for 30s and surplus < 3kW")), Some(false));
     // Windows are their own variables...
-    assert_eq!(
-        satisfiable(&rule("avg(surplus, 5min) > 5kW and avg(surplus, 5min) < 3kW")),
-        Some(false)
-    );
+    assert_eq!(satisfiable(&rule("avg(surplus, 5min) > 5kW and avg(surplus, 5min) < 3kW")), Some(false));
     // ...and with steady signals equal to the signal.
-    assert_eq!(
-        satisfiable(&rule("avg(surplus, 5min) > 5kW and surplus > 6kW")),
-        Some(true)
-    );
+    assert_eq!(satisfiable(&rule("avg(surplus, 5min) > 5kW and surplus > 6kW")), Some(true));
 }
 
 #[test]
@@ -42,10 +27,7 @@ fn satisfiable_says_none_when_it_cannot_tell() {
     // needs reasoning over time that the analysis does not do.
     assert_eq!(satisfiable(&rule("(clock in 10:00..10:01) for 10min")), None);
     // Yet a contradiction is found even next to such parts.
-    assert_eq!(
-        satisfiable(&rule("pv > load and surplus > 5kW and surplus < 1kW")),
-        Some(false)
-    );
+    assert_eq!(satisfiable(&rule("pv > load and surplus > 5kW and surplus < 1kW")), Some(false));
 }
 
 #[test]
@@ -68,10 +50,7 @@ fn implies_reasons_over_intervals() {
         ("clock in 09:00..16:00", "clock in 10:00..12:00"),
         ("surplus > 4kW", "(surplus > 4kW) for 1min"),
         // True with `tank_temp` stale, when the second rule is unknown.
-        (
-            "surplus > 5kW",
-            "surplus > 5kW and (tank_temp > 50°C or tank_temp <= 50°C)",
-        ),
+        ("surplus > 5kW", "surplus > 5kW and (tank_temp > 50°C or tank_temp <= 50°C)"),
     ];
     for (a, b) in no {
         assert_eq!(implies(&rule(a), &rule(b)), Some(false), "{a} ⇏ {b}");
@@ -84,10 +63,7 @@ fn contradiction_in_a_conjunction_is_warned_with_both_parts() {
     let c = compiled("surplus > 5kW and tank.on and surplus < 3kW");
     assert_eq!(codes(&c.warnings), ["R0403"]);
     let w = &c.warnings[0];
-    assert_eq!(
-        w.message,
-        "`surplus > 5 kW` and `surplus < 3 kW` can never both be true"
-    );
+    assert_eq!(w.message, "`surplus > 5 kW` and `surplus < 3 kW` can never both be true");
     assert_eq!(w.span, 30..43);
     assert_eq!(w.secondary[0].0, 0..13);
 }
@@ -107,10 +83,7 @@ fn constant_comparisons_and_empty_windows_are_warned() {
     assert_eq!(codes(&compiled("3kW > 2kW or tank.on").warnings), ["R0401"]);
     assert_eq!(codes(&compiled("clock in 10:00..10:00").warnings), ["R0406"]);
     assert_eq!(codes(&compiled("clock in 00:00..24:00").warnings), ["R0406"]);
-    assert_eq!(
-        codes(&compiled("weekday in [mon, tue, wed, thu, fri, sat, sun]").warnings),
-        ["R0406"]
-    );
+    assert_eq!(codes(&compiled("weekday in [mon, tue, wed, thu, fri, sat, sun]").warnings), ["R0406"]);
     assert_eq!(codes(&compiled("clock >= 24:00").warnings), ["R0402"]);
 }
 

@@ -9,12 +9,7 @@ const NAN: f64 = f64::NAN;
 
 #[test]
 fn numbers_with_units_compare_in_base_units() {
-    for text in [
-        "surplus > 3.2kW",
-        "surplus > 3.2 kW",
-        "surplus > 3200W",
-        "surplus > 0.0032 MW",
-    ] {
+    for text in ["surplus > 3.2kW", "surplus > 3.2 kW", "surplus > 3200W", "surplus > 0.0032 MW"] {
         let mut r = Run::new(text);
         assert_eq!(r.set("surplus", 3199.0).at(0.0), False, "{text}");
         assert_eq!(r.set("surplus", 3201.0).at(1.0), True, "{text}");
@@ -23,10 +18,7 @@ fn numbers_with_units_compare_in_base_units() {
     let mut r = Run::new(
         "tank_temp < 58°C and tank_temp >= 40degC and soc >= 80% and battery.voltage > 51.2V and ev.current <= 16A",
     );
-    r.set("tank_temp", 55.0)
-        .set("soc", 85.0)
-        .set("battery.voltage", 52.0)
-        .set("ev.current", 16.0);
+    r.set("tank_temp", 55.0).set("soc", 85.0).set("battery.voltage", 52.0).set("ev.current", 16.0);
     assert_eq!(r.at(0.0), True);
     assert_eq!(
         r.rule.describe(),
@@ -74,10 +66,7 @@ fn negative_literals_and_unary_minus() {
 fn arithmetic_keeps_or_cancels_dimensions() {
     let mut r =
         Run::new("pv - load > 2kW and surplus / 2 > 1kW and 2 * surplus < 10kW and tank.energy_today / 2kWh >= 1.5");
-    r.set("pv", 5000.0)
-        .set("load", 2500.0)
-        .set("surplus", 2500.0)
-        .set("tank.energy_today", 3000.0);
+    r.set("pv", 5000.0).set("load", 2500.0).set("surplus", 2500.0).set("tank.energy_today", 3000.0);
     assert_eq!(r.at(0.0), True);
     r.set("load", 3500.0);
     assert_eq!(r.at(1.0), False);
@@ -180,18 +169,10 @@ fn any_nonzero_boolean_signal_is_true() {
 #[test]
 fn precedence_from_loosest_to_tightest() {
     let cases = [
-        (
-            "a_or_and",
-            "tank.on or pool.on and grid < 0",
-            "tank.on or (pool.on and grid < 0)",
-        ),
+        ("a_or_and", "tank.on or pool.on and grid < 0", "tank.on or (pool.on and grid < 0)"),
         ("not_and", "not tank.on and pool.on", "not tank.on and pool.on"),
         ("not_cmp", "not surplus > 3kW", "not (surplus > 3 kW)"),
-        (
-            "not_for",
-            "not surplus > 3kW for 30s",
-            "not ((surplus > 3 kW) for 30 s)",
-        ),
+        ("not_for", "not surplus > 3kW for 30s", "not ((surplus > 3 kW) for 30 s)"),
         (
             "for_and",
             "surplus > 3.2kW for 30s and tank_temp < 58°C",
@@ -225,15 +206,7 @@ fn clock_window_is_half_open() {
 #[test]
 fn clock_window_wraps_over_midnight() {
     let mut r = Run::new("clock in 22:00..06:00");
-    for (hour, expected) in [
-        (21, False),
-        (22, True),
-        (23, True),
-        (24, True),
-        (29, True),
-        (30, False),
-        (31, False),
-    ] {
+    for (hour, expected) in [(21, False), (22, True), (23, True), (24, True), (29, True), (30, False), (31, False)] {
         assert_eq!(r.at(f64::from(hour) * 3600.0), expected, "hour {hour}");
     }
     let mut r = Run::new("clock >= 16:00 or clock < 07:30");
@@ -245,22 +218,11 @@ fn clock_window_wraps_over_midnight() {
 fn weekday_ranges_are_inclusive_and_wrap_over_the_weekend() {
     let days = |text: &str| -> Vec<bool> {
         let mut r = Run::new(text);
-        (0..7)
-            .map(|d| r.at(f64::from(d) * 86_400.0 + 43_200.0).is_true())
-            .collect()
+        (0..7).map(|d| r.at(f64::from(d) * 86_400.0 + 43_200.0).is_true()).collect()
     };
-    assert_eq!(
-        days("weekday in mon..fri"),
-        [true, true, true, true, true, false, false]
-    );
-    assert_eq!(
-        days("weekday in fri..mon"),
-        [true, false, false, false, true, true, true]
-    );
-    assert_eq!(
-        days("weekday in [sat, sun]"),
-        [false, false, false, false, false, true, true]
-    );
+    assert_eq!(days("weekday in mon..fri"), [true, true, true, true, true, false, false]);
+    assert_eq!(days("weekday in fri..mon"), [true, false, false, false, true, true, true]);
+    assert_eq!(days("weekday in [sat, sun]"), [false, false, false, false, false, true, true]);
     assert_eq!(days("weekday == wed"), [false, false, true, false, false, false, false]);
     assert_eq!(days("weekday != wed"), [true, true, false, true, true, true, true]);
 }
@@ -277,11 +239,7 @@ fn a_time_of_day_signal_can_bound_a_window() {
 
 #[test]
 fn avg_is_time_weighted_and_unknown_until_window_full() {
-    let mut r = Run::from_rule(
-        compile_as("avg(surplus, 10s)", &Site, Type::Number(Dimension::Power))
-            .unwrap()
-            .rule,
-    );
+    let mut r = Run::from_rule(compile_as("avg(surplus, 10s)", &Site, Type::Number(Dimension::Power)).unwrap().rule);
     // Irregular ticks: 1 kW from 0 s to 8 s, then 3 kW.
     r.set("surplus", 1000.0);
     for t in [0.0, 2.0, 4.0, 7.0] {
@@ -301,11 +259,7 @@ fn avg_is_time_weighted_and_unknown_until_window_full() {
 
 #[test]
 fn windows_skip_unknown_samples() {
-    let mut r = Run::from_rule(
-        compile_as("avg(surplus, 10s)", &Site, Type::Number(Dimension::Power))
-            .unwrap()
-            .rule,
-    );
+    let mut r = Run::from_rule(compile_as("avg(surplus, 10s)", &Site, Type::Number(Dimension::Power)).unwrap().rule);
     r.set("surplus", 1000.0);
     r.value_at(0.0);
     r.set("surplus", NAN);
@@ -358,21 +312,12 @@ fn slots_lists_every_signal_once() {
 #[test]
 fn describe_normalises_units_and_reads_back_the_same() {
     let cases = [
-        (
-            "surplus>3.2kW for 30s and tank_temp<58°C",
-            "(surplus > 3.2 kW) for 30 s and tank_temp < 58 °C",
-        ),
-        (
-            "import > 250W for 20s or tank_temp >= 62degC",
-            "(import > 250 W) for 20 s or tank_temp >= 62 °C",
-        ),
+        ("surplus>3.2kW for 30s and tank_temp<58°C", "(surplus > 3.2 kW) for 30 s and tank_temp < 58 °C"),
+        ("import > 250W for 20s or tank_temp >= 62degC", "(import > 250 W) for 20 s or tank_temp >= 62 °C"),
         ("avg(surplus,300s) > 1500 W", "avg(surplus, 5 min) > 1.5 kW"),
         ("tank.runtime_today < 90min", "tank.runtime_today < 90 min"),
         ("tank.runtime_today < 1.5h", "tank.runtime_today < 90 min"),
-        (
-            "weekday in [sun,sat] and clock in 9:30..24:00",
-            "weekday in [sat, sun] and clock in 09:30..24:00",
-        ),
+        ("weekday in [sun,sat] and clock in 9:30..24:00", "weekday in [sat, sun] and clock in 09:30..24:00"),
         ("(surplus > 1kW) for 250ms", "(surplus > 1 kW) for 250 ms"),
         ("tank.energy_today < 2500Wh", "tank.energy_today < 2.5 kWh"),
         ("cycles < 3 and true", "cycles < 3 and true"),
@@ -396,10 +341,7 @@ fn explain_says_why_with_current_values() {
     r.at(13.0);
     assert_eq!(r.explain(), "surplus > 3.2 kW held 12 s of 30 s");
     r.at(40.0);
-    assert_eq!(
-        r.explain(),
-        "surplus > 3.2 kW held 39 s of 30 s and tank_temp 50 °C < 58 °C"
-    );
+    assert_eq!(r.explain(), "surplus > 3.2 kW held 39 s of 30 s and tank_temp 50 °C < 58 °C");
     r.set("tank_temp", NAN);
     r.at(41.0);
     assert_eq!(r.explain(), "tank_temp is unknown");
@@ -411,19 +353,13 @@ fn explain_covers_windows_clocks_and_weekdays() {
     r.set("surplus", 2500.0);
     r.at(9.0 * 3600.0);
     // Unknown `or`: the unknown operand is what keeps it from being false.
-    assert_eq!(
-        r.explain(),
-        "avg(surplus, 5 min) is unknown: 0 s of 5 min of history so far"
-    );
+    assert_eq!(r.explain(), "avg(surplus, 5 min) is unknown: 0 s of 5 min of history so far");
     r.at(9.0 * 3600.0 + 300.0);
     assert_eq!(r.explain(), "avg(surplus, 5 min) = 2.5 kW > 2 kW");
     // A new value starts its step now: the window still averages the old one.
     r.set("surplus", 1000.0);
     r.at(12.0 * 3600.0);
-    assert_eq!(
-        r.explain(),
-        "avg(surplus, 5 min) = 2.5 kW > 2 kW or clock 12:00 is in 10:00..16:00"
-    );
+    assert_eq!(r.explain(), "avg(surplus, 5 min) = 2.5 kW > 2 kW or clock 12:00 is in 10:00..16:00");
     r.at(5.0 * 86_400.0 + 20.0 * 3600.0);
     assert_eq!(r.explain(), "weekday sat is in [sat, sun]");
     r.at(6.0 * 86_400.0 + 3.0 * 3600.0);
@@ -484,17 +420,11 @@ fn a_state_from_another_rule_is_replaced_not_misread() {
     let input = crate::rules::EvalInput {
         values: &values,
         now: crate::units::Timestamp::from_millis(0),
-        local: crate::rules::LocalClock {
-            seconds_of_day: 0,
-            weekday: chrono::Weekday::Mon,
-        },
+        local: crate::rules::LocalClock { seconds_of_day: 0, weekday: chrono::Weekday::Mon },
     };
     assert_eq!(a.eval(&input, &mut state), Unknown);
     // A values table shorter than the scope reads as unknown signals.
-    assert_eq!(
-        b.eval(&crate::rules::EvalInput { values: &[], ..input }, &mut state),
-        Unknown
-    );
+    assert_eq!(b.eval(&crate::rules::EvalInput { values: &[], ..input }, &mut state), Unknown);
 }
 
 #[test]
@@ -560,11 +490,7 @@ fn the_documented_examples_compile_without_warnings() {
         .and_then(|rest| rest.split("```text").nth(1))
         .and_then(|block| block.split("```").next())
         .unwrap_or_default();
-    let rules: Vec<&str> = examples
-        .lines()
-        .map(str::trim)
-        .filter(|l| !l.is_empty() && !l.starts_with('#'))
-        .collect();
+    let rules: Vec<&str> = examples.lines().map(str::trim).filter(|l| !l.is_empty() && !l.starts_with('#')).collect();
     assert!(rules.len() >= 10, "found {} examples", rules.len());
     for text in rules {
         let c = compiled(text);
@@ -576,10 +502,7 @@ fn the_documented_examples_compile_without_warnings() {
 fn one_mistake_gives_one_error() {
     assert_eq!(codes(&errors("Avg(surplus, 5min) > 1kW")), ["R0110"]);
     assert_eq!(codes(&errors("surplus > 3kw and tank.on")), ["R0102"]);
-    assert_eq!(
-        codes(&errors("tank_tmp > 58°C and tank_tmp < 70°C")),
-        ["R0201", "R0201"]
-    );
+    assert_eq!(codes(&errors("tank_tmp > 58°C and tank_tmp < 70°C")), ["R0201", "R0201"]);
     assert_eq!(codes(&errors("(surplus > 3kw) for 30s")), ["R0102"]);
     assert_eq!(codes(&errors("not surplus")), ["R0302"]);
 }

@@ -37,10 +37,7 @@ fn minutes_true(text: &str, date: NaiveDate) -> (u32, u32) {
         let input = EvalInput {
             values: &values,
             now: Timestamp::from_utc(t),
-            local: LocalClock {
-                seconds_of_day: local.num_seconds_from_midnight(),
-                weekday: local.weekday(),
-            },
+            local: LocalClock { seconds_of_day: local.num_seconds_from_midnight(), weekday: local.weekday() },
         };
         if r.eval(&input, &mut state).is_true() {
             true_minutes += 1;

@@ -48,10 +48,7 @@ const CASES: &[(&str, &str)] = &[
     ("R0310_window_of_a_condition", "avg(tank.on, 1h) > 50%"),
     ("R0311_time_arithmetic", "clock + 1h > 10:00"),
     ("R0312_zero_window", "avg(surplus, 0s) > 1kW"),
-    (
-        "several_errors_at_once",
-        "surplus > 3kw and tank_tmp < 25:00 and soc > 0.8",
-    ),
+    ("several_errors_at_once", "surplus > 3kw and tank_tmp < 25:00 and soc > 0.8"),
     ("R0401_constant_comparison", "3kW > 2kW or tank.on"),
     ("R0402_percentage_out_of_range", "soc > 120% or tank.on"),
     ("R0403_contradiction", "surplus > 5kW and tank.on and surplus < 3kW"),

@@ -12,10 +12,7 @@ use crate::units::Timestamp;
 
 /// Dimensions the generator writes expressions in, with names and literal spellings.
 const KINDS: &[(&[&str], &[&str])] = &[
-    (
-        &["surplus", "grid", "import", "pv", "load", "tank.power"],
-        &["3kW", "3.2 kW", "-250W", "0.5 MW", "1500 W", "0W"],
-    ),
+    (&["surplus", "grid", "import", "pv", "load", "tank.power"], &["3kW", "3.2 kW", "-250W", "0.5 MW", "1500 W", "0W"]),
     (&["tank_temp"], &["58°C", "62 degC", "-5 °C", "40°C"]),
     (&["soc"], &["80%", "20 %", "100%", "0%"]),
     (&["tank.runtime_today"], &["2h", "90 min", "30s", "1.5h", "250ms"]),
@@ -53,10 +50,7 @@ fn number(k: usize) -> BoxedStrategy<String> {
 }
 
 fn time() -> impl Strategy<Value = String> {
-    prop_oneof![
-        (0u32..24, 0u32..60).prop_map(|(h, m)| format!("{h:02}:{m:02}")),
-        Just("24:00".to_owned()),
-    ]
+    prop_oneof![(0u32..24, 0u32..60).prop_map(|(h, m)| format!("{h:02}:{m:02}")), Just("24:00".to_owned()),]
 }
 
 /// A condition.
@@ -99,15 +93,8 @@ fn tick(any_value: bool) -> impl Strategy<Value = (Vec<f64>, i64, u32, u8)> {
     )
 }
 
-const WEEK: [Weekday; 7] = [
-    Weekday::Mon,
-    Weekday::Tue,
-    Weekday::Wed,
-    Weekday::Thu,
-    Weekday::Fri,
-    Weekday::Sat,
-    Weekday::Sun,
-];
+const WEEK: [Weekday; 7] =
+    [Weekday::Mon, Weekday::Tue, Weekday::Wed, Weekday::Thu, Weekday::Fri, Weekday::Sat, Weekday::Sun];
 
 /// Evaluates `rule` over `ticks` and returns each tick's truth and explanation.
 fn run(rule: &Rule, ticks: &[(Vec<f64>, i64, u32, u8)]) -> Vec<(Truth, String)> {
@@ -120,10 +107,7 @@ fn run(rule: &Rule, ticks: &[(Vec<f64>, i64, u32, u8)]) -> Vec<(Truth, String)> 
             let input = EvalInput {
                 values,
                 now: Timestamp::from_millis(now),
-                local: LocalClock {
-                    seconds_of_day: *seconds_of_day,
-                    weekday: WEEK[*day as usize],
-                },
+                local: LocalClock { seconds_of_day: *seconds_of_day, weekday: WEEK[*day as usize] },
             };
             let t = rule.eval(&input, &mut state);
             (t, rule.explain(&input, &state))
@@ -132,9 +116,7 @@ fn run(rule: &Rule, ticks: &[(Vec<f64>, i64, u32, u8)]) -> Vec<(Truth, String)> 
 }
 
 fn compiled(text: &str) -> Result<Rule, TestCaseError> {
-    compile(text, &Site)
-        .map(|c| c.rule)
-        .map_err(|d| TestCaseError::fail(format!("{text}: {d:?}")))
+    compile(text, &Site).map(|c| c.rule).map_err(|d| TestCaseError::fail(format!("{text}: {d:?}")))
 }
 
 proptest! {

@@ -44,10 +44,7 @@ impl Scope for Site {
 }
 
 pub(crate) fn slot(name: &str) -> usize {
-    NAMES
-        .iter()
-        .position(|(n, _)| *n == name)
-        .unwrap_or_else(|| panic!("no test name {name}"))
+    NAMES.iter().position(|(n, _)| *n == name).unwrap_or_else(|| panic!("no test name {name}"))
 }
 
 pub(crate) fn compiled(text: &str) -> Compiled {
@@ -96,10 +93,7 @@ impl Run {
             state,
             values: vec![f64::NAN; NAMES.len()],
             now_ms: MONDAY_MIDNIGHT_MS,
-            clock: LocalClock {
-                seconds_of_day: 0,
-                weekday: Weekday::Mon,
-            },
+            clock: LocalClock { seconds_of_day: 0, weekday: Weekday::Mon },
         }
     }
 
@@ -118,21 +112,10 @@ impl Run {
         let secs = (self.now_ms - MONDAY_MIDNIGHT_MS) / 1000;
         self.clock = LocalClock {
             seconds_of_day: (secs % 86_400) as u32,
-            weekday: [
-                Weekday::Mon,
-                Weekday::Tue,
-                Weekday::Wed,
-                Weekday::Thu,
-                Weekday::Fri,
-                Weekday::Sat,
-                Weekday::Sun,
-            ][(secs / 86_400 % 7) as usize],
+            weekday: [Weekday::Mon, Weekday::Tue, Weekday::Wed, Weekday::Thu, Weekday::Fri, Weekday::Sat, Weekday::Sun]
+                [(secs / 86_400 % 7) as usize],
         };
-        let input = EvalInput {
-            values: &self.values,
-            now: Timestamp::from_millis(self.now_ms),
-            local: self.clock,
-        };
+        let input = EvalInput { values: &self.values, now: Timestamp::from_millis(self.now_ms), local: self.clock };
         self.rule.eval(&input, &mut self.state)
     }
 
@@ -150,9 +133,5 @@ impl Run {
 }
 
 fn input(values: &[f64], now_ms: i64, local: LocalClock) -> EvalInput<'_> {
-    EvalInput {
-        values,
-        now: Timestamp::from_millis(now_ms),
-        local,
-    }
+    EvalInput { values, now: Timestamp::from_millis(now_ms), local }
 }
