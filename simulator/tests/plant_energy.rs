@@ -13,7 +13,13 @@ const FIXTURES: [&str; 3] = [
 ];
 
 fn build(name: &str, seed: u64) -> Plant {
-    Plant::new(&fixture(name), Box::new(HalfSine::new(6000.0)), MONDAY_UTC_MS, seed).unwrap()
+    Plant::new(
+        &fixture(name),
+        Box::new(HalfSine::new(6000.0)),
+        MONDAY_UTC_MS,
+        seed,
+    )
+    .unwrap()
 }
 
 #[test]
@@ -29,9 +35,11 @@ fn every_fixture_builds() {
 
 #[test]
 fn unknown_keys_are_rejected() {
-    let e = spillway_sim::plant::PlantConfig::from_yaml("tank: { volume: 150L, element: 3kW, colour: red }")
-        .unwrap_err()
-        .to_string();
+    let e = spillway_sim::plant::PlantConfig::from_yaml(
+        "tank: { volume: 150L, element: 3kW, colour: red }",
+    )
+    .unwrap_err()
+    .to_string();
     assert!(e.contains("colour"), "{e}");
     let e = spillway_sim::plant::PlantConfig::from_yaml(
         "faults: [{ kind: meter_silent, start: 1h, duration: 1min, device: meter }]",

@@ -49,12 +49,20 @@ fn the_charge_controller_throttles_the_array_at_float() {
     // and the rest is curtailed.
     let f = p.flows();
     assert!((f.pv.w - 100.0).abs() < 5.0, "pv {} W", f.pv.w);
-    assert!(f.pv_curtailed.w > 2800.0, "curtailed {} W", f.pv_curtailed.w);
+    assert!(
+        f.pv_curtailed.w > 2800.0,
+        "curtailed {} W",
+        f.pv_curtailed.w
+    );
     assert!(p.readings().pv.limit_w.is_some());
     // A dump load wins the curtailed power back.
     p.controls_mut().regulators[0] = 100.0;
     p.step(1.0);
-    assert!((p.flows().pv.w - 1600.0).abs() < 5.0, "pv {} W", p.flows().pv.w);
+    assert!(
+        (p.flows().pv.w - 1600.0).abs() < 5.0,
+        "pv {} W",
+        p.flows().pv.w
+    );
     assert!(p.flows().balance_error_wh().abs() < 1e-6);
     assert_eq!(p.flows().unserved.wh, 0.0);
 }
@@ -72,7 +80,10 @@ fn the_low_voltage_disconnect_drops_loads_and_reconnects_on_charge() {
     assert_eq!(p.flows().house.w, 0.0);
     assert!((p.flows().unserved.w - 500.0).abs() < 1e-6);
     run(&mut p, 15 * 3600, 1.0);
-    assert!(!p.readings().loads_disconnected, "reconnected after a sunny day");
+    assert!(
+        !p.readings().loads_disconnected,
+        "reconnected after a sunny day"
+    );
     assert!(p.flows().unserved.wh > 0.0);
     assert!(p.flows().balance_error_wh().abs() < 1e-6);
 }

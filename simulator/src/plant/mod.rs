@@ -585,7 +585,6 @@ impl Plant {
         if t >= self.faults.next_change_ms {
             self.apply_faults();
         }
-        self.bus.tick(t);
         if self.grid.as_ref().is_some_and(|g| t >= g.next_change_ms) {
             self.update_grid_state();
         }
@@ -768,6 +767,9 @@ impl Plant {
         }
 
         self.now_ms = t + dt_ms;
+        // The devices' clock reads the end of the step, so requests between steps and
+        // timers that expire now act before the next step.
+        self.bus.tick(self.now_ms);
         let meter_silent = self.faults.active.meter_silent || self.faults.active.restarting[0];
         self.meter.step(
             self.now_ms,
