@@ -78,7 +78,14 @@ impl Meter {
             if let Some(mode) = garbage {
                 w = garble(mode, w, end_ms as u64);
             }
-            if !silent {
+            if !silent && self.delay_ms == 0 {
+                self.shown = Report {
+                    visible_ms: end_ms,
+                    w,
+                    import_wh: counters.0,
+                    export_wh: counters.1,
+                };
+            } else if !silent {
                 if self.queue.len() == self.queue.capacity() {
                     self.queue.pop_front();
                 }

@@ -291,6 +291,8 @@ pub struct Plant {
     grid_available: bool,
     disconnected: bool,
     seed: u64,
+    /// Last step length: (requested s, ms, s, h, 1/s), recomputed only when it changes.
+    step_len: (f64, i64, f64, f64, f64),
 }
 
 impl Plant {
@@ -521,6 +523,7 @@ impl Plant {
             grid_available: cfg.off_grid.is_none(),
             disconnected: false,
             seed,
+            step_len: (f64::NAN, 0, 0.0, 0.0, 0.0),
         };
         plant.begin_day();
         plant.update_grid_state();
@@ -575,9 +578,12 @@ impl Plant {
 
     /// Advances the physics by `dt_s` seconds with the current controls.
     pub fn step(&mut self, dt_s: f64) {
-        let dt_ms = ((dt_s * 1000.0).round() as i64).max(1);
-        let dt = dt_ms as f64 / 1000.0;
-        let dt_h = dt / 3600.0;
+        if dt_s != self.step_len.0 {
+            let dt_ms = ((dt_s * 1000.0).round() as i64).max(1);
+            let dt = dt_ms as f64 / 1000.0;
+            self.step_len = (dt_s, dt_ms, dt, dt / 3600.0, 1.0 / dt);
+        }
+        let (_, dt_ms, dt, dt_h, inv_dt) = self.step_len;
         let t = self.now_ms;
         if t >= self.day.end_ms {
             self.begin_day();
@@ -662,10 +668,10 @@ impl Plant {
         let (charge_room, discharge_room) = match &self.battery {
             Some(b) => {
                 let c = match &self.charger {
-                    Some(cc) => cc.charge_limit_w(b, dt),
-                    None => b.charge_room_w(dt),
+                    Some(cc) => cc.charge_limit_w(b, inv_dt),
+                    None => b.charge_room_w(inv_dt),
                 };
-                (c, b.discharge_room_w(dt))
+                (c, b.discharge_room_w(inv_dt))
             }
             None => (0.0, 0.0),
         };
@@ -722,7 +728,7 @@ impl Plant {
             None => (0.0, 0.0, 0.0),
         };
         if let (Some(cc), Some(b)) = (&mut self.charger, &self.battery) {
-            cc.update(b, dt, b.charge_room_w(dt));
+            cc.update(b, dt, b.charge_room_w(inv_dt));
         }
         let unserved = (1.0 - served) * demand;
         for (w, drive) in self.load_w.iter_mut().zip(&self.drives) {
@@ -744,8 +750,14 @@ impl Plant {
         let f = &mut self.flows;
         f.pv.add(pv_w, dt_h);
         f.house.add(house_w * served, dt_h);
-        for (flow, w) in f.loads.iter_mut().zip(&self.load_w) {
+        for ((flow, w), shown) in f
+            .loads
+            .iter_mut()
+            .zip(&self.load_w)
+            .zip(&mut self.bus.readings.loads_w)
+        {
             flow.add(*w, dt_h);
+            *shown = *w;
         }
         f.battery_charge.add(into, dt_h);
         f.battery_discharge.add(out, dt_h);
@@ -787,7 +799,9 @@ impl Plant {
         }
     }
 
-    /// Copies the state into the readings, with faults applied.
+    /// Copies the state into the readings, with faults applied (per-load powers are
+    /// copied in `step`).
+    #[inline]
     fn refresh_readings(&mut self, battery_ac: f64) {
         let f = &self.flows;
         let r = &mut self.bus.readings;
@@ -838,9 +852,6 @@ impl Plant {
                 current_a: e.current_a,
                 power_w: f.loads.last().map_or(0.0, |l| l.w),
             });
-        }
-        for (dst, src) in r.loads_w.iter_mut().zip(&f.loads) {
-            *dst = src.w;
         }
         r.loads_disconnected = self.disconnected;
     }

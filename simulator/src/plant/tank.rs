@@ -50,6 +50,7 @@ pub struct Tank {
     /// exp(−dt/τ) for the last dt, recomputed only when dt changes.
     cached_dt: f64,
     cached_k: f64,
+    inv_ua: f64,
     /// Hot water drawn so far, litres at tank temperature.
     pub drawn_l: f64,
 }
@@ -129,6 +130,7 @@ impl Tank {
             next_draw: 0,
             cached_dt: f64::NAN,
             cached_k: 1.0,
+            inv_ua: if cfg.ua > 0.0 { 1.0 / cfg.ua } else { 0.0 },
             drawn_l: 0.0,
         })
     }
@@ -187,7 +189,7 @@ impl Tank {
                 self.cached_dt = dt;
                 self.cached_k = (-self.ua * dt / self.heat_capacity).exp();
             }
-            let t_eq = self.ambient + element_w / self.ua;
+            let t_eq = self.ambient + element_w * self.inv_ua;
             self.temp_c = t_eq + (self.temp_c - t_eq) * self.cached_k;
         } else {
             self.temp_c += element_w * dt / self.heat_capacity;
