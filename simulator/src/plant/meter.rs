@@ -23,6 +23,7 @@ pub struct Report {
 #[derive(Debug)]
 pub struct Meter {
     period_ms: i64,
+    inv_period: f64,
     delay_ms: i64,
     noise_w: f64,
     rng: Stream,
@@ -41,6 +42,7 @@ impl Meter {
         let delay_ms = ((cfg.delay * 1000.0).round() as i64).max(0);
         Meter {
             period_ms,
+            inv_period: 1.0 / period_ms as f64,
             delay_ms,
             noise_w: cfg.noise.max(0.0),
             rng,
@@ -71,7 +73,12 @@ impl Meter {
         self.acc_w_ms += grid_w * dt_ms as f64;
         self.acc_ms += dt_ms;
         if end_ms >= self.next_report_ms {
-            let mut w = self.acc_w_ms / self.acc_ms.max(1) as f64;
+            // A whole period (the usual case) divides by a precomputed reciprocal.
+            let mut w = if self.acc_ms == self.period_ms {
+                self.acc_w_ms * self.inv_period
+            } else {
+                self.acc_w_ms / self.acc_ms.max(1) as f64
+            };
             if self.noise_w > 0.0 {
                 w += self.noise_w * self.rng.normal();
             }

@@ -476,6 +476,10 @@ impl Plant {
             pv_limit_w: None,
         };
         let readings = Readings {
+            grid: (cfg.off_grid.is_none()).then(GridReading::default),
+            tank: tank.as_ref().map(|_| TankReading::default()),
+            battery: battery.as_ref().map(|_| BatteryReading::default()),
+            ev: ev.as_ref().map(|_| EvReading::default()),
             loads_w: vec![0.0; n_loads],
             contacts: vec![false; channels.len()],
             ..Readings::default()
@@ -731,33 +735,27 @@ impl Plant {
             cc.update(b, dt, b.charge_room_w(inv_dt));
         }
         let unserved = (1.0 - served) * demand;
-        for (w, drive) in self.load_w.iter_mut().zip(&self.drives) {
-            *w *= served;
+        let f = &mut self.flows;
+        f.pv.add(pv_w, dt_h);
+        f.house.add(house_w * served, dt_h);
+        let shown = &mut self.bus.readings.loads_w;
+        for (i, drive) in self.drives.iter().enumerate() {
+            let w = self.load_w[i] * served;
             match drive {
                 Drive::Tank { .. } => {
                     if let Some(tank) = &mut self.tank {
-                        tank.step(*w, dt, sec);
+                        tank.step(w, dt, sec);
                     }
                 }
                 Drive::Ev => {
                     if let Some(ev) = &mut self.ev {
-                        ev.charge(*w, dt);
+                        ev.charge(w, dt);
                     }
                 }
                 _ => {}
             }
-        }
-        let f = &mut self.flows;
-        f.pv.add(pv_w, dt_h);
-        f.house.add(house_w * served, dt_h);
-        for ((flow, w), shown) in f
-            .loads
-            .iter_mut()
-            .zip(&self.load_w)
-            .zip(&mut self.bus.readings.loads_w)
-        {
-            flow.add(*w, dt_h);
-            *shown = *w;
+            f.loads[i].add(w, dt_h);
+            shown[i] = w;
         }
         f.battery_charge.add(into, dt_h);
         f.battery_discharge.add(out, dt_h);
@@ -805,55 +803,65 @@ impl Plant {
     fn refresh_readings(&mut self, battery_ac: f64) {
         let f = &self.flows;
         let r = &mut self.bus.readings;
-        let garbage = self.faults.active.garbage;
-        let salt = self.now_ms as u64 ^ self.seed;
-        let g = |mode: Option<GarbageMode>, v: f64, k: u64| match mode {
-            Some(m) => garble(m, v, mix(salt ^ k)),
-            None => v,
-        };
         r.grid_available = self.grid_available;
-        r.grid = self.grid.as_ref().map(|grid| {
+        if let (Some(grid), Some(g)) = (&self.grid, &mut r.grid) {
             let up = self.grid_available;
-            GridReading {
-                power_w: self.meter.shown.w,
-                import_wh: self.meter.shown.import_wh,
-                export_wh: self.meter.shown.export_wh,
-                voltage_v: if up { grid.voltage } else { 0.0 },
-                frequency_hz: if up { grid.frequency } else { 0.0 },
-                updated_ms: self.meter.shown.visible_ms,
-            }
-        });
-        r.pv.power_w = g(garbage[1], f.pv.w, 1);
-        r.pv.available_w = g(garbage[1], r.pv.available_w, 2);
+            let shown = &self.meter.shown;
+            g.power_w = shown.w;
+            g.import_wh = shown.import_wh;
+            g.export_wh = shown.export_wh;
+            g.voltage_v = if up { grid.voltage } else { 0.0 };
+            g.frequency_hz = if up { grid.frequency } else { 0.0 };
+            g.updated_ms = shown.visible_ms;
+        }
+        r.pv.power_w = f.pv.w;
         r.pv.energy_wh = f.pv.wh;
-        if let Some(t) = &self.tank {
-            r.tank = Some(TankReading {
-                temp_c: g(garbage[3], t.temp_c, 3),
-                heating: f.loads.first().is_some_and(|l| l.w > 0.0),
-                cutout_tripped: t.tripped,
-            });
+        if let (Some(t), Some(tr)) = (&self.tank, &mut r.tank) {
+            tr.temp_c = t.temp_c;
+            // The tank is always load 0.
+            tr.heating = f.loads[0].w > 0.0;
+            tr.cutout_tripped = t.tripped;
         }
-        if let Some(b) = &self.battery {
-            r.battery = Some(BatteryReading {
-                soc_pct: g(garbage[3], b.soc_pct(), 4),
-                voltage_v: g(garbage[3], b.voltage_v(), 5),
-                current_a: g(garbage[3], b.current_a(), 6),
-                power_w: battery_ac,
-                charger: self
-                    .charger
-                    .as_ref()
-                    .map_or(ChargerState::None, |c| c.state),
-            });
+        if let (Some(b), Some(br)) = (&self.battery, &mut r.battery) {
+            br.soc_pct = b.soc_pct();
+            br.voltage_v = b.voltage_v();
+            br.current_a = b.current_a();
+            br.power_w = battery_ac;
+            br.charger = self
+                .charger
+                .as_ref()
+                .map_or(ChargerState::None, |c| c.state);
         }
-        if let Some(e) = &self.ev {
-            r.ev = Some(EvReading {
-                plugged: e.plugged,
-                soc_pct: e.soc_pct(),
-                current_a: e.current_a,
-                power_w: f.loads.last().map_or(0.0, |l| l.w),
-            });
+        if let (Some(e), Some(er)) = (&self.ev, &mut r.ev) {
+            er.plugged = e.plugged;
+            er.soc_pct = e.soc_pct();
+            er.current_a = e.current_a;
+            // The EV is always the last load.
+            er.power_w = f.loads.last().map_or(0.0, |l| l.w);
         }
         r.loads_disconnected = self.disconnected;
+
+        // Faulty sensors and inverters report garbage (the meter garbles at the source).
+        let garbage = self.faults.active.garbage;
+        if garbage[1].is_none() && garbage[3].is_none() {
+            return;
+        }
+        let salt = self.now_ms as u64 ^ self.seed;
+        let g = |mode: Option<GarbageMode>, v: &mut f64, k: u64| {
+            if let Some(m) = mode {
+                *v = garble(m, *v, mix(salt ^ k));
+            }
+        };
+        g(garbage[1], &mut r.pv.power_w, 1);
+        g(garbage[1], &mut r.pv.available_w, 2);
+        if let Some(t) = &mut r.tank {
+            g(garbage[3], &mut t.temp_c, 3);
+        }
+        if let Some(b) = &mut r.battery {
+            g(garbage[3], &mut b.soc_pct, 4);
+            g(garbage[3], &mut b.voltage_v, 5);
+            g(garbage[3], &mut b.current_a, 6);
+        }
     }
 
     /// The current instant, ms since the Unix epoch.
