@@ -199,3 +199,44 @@ fn meter_noise_has_the_configured_spread() {
     assert!(mean.abs() < 1.0, "{mean}");
     assert!((sd - 25.0).abs() < 1.0, "{sd}");
 }
+
+#[test]
+fn sensor_garbage_and_a_restarting_sensor_module() {
+    let yaml = format!(
+        "{QUIET}tank: {{ volume: 100L, element: 2kW, initial: 50°C, draws: [] }}\nfaults:\n  - {{ kind: garbage, device: sensors, mode: nan, start: 10s, duration: 10s }}\n  - {{ kind: device_restart, device: sensors, start: 30s, duration: 10s }}\n  - {{ kind: device_restart, device: meter, start: 50s, duration: 10s }}\n"
+    );
+    let mut p = plant(&yaml, Constant(0.0));
+    run(&mut p, 15, 1.0);
+    assert!(p.readings().tank.unwrap().temp_c.is_nan());
+    let ir = Table::InputRegisters;
+    assert_eq!(
+        p.bus()
+            .read_registers(spillway_sim::bus::SENSOR_UNIT, ir, 0, 1)
+            .unwrap(),
+        [0x8000]
+    );
+    run(&mut p, 20, 1.0);
+    assert!((p.readings().tank.unwrap().temp_c - 50.0).abs() < 0.1);
+    assert!(matches!(
+        p.bus().read(spillway_sim::bus::SENSOR_UNIT, ir, 0, 1),
+        Err(BusError::ServerDeviceFailure { .. })
+    ));
+    assert!(
+        p.bus()
+            .mqtt_snapshot()
+            .iter()
+            .all(|(t, _)| !t.starts_with("sim/tank/"))
+    );
+    run(&mut p, 20, 1.0);
+    let frozen = p.readings().grid.unwrap().updated_ms;
+    assert!(matches!(
+        p.bus().read(METER_UNIT, HR, SUNSPEC_BASE, 2),
+        Err(BusError::ServerDeviceFailure { .. })
+    ));
+    run(&mut p, 5, 1.0);
+    assert_eq!(
+        p.readings().grid.unwrap().updated_ms,
+        frozen,
+        "a rebooting meter reports nothing"
+    );
+}
