@@ -934,6 +934,11 @@ impl Plant {
         self.tank.as_ref().map(|t| t.temp_c)
     }
 
+    /// Hot water drawn from the tank so far, litres at tank temperature.
+    pub fn hot_water_drawn_l(&self) -> Option<f64> {
+        self.tank.as_ref().map(|t| t.drawn_l)
+    }
+
     /// The battery's true stored energy, Wh.
     pub fn battery_stored_wh(&self) -> Option<f64> {
         self.battery.as_ref().map(|b| b.stored_wh)
