@@ -1,0 +1,83 @@
+//! Plant throughput: simulated seconds per wall second for a household + tank + pump +
+//! battery + meter site at 1 s steps, with a stub PV source (the PV chain is benched
+//! separately). Criterion reports "elements/s" = simulated seconds per second.
+
+use std::hint::black_box;
+
+use criterion::{Criterion, Throughput, criterion_group, criterion_main};
+use spillway_sim::plant::{Plant, PlantConfig};
+use spillway_sim::pv_output::{PvSample, PvSource};
+
+/// A cheap stand-in for the PV chain: a fixed triangular day, limit obeyed.
+struct Stub;
+
+impl PvSource for Stub {
+    #[inline]
+    fn step(&mut self, t_ms: i64, _dt_s: f64, limit_w: Option<f64>) -> PvSample {
+        let s = (t_ms % 86_400_000) as f64 / 1000.0;
+        let available = (4000.0 - (s - 43_200.0).abs() * (4000.0 / 21_600.0)).max(0.0);
+        let ac = limit_w.map_or(available, |l| available.min(l));
+        PvSample {
+            ac_w: ac,
+            available_ac_w: available,
+            ..PvSample::default()
+        }
+    }
+}
+
+const SITE: &str = r#"
+timezone: Africa/Johannesburg
+tank: { volume: 150L, element: 3kW, ua: 2W/K }
+pump: { rated: 750W }
+battery: { capacity: 10kWh, max_charge: 3kW, max_discharge: 3kW }
+meter: { period: 1s, noise: 15W }
+wiring: [tank, pump]
+"#;
+
+const START_MS: i64 = 1_735_689_600_000; // 2025-01-01T00:00:00Z
+
+fn plant() -> Plant {
+    let cfg = PlantConfig::from_yaml(SITE).expect("bench site parses");
+    Plant::new(&cfg, Box::new(Stub), START_MS, 42).expect("bench site builds")
+}
+
+/// Runs `seconds` of 1 s steps with a crude once-a-minute controller.
+fn simulate(p: &mut Plant, seconds: u64) {
+    for s in 0..seconds {
+        if s % 60 == 0 {
+            let grid = p.readings().grid.map_or(0.0, |g| g.power_w);
+            let c = p.controls_mut();
+            c.relays[0] = grid < -500.0 || (c.relays[0] && grid < 300.0);
+            c.relays[1] = (8 * 3600..16 * 3600).contains(&(s % 86_400));
+            c.battery_w = -grid;
+        }
+        p.step(1.0);
+    }
+}
+
+fn bench(c: &mut Criterion) {
+    let mut g = c.benchmark_group("plant");
+    g.sample_size(10);
+    let day = 86_400;
+    g.throughput(Throughput::Elements(day));
+    g.bench_function("day_at_1s", |b| {
+        let mut p = plant();
+        b.iter(|| {
+            simulate(&mut p, day);
+            black_box(p.flows().grid_import.wh)
+        })
+    });
+    let year = 365 * day;
+    g.throughput(Throughput::Elements(year));
+    g.bench_function("year_at_1s", |b| {
+        b.iter(|| {
+            let mut p = plant();
+            simulate(&mut p, year);
+            black_box(p.flows().balance_error_wh())
+        })
+    });
+    g.finish();
+}
+
+criterion_group!(benches, bench);
+criterion_main!(benches);

@@ -1,0 +1,136 @@
+//! Grid meter: reports the mean grid power over each period with seeded noise, a
+//! reporting delay, energy counters, and the silent and garbage faults.
+
+use std::collections::VecDeque;
+
+use super::config::{GarbageMode, MeterConfig};
+use super::noise::{Stream, mix};
+
+/// One meter report.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct Report {
+    /// When the report becomes visible, ms since the epoch.
+    pub visible_ms: i64,
+    /// Mean grid power over the period, W (import positive).
+    pub w: f64,
+    /// Import counter at the end of the period, Wh.
+    pub import_wh: f64,
+    /// Export counter at the end of the period, Wh.
+    pub export_wh: f64,
+}
+
+/// The meter's state.
+#[derive(Debug)]
+pub struct Meter {
+    period_ms: i64,
+    inv_period: f64,
+    delay_ms: i64,
+    noise_w: f64,
+    rng: Stream,
+    acc_w_ms: f64,
+    acc_ms: i64,
+    next_report_ms: i64,
+    queue: VecDeque<Report>,
+    /// The report shown now.
+    pub shown: Report,
+}
+
+impl Meter {
+    /// A meter whose first period starts at `start_ms`.
+    pub fn new(cfg: &MeterConfig, rng: Stream, start_ms: i64) -> Meter {
+        let period_ms = ((cfg.period * 1000.0).round() as i64).max(1);
+        let delay_ms = ((cfg.delay * 1000.0).round() as i64).max(0);
+        Meter {
+            period_ms,
+            inv_period: 1.0 / period_ms as f64,
+            delay_ms,
+            noise_w: cfg.noise.max(0.0),
+            rng,
+            acc_w_ms: 0.0,
+            acc_ms: 0,
+            next_report_ms: start_ms + period_ms,
+            queue: VecDeque::with_capacity((delay_ms / period_ms + 2) as usize),
+            shown: Report {
+                visible_ms: start_ms,
+                ..Report::default()
+            },
+        }
+    }
+
+    /// Integrates `grid_w` over a step ending at `end_ms` of `dt_ms`. `counters` are the
+    /// true import and export energies at `end_ms`. A silent meter measures but does not
+    /// report; a garbage fault corrupts what it reports.
+    #[inline]
+    pub fn step(
+        &mut self,
+        end_ms: i64,
+        dt_ms: i64,
+        grid_w: f64,
+        counters: (f64, f64),
+        silent: bool,
+        garbage: Option<GarbageMode>,
+    ) {
+        self.acc_w_ms += grid_w * dt_ms as f64;
+        self.acc_ms += dt_ms;
+        if end_ms >= self.next_report_ms {
+            // A whole period (the usual case) divides by a precomputed reciprocal.
+            let mut w = if self.acc_ms == self.period_ms {
+                self.acc_w_ms * self.inv_period
+            } else {
+                self.acc_w_ms / self.acc_ms.max(1) as f64
+            };
+            if self.noise_w > 0.0 {
+                w += self.noise_w * self.rng.normal();
+            }
+            if let Some(mode) = garbage {
+                w = garble(mode, w, end_ms as u64);
+            }
+            if !silent && self.delay_ms == 0 {
+                self.shown = Report {
+                    visible_ms: end_ms,
+                    w,
+                    import_wh: counters.0,
+                    export_wh: counters.1,
+                };
+            } else if !silent {
+                if self.queue.len() == self.queue.capacity() {
+                    self.queue.pop_front();
+                }
+                self.queue.push_back(Report {
+                    visible_ms: end_ms + self.delay_ms,
+                    w,
+                    import_wh: counters.0,
+                    export_wh: counters.1,
+                });
+            }
+            self.acc_w_ms = 0.0;
+            self.acc_ms = 0;
+            while self.next_report_ms <= end_ms {
+                self.next_report_ms += self.period_ms;
+            }
+        }
+        while let Some(front) = self.queue.front() {
+            if front.visible_ms > end_ms {
+                break;
+            }
+            self.shown = *front;
+            self.queue.pop_front();
+        }
+    }
+}
+
+/// Corrupts a value the way a faulty device would, reproducibly from `salt`.
+pub fn garble(mode: GarbageMode, value: f64, salt: u64) -> f64 {
+    let h = mix(salt ^ value.to_bits());
+    match mode {
+        GarbageMode::Nan => f64::NAN,
+        GarbageMode::Spike => {
+            if h & 1 == 0 {
+                1e6
+            } else {
+                -1e6
+            }
+        }
+        GarbageMode::Random => ((h >> 11) as f64 / (1u64 << 53) as f64 - 0.5) * 100_000.0,
+    }
+}

@@ -1,0 +1,946 @@
+//! The simulated site: household, loads, tank, battery, EV, grid meter, grid or
+//! off-grid supply and faults, stepped in discrete time by the caller.
+//!
+//! Energy balance, exact by construction (grid power is the residual of each step):
+//!
+//! ```text
+//! PV + import = house + Σ loads + battery charge − battery discharge + export + losses
+//! ```
+//!
+//! where battery charge/discharge are energies into/out of *storage* and `losses` are
+//! the battery's conversion losses (AC in − stored while charging, stored − AC out while
+//! discharging). Energy outside that balance is reported beside it: `unserved`
+//! (demand not met off-grid or in an outage), `pv_spilled` (PV an island could not
+//! absorb) and `pv_curtailed` (available PV the inverter held back).
+
+// Configuration checks are written `!(x >= 0.0)` on purpose: NaN must fail them.
+#![allow(clippy::neg_cmp_op_on_partial_ord)]
+
+pub mod battery;
+pub mod calendar;
+pub mod config;
+pub mod ev;
+pub mod faults;
+pub mod house;
+pub mod meter;
+pub mod noise;
+pub mod tank;
+
+use chrono_tz::Tz;
+
+use crate::bus::Bus;
+use crate::pv_output::PvSource;
+use battery::{Battery, ChargeController, ChargerState};
+use calendar::Day;
+use config::{GarbageMode, LoadKind};
+use ev::Ev;
+use faults::Faults;
+use house::House;
+use meter::{Meter, garble};
+use noise::{Stream, mix};
+use tank::Tank;
+
+pub use config::PlantConfig;
+
+/// Errors building a plant from its configuration.
+#[derive(Debug, thiserror::Error)]
+pub enum PlantError {
+    /// The time zone is not an IANA name chrono-tz knows.
+    #[error("unknown time zone \"{0}\": use an IANA name such as Europe/Berlin")]
+    TimeZone(String),
+    /// A value or combination of values is out of range.
+    #[error("{what}: {why}")]
+    Invalid {
+        /// Where the problem is.
+        what: String,
+        /// What is wrong, and what would be right.
+        why: String,
+    },
+    /// Two components share a name.
+    #[error("the name \"{0}\" is used twice: load, tank, pump and EV names must be unique")]
+    DuplicateName(String),
+    /// A relay channel named in `wiring` or `faults` does not exist.
+    #[error(
+        "{place}: no relay channel \"{name}\" (channels are switched load names, and `<load>.<stage>` for stepped loads)"
+    )]
+    UnknownChannel {
+        /// The name given.
+        name: String,
+        /// The config section that names it.
+        place: String,
+    },
+}
+
+/// What actuators set: the plant reads these at every step.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Controls {
+    /// Commanded state of each relay channel ([`Plant::channels`] order); `true` = closed.
+    pub relays: Vec<bool>,
+    /// Setpoint of each proportional regulator ([`Plant::regulators`] order), 0–100 %.
+    pub regulators: Vec<f64>,
+    /// Battery power command, W: positive charges, negative discharges.
+    pub battery_w: f64,
+    /// EV charging current command, A (0 = paused).
+    pub ev_current_a: f64,
+    /// Inverter active-power limit, W (`None` = no limit).
+    pub pv_limit_w: Option<f64>,
+}
+
+/// Grid meter reading.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct GridReading {
+    /// Grid power, W: import positive, export negative.
+    pub power_w: f64,
+    /// Meter import counter, Wh.
+    pub import_wh: f64,
+    /// Meter export counter, Wh.
+    pub export_wh: f64,
+    /// Phase voltage, V (0 during an outage).
+    pub voltage_v: f64,
+    /// Frequency, Hz (0 during an outage).
+    pub frequency_hz: f64,
+    /// When this reading appeared, ms since the epoch (stops advancing when the meter is
+    /// silent).
+    pub updated_ms: i64,
+}
+
+/// PV inverter reading.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct PvReading {
+    /// AC output, W.
+    pub power_w: f64,
+    /// AC power the array could deliver with no limit, W.
+    pub available_w: f64,
+    /// The limit the inverter obeys now, W.
+    pub limit_w: Option<f64>,
+    /// Lifetime AC energy, Wh.
+    pub energy_wh: f64,
+}
+
+/// Tank sensor reading.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct TankReading {
+    /// Water temperature, °C.
+    pub temp_c: f64,
+    /// The element is heating now.
+    pub heating: bool,
+    /// The thermal cut-out has tripped.
+    pub cutout_tripped: bool,
+}
+
+/// Battery reading.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct BatteryReading {
+    /// State of charge, %.
+    pub soc_pct: f64,
+    /// Terminal voltage, V.
+    pub voltage_v: f64,
+    /// Terminal current, A (+ charging).
+    pub current_a: f64,
+    /// AC power, W (+ charging).
+    pub power_w: f64,
+    /// Charge-controller stage (off-grid only).
+    pub charger: ChargerState,
+}
+
+/// EV charger reading.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct EvReading {
+    /// A car is plugged in.
+    pub plugged: bool,
+    /// Car state of charge, % (of the last car plugged in).
+    pub soc_pct: f64,
+    /// Charging current, A.
+    pub current_a: f64,
+    /// Charging power, W.
+    pub power_w: f64,
+}
+
+/// What meters and sensors report now, with noise, delay and faults applied.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Readings {
+    /// Grid meter (`None` off-grid).
+    pub grid: Option<GridReading>,
+    /// The grid is up (always `false` off-grid).
+    pub grid_available: bool,
+    /// PV inverter.
+    pub pv: PvReading,
+    /// Tank sensors.
+    pub tank: Option<TankReading>,
+    /// Battery.
+    pub battery: Option<BatteryReading>,
+    /// EV charger.
+    pub ev: Option<EvReading>,
+    /// Each load's own power meter ([`Plant::loads`] order), W.
+    pub loads_w: Vec<f64>,
+    /// Each relay's actual contact state ([`Plant::channels`] order).
+    pub contacts: Vec<bool>,
+    /// Off-grid low-voltage disconnect (or an outage overload) has dropped the loads.
+    pub loads_disconnected: bool,
+}
+
+/// One energy flow: power now and energy so far.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct Flow {
+    /// Power over the last step, W.
+    pub w: f64,
+    /// Energy since the start, Wh.
+    pub wh: f64,
+}
+
+impl Flow {
+    #[inline]
+    fn add(&mut self, w: f64, dt_h: f64) {
+        self.w = w;
+        self.wh += w * dt_h;
+    }
+}
+
+/// Physical truth for energy accounting (see the module docs for the balance).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct Flows {
+    /// PV AC energy delivered.
+    pub pv: Flow,
+    /// Household base load served.
+    pub house: Flow,
+    /// Each load served ([`Plant::loads`] order).
+    pub loads: Vec<Flow>,
+    /// Into battery storage.
+    pub battery_charge: Flow,
+    /// Out of battery storage.
+    pub battery_discharge: Flow,
+    /// From the grid.
+    pub grid_import: Flow,
+    /// To the grid.
+    pub grid_export: Flow,
+    /// Battery conversion losses.
+    pub losses: Flow,
+    /// Demand not served (outside the balance).
+    pub unserved: Flow,
+    /// PV an island could not absorb (outside the balance).
+    pub pv_spilled: Flow,
+    /// Available PV held back by the inverter's limit (outside the balance).
+    pub pv_curtailed: Flow,
+}
+
+impl Flows {
+    /// Sources minus sinks of the balance, Wh: zero up to rounding.
+    pub fn balance_error_wh(&self) -> f64 {
+        let loads: f64 = self.loads.iter().map(|f| f.wh).sum();
+        self.pv.wh + self.grid_import.wh - self.house.wh - loads - self.battery_charge.wh
+            + self.battery_discharge.wh
+            - self.grid_export.wh
+            - self.losses.wh
+    }
+
+    /// Total energy of all loads, Wh.
+    pub fn loads_wh(&self) -> f64 {
+        self.loads.iter().map(|f| f.wh).sum()
+    }
+}
+
+/// How one load is driven.
+#[derive(Debug)]
+enum Drive {
+    Tank { channel: usize, rated: f64 },
+    Switched { channel: usize, rated: f64 },
+    Stepped { first: usize, stages: Vec<f64> },
+    Regulated { index: usize, rated: f64 },
+    Ev,
+}
+
+/// Island-mode state of an off-grid site.
+#[derive(Debug)]
+struct OffGrid {
+    disconnect_pct: f64,
+    reconnect_pct: f64,
+}
+
+/// The grid connection's state.
+#[derive(Debug)]
+struct Grid {
+    voltage: f64,
+    frequency: f64,
+    /// Outage windows, ms.
+    outages: Vec<(i64, i64)>,
+    next_change_ms: i64,
+}
+
+/// The simulated site.
+pub struct Plant {
+    tz: Tz,
+    now_ms: i64,
+    day: Day,
+    pv: Box<dyn PvSource>,
+    house: House,
+    tank: Option<Tank>,
+    battery: Option<Battery>,
+    charger: Option<ChargeController>,
+    ev: Option<Ev>,
+    drives: Vec<Drive>,
+    load_names: Vec<String>,
+    meter: Meter,
+    grid: Option<Grid>,
+    off_grid: Option<OffGrid>,
+    faults: Faults,
+    flows: Flows,
+    bus: Bus,
+    /// Channels wired to a coil of the relay module.
+    wired: Vec<bool>,
+    load_w: Vec<f64>,
+    grid_available: bool,
+    disconnected: bool,
+    seed: u64,
+    /// Last step length: (requested s, ms, s, h, 1/s), recomputed only when it changes.
+    step_len: (f64, i64, f64, f64, f64),
+}
+
+impl Plant {
+    /// Builds the plant. `pv` supplies the array's output; `start_ms` is the first instant
+    /// (ms since the Unix epoch, UTC); `seed` drives every random draw.
+    pub fn new(
+        cfg: &PlantConfig,
+        pv: Box<dyn PvSource>,
+        start_ms: i64,
+        seed: u64,
+    ) -> Result<Plant, PlantError> {
+        let tz: Tz = cfg
+            .timezone
+            .parse()
+            .map_err(|_| PlantError::TimeZone(cfg.timezone.clone()))?;
+        let invalid = |what: &str, why: &str| PlantError::Invalid {
+            what: what.to_owned(),
+            why: why.to_owned(),
+        };
+        if cfg.grid.is_some() && cfg.off_grid.is_some() {
+            return Err(invalid("plant", "give `grid` or `off_grid`, not both"));
+        }
+        if cfg.off_grid.is_some() && cfg.battery.is_none() {
+            return Err(invalid("off_grid", "an off-grid site needs a `battery`"));
+        }
+        if !(cfg.meter.phases == 1 || cfg.meter.phases == 3) || !(cfg.meter.period > 0.0) {
+            return Err(invalid("meter", "phases must be 1 or 3 and the period > 0"));
+        }
+        if !(cfg.inverter.rating > 0.0) {
+            return Err(invalid("inverter", "rating must be > 0"));
+        }
+
+        let mut channels: Vec<String> = Vec::new();
+        let mut regulators: Vec<String> = Vec::new();
+        let mut drives = Vec::new();
+        let mut load_names: Vec<String> = Vec::new();
+        fn add_name(names: &mut Vec<String>, name: &str) -> Result<(), PlantError> {
+            if names.iter().any(|n| n == name) {
+                return Err(PlantError::DuplicateName(name.to_owned()));
+            }
+            names.push(name.to_owned());
+            Ok(())
+        }
+        let tank = match &cfg.tank {
+            Some(t) => {
+                add_name(&mut load_names, &t.name)?;
+                drives.push(Drive::Tank {
+                    channel: channels.len(),
+                    rated: t.element,
+                });
+                channels.push(t.name.clone());
+                Some(Tank::new(t, Stream::new(seed, 2))?)
+            }
+            None => None,
+        };
+        if let Some(p) = &cfg.pump {
+            add_name(&mut load_names, &p.name)?;
+            drives.push(Drive::Switched {
+                channel: channels.len(),
+                rated: p.rated.max(0.0),
+            });
+            channels.push(p.name.clone());
+        }
+        for l in &cfg.loads {
+            add_name(&mut load_names, &l.name)?;
+            let what = format!("load \"{}\"", l.name);
+            match l.kind {
+                LoadKind::Switched | LoadKind::Regulated => {
+                    let rated = l
+                        .rated
+                        .filter(|r| *r >= 0.0)
+                        .ok_or_else(|| invalid(&what, "needs `rated` (≥ 0)"))?;
+                    if !l.stages.is_empty() {
+                        return Err(invalid(&what, "`stages` is only for kind: stepped"));
+                    }
+                    if l.kind == LoadKind::Switched {
+                        drives.push(Drive::Switched {
+                            channel: channels.len(),
+                            rated,
+                        });
+                        channels.push(l.name.clone());
+                    } else {
+                        drives.push(Drive::Regulated {
+                            index: regulators.len(),
+                            rated,
+                        });
+                        regulators.push(l.name.clone());
+                    }
+                }
+                LoadKind::Stepped => {
+                    if l.stages.is_empty() || l.rated.is_some() {
+                        return Err(invalid(
+                            &what,
+                            "a stepped load needs `stages` (and no `rated`)",
+                        ));
+                    }
+                    drives.push(Drive::Stepped {
+                        first: channels.len(),
+                        stages: l.stages.iter().map(|s| s.0.max(0.0)).collect(),
+                    });
+                    for n in 1..=l.stages.len() {
+                        channels.push(format!("{}.{n}", l.name));
+                    }
+                }
+            }
+        }
+        let ev = match &cfg.ev {
+            Some(e) => {
+                add_name(&mut load_names, &e.name)?;
+                drives.push(Drive::Ev);
+                Some(Ev::new(e, Stream::new(seed, 3))?)
+            }
+            None => None,
+        };
+        let mut seen: Vec<&str> = Vec::new();
+        let mut wiring = Vec::with_capacity(cfg.wiring.len());
+        for name in &cfg.wiring {
+            let ch = channels.iter().position(|c| c == name).ok_or_else(|| {
+                PlantError::UnknownChannel {
+                    name: name.clone(),
+                    place: "wiring".to_owned(),
+                }
+            })?;
+            if seen.contains(&name.as_str()) {
+                return Err(invalid(
+                    "wiring",
+                    &format!("channel \"{name}\" is wired to two coils"),
+                ));
+            }
+            seen.push(name);
+            wiring.push(ch);
+        }
+        let mut wired = vec![false; channels.len()];
+        for &ch in &wiring {
+            wired[ch] = true;
+        }
+        let faults = Faults::new(
+            &cfg.faults,
+            start_ms,
+            |n| channels.iter().position(|c| c == n),
+            channels.len(),
+        )?;
+
+        let battery = cfg.battery.as_ref().map(Battery::new).transpose()?;
+        let charger = cfg
+            .off_grid
+            .as_ref()
+            .map(ChargeController::new)
+            .transpose()?;
+        let off_grid = cfg.off_grid.as_ref().map(|o| OffGrid {
+            disconnect_pct: o.disconnect_soc,
+            reconnect_pct: o.reconnect_soc,
+        });
+        let grid = if cfg.off_grid.is_some() {
+            None
+        } else {
+            let g = cfg.grid.clone().unwrap_or_default();
+            let mut outages: Vec<(i64, i64)> = g
+                .outages
+                .iter()
+                .map(|w| {
+                    let s = w.start.resolve(start_ms);
+                    (s, s + (w.duration * 1000.0).round() as i64)
+                })
+                .collect();
+            outages.sort_unstable();
+            Some(Grid {
+                voltage: g.voltage,
+                frequency: g.frequency,
+                outages,
+                next_change_ms: i64::MIN,
+            })
+        };
+
+        let n_loads = load_names.len();
+        let controls = Controls {
+            relays: vec![false; channels.len()],
+            regulators: vec![0.0; regulators.len()],
+            battery_w: 0.0,
+            ev_current_a: 0.0,
+            pv_limit_w: None,
+        };
+        let readings = Readings {
+            grid: (cfg.off_grid.is_none()).then(GridReading::default),
+            tank: tank.as_ref().map(|_| TankReading::default()),
+            battery: battery.as_ref().map(|_| BatteryReading::default()),
+            ev: ev.as_ref().map(|_| EvReading::default()),
+            loads_w: vec![0.0; n_loads],
+            contacts: vec![false; channels.len()],
+            ..Readings::default()
+        };
+        let bus = Bus::new(
+            crate::bus::Layout {
+                channels,
+                regulators,
+                loads: load_names.clone(),
+                wiring,
+                meter_phases: cfg.meter.phases,
+                inverter_rating_w: cfg.inverter.rating,
+                has_battery: battery.is_some(),
+                has_ev: ev.is_some(),
+                has_tank: tank.is_some(),
+                off_grid: off_grid.is_some(),
+            },
+            controls,
+            readings,
+            start_ms,
+        );
+        let mut plant = Plant {
+            tz,
+            now_ms: start_ms,
+            day: Day::containing(tz, start_ms),
+            pv,
+            house: House::new(&cfg.house, Stream::new(seed, 1))?,
+            tank,
+            battery,
+            charger,
+            ev,
+            drives,
+            load_names,
+            meter: Meter::new(&cfg.meter, Stream::new(seed, 4), start_ms),
+            grid,
+            off_grid,
+            faults,
+            flows: Flows {
+                loads: vec![Flow::default(); n_loads],
+                ..Flows::default()
+            },
+            bus,
+            wired,
+            load_w: vec![0.0; n_loads],
+            grid_available: cfg.off_grid.is_none(),
+            disconnected: false,
+            seed,
+            step_len: (f64::NAN, 0, 0.0, 0.0, 0.0),
+        };
+        plant.begin_day();
+        plant.update_grid_state();
+        plant.bus.set_faults(&plant.faults.active);
+        plant.refresh_readings(0.0);
+        Ok(plant)
+    }
+
+    fn begin_day(&mut self) {
+        self.day = Day::containing(self.tz, self.now_ms);
+        self.house.begin_day(&self.day);
+        if let Some(t) = &mut self.tank {
+            t.begin_day(&self.day);
+        }
+        if let Some(e) = &mut self.ev {
+            e.begin_day(&self.day);
+        }
+    }
+
+    fn update_grid_state(&mut self) {
+        let Some(g) = &mut self.grid else {
+            self.grid_available = false;
+            return;
+        };
+        let t = self.now_ms;
+        let mut up = true;
+        let mut next = i64::MAX;
+        for &(s, e) in &g.outages {
+            if s > t {
+                next = next.min(s);
+            } else if e > t {
+                up = false;
+                next = next.min(e);
+            }
+        }
+        g.next_change_ms = next;
+        self.grid_available = up;
+    }
+
+    /// Applies fault edges: a restarting device's outputs go to their power-on state
+    /// when the reboot begins and again when it ends.
+    fn apply_faults(&mut self) {
+        let edges = self.faults.update(self.now_ms);
+        if edges[faults::device_index(config::Device::Relays)] {
+            self.bus.reset_relay_module();
+        }
+        if edges[faults::device_index(config::Device::Inverter)] {
+            self.bus.reset_inverter();
+        }
+        self.bus.set_faults(&self.faults.active);
+    }
+
+    /// Advances the physics by `dt_s` seconds with the current controls.
+    pub fn step(&mut self, dt_s: f64) {
+        if dt_s != self.step_len.0 {
+            let dt_ms = ((dt_s * 1000.0).round() as i64).max(1);
+            let dt = dt_ms as f64 / 1000.0;
+            self.step_len = (dt_s, dt_ms, dt, dt / 3600.0, 1.0 / dt);
+        }
+        let (_, dt_ms, dt, dt_h, inv_dt) = self.step_len;
+        let t = self.now_ms;
+        if t >= self.day.end_ms {
+            self.begin_day();
+        }
+        if t >= self.faults.next_change_ms {
+            self.apply_faults();
+        }
+        if self.grid.as_ref().is_some_and(|g| t >= g.next_change_ms) {
+            self.update_grid_state();
+        }
+        if let Some(ev) = &mut self.ev {
+            ev.update_sessions(t);
+        }
+        let sec = self.day.local_sec(t);
+
+        // Demand, with the relay module's outputs forced off while it reboots.
+        let relays_down = self.faults.active.restarting[2];
+        let controls = &self.bus.controls;
+        let stuck = &self.faults.active.stuck;
+        let readings = &mut self.bus.readings;
+        for (i, contact) in readings.contacts.iter_mut().enumerate() {
+            let commanded = controls.relays[i] && !(relays_down && self.wired[i]);
+            *contact = stuck[i].unwrap_or(commanded);
+        }
+        let contacts = &readings.contacts;
+        let house_w = self.house.power(sec);
+        let mut demand = house_w;
+        for (w, drive) in self.load_w.iter_mut().zip(&self.drives) {
+            *w = match drive {
+                Drive::Tank { channel, rated } => match &self.tank {
+                    Some(tank) if contacts[*channel] && tank.calls_for_heat() => *rated,
+                    _ => 0.0,
+                },
+                Drive::Switched { channel, rated } => {
+                    if contacts[*channel] {
+                        *rated
+                    } else {
+                        0.0
+                    }
+                }
+                Drive::Stepped { first, stages } => stages
+                    .iter()
+                    .enumerate()
+                    .filter(|(k, _)| contacts[first + k])
+                    .map(|(_, p)| p)
+                    .sum(),
+                Drive::Regulated { index, rated } => {
+                    let pct = if relays_down {
+                        0.0
+                    } else {
+                        controls.regulators[*index]
+                    };
+                    let pct = if pct.is_finite() {
+                        pct.clamp(0.0, 100.0)
+                    } else {
+                        0.0
+                    };
+                    rated * pct / 100.0
+                }
+                Drive::Ev => match &mut self.ev {
+                    Some(ev) => {
+                        let cmd = if relays_down {
+                            0.0
+                        } else {
+                            controls.ev_current_a
+                        };
+                        ev.power_w(cmd, dt)
+                    }
+                    None => 0.0,
+                },
+            };
+            demand += *w;
+        }
+
+        // Supply.
+        let battery_cmd = if relays_down { 0.0 } else { controls.battery_w };
+        let mut limit = controls.pv_limit_w;
+        if self.faults.active.restarting[1] {
+            limit = Some(0.0);
+        }
+        let island = !self.grid_available;
+        let (charge_room, discharge_room) = match &self.battery {
+            Some(b) => {
+                let c = match &self.charger {
+                    Some(cc) => cc.charge_limit_w(b, inv_dt),
+                    None => b.charge_room_w(inv_dt),
+                };
+                (c, b.discharge_room_w(inv_dt))
+            }
+            None => (0.0, 0.0),
+        };
+        let mut served = 1.0;
+        let mut spilled = 0.0;
+        let (pv_sample, pv_w, battery_ac, grid_w);
+        if island {
+            if self.disconnected || self.battery.is_none() {
+                served = 0.0;
+            }
+            // A grid-tied inverter without a battery to form the island stops (anti-islanding).
+            let cap = if self.battery.is_none() {
+                0.0
+            } else {
+                served * demand + charge_room
+            };
+            let lim = limit.map_or(cap, |l| l.min(cap)).max(0.0);
+            pv_sample = self.pv.step(t, dt, Some(lim));
+            let mut pv = pv_sample.ac_w.max(0.0);
+            if pv > cap {
+                spilled = pv - cap;
+                pv = cap;
+            }
+            let mut net = pv - served * demand;
+            if net < 0.0 && -net > discharge_room {
+                // Overload: the island inverter trips and every load drops for this step.
+                served = 0.0;
+                net = pv;
+                if net > charge_room {
+                    spilled += net - charge_room;
+                    net = charge_room;
+                    pv = charge_room;
+                }
+            }
+            limit = Some(lim);
+            pv_w = pv;
+            battery_ac = net;
+            grid_w = 0.0;
+        } else {
+            pv_sample = self.pv.step(t, dt, limit);
+            pv_w = pv_sample.ac_w.max(0.0);
+            let cmd = if battery_cmd.is_finite() {
+                battery_cmd
+            } else {
+                0.0
+            };
+            battery_ac = cmd.clamp(-discharge_room, charge_room);
+            grid_w = demand + battery_ac - pv_w;
+        }
+
+        // Physics.
+        let (into, out, loss) = match &mut self.battery {
+            Some(b) => b.apply(battery_ac, dt),
+            None => (0.0, 0.0, 0.0),
+        };
+        if let (Some(cc), Some(b)) = (&mut self.charger, &self.battery) {
+            cc.update(b, dt, b.charge_room_w(inv_dt));
+        }
+        let unserved = (1.0 - served) * demand;
+        let f = &mut self.flows;
+        f.pv.add(pv_w, dt_h);
+        f.house.add(house_w * served, dt_h);
+        let shown = &mut self.bus.readings.loads_w;
+        for (i, drive) in self.drives.iter().enumerate() {
+            let w = self.load_w[i] * served;
+            match drive {
+                Drive::Tank { .. } => {
+                    if let Some(tank) = &mut self.tank {
+                        tank.step(w, dt, sec);
+                    }
+                }
+                Drive::Ev => {
+                    if let Some(ev) = &mut self.ev {
+                        ev.charge(w, dt);
+                    }
+                }
+                _ => {}
+            }
+            f.loads[i].add(w, dt_h);
+            shown[i] = w;
+        }
+        f.battery_charge.add(into, dt_h);
+        f.battery_discharge.add(out, dt_h);
+        f.losses.add(loss, dt_h);
+        f.grid_import.add(grid_w.max(0.0), dt_h);
+        f.grid_export.add((-grid_w).max(0.0), dt_h);
+        f.unserved.add(unserved, dt_h);
+        f.pv_spilled.add(spilled, dt_h);
+        f.pv_curtailed
+            .add((pv_sample.available_ac_w - pv_sample.ac_w).max(0.0), dt_h);
+
+        if let (Some(og), Some(b)) = (&self.off_grid, &self.battery) {
+            let soc = b.soc_pct();
+            if !self.disconnected && soc <= og.disconnect_pct {
+                self.disconnected = true;
+            } else if self.disconnected && soc >= og.reconnect_pct {
+                self.disconnected = false;
+            }
+        }
+
+        self.now_ms = t + dt_ms;
+        // The devices' clock reads the end of the step, so requests between steps and
+        // timers that expire now act before the next step.
+        self.bus.tick(self.now_ms);
+        let meter_silent = self.faults.active.meter_silent || self.faults.active.restarting[0];
+        self.meter.step(
+            self.now_ms,
+            dt_ms,
+            grid_w,
+            (f.grid_import.wh, f.grid_export.wh),
+            meter_silent,
+            self.faults.active.garbage[0],
+        );
+        self.bus.readings.pv.limit_w = limit;
+        self.bus.readings.pv.available_w = pv_sample.available_ac_w;
+        self.refresh_readings(battery_ac);
+        if served == 0.0 && demand > 0.0 {
+            self.bus.readings.loads_disconnected = true;
+        }
+    }
+
+    /// Copies the state into the readings, with faults applied (per-load powers are
+    /// copied in `step`).
+    #[inline]
+    fn refresh_readings(&mut self, battery_ac: f64) {
+        let f = &self.flows;
+        let r = &mut self.bus.readings;
+        r.grid_available = self.grid_available;
+        if let (Some(grid), Some(g)) = (&self.grid, &mut r.grid) {
+            let up = self.grid_available;
+            let shown = &self.meter.shown;
+            g.power_w = shown.w;
+            g.import_wh = shown.import_wh;
+            g.export_wh = shown.export_wh;
+            g.voltage_v = if up { grid.voltage } else { 0.0 };
+            g.frequency_hz = if up { grid.frequency } else { 0.0 };
+            g.updated_ms = shown.visible_ms;
+        }
+        r.pv.power_w = f.pv.w;
+        r.pv.energy_wh = f.pv.wh;
+        if let (Some(t), Some(tr)) = (&self.tank, &mut r.tank) {
+            tr.temp_c = t.temp_c;
+            // The tank is always load 0.
+            tr.heating = f.loads[0].w > 0.0;
+            tr.cutout_tripped = t.tripped;
+        }
+        if let (Some(b), Some(br)) = (&self.battery, &mut r.battery) {
+            br.soc_pct = b.soc_pct();
+            br.voltage_v = b.voltage_v();
+            br.current_a = b.current_a();
+            br.power_w = battery_ac;
+            br.charger = self
+                .charger
+                .as_ref()
+                .map_or(ChargerState::None, |c| c.state);
+        }
+        if let (Some(e), Some(er)) = (&self.ev, &mut r.ev) {
+            er.plugged = e.plugged;
+            er.soc_pct = e.soc_pct();
+            er.current_a = e.current_a;
+            // The EV is always the last load.
+            er.power_w = f.loads.last().map_or(0.0, |l| l.w);
+        }
+        r.loads_disconnected = self.disconnected;
+
+        // Faulty sensors and inverters report garbage (the meter garbles at the source).
+        let garbage = self.faults.active.garbage;
+        if garbage[1].is_none() && garbage[3].is_none() {
+            return;
+        }
+        let salt = self.now_ms as u64 ^ self.seed;
+        let g = |mode: Option<GarbageMode>, v: &mut f64, k: u64| {
+            if let Some(m) = mode {
+                *v = garble(m, *v, mix(salt ^ k));
+            }
+        };
+        g(garbage[1], &mut r.pv.power_w, 1);
+        g(garbage[1], &mut r.pv.available_w, 2);
+        if let Some(t) = &mut r.tank {
+            g(garbage[3], &mut t.temp_c, 3);
+        }
+        if let Some(b) = &mut r.battery {
+            g(garbage[3], &mut b.soc_pct, 4);
+            g(garbage[3], &mut b.voltage_v, 5);
+            g(garbage[3], &mut b.current_a, 6);
+        }
+    }
+
+    /// The current instant, ms since the Unix epoch.
+    pub fn now_ms(&self) -> i64 {
+        self.now_ms
+    }
+
+    /// What the actuators set.
+    pub fn controls_mut(&mut self) -> &mut Controls {
+        &mut self.bus.controls
+    }
+
+    /// The controls as set now.
+    pub fn controls(&self) -> &Controls {
+        &self.bus.controls
+    }
+
+    /// What meters and sensors report now.
+    pub fn readings(&self) -> &Readings {
+        &self.bus.readings
+    }
+
+    /// Physical truth for energy accounting.
+    pub fn flows(&self) -> &Flows {
+        &self.flows
+    }
+
+    /// The device bus (Modbus units and MQTT topics).
+    pub fn bus(&self) -> &Bus {
+        &self.bus
+    }
+
+    /// The device bus, for writes.
+    pub fn bus_mut(&mut self) -> &mut Bus {
+        &mut self.bus
+    }
+
+    /// Relay channel names, in [`Controls::relays`] order.
+    pub fn channels(&self) -> &[String] {
+        self.bus.layout().channels.as_slice()
+    }
+
+    /// Regulator names, in [`Controls::regulators`] order.
+    pub fn regulators(&self) -> &[String] {
+        self.bus.layout().regulators.as_slice()
+    }
+
+    /// Load names, in [`Flows::loads`] and [`Readings::loads_w`] order.
+    pub fn loads(&self) -> &[String] {
+        &self.load_names
+    }
+
+    /// Index of a relay channel by name.
+    pub fn channel(&self, name: &str) -> Option<usize> {
+        self.channels().iter().position(|c| c == name)
+    }
+
+    /// Index of a regulator by name.
+    pub fn regulator(&self, name: &str) -> Option<usize> {
+        self.regulators().iter().position(|c| c == name)
+    }
+
+    /// Index of a load by name.
+    pub fn load(&self, name: &str) -> Option<usize> {
+        self.load_names.iter().position(|c| c == name)
+    }
+
+    /// The tank's true water temperature (physics, not the sensor), °C.
+    pub fn tank_temp_c(&self) -> Option<f64> {
+        self.tank.as_ref().map(|t| t.temp_c)
+    }
+
+    /// Hot water drawn from the tank so far, litres at tank temperature.
+    pub fn hot_water_drawn_l(&self) -> Option<f64> {
+        self.tank.as_ref().map(|t| t.drawn_l)
+    }
+
+    /// The battery's true stored energy, Wh.
+    pub fn battery_stored_wh(&self) -> Option<f64> {
+        self.battery.as_ref().map(|b| b.stored_wh)
+    }
+}

@@ -1,0 +1,78 @@
+//! EV charger: plug-in sessions, minimum current, step rounding, stop at target.
+
+mod plant_support;
+
+use plant_support::{Constant, plant, run};
+
+const QUIET: &str = "house: { standby: 0W, activity: 0W, fridge: null, appliances: [] }\n";
+
+fn ev_plant(extra: &str) -> spillway_sim::plant::Plant {
+    // Plugged from 00:00:10 to 23:00 UTC every day.
+    let yaml = format!(
+        "{QUIET}ev:\n  capacity: 40kWh\n  min_current: 6A\n  max_current: 16A\n  step: 1A\n  phases: 1\n  voltage: 230V\n  efficiency: 90%\n  sessions: [{{ arrive: \"00:00:10\", depart: \"23:00\", soc: 50% }}]\n{extra}"
+    );
+    plant(&yaml, Constant(0.0))
+}
+
+#[test]
+fn below_the_minimum_current_the_car_does_not_charge() {
+    // IEC 61851-1 control pilot: 6 A is the lowest current a charger may offer (from
+    // memory); that cars do not charge below it is `common practice`.
+    let mut p = ev_plant("");
+    run(&mut p, 20, 1.0);
+    assert!(p.readings().ev.unwrap().plugged);
+    for (cmd, expect_a) in [
+        (0.0, 0.0),
+        (5.9, 0.0),
+        (6.0, 6.0),
+        (9.7, 9.0),
+        (16.0, 16.0),
+        (32.0, 16.0),
+    ] {
+        p.controls_mut().ev_current_a = cmd;
+        p.step(1.0);
+        let r = p.readings().ev.unwrap();
+        assert!(
+            (r.current_a - expect_a).abs() < 1e-9,
+            "cmd {cmd}: {}",
+            r.current_a
+        );
+        assert!((r.power_w - expect_a * 230.0).abs() < 1e-6);
+    }
+}
+
+#[test]
+fn a_car_that_is_not_plugged_in_draws_nothing() {
+    let mut p = ev_plant("");
+    p.controls_mut().ev_current_a = 16.0;
+    p.step(1.0); // 00:00:00, before arrival
+    assert!(!p.readings().ev.unwrap().plugged);
+    assert_eq!(p.readings().ev.unwrap().power_w, 0.0);
+    run(&mut p, 23 * 3600, 1.0);
+    assert!(!p.readings().ev.unwrap().plugged, "departed at 23:00");
+    assert_eq!(p.readings().ev.unwrap().power_w, 0.0);
+}
+
+#[test]
+fn charging_stops_at_the_target_and_the_energy_adds_up() {
+    let mut p = ev_plant("");
+    p.controls_mut().ev_current_a = 16.0;
+    run(&mut p, 12 * 3600, 1.0);
+    let r = p.readings().ev.unwrap();
+    assert!((r.soc_pct - 100.0).abs() < 1e-6, "{}", r.soc_pct);
+    assert_eq!(r.power_w, 0.0);
+    // 20 kWh into the car at 90 % takes 22.22 kWh from the site.
+    let ev_wh = p.flows().loads[0].wh;
+    assert!((ev_wh - 20_000.0 / 0.9).abs() < 0.01, "{ev_wh}");
+}
+
+#[test]
+fn three_phases_triple_the_power() {
+    let yaml = format!(
+        "{QUIET}ev:\n  capacity: 60kWh\n  phases: 3\n  sessions: [{{ arrive: \"00:00\", depart: \"23:00\", soc: 20% }}]\n"
+    );
+    let mut p = plant(&yaml, Constant(0.0));
+    p.controls_mut().ev_current_a = 10.0;
+    run(&mut p, 10, 1.0);
+    assert!((p.readings().ev.unwrap().power_w - 10.0 * 230.0 * 3.0).abs() < 1e-6);
+}
