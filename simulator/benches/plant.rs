@@ -17,11 +17,7 @@ impl PvSource for Stub {
         let s = (t_ms % 86_400_000) as f64 / 1000.0;
         let available = (4000.0 - (s - 43_200.0).abs() * (4000.0 / 21_600.0)).max(0.0);
         let ac = limit_w.map_or(available, |l| available.min(l));
-        PvSample {
-            ac_w: ac,
-            available_ac_w: available,
-            ..PvSample::default()
-        }
+        PvSample { ac_w: ac, available_ac_w: available, ..PvSample::default() }
     }
 }
 

@@ -71,9 +71,5 @@ fn voltage_rises_with_charge_and_sags_under_load() {
     assert!(discharging.voltage_v < rest.voltage_v);
     assert!(discharging.current_a < 0.0);
     // 16 LFP cells near 10 % rest around 3.2 V each (typical curve, from memory).
-    assert!(
-        (rest.voltage_v / 16.0 - 3.2).abs() < 0.05,
-        "{}",
-        rest.voltage_v
-    );
+    assert!((rest.voltage_v / 16.0 - 3.2).abs() < 0.05, "{}", rest.voltage_v);
 }

@@ -8,8 +8,8 @@ use spillway_sim::bus::sunspec::{
     COMMON, DER_AC_CONTROLS, IMMEDIATE_CONTROLS, INVERTER_1PH, METER_1PH, METER_WYE, Model,
 };
 use spillway_sim::bus::{
-    AVAILABLE_POWER, BusError, HR_BATTERY_W, HR_EV_CURRENT, HR_REGULATOR, INVERTER_UNIT,
-    METER_UNIT, RELAY_UNIT, SENSOR_UNIT, SUNSPEC_BASE, Table, ir,
+    AVAILABLE_POWER, BusError, HR_BATTERY_W, HR_EV_CURRENT, HR_REGULATOR, INVERTER_UNIT, METER_UNIT, RELAY_UNIT,
+    SENSOR_UNIT, SUNSPEC_BASE, Table, ir,
 };
 use spillway_sim::plant::Plant;
 
@@ -28,18 +28,7 @@ fn model_layouts_match_the_published_definitions() {
             assert_eq!(m.offset(name), Some(*off), "model {} point {name}", m.id);
         }
     };
-    check(
-        &COMMON,
-        66,
-        &[
-            ("Mn", 0),
-            ("Md", 16),
-            ("Opt", 32),
-            ("Vr", 40),
-            ("SN", 48),
-            ("DA", 64),
-        ],
-    );
+    check(&COMMON, 66, &[("Mn", 0), ("Md", 16), ("Opt", 32), ("Vr", 40), ("SN", 48), ("DA", 64)]);
     let meter = [
         ("A", 0),
         ("A_SF", 4),
@@ -115,11 +104,7 @@ fn words(p: &Plant, unit: u8, addr: u16, n: u16) -> Vec<u16> {
 
 /// Walks the SunSpec chain from 40000: (model id, data start address) until the end model.
 fn chain(p: &Plant, unit: u8) -> Vec<(u16, u16)> {
-    assert_eq!(
-        words(p, unit, SUNSPEC_BASE, 2),
-        [0x5375, 0x6E53],
-        "SunS marker"
-    );
+    assert_eq!(words(p, unit, SUNSPEC_BASE, 2), [0x5375, 0x6E53], "SunS marker");
     let mut at = SUNSPEC_BASE + 2;
     let mut out = Vec::new();
     loop {
@@ -144,20 +129,8 @@ fn the_chains_list_the_models_in_order() {
     let ids = |u| chain(&p, u).iter().map(|m| m.0).collect::<Vec<_>>();
     assert_eq!(ids(METER_UNIT), [1, 201]);
     assert_eq!(ids(INVERTER_UNIT), [1, 101, 123, 704]);
-    let three = Plant::new(
-        &fixture("battery_ev_house.yaml"),
-        Box::new(HalfSine::new(5e3)),
-        MONDAY_UTC_MS,
-        1,
-    )
-    .unwrap();
-    assert_eq!(
-        chain(&three, METER_UNIT)
-            .iter()
-            .map(|m| m.0)
-            .collect::<Vec<_>>(),
-        [1, 203]
-    );
+    let three = Plant::new(&fixture("battery_ev_house.yaml"), Box::new(HalfSine::new(5e3)), MONDAY_UTC_MS, 1).unwrap();
+    assert_eq!(chain(&three, METER_UNIT).iter().map(|m| m.0).collect::<Vec<_>>(), [1, 203]);
     let common = chain(&p, METER_UNIT)[0].1;
     let mn = words(&p, METER_UNIT, common, 16);
     assert_eq!(
@@ -184,20 +157,12 @@ fn meter_and_inverter_registers_encode_the_readings() {
     let exp = words(&p, METER_UNIT, m("TotWhExp"), 2);
     assert_eq!((u32::from(exp[0]) << 16) | u32::from(exp[1]), 1766);
     assert_eq!(words(&p, METER_UNIT, m("Hz"), 1)[0], 5000);
-    assert_eq!(
-        words(&p, METER_UNIT, m("PF"), 1)[0],
-        0x8000,
-        "not implemented"
-    );
+    assert_eq!(words(&p, METER_UNIT, m("PF"), 1)[0], 0x8000, "not implemented");
     let inv = chain(&p, INVERTER_UNIT)[1].1;
     let i = |point: &str| inv + INVERTER_1PH.offset(point).unwrap();
     assert_eq!(words(&p, INVERTER_UNIT, i("W"), 1)[0], 3000);
     assert_eq!(words(&p, INVERTER_UNIT, i("St"), 1)[0], 4, "MPPT");
-    assert_eq!(
-        words(&p, INVERTER_UNIT, i("DCV"), 1)[0],
-        0xFFFF,
-        "uint16 not implemented"
-    );
+    assert_eq!(words(&p, INVERTER_UNIT, i("DCV"), 1)[0], 0xFFFF, "uint16 not implemented");
     assert_eq!(words(&p, INVERTER_UNIT, AVAILABLE_POWER, 2), [0, 3000]);
 }
 
@@ -211,18 +176,12 @@ fn model_123_limit_drops_when_its_revert_timer_expires() {
     let mut p = sunspec_plant();
     let (m123, _) = control_starts(&p);
     let at = |point: &str| m123 + IMMEDIATE_CONTROLS.offset(point).unwrap();
-    assert_eq!(
-        words(&p, INVERTER_UNIT, at("WMaxLimPct_SF"), 1)[0] as i16,
-        -2
-    );
+    assert_eq!(words(&p, INVERTER_UNIT, at("WMaxLimPct_SF"), 1)[0] as i16, -2);
     // 50.00 % of 4 kW, for 60 s.
     let bus = p.bus_mut();
-    bus.write_register(INVERTER_UNIT, at("WMaxLimPct"), 5000)
-        .unwrap();
-    bus.write_register(INVERTER_UNIT, at("WMaxLimPct_RvrtTms"), 60)
-        .unwrap();
-    bus.write_register(INVERTER_UNIT, at("WMaxLim_Ena"), 1)
-        .unwrap();
+    bus.write_register(INVERTER_UNIT, at("WMaxLimPct"), 5000).unwrap();
+    bus.write_register(INVERTER_UNIT, at("WMaxLimPct_RvrtTms"), 60).unwrap();
+    bus.write_register(INVERTER_UNIT, at("WMaxLim_Ena"), 1).unwrap();
     p.step(1.0);
     assert_eq!(p.readings().pv.limit_w, Some(2000.0));
     assert_eq!(p.flows().pv.w, 2000.0);
@@ -233,9 +192,7 @@ fn model_123_limit_drops_when_its_revert_timer_expires() {
     assert_eq!(p.flows().pv.w, 3000.0);
     assert_eq!(words(&p, INVERTER_UNIT, at("WMaxLim_Ena"), 1)[0], 0);
     // Disconnect: no output at all.
-    p.bus_mut()
-        .write_register(INVERTER_UNIT, at("Conn"), 0)
-        .unwrap();
+    p.bus_mut().write_register(INVERTER_UNIT, at("Conn"), 0).unwrap();
     p.step(1.0);
     assert_eq!(p.flows().pv.w, 0.0);
 }
@@ -248,23 +205,13 @@ fn model_704_applies_its_reversion_limit_when_the_timer_expires() {
     assert_eq!(words(&p, INVERTER_UNIT, at("WMaxLim_SF"), 1)[0] as i16, -2);
     let bus = p.bus_mut();
     // Limit 75 %, reversion limit 20 %, reversion after 30 s without a refresh.
-    bus.write_registers(
-        INVERTER_UNIT,
-        at("WMaxLimPctEna"),
-        &[1, 7500, 2000, 1, 0, 30],
-    )
-    .unwrap();
+    bus.write_registers(INVERTER_UNIT, at("WMaxLimPctEna"), &[1, 7500, 2000, 1, 0, 30]).unwrap();
     p.step(1.0);
     assert_eq!(p.readings().pv.limit_w, Some(3000.0));
     run(&mut p, 10, 1.0);
-    assert_eq!(
-        words(&p, INVERTER_UNIT, at("WMaxLimPctRvrtRem"), 2),
-        [0, 19]
-    );
+    assert_eq!(words(&p, INVERTER_UNIT, at("WMaxLimPctRvrtRem"), 2), [0, 19]);
     // Refreshing the limit restarts the timer.
-    p.bus_mut()
-        .write_register(INVERTER_UNIT, at("WMaxLimPct"), 5000)
-        .unwrap();
+    p.bus_mut().write_register(INVERTER_UNIT, at("WMaxLimPct"), 5000).unwrap();
     run(&mut p, 29, 1.0);
     assert_eq!(p.readings().pv.limit_w, Some(2000.0));
     run(&mut p, 2, 1.0);
@@ -281,49 +228,20 @@ fn only_writable_addresses_are_accepted() {
     let mut p = sunspec_plant();
     let (m123, m704) = control_starts(&p);
     let bus = p.bus_mut();
-    let e = bus
-        .write_register(METER_UNIT, SUNSPEC_BASE + 80, 1)
-        .unwrap_err();
+    let e = bus.write_register(METER_UNIT, SUNSPEC_BASE + 80, 1).unwrap_err();
     assert!(matches!(e, BusError::IllegalDataAddress { .. }), "{e}");
     let sf = m123 + IMMEDIATE_CONTROLS.offset("WMaxLimPct_SF").unwrap();
-    assert!(matches!(
-        bus.write_register(INVERTER_UNIT, sf, 0),
-        Err(BusError::IllegalDataAddress { .. })
-    ));
+    assert!(matches!(bus.write_register(INVERTER_UNIT, sf, 0), Err(BusError::IllegalDataAddress { .. })));
     let rem = m704 + DER_AC_CONTROLS.offset("WMaxLimPctRvrtRem").unwrap();
-    assert!(matches!(
-        bus.write_register(INVERTER_UNIT, rem, 0),
-        Err(BusError::IllegalDataAddress { .. })
-    ));
+    assert!(matches!(bus.write_register(INVERTER_UNIT, rem, 0), Err(BusError::IllegalDataAddress { .. })));
     let ena = m123 + IMMEDIATE_CONTROLS.offset("WMaxLim_Ena").unwrap();
-    assert!(matches!(
-        bus.write_register(INVERTER_UNIT, ena, 2),
-        Err(BusError::IllegalDataValue { .. })
-    ));
-    assert!(matches!(
-        bus.write_register(SENSOR_UNIT, 0, 1),
-        Err(BusError::IllegalFunction { .. })
-    ));
-    assert!(matches!(
-        bus.write_coil(INVERTER_UNIT, 0, true),
-        Err(BusError::IllegalFunction { .. })
-    ));
-    assert!(matches!(
-        bus.read(9, HR, 0, 1),
-        Err(BusError::Timeout { unit: 9 })
-    ));
-    assert!(matches!(
-        bus.read(METER_UNIT, HR, SUNSPEC_BASE, 0),
-        Err(BusError::IllegalDataValue { .. })
-    ));
-    assert!(matches!(
-        bus.read(METER_UNIT, HR, 39_999, 2),
-        Err(BusError::IllegalDataAddress { .. })
-    ));
-    assert!(matches!(
-        bus.read(METER_UNIT, Table::InputRegisters, 0, 1),
-        Err(BusError::IllegalFunction { .. })
-    ));
+    assert!(matches!(bus.write_register(INVERTER_UNIT, ena, 2), Err(BusError::IllegalDataValue { .. })));
+    assert!(matches!(bus.write_register(SENSOR_UNIT, 0, 1), Err(BusError::IllegalFunction { .. })));
+    assert!(matches!(bus.write_coil(INVERTER_UNIT, 0, true), Err(BusError::IllegalFunction { .. })));
+    assert!(matches!(bus.read(9, HR, 0, 1), Err(BusError::Timeout { unit: 9 })));
+    assert!(matches!(bus.read(METER_UNIT, HR, SUNSPEC_BASE, 0), Err(BusError::IllegalDataValue { .. })));
+    assert!(matches!(bus.read(METER_UNIT, HR, 39_999, 2), Err(BusError::IllegalDataAddress { .. })));
+    assert!(matches!(bus.read(METER_UNIT, Table::InputRegisters, 0, 1), Err(BusError::IllegalFunction { .. })));
 }
 
 const RELAYS: &str = r#"
@@ -347,25 +265,11 @@ fn relay_module_coils_and_setpoints_round_trip() {
     bus.write_coils(RELAY_UNIT, 0, &[true, true, true]).unwrap();
     bus.write_register(RELAY_UNIT, HR_EV_CURRENT, 105).unwrap(); // 10.5 A
     let minus = (-1500i32) as u32;
-    bus.write_registers(
-        RELAY_UNIT,
-        HR_BATTERY_W,
-        &[(minus >> 16) as u16, minus as u16],
-    )
-    .unwrap();
+    bus.write_registers(RELAY_UNIT, HR_BATTERY_W, &[(minus >> 16) as u16, minus as u16]).unwrap();
     bus.write_register(RELAY_UNIT, HR_REGULATOR, 250).unwrap(); // 25.0 %
-    assert!(matches!(
-        bus.write_register(RELAY_UNIT, HR_REGULATOR, 1001),
-        Err(BusError::IllegalDataValue { .. })
-    ));
-    assert!(matches!(
-        bus.write_register(RELAY_UNIT, 5, 1),
-        Err(BusError::IllegalDataAddress { .. })
-    ));
-    assert!(matches!(
-        bus.write_coil(RELAY_UNIT, 3, true),
-        Err(BusError::IllegalDataAddress { .. })
-    ));
+    assert!(matches!(bus.write_register(RELAY_UNIT, HR_REGULATOR, 1001), Err(BusError::IllegalDataValue { .. })));
+    assert!(matches!(bus.write_register(RELAY_UNIT, 5, 1), Err(BusError::IllegalDataAddress { .. })));
+    assert!(matches!(bus.write_coil(RELAY_UNIT, 3, true), Err(BusError::IllegalDataAddress { .. })));
     let c = p.controls();
     assert_eq!(c.ev_current_a, 10.5);
     assert_eq!(c.battery_w, -1500.0);
@@ -373,76 +277,32 @@ fn relay_module_coils_and_setpoints_round_trip() {
     let ch = |n: &str| p.channel(n).unwrap();
     assert!(c.relays[ch("pump")] && c.relays[ch("tank")] && c.relays[ch("patio.2")]);
     assert!(!c.relays[ch("patio.1")]);
-    assert_eq!(
-        p.bus().read_registers(RELAY_UNIT, HR, 0, 11).unwrap(),
-        [105, 0xFFFF, 0xFA24, 0, 0, 0, 0, 0, 0, 0, 250]
-    );
+    assert_eq!(p.bus().read_registers(RELAY_UNIT, HR, 0, 11).unwrap(), [105, 0xFFFF, 0xFA24, 0, 0, 0, 0, 0, 0, 0, 250]);
     p.step(1.0);
-    assert_eq!(
-        p.bus().read_bits(RELAY_UNIT, Table::Coils, 0, 3).unwrap(),
-        [true; 3]
-    );
-    assert_eq!(
-        p.bus()
-            .read_bits(RELAY_UNIT, Table::DiscreteInputs, 0, 3)
-            .unwrap(),
-        [true; 3]
-    );
+    assert_eq!(p.bus().read_bits(RELAY_UNIT, Table::Coils, 0, 3).unwrap(), [true; 3]);
+    assert_eq!(p.bus().read_bits(RELAY_UNIT, Table::DiscreteInputs, 0, 3).unwrap(), [true; 3]);
     // Sensors: per-load power in load order (tank, pump, heater, patio, ev).
-    let s = p
-        .bus()
-        .read_registers(SENSOR_UNIT, Table::InputRegisters, ir::LOAD_POWER, 5)
-        .unwrap();
+    let s = p.bus().read_registers(SENSOR_UNIT, Table::InputRegisters, ir::LOAD_POWER, 5).unwrap();
     assert_eq!(s, [2000, 750, 500, 500, 2300]);
-    let t = p
-        .bus()
-        .read_registers(SENSOR_UNIT, Table::InputRegisters, ir::TANK_TEMP, 2)
-        .unwrap();
+    let t = p.bus().read_registers(SENSOR_UNIT, Table::InputRegisters, ir::TANK_TEMP, 2).unwrap();
     assert_eq!((t[0] as i16, t[1]), (300, 1));
-    let b = p
-        .bus()
-        .read_registers(SENSOR_UNIT, Table::InputRegisters, ir::BATTERY_SOC, 5)
-        .unwrap();
+    let b = p.bus().read_registers(SENSOR_UNIT, Table::InputRegisters, ir::BATTERY_SOC, 5).unwrap();
     assert_eq!(b[0], 500);
     assert_eq!(b[3] as i16, -1500);
-    assert_eq!(
-        p.bus()
-            .read_registers(SENSOR_UNIT, Table::InputRegisters, ir::GRID_AVAILABLE, 1)
-            .unwrap(),
-        [1]
-    );
-    assert_eq!(
-        p.bus()
-            .read_registers(SENSOR_UNIT, Table::InputRegisters, ir::EV_CURRENT, 1)
-            .unwrap(),
-        [100]
-    );
+    assert_eq!(p.bus().read_registers(SENSOR_UNIT, Table::InputRegisters, ir::GRID_AVAILABLE, 1).unwrap(), [1]);
+    assert_eq!(p.bus().read_registers(SENSOR_UNIT, Table::InputRegisters, ir::EV_CURRENT, 1).unwrap(), [100]);
 }
 
 #[test]
 fn mqtt_publishes_readings_and_takes_commands() {
     let mut p = plant(RELAYS, Constant(1000.0));
-    p.bus_mut()
-        .mqtt_command("sim/relay/pump/set", "on")
-        .unwrap();
-    p.bus_mut()
-        .mqtt_command("sim/regulator/heater/set", "50")
-        .unwrap();
-    p.bus_mut()
-        .mqtt_command("sim/inverter/limit/set", "400")
-        .unwrap();
-    p.bus_mut()
-        .mqtt_command("sim/battery/power/set", "-200")
-        .unwrap();
+    p.bus_mut().mqtt_command("sim/relay/pump/set", "on").unwrap();
+    p.bus_mut().mqtt_command("sim/regulator/heater/set", "50").unwrap();
+    p.bus_mut().mqtt_command("sim/inverter/limit/set", "400").unwrap();
+    p.bus_mut().mqtt_command("sim/battery/power/set", "-200").unwrap();
     p.bus_mut().mqtt_command("sim/ev/current/set", "6").unwrap();
-    assert!(matches!(
-        p.bus_mut().mqtt_command("sim/relay/pump/set", "maybe"),
-        Err(BusError::BadPayload { .. })
-    ));
-    assert!(matches!(
-        p.bus_mut().mqtt_command("sim/relay/garage/set", "on"),
-        Err(BusError::UnknownTopic(_))
-    ));
+    assert!(matches!(p.bus_mut().mqtt_command("sim/relay/pump/set", "maybe"), Err(BusError::BadPayload { .. })));
+    assert!(matches!(p.bus_mut().mqtt_command("sim/relay/garage/set", "on"), Err(BusError::UnknownTopic(_))));
     p.step(1.0);
     let snap = p.bus().mqtt_snapshot();
     let get = |t: &str| snap.iter().find(|(k, _)| k == t).map(|(_, v)| v.as_str());
@@ -456,8 +316,6 @@ fn mqtt_publishes_readings_and_takes_commands() {
     // 750 + 1000 + 1380 (EV) − 200 (battery) − 400 (PV) = 2530 W import.
     assert_eq!(get("sim/meter/power"), Some("2530"));
     assert_eq!(get("sim/grid/available"), Some("on"));
-    p.bus_mut()
-        .mqtt_command("sim/inverter/limit/set", "none")
-        .unwrap();
+    p.bus_mut().mqtt_command("sim/inverter/limit/set", "none").unwrap();
     assert_eq!(p.controls().pv_limit_w, None);
 }

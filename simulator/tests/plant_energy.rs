@@ -6,20 +6,10 @@ use plant_support::{HalfSine, MONDAY_UTC_MS, fixture};
 use proptest::prelude::*;
 use spillway_sim::plant::Plant;
 
-const FIXTURES: [&str; 3] = [
-    "zero_export_house.yaml",
-    "battery_ev_house.yaml",
-    "offgrid_cabin.yaml",
-];
+const FIXTURES: [&str; 3] = ["zero_export_house.yaml", "battery_ev_house.yaml", "offgrid_cabin.yaml"];
 
 fn build(name: &str, seed: u64) -> Plant {
-    Plant::new(
-        &fixture(name),
-        Box::new(HalfSine::new(6000.0)),
-        MONDAY_UTC_MS,
-        seed,
-    )
-    .unwrap()
+    Plant::new(&fixture(name), Box::new(HalfSine::new(6000.0)), MONDAY_UTC_MS, seed).unwrap()
 }
 
 #[test]
@@ -35,11 +25,9 @@ fn every_fixture_builds() {
 
 #[test]
 fn unknown_keys_are_rejected() {
-    let e = spillway_sim::plant::PlantConfig::from_yaml(
-        "tank: { volume: 150L, element: 3kW, colour: red }",
-    )
-    .unwrap_err()
-    .to_string();
+    let e = spillway_sim::plant::PlantConfig::from_yaml("tank: { volume: 150L, element: 3kW, colour: red }")
+        .unwrap_err()
+        .to_string();
     assert!(e.contains("colour"), "{e}");
     let e = spillway_sim::plant::PlantConfig::from_yaml(
         "faults: [{ kind: meter_silent, start: 1h, duration: 1min, device: meter }]",
@@ -98,20 +86,8 @@ struct Setting {
 }
 
 fn setting() -> impl Strategy<Value = Setting> {
-    (
-        any::<u8>(),
-        0.0..100.0f64,
-        -6000.0..6000.0f64,
-        0.0..20.0f64,
-        proptest::option::of(0.0..8000.0f64),
-    )
-        .prop_map(|(relays, regulator, battery_w, ev_a, limit)| Setting {
-            relays,
-            regulator,
-            battery_w,
-            ev_a,
-            limit,
-        })
+    (any::<u8>(), 0.0..100.0f64, -6000.0..6000.0f64, 0.0..20.0f64, proptest::option::of(0.0..8000.0f64))
+        .prop_map(|(relays, regulator, battery_w, ev_a, limit)| Setting { relays, regulator, battery_w, ev_a, limit })
 }
 
 proptest! {

@@ -21,22 +21,11 @@ fn below_the_minimum_current_the_car_does_not_charge() {
     let mut p = ev_plant("");
     run(&mut p, 20, 1.0);
     assert!(p.readings().ev.unwrap().plugged);
-    for (cmd, expect_a) in [
-        (0.0, 0.0),
-        (5.9, 0.0),
-        (6.0, 6.0),
-        (9.7, 9.0),
-        (16.0, 16.0),
-        (32.0, 16.0),
-    ] {
+    for (cmd, expect_a) in [(0.0, 0.0), (5.9, 0.0), (6.0, 6.0), (9.7, 9.0), (16.0, 16.0), (32.0, 16.0)] {
         p.controls_mut().ev_current_a = cmd;
         p.step(1.0);
         let r = p.readings().ev.unwrap();
-        assert!(
-            (r.current_a - expect_a).abs() < 1e-9,
-            "cmd {cmd}: {}",
-            r.current_a
-        );
+        assert!((r.current_a - expect_a).abs() < 1e-9, "cmd {cmd}: {}", r.current_a);
         assert!((r.power_w - expect_a * 230.0).abs() < 1e-6);
     }
 }

@@ -21,16 +21,8 @@ fn a_silent_meter_freezes_and_times_out() {
     run(&mut p, 120, 1.0);
     let during = p.readings().grid.unwrap();
     assert_eq!(during.updated_ms, before.updated_ms, "no new readings");
-    assert_eq!(
-        p.bus().read(METER_UNIT, HR, SUNSPEC_BASE, 2),
-        Err(BusError::Timeout { unit: METER_UNIT })
-    );
-    assert!(
-        p.bus()
-            .mqtt_snapshot()
-            .iter()
-            .all(|(t, _)| !t.starts_with("sim/meter/"))
-    );
+    assert_eq!(p.bus().read(METER_UNIT, HR, SUNSPEC_BASE, 2), Err(BusError::Timeout { unit: METER_UNIT }));
+    assert!(p.bus().mqtt_snapshot().iter().all(|(t, _)| !t.starts_with("sim/meter/")));
     run(&mut p, 200, 1.0);
     assert_eq!(p.readings().grid.unwrap().updated_ms, p.now_ms());
     assert!(p.bus().read(METER_UNIT, HR, SUNSPEC_BASE, 2).is_ok());
@@ -46,27 +38,13 @@ fn a_restarting_relay_module_drops_its_outputs_and_forgets_its_coils() {
     let heater = p.channel("heater").unwrap();
     p.controls_mut().relays[heater] = true; // not on the relay module
     run(&mut p, 61, 1.0);
-    assert_eq!(
-        p.readings().loads_w[0],
-        0.0,
-        "pump off while the module reboots"
-    );
-    assert_eq!(
-        p.readings().loads_w[1],
-        1000.0,
-        "an unwired load is unaffected"
-    );
-    assert_eq!(
-        p.bus().read(RELAY_UNIT, Table::Coils, 0, 1),
-        Err(BusError::ServerDeviceFailure { unit: RELAY_UNIT })
-    );
+    assert_eq!(p.readings().loads_w[0], 0.0, "pump off while the module reboots");
+    assert_eq!(p.readings().loads_w[1], 1000.0, "an unwired load is unaffected");
+    assert_eq!(p.bus().read(RELAY_UNIT, Table::Coils, 0, 1), Err(BusError::ServerDeviceFailure { unit: RELAY_UNIT }));
     assert!(p.bus_mut().write_coil(RELAY_UNIT, 0, true).is_err());
     run(&mut p, 40, 1.0);
     // Back, at its power-on state: the coil is open until the controller re-asserts it.
-    assert_eq!(
-        p.bus().read_bits(RELAY_UNIT, Table::Coils, 0, 1).unwrap(),
-        [false]
-    );
+    assert_eq!(p.bus().read_bits(RELAY_UNIT, Table::Coils, 0, 1).unwrap(), [false]);
     assert_eq!(p.readings().loads_w[0], 0.0);
     p.bus_mut().write_coil(RELAY_UNIT, 0, true).unwrap();
     p.step(1.0);
@@ -80,17 +58,12 @@ fn a_restarting_inverter_stops_then_forgets_its_limit() {
     );
     let mut p = plant(&yaml, Constant(3000.0));
     let pct = SUNSPEC_BASE + 2 + 68 + 52 + 2 + IMMEDIATE_CONTROLS.offset("WMaxLimPct").unwrap();
-    p.bus_mut()
-        .write_registers(INVERTER_UNIT, pct, &[2500, 0, 0, 0, 1])
-        .unwrap(); // 25 %, enabled
+    p.bus_mut().write_registers(INVERTER_UNIT, pct, &[2500, 0, 0, 0, 1]).unwrap(); // 25 %, enabled
     p.step(1.0);
     assert_eq!(p.flows().pv.w, 1000.0);
     run(&mut p, 70, 1.0);
     assert_eq!(p.flows().pv.w, 0.0, "no output while rebooting");
-    assert!(matches!(
-        p.bus().read(INVERTER_UNIT, HR, SUNSPEC_BASE, 2),
-        Err(BusError::ServerDeviceFailure { .. })
-    ));
+    assert!(matches!(p.bus().read(INVERTER_UNIT, HR, SUNSPEC_BASE, 2), Err(BusError::ServerDeviceFailure { .. })));
     run(&mut p, 30, 1.0);
     assert_eq!(p.readings().pv.limit_w, None, "limit lost with the reboot");
     assert_eq!(p.flows().pv.w, 3000.0);
@@ -104,65 +77,29 @@ fn a_stuck_relay_ignores_its_coil() {
     let mut p = plant(&yaml, Constant(0.0));
     p.bus_mut().write_coil(RELAY_UNIT, 0, false).unwrap();
     run(&mut p, 120, 1.0);
-    assert_eq!(
-        p.readings().loads_w[0],
-        750.0,
-        "welded contact keeps the pump running"
-    );
-    assert_eq!(
-        p.bus().read_bits(RELAY_UNIT, Table::Coils, 0, 1).unwrap(),
-        [false]
-    );
-    assert_eq!(
-        p.bus()
-            .read_bits(RELAY_UNIT, Table::DiscreteInputs, 0, 1)
-            .unwrap(),
-        [true]
-    );
+    assert_eq!(p.readings().loads_w[0], 750.0, "welded contact keeps the pump running");
+    assert_eq!(p.bus().read_bits(RELAY_UNIT, Table::Coils, 0, 1).unwrap(), [false]);
+    assert_eq!(p.bus().read_bits(RELAY_UNIT, Table::DiscreteInputs, 0, 1).unwrap(), [true]);
     run(&mut p, 600, 1.0);
-    assert_eq!(
-        p.readings().loads_w[0],
-        0.0,
-        "freed, it follows the coil again"
-    );
+    assert_eq!(p.readings().loads_w[0], 0.0, "freed, it follows the coil again");
 }
 
 #[test]
 fn garbage_reaches_the_readings_and_the_wire() {
     for (mode, check) in [
-        (
-            "nan",
-            (|w: f64, reg: u16| w.is_nan() && reg == 0x8000) as fn(f64, u16) -> bool,
-        ),
-        ("spike", |w, reg| {
-            w.abs() == 1e6 && (reg == 0x7FFF || reg == 0x8001)
-        }),
-        ("random", |w, _| {
-            w.is_finite() && w.abs() <= 50_000.0 && w != 500.0
-        }),
+        ("nan", (|w: f64, reg: u16| w.is_nan() && reg == 0x8000) as fn(f64, u16) -> bool),
+        ("spike", |w, reg| w.abs() == 1e6 && (reg == 0x7FFF || reg == 0x8001)),
+        ("random", |w, _| w.is_finite() && w.abs() <= 50_000.0 && w != 500.0),
     ] {
-        let yaml = format!(
-            "{QUIET}faults: [{{ kind: garbage, device: meter, mode: {mode}, start: 10s, duration: 10s }}]\n"
-        );
+        let yaml =
+            format!("{QUIET}faults: [{{ kind: garbage, device: meter, mode: {mode}, start: 10s, duration: 10s }}]\n");
         let mut p = plant(&yaml, Constant(0.0));
         run(&mut p, 15, 1.0);
         let w = p.readings().grid.unwrap().power_w;
-        let reg = p
-            .bus()
-            .read_registers(
-                METER_UNIT,
-                HR,
-                METER_DATA + METER_1PH.offset("W").unwrap(),
-                1,
-            )
-            .unwrap()[0];
+        let reg = p.bus().read_registers(METER_UNIT, HR, METER_DATA + METER_1PH.offset("W").unwrap(), 1).unwrap()[0];
         assert!(check(w, reg), "{mode}: {w} W, register {reg:#06x}");
         run(&mut p, 10, 1.0);
-        assert_eq!(
-            p.readings().grid.unwrap().power_w,
-            500.0,
-            "{mode}: clean again"
-        );
+        assert_eq!(p.readings().grid.unwrap().power_w, 500.0, "{mode}: clean again");
     }
 }
 
@@ -209,34 +146,17 @@ fn sensor_garbage_and_a_restarting_sensor_module() {
     run(&mut p, 15, 1.0);
     assert!(p.readings().tank.unwrap().temp_c.is_nan());
     let ir = Table::InputRegisters;
-    assert_eq!(
-        p.bus()
-            .read_registers(spillway_sim::bus::SENSOR_UNIT, ir, 0, 1)
-            .unwrap(),
-        [0x8000]
-    );
+    assert_eq!(p.bus().read_registers(spillway_sim::bus::SENSOR_UNIT, ir, 0, 1).unwrap(), [0x8000]);
     run(&mut p, 20, 1.0);
     assert!((p.readings().tank.unwrap().temp_c - 50.0).abs() < 0.1);
     assert!(matches!(
         p.bus().read(spillway_sim::bus::SENSOR_UNIT, ir, 0, 1),
         Err(BusError::ServerDeviceFailure { .. })
     ));
-    assert!(
-        p.bus()
-            .mqtt_snapshot()
-            .iter()
-            .all(|(t, _)| !t.starts_with("sim/tank/"))
-    );
+    assert!(p.bus().mqtt_snapshot().iter().all(|(t, _)| !t.starts_with("sim/tank/")));
     run(&mut p, 20, 1.0);
     let frozen = p.readings().grid.unwrap().updated_ms;
-    assert!(matches!(
-        p.bus().read(METER_UNIT, HR, SUNSPEC_BASE, 2),
-        Err(BusError::ServerDeviceFailure { .. })
-    ));
+    assert!(matches!(p.bus().read(METER_UNIT, HR, SUNSPEC_BASE, 2), Err(BusError::ServerDeviceFailure { .. })));
     run(&mut p, 5, 1.0);
-    assert_eq!(
-        p.readings().grid.unwrap().updated_ms,
-        frozen,
-        "a rebooting meter reports nothing"
-    );
+    assert_eq!(p.readings().grid.unwrap().updated_ms, frozen, "a rebooting meter reports nothing");
 }

@@ -49,29 +49,19 @@ fn the_charge_controller_throttles_the_array_at_float() {
     // and the rest is curtailed.
     let f = p.flows();
     assert!((f.pv.w - 100.0).abs() < 5.0, "pv {} W", f.pv.w);
-    assert!(
-        f.pv_curtailed.w > 2800.0,
-        "curtailed {} W",
-        f.pv_curtailed.w
-    );
+    assert!(f.pv_curtailed.w > 2800.0, "curtailed {} W", f.pv_curtailed.w);
     assert!(p.readings().pv.limit_w.is_some());
     // A dump load wins the curtailed power back.
     p.controls_mut().regulators[0] = 100.0;
     p.step(1.0);
-    assert!(
-        (p.flows().pv.w - 1600.0).abs() < 5.0,
-        "pv {} W",
-        p.flows().pv.w
-    );
+    assert!((p.flows().pv.w - 1600.0).abs() < 5.0, "pv {} W", p.flows().pv.w);
     assert!(p.flows().balance_error_wh().abs() < 1e-6);
     assert_eq!(p.flows().unserved.wh, 0.0);
 }
 
 #[test]
 fn the_low_voltage_disconnect_drops_loads_and_reconnects_on_charge() {
-    let yaml = CABIN
-        .replace("initial_soc: 90%", "initial_soc: 11%")
-        .replace("standby: 100W", "standby: 500W");
+    let yaml = CABIN.replace("initial_soc: 90%", "initial_soc: 11%").replace("standby: 100W", "standby: 500W");
     let mut p = plant(&yaml, HalfSine::new(3000.0));
     run(&mut p, 3 * 3600, 1.0);
     let r = p.readings();
@@ -80,10 +70,7 @@ fn the_low_voltage_disconnect_drops_loads_and_reconnects_on_charge() {
     assert_eq!(p.flows().house.w, 0.0);
     assert!((p.flows().unserved.w - 500.0).abs() < 1e-6);
     run(&mut p, 15 * 3600, 1.0);
-    assert!(
-        !p.readings().loads_disconnected,
-        "reconnected after a sunny day"
-    );
+    assert!(!p.readings().loads_disconnected, "reconnected after a sunny day");
     assert!(p.flows().unserved.wh > 0.0);
     assert!(p.flows().balance_error_wh().abs() < 1e-6);
 }
@@ -125,10 +112,8 @@ fn an_outage_with_sun_caps_pv_at_what_the_island_absorbs() {
 
 #[test]
 fn without_a_battery_an_outage_is_a_blackout() {
-    let yaml = BACKED_UP.replace(
-        "battery: { capacity: 10kWh, max_charge: 5kW, max_discharge: 5kW, initial_soc: 50% }\n",
-        "",
-    );
+    let yaml =
+        BACKED_UP.replace("battery: { capacity: 10kWh, max_charge: 5kW, max_discharge: 5kW, initial_soc: 50% }\n", "");
     let mut p = plant(&yaml, Constant(4000.0));
     run(&mut p, 5400, 1.0);
     // Anti-islanding: the PV inverter stops, nothing is served.

@@ -32,16 +32,10 @@ fn heating_a_full_tank_takes_m_c_delta_t() {
     // Source: Q = m·c·ΔT (calorimetry; c from the handbook value above).
     let expected_wh = 150.0 * C_WATER * 40.0 / 3600.0; // 6976.7 Wh
     let element_wh = p.flows().loads[0].wh;
-    assert!(
-        (element_wh - expected_wh).abs() / expected_wh < 1e-3,
-        "{element_wh} vs {expected_wh}"
-    );
+    assert!((element_wh - expected_wh).abs() / expected_wh < 1e-3, "{element_wh} vs {expected_wh}");
     // t = m·c·ΔT / P = 8372 s; the thermostat opens within a step of it.
     let expected_s = 150.0 * C_WATER * 40.0 / 3000.0;
-    assert!(
-        (f64::from(seconds) - expected_s).abs() <= 2.0,
-        "{seconds} s vs {expected_s} s"
-    );
+    assert!((f64::from(seconds) - expected_s).abs() <= 2.0, "{seconds} s vs {expected_s} s");
     assert!((p.tank_temp_c().unwrap() - 60.0).abs() < 0.01);
 }
 
@@ -59,10 +53,7 @@ fn standing_loss_follows_newtons_law_of_cooling() {
         let t = f64::from(hour) * 3600.0;
         let analytic = ta + (t0 - ta) * (-ua * t / (m * C_WATER)).exp();
         let sim = p.tank_temp_c().unwrap();
-        assert!(
-            (sim - analytic).abs() < 1e-6,
-            "hour {hour}: {sim} vs {analytic}"
-        );
+        assert!((sim - analytic).abs() < 1e-6, "hour {hour}: {sim} vs {analytic}");
     }
     // The same with a coarse 60 s step: the update is exact for any step length.
     let mut q = tank_plant(&format!(

@@ -15,8 +15,8 @@ use crate::plant::faults::Active;
 use crate::plant::noise::mix;
 use crate::plant::{Controls, Readings};
 use sunspec::{
-    COMMON, DER_AC_CONTROLS, IMMEDIATE_CONTROLS, INVERTER_1PH, Image, METER_1PH, METER_WYE, acc32,
-    i16_sf, sf, string, u16_sf, u32_words, words_u32,
+    COMMON, DER_AC_CONTROLS, IMMEDIATE_CONTROLS, INVERTER_1PH, Image, METER_1PH, METER_WYE, acc32, i16_sf, sf, string,
+    u16_sf, u32_words, words_u32,
 };
 
 /// Unit id of the SunSpec grid meter.
@@ -125,9 +125,7 @@ pub enum BusError {
         table: Table,
     },
     /// Modbus exception 2: an address in the range does not exist or is not writable.
-    #[error(
-        "unit {unit}: illegal data address, {table} {address} (+{count}) is outside the map or read-only"
-    )]
+    #[error("unit {unit}: illegal data address, {table} {address} (+{count}) is outside the map or read-only")]
     IllegalDataAddress {
         /// Unit addressed.
         unit: u8,
@@ -239,25 +237,15 @@ impl InverterControls {
         for (k, s) in [-3i16, -2, 0, -2, 0, -2].iter().enumerate() {
             m704[off::C704_SF + k] = sf(*s);
         }
-        InverterControls {
-            m123,
-            m704,
-            lim123_until: None,
-            conn_until: None,
-            lim704_until: None,
-        }
+        InverterControls { m123, m704, lim123_until: None, conn_until: None, lim704_until: None }
     }
 
     fn next_deadline(&self) -> i64 {
-        [
-            self.lim123_until,
-            self.conn_until.map(|c| c.0),
-            self.lim704_until,
-        ]
-        .into_iter()
-        .flatten()
-        .min()
-        .unwrap_or(i64::MAX)
+        [self.lim123_until, self.conn_until.map(|c| c.0), self.lim704_until]
+            .into_iter()
+            .flatten()
+            .min()
+            .unwrap_or(i64::MAX)
     }
 
     /// The active-power limit in W these registers ask for.
@@ -292,18 +280,10 @@ pub struct Bus {
 
 fn bounds(unit: u8, table: Table, address: u16, count: u16, max: u16) -> Result<(), BusError> {
     if count == 0 || count > max {
-        return Err(BusError::IllegalDataValue {
-            unit,
-            what: format!("count {count} is outside 1..={max}"),
-        });
+        return Err(BusError::IllegalDataValue { unit, what: format!("count {count} is outside 1..={max}") });
     }
     if u32::from(address) + u32::from(count) > 65_536 {
-        return Err(BusError::IllegalDataAddress {
-            unit,
-            table,
-            address,
-            count,
-        });
+        return Err(BusError::IllegalDataAddress { unit, table, address, count });
     }
     Ok(())
 }
@@ -414,28 +394,13 @@ impl Bus {
     pub fn read(&self, unit: u8, table: Table, address: u16, count: u16) -> Result<Data, BusError> {
         self.check_unit(unit)?;
         let is_bits = matches!(table, Table::Coils | Table::DiscreteInputs);
-        bounds(
-            unit,
-            table,
-            address,
-            count,
-            if is_bits { 2000 } else { 125 },
-        )?;
-        let bad_address = BusError::IllegalDataAddress {
-            unit,
-            table,
-            address,
-            count,
-        };
+        bounds(unit, table, address, count, if is_bits { 2000 } else { 125 })?;
+        let bad_address = BusError::IllegalDataAddress { unit, table, address, count };
         let (first, words) = match (unit, table) {
             (METER_UNIT, Table::HoldingRegisters) => (SUNSPEC_BASE, self.meter_image()),
             (INVERTER_UNIT, Table::HoldingRegisters) if address >= AVAILABLE_POWER => {
                 let w = self.readings.pv.available_w;
-                let raw = if w.is_finite() {
-                    w.clamp(0.0, 4e9).round() as u32
-                } else {
-                    u32::MAX
-                };
+                let raw = if w.is_finite() { w.clamp(0.0, 4e9).round() as u32 } else { u32::MAX };
                 (AVAILABLE_POWER, u32_words(raw).to_vec())
             }
             (INVERTER_UNIT, Table::HoldingRegisters) => (SUNSPEC_BASE, self.inverter_image()),
@@ -448,11 +413,8 @@ impl Bus {
                     .iter()
                     .enumerate()
                     .map(|(k, &ch)| {
-                        let bit = if table == Table::Coils {
-                            self.controls.relays[ch]
-                        } else {
-                            self.readings.contacts[ch]
-                        };
+                        let bit =
+                            if table == Table::Coils { self.controls.relays[ch] } else { self.readings.contacts[ch] };
                         match self.faults.garbage[2] {
                             Some(GarbageMode::Random) => {
                                 mix(self.now_ms as u64 ^ (u64::from(address) + k as u64)) & 1 == 1
@@ -477,9 +439,7 @@ impl Bus {
             // Garbage on the wire: on top of the corrupted readings, the relay module's
             // registers (which carry no readings) and any random-mode unit scramble.
             for (k, word) in out.iter_mut().enumerate() {
-                let h = mix(self.now_ms as u64
-                    ^ (u64::from(unit) << 32)
-                    ^ (u64::from(address) + k as u64));
+                let h = mix(self.now_ms as u64 ^ (u64::from(unit) << 32) ^ (u64::from(address) + k as u64));
                 *word = match (mode, unit) {
                     (GarbageMode::Random, _) => h as u16,
                     (GarbageMode::Nan, RELAY_UNIT) => 0x8000,
@@ -492,13 +452,7 @@ impl Bus {
     }
 
     /// Reads registers (holding or input), for callers that know the table holds them.
-    pub fn read_registers(
-        &self,
-        unit: u8,
-        table: Table,
-        address: u16,
-        count: u16,
-    ) -> Result<Vec<u16>, BusError> {
+    pub fn read_registers(&self, unit: u8, table: Table, address: u16, count: u16) -> Result<Vec<u16>, BusError> {
         match self.read(unit, table, address, count)? {
             Data::Registers(r) => Ok(r),
             Data::Bits(_) => Err(BusError::IllegalFunction { unit, table }),
@@ -506,13 +460,7 @@ impl Bus {
     }
 
     /// Reads bits (coils or discrete inputs).
-    pub fn read_bits(
-        &self,
-        unit: u8,
-        table: Table,
-        address: u16,
-        count: u16,
-    ) -> Result<Vec<bool>, BusError> {
+    pub fn read_bits(&self, unit: u8, table: Table, address: u16, count: u16) -> Result<Vec<bool>, BusError> {
         match self.read(unit, table, address, count)? {
             Data::Bits(b) => Ok(b),
             Data::Registers(_) => Err(BusError::IllegalFunction { unit, table }),
@@ -535,12 +483,7 @@ impl Bus {
         }
         let end = usize::from(address) + values.len();
         if end > self.layout.wiring.len() {
-            return Err(BusError::IllegalDataAddress {
-                unit,
-                table,
-                address,
-                count: values.len() as u16,
-            });
+            return Err(BusError::IllegalDataAddress { unit, table, address, count: values.len() as u16 });
         }
         for (k, &v) in values.iter().enumerate() {
             let ch = self.layout.wiring[usize::from(address) + k];
@@ -556,28 +499,16 @@ impl Bus {
 
     /// Writes holding registers (function code 16). Only writable addresses are
     /// accepted; the whole request is rejected if any address is not.
-    pub fn write_registers(
-        &mut self,
-        unit: u8,
-        address: u16,
-        values: &[u16],
-    ) -> Result<(), BusError> {
+    pub fn write_registers(&mut self, unit: u8, address: u16, values: &[u16]) -> Result<(), BusError> {
         self.check_unit(unit)?;
         let table = Table::HoldingRegisters;
         let count = values.len() as u16;
         bounds(unit, table, address, count, 123)?;
-        let bad_address = BusError::IllegalDataAddress {
-            unit,
-            table,
-            address,
-            count,
-        };
+        let bad_address = BusError::IllegalDataAddress { unit, table, address, count };
         match unit {
             METER_UNIT => Err(bad_address),
             INVERTER_UNIT => self.write_inverter(address, values).ok_or(bad_address)?,
-            RELAY_UNIT => self
-                .write_relay_registers(address, values)
-                .ok_or(bad_address)?,
+            RELAY_UNIT => self.write_relay_registers(address, values).ok_or(bad_address)?,
             _ => Err(BusError::IllegalFunction { unit, table }),
         }
     }
@@ -603,9 +534,8 @@ impl Bus {
             let (point, _) = model.point_at(a - start)?;
             point.writable.then_some((is123, usize::from(a - start)))
         };
-        let targets: Vec<(bool, usize)> = (0..values.len() as u16)
-            .map(|k| locate(address + k))
-            .collect::<Option<_>>()?;
+        let targets: Vec<(bool, usize)> =
+            (0..values.len() as u16).map(|k| locate(address + k)).collect::<Option<_>>()?;
         let unit = INVERTER_UNIT;
         let invalid = |what: String| Some(Err(BusError::IllegalDataValue { unit, what }));
         for (&(is123, o), &v) in targets.iter().zip(values) {
@@ -615,19 +545,11 @@ impl Bus {
                 [off::C704_ENA, off::C704_RVRT_ENA].contains(&o)
             };
             if enum01 && v > 1 {
-                return invalid(format!(
-                    "{v} for an enable or connect point, expected 0 or 1"
-                ));
+                return invalid(format!("{v} for an enable or connect point, expected 0 or 1"));
             }
-            let pct = if is123 {
-                o == off::C123_PCT
-            } else {
-                [off::C704_PCT, off::C704_RVRT_PCT].contains(&o)
-            };
+            let pct = if is123 { o == off::C123_PCT } else { [off::C704_PCT, off::C704_RVRT_PCT].contains(&o) };
             if pct && v > 10_000 {
-                return invalid(format!(
-                    "{v} for a power-limit percentage, expected 0..=10000 (0.01 %)"
-                ));
+                return invalid(format!("{v} for a power-limit percentage, expected 0..=10000 (0.01 %)"));
             }
         }
         let now = self.now_ms;
@@ -646,30 +568,21 @@ impl Bus {
         }
         if lim123 {
             let secs = inv.m123[off::C123_RVRT];
-            inv.lim123_until =
-                (inv.m123[off::C123_ENA] == 1 && secs > 0).then(|| now + i64::from(secs) * 1000);
+            inv.lim123_until = (inv.m123[off::C123_ENA] == 1 && secs > 0).then(|| now + i64::from(secs) * 1000);
         }
         if conn {
             let secs = inv.m123[off::C123_CONN_RVRT];
             inv.conn_until = (secs > 0).then(|| (now + i64::from(secs) * 1000, before_conn));
         }
         if lim704 {
-            let secs = words_u32(
-                inv.m704[off::C704_RVRT_TMS],
-                inv.m704[off::C704_RVRT_TMS + 1],
-            );
-            inv.lim704_until = (inv.m704[off::C704_RVRT_ENA] == 1 && secs > 0)
-                .then(|| now + i64::from(secs) * 1000);
+            let secs = words_u32(inv.m704[off::C704_RVRT_TMS], inv.m704[off::C704_RVRT_TMS + 1]);
+            inv.lim704_until = (inv.m704[off::C704_RVRT_ENA] == 1 && secs > 0).then(|| now + i64::from(secs) * 1000);
         }
         self.inverter_changed();
         Some(Ok(()))
     }
 
-    fn write_relay_registers(
-        &mut self,
-        address: u16,
-        values: &[u16],
-    ) -> Option<Result<(), BusError>> {
+    fn write_relay_registers(&mut self, address: u16, values: &[u16]) -> Option<Result<(), BusError>> {
         let unit = RELAY_UNIT;
         let mut regs = self.relay_registers();
         let end = usize::from(address) + values.len();
@@ -677,10 +590,7 @@ impl Bus {
             let ok = match a as u16 {
                 HR_EV_CURRENT => self.layout.has_ev,
                 1 | 2 => self.layout.has_battery,
-                r => {
-                    r >= HR_REGULATOR
-                        && usize::from(r - HR_REGULATOR) < self.layout.regulators.len()
-                }
+                r => r >= HR_REGULATOR && usize::from(r - HR_REGULATOR) < self.layout.regulators.len(),
             };
             if !ok || a >= regs.len() {
                 return None;
@@ -699,10 +609,7 @@ impl Bus {
             if touches(a) && regs[usize::from(a)] > 1000 {
                 return Some(Err(BusError::IllegalDataValue {
                     unit,
-                    what: format!(
-                        "regulator setpoint {} is above 1000 (100.0 %)",
-                        regs[usize::from(a)]
-                    ),
+                    what: format!("regulator setpoint {} is above 1000 (100.0 %)", regs[usize::from(a)]),
                 }));
             }
         }
@@ -726,9 +633,7 @@ impl Bus {
         let mut regs = vec![0u16; usize::from(HR_REGULATOR) + self.layout.regulators.len()];
         regs[0] = u16_sf(c.ev_current_a, -1);
         let w = if c.battery_w.is_finite() {
-            c.battery_w
-                .round()
-                .clamp(f64::from(i32::MIN), f64::from(i32::MAX)) as i32
+            c.battery_w.round().clamp(f64::from(i32::MIN), f64::from(i32::MAX)) as i32
         } else {
             0
         };
@@ -795,11 +700,7 @@ impl Bus {
         let mut img = Image::new();
         Bus::common(&mut img, "simulated grid meter", "SIM-METER-1", METER_UNIT);
         let m = img.model(model);
-        let amps = if g.voltage_v > 0.0 {
-            g.power_w.abs() / g.voltage_v
-        } else {
-            0.0
-        };
+        let amps = if g.voltage_v > 0.0 { g.power_w.abs() / g.voltage_v } else { 0.0 };
         let n = if three { 3.0 } else { 1.0 };
         let set = |img: &mut Image, name: &str, words: &[u16]| img.set(m, model, name, words);
         set(&mut img, "A", &[i16_sf(amps, -2)]);
@@ -827,24 +728,12 @@ impl Bus {
                 set(&mut img, name, &[i16_sf(ll, -1)]);
             }
             for ph in ["A", "B", "C"] {
-                set(
-                    &mut img,
-                    &format!("TotWhExpPh{ph}"),
-                    &acc32(g.export_wh / n),
-                );
-                set(
-                    &mut img,
-                    &format!("TotWhImpPh{ph}"),
-                    &acc32(g.import_wh / n),
-                );
+                set(&mut img, &format!("TotWhExpPh{ph}"), &acc32(g.export_wh / n));
+                set(&mut img, &format!("TotWhImpPh{ph}"), &acc32(g.import_wh / n));
             }
         }
         // Evt bit 2 is Power_Failure.
-        let evt: u32 = if self.readings.grid_available {
-            0
-        } else {
-            1 << 2
-        };
+        let evt: u32 = if self.readings.grid_available { 0 } else { 1 << 2 };
         set(&mut img, "Evt", &u32_words(evt));
         img.end();
         img.regs
@@ -854,26 +743,14 @@ impl Bus {
     fn inverter_image(&self) -> Vec<u16> {
         let pv = &self.readings.pv;
         let g = self.readings.grid.unwrap_or_default();
-        let volts = if self.layout.off_grid {
-            230.0
-        } else {
-            g.voltage_v
-        };
-        let hz = if self.layout.off_grid {
-            50.0
-        } else {
-            g.frequency_hz
-        };
+        let volts = if self.layout.off_grid { 230.0 } else { g.voltage_v };
+        let hz = if self.layout.off_grid { 50.0 } else { g.frequency_hz };
         let mut img = Image::new();
         Bus::common(&mut img, "simulated PV inverter", "SIM-PV-1", INVERTER_UNIT);
         let model = &INVERTER_1PH;
         let m = img.model(model);
         let set = |img: &mut Image, name: &str, words: &[u16]| img.set(m, model, name, words);
-        let w_sf = if self.layout.inverter_rating_w > 32_000.0 {
-            1
-        } else {
-            0
-        };
+        let w_sf = if self.layout.inverter_rating_w > 32_000.0 { 1 } else { 0 };
         let amps = if volts > 0.0 { pv.power_w / volts } else { 0.0 };
         set(&mut img, "A", &[u16_sf(amps, -2)]);
         set(&mut img, "AphA", &[u16_sf(amps, -2)]);
@@ -889,9 +766,7 @@ impl Bus {
         // A fixed, invented cabinet temperature: the point is mandatory.
         set(&mut img, "TmpCab", &[i16_sf(35.0, -1)]);
         set(&mut img, "Tmp_SF", &[sf(-1)]);
-        let throttled = pv
-            .limit_w
-            .is_some_and(|l| pv.available_w > l + 0.01 * self.layout.inverter_rating_w);
+        let throttled = pv.limit_w.is_some_and(|l| pv.available_w > l + 0.01 * self.layout.inverter_rating_w);
         let state = if pv.available_w.is_nan() || pv.available_w <= 0.0 {
             2 // SLEEPING
         } else if throttled {
@@ -910,9 +785,7 @@ impl Bus {
         img.regs.push(DER_AC_CONTROLS.len());
         let s704 = img.regs.len();
         img.regs.extend_from_slice(&inv.m704);
-        let rem_s = inv
-            .lim704_until
-            .map_or(0, |t| ((t - self.now_ms).max(0) + 999) / 1000) as u32;
+        let rem_s = inv.lim704_until.map_or(0, |t| ((t - self.now_ms).max(0) + 999) / 1000) as u32;
         let at = s704 + off::C704_RVRT_REM;
         img.regs[at..at + 2].copy_from_slice(&u32_words(rem_s));
         img.end();

@@ -32,16 +32,11 @@ fn parse_switch(topic: &str, payload: &str) -> Result<bool, BusError> {
 }
 
 fn parse_number(topic: &str, payload: &str, expected: &'static str) -> Result<f64, BusError> {
-    payload
-        .trim()
-        .parse::<f64>()
-        .ok()
-        .filter(|v| v.is_finite())
-        .ok_or_else(|| BusError::BadPayload {
-            topic: topic.to_owned(),
-            payload: payload.to_owned(),
-            expected,
-        })
+    payload.trim().parse::<f64>().ok().filter(|v| v.is_finite()).ok_or_else(|| BusError::BadPayload {
+        topic: topic.to_owned(),
+        payload: payload.to_owned(),
+        expected,
+    })
 }
 
 impl Bus {
@@ -54,8 +49,7 @@ impl Bus {
     pub fn mqtt_snapshot(&self) -> Vec<(String, String)> {
         let r = &self.readings;
         let mut out = Vec::with_capacity(32 + 2 * self.layout.loads.len());
-        let mut put =
-            |topic: String, payload: String| out.push((format!("{PREFIX}/{topic}"), payload));
+        let mut put = |topic: String, payload: String| out.push((format!("{PREFIX}/{topic}"), payload));
         if let (Some(g), true) = (&r.grid, self.up(METER_UNIT)) {
             put("meter/power".into(), num(g.power_w));
             put("meter/import_energy".into(), num(g.import_wh));
@@ -69,10 +63,7 @@ impl Bus {
         if self.up(INVERTER_UNIT) {
             put("inverter/power".into(), num(r.pv.power_w));
             put("inverter/available".into(), num(r.pv.available_w));
-            put(
-                "inverter/limit".into(),
-                r.pv.limit_w.map_or_else(|| "none".to_owned(), num),
-            );
+            put("inverter/limit".into(), r.pv.limit_w.map_or_else(|| "none".to_owned(), num));
             put("inverter/energy".into(), num(r.pv.energy_wh));
         }
         if self.up(SENSOR_UNIT) {
@@ -122,12 +113,7 @@ impl Bus {
         let relays_down = !self.up(RELAY_UNIT);
         let down = |unit| BusError::ServerDeviceFailure { unit };
         if let Some(name) = rest.strip_prefix("relay/") {
-            let ch = self
-                .layout
-                .channels
-                .iter()
-                .position(|c| c == name)
-                .ok_or_else(unknown)?;
+            let ch = self.layout.channels.iter().position(|c| c == name).ok_or_else(unknown)?;
             if relays_down && self.layout.wiring.contains(&ch) {
                 return Err(down(RELAY_UNIT));
             }
@@ -135,12 +121,7 @@ impl Bus {
             return Ok(());
         }
         if let Some(name) = rest.strip_prefix("regulator/") {
-            let k = self
-                .layout
-                .regulators
-                .iter()
-                .position(|c| c == name)
-                .ok_or_else(unknown)?;
+            let k = self.layout.regulators.iter().position(|c| c == name).ok_or_else(unknown)?;
             if relays_down {
                 return Err(down(RELAY_UNIT));
             }
@@ -153,8 +134,7 @@ impl Bus {
                 if relays_down {
                     return Err(down(RELAY_UNIT));
                 }
-                self.controls.ev_current_a =
-                    parse_number(topic, payload, "a current in A")?.max(0.0);
+                self.controls.ev_current_a = parse_number(topic, payload, "a current in A")?.max(0.0);
                 Ok(())
             }
             "battery/power" if self.layout.has_battery => {

@@ -216,16 +216,10 @@ const METER_POINTS: &[Point] = &[
 ];
 
 /// Model 201, single-phase meter.
-pub const METER_1PH: Model = Model {
-    id: 201,
-    points: METER_POINTS,
-};
+pub const METER_1PH: Model = Model { id: 201, points: METER_POINTS };
 
 /// Model 203, wye-connected three-phase meter.
-pub const METER_WYE: Model = Model {
-    id: 203,
-    points: METER_POINTS,
-};
+pub const METER_WYE: Model = Model { id: 203, points: METER_POINTS };
 
 /// Model 101, single-phase inverter.
 pub const INVERTER_1PH: Model = Model {
@@ -386,9 +380,7 @@ pub struct Image {
 impl Image {
     /// Starts an image with the `SunS` marker.
     pub fn new() -> Image {
-        Image {
-            regs: MARKER.to_vec(),
-        }
+        Image { regs: MARKER.to_vec() }
     }
 
     /// Appends a model block with every point "not implemented" (strings empty) and
@@ -446,11 +438,7 @@ pub fn sf(v: i16) -> u16 {
 
 /// An acc32 accumulator (wraps at 2³²; NaN → 0, "not accumulated"), high word first.
 pub fn acc32(v: f64) -> [u16; 2] {
-    let raw = if v.is_finite() && v > 0.0 {
-        (v.round() as u64 & 0xFFFF_FFFF) as u32
-    } else {
-        0
-    };
+    let raw = if v.is_finite() && v > 0.0 { (v.round() as u64 & 0xFFFF_FFFF) as u32 } else { 0 };
     u32_words(raw)
 }
 
@@ -468,8 +456,5 @@ pub fn words_u32(hi: u16, lo: u16) -> u32 {
 pub fn string(text: &str, n: usize) -> Vec<u16> {
     let mut bytes: Vec<u8> = text.bytes().take(2 * n).collect();
     bytes.resize(2 * n, 0);
-    bytes
-        .chunks(2)
-        .map(|c| u16::from_be_bytes([c[0], c[1]]))
-        .collect()
+    bytes.chunks(2).map(|c| u16::from_be_bytes([c[0], c[1]])).collect()
 }

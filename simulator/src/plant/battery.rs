@@ -15,12 +15,8 @@ use super::config::{BatteryConfig, Chemistry, OffGridConfig};
 /// Open-circuit voltage per cell against state of charge (0, 10, …, 100 %).
 /// LFP: the flat plateau around 3.3 V with steep ends; lead-acid: the near-linear
 /// 1.9–2.12 V rest voltage of a 2 V cell. Both are typical shapes, from memory.
-const OCV_LFP: [f64; 11] = [
-    2.80, 3.20, 3.25, 3.27, 3.29, 3.30, 3.31, 3.32, 3.34, 3.36, 3.45,
-];
-const OCV_LEAD_ACID: [f64; 11] = [
-    1.88, 1.92, 1.94, 1.97, 1.99, 2.02, 2.04, 2.06, 2.08, 2.10, 2.12,
-];
+const OCV_LFP: [f64; 11] = [2.80, 3.20, 3.25, 3.27, 3.29, 3.30, 3.31, 3.32, 3.34, 3.36, 3.45];
+const OCV_LEAD_ACID: [f64; 11] = [1.88, 1.92, 1.94, 1.97, 1.99, 2.02, 2.04, 2.06, 2.08, 2.10, 2.12];
 
 /// Charge-controller stage of an off-grid battery.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
@@ -86,10 +82,7 @@ pub struct Battery {
 impl Battery {
     /// Builds the battery from its configuration.
     pub fn new(cfg: &BatteryConfig) -> Result<Battery, PlantError> {
-        let bad = |why: &str| PlantError::Invalid {
-            what: "battery".to_owned(),
-            why: why.to_owned(),
-        };
+        let bad = |why: &str| PlantError::Invalid { what: "battery".to_owned(), why: why.to_owned() };
         if !(cfg.capacity > 0.0) || !(cfg.max_charge >= 0.0) || !(cfg.max_discharge >= 0.0) {
             return Err(bad("capacity must be > 0 and power limits ≥ 0"));
         }
@@ -98,12 +91,8 @@ impl Battery {
         if !(efficiency(cfg.charge_efficiency) && efficiency(cfg.discharge_efficiency)) {
             return Err(bad("efficiencies must be in (0, 100 %]"));
         }
-        if !(pct(cfg.soc_min) && pct(cfg.soc_max) && pct(cfg.initial_soc))
-            || cfg.soc_min > cfg.soc_max
-        {
-            return Err(bad(
-                "states of charge must be within 0–100 % and soc_min ≤ soc_max",
-            ));
+        if !(pct(cfg.soc_min) && pct(cfg.soc_max) && pct(cfg.initial_soc)) || cfg.soc_min > cfg.soc_max {
+            return Err(bad("states of charge must be within 0–100 % and soc_min ≤ soc_max"));
         }
         let (per_cell, table) = match cfg.chemistry {
             Chemistry::Lfp => (3.2, &OCV_LFP),
@@ -231,8 +220,7 @@ pub struct ChargeController {
 impl ChargeController {
     /// Builds the controller from the off-grid configuration.
     pub fn new(cfg: &OffGridConfig) -> Result<ChargeController, PlantError> {
-        if !(cfg.rebulk_voltage < cfg.float_voltage && cfg.float_voltage <= cfg.absorption_voltage)
-        {
+        if !(cfg.rebulk_voltage < cfg.float_voltage && cfg.float_voltage <= cfg.absorption_voltage) {
             return Err(PlantError::Invalid {
                 what: "off_grid".to_owned(),
                 why: "voltages must satisfy rebulk < float ≤ absorption".to_owned(),

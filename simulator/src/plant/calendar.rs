@@ -27,9 +27,7 @@ pub struct Day {
 }
 
 fn offset_s(tz: Tz, t_ms: i64) -> i64 {
-    let utc = chrono::DateTime::from_timestamp_millis(t_ms)
-        .unwrap_or_default()
-        .naive_utc();
+    let utc = chrono::DateTime::from_timestamp_millis(t_ms).unwrap_or_default().naive_utc();
     i64::from(tz.offset_from_utc_datetime(&utc).fix().local_minus_utc())
 }
 
@@ -70,13 +68,7 @@ impl Day {
             }
             (hi, o1 - o0)
         };
-        Day {
-            date,
-            start_ms,
-            end_ms,
-            shift_at_ms,
-            shift_s,
-        }
+        Day { date, start_ms, end_ms, shift_at_ms, shift_s }
     }
 
     /// Local clock seconds since midnight at `t_ms` (0 ..= 86 399).
@@ -93,11 +85,7 @@ impl Day {
     /// change: the offset at midnight applies before the change, the new one after).
     pub fn instant_ms(&self, sec: u32) -> i64 {
         let naive = self.start_ms + i64::from(sec) * 1000;
-        if naive >= self.shift_at_ms {
-            naive - self.shift_s * 1000
-        } else {
-            naive
-        }
+        if naive >= self.shift_at_ms { naive - self.shift_s * 1000 } else { naive }
     }
 
     /// Day of the week.

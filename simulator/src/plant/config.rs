@@ -129,11 +129,7 @@ fn d_variability() -> f64 {
     20.0
 }
 fn d_fridge() -> Option<FridgeConfig> {
-    Some(FridgeConfig {
-        power: 110.0,
-        on: 12.0 * 60.0,
-        period: 40.0 * 60.0,
-    })
+    Some(FridgeConfig { power: 110.0, on: 12.0 * 60.0, period: 40.0 * 60.0 })
 }
 
 impl Default for HouseConfig {
@@ -313,10 +309,7 @@ fn d_deadband() -> f64 {
 
 impl Default for ThermostatConfig {
     fn default() -> Self {
-        ThermostatConfig {
-            setpoint: d_setpoint(),
-            deadband: d_deadband(),
-        }
+        ThermostatConfig { setpoint: d_setpoint(), deadband: d_deadband() }
     }
 }
 
@@ -557,12 +550,7 @@ fn d_period() -> f64 {
 
 impl Default for MeterConfig {
     fn default() -> Self {
-        MeterConfig {
-            period: d_period(),
-            delay: 0.0,
-            noise: 0.0,
-            phases: 1,
-        }
+        MeterConfig { period: d_period(), delay: 0.0, noise: 0.0, phases: 1 }
     }
 }
 
@@ -587,11 +575,7 @@ fn d_frequency() -> f64 {
 
 impl Default for GridConfig {
     fn default() -> Self {
-        GridConfig {
-            voltage: d_voltage(),
-            frequency: d_frequency(),
-            outages: Vec::new(),
-        }
+        GridConfig { voltage: d_voltage(), frequency: d_frequency(), outages: Vec::new() }
     }
 }
 

@@ -64,14 +64,9 @@ pub struct Ev {
 impl Ev {
     /// Builds the charger from its configuration.
     pub fn new(cfg: &EvConfig, rng: Stream) -> Result<Ev, PlantError> {
-        let bad = |why: String| PlantError::Invalid {
-            what: format!("ev \"{}\"", cfg.name),
-            why,
-        };
+        let bad = |why: String| PlantError::Invalid { what: format!("ev \"{}\"", cfg.name), why };
         if !(cfg.capacity > 0.0) || !(cfg.min_current > 0.0) || cfg.max_current < cfg.min_current {
-            return Err(bad(
-                "capacity and min_current must be > 0, max_current ≥ min_current".to_owned(),
-            ));
+            return Err(bad("capacity and min_current must be > 0, max_current ≥ min_current".to_owned()));
         }
         if !(cfg.step > 0.0) || !(cfg.phases == 1 || cfg.phases == 3) {
             return Err(bad("step must be > 0 and phases 1 or 3".to_owned()));
@@ -87,17 +82,11 @@ impl Ev {
         let sessions = list
             .iter()
             .map(|s| {
-                let arrive = parse_clock(&s.arrive)
-                    .ok_or_else(|| bad(format!("arrive `{}` is not HH:MM", s.arrive)))?;
-                let depart = parse_clock(&s.depart)
-                    .ok_or_else(|| bad(format!("depart `{}` is not HH:MM", s.depart)))?;
-                Ok(Session {
-                    arrive,
-                    depart,
-                    soc: s.soc / 100.0,
-                    spread: s.spread / 100.0,
-                    days: s.days,
-                })
+                let arrive =
+                    parse_clock(&s.arrive).ok_or_else(|| bad(format!("arrive `{}` is not HH:MM", s.arrive)))?;
+                let depart =
+                    parse_clock(&s.depart).ok_or_else(|| bad(format!("depart `{}` is not HH:MM", s.depart)))?;
+                Ok(Session { arrive, depart, soc: s.soc / 100.0, spread: s.spread / 100.0, days: s.days })
             })
             .collect::<Result<Vec<_>, PlantError>>()?;
         Ok(Ev {
@@ -125,14 +114,9 @@ impl Ev {
                 continue;
             }
             let arrive_ms = day.instant_ms(s.arrive);
-            let stay_s = if s.depart > s.arrive {
-                s.depart - s.arrive
-            } else {
-                s.depart + 86_400 - s.arrive
-            };
+            let stay_s = if s.depart > s.arrive { s.depart - s.arrive } else { s.depart + 86_400 - s.arrive };
             let soc = (s.soc + (self.rng.uniform() * 2.0 - 1.0) * s.spread).clamp(0.0, 1.0);
-            self.upcoming
-                .push((arrive_ms, arrive_ms + i64::from(stay_s) * 1000, soc));
+            self.upcoming.push((arrive_ms, arrive_ms + i64::from(stay_s) * 1000, soc));
         }
         self.upcoming.sort_by_key(|u| u.0);
     }
@@ -164,8 +148,7 @@ impl Ev {
         if !self.plugged || self.stored_wh >= self.target_wh || !(cmd_a >= self.min_a) {
             return 0.0;
         }
-        let amps =
-            ((cmd_a.min(self.max_a) / self.step_a + 1e-9).floor() * self.step_a).min(self.max_a);
+        let amps = ((cmd_a.min(self.max_a) / self.step_a + 1e-9).floor() * self.step_a).min(self.max_a);
         if amps < self.min_a {
             return 0.0;
         }

@@ -63,39 +63,18 @@ impl Faults {
         let mut events = Vec::with_capacity(cfgs.len());
         for cfg in cfgs {
             let (start, duration, kind) = match cfg {
-                FaultConfig::MeterSilent { start, duration } => {
-                    (start, duration, Kind::MeterSilent)
+                FaultConfig::MeterSilent { start, duration } => (start, duration, Kind::MeterSilent),
+                FaultConfig::DeviceRestart { device, start, duration } => {
+                    (start, duration, Kind::Restart(device_index(*device)))
                 }
-                FaultConfig::DeviceRestart {
-                    device,
-                    start,
-                    duration,
-                } => (start, duration, Kind::Restart(device_index(*device))),
-                FaultConfig::RelayStuck {
-                    channel: name,
-                    closed,
-                    start,
-                    duration,
-                } => {
-                    let channel = channel(name).ok_or_else(|| PlantError::UnknownChannel {
-                        name: name.clone(),
-                        place: "faults".to_owned(),
-                    })?;
-                    (
-                        start,
-                        duration,
-                        Kind::Stuck {
-                            channel,
-                            closed: *closed,
-                        },
-                    )
+                FaultConfig::RelayStuck { channel: name, closed, start, duration } => {
+                    let channel = channel(name)
+                        .ok_or_else(|| PlantError::UnknownChannel { name: name.clone(), place: "faults".to_owned() })?;
+                    (start, duration, Kind::Stuck { channel, closed: *closed })
                 }
-                FaultConfig::Garbage {
-                    device,
-                    mode,
-                    start,
-                    duration,
-                } => (start, duration, Kind::Garbage(device_index(*device), *mode)),
+                FaultConfig::Garbage { device, mode, start, duration } => {
+                    (start, duration, Kind::Garbage(device_index(*device), *mode))
+                }
             };
             if !(*duration >= 0.0) {
                 return Err(PlantError::Invalid {
@@ -104,19 +83,12 @@ impl Faults {
                 });
             }
             let start_ms = start.resolve(start_ms);
-            events.push(Event {
-                start_ms,
-                end_ms: start_ms + (duration * 1000.0).round() as i64,
-                kind,
-            });
+            events.push(Event { start_ms, end_ms: start_ms + (duration * 1000.0).round() as i64, kind });
         }
         let mut faults = Faults {
             events,
             next_change_ms: i64::MIN,
-            active: Active {
-                stuck: vec![None; channels],
-                ..Active::default()
-            },
+            active: Active { stuck: vec![None; channels], ..Active::default() },
         };
         faults.update(start_ms);
         Ok(faults)
@@ -126,10 +98,7 @@ impl Faults {
     /// began or ended since the last update.
     pub fn update(&mut self, t_ms: i64) -> [bool; 4] {
         let before = self.active.restarting;
-        let mut active = Active {
-            stuck: vec![None; self.active.stuck.len()],
-            ..Active::default()
-        };
+        let mut active = Active { stuck: vec![None; self.active.stuck.len()], ..Active::default() };
         let mut next = i64::MAX;
         for e in &self.events {
             if e.start_ms > t_ms {

@@ -11,8 +11,8 @@ use super::noise::Stream;
 
 /// Invented default hourly shape of the activity load (morning and evening peaks).
 const DEFAULT_PROFILE: [f64; 24] = [
-    0.35, 0.30, 0.30, 0.30, 0.30, 0.40, 0.80, 1.30, 1.20, 1.10, 1.05, 1.05, 1.10, 1.10, 1.05, 1.05,
-    1.15, 1.40, 1.70, 1.80, 1.60, 1.30, 0.90, 0.55,
+    0.35, 0.30, 0.30, 0.30, 0.30, 0.40, 0.80, 1.30, 1.20, 1.10, 1.05, 1.05, 1.10, 1.10, 1.05, 1.05, 1.15, 1.40, 1.70,
+    1.80, 1.60, 1.30, 0.90, 0.55,
 ];
 
 /// One phase of a programme: seconds, watts, duty (0–1), thermostat cycle seconds.
@@ -48,12 +48,7 @@ fn default_appliances() -> Vec<ApplianceConfig> {
         }
     }
     fn phase(power: f64, minutes: f64) -> PhaseConfig {
-        PhaseConfig {
-            power,
-            duration: minutes * 60.0,
-            duty: 100.0,
-            cycle: 600.0,
-        }
+        PhaseConfig { power, duration: minutes * 60.0, duty: 100.0, cycle: 600.0 }
     }
     let mut oven = one("oven", 2400.0, 50.0, 0.6, "17:00-19:00");
     oven.duty = 55.0;
@@ -86,39 +81,22 @@ fn default_appliances() -> Vec<ApplianceConfig> {
 }
 
 fn appliance(cfg: &ApplianceConfig) -> Result<Appliance, PlantError> {
-    let bad = |why: String| PlantError::Invalid {
-        what: format!("house appliance \"{}\"", cfg.name),
-        why,
-    };
-    let window = parse_window(&cfg.window)
-        .ok_or_else(|| bad(format!("window `{}` is not HH:MM-HH:MM", cfg.window)))?;
+    let bad = |why: String| PlantError::Invalid { what: format!("house appliance \"{}\"", cfg.name), why };
+    let window = parse_window(&cfg.window).ok_or_else(|| bad(format!("window `{}` is not HH:MM-HH:MM", cfg.window)))?;
     let phases = if cfg.phases.is_empty() {
         match (cfg.power, cfg.duration) {
-            (Some(p), Some(d)) => vec![Phase {
-                duration_s: d,
-                power_w: p,
-                duty: cfg.duty / 100.0,
-                cycle_s: cfg.cycle,
-            }],
+            (Some(p), Some(d)) => vec![Phase { duration_s: d, power_w: p, duty: cfg.duty / 100.0, cycle_s: cfg.cycle }],
             _ => return Err(bad("give `power` and `duration`, or `phases`".to_owned())),
         }
     } else {
         cfg.phases
             .iter()
-            .map(|p| Phase {
-                duration_s: p.duration,
-                power_w: p.power,
-                duty: p.duty / 100.0,
-                cycle_s: p.cycle,
-            })
+            .map(|p| Phase { duration_s: p.duration, power_w: p.power, duty: p.duty / 100.0, cycle_s: p.cycle })
             .collect()
     };
     for p in &phases {
         if !(p.duration_s > 0.0 && p.power_w >= 0.0 && p.duty > 0.0 && p.duty <= 1.0) {
-            return Err(bad(
-                "each phase needs a positive duration, a power ≥ 0 and a duty in (0, 100 %]"
-                    .to_owned(),
-            ));
+            return Err(bad("each phase needs a positive duration, a power ≥ 0 and a duty in (0, 100 %]".to_owned()));
         }
         if p.duty < 1.0 && p.cycle_s <= 0.0 {
             return Err(bad("a duty below 100 % needs a positive cycle".to_owned()));
@@ -127,12 +105,7 @@ fn appliance(cfg: &ApplianceConfig) -> Result<Appliance, PlantError> {
     if !(cfg.per_day >= 0.0) {
         return Err(bad("per_day must be ≥ 0".to_owned()));
     }
-    Ok(Appliance {
-        phases,
-        per_day: cfg.per_day,
-        window,
-        days: cfg.days,
-    })
+    Ok(Appliance { phases, per_day: cfg.per_day, window, days: cfg.days })
 }
 
 /// The household's base load.
@@ -159,16 +132,10 @@ pub struct House {
 impl House {
     /// Builds the household from its configuration.
     pub fn new(cfg: &HouseConfig, rng: Stream) -> Result<House, PlantError> {
-        let bad = |why: &str| PlantError::Invalid {
-            what: "house".to_owned(),
-            why: why.to_owned(),
-        };
+        let bad = |why: &str| PlantError::Invalid { what: "house".to_owned(), why: why.to_owned() };
         let mut profile = DEFAULT_PROFILE;
         if let Some(p) = &cfg.profile {
-            profile = p
-                .as_slice()
-                .try_into()
-                .map_err(|_| bad("profile needs 24 hourly weights"))?;
+            profile = p.as_slice().try_into().map_err(|_| bad("profile needs 24 hourly weights"))?;
         }
         if profile.iter().any(|w| !(*w >= 0.0)) {
             return Err(bad("profile weights must be ≥ 0"));
@@ -178,9 +145,7 @@ impl House {
             profile.iter_mut().for_each(|w| *w /= mean);
         }
         let fridge = match &cfg.fridge {
-            Some(f) if f.period > 0.0 && f.on >= 0.0 && f.on <= f.period => {
-                Some((f.power, f.on, f.period))
-            }
+            Some(f) if f.period > 0.0 && f.on >= 0.0 && f.on <= f.period => Some((f.power, f.on, f.period)),
             Some(_) => return Err(bad("fridge needs 0 ≤ on ≤ period and a positive period")),
             None => None,
         };
@@ -256,13 +221,7 @@ impl House {
                     } else {
                         let mut c = t;
                         while c < end {
-                            push_on(
-                                &mut self.changes,
-                                c,
-                                (c + p.duty * p.cycle_s).min(end),
-                                p.power_w,
-                                last,
-                            );
+                            push_on(&mut self.changes, c, (c + p.duty * p.cycle_s).min(end), p.power_w, last);
                             c += p.cycle_s;
                         }
                     }

@@ -50,10 +50,7 @@ impl Meter {
             acc_ms: 0,
             next_report_ms: start_ms + period_ms,
             queue: VecDeque::with_capacity((delay_ms / period_ms + 2) as usize),
-            shown: Report {
-                visible_ms: start_ms,
-                ..Report::default()
-            },
+            shown: Report { visible_ms: start_ms, ..Report::default() },
         }
     }
 
@@ -86,12 +83,7 @@ impl Meter {
                 w = garble(mode, w, end_ms as u64);
             }
             if !silent && self.delay_ms == 0 {
-                self.shown = Report {
-                    visible_ms: end_ms,
-                    w,
-                    import_wh: counters.0,
-                    export_wh: counters.1,
-                };
+                self.shown = Report { visible_ms: end_ms, w, import_wh: counters.0, export_wh: counters.1 };
             } else if !silent {
                 if self.queue.len() == self.queue.capacity() {
                     self.queue.pop_front();

@@ -227,8 +227,7 @@ impl Flows {
     /// Sources minus sinks of the balance, Wh: zero up to rounding.
     pub fn balance_error_wh(&self) -> f64 {
         let loads: f64 = self.loads.iter().map(|f| f.wh).sum();
-        self.pv.wh + self.grid_import.wh - self.house.wh - loads - self.battery_charge.wh
-            + self.battery_discharge.wh
+        self.pv.wh + self.grid_import.wh - self.house.wh - loads - self.battery_charge.wh + self.battery_discharge.wh
             - self.grid_export.wh
             - self.losses.wh
     }
@@ -298,20 +297,9 @@ pub struct Plant {
 impl Plant {
     /// Builds the plant. `pv` supplies the array's output; `start_ms` is the first instant
     /// (ms since the Unix epoch, UTC); `seed` drives every random draw.
-    pub fn new(
-        cfg: &PlantConfig,
-        pv: Box<dyn PvSource>,
-        start_ms: i64,
-        seed: u64,
-    ) -> Result<Plant, PlantError> {
-        let tz: Tz = cfg
-            .timezone
-            .parse()
-            .map_err(|_| PlantError::TimeZone(cfg.timezone.clone()))?;
-        let invalid = |what: &str, why: &str| PlantError::Invalid {
-            what: what.to_owned(),
-            why: why.to_owned(),
-        };
+    pub fn new(cfg: &PlantConfig, pv: Box<dyn PvSource>, start_ms: i64, seed: u64) -> Result<Plant, PlantError> {
+        let tz: Tz = cfg.timezone.parse().map_err(|_| PlantError::TimeZone(cfg.timezone.clone()))?;
+        let invalid = |what: &str, why: &str| PlantError::Invalid { what: what.to_owned(), why: why.to_owned() };
         if cfg.grid.is_some() && cfg.off_grid.is_some() {
             return Err(invalid("plant", "give `grid` or `off_grid`, not both"));
         }
@@ -339,10 +327,7 @@ impl Plant {
         let tank = match &cfg.tank {
             Some(t) => {
                 add_name(&mut load_names, &t.name)?;
-                drives.push(Drive::Tank {
-                    channel: channels.len(),
-                    rated: t.element,
-                });
+                drives.push(Drive::Tank { channel: channels.len(), rated: t.element });
                 channels.push(t.name.clone());
                 Some(Tank::new(t, Stream::new(seed, 2))?)
             }
@@ -350,10 +335,7 @@ impl Plant {
         };
         if let Some(p) = &cfg.pump {
             add_name(&mut load_names, &p.name)?;
-            drives.push(Drive::Switched {
-                channel: channels.len(),
-                rated: p.rated.max(0.0),
-            });
+            drives.push(Drive::Switched { channel: channels.len(), rated: p.rated.max(0.0) });
             channels.push(p.name.clone());
         }
         for l in &cfg.loads {
@@ -361,33 +343,21 @@ impl Plant {
             let what = format!("load \"{}\"", l.name);
             match l.kind {
                 LoadKind::Switched | LoadKind::Regulated => {
-                    let rated = l
-                        .rated
-                        .filter(|r| *r >= 0.0)
-                        .ok_or_else(|| invalid(&what, "needs `rated` (≥ 0)"))?;
+                    let rated = l.rated.filter(|r| *r >= 0.0).ok_or_else(|| invalid(&what, "needs `rated` (≥ 0)"))?;
                     if !l.stages.is_empty() {
                         return Err(invalid(&what, "`stages` is only for kind: stepped"));
                     }
                     if l.kind == LoadKind::Switched {
-                        drives.push(Drive::Switched {
-                            channel: channels.len(),
-                            rated,
-                        });
+                        drives.push(Drive::Switched { channel: channels.len(), rated });
                         channels.push(l.name.clone());
                     } else {
-                        drives.push(Drive::Regulated {
-                            index: regulators.len(),
-                            rated,
-                        });
+                        drives.push(Drive::Regulated { index: regulators.len(), rated });
                         regulators.push(l.name.clone());
                     }
                 }
                 LoadKind::Stepped => {
                     if l.stages.is_empty() || l.rated.is_some() {
-                        return Err(invalid(
-                            &what,
-                            "a stepped load needs `stages` (and no `rated`)",
-                        ));
+                        return Err(invalid(&what, "a stepped load needs `stages` (and no `rated`)"));
                     }
                     drives.push(Drive::Stepped {
                         first: channels.len(),
@@ -410,17 +380,12 @@ impl Plant {
         let mut seen: Vec<&str> = Vec::new();
         let mut wiring = Vec::with_capacity(cfg.wiring.len());
         for name in &cfg.wiring {
-            let ch = channels.iter().position(|c| c == name).ok_or_else(|| {
-                PlantError::UnknownChannel {
-                    name: name.clone(),
-                    place: "wiring".to_owned(),
-                }
-            })?;
+            let ch = channels
+                .iter()
+                .position(|c| c == name)
+                .ok_or_else(|| PlantError::UnknownChannel { name: name.clone(), place: "wiring".to_owned() })?;
             if seen.contains(&name.as_str()) {
-                return Err(invalid(
-                    "wiring",
-                    &format!("channel \"{name}\" is wired to two coils"),
-                ));
+                return Err(invalid("wiring", &format!("channel \"{name}\" is wired to two coils")));
             }
             seen.push(name);
             wiring.push(ch);
@@ -429,23 +394,12 @@ impl Plant {
         for &ch in &wiring {
             wired[ch] = true;
         }
-        let faults = Faults::new(
-            &cfg.faults,
-            start_ms,
-            |n| channels.iter().position(|c| c == n),
-            channels.len(),
-        )?;
+        let faults = Faults::new(&cfg.faults, start_ms, |n| channels.iter().position(|c| c == n), channels.len())?;
 
         let battery = cfg.battery.as_ref().map(Battery::new).transpose()?;
-        let charger = cfg
-            .off_grid
-            .as_ref()
-            .map(ChargeController::new)
-            .transpose()?;
-        let off_grid = cfg.off_grid.as_ref().map(|o| OffGrid {
-            disconnect_pct: o.disconnect_soc,
-            reconnect_pct: o.reconnect_soc,
-        });
+        let charger = cfg.off_grid.as_ref().map(ChargeController::new).transpose()?;
+        let off_grid =
+            cfg.off_grid.as_ref().map(|o| OffGrid { disconnect_pct: o.disconnect_soc, reconnect_pct: o.reconnect_soc });
         let grid = if cfg.off_grid.is_some() {
             None
         } else {
@@ -459,12 +413,7 @@ impl Plant {
                 })
                 .collect();
             outages.sort_unstable();
-            Some(Grid {
-                voltage: g.voltage,
-                frequency: g.frequency,
-                outages,
-                next_change_ms: i64::MIN,
-            })
+            Some(Grid { voltage: g.voltage, frequency: g.frequency, outages, next_change_ms: i64::MIN })
         };
 
         let n_loads = load_names.len();
@@ -517,10 +466,7 @@ impl Plant {
             grid,
             off_grid,
             faults,
-            flows: Flows {
-                loads: vec![Flow::default(); n_loads],
-                ..Flows::default()
-            },
+            flows: Flows { loads: vec![Flow::default(); n_loads], ..Flows::default() },
             bus,
             wired,
             load_w: vec![0.0; n_loads],
@@ -628,32 +574,17 @@ impl Plant {
                         0.0
                     }
                 }
-                Drive::Stepped { first, stages } => stages
-                    .iter()
-                    .enumerate()
-                    .filter(|(k, _)| contacts[first + k])
-                    .map(|(_, p)| p)
-                    .sum(),
+                Drive::Stepped { first, stages } => {
+                    stages.iter().enumerate().filter(|(k, _)| contacts[first + k]).map(|(_, p)| p).sum()
+                }
                 Drive::Regulated { index, rated } => {
-                    let pct = if relays_down {
-                        0.0
-                    } else {
-                        controls.regulators[*index]
-                    };
-                    let pct = if pct.is_finite() {
-                        pct.clamp(0.0, 100.0)
-                    } else {
-                        0.0
-                    };
+                    let pct = if relays_down { 0.0 } else { controls.regulators[*index] };
+                    let pct = if pct.is_finite() { pct.clamp(0.0, 100.0) } else { 0.0 };
                     rated * pct / 100.0
                 }
                 Drive::Ev => match &mut self.ev {
                     Some(ev) => {
-                        let cmd = if relays_down {
-                            0.0
-                        } else {
-                            controls.ev_current_a
-                        };
+                        let cmd = if relays_down { 0.0 } else { controls.ev_current_a };
                         ev.power_w(cmd, dt)
                     }
                     None => 0.0,
@@ -687,11 +618,7 @@ impl Plant {
                 served = 0.0;
             }
             // A grid-tied inverter without a battery to form the island stops (anti-islanding).
-            let cap = if self.battery.is_none() {
-                0.0
-            } else {
-                served * demand + charge_room
-            };
+            let cap = if self.battery.is_none() { 0.0 } else { served * demand + charge_room };
             let lim = limit.map_or(cap, |l| l.min(cap)).max(0.0);
             pv_sample = self.pv.step(t, dt, Some(lim));
             let mut pv = pv_sample.ac_w.max(0.0);
@@ -717,11 +644,7 @@ impl Plant {
         } else {
             pv_sample = self.pv.step(t, dt, limit);
             pv_w = pv_sample.ac_w.max(0.0);
-            let cmd = if battery_cmd.is_finite() {
-                battery_cmd
-            } else {
-                0.0
-            };
+            let cmd = if battery_cmd.is_finite() { battery_cmd } else { 0.0 };
             battery_ac = cmd.clamp(-discharge_room, charge_room);
             grid_w = demand + battery_ac - pv_w;
         }
@@ -764,8 +687,7 @@ impl Plant {
         f.grid_export.add((-grid_w).max(0.0), dt_h);
         f.unserved.add(unserved, dt_h);
         f.pv_spilled.add(spilled, dt_h);
-        f.pv_curtailed
-            .add((pv_sample.available_ac_w - pv_sample.ac_w).max(0.0), dt_h);
+        f.pv_curtailed.add((pv_sample.available_ac_w - pv_sample.ac_w).max(0.0), dt_h);
 
         if let (Some(og), Some(b)) = (&self.off_grid, &self.battery) {
             let soc = b.soc_pct();
@@ -827,10 +749,7 @@ impl Plant {
             br.voltage_v = b.voltage_v();
             br.current_a = b.current_a();
             br.power_w = battery_ac;
-            br.charger = self
-                .charger
-                .as_ref()
-                .map_or(ChargerState::None, |c| c.state);
+            br.charger = self.charger.as_ref().map_or(ChargerState::None, |c| c.state);
         }
         if let (Some(e), Some(er)) = (&self.ev, &mut r.ev) {
             er.plugged = e.plugged;

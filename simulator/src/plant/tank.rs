@@ -76,10 +76,7 @@ fn default_draws() -> Vec<DrawConfig> {
 impl Tank {
     /// Builds the tank from its configuration.
     pub fn new(cfg: &TankConfig, rng: Stream) -> Result<Tank, PlantError> {
-        let bad = |why: String| PlantError::Invalid {
-            what: format!("tank \"{}\"", cfg.name),
-            why,
-        };
+        let bad = |why: String| PlantError::Invalid { what: format!("tank \"{}\"", cfg.name), why };
         if !(cfg.volume > 0.0) || !(cfg.element >= 0.0) || !(cfg.ua >= 0.0) {
             return Err(bad("volume must be > 0, element and ua ≥ 0".to_owned()));
         }
@@ -97,17 +94,11 @@ impl Tank {
         let draws = list
             .iter()
             .map(|d| {
-                let at = parse_clock(&d.at)
-                    .ok_or_else(|| bad(format!("draw time `{}` is not HH:MM", d.at)))?;
+                let at = parse_clock(&d.at).ok_or_else(|| bad(format!("draw time `{}` is not HH:MM", d.at)))?;
                 if !(d.volume >= 0.0) {
                     return Err(bad("draw volume must be ≥ 0".to_owned()));
                 }
-                Ok(Draw {
-                    at,
-                    volume_l: d.volume,
-                    tap_c: d.temperature,
-                    days: d.days,
-                })
+                Ok(Draw { at, volume_l: d.volume, tap_c: d.temperature, days: d.days })
             })
             .collect::<Result<Vec<_>, _>>()?;
         Ok(Tank {

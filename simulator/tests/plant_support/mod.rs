@@ -18,11 +18,7 @@ pub struct HalfSine {
 
 impl HalfSine {
     pub fn new(peak_w: f64) -> HalfSine {
-        HalfSine {
-            peak_w,
-            rise_s: 6.0 * 3600.0,
-            set_s: 18.0 * 3600.0,
-        }
+        HalfSine { peak_w, rise_s: 6.0 * 3600.0, set_s: 18.0 * 3600.0 }
     }
 
     pub fn available(&self, t_ms: i64) -> f64 {
@@ -38,13 +34,7 @@ impl PvSource for HalfSine {
     fn step(&mut self, t_ms: i64, _dt_s: f64, limit_w: Option<f64>) -> PvSample {
         let available = self.available(t_ms);
         let ac = limit_w.map_or(available, |l| available.min(l.max(0.0)));
-        PvSample {
-            ac_w: ac,
-            available_ac_w: available,
-            dc_w: ac / 0.96,
-            clear_sky_index: 1.0,
-            ..PvSample::default()
-        }
+        PvSample { ac_w: ac, available_ac_w: available, dc_w: ac / 0.96, clear_sky_index: 1.0, ..PvSample::default() }
     }
 }
 
@@ -54,11 +44,7 @@ pub struct Constant(pub f64);
 impl PvSource for Constant {
     fn step(&mut self, _t_ms: i64, _dt_s: f64, limit_w: Option<f64>) -> PvSample {
         let ac = limit_w.map_or(self.0, |l| self.0.min(l.max(0.0)));
-        PvSample {
-            ac_w: ac,
-            available_ac_w: self.0,
-            ..PvSample::default()
-        }
+        PvSample { ac_w: ac, available_ac_w: self.0, ..PvSample::default() }
     }
 }
 
