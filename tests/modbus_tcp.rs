@@ -156,7 +156,10 @@ async fn contiguous_points_are_read_in_one_request_per_block() {
     assert_eq!(reads(&log), vec![(4, 0, 1), (3, 100, 11), (3, 300, 1)]);
     // The next poll, one period later, asks the same three again.
     b.samples(&["a", "b", "c", "d", "e", "f"]).await;
-    assert_eq!(reads(&b.server.take_log()), vec![(4, 0, 1), (3, 100, 11), (3, 300, 1)]);
+    assert_eq!(
+        reads(&b.server.take_log()),
+        vec![(4, 0, 1), (3, 100, 11), (3, 300, 1)]
+    );
     assert_eq!(b.stats.counts().requests, 6);
     b.stop().await;
 }
@@ -177,7 +180,12 @@ async fn every_type_and_word_order_decodes() {
         ("i32", "high_first", &[0x8000, 0x0000], -2_147_483_648.0),
         ("u64", "high_first", &[0, 0, 0x0001, 0x0002], 65538.0),
         ("u64", "low_first", &[0x0002, 0x0001, 0, 0], 65538.0),
-        ("u64", "high_first", &[0x0001, 0, 0, 0], 281_474_976_710_656.0),
+        (
+            "u64",
+            "high_first",
+            &[0x0001, 0, 0, 0],
+            281_474_976_710_656.0,
+        ),
         ("f32", "high_first", &[0x4148, 0x0000], 12.5),
         ("f32", "low_first", &[0x0000, 0x4148], 12.5),
         ("f32", "high_first", &[0xBE20, 0x0000], -0.15625),
@@ -235,7 +243,8 @@ async fn exception_responses_are_named_counted_and_survived() {
     server.with(|s| {
         s.exceptions
             .insert((3, 300), ExceptionCode::IllegalDataAddress);
-        s.exceptions.insert((3, 500), ExceptionCode::ServerDeviceBusy);
+        s.exceptions
+            .insert((3, 500), ExceptionCode::ServerDeviceBusy);
     });
     let yaml = format!(
         "{HEAD}points:
@@ -250,12 +259,18 @@ async fn exception_responses_are_named_counted_and_survived() {
         let mut names: Vec<String> = evs
             .iter()
             .filter_map(|e| match e {
-                SourceEvent::Exception { code, function: 3, .. } => Some(code.to_string()),
+                SourceEvent::Exception {
+                    code, function: 3, ..
+                } => Some(code.to_string()),
                 _ => None,
             })
             .collect();
         names.sort();
-        assert_eq!(names, ["IllegalDataAddress", "ServerDeviceBusy"], "round {round}");
+        assert_eq!(
+            names,
+            ["IllegalDataAddress", "ServerDeviceBusy"],
+            "round {round}"
+        );
         let ok = b.point("ok");
         assert!(evs.iter().any(
             |e| matches!(e, SourceEvent::Sample { point, value, .. } if *point == ok && *value == 1.0)
@@ -263,7 +278,11 @@ async fn exception_responses_are_named_counted_and_survived() {
         tokio::time::sleep(Duration::from_millis(100)).await;
     }
     assert_eq!(b.stats.counts().exceptions, 4);
-    assert_eq!(b.stats.counts().connects, 1, "exceptions never cost the connection");
+    assert_eq!(
+        b.stats.counts().connects,
+        1,
+        "exceptions never cost the connection"
+    );
     b.stop().await;
 }
 
@@ -286,7 +305,10 @@ async fn a_block_refused_across_a_gap_is_split_into_its_runs() {
     .await;
     assert_eq!(code, "IllegalDataAddress");
     assert_eq!(b.samples(&["a", "b"]).await, vec![11.0, 12.0]);
-    assert_eq!(reads(&b.server.take_log()), vec![(3, 100, 6), (3, 100, 1), (3, 105, 1)]);
+    assert_eq!(
+        reads(&b.server.take_log()),
+        vec![(3, 100, 6), (3, 100, 1), (3, 105, 1)]
+    );
     b.stop().await;
 }
 
@@ -469,12 +491,7 @@ async fn a_rebooted_relay_module_gets_its_state_back() {
         reassert: Duration::from_secs(10),
     };
     let mut b = Bench::start(server, &relays_yaml(), "relays", options).await;
-    b.command(&[
-        Command::On,
-        Command::Stage(3),
-        Command::Off,
-        Command::Off,
-    ]);
+    b.command(&[Command::On, Command::Stage(3), Command::Off, Command::Off]);
     drain_for(&mut b.events, Duration::from_secs(1)).await;
     assert_eq!(b.server.coil(3, 2), Some(true));
 
@@ -494,7 +511,8 @@ async fn a_rebooted_relay_module_gets_its_state_back() {
 
     // A module behind a gateway that rebooted without dropping TCP: the periodic
     // re-assert (10 s here) restores it.
-    b.server.unit(3, |u| u.coils.values_mut().for_each(|c| *c = false));
+    b.server
+        .unit(3, |u| u.coils.values_mut().for_each(|c| *c = false));
     b.server.take_log();
     drain_for(&mut b.events, Duration::from_secs(11)).await;
     assert_eq!(b.server.coil(3, 2), Some(true));

@@ -241,7 +241,10 @@ impl Broker {
                         );
                         me = Some(id);
                         will = c.last_will.clone();
-                        let _ = tx.send(Packet::ConnAck(ConnAck::new(ConnectReturnCode::Success, false)));
+                        let _ = tx.send(Packet::ConnAck(ConnAck::new(
+                            ConnectReturnCode::Success,
+                            false,
+                        )));
                     }
                     Packet::Subscribe(sub) => {
                         let mut s = self.state.lock().unwrap();
@@ -258,7 +261,10 @@ impl Broker {
                         for f in &sub.filters {
                             c.subs.retain(|(p, _)| *p != f.path);
                             c.subs.push((f.path.clone(), f.qos));
-                            for r in retained.iter().filter(|r| rumqttc::matches(&r.topic, &f.path)) {
+                            for r in retained
+                                .iter()
+                                .filter(|r| rumqttc::matches(&r.topic, &f.path))
+                            {
                                 let q = (r.qos as u8).min(f.qos as u8);
                                 deliver(c, &r.topic, r.payload.clone(), q, true);
                             }
@@ -306,7 +312,11 @@ impl Broker {
 }
 
 fn deliver(c: &mut Client, topic: &str, payload: Bytes, qos: u8, retain: bool) {
-    let qos = if qos >= 1 { QoS::AtLeastOnce } else { QoS::AtMostOnce };
+    let qos = if qos >= 1 {
+        QoS::AtLeastOnce
+    } else {
+        QoS::AtMostOnce
+    };
     let mut p = Publish::from_bytes(topic, qos, payload);
     p.retain = retain;
     if qos == QoS::AtLeastOnce {

@@ -66,7 +66,11 @@ fn read<T: Copy>(map: &BTreeMap<u16, T>, addr: u16, cnt: u16) -> Result<Vec<T>, 
         .collect()
 }
 
-fn write<T: Copy>(map: &mut BTreeMap<u16, T>, addr: u16, values: &[T]) -> Result<(), ExceptionCode> {
+fn write<T: Copy>(
+    map: &mut BTreeMap<u16, T>,
+    addr: u16,
+    values: &[T],
+) -> Result<(), ExceptionCode> {
     for i in 0..values.len() as u16 {
         if !map.contains_key(&addr.wrapping_add(i)) {
             return Err(ExceptionCode::IllegalDataAddress);
@@ -79,7 +83,11 @@ fn write<T: Copy>(map: &mut BTreeMap<u16, T>, addr: u16, values: &[T]) -> Result
 }
 
 impl State {
-    fn handle(&mut self, unit: u8, req: Request<'static>) -> Result<Option<Response>, ExceptionCode> {
+    fn handle(
+        &mut self,
+        unit: u8,
+        req: Request<'static>,
+    ) -> Result<Option<Response>, ExceptionCode> {
         let (function, address, count) = match &req {
             Request::ReadCoils(a, n) => (1, *a, *n),
             Request::ReadDiscreteInputs(a, n) => (2, *a, *n),
@@ -108,9 +116,15 @@ impl State {
         };
         Ok(Some(match req {
             Request::ReadCoils(a, n) => Response::ReadCoils(read(&u.coils, a, n)?),
-            Request::ReadDiscreteInputs(a, n) => Response::ReadDiscreteInputs(read(&u.discrete, a, n)?),
-            Request::ReadHoldingRegisters(a, n) => Response::ReadHoldingRegisters(read(&u.holding, a, n)?),
-            Request::ReadInputRegisters(a, n) => Response::ReadInputRegisters(read(&u.input, a, n)?),
+            Request::ReadDiscreteInputs(a, n) => {
+                Response::ReadDiscreteInputs(read(&u.discrete, a, n)?)
+            }
+            Request::ReadHoldingRegisters(a, n) => {
+                Response::ReadHoldingRegisters(read(&u.holding, a, n)?)
+            }
+            Request::ReadInputRegisters(a, n) => {
+                Response::ReadInputRegisters(read(&u.input, a, n)?)
+            }
             Request::WriteSingleCoil(a, v) => {
                 write(&mut u.coils, a, &[v])?;
                 Response::WriteSingleCoil(a, v)
@@ -157,7 +171,11 @@ impl TestServer {
                     let handler = Handler(state.clone());
                     let on_connected = |stream, socket_addr| {
                         let handler = handler.clone();
-                        async move { accept_tcp_connection(stream, socket_addr, |_| Ok(Some(handler.clone()))) }
+                        async move {
+                            accept_tcp_connection(stream, socket_addr, |_| {
+                                Ok(Some(handler.clone()))
+                            })
+                        }
                     };
                     // Dropping `serve` cancels every connection task it started.
                     tokio::select! {
@@ -245,4 +263,22 @@ impl Drop for TestServer {
     fn drop(&mut self) {
         self.stop.cancel();
     }
+}
+
+/// Lays out a SunSpec map on `unit`: the `SunS` marker at `base`, then each model's
+/// id, length and zeroed body, then the end marker (0xFFFF, 0). Returns each model's
+/// start address (of its ID register).
+pub fn sunspec_map(server: &TestServer, unit: u8, base: u16, models: &[(u16, u16)]) -> Vec<u16> {
+    server.set_holding(unit, base, &[0x5375, 0x6E53]);
+    let mut at = base + 2;
+    let mut starts = Vec::new();
+    for &(id, len) in models {
+        starts.push(at);
+        let mut words = vec![id, len];
+        words.extend(std::iter::repeat_n(0u16, usize::from(len)));
+        server.set_holding(unit, at, &words);
+        at += 2 + len;
+    }
+    server.set_holding(unit, at, &[0xFFFF, 0]);
+    starts
 }

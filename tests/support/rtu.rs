@@ -15,7 +15,11 @@ pub fn crc16_modbus(data: &[u8]) -> u16 {
     for &b in data {
         crc ^= u16::from(b);
         for _ in 0..8 {
-            crc = if crc & 1 != 0 { (crc >> 1) ^ 0xA001 } else { crc >> 1 };
+            crc = if crc & 1 != 0 {
+                (crc >> 1) ^ 0xA001
+            } else {
+                crc >> 1
+            };
         }
     }
     crc
@@ -44,7 +48,9 @@ pub async fn respond(mut port: SerialStream, slave: Arc<Mutex<Slave>>) {
     let mut buf: Vec<u8> = Vec::new();
     let mut chunk = [0u8; 256];
     loop {
-        let Ok(n) = port.read(&mut chunk).await else { return };
+        let Ok(n) = port.read(&mut chunk).await else {
+            return;
+        };
         if n == 0 {
             return;
         }
@@ -78,8 +84,9 @@ pub async fn respond(mut port: SerialStream, slave: Arc<Mutex<Slave>>) {
                 let val = u16::from_be_bytes([body[4], body[5]]);
                 match body[1] {
                     3 => {
-                        let words: Option<Vec<u16>> =
-                            (0..val).map(|i| s.holding.get(&(addr + i)).copied()).collect();
+                        let words: Option<Vec<u16>> = (0..val)
+                            .map(|i| s.holding.get(&(addr + i)).copied())
+                            .collect();
                         match words {
                             Some(w) => {
                                 let mut r = vec![s.unit, 3, (w.len() * 2) as u8];
