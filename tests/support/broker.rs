@@ -183,6 +183,9 @@ impl Broker {
     }
 
     async fn connection(&self, stream: TcpStream, stop: CancellationToken) {
+        // No Nagle: on a paused test clock the peer's delayed ACK (real time) would
+        // hold back small packets indefinitely.
+        let _ = stream.set_nodelay(true);
         let (mut rd, mut wr) = stream.into_split();
         let (tx, mut rx) = mpsc::unbounded_channel::<Packet>();
         let writer = tokio::spawn(async move {

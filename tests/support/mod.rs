@@ -54,3 +54,12 @@ pub async fn drain_for(rx: &mut mpsc::Receiver<SourceEvent>, d: Duration) -> Vec
     }
     out
 }
+
+/// Waits (in tokio time, yielding to other tasks) until `cond` holds; panics after 5 s.
+pub async fn until(what: &str, mut cond: impl FnMut() -> bool) {
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(5);
+    while !cond() {
+        assert!(tokio::time::Instant::now() < deadline, "never: {what}");
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+}

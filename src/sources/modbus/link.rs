@@ -227,7 +227,10 @@ impl ModbusLink {
                     .await?
                     .next()
                     .ok_or_else(|| io::Error::other(format!("{host} has no address")))?;
-                tcp::connect_slave(addr, Slave(*unit)).await
+                let stream = tokio::net::TcpStream::connect(addr).await?;
+                // Request and response are small; do not let Nagle hold a write back.
+                stream.set_nodelay(true)?;
+                Ok(tcp::attach_slave(stream, Slave(*unit)))
             }
             Link::ModbusRtu {
                 path,

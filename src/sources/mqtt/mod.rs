@@ -173,7 +173,11 @@ impl MqttLink {
         cancel: CancellationToken,
     ) {
         let cap = 64 + 2 * (self.points.len() + self.site.loads.len());
-        let (client, eventloop) = AsyncClient::new(self.rumqtt.clone(), cap);
+        let (client, mut eventloop) = AsyncClient::new(self.rumqtt.clone(), cap);
+        // Commands are small and latency matters more than packing them: no Nagle.
+        let mut net = eventloop.network_options();
+        net.set_tcp_nodelay(true);
+        eventloop.set_network_options(net);
         let (note_tx, note_rx) = mpsc::channel(8);
         // Two halves in one task (the library spawns nothing): one drives rumqttc's
         // event loop and is never cancelled mid-poll except at shutdown, the other
