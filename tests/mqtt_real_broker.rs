@@ -343,3 +343,87 @@ async fn the_broker_on_port_1883_when_one_answers() {
     }
     round_trip(1883, &unique_prefix()).await;
 }
+
+/// Makes a test CA and a server certificate for 127.0.0.1 with the `openssl` tool.
+fn make_certs(dir: &std::path::Path) -> bool {
+    let run = |args: &[&str]| {
+        Process::new("openssl")
+            .args(args)
+            .current_dir(dir)
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .status()
+            .is_ok_and(|s| s.success())
+    };
+    std::fs::write(dir.join("san.ext"), "subjectAltName=IP:127.0.0.1\n").unwrap();
+    run(&[
+        "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-keyout", "ca.key", "-out", "ca.pem",
+        "-days", "2", "-subj", "/CN=Spillway test CA",
+    ]) && run(&[
+        "req", "-newkey", "rsa:2048", "-nodes", "-keyout", "server.key", "-out", "server.csr",
+        "-subj", "/CN=127.0.0.1",
+    ]) && run(&[
+        "x509", "-req", "-in", "server.csr", "-CA", "ca.pem", "-CAkey", "ca.key",
+        "-CAcreateserial", "-out", "server.pem", "-days", "2", "-extfile", "san.ext",
+    ])
+}
+
+#[tokio::test]
+async fn tls_with_rustls_and_ring_to_a_mosquitto_started_by_the_test() {
+    if !std::path::Path::new(MOSQUITTO).exists() {
+        skip(&format!("{MOSQUITTO} is not installed"));
+        return;
+    }
+    let dir = std::env::temp_dir().join(format!("spillway-tls-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    if !make_certs(&dir) {
+        skip("the openssl tool is missing or failed to make test certificates");
+        return;
+    }
+    // Run as root, mosquitto drops to its own user: let it read the throw-away key.
+    use std::os::unix::fs::PermissionsExt;
+    std::fs::set_permissions(dir.join("server.key"), std::fs::Permissions::from_mode(0o644))
+        .unwrap();
+    // One broker, a TLS listener for the link and a plain one for the observer.
+    let (tls_port, plain_port) = (free_port(), free_port());
+    let conf = dir.join("mosquitto.conf");
+    std::fs::write(
+        &conf,
+        format!(
+            "per_listener_settings false\nallow_anonymous true\n\
+             listener {plain_port} 127.0.0.1\n\
+             listener {tls_port} 127.0.0.1\ncafile {d}/ca.pem\ncertfile {d}/server.pem\nkeyfile {d}/server.key\n",
+            d = dir.display()
+        ),
+    )
+    .unwrap();
+    let mut child = Process::new(MOSQUITTO)
+        .arg("-c")
+        .arg(&conf)
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let deadline = Instant::now() + Duration::from_secs(10);
+    while std::net::TcpStream::connect(("127.0.0.1", plain_port)).is_err()
+        || std::net::TcpStream::connect(("127.0.0.1", tls_port)).is_err()
+    {
+        assert!(Instant::now() < deadline, "mosquitto did not listen");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    let prefix = unique_prefix();
+    let mut obs = Observer::start(plain_port, &prefix).await;
+    let text = yaml(tls_port, &prefix).replace(
+        "client_id:",
+        &format!("tls: {{ ca_file: {}/ca.pem }}, client_id:", dir.display()),
+    );
+    let ctl = start_ctl(site(&text));
+    obs.expect(&format!("{prefix}/status"), "online").await;
+    ctl.dispatcher.apply(&pump(Command::On));
+    obs.expect(&format!("{prefix}/dev/pump/set"), "ON").await;
+    ctl.cancel.cancel();
+    ctl.task.await.unwrap();
+    let _ = child.kill();
+    let _ = child.wait();
+    let _ = std::fs::remove_dir_all(&dir);
+}
