@@ -288,3 +288,59 @@ impl Dispatcher {
         });
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::engine::{LimitReason, LoadDecision, Mode};
+    use crate::units::{Power, Timestamp};
+
+    fn site(unit: &str) -> Site {
+        let text = format!(
+            "
+site: {{ name: T, timezone: UTC, export: forbidden }}
+devices:
+  inv: {{ modbus_tcp: 127.0.0.1:1502, unit: 1 }}
+points:
+  grid: {{ device: inv, register: 0, type: i16, unit: W }}
+inverter:
+  rated: 4kW
+  limit: {{ device: inv, register: 10 }}
+  limit_unit: {unit}
+"
+        );
+        crate::config::load_str("t.yaml", &text)
+            .map_err(|e| e.render(false))
+            .unwrap()
+            .site
+    }
+
+    fn limit(site: &Site, w: Option<f64>) -> Level {
+        let d = Decisions {
+            now: Timestamp(0),
+            loads: Vec::<LoadDecision>::new(),
+            inverter_limit: w.map(Power),
+            limit_reason: LimitReason::ExportGuard,
+            mode: Mode::Normal,
+            surplus: Power::ZERO,
+            grid: None,
+            switchings: Vec::new(),
+        };
+        plan(site, &d, ActuatorOptions::default())[0].writes[0].level
+    }
+
+    #[test]
+    fn the_inverter_limit_is_written_in_the_configured_unit() {
+        let pct = site("'%'");
+        assert_eq!(limit(&pct, Some(1000.0)), Level::Value(25.0));
+        assert_eq!(limit(&pct, None), Level::Value(100.0), "unlimited = 100 %");
+        assert_eq!(
+            limit(&pct, Some(9000.0)),
+            Level::Value(100.0),
+            "clamped to rated"
+        );
+        let w = site("W");
+        assert_eq!(limit(&w, Some(1000.0)), Level::Value(1000.0));
+        assert_eq!(limit(&w, None), Level::Value(4000.0));
+    }
+}
