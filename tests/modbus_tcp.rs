@@ -521,3 +521,21 @@ async fn a_rebooted_relay_module_gets_its_state_back() {
     assert_eq!(b.stats.counts().connects, 2);
     b.stop().await;
 }
+
+#[tokio::test(start_paused = true)]
+async fn commands_set_just_before_cancelling_are_still_written() {
+    let server = TestServer::start().await;
+    relays_server(&server);
+    let mut b = Bench::start(server, &relays_yaml(), "relays", ActuatorOptions::default()).await;
+    b.command(&[Command::On, Command::Stage(1), Command::Off, Command::Off]);
+    drain_for(&mut b.events, Duration::from_secs(1)).await;
+    assert_eq!(b.server.coil(3, 2), Some(true));
+    // The daemon's shutdown: safe states first, then cancel, then await the task.
+    b.command(&[Command::Off, Command::Off, Command::Off, Command::Off]);
+    b.cancel.cancel();
+    b.task.await.unwrap();
+    assert_eq!(
+        [2, 4, 5, 6].map(|c| b.server.coil(3, c).unwrap()),
+        [false; 4]
+    );
+}

@@ -255,7 +255,9 @@ async fn commands_and_retained_state_are_published_and_status_is_online() {
     assert_eq!(new[0], "relay/pump/set=OFF");
     assert!(new[1].starts_with("bench/site/state/pump="), "{new:?}");
 
-    // A clean shutdown says `offline` itself (no last will needed).
+    // A clean shutdown publishes the last commands, then says `offline` itself (no
+    // last will needed).
+    b.dispatcher.apply(&decisions(&[Command::On, Command::Off]));
     b.cancel.cancel();
     (&mut b.task).await.unwrap();
     b.settle().await;
@@ -263,11 +265,20 @@ async fn commands_and_retained_state_are_published_and_status_is_online() {
         b.broker.retained("bench/site/status").as_deref(),
         Some("offline")
     );
-    let last = b.broker.received().pop().unwrap();
-    assert_eq!(
-        (last.client.as_str(), last.payload.as_str()),
-        ("bench-ctl", "offline")
-    );
+    let all = b.broker.received();
+    let tail: Vec<String> = all
+        .iter()
+        .rev()
+        .take(5)
+        .rev()
+        .map(|r| format!("{}={}", r.topic, r.payload))
+        .collect();
+    assert_eq!(tail[0], "relay/pump/set=ON", "{tail:?}");
+    assert_eq!(tail[1], r#"dimmer/set={"level": 0}"#, "{tail:?}");
+    assert!(tail[2].starts_with("bench/site/state/pump="), "{tail:?}");
+    assert!(tail[3].starts_with("bench/site/state/dimmer="), "{tail:?}");
+    assert_eq!(tail[4], "bench/site/status=offline", "{tail:?}");
+    assert_eq!(all.last().unwrap().client, "bench-ctl");
 }
 
 #[tokio::test(start_paused = true)]

@@ -357,14 +357,46 @@ fn make_certs(dir: &std::path::Path) -> bool {
     };
     std::fs::write(dir.join("san.ext"), "subjectAltName=IP:127.0.0.1\n").unwrap();
     run(&[
-        "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-keyout", "ca.key", "-out", "ca.pem",
-        "-days", "2", "-subj", "/CN=Spillway test CA",
+        "req",
+        "-x509",
+        "-newkey",
+        "rsa:2048",
+        "-nodes",
+        "-keyout",
+        "ca.key",
+        "-out",
+        "ca.pem",
+        "-days",
+        "2",
+        "-subj",
+        "/CN=Spillway test CA",
     ]) && run(&[
-        "req", "-newkey", "rsa:2048", "-nodes", "-keyout", "server.key", "-out", "server.csr",
-        "-subj", "/CN=127.0.0.1",
+        "req",
+        "-newkey",
+        "rsa:2048",
+        "-nodes",
+        "-keyout",
+        "server.key",
+        "-out",
+        "server.csr",
+        "-subj",
+        "/CN=127.0.0.1",
     ]) && run(&[
-        "x509", "-req", "-in", "server.csr", "-CA", "ca.pem", "-CAkey", "ca.key",
-        "-CAcreateserial", "-out", "server.pem", "-days", "2", "-extfile", "san.ext",
+        "x509",
+        "-req",
+        "-in",
+        "server.csr",
+        "-CA",
+        "ca.pem",
+        "-CAkey",
+        "ca.key",
+        "-CAcreateserial",
+        "-out",
+        "server.pem",
+        "-days",
+        "2",
+        "-extfile",
+        "san.ext",
     ])
 }
 
@@ -382,8 +414,11 @@ async fn tls_with_rustls_and_ring_to_a_mosquitto_started_by_the_test() {
     }
     // Run as root, mosquitto drops to its own user: let it read the throw-away key.
     use std::os::unix::fs::PermissionsExt;
-    std::fs::set_permissions(dir.join("server.key"), std::fs::Permissions::from_mode(0o644))
-        .unwrap();
+    std::fs::set_permissions(
+        dir.join("server.key"),
+        std::fs::Permissions::from_mode(0o644),
+    )
+    .unwrap();
     // One broker, a TLS listener for the link and a plain one for the observer.
     let (tls_port, plain_port) = (free_port(), free_port());
     let conf = dir.join("mosquitto.conf");

@@ -66,8 +66,9 @@ pub enum SourceEvent {
     },
     /// A payload or register block that could not be understood; counted and ignored.
     Malformed {
-        /// Which device.
-        device: DeviceId,
+        /// Which device (for MQTT: the site's first MQTT device; `None` when the
+        /// site has none and the payload came to an override topic).
+        device: Option<DeviceId>,
         /// Where it came from: a topic, or `holding 40000+2`.
         origin: String,
         /// What was wrong.

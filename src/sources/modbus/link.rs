@@ -99,7 +99,9 @@ impl ModbusLink {
     }
 
     /// Runs until `cancel` fires (or `events` is closed). Writes nothing until
-    /// `commands` says `commanded`, and not before the actuator read-back.
+    /// `commands` says `commanded`, and not before the actuator read-back. When
+    /// cancelled between requests it makes one last pass over the latest commands,
+    /// so a daemon that set the safe states before cancelling gets them written.
     pub async fn run(
         self,
         mut commands: watch::Receiver<Arc<DeviceCommands>>,
@@ -162,6 +164,7 @@ impl ModbusLink {
             }
             tokio::select! {
                 biased;
+                // Both cancel-safe: a token and a sleep.
                 () = cancel.cancelled() => return,
                 () = sleep(delay) => {}
             }
@@ -334,13 +337,39 @@ impl ModbusLink {
                 biased;
                 // All three branches are cancel-safe: nothing is lost when one of the
                 // others completes first.
-                () = cancel.cancelled() => return Err(Fail::Cancelled),
+                () = cancel.cancelled() => {
+                    self.final_writes(ctx, st, commands, events).await;
+                    return Err(Fail::Cancelled);
+                }
                 changed = commands.changed(), if st.watching => match changed {
                     Ok(()) => st.commands = Arc::clone(&commands.borrow_and_update()),
                     Err(_) => st.watching = false,
                 },
                 () = sleep_until(wake) => {}
             }
+        }
+    }
+
+    /// On shutdown: one last pass over the latest commands (the daemon puts the safe
+    /// states there before it cancels), each request still under its timeout.
+    async fn final_writes(
+        &self,
+        ctx: &mut Context,
+        st: &mut State,
+        commands: &mut watch::Receiver<Arc<DeviceCommands>>,
+        events: &mpsc::Sender<SourceEvent>,
+    ) {
+        if st.watching {
+            st.commands = Arc::clone(&commands.borrow_and_update());
+        }
+        let live = CancellationToken::new();
+        let io = Io {
+            link: self,
+            events,
+            cancel: &live,
+        };
+        if self.write_due(ctx, st, &io).await.is_ok() {
+            debug!(device = %self.dev().name, "final writes done");
         }
     }
 
@@ -475,7 +504,7 @@ impl ModbusLink {
         } else {
             warn!(device = %self.dev().name, "no SunSpec model 123 or 704: the inverter limit cannot be written");
             io.emit(SourceEvent::Malformed {
-                device: self.device,
+                device: Some(self.device),
                 origin: "inverter limit".to_owned(),
                 detail: "the device has no SunSpec model 123 or 704 to write a power limit to"
                     .to_owned(),

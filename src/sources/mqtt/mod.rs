@@ -163,8 +163,9 @@ impl MqttLink {
         Arc::clone(&self.stats)
     }
 
-    /// Runs until `cancel` fires; then publishes `offline`, disconnects cleanly (within
-    /// the shutdown grace) and returns.
+    /// Runs until `cancel` fires; then publishes the latest commands that are still
+    /// due (the daemon's safe states), `offline`, disconnects cleanly (within the
+    /// shutdown grace) and returns.
     pub async fn run(
         self,
         outputs: watch::Receiver<Arc<MqttOutputs>>,
@@ -271,6 +272,7 @@ impl MqttLink {
                     }
                     tokio::select! {
                         biased;
+                        // Both cancel-safe: a token and a sleep.
                         () = cancel.cancelled() => break,
                         () = sleep(delay) => {}
                     }
@@ -355,11 +357,7 @@ impl MqttLink {
     ) -> Result<(), ()> {
         self.stats.count(Counter::Malformed);
         warn!(topic, %detail, "malformed mqtt payload ignored");
-        let device = self
-            .devices
-            .first()
-            .copied()
-            .unwrap_or(DeviceId(usize::MAX));
+        let device = self.devices.first().copied();
         send(
             events,
             SourceEvent::Malformed {
@@ -395,6 +393,9 @@ impl MqttLink {
                 // All branches cancel-safe: a token, an mpsc receive, a watch change, a sleep.
                 () = cancel.cancelled() => {
                     if connected {
+                        // The daemon puts the safe states here before it cancels.
+                        current = Arc::clone(&outputs.borrow_and_update());
+                        self.publish_due(&client, &current, &mut sent);
                         let _ = client.try_publish(status_topic(&self.settings), QoS::AtLeastOnce, true, "offline");
                     }
                     let _ = client.try_disconnect();
