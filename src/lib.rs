@@ -4,8 +4,10 @@
 //! `sources` and `actuators` at the edges and `daemon` the only place that owns a
 //! runtime. See `ARCHITECTURE.md` for the map and the invariants.
 
+pub mod actuators;
 pub mod config;
 pub mod diag;
 pub mod engine;
 pub mod rules;
+pub mod sources;
 pub mod units;

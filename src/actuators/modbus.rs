@@ -1,0 +1,294 @@
+//! Modbus writes without I/O: which targets are due (changed, or their re-assert
+//! period has passed, or the link reconnected), the function codes that write them,
+//! and the register sequence of the SunSpec power-limit controls.
+//!
+//! Function codes: a coil fc 5, several contiguous coils due together fc 15, a
+//! one-register value fc 6, a multi-register value fc 16. Only addresses named by
+//! the configuration are written (for `limit: sunspec`, the registers listed on
+//! [`LimitControl`]).
+
+use std::collections::HashMap;
+use std::time::Duration;
+
+use tokio::time::Instant;
+
+use super::{DesiredWrite, DeviceCommands, Level};
+use crate::config::model::{ValueType, WordOrder, Write};
+use crate::sources::modbus::codec;
+
+/// Identity of a written target on one device.
+#[derive(Debug, Clone, PartialEq, Eq, Hash)]
+pub enum TargetKey {
+    /// A coil.
+    Coil(u16),
+    /// A holding register (the first of a multi-register value).
+    Register(u16),
+    /// The SunSpec power-limit control.
+    SunSpecLimit,
+}
+
+/// One Modbus write request.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum WriteOp {
+    /// fc 5.
+    Coil {
+        /// Address.
+        address: u16,
+        /// State.
+        value: bool,
+    },
+    /// fc 15.
+    Coils {
+        /// First address.
+        address: u16,
+        /// States from there.
+        values: Vec<bool>,
+    },
+    /// fc 6.
+    Register {
+        /// Address.
+        address: u16,
+        /// Word.
+        value: u16,
+    },
+    /// fc 16.
+    Registers {
+        /// First address.
+        address: u16,
+        /// Words from there.
+        words: Vec<u16>,
+    },
+}
+
+impl WriteOp {
+    /// Its function code.
+    pub fn function(&self) -> u8 {
+        match self {
+            WriteOp::Coil { .. } => 5,
+            WriteOp::Coils { .. } => 15,
+            WriteOp::Register { .. } => 6,
+            WriteOp::Registers { .. } => 16,
+        }
+    }
+
+    /// Its first address.
+    pub fn address(&self) -> u16 {
+        match self {
+            WriteOp::Coil { address, .. }
+            | WriteOp::Coils { address, .. }
+            | WriteOp::Register { address, .. }
+            | WriteOp::Registers { address, .. } => *address,
+        }
+    }
+}
+
+/// How many refresh periods fit in a revert timer: the SunSpec revert timers are set to
+/// `REVERT_FACTOR × inverter.refresh`, so three consecutive refreshes may fail before a
+/// timer runs out (`common practice` for watchdog margins).
+pub const REVERT_FACTOR: u32 = 4;
+
+/// The registers of an inverter's active-power-limit control, found by discovery.
+///
+/// Source for every offset: the published SunSpec model definitions (`sunspec/models`
+/// `json/model_123.json`, `json/model_704.json`); addresses are model start + offset.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum LimitControl {
+    /// Model 123 (immediate controls). Writes, in this order, each fc 6:
+    /// `WMaxLimPct_RvrtTms` (+7, seconds), `WMaxLimPct` (+5, % of WMax ÷ 10^sf),
+    /// `WMaxLim_Ena` (+9, 1 = enabled). `WMaxLimPct_SF` is at +23. When the revert timer
+    /// expires the inverter drops the limit (full power), so the link re-writes all
+    /// three every `inverter.refresh`, a quarter of the timer.
+    Immediate {
+        /// `WMaxLimPct`.
+        pct: u16,
+        /// `WMaxLimPct_RvrtTms`.
+        revert_time: u16,
+        /// `WMaxLim_Ena`.
+        enable: u16,
+        /// Value of `WMaxLimPct_SF`.
+        sf: i16,
+    },
+    /// Model 704 (DER AC controls). One fc 16 write of the six contiguous registers
+    /// +14..=+19: `WMaxLimPctEna` = 1, `WMaxLimPct` = limit, `WMaxLimPctRvrt` = the
+    /// site's safe limit, `WMaxLimPctEnaRvrt` = 1, `WMaxLimPctRvrtTms` (uint32,
+    /// seconds). `WMaxLimPct_SF` is at +54. If the controller stops refreshing, the
+    /// inverter falls back to the safe limit when the timer runs out: the fail-safe
+    /// direction for a no-export site.
+    DerControls {
+        /// `WMaxLimPctEna` (the first of the six).
+        enable: u16,
+        /// Value of `WMaxLimPct_SF`.
+        sf: i16,
+    },
+}
+
+impl LimitControl {
+    /// The writes that set `pct` (% of rated) with `safe_pct` as the reversion limit
+    /// and `refresh` as the rewrite period.
+    pub fn ops(&self, pct: f64, safe_pct: f64, refresh: Duration) -> Vec<WriteOp> {
+        let secs = (refresh.as_secs_f64() * f64::from(REVERT_FACTOR)).ceil().max(1.0);
+        let raw = |p: f64, sf: i16| -> u16 {
+            let v = p.clamp(0.0, 100.0) / 10f64.powi(i32::from(sf));
+            v.round().clamp(0.0, 65534.0) as u16
+        };
+        match *self {
+            LimitControl::Immediate { pct: at_pct, revert_time, enable, sf } => vec![
+                WriteOp::Register { address: revert_time, value: secs.min(65535.0) as u16 },
+                WriteOp::Register { address: at_pct, value: raw(pct, sf) },
+                WriteOp::Register { address: enable, value: 1 },
+            ],
+            LimitControl::DerControls { enable, sf } => {
+                let t = secs.min(f64::from(u32::MAX)) as u32;
+                vec![WriteOp::Registers {
+                    address: enable,
+                    words: vec![1, raw(pct, sf), raw(safe_pct, sf), 1, (t >> 16) as u16, t as u16],
+                }]
+            }
+        }
+    }
+}
+
+/// Writes that are due together, and what to remember once they succeeded.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Batch {
+    /// Requests, in order.
+    pub ops: Vec<WriteOp>,
+    /// Targets written and the encoded value each now holds.
+    pub marks: Vec<(TargetKey, Vec<u16>)>,
+    /// Who asked (for logs).
+    pub origin: String,
+}
+
+/// What was last written to each target and when.
+#[derive(Debug, Default, Clone)]
+pub struct WriteTracker {
+    written: HashMap<TargetKey, (Vec<u16>, Instant)>,
+}
+
+/// Percent values the SunSpec control needs besides the desired limit.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct LimitContext {
+    /// The control found on the device.
+    pub control: LimitControl,
+    /// The site's safe limit in % of rated.
+    pub safe_pct: f64,
+}
+
+impl WriteTracker {
+    /// Forgets every write: after a reconnect the device may have rebooted, so all
+    /// targets are written again.
+    pub fn forget_all(&mut self) {
+        self.written.clear();
+    }
+
+    /// Records a batch as written at `now`.
+    pub fn mark(&mut self, batch: &Batch, now: Instant) {
+        for (k, v) in &batch.marks {
+            self.written.insert(k.clone(), (v.clone(), now));
+        }
+    }
+
+    /// The batches due at `now`. `limit` is `None` while the SunSpec control is not
+    /// known (the limit waits for discovery).
+    pub fn due(&self, commands: &DeviceCommands, now: Instant, limit: Option<&LimitContext>) -> Vec<Batch> {
+        if !commands.commanded {
+            return Vec::new();
+        }
+        let is_due = |key: &TargetKey, enc: &[u16], refresh: Duration| match self.written.get(key) {
+            Some((v, at)) => v != enc || now.saturating_duration_since(*at) >= refresh,
+            None => true,
+        };
+        let mut coils: Vec<(u16, bool, &DesiredWrite)> = Vec::new();
+        let mut out = Vec::new();
+        for w in &commands.writes {
+            match &w.target {
+                Write::Coil { address, .. } => {
+                    let on = w.level.number() != 0.0;
+                    if is_due(&TargetKey::Coil(*address), &[u16::from(on)], w.refresh) {
+                        coils.push((*address, on, w));
+                    }
+                }
+                Write::Register { address, value_type, word_order, scale, .. } => {
+                    let words = register_words(w.level, *value_type, *word_order, *scale);
+                    let key = TargetKey::Register(*address);
+                    if is_due(&key, &words, w.refresh) {
+                        let op = if words.len() == 1 {
+                            WriteOp::Register { address: *address, value: words[0] }
+                        } else {
+                            WriteOp::Registers { address: *address, words: words.clone() }
+                        };
+                        out.push(Batch { ops: vec![op], marks: vec![(key, words)], origin: w.origin.clone() });
+                    }
+                }
+                Write::SunSpecLimit { .. } => {
+                    let Some(ctx) = limit else { continue };
+                    let pct = w.level.number();
+                    let ops = ctx.control.ops(pct, ctx.safe_pct, w.refresh);
+                    // Remember the encoded request so a changed limit is written at once.
+                    let enc: Vec<u16> = ops
+                        .iter()
+                        .flat_map(|op| match op {
+                            WriteOp::Register { value, .. } => vec![*value],
+                            WriteOp::Registers { words, .. } => words.clone(),
+                            _ => Vec::new(),
+                        })
+                        .collect();
+                    if is_due(&TargetKey::SunSpecLimit, &enc, w.refresh) {
+                        out.push(Batch { ops, marks: vec![(TargetKey::SunSpecLimit, enc)], origin: w.origin.clone() });
+                    }
+                }
+                Write::Mqtt { .. } => {}
+            }
+        }
+        // Contiguous coils due together go in one fc 15 request.
+        coils.sort_by_key(|c| c.0);
+        let mut i = 0;
+        while i < coils.len() {
+            let mut j = i + 1;
+            while j < coils.len() && coils[j].0 == coils[j - 1].0.wrapping_add(1) {
+                j += 1;
+            }
+            let run = &coils[i..j];
+            let op = if run.len() == 1 {
+                WriteOp::Coil { address: run[0].0, value: run[0].1 }
+            } else {
+                WriteOp::Coils { address: run[0].0, values: run.iter().map(|c| c.1).collect() }
+            };
+            let mut origins: Vec<&str> = run.iter().map(|c| c.2.origin.as_str()).collect();
+            origins.dedup();
+            out.insert(
+                0,
+                Batch {
+                    ops: vec![op],
+                    marks: run.iter().map(|c| (TargetKey::Coil(c.0), vec![u16::from(c.1)])).collect(),
+                    origin: origins.join(", "),
+                },
+            );
+            i = j;
+        }
+        out
+    }
+
+    /// When the next periodic re-assert falls due (`None` if nothing was written).
+    pub fn next_refresh(&self, commands: &DeviceCommands) -> Option<Instant> {
+        commands
+            .writes
+            .iter()
+            .filter_map(|w| {
+                let key = match &w.target {
+                    Write::Coil { address, .. } => TargetKey::Coil(*address),
+                    Write::Register { address, .. } => TargetKey::Register(*address),
+                    Write::SunSpecLimit { .. } => TargetKey::SunSpecLimit,
+                    Write::Mqtt { .. } => return None,
+                };
+                self.written.get(&key).map(|(_, at)| *at + w.refresh)
+            })
+            .min()
+    }
+}
+
+/// The words a register target holds for a level: level ÷ scale, encoded.
+pub fn register_words(level: Level, ty: ValueType, order: WordOrder, scale: f64) -> Vec<u16> {
+    let scale = if scale == 0.0 { 1.0 } else { scale };
+    codec::encode(level.number() / scale, ty, order)
+}

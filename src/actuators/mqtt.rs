@@ -1,0 +1,99 @@
+//! MQTT payloads of the actuator side: command payloads for load topics and the
+//! retained state documents under `<topic_prefix>/state/...`.
+//!
+//! State documents (JSON, retained):
+//! - `<prefix>/state/<load>`: `{"command": "on", "reason": "start_rule",
+//!   "why": "started: start rule is true", "power": 3000}` — `command` as the engine
+//!   prints it (`off`, `on`, `stage 2`, `45 %`, `16 A`, `charge 1.2 kW`), `reason` a
+//!   stable code, `why` the sentence, `power` the watts the command implies;
+//! - `<prefix>/state/site`: `{"mode": "normal", "surplus": 1520, "grid": -35,
+//!   "inverter_limit": 2500, "limit_reason": "export_guard"}` — watts, `grid` import
+//!   positive (`null` when stale), `inverter_limit` `null` when unlimited.
+
+use serde_json::json;
+
+use super::Level;
+use crate::config::model::{Qos, Site, Write};
+use crate::engine::{Decisions, LimitReason, Mode};
+use crate::units::trim_number;
+
+/// A retained state document.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StateTopic {
+    /// Topic below the prefix (`state/water_heater`).
+    pub suffix: String,
+    /// The JSON document.
+    pub payload: String,
+    /// The part of the document whose change is published at once; other changes
+    /// (live numbers) may be held back by the link's rate limit.
+    pub key: String,
+}
+
+/// The publication for an MQTT target at a level: topic, payload, retain, QoS.
+pub fn command_payload(target: &Write, level: Level) -> Option<(&str, String, bool, Qos)> {
+    let Write::Mqtt { topic, on, off, value, retain, qos, .. } = target else {
+        return None;
+    };
+    let payload = match level {
+        Level::Switch(true) => on.clone(),
+        Level::Switch(false) => off.clone(),
+        Level::Value(v) => value.replace("{value}", &trim_number(v)),
+    };
+    Some((topic.as_str(), payload, *retain, *qos))
+}
+
+/// The state documents for one set of decisions.
+pub fn state_topics(site: &Site, decisions: &Decisions) -> Vec<StateTopic> {
+    let mut out = Vec::with_capacity(site.loads.len() + 1);
+    for (load, d) in site.loads.iter().zip(&decisions.loads) {
+        let command = d.command.to_string();
+        let power = d.command.power(&load.kind).0;
+        let doc = json!({
+            "command": command,
+            "reason": d.reason.code(),
+            "why": d.reason.to_string(),
+            "power": power.round(),
+        });
+        out.push(StateTopic {
+            suffix: format!("state/{}", load.name),
+            payload: doc.to_string(),
+            key: format!("{command}|{}", d.reason.code()),
+        });
+    }
+    let mode = mode_word(decisions.mode);
+    let limit_reason = limit_word(decisions.limit_reason);
+    let limit = decisions.inverter_limit.map(|p| p.0.round());
+    let doc = json!({
+        "mode": mode,
+        "surplus": decisions.surplus.0.round(),
+        "grid": decisions.grid.map(|g| g.0.round()),
+        "inverter_limit": limit,
+        "limit_reason": limit_reason,
+    });
+    out.push(StateTopic {
+        suffix: "state/site".to_owned(),
+        payload: doc.to_string(),
+        key: format!("{mode}|{limit_reason}|{}", limit.is_some()),
+    });
+    out
+}
+
+/// The site mode as a word.
+pub fn mode_word(mode: Mode) -> &'static str {
+    match mode {
+        Mode::Normal => "normal",
+        Mode::Failsafe => "failsafe",
+        Mode::Recovering => "recovering",
+        Mode::Outage => "outage",
+    }
+}
+
+/// The reason for the inverter limit as a word.
+pub fn limit_word(reason: LimitReason) -> &'static str {
+    match reason {
+        LimitReason::None => "none",
+        LimitReason::ExportGuard => "export_guard",
+        LimitReason::Escalated => "escalated",
+        LimitReason::Failsafe => "failsafe",
+    }
+}

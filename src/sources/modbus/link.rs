@@ -1,0 +1,687 @@
+//! One Modbus device's task: connect, discover (SunSpec), read back actuator state,
+//! then poll the point groups and write the actuators, until cancelled.
+//!
+//! Every request runs under `tokio::time::timeout(device.timeout)`. A timeout or a
+//! transport error drops the connection (a late reply would poison the next request's
+//! transaction id) and reconnects after a capped, jittered backoff. An exception
+//! response is counted, reported by name, and costs only the block that drew it.
+
+use std::future::Future;
+use std::io;
+use std::sync::Arc;
+use std::time::Duration;
+
+use tokio::sync::{mpsc, watch};
+use tokio::time::{Instant, sleep, sleep_until, timeout};
+use tokio_modbus::client::{Client, Context, Reader, Writer, rtu, tcp};
+use tokio_modbus::{ExceptionCode, Slave};
+use tokio_util::sync::CancellationToken;
+use tracing::{debug, info, warn};
+
+use super::codec::{self, Sentinel};
+use super::plan::{self, Block, Decoded, Group, PointSpec, ScaleSpec, Words};
+use super::sunspec::{self, ModelMap};
+use super::{ModbusError, ModbusOptions};
+use crate::actuators::modbus::{LimitContext, LimitControl, WriteOp, WriteTracker};
+use crate::actuators::{DeviceCommands, targets_of};
+use crate::config::model::{
+    Device, DeviceId, Link, Parity, PointId, PointRead, Scale, Site, SunSpecRead, Table, WordOrder, Write,
+};
+use crate::sources::{Backoff, Clock, Counter, LinkStats, Readback, SourceEvent, modbus::ExceptionName};
+
+/// A Modbus device: its points, its actuator targets, its connection.
+#[derive(Debug)]
+pub struct ModbusLink {
+    site: Arc<Site>,
+    device: DeviceId,
+    options: ModbusOptions,
+    stats: Arc<LinkStats>,
+}
+
+/// Why a session ended.
+enum Fail {
+    /// Timeout or transport error: reconnect.
+    Transport(String),
+    /// The cancellation token fired.
+    Cancelled,
+    /// Nobody listens to the events any more.
+    Closed,
+}
+
+/// What survives reconnects.
+struct State {
+    groups: Vec<(Group, Instant)>,
+    static_points: Vec<PointSpec>,
+    sunspec_points: Vec<(PointId, SunSpecRead)>,
+    map: Option<ModelMap>,
+    limit_wanted: bool,
+    limit: Option<LimitContext>,
+    tracker: WriteTracker,
+    readback_done: bool,
+    commands: Arc<DeviceCommands>,
+    watching: bool,
+    up: Option<bool>,
+    answered: bool,
+}
+
+impl ModbusLink {
+    /// A link for one Modbus device of the site.
+    pub fn new(site: Arc<Site>, device: DeviceId, options: ModbusOptions) -> Result<Self, ModbusError> {
+        let d = site.devices.get(device.0).ok_or(ModbusError::NoSuchDevice(device.0))?;
+        if matches!(d.link, Link::Mqtt) {
+            return Err(ModbusError::NotModbus(d.name.clone()));
+        }
+        Ok(ModbusLink { site, device, options, stats: LinkStats::shared() })
+    }
+
+    /// The link's counters.
+    pub fn stats(&self) -> Arc<LinkStats> {
+        Arc::clone(&self.stats)
+    }
+
+    fn dev(&self) -> &Device {
+        &self.site.devices[self.device.0]
+    }
+
+    /// Runs until `cancel` fires (or `events` is closed). Writes nothing until
+    /// `commands` says `commanded`, and not before the actuator read-back. When
+    /// cancelled between requests it makes one last pass over the latest commands,
+    /// so a daemon that set the safe states before cancelling gets them written.
+    pub async fn run(
+        self,
+        mut commands: watch::Receiver<Arc<DeviceCommands>>,
+        events: mpsc::Sender<SourceEvent>,
+        clock: Clock,
+        cancel: CancellationToken,
+    ) {
+        let mut st = self.initial_state();
+        let mut backoff = Backoff::new(self.options.backoff, &self.dev().name);
+        loop {
+            let connected = tokio::select! {
+                biased;
+                // Cancel-safe: dropping a pending connect just closes the socket.
+                () = cancel.cancelled() => return,
+                r = timeout(self.options.connect_timeout, self.connect()) => r,
+            };
+            let reason = match connected {
+                Ok(Ok(mut ctx)) => {
+                    self.stats.count(Counter::Connect);
+                    info!(device = %self.dev().name, "modbus device connected");
+                    st.answered = false;
+                    let r = self.session(&mut ctx, &mut st, &mut commands, &events, &clock, &cancel).await;
+                    // Best effort; the transport may already be gone.
+                    let _ = timeout(Duration::from_millis(100), ctx.disconnect()).await;
+                    match r {
+                        Fail::Cancelled | Fail::Closed => return,
+                        Fail::Transport(reason) => reason,
+                    }
+                }
+                Ok(Err(e)) => {
+                    self.stats.count(Counter::TransportError);
+                    format!("cannot connect: {e}")
+                }
+                Err(_) => {
+                    self.stats.count(Counter::Timeout);
+                    format!("cannot connect within {}", crate::units::format_duration(self.options.connect_timeout))
+                }
+            };
+            if st.answered {
+                backoff.reset();
+            }
+            let delay = backoff.next_delay();
+            if st.up != Some(false) {
+                st.up = Some(false);
+                warn!(device = %self.dev().name, %reason, retry_in_ms = delay.as_millis() as u64, "modbus device down");
+                let ev = SourceEvent::DeviceDown { device: self.device, reason: reason.clone() };
+                if events.send(ev).await.is_err() {
+                    return;
+                }
+            } else {
+                debug!(device = %self.dev().name, %reason, retry_in_ms = delay.as_millis() as u64, "modbus reconnect failed");
+            }
+            tokio::select! {
+                biased;
+                // Both cancel-safe: a token and a sleep.
+                () = cancel.cancelled() => return,
+                () = sleep(delay) => {}
+            }
+        }
+    }
+
+    fn initial_state(&self) -> State {
+        let mut static_points = Vec::new();
+        let mut sunspec_points = Vec::new();
+        for (i, p) in self.site.points.iter().enumerate() {
+            if p.device != self.device {
+                continue;
+            }
+            match &p.read {
+                PointRead::Modbus(m) => static_points.push(PointSpec {
+                    point: PointId(i),
+                    table: m.table,
+                    address: m.address,
+                    value_type: m.value_type,
+                    word_order: m.word_order,
+                    scale: match m.scale {
+                        Scale::Factor(f) => ScaleSpec::Factor(f),
+                        Scale::Register { table, address } => ScaleSpec::Register { table, address },
+                    },
+                    sentinel: Sentinel::None,
+                    unit_factor: p.unit_factor,
+                    boolean: p.boolean,
+                    poll: p.poll,
+                }),
+                PointRead::SunSpec(s) => sunspec_points.push((PointId(i), s.clone())),
+                PointRead::Mqtt(_) => {}
+            }
+        }
+        let limit_wanted = self
+            .site
+            .inverter
+            .as_ref()
+            .is_some_and(|ic| matches!(ic.limit, Write::SunSpecLimit { device } if device == self.device));
+        let now = Instant::now();
+        State {
+            groups: plan::plan(&static_points).into_iter().map(|g| (g, now)).collect(),
+            static_points,
+            sunspec_points,
+            map: None,
+            limit_wanted,
+            limit: None,
+            tracker: WriteTracker::default(),
+            readback_done: false,
+            commands: Arc::new(DeviceCommands::default()),
+            watching: true,
+            up: None,
+            answered: false,
+        }
+    }
+
+    async fn connect(&self) -> io::Result<Context> {
+        match &self.dev().link {
+            Link::ModbusTcp { host, port, unit } => {
+                let addr = tokio::net::lookup_host((host.as_str(), *port))
+                    .await?
+                    .next()
+                    .ok_or_else(|| io::Error::other(format!("{host} has no address")))?;
+                let stream = tokio::net::TcpStream::connect(addr).await?;
+                // Request and response are small; do not let Nagle hold a write back.
+                stream.set_nodelay(true)?;
+                Ok(tcp::attach_slave(stream, Slave(*unit)))
+            }
+            Link::ModbusRtu { path, baud, parity, stop_bits, unit } => {
+                let builder = tokio_serial::new(path, *baud)
+                    .data_bits(tokio_serial::DataBits::Eight)
+                    .parity(match parity {
+                        Parity::None => tokio_serial::Parity::None,
+                        Parity::Even => tokio_serial::Parity::Even,
+                        Parity::Odd => tokio_serial::Parity::Odd,
+                    })
+                    .stop_bits(if *stop_bits == 2 { tokio_serial::StopBits::Two } else { tokio_serial::StopBits::One });
+                let port = tokio_serial::SerialStream::open(&builder).map_err(io::Error::from)?;
+                Ok(rtu::attach_slave(port, Slave(*unit)))
+            }
+            Link::Mqtt => Err(io::Error::other("not a Modbus device")),
+        }
+    }
+
+    /// One connection's life. Returns why it ended.
+    async fn session(
+        &self,
+        ctx: &mut Context,
+        st: &mut State,
+        commands: &mut watch::Receiver<Arc<DeviceCommands>>,
+        events: &mpsc::Sender<SourceEvent>,
+        clock: &Clock,
+        cancel: &CancellationToken,
+    ) -> Fail {
+        match self.session_inner(ctx, st, commands, events, clock, cancel).await {
+            Ok(never) => match never {},
+            Err(f) => f,
+        }
+    }
+
+    async fn session_inner(
+        &self,
+        ctx: &mut Context,
+        st: &mut State,
+        commands: &mut watch::Receiver<Arc<DeviceCommands>>,
+        events: &mpsc::Sender<SourceEvent>,
+        clock: &Clock,
+        cancel: &CancellationToken,
+    ) -> Result<std::convert::Infallible, Fail> {
+        let io = Io { link: self, events, cancel };
+        if self.dev().sunspec && st.map.is_none() {
+            self.discover(ctx, st, &io).await?;
+        }
+        if st.up != Some(true) {
+            st.up = Some(true);
+            io.emit(SourceEvent::DeviceUp { device: self.device }).await?;
+        }
+        if !st.readback_done {
+            self.readback(ctx, st, &io).await?;
+            st.readback_done = true;
+        }
+        // A reconnect may mean the device rebooted: write every target again.
+        st.tracker.forget_all();
+        if st.watching {
+            st.commands = Arc::clone(&commands.borrow_and_update());
+        }
+        loop {
+            self.write_due(ctx, st, &io).await?;
+            let now = Instant::now();
+            for gi in 0..st.groups.len() {
+                if st.groups[gi].1 <= now {
+                    self.poll_group(ctx, st, gi, &io, clock).await?;
+                    let (g, next) = &mut st.groups[gi];
+                    *next += g.period;
+                    if *next <= Instant::now() {
+                        *next = Instant::now() + g.period;
+                    }
+                }
+            }
+            let wake = st
+                .groups
+                .iter()
+                .map(|g| g.1)
+                .chain(st.tracker.next_refresh(&st.commands))
+                .min()
+                .unwrap_or_else(|| Instant::now() + Duration::from_secs(3600));
+            tokio::select! {
+                biased;
+                // All three branches are cancel-safe: nothing is lost when one of the
+                // others completes first.
+                () = cancel.cancelled() => {
+                    self.final_writes(ctx, st, commands, events).await;
+                    return Err(Fail::Cancelled);
+                }
+                changed = commands.changed(), if st.watching => match changed {
+                    Ok(()) => st.commands = Arc::clone(&commands.borrow_and_update()),
+                    Err(_) => st.watching = false,
+                },
+                () = sleep_until(wake) => {}
+            }
+        }
+    }
+
+    /// On shutdown: one last pass over the latest commands (the daemon puts the safe
+    /// states there before it cancels), each request still under its timeout.
+    async fn final_writes(
+        &self,
+        ctx: &mut Context,
+        st: &mut State,
+        commands: &mut watch::Receiver<Arc<DeviceCommands>>,
+        events: &mpsc::Sender<SourceEvent>,
+    ) {
+        if st.watching {
+            st.commands = Arc::clone(&commands.borrow_and_update());
+        }
+        let live = CancellationToken::new();
+        let io = Io { link: self, events, cancel: &live };
+        if self.write_due(ctx, st, &io).await.is_ok() {
+            debug!(device = %self.dev().name, "final writes done");
+        }
+    }
+
+    async fn discover(&self, ctx: &mut Context, st: &mut State, io: &Io<'_>) -> Result<(), Fail> {
+        let mut base = None;
+        for b in sunspec::BASES {
+            match io.call(ctx.read_holding_registers(b, 2), st).await? {
+                Ok(w) if w == sunspec::MARKER => {
+                    base = Some(b);
+                    break;
+                }
+                Ok(_) => {}
+                Err(code) => {
+                    debug!(device = %self.dev().name, base = b, code = %ExceptionName::from(code), "no SunSpec marker here")
+                }
+            }
+        }
+        let Some(base) = base else {
+            return Err(Fail::Transport("no SunSpec marker (SunS) at holding register 40000, 50000 or 0".to_owned()));
+        };
+        let mut models = Vec::new();
+        let mut addr = base.checked_add(2);
+        while let Some(a) = addr {
+            if models.len() >= sunspec::MAX_MODELS {
+                break;
+            }
+            let head = match io.call(ctx.read_holding_registers(a, 2), st).await? {
+                Ok(w) => w,
+                // Some devices answer the end marker's length with an exception.
+                Err(_) => match io.call(ctx.read_holding_registers(a, 1), st).await? {
+                    Ok(w) => w,
+                    Err(_) => break,
+                },
+            };
+            let id = head.first().copied().unwrap_or(sunspec::END_ID);
+            if id == sunspec::END_ID {
+                break;
+            }
+            let len = head.get(1).copied().unwrap_or(0);
+            models.push((id, a, len));
+            addr = a.checked_add(2).and_then(|x| x.checked_add(len));
+        }
+        let map = ModelMap { base, models };
+        info!(device = %self.dev().name, base, models = ?map.models.iter().map(|m| m.0).collect::<Vec<_>>(), "SunSpec map found");
+        io.emit(SourceEvent::Discovered {
+            device: self.device,
+            base,
+            models: map.models.iter().map(|&(id, start, _)| (id, start)).collect(),
+        })
+        .await?;
+        // Resolve the SunSpec points and plan them with the plain ones.
+        let mut points = st.static_points.clone();
+        for (id, read) in &st.sunspec_points {
+            let p = &self.site.points[id.0];
+            match map.resolve(read.model, &read.point) {
+                Ok(r) => points.push(PointSpec {
+                    point: *id,
+                    table: Table::HoldingRegister,
+                    address: r.address,
+                    value_type: r.value_type,
+                    word_order: WordOrder::HighFirst,
+                    scale: r.scale_factor.map_or(ScaleSpec::Factor(1.0), |a| ScaleSpec::Register {
+                        table: Table::HoldingRegister,
+                        address: a,
+                    }),
+                    sentinel: r.sentinel,
+                    unit_factor: p.unit_factor,
+                    boolean: p.boolean,
+                    poll: p.poll,
+                }),
+                Err(reason) => {
+                    warn!(point = %p.name, device = %self.dev().name, %reason, "SunSpec point unavailable");
+                    io.emit(SourceEvent::Unresolved { point: *id, reason }).await?;
+                }
+            }
+        }
+        let now = Instant::now();
+        st.groups = plan::plan(&points).into_iter().map(|g| (g, now)).collect();
+        if st.limit_wanted {
+            st.limit = self.limit_control(ctx, &map, st, io).await?;
+        }
+        st.map = Some(map);
+        Ok(())
+    }
+
+    /// Finds the power-limit control: model 704 when present, else model 123.
+    async fn limit_control(
+        &self,
+        ctx: &mut Context,
+        map: &ModelMap,
+        st: &mut State,
+        io: &Io<'_>,
+    ) -> Result<Option<LimitContext>, Fail> {
+        let Some(ic) = &self.site.inverter else {
+            return Ok(None);
+        };
+        let safe_pct = (ic.safe_limit.0 / ic.rated.0.max(1.0) * 100.0).clamp(0.0, 100.0);
+        let at = |model: u16, point: &str| -> Option<u16> {
+            let (start, _) = map.start(model)?;
+            Some(start + sunspec::locate(model, point).ok()?.offset)
+        };
+        // The control with its scale factor still to be read (sf = 0 as placeholder).
+        let (found, control_sf) = if map.start(704).is_some() {
+            (
+                at(704, "WMaxLimPctEna").map(|enable| LimitControl::DerControls { enable, sf: 0 }),
+                at(704, "WMaxLimPct_SF"),
+            )
+        } else if map.start(123).is_some() {
+            let found = match (at(123, "WMaxLimPct"), at(123, "WMaxLimPct_RvrtTms"), at(123, "WMaxLim_Ena")) {
+                (Some(pct), Some(revert_time), Some(enable)) => {
+                    Some(LimitControl::Immediate { pct, revert_time, enable, sf: 0 })
+                }
+                _ => None,
+            };
+            (found, at(123, "WMaxLimPct_SF"))
+        } else {
+            warn!(device = %self.dev().name, "no SunSpec model 123 or 704: the inverter limit cannot be written");
+            io.emit(SourceEvent::Malformed {
+                device: Some(self.device),
+                origin: "inverter limit".to_owned(),
+                detail: "the device has no SunSpec model 123 or 704 to write a power limit to".to_owned(),
+            })
+            .await?;
+            return Ok(None);
+        };
+        let mut sf = 0i16;
+        if let Some(a) = control_sf {
+            match io.call(ctx.read_holding_registers(a, 1), st).await? {
+                Ok(w) => match w.first().map(|v| *v as i16) {
+                    Some(codec::SUNSSF_UNIMPLEMENTED) | None => {
+                        warn!(device = %self.dev().name, "WMaxLimPct_SF not implemented: using 0");
+                    }
+                    Some(v) if (-10..=10).contains(&v) => sf = v,
+                    Some(v) => {
+                        warn!(device = %self.dev().name, sf = v, "WMaxLimPct_SF out of range: using 0");
+                    }
+                },
+                Err(code) => {
+                    io.exception(6, a, code).await?;
+                }
+            }
+        }
+        let control = found.map(|c| match c {
+            LimitControl::DerControls { enable, .. } => LimitControl::DerControls { enable, sf },
+            LimitControl::Immediate { pct, revert_time, enable, .. } => {
+                LimitControl::Immediate { pct, revert_time, enable, sf }
+            }
+        });
+        info!(device = %self.dev().name, ?control, "SunSpec power-limit control");
+        Ok(control.map(|control| LimitContext { control, safe_pct }))
+    }
+
+    async fn readback(&self, ctx: &mut Context, st: &mut State, io: &Io<'_>) -> Result<(), Fail> {
+        let mut values = Vec::new();
+        for t in targets_of(&self.site, self.device) {
+            let (target, value) = match &t {
+                Write::Coil { address, .. } => (
+                    format!("coil {address}"),
+                    match io.call(ctx.read_coils(*address, 1), st).await? {
+                        Ok(b) => b.first().map(|b| f64::from(u8::from(*b))),
+                        Err(code) => {
+                            io.exception(1, *address, code).await?;
+                            None
+                        }
+                    },
+                ),
+                Write::Register { address, value_type, word_order, scale, .. } => (
+                    format!("holding {address}"),
+                    match io.call(ctx.read_holding_registers(*address, value_type.registers()), st).await? {
+                        Ok(w) => codec::decode(&w, *value_type, *word_order, Sentinel::None).map(|v| v * scale),
+                        Err(code) => {
+                            io.exception(3, *address, code).await?;
+                            None
+                        }
+                    },
+                ),
+                Write::SunSpecLimit { .. } => {
+                    let reg = match st.limit.map(|l| l.control) {
+                        Some(LimitControl::Immediate { pct, sf, .. }) => Some((pct, sf)),
+                        Some(LimitControl::DerControls { enable, sf }) => Some((enable + 1, sf)),
+                        None => None,
+                    };
+                    let value = match reg {
+                        Some((a, sf)) => match io.call(ctx.read_holding_registers(a, 1), st).await? {
+                            Ok(w) => w.first().and_then(|v| codec::apply_sunssf(f64::from(*v), sf)),
+                            Err(code) => {
+                                io.exception(3, a, code).await?;
+                                None
+                            }
+                        },
+                        None => None,
+                    };
+                    ("sunspec limit %".to_owned(), value)
+                }
+                Write::Mqtt { .. } => continue,
+            };
+            values.push(Readback { target, value });
+        }
+        if values.is_empty() {
+            return Ok(());
+        }
+        info!(device = %self.dev().name, ?values, "actuator state read back");
+        io.emit(SourceEvent::Readback { device: self.device, values }).await
+    }
+
+    async fn write_due(&self, ctx: &mut Context, st: &mut State, io: &Io<'_>) -> Result<(), Fail> {
+        let batches = st.tracker.due(&st.commands, Instant::now(), st.limit.as_ref());
+        for batch in batches {
+            for op in &batch.ops {
+                self.stats.count(Counter::Write);
+                debug!(device = %self.dev().name, origin = %batch.origin, ?op, "modbus write");
+                let r = match op {
+                    WriteOp::Coil { address, value } => io.call(ctx.write_single_coil(*address, *value), st).await?,
+                    WriteOp::Coils { address, values } => {
+                        io.call(ctx.write_multiple_coils(*address, values), st).await?
+                    }
+                    WriteOp::Register { address, value } => {
+                        io.call(ctx.write_single_register(*address, *value), st).await?
+                    }
+                    WriteOp::Registers { address, words } => {
+                        io.call(ctx.write_multiple_registers(*address, words), st).await?
+                    }
+                };
+                if let Err(code) = r {
+                    io.exception(op.function(), op.address(), code).await?;
+                    // The rest of the batch would not make sense without this part.
+                    break;
+                }
+            }
+            // Marked even after an exception, so a refused write is retried at its
+            // refresh period rather than on every wake-up.
+            st.tracker.mark(&batch, Instant::now());
+        }
+        Ok(())
+    }
+
+    async fn poll_group(
+        &self,
+        ctx: &mut Context,
+        st: &mut State,
+        gi: usize,
+        io: &Io<'_>,
+        clock: &Clock,
+    ) -> Result<(), Fail> {
+        let blocks = st.groups[gi].0.blocks.clone();
+        let mut words = Words::default();
+        let mut split: Vec<usize> = Vec::new();
+        for (bi, b) in blocks.iter().enumerate() {
+            match self.read_block(ctx, b, st, io).await? {
+                Ok(w) => words.insert(b.table, b.start, &w),
+                Err(code) => {
+                    io.exception(function_of(b.table), b.start, code).await?;
+                    if code == ExceptionCode::IllegalDataAddress && b.runs.len() > 1 {
+                        split.push(bi);
+                    }
+                }
+            }
+        }
+        if !split.is_empty() {
+            let g = &mut st.groups[gi].0;
+            let mut nb = Vec::new();
+            for (bi, b) in g.blocks.iter().enumerate() {
+                if split.contains(&bi) {
+                    nb.extend(b.split());
+                } else {
+                    nb.push(b.clone());
+                }
+            }
+            info!(device = %self.dev().name, blocks = nb.len(), "read block refused across a gap: split into its runs");
+            g.blocks = nb;
+        }
+        let at = clock.now();
+        let points = st.groups[gi].0.points.clone();
+        for p in &points {
+            let value = match plan::decode_point(p, &words) {
+                Decoded::Value(v) => v,
+                Decoded::Missing => f64::NAN,
+                Decoded::NotRead => continue,
+            };
+            self.stats.count(Counter::Sample);
+            io.emit(SourceEvent::Sample { point: p.point, value, at }).await?;
+        }
+        Ok(())
+    }
+
+    async fn read_block(
+        &self,
+        ctx: &mut Context,
+        b: &Block,
+        st: &mut State,
+        io: &Io<'_>,
+    ) -> Result<Result<Vec<u16>, ExceptionCode>, Fail> {
+        let bits = |r: Result<Vec<bool>, ExceptionCode>| {
+            r.map(|v| v.iter().take(usize::from(b.count)).map(|x| u16::from(*x)).collect())
+        };
+        Ok(match b.table {
+            Table::Coil => bits(io.call(ctx.read_coils(b.start, b.count), st).await?),
+            Table::DiscreteInput => bits(io.call(ctx.read_discrete_inputs(b.start, b.count), st).await?),
+            Table::InputRegister => io.call(ctx.read_input_registers(b.start, b.count), st).await?,
+            Table::HoldingRegister => io.call(ctx.read_holding_registers(b.start, b.count), st).await?,
+        })
+    }
+}
+
+fn function_of(table: Table) -> u8 {
+    match table {
+        Table::Coil => 1,
+        Table::DiscreteInput => 2,
+        Table::HoldingRegister => 3,
+        Table::InputRegister => 4,
+    }
+}
+
+/// The session's request and event plumbing.
+struct Io<'a> {
+    link: &'a ModbusLink,
+    events: &'a mpsc::Sender<SourceEvent>,
+    cancel: &'a CancellationToken,
+}
+
+impl Io<'_> {
+    /// One request under the device's timeout. The outer error ends the session; the
+    /// inner one is the device's exception.
+    async fn call<T>(
+        &self,
+        request: impl Future<Output = tokio_modbus::Result<T>>,
+        st: &mut State,
+    ) -> Result<Result<T, ExceptionCode>, Fail> {
+        let link = self.link;
+        link.stats.count(Counter::Request);
+        let limit = link.dev().timeout;
+        let r = tokio::select! {
+            biased;
+            // Dropping a request mid-flight poisons the connection; we are leaving anyway.
+            () = self.cancel.cancelled() => return Err(Fail::Cancelled),
+            r = timeout(limit, request) => r,
+        };
+        match r {
+            Err(_) => {
+                link.stats.count(Counter::Timeout);
+                Err(Fail::Transport(format!("no answer within {}", crate::units::format_duration(limit))))
+            }
+            Ok(Err(e)) => {
+                link.stats.count(Counter::TransportError);
+                Err(Fail::Transport(format!("transport error: {e}")))
+            }
+            Ok(Ok(r)) => {
+                st.answered = true;
+                Ok(r)
+            }
+        }
+    }
+
+    async fn emit(&self, ev: SourceEvent) -> Result<(), Fail> {
+        self.events.send(ev).await.map_err(|_| Fail::Closed)
+    }
+
+    async fn exception(&self, function: u8, address: u16, code: ExceptionCode) -> Result<(), Fail> {
+        let link = self.link;
+        link.stats.count(Counter::Exception);
+        let code = ExceptionName::from(code);
+        warn!(device = %link.dev().name, function, address, %code, "modbus exception response");
+        self.emit(SourceEvent::Exception { device: link.device, function, address, code }).await
+    }
+}

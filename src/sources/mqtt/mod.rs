@@ -1,0 +1,513 @@
+//! The site's MQTT link: one connection that reads signal topics, takes override
+//! requests, publishes load commands, retained state and availability.
+//!
+//! Topics under the site's `topic_prefix` (default `spillway/<site>`):
+//! - `<prefix>/status`: `online` (retained) after every connect; the last will
+//!   `offline` (retained, QoS 1) tells subscribers when the controller vanished, and
+//!   `offline` is also published before a clean shutdown;
+//! - `<prefix>/state/<load>` and `<prefix>/state/site`: retained JSON documents (see
+//!   [`crate::actuators::mqtt`]);
+//! - `<prefix>/override/<load>`: override requests (see [`payload`]).
+//!
+//! QoS: each point and command topic has its own (`qos:`), default 1 (at least once);
+//! the prefix topics use the `mqtt.qos` setting, default 1. rumqttc reconnects on the
+//! next poll without any delay, so the link waits a capped, jittered backoff between
+//! attempts, and subscribes again after every ConnAck (sessions are clean). Retained
+//! deliveries on signal and override topics are ignored: a retained reading may be
+//! hours old, and a retained override would come back after every reconnect.
+
+pub mod payload;
+
+use std::collections::HashMap;
+use std::sync::Arc;
+use std::time::Duration;
+
+use rumqttc::{
+    AsyncClient, ConnectReturnCode, Event, EventLoop, LastWill, MqttOptions as RumqttOptions, Outgoing, Packet,
+    Publish, QoS,
+};
+use tokio::sync::{mpsc, watch};
+use tokio::time::{Instant, sleep, sleep_until};
+use tokio_util::sync::CancellationToken;
+use tracing::{debug, info, warn};
+
+pub use payload::{OverrideAction, OverrideRequest};
+
+use super::{Backoff, BackoffPolicy, Clock, Counter, LinkStats, SourceEvent};
+use crate::actuators::{MqttOutputs, command_payload};
+use crate::config::model::{DeviceId, MqttRead, MqttSettings, PointId, PointRead, Qos, Secret, Site};
+
+/// Tuning of the MQTT link.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct MqttOptions {
+    /// Reconnect delays.
+    pub backoff: BackoffPolicy,
+    /// Least time between two publications of `state/site` when only its live numbers
+    /// (surplus, grid) changed; a change of mode or limit is published at once.
+    pub site_state_interval: Duration,
+    /// How long a clean shutdown may take to flush `offline` and DISCONNECT.
+    pub shutdown_grace: Duration,
+}
+
+impl Default for MqttOptions {
+    fn default() -> Self {
+        MqttOptions {
+            backoff: BackoffPolicy::default(),
+            site_state_interval: Duration::from_secs(5),
+            shutdown_grace: Duration::from_secs(1),
+        }
+    }
+}
+
+/// Why the MQTT link cannot be built.
+#[derive(Debug, thiserror::Error)]
+pub enum MqttError {
+    /// The site file has no `mqtt` section.
+    #[error("the site has no `mqtt` section")]
+    NotConfigured,
+    /// The password variable is not set.
+    #[error("MQTT password variable {0} is not set: export it or use `password_file`")]
+    MissingEnv(String),
+    /// The password file could not be read.
+    #[error("cannot read MQTT password file {path}: {source}")]
+    PasswordFile {
+        /// The file.
+        path: String,
+        /// Why.
+        #[source]
+        source: std::io::Error,
+    },
+    /// TLS was asked for and could not be set up.
+    #[error("MQTT TLS: {0}")]
+    Tls(String),
+    /// TLS was asked for but this build has no TLS.
+    #[error("the site asks for MQTT over TLS but this build has no TLS: rebuild with the `tls` feature")]
+    NoTlsSupport,
+}
+
+/// The MQTT link of a site.
+#[derive(Debug)]
+pub struct MqttLink {
+    site: Arc<Site>,
+    settings: MqttSettings,
+    options: MqttOptions,
+    rumqtt: RumqttOptions,
+    stats: Arc<LinkStats>,
+    points: Vec<(PointId, MqttRead)>,
+    devices: Vec<DeviceId>,
+}
+
+/// What the event-loop half tells the publishing half.
+enum Note {
+    Connected,
+    Disconnected,
+}
+
+impl MqttLink {
+    /// Builds the link: reads the password (environment or file) and sets up TLS now,
+    /// so a mistake stops the daemon at start-up rather than at the first reconnect.
+    pub fn new(site: Arc<Site>, options: MqttOptions) -> Result<Self, MqttError> {
+        let settings = site.mqtt.clone().ok_or(MqttError::NotConfigured)?;
+        let mut o = RumqttOptions::new(&settings.client_id, &settings.host, settings.port);
+        o.set_keep_alive(settings.keep_alive.max(Duration::from_secs(1)));
+        o.set_clean_session(true);
+        o.set_last_will(LastWill::new(status_topic(&settings), "offline", QoS::AtLeastOnce, true));
+        if let Some(user) = &settings.username {
+            let password = match &settings.password {
+                None => String::new(),
+                Some(secret) => read_secret(secret)?,
+            };
+            o.set_credentials(user, password);
+        }
+        if let Some(tls) = &settings.tls {
+            o.set_transport(tls_transport(tls.ca_file.as_deref())?);
+        }
+        let points = site
+            .points
+            .iter()
+            .enumerate()
+            .filter_map(|(i, p)| match &p.read {
+                PointRead::Mqtt(m) => Some((PointId(i), m.clone())),
+                _ => None,
+            })
+            .collect();
+        let devices = site
+            .devices
+            .iter()
+            .enumerate()
+            .filter(|(_, d)| matches!(d.link, crate::config::model::Link::Mqtt))
+            .map(|(i, _)| DeviceId(i))
+            .collect();
+        Ok(MqttLink { site, settings, options, rumqtt: o, stats: LinkStats::shared(), points, devices })
+    }
+
+    /// The link's counters.
+    pub fn stats(&self) -> Arc<LinkStats> {
+        Arc::clone(&self.stats)
+    }
+
+    /// Runs until `cancel` fires; then publishes the latest commands that are still
+    /// due (the daemon's safe states), `offline`, disconnects cleanly (within the
+    /// shutdown grace) and returns.
+    pub async fn run(
+        self,
+        outputs: watch::Receiver<Arc<MqttOutputs>>,
+        events: mpsc::Sender<SourceEvent>,
+        clock: Clock,
+        cancel: CancellationToken,
+    ) {
+        let cap = 64 + 2 * (self.points.len() + self.site.loads.len());
+        let (client, mut eventloop) = AsyncClient::new(self.rumqtt.clone(), cap);
+        // Commands are small and latency matters more than packing them: no Nagle.
+        let mut net = eventloop.network_options();
+        net.set_tcp_nodelay(true);
+        eventloop.set_network_options(net);
+        let (note_tx, note_rx) = mpsc::channel(8);
+        // Two halves in one task (the library spawns nothing): one drives rumqttc's
+        // event loop and is never cancelled mid-poll except at shutdown, the other
+        // queues publications without blocking it.
+        tokio::join!(
+            self.drive(eventloop, note_tx, &events, &clock, &cancel),
+            self.publish(client, note_rx, outputs, &cancel),
+        );
+    }
+
+    async fn drive(
+        &self,
+        mut eventloop: EventLoop,
+        notes: mpsc::Sender<Note>,
+        events: &mpsc::Sender<SourceEvent>,
+        clock: &Clock,
+        cancel: &CancellationToken,
+    ) {
+        let mut backoff = Backoff::new(self.options.backoff, &self.settings.client_id);
+        let mut deadline: Option<Instant> = None;
+        let mut up: Option<bool> = None;
+        loop {
+            let polled = tokio::select! {
+                biased;
+                // Cancel-safe: starts the shutdown grace; the poll below is dropped once.
+                () = cancel.cancelled(), if deadline.is_none() => {
+                    deadline = Some(Instant::now() + self.options.shutdown_grace);
+                    continue;
+                }
+                // Cancel-safe: a sleep.
+                () = sleep_until(deadline.unwrap_or_else(Instant::now)), if deadline.is_some() => break,
+                // Not cancel-safe (a request may be half written); only the two
+                // shutdown branches above ever drop it.
+                r = eventloop.poll() => r,
+            };
+            match polled {
+                Ok(Event::Incoming(Packet::ConnAck(ack))) => {
+                    if ack.code != ConnectReturnCode::Success {
+                        continue;
+                    }
+                    self.stats.count(Counter::Connect);
+                    backoff.reset();
+                    info!(broker = %self.broker(), "mqtt connected");
+                    let _ = notes.send(Note::Connected).await;
+                    if up != Some(true) {
+                        up = Some(true);
+                        for d in &self.devices {
+                            if events.send(SourceEvent::DeviceUp { device: *d }).await.is_err() {
+                                return;
+                            }
+                        }
+                    }
+                }
+                Ok(Event::Incoming(Packet::Publish(p))) => {
+                    if self.incoming(&p, events, clock).await.is_err() {
+                        return;
+                    }
+                }
+                Ok(Event::Outgoing(Outgoing::Disconnect)) if deadline.is_some() => {
+                    // Give the DISCONNECT a moment on the wire, then leave.
+                    let _ = tokio::time::timeout(Duration::from_millis(50), eventloop.poll()).await;
+                    break;
+                }
+                Ok(_) => {}
+                Err(e) => {
+                    if deadline.is_some() {
+                        break;
+                    }
+                    self.stats.count(Counter::TransportError);
+                    let _ = notes.send(Note::Disconnected).await;
+                    let delay = backoff.next_delay();
+                    let reason = e.to_string();
+                    if up != Some(false) {
+                        up = Some(false);
+                        warn!(broker = %self.broker(), %reason, retry_in_ms = delay.as_millis() as u64, "mqtt connection lost");
+                        for d in &self.devices {
+                            let ev = SourceEvent::DeviceDown { device: *d, reason: format!("mqtt: {reason}") };
+                            if events.send(ev).await.is_err() {
+                                return;
+                            }
+                        }
+                    } else {
+                        debug!(broker = %self.broker(), %reason, retry_in_ms = delay.as_millis() as u64, "mqtt reconnect failed");
+                    }
+                    tokio::select! {
+                        biased;
+                        // Both cancel-safe: a token and a sleep.
+                        () = cancel.cancelled() => break,
+                        () = sleep(delay) => {}
+                    }
+                }
+            }
+        }
+    }
+
+    fn broker(&self) -> String {
+        format!("{}:{}", self.settings.host, self.settings.port)
+    }
+
+    /// A message from the broker: a signal, an override, or noise.
+    async fn incoming(&self, p: &Publish, events: &mpsc::Sender<SourceEvent>, clock: &Clock) -> Result<(), ()> {
+        let now = clock.now();
+        if let Some(name) = p.topic.strip_prefix(&self.settings.topic_prefix).and_then(|t| t.strip_prefix("/override/"))
+        {
+            if p.retain {
+                debug!(topic = %p.topic, "retained override ignored");
+                return Ok(());
+            }
+            let Some((id, load)) = self.site.load(name) else {
+                return self.malformed(events, &p.topic, format!("no load called \"{name}\"")).await;
+            };
+            return match payload::parse_override(load, &p.payload, now) {
+                Ok(action) => {
+                    info!(load = %load.name, ?action, "override requested");
+                    send(events, SourceEvent::Override(OverrideRequest { load: id, action })).await
+                }
+                Err(detail) => self.malformed(events, &p.topic, detail).await,
+            };
+        }
+        for (id, read) in self.points.iter().filter(|(_, r)| r.topic == p.topic) {
+            if p.retain {
+                debug!(topic = %p.topic, "retained reading ignored");
+                continue;
+            }
+            let point = &self.site.points[id.0];
+            match payload::parse_value(&p.payload, &read.payload) {
+                Ok(v) => {
+                    let value = if point.boolean { f64::from(u8::from(v != 0.0)) } else { v * point.unit_factor };
+                    self.stats.count(Counter::Sample);
+                    send(events, SourceEvent::Sample { point: *id, value, at: now }).await?;
+                }
+                Err(detail) => self.malformed(events, &p.topic, detail).await?,
+            }
+        }
+        Ok(())
+    }
+
+    async fn malformed(&self, events: &mpsc::Sender<SourceEvent>, topic: &str, detail: String) -> Result<(), ()> {
+        self.stats.count(Counter::Malformed);
+        warn!(topic, %detail, "malformed mqtt payload ignored");
+        let device = self.devices.first().copied();
+        send(events, SourceEvent::Malformed { device, origin: topic.to_owned(), detail }).await
+    }
+
+    /// The publishing half: subscriptions after every ConnAck, commands, state.
+    async fn publish(
+        &self,
+        client: AsyncClient,
+        mut notes: mpsc::Receiver<Note>,
+        mut outputs: watch::Receiver<Arc<MqttOutputs>>,
+        cancel: &CancellationToken,
+    ) {
+        let mut connected = false;
+        let mut watching = true;
+        let mut current = Arc::clone(&outputs.borrow_and_update());
+        // topic → (payload, when, key) last queued.
+        let mut sent: HashMap<String, (String, Instant, String)> = HashMap::new();
+        loop {
+            let wake = if connected { self.publish_due(&client, &current, &mut sent) } else { None };
+            tokio::select! {
+                biased;
+                // All branches cancel-safe: a token, an mpsc receive, a watch change, a sleep.
+                () = cancel.cancelled() => {
+                    if connected {
+                        // The daemon puts the safe states here before it cancels.
+                        current = Arc::clone(&outputs.borrow_and_update());
+                        self.publish_due(&client, &current, &mut sent);
+                        let _ = client.try_publish(status_topic(&self.settings), QoS::AtLeastOnce, true, "offline");
+                    }
+                    let _ = client.try_disconnect();
+                    return;
+                }
+                note = notes.recv() => match note {
+                    Some(Note::Connected) => {
+                        connected = true;
+                        sent.clear();
+                        self.on_connect(&client);
+                    }
+                    Some(Note::Disconnected) => connected = false,
+                    None => return,
+                },
+                changed = outputs.changed(), if watching => match changed {
+                    Ok(()) => current = Arc::clone(&outputs.borrow_and_update()),
+                    Err(_) => watching = false,
+                },
+                () = sleep_until(wake.unwrap_or_else(|| Instant::now() + Duration::from_secs(3600))) => {}
+            }
+        }
+    }
+
+    fn on_connect(&self, client: &AsyncClient) {
+        let mut filters: Vec<rumqttc::SubscribeFilter> =
+            self.points.iter().map(|(_, r)| rumqttc::SubscribeFilter::new(r.topic.clone(), qos(r.qos))).collect();
+        filters.push(rumqttc::SubscribeFilter::new(
+            format!("{}/override/+", self.settings.topic_prefix),
+            qos(self.settings.qos),
+        ));
+        filters.dedup_by(|a, b| a.path == b.path);
+        if let Err(e) = client.try_subscribe_many(filters) {
+            warn!(error = %e, "mqtt subscribe could not be queued");
+        }
+        if let Err(e) = client.try_publish(status_topic(&self.settings), QoS::AtLeastOnce, true, "online") {
+            warn!(error = %e, "mqtt status could not be queued");
+        }
+        self.stats.count(Counter::Request);
+    }
+
+    /// Queues what is due; returns when something held back falls due.
+    fn publish_due(
+        &self,
+        client: &AsyncClient,
+        current: &MqttOutputs,
+        sent: &mut HashMap<String, (String, Instant, String)>,
+    ) -> Option<Instant> {
+        let now = Instant::now();
+        let mut wake: Option<Instant> = None;
+        let mut at = |t: Instant| wake = Some(wake.map_or(t, |w: Instant| w.min(t)));
+        if current.commands.commanded {
+            for w in &current.commands.writes {
+                let Some((topic, payload, retain, q)) = command_payload(&w.target, w.level) else {
+                    continue;
+                };
+                let due = match sent.get(topic) {
+                    Some((p, t, _)) => *p != payload || now.saturating_duration_since(*t) >= w.refresh,
+                    None => true,
+                };
+                if due {
+                    if self.queue(client, topic, &payload, retain, qos(q)) {
+                        debug!(topic, %payload, origin = %w.origin, "mqtt command");
+                        self.stats.count(Counter::Write);
+                        sent.insert(topic.to_owned(), (payload, now, String::new()));
+                        at(now + w.refresh);
+                    }
+                } else if let Some((_, t, _)) = sent.get(topic) {
+                    at(*t + w.refresh);
+                }
+            }
+        }
+        for s in &current.state {
+            let topic = format!("{}/{}", self.settings.topic_prefix, s.suffix);
+            let due = match sent.get(&topic) {
+                None => true,
+                Some((p, _, _)) if *p == s.payload => false,
+                Some((_, _, k)) if *k != s.key => true,
+                Some((_, t, _)) => {
+                    let next = *t + self.options.site_state_interval;
+                    if now < next {
+                        at(next);
+                    }
+                    now >= next
+                }
+            };
+            if due && self.queue(client, &topic, &s.payload, true, qos(self.settings.qos)) {
+                sent.insert(topic, (s.payload.clone(), now, s.key.clone()));
+            }
+        }
+        wake
+    }
+
+    fn queue(&self, client: &AsyncClient, topic: &str, payload: &str, retain: bool, q: QoS) -> bool {
+        match client.try_publish(topic, q, retain, payload.as_bytes().to_vec()) {
+            Ok(()) => {
+                self.stats.count(Counter::Request);
+                true
+            }
+            Err(e) => {
+                warn!(topic, error = %e, "mqtt publication could not be queued; will retry");
+                false
+            }
+        }
+    }
+}
+
+async fn send(events: &mpsc::Sender<SourceEvent>, ev: SourceEvent) -> Result<(), ()> {
+    events.send(ev).await.map_err(|_| ())
+}
+
+/// `<prefix>/status`.
+pub fn status_topic(settings: &MqttSettings) -> String {
+    format!("{}/status", settings.topic_prefix)
+}
+
+/// `<prefix>/override/<load>`.
+pub fn override_topic(settings: &MqttSettings, load: &str) -> String {
+    format!("{}/override/{load}", settings.topic_prefix)
+}
+
+/// Our QoS in rumqttc's terms.
+pub fn qos(q: Qos) -> QoS {
+    match q {
+        Qos::AtMostOnce => QoS::AtMostOnce,
+        Qos::AtLeastOnce => QoS::AtLeastOnce,
+        Qos::ExactlyOnce => QoS::ExactlyOnce,
+    }
+}
+
+/// Reads a secret from the environment or a file (one trailing newline removed).
+fn read_secret(secret: &Secret) -> Result<String, MqttError> {
+    match secret {
+        Secret::Env(var) => std::env::var(var).map_err(|_| MqttError::MissingEnv(var.clone())),
+        Secret::File(path) => std::fs::read_to_string(path)
+            .map(|s| s.trim_end_matches(['\r', '\n']).to_owned())
+            .map_err(|source| MqttError::PasswordFile { path: path.clone(), source }),
+    }
+}
+
+#[cfg(feature = "tls")]
+fn tls_transport(ca_file: Option<&str>) -> Result<rumqttc::Transport, MqttError> {
+    use rustls::pki_types::CertificateDer;
+    use rustls::pki_types::pem::PemObject;
+
+    let mut roots = rustls::RootCertStore::empty();
+    match ca_file {
+        Some(path) => {
+            let certs: Vec<CertificateDer<'static>> = CertificateDer::pem_file_iter(path)
+                .map_err(|e| MqttError::Tls(format!("cannot read CA file {path}: {e}")))?
+                .collect::<Result<_, _>>()
+                .map_err(|e| MqttError::Tls(format!("CA file {path}: {e}")))?;
+            if certs.is_empty() {
+                return Err(MqttError::Tls(format!("CA file {path} holds no certificate")));
+            }
+            for c in certs {
+                roots.add(c).map_err(|e| MqttError::Tls(format!("CA file {path}: {e}")))?;
+            }
+        }
+        None => {
+            let found = rustls_native_certs::load_native_certs();
+            for c in found.certs {
+                // A broken system certificate is skipped, as every TLS client does.
+                let _ = roots.add(c);
+            }
+            if roots.is_empty() {
+                return Err(MqttError::Tls("no system CA certificates found: give `tls: {ca_file: ...}`".to_owned()));
+            }
+        }
+    }
+    let provider = Arc::new(rustls::crypto::ring::default_provider());
+    let config = rustls::ClientConfig::builder_with_provider(provider)
+        .with_safe_default_protocol_versions()
+        .map_err(|e| MqttError::Tls(e.to_string()))?
+        .with_root_certificates(roots)
+        .with_no_client_auth();
+    Ok(rumqttc::Transport::tls_with_config(rumqttc::TlsConfiguration::Rustls(Arc::new(config))))
+}
+
+#[cfg(not(feature = "tls"))]
+fn tls_transport(_ca_file: Option<&str>) -> Result<rumqttc::Transport, MqttError> {
+    Err(MqttError::NoTlsSupport)
+}

@@ -1,0 +1,229 @@
+//! MQTT payloads coming in: signal values and override requests.
+//!
+//! Signal payloads (a point's `topic`): a plain number (`21.5`), a word (`ON`, `OFF`,
+//! `true`, `false`, any case), or JSON with the point's pointer (`json: /ENERGY/Power`)
+//! leading to a number, a boolean or a string holding either. The value is then
+//! multiplied by the point's unit factor (`kW` → × 1000).
+//!
+//! Override payloads, on `<topic_prefix>/override/<load>`:
+//! - plain words: `on`, `off` or `auto`, optionally followed by a duration
+//!   (`on 30min`, `off 2h`); without one an override lasts one hour;
+//! - JSON: `{"command": "on", "for": "30min"}`, `{"command": "off"}`,
+//!   `{"command": "auto"}`; for a stepped load `"stage": 2`, for a modulating load
+//!   `"level": "60%"` (proportional), `"16A"` (charger) or `"1.5kW"` (battery).
+//!
+//! `auto` removes the override. An override never lasts more than 24 hours (a
+//! forgotten boost must not run for a week) and never defeats a safety guard (the
+//! engine sees to that). Anything else is malformed: counted, logged, ignored.
+
+use std::time::Duration;
+
+use serde_json::Value;
+
+use crate::config::model::{Load, LoadId, LoadKind, Payload};
+use crate::engine::Command;
+use crate::units::{Current, Dimension, Power, Ratio, Timestamp, parse_quantity};
+
+/// How long an override lasts when the payload does not say.
+pub const DEFAULT_OVERRIDE: Duration = Duration::from_secs(3600);
+/// The longest override accepted.
+pub const MAX_OVERRIDE: Duration = Duration::from_secs(24 * 3600);
+
+/// What a person asked for one load.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum OverrideAction {
+    /// Force this command until the instant (hand to `Engine::set_override`).
+    Set {
+        /// The forced command.
+        command: Command,
+        /// When the override ends by itself.
+        until: Timestamp,
+    },
+    /// Back to the rules (hand to `Engine::clear_override`).
+    Clear,
+}
+
+/// An override request for one load.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct OverrideRequest {
+    /// Which load.
+    pub load: LoadId,
+    /// What to do.
+    pub action: OverrideAction,
+}
+
+/// Decodes a signal payload into the number the point's configuration describes
+/// (before the unit factor).
+pub fn parse_value(payload: &[u8], format: &Payload) -> Result<f64, String> {
+    let text = std::str::from_utf8(payload).map_err(|_| "payload is not UTF-8".to_owned())?;
+    match format {
+        Payload::Plain => plain_value(text),
+        Payload::Json(pointer) => {
+            let doc: Value = serde_json::from_str(text).map_err(|e| format!("payload is not JSON: {e}"))?;
+            let v = doc.pointer(pointer).ok_or_else(|| format!("JSON has nothing at {pointer}"))?;
+            match v {
+                Value::Number(n) => n.as_f64().ok_or_else(|| format!("number at {pointer} is out of range")),
+                Value::Bool(b) => Ok(f64::from(u8::from(*b))),
+                Value::String(s) => plain_value(s),
+                other => Err(format!("JSON at {pointer} is {}, not a number", json_kind(other))),
+            }
+        }
+    }
+}
+
+fn json_kind(v: &Value) -> &'static str {
+    match v {
+        Value::Null => "null",
+        Value::Bool(_) => "a boolean",
+        Value::Number(_) => "a number",
+        Value::String(_) => "a string",
+        Value::Array(_) => "an array",
+        Value::Object(_) => "an object",
+    }
+}
+
+fn plain_value(text: &str) -> Result<f64, String> {
+    let t = text.trim();
+    match t.to_ascii_lowercase().as_str() {
+        "on" | "true" => return Ok(1.0),
+        "off" | "false" => return Ok(0.0),
+        _ => {}
+    }
+    match t.parse::<f64>() {
+        Ok(v) if v.is_finite() => Ok(v),
+        _ => Err(format!("\"{}\" is not a number or ON/OFF", t.chars().take(40).collect::<String>())),
+    }
+}
+
+/// Decodes an override payload for `load` received at `now`.
+pub fn parse_override(load: &Load, payload: &[u8], now: Timestamp) -> Result<OverrideAction, String> {
+    let text = std::str::from_utf8(payload).map_err(|_| "payload is not UTF-8".to_owned())?.trim();
+    let (word, duration, level, stage) = if text.starts_with('{') {
+        let doc: Value = serde_json::from_str(text).map_err(|e| format!("payload is not JSON: {e}"))?;
+        let obj = doc.as_object().ok_or_else(|| "expected a JSON object".to_owned())?;
+        for key in obj.keys() {
+            if !["command", "for", "level", "stage"].contains(&key.as_str()) {
+                return Err(format!("unknown key \"{key}\" (expected command, for, level, stage)"));
+            }
+        }
+        let word = obj
+            .get("command")
+            .and_then(Value::as_str)
+            .ok_or_else(|| "\"command\" must be \"on\", \"off\" or \"auto\"".to_owned())?
+            .to_owned();
+        let text_of = |k: &str| -> Result<Option<String>, String> {
+            match obj.get(k) {
+                None => Ok(None),
+                Some(Value::String(s)) => Ok(Some(s.clone())),
+                Some(_) => Err(format!("\"{k}\" must be a string such as \"30min\" or \"60%\"")),
+            }
+        };
+        let stage = match obj.get("stage") {
+            None => None,
+            Some(v) => Some(
+                v.as_u64()
+                    .filter(|n| (1..=255).contains(n))
+                    .ok_or_else(|| "\"stage\" must be a whole number from 1".to_owned())? as u8,
+            ),
+        };
+        (word, text_of("for")?, text_of("level")?, stage)
+    } else {
+        let mut parts = text.splitn(2, char::is_whitespace);
+        let word = parts.next().unwrap_or_default().to_owned();
+        (word, parts.next().map(str::to_owned), None, None)
+    };
+    let word = word.to_ascii_lowercase();
+    if word == "auto" {
+        return Ok(OverrideAction::Clear);
+    }
+    let duration = match duration {
+        None => DEFAULT_OVERRIDE,
+        Some(d) => {
+            let q = parse_quantity(&d).map_err(|e| format!("\"for\": {e}"))?;
+            if q.dimension != Dimension::Duration || q.value <= 0.0 {
+                return Err(format!("\"{d}\" is not a duration such as 30min or 2h"));
+            }
+            let d = Duration::from_secs_f64(q.value);
+            if d > MAX_OVERRIDE {
+                return Err("an override lasts at most 24 h".to_owned());
+            }
+            d
+        }
+    };
+    let command = match word.as_str() {
+        "off" => Command::Off,
+        "on" => on_command(load, level.as_deref(), stage)?,
+        other => {
+            return Err(format!("\"{}\" is not on, off or auto", other.chars().take(20).collect::<String>()));
+        }
+    };
+    Ok(OverrideAction::Set { command, until: now.plus(duration) })
+}
+
+/// The command "on" means for a kind of load, with an optional level or stage.
+fn on_command(load: &Load, level: Option<&str>, stage: Option<u8>) -> Result<Command, String> {
+    let level = match level {
+        None => None,
+        Some(text) => Some(parse_quantity(text).map_err(|e| format!("\"level\": {e}"))?),
+    };
+    let want = |dim: Dimension, example: &str| -> Result<Option<f64>, String> {
+        match level {
+            None => Ok(None),
+            Some(q) if q.dimension == dim && q.value >= 0.0 => Ok(Some(q.value)),
+            Some(_) => Err(format!("load \"{}\" takes {} as its level (e.g. {example})", load.name, dim.describe())),
+        }
+    };
+    if stage.is_some() && !matches!(load.kind, LoadKind::Stepped { .. }) {
+        return Err(format!("load \"{}\" has no stages", load.name));
+    }
+    Ok(match &load.kind {
+        LoadKind::Switched { .. } => {
+            if level.is_some() {
+                return Err(format!("load \"{}\" is on/off: it takes no level", load.name));
+            }
+            Command::On
+        }
+        LoadKind::Stepped { stages, .. } => {
+            let top = stages.len().min(255) as u8;
+            match stage {
+                Some(n) if n > top => {
+                    return Err(format!("load \"{}\" has {top} stages", load.name));
+                }
+                Some(n) => Command::Stage(n),
+                None => Command::Stage(top),
+            }
+        }
+        LoadKind::Proportional { .. } => {
+            Command::Setpoint(Ratio(want(Dimension::Ratio, "60%")?.unwrap_or(100.0).min(100.0)))
+        }
+        LoadKind::Charger { min, max, .. } => {
+            let a = want(Dimension::Current, "16A")?.unwrap_or(max.0);
+            Command::Current(Current(a.clamp(min.0, max.0)))
+        }
+        LoadKind::Battery { max_charge, .. } => {
+            let w = want(Dimension::Power, "1.5kW")?.unwrap_or(max_charge.0);
+            Command::Charge(Power(w.min(max_charge.0)))
+        }
+    })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn signal_payloads() {
+        let j = |p: &str| Payload::Json(p.to_owned());
+        assert_eq!(parse_value(b" 21.5\n", &Payload::Plain), Ok(21.5));
+        assert_eq!(parse_value(b"ON", &Payload::Plain), Ok(1.0));
+        assert_eq!(parse_value(b"false", &Payload::Plain), Ok(0.0));
+        assert_eq!(parse_value(br#"{"ENERGY":{"Power":512}}"#, &j("/ENERGY/Power")), Ok(512.0));
+        assert_eq!(parse_value(br#"{"on":true}"#, &j("/on")), Ok(1.0));
+        assert_eq!(parse_value(br#"{"t":"19.5"}"#, &j("/t")), Ok(19.5));
+        assert!(parse_value(b"warm", &Payload::Plain).is_err());
+        assert!(parse_value(b"NaN", &Payload::Plain).is_err());
+        assert!(parse_value(br#"{"t":null}"#, &j("/t")).is_err());
+        assert!(parse_value(br#"{"t":1}"#, &j("/u")).is_err());
+        assert!(parse_value(b"{", &j("/u")).is_err());
+    }
+}

@@ -1,0 +1,65 @@
+//! Test-support code shared by the adapter tests: a Modbus TCP test server, a small
+//! MQTT broker, an RTU responder for a pseudo-terminal, and site helpers.
+//!
+//! This is test code, not a product part: it does just enough of each protocol to
+//! drive the links over real loopback sockets and to inject faults.
+#![allow(dead_code)]
+
+pub mod broker;
+pub mod modbus;
+pub mod rtu;
+
+use std::sync::Arc;
+use std::time::Duration;
+
+use spillway::config::model::Site;
+use spillway::sources::SourceEvent;
+use tokio::sync::mpsc;
+
+/// Loads a site from YAML text, panicking with the rendered diagnostics.
+pub fn site(yaml: &str) -> Arc<Site> {
+    match spillway::config::load_str("test.yaml", yaml) {
+        Ok(l) => Arc::new(l.site),
+        Err(e) => panic!("{}", e.render(false)),
+    }
+}
+
+/// Waits for the first event that `pick` accepts, skipping others; panics after
+/// `limit` of (tokio) time.
+pub async fn wait_for<T>(
+    rx: &mut mpsc::Receiver<SourceEvent>,
+    limit: Duration,
+    mut pick: impl FnMut(&SourceEvent) -> Option<T>,
+) -> T {
+    let deadline = tokio::time::Instant::now() + limit;
+    loop {
+        match tokio::time::timeout_at(deadline, rx.recv()).await {
+            Ok(Some(ev)) => {
+                if let Some(t) = pick(&ev) {
+                    return t;
+                }
+            }
+            Ok(None) => panic!("event channel closed"),
+            Err(_) => panic!("no matching event within {limit:?}"),
+        }
+    }
+}
+
+/// Collects every event that arrives within `d` (tokio time).
+pub async fn drain_for(rx: &mut mpsc::Receiver<SourceEvent>, d: Duration) -> Vec<SourceEvent> {
+    let deadline = tokio::time::Instant::now() + d;
+    let mut out = Vec::new();
+    while let Ok(Some(ev)) = tokio::time::timeout_at(deadline, rx.recv()).await {
+        out.push(ev);
+    }
+    out
+}
+
+/// Waits (in tokio time, yielding to other tasks) until `cond` holds; panics after 5 s.
+pub async fn until(what: &str, mut cond: impl FnMut() -> bool) {
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(5);
+    while !cond() {
+        assert!(tokio::time::Instant::now() < deadline, "never: {what}");
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+}
