@@ -204,6 +204,26 @@ impl Engine {
         std::mem::take(&mut self.results)
     }
 
+    /// What to write when the controller stops or loses its inputs: every load in its
+    /// safe state (`hold` keeps the last command) and the inverter at its safe limit.
+    pub fn safe_decisions(&self, now: Timestamp) -> Decisions {
+        let mut d = self.decisions.clone();
+        d.now = now;
+        for ((out, l), st) in d.loads.iter_mut().zip(&self.site.loads).zip(&self.loads) {
+            let command = match l.safe_state {
+                SafeState::Off => Command::Off,
+                SafeState::On => full_command(&l.kind),
+                SafeState::Hold => st.command,
+            };
+            *out = LoadDecision { command, reason: Reason::Failsafe };
+        }
+        d.inverter_limit = self.site.inverter.as_ref().map(|i| i.safe_limit);
+        d.limit_reason = if d.inverter_limit.is_some() { LimitReason::Failsafe } else { LimitReason::None };
+        d.mode = Mode::Failsafe;
+        d.switchings.clear();
+        d
+    }
+
     /// The last decisions.
     pub fn decisions(&self) -> &Decisions {
         &self.decisions

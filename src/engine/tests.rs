@@ -497,6 +497,18 @@ fn fresh_data_returning_causes_at_most_one_switching_per_load_in_the_next_minute
 }
 
 #[test]
+fn safe_decisions_put_every_load_in_its_safe_state_and_the_inverter_at_its_safe_limit() {
+    let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
+    h.set("pv", 4000.0);
+    h.set("grid", -4500.0);
+    h.run(secs(30));
+    assert_eq!(h.command("tank"), Command::On);
+    let d = h.engine.safe_decisions(h.now);
+    assert!(d.loads.iter().all(|l| l.command == Command::Off && l.reason == Reason::Failsafe));
+    assert_eq!(d.inverter_limit, Some(Power(0.0)));
+}
+
+#[test]
 fn a_load_whose_own_signal_goes_stale_takes_its_safe_state_while_others_run() {
     let loads = r#"
   - name: tank
