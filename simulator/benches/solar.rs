@@ -1,0 +1,2 @@
+//! Benchmark placeholder replaced below.
+fn main() {}
