@@ -17,13 +17,41 @@ pub const DEFAULT_RAMP_PER_S: f64 = 0.10;
 /// `pac0_w` is the AC rating; the DC input limit is `pac0_w / eta_nom`. Output is
 /// clipped to `[0, pac0_w]`.
 pub fn pvwatts_ac(pdc_w: f64, pac0_w: f64, eta_nom: f64, eta_ref: f64) -> f64 {
-    if pdc_w <= 0.0 || pac0_w <= 0.0 {
-        return 0.0;
+    PvWattsCurve::new(pac0_w, eta_nom, eta_ref).ac(pdc_w)
+}
+
+/// The PVWatts efficiency curve of one inverter with its constants folded, so that a
+/// step costs no division: η·P = (η_nom/η_ref)·(0.9858·P − 0.0162·P²/P_dc0 − 0.0059·P_dc0).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct PvWattsCurve {
+    pac0_w: f64,
+    pdc0_w: f64,
+    inv_pdc0: f64,
+    scale: f64,
+}
+
+impl PvWattsCurve {
+    /// The curve of an inverter rated `pac0_w` AC.
+    pub fn new(pac0_w: f64, eta_nom: f64, eta_ref: f64) -> Self {
+        let pdc0_w = pac0_w / eta_nom;
+        PvWattsCurve {
+            pac0_w,
+            pdc0_w,
+            inv_pdc0: if pdc0_w > 0.0 { 1.0 / pdc0_w } else { 0.0 },
+            scale: eta_nom / eta_ref,
+        }
     }
-    let pdc0 = pac0_w / eta_nom;
-    let zeta = pdc_w / pdc0;
-    let eta = eta_nom / eta_ref * (-0.0162 * zeta - 0.0059 / zeta + 0.9858);
-    (eta * pdc_w).clamp(0.0, pac0_w)
+
+    /// AC output for `pdc_w` of DC input, W, clipped to `[0, rating]`.
+    #[inline]
+    pub fn ac(&self, pdc_w: f64) -> f64 {
+        if pdc_w <= 0.0 || self.pac0_w <= 0.0 {
+            return 0.0;
+        }
+        let ac =
+            self.scale * (pdc_w * (0.9858 - 0.0162 * pdc_w * self.inv_pdc0) - 0.0059 * self.pdc0_w);
+        ac.clamp(0.0, self.pac0_w)
+    }
 }
 
 /// Settings of one inverter.
@@ -72,6 +100,7 @@ impl PowerLimit {
     }
 
     /// Moves the effective limit toward `setpoint` over `dt_s` and returns it, W.
+    #[inline]
     pub fn advance(&mut self, setpoint: Option<f64>, dt_s: f64) -> f64 {
         let target = setpoint.unwrap_or(self.rated_w).clamp(0.0, self.rated_w);
         if self.ramp_w_per_s == 0.0 {

@@ -63,6 +63,8 @@ pub struct Geometry {
     pub cos_aoi: f64,
     /// cos(zenith) of the sun.
     pub cos_zenith: f64,
+    /// Beam projection ratio Rb = max(cos aoi, 0) / max(cos z, 0.01745) (Hay–Davies).
+    pub projection_ratio: f64,
 }
 
 impl Plane {
@@ -87,6 +89,7 @@ impl Plane {
         Geometry {
             cos_aoi,
             cos_zenith: cos_z,
+            projection_ratio: cos_aoi.max(0.0) / cos_z.max(0.017_45),
         }
     }
 
@@ -95,7 +98,8 @@ impl Plane {
         self.geometry(sun).cos_aoi.acos().to_degrees()
     }
 
-    /// Transposes `irr` onto the plane.
+    /// Transposes `irr` onto the plane (`g` from [`Plane::geometry`], or interpolated
+    /// between two such values).
     pub fn poa(
         &self,
         g: &Geometry,
@@ -104,18 +108,33 @@ impl Plane {
         albedo: f64,
         model: SkyDiffuse,
     ) -> Poa {
+        let inv = if dni_extra > 0.0 {
+            1.0 / dni_extra
+        } else {
+            0.0
+        };
+        self.poa_with_inverse(g, irr, inv, albedo, model)
+    }
+
+    /// [`Plane::poa`] with `1 / dni_extra` given, for callers that keep it (the
+    /// per-second path avoids divisions).
+    #[inline]
+    pub fn poa_with_inverse(
+        &self,
+        g: &Geometry,
+        irr: &Irradiance,
+        inv_dni_extra: f64,
+        albedo: f64,
+        model: SkyDiffuse,
+    ) -> Poa {
         let beam = (irr.dni * g.cos_aoi).max(0.0);
         let view_sky = 0.5 * (1.0 + self.cos_tilt);
         let sky_diffuse = match model {
             SkyDiffuse::Isotropic => irr.dhi * view_sky,
             SkyDiffuse::HayDavies => {
-                let rb = g.cos_aoi.max(0.0) / g.cos_zenith.max(0.017_45);
-                let ai = if dni_extra > 0.0 {
-                    irr.dni / dni_extra
-                } else {
-                    0.0
-                };
-                (irr.dhi * (1.0 - ai) * view_sky).max(0.0) + (irr.dhi * ai * rb).max(0.0)
+                let ai = irr.dni * inv_dni_extra;
+                (irr.dhi * (1.0 - ai) * view_sky).max(0.0)
+                    + (irr.dhi * ai * g.projection_ratio).max(0.0)
             }
         };
         let ground = irr.ghi * albedo * (1.0 - self.cos_tilt) * 0.5;

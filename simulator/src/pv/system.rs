@@ -11,7 +11,7 @@ use chrono::{DateTime, Datelike, NaiveDate, Offset, TimeZone};
 use chrono_tz::Tz;
 use serde::Serialize;
 
-use crate::inverter::{ETA_REFERENCE, PowerLimit, pvwatts_ac};
+use crate::inverter::{ETA_REFERENCE, PowerLimit, PvWattsCurve};
 use crate::pv_output::{PvSample, PvSource};
 use crate::sky::{self, Irradiance};
 use crate::sun::{Atmosphere, Observer, SunTrack, delta_t_estimate};
@@ -22,7 +22,7 @@ use crate::weather::{
 };
 
 use super::config::{ClearSkyModel, Layout, LocationConfig, SolarConfig, SolarError, parse_clock};
-use super::{faiman, string_equivalent_irradiance};
+use super::string_equivalent_irradiance;
 
 /// A module shaded in a daily window (seconds of the local day).
 #[derive(Debug, Clone)]
@@ -48,6 +48,8 @@ struct StringModel {
     modules: usize,
     module_w: f64,
     shades: Vec<Shade>,
+    /// The module-level inverter curve (used with `Layout::Module`).
+    module_curve: PvWattsCurve,
 }
 
 #[derive(Debug, Clone)]
@@ -60,18 +62,27 @@ struct ArrayModel {
     nameplate_w: f64,
 }
 
+/// Per-array values at one knot.
+#[derive(Debug, Clone, Copy, Default)]
+struct ArrayKnot {
+    geometry: Geometry,
+    /// 1 / (u0 + u1·wind): the Faiman heat-transfer term, K per W/m².
+    heat: f64,
+}
+
 /// Slowly varying values at one knot time.
 #[derive(Debug, Clone, Default)]
 struct Knot {
-    t_s: f64,
+    t_ms: i64,
     clear: Irradiance,
     cos_zenith: f64,
     zenith_deg: f64,
     dni_extra: f64,
-    cos_aoi: Vec<f64>,
+    inv_dni_extra: f64,
+    arrays: Vec<ArrayKnot>,
     air_c: f64,
-    wind: f64,
     local_tod_s: f64,
+    solar_day: i64,
 }
 
 #[derive(Debug, Clone)]
@@ -95,15 +106,17 @@ struct Model {
     derate: f64,
     arrays: Vec<ArrayModel>,
     layout: Layout,
-    unit_rating_w: f64,
-    eta_nom: f64,
+    central: PvWattsCurve,
     weather: WeatherConfig,
     sky: Sky,
     wind: Wind,
-    knot_s: f64,
+    knot_ms: i64,
     k0: Knot,
     k1: Knot,
     have_knots: bool,
+    inv_span_ms: f64,
+    has_shading: bool,
+    inv_nameplate_w: f64,
     doy_day: i64,
     doy_extra: f64,
     tz_block: i64,
@@ -169,6 +182,11 @@ impl PvSystem {
                 .map(|(k, s)| StringModel {
                     modules: s.modules,
                     module_w: s.module_power,
+                    module_curve: PvWattsCurve::new(
+                        cfg.inverter.rated_ac.unwrap_or(s.module_power),
+                        cfg.inverter.efficiency,
+                        ETA_REFERENCE,
+                    ),
                     shades: cfg
                         .shading
                         .iter()
@@ -192,11 +210,6 @@ impl PvSystem {
             });
         }
         let pressure_pa = sky::pressure_at_altitude(location.altitude);
-        let unit_rating_w = match cfg.inverter.layout {
-            Layout::String => rated_ac_w,
-            // Per module; `None` means "the module's own nameplate", resolved per string.
-            Layout::Module => cfg.inverter.rated_ac.unwrap_or(0.0),
-        };
         let n = arrays.len();
         let model = Model {
             observer: Observer {
@@ -220,24 +233,26 @@ impl PvSystem {
             derate: 1.0 - cfg.losses / 100.0,
             arrays,
             layout: cfg.inverter.layout,
-            unit_rating_w,
-            eta_nom: cfg.inverter.efficiency,
+            central: PvWattsCurve::new(rated_ac_w, cfg.inverter.efficiency, ETA_REFERENCE),
             weather: weather.clone(),
             sky: match measured {
                 Some(series) => Sky::Measured(series),
                 None => Sky::Clouds(Clouds::new(weather.sky, seed)),
             },
             wind: Wind::new(weather.wind, weather.gustiness, seed),
-            knot_s: cfg.knot_interval,
+            knot_ms: (cfg.knot_interval * 1000.0).round() as i64,
             k0: Knot {
-                cos_aoi: vec![0.0; n],
+                arrays: vec![ArrayKnot::default(); n],
                 ..Knot::default()
             },
             k1: Knot {
-                cos_aoi: vec![0.0; n],
+                arrays: vec![ArrayKnot::default(); n],
                 ..Knot::default()
             },
             have_knots: false,
+            inv_span_ms: 1.0,
+            has_shading: !cfg.shading.is_empty(),
+            inv_nameplate_w: 1.0 / cfg.nameplate_w(),
             doy_day: i64::MIN,
             doy_extra: 0.0,
             tz_block: i64::MIN,
@@ -315,7 +330,10 @@ impl Model {
         self.tz_offset_s
     }
 
-    fn fill_knot(&mut self, t_s: f64, which: bool) {
+    #[cold]
+    #[inline(never)]
+    fn fill_knot(&mut self, t_ms: i64, which: bool, span_s: f64) {
+        let t_s = t_ms as f64 / 1000.0;
         let track = self.track.get_or_insert_with(|| {
             let dt = self.delta_t.unwrap_or_else(|| {
                 DateTime::from_timestamp(t_s as i64, 0)
@@ -347,60 +365,82 @@ impl Model {
                 }
             }
         };
-        let solar_hour = ((t_s + self.observer.longitude_deg * 240.0) / 3600.0).rem_euclid(24.0);
+        let solar_s = t_s + self.observer.longitude_deg * 240.0;
+        let solar_hour = (solar_s / 3600.0).rem_euclid(24.0);
         let kind = match &self.sky {
             Sky::Clouds(c) => c.day_kind(),
             Sky::Measured(_) => WeatherKind::Clear,
         };
         let air_c = air_temperature(&self.weather, kind, solar_hour);
-        let wind = self.wind.step(self.knot_s);
+        let wind = self.wind.step(span_s);
         let knot = if which { &mut self.k1 } else { &mut self.k0 };
-        knot.t_s = t_s;
+        knot.t_ms = t_ms;
         knot.clear = clear;
         knot.cos_zenith = cos_z;
         knot.zenith_deg = sun.zenith_deg;
         knot.dni_extra = dni_extra;
-        for (c, a) in knot.cos_aoi.iter_mut().zip(&self.arrays) {
-            *c = a.plane.geometry(&sun).cos_aoi;
+        knot.inv_dni_extra = if dni_extra > 0.0 {
+            1.0 / dni_extra
+        } else {
+            0.0
+        };
+        for (k, a) in knot.arrays.iter_mut().zip(&self.arrays) {
+            k.geometry = a.plane.geometry(&sun);
+            k.heat = 1.0 / (a.u0 + a.u1 * wind);
         }
         knot.air_c = air_c;
-        knot.wind = wind;
         knot.local_tod_s = (t_s + offset).rem_euclid(86_400.0);
+        knot.solar_day = (solar_s / 86_400.0).floor() as i64;
     }
 
-    fn ensure_knots(&mut self, t_s: f64) {
-        let k = (t_s / self.knot_s).floor();
-        let start = k * self.knot_s;
-        if self.have_knots && self.k0.t_s == start {
+    /// How many knot intervals the next knot may lie ahead of one with the sun at
+    /// `zenith_deg`: 1 by day; at night, as many as the sun needs to climb back to 91°
+    /// at a bound of 0.3°/min (it never moves faster than 0.25°/min), at most 15 min.
+    /// Knots stay on the regular grid, so dawn is sampled exactly as by day.
+    fn knots_ahead(&self, zenith_deg: f64) -> i64 {
+        let minutes = ((zenith_deg - 91.0) / 0.3).floor();
+        if minutes < 1.0 {
+            return 1;
+        }
+        let ahead_ms = (minutes.min(15.0) * 60_000.0) as i64;
+        (ahead_ms / self.knot_ms).max(1)
+    }
+
+    #[inline]
+    fn ensure_knots(&mut self, t_ms: i64) {
+        if self.have_knots && t_ms >= self.k0.t_ms && t_ms < self.k1.t_ms {
             return;
         }
-        if self.have_knots && self.k1.t_s == start {
+        let start = t_ms.div_euclid(self.knot_ms) * self.knot_ms;
+        if self.have_knots && self.k1.t_ms == start {
             std::mem::swap(&mut self.k0, &mut self.k1);
         } else {
-            self.fill_knot(start, false);
+            // A jump (first step, or a step longer than the knot spacing): start afresh.
+            self.fill_knot(start, false, self.knot_ms as f64 / 1000.0);
+            self.have_knots = true;
         }
-        self.fill_knot(start + self.knot_s, true);
-        self.have_knots = true;
+        let next = self.k0.t_ms + self.knots_ahead(self.k0.zenith_deg) * self.knot_ms;
+        let span_s = (next - self.k0.t_ms) as f64 / 1000.0;
+        self.fill_knot(next, true, span_s);
+        self.inv_span_ms = 1.0 / (next - self.k0.t_ms) as f64;
     }
 
-    /// DC power (after the derate) and available AC power at `t_s`, and the sample
+    /// DC power (after the derate) and available AC power at `t_ms`, and the sample
     /// fields that describe the sky.
-    fn produce(&mut self, t_s: f64, dt_s: f64) -> (f64, f64, PvSample) {
-        self.ensure_knots(t_s);
-        let f = ((t_s - self.k0.t_s) / self.knot_s).clamp(0.0, 1.0);
+    fn produce(&mut self, t_ms: i64, dt_s: f64) -> (f64, PvSample) {
+        self.ensure_knots(t_ms);
+        // No division on the per-step path: `inv_span_ms` is kept with the knots.
+        let f = (t_ms - self.k0.t_ms) as f64 * self.inv_span_ms;
         let lerp = |a: f64, b: f64| a + (b - a) * f;
         let (k0, k1) = (&self.k0, &self.k1);
-        let night = k0.clear.ghi <= 0.0 && k1.clear.ghi <= 0.0;
-        if night {
-            return (
-                0.0,
-                0.0,
-                PvSample {
-                    cell_temp_c: lerp(k0.air_c, k1.air_c),
-                    clear_sky_index: self.last_kc,
-                    ..PvSample::default()
-                },
-            );
+        let air_c = lerp(k0.air_c, k1.air_c);
+        if k0.clear.ghi <= 0.0 && k1.clear.ghi <= 0.0 {
+            let sample = PvSample {
+                cell_temp_c: air_c,
+                clear_sky_index: self.last_kc,
+                ..PvSample::default()
+            };
+            return (0.0, sample);
         }
         let clear = Irradiance {
             ghi: lerp(k0.clear.ghi, k1.clear.ghi),
@@ -409,48 +449,53 @@ impl Model {
         };
         let cos_z = lerp(k0.cos_zenith, k1.cos_zenith);
         let dni_extra = k0.dni_extra;
-        let air_c = lerp(k0.air_c, k1.air_c);
-        let wind = lerp(k0.wind, k1.wind);
-        let tod = (k0.local_tod_s + (t_s - k0.t_s)).rem_euclid(86_400.0);
-        let zenith = lerp(k0.zenith_deg, k1.zenith_deg);
         let (irr, kc) = match &mut self.sky {
             Sky::Clouds(c) => {
-                let solar_day =
-                    ((t_s + self.observer.longitude_deg * 240.0) / 86_400.0).floor() as i64;
-                let kc = c.step(solar_day, dt_s);
+                let kc = c.step(k0.solar_day, dt_s);
                 (sky::cloudy(&clear, cos_z, kc), kc)
             }
             Sky::Measured(series) => {
-                let ghi = series.value_at(t_s);
+                let ghi = series.value_at(t_ms as f64 * 0.001);
                 let kc = if clear.ghi > 1.0 {
                     ghi / clear.ghi
                 } else {
                     1.0
                 };
+                let zenith = lerp(k0.zenith_deg, k1.zenith_deg);
                 (sky::erbs(ghi, zenith, dni_extra), kc)
             }
         };
         self.last_kc = kc;
+        let tod = if self.has_shading {
+            let tod = k0.local_tod_s + (t_ms - k0.t_ms) as f64 * 0.001;
+            if tod >= 86_400.0 { tod - 86_400.0 } else { tod }
+        } else {
+            0.0
+        };
         let mut dc_total = 0.0;
         let mut ac_total = 0.0;
         let mut poa_weighted = 0.0;
-        let mut first_cell = None;
-        for (i, array) in self.arrays.iter().enumerate() {
+        let mut first_cell = f64::NAN;
+        for (array, (a0, a1)) in self.arrays.iter().zip(k0.arrays.iter().zip(&k1.arrays)) {
             let g = Geometry {
-                cos_aoi: lerp(self.k0.cos_aoi[i], self.k1.cos_aoi[i]),
+                cos_aoi: lerp(a0.geometry.cos_aoi, a1.geometry.cos_aoi),
                 cos_zenith: cos_z,
+                projection_ratio: lerp(a0.geometry.projection_ratio, a1.geometry.projection_ratio),
             };
-            let poa = array
-                .plane
-                .poa(&g, &irr, dni_extra, self.albedo, self.diffuse);
+            let poa =
+                array
+                    .plane
+                    .poa_with_inverse(&g, &irr, k0.inv_dni_extra, self.albedo, self.diffuse);
             let global = poa.global();
-            let cell = faiman(global, air_c, wind, array.u0, array.u1);
-            first_cell.get_or_insert(cell);
+            let cell = air_c + global * lerp(a0.heat, a1.heat);
+            if first_cell.is_nan() {
+                first_cell = cell;
+            }
             poa_weighted += global * array.nameplate_w;
             // W of DC per (W/m²) of irradiance per W of nameplate.
             let per_irr = 0.001 * (1.0 + array.gamma * (cell - 25.0)) * self.derate;
             for s in &array.strings {
-                let active = s.shades.iter().any(|sh| sh.active(tod));
+                let active = self.has_shading && s.shades.iter().any(|sh| sh.active(tod));
                 match self.layout {
                     Layout::String => {
                         let equivalent = if active {
@@ -466,14 +511,8 @@ impl Model {
                         dc_total += equivalent * s.module_w * per_irr;
                     }
                     Layout::Module => {
-                        let rating = if self.unit_rating_w > 0.0 {
-                            self.unit_rating_w
-                        } else {
-                            s.module_w
-                        };
                         let unshaded_dc = global * s.module_w * per_irr;
-                        let unshaded_ac =
-                            pvwatts_ac(unshaded_dc, rating, self.eta_nom, ETA_REFERENCE);
+                        let unshaded_ac = s.module_curve.ac(unshaded_dc);
                         let mut shaded = 0;
                         if active {
                             self.scratch.clear();
@@ -487,7 +526,7 @@ impl Model {
                                     * s.module_w
                                     * per_irr;
                                 dc_total += dc;
-                                ac_total += pvwatts_ac(dc, rating, self.eta_nom, ETA_REFERENCE);
+                                ac_total += s.module_curve.ac(dc);
                             }
                         }
                         let clean = (s.modules - shaded) as f64;
@@ -499,22 +538,17 @@ impl Model {
         }
         let dc_total = dc_total.max(0.0);
         if self.layout == Layout::String {
-            ac_total = pvwatts_ac(dc_total, self.unit_rating_w, self.eta_nom, ETA_REFERENCE);
+            ac_total = self.central.ac(dc_total);
         }
-        let nameplate: f64 = self.arrays.iter().map(|a| a.nameplate_w).sum();
         let sample = PvSample {
             dc_w: dc_total,
-            poa_w_m2: if nameplate > 0.0 {
-                poa_weighted / nameplate
-            } else {
-                0.0
-            },
+            poa_w_m2: poa_weighted * self.inv_nameplate_w,
             ghi_w_m2: irr.ghi,
-            cell_temp_c: first_cell.unwrap_or(air_c),
+            cell_temp_c: first_cell,
             clear_sky_index: kc,
             ..PvSample::default()
         };
-        (dc_total, ac_total, sample)
+        (ac_total, sample)
     }
 }
 
@@ -522,14 +556,10 @@ impl PvSource for PvSystem {
     /// Output for the step starting at `t_ms` (UTC Unix milliseconds), evaluated at its
     /// start; the limit follower advances by `dt_s`.
     fn step(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> PvSample {
-        let t_s = t_ms as f64 / 1000.0;
         let (available, mut sample) = match &mut self.source {
-            Source::Model(m) => {
-                let (_, ac, sample) = m.produce(t_s, dt_s);
-                (ac, sample)
-            }
+            Source::Model(m) => m.produce(t_ms, dt_s),
             Source::Replay(series) => {
-                let ac = series.value_at(t_s).min(self.rated_ac_w);
+                let ac = series.value_at(t_ms as f64 / 1000.0).min(self.rated_ac_w);
                 (
                     ac,
                     PvSample {
