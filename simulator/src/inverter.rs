@@ -5,6 +5,8 @@
 //! NREL/TP-6A20-62641, eq. for η(ζ) with η_nom = 0.96 and η_ref = 0.9637, in the form of
 //! pvlib 0.16.1 `inverter.pvwatts` (DC input limit = AC rating / η_nom).
 
+use crate::sky::{at_least, within};
+
 /// PVWatts nominal inverter efficiency.
 pub const ETA_NOMINAL: f64 = 0.96;
 /// PVWatts reference inverter efficiency.
@@ -50,7 +52,7 @@ impl PvWattsCurve {
         }
         let ac =
             self.scale * (pdc_w * (0.9858 - 0.0162 * pdc_w * self.inv_pdc0) - 0.0059 * self.pdc0_w);
-        ac.clamp(0.0, self.pac0_w)
+        within(ac, 0.0, self.pac0_w)
     }
 }
 
@@ -102,13 +104,13 @@ impl PowerLimit {
     /// Moves the effective limit toward `setpoint` over `dt_s` and returns it, W.
     #[inline]
     pub fn advance(&mut self, setpoint: Option<f64>, dt_s: f64) -> f64 {
-        let target = setpoint.unwrap_or(self.rated_w).clamp(0.0, self.rated_w);
+        let target = within(setpoint.unwrap_or(self.rated_w), 0.0, self.rated_w);
         if self.ramp_w_per_s == 0.0 {
             self.effective_w = target;
         } else {
-            let step = self.ramp_w_per_s * dt_s.max(0.0);
+            let step = self.ramp_w_per_s * at_least(dt_s, 0.0);
             let diff = target - self.effective_w;
-            self.effective_w += diff.clamp(-step, step);
+            self.effective_w += within(diff, -step, step);
         }
         self.effective_w
     }

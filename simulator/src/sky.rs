@@ -7,6 +7,25 @@
 //! (model="kastenyoung1989")`, `atmosphere.alt2pres`, `clearsky.ineichen`,
 //! `clearsky.haurwitz`, `irradiance.erbs`) so the reference tables compare like with like.
 
+/// `max(x, lo)` as one instruction: unlike `f64::max` it does not special-case NaN
+/// (the per-second path never produces one, and the reference tests would catch it).
+#[inline(always)]
+pub(crate) fn at_least(x: f64, lo: f64) -> f64 {
+    if x > lo { x } else { lo }
+}
+
+/// `min(x, hi)` as one instruction (see [`at_least`]).
+#[inline(always)]
+pub(crate) fn at_most(x: f64, hi: f64) -> f64 {
+    if x < hi { x } else { hi }
+}
+
+/// `clamp(x, lo, hi)` without NaN handling or the `lo <= hi` assertion.
+#[inline(always)]
+pub(crate) fn within(x: f64, lo: f64, hi: f64) -> f64 {
+    at_most(at_least(x, lo), hi)
+}
+
 /// Solar constant used with Spencer's orbit factor, W/m² (as in pvlib).
 pub const SOLAR_CONSTANT_W_M2: f64 = 1366.1;
 
@@ -145,15 +164,20 @@ pub const BEAM_CUTOFF_INDEX: f64 = 0.25;
 /// cloud in front of the sun); the rest of the global value is diffuse. Above kc = 1
 /// (cloud-edge enhancement) the beam stays whole and the extra is diffuse. The diffuse
 /// part is never negative for any kc ≥ 0, and kc = 1 returns the clear sky unchanged.
+#[inline]
 pub fn cloudy(clear: &Irradiance, cos_zenith: f64, kc: f64) -> Irradiance {
-    let kc = kc.max(0.0);
-    let beam_share = ((kc - BEAM_CUTOFF_INDEX) / (1.0 - BEAM_CUTOFF_INDEX)).clamp(0.0, 1.0);
+    let kc = at_least(kc, 0.0);
+    let beam_share = within(
+        (kc - BEAM_CUTOFF_INDEX) * (1.0 / (1.0 - BEAM_CUTOFF_INDEX)),
+        0.0,
+        1.0,
+    );
     let ghi = kc * clear.ghi;
     let dni = clear.dni * beam_share;
     Irradiance {
         ghi,
         dni,
-        dhi: (ghi - dni * cos_zenith.max(0.0)).max(0.0),
+        dhi: at_least(ghi - dni * at_least(cos_zenith, 0.0), 0.0),
     }
 }
 

@@ -9,7 +9,7 @@
 
 use serde::Deserialize;
 
-use crate::sky::Irradiance;
+use crate::sky::{Irradiance, at_least};
 use crate::sun::SunPosition;
 
 /// Default ground albedo (as in pvlib and common practice for grass/soil).
@@ -127,14 +127,14 @@ impl Plane {
         albedo: f64,
         model: SkyDiffuse,
     ) -> Poa {
-        let beam = (irr.dni * g.cos_aoi).max(0.0);
+        let beam = at_least(irr.dni * g.cos_aoi, 0.0);
         let view_sky = 0.5 * (1.0 + self.cos_tilt);
         let sky_diffuse = match model {
             SkyDiffuse::Isotropic => irr.dhi * view_sky,
             SkyDiffuse::HayDavies => {
                 let ai = irr.dni * inv_dni_extra;
-                (irr.dhi * (1.0 - ai) * view_sky).max(0.0)
-                    + (irr.dhi * ai * g.projection_ratio).max(0.0)
+                at_least(irr.dhi * (1.0 - ai) * view_sky, 0.0)
+                    + at_least(irr.dhi * ai * g.projection_ratio, 0.0)
             }
         };
         let ground = irr.ghi * albedo * (1.0 - self.cos_tilt) * 0.5;

@@ -308,8 +308,9 @@ pub struct SolarConfig {
     /// ΔT = TT − UT, s (default: estimated from the simulated year).
     #[serde(default, deserialize_with = "quantity::opt_duration")]
     pub delta_t: Option<f64>,
-    /// Interval at which sun position, clear sky and air temperature are computed and
-    /// between which they are interpolated, s (default 60, range 1–600).
+    /// Interval at which sun position, clear sky, air temperature, wind and the shading
+    /// windows are evaluated, with linear interpolation in between, s (default 60, range
+    /// 1–600). Keep it a divisor of 60 s for minute-exact shading windows.
     #[serde(default = "default_knot", deserialize_with = "quantity::duration")]
     pub knot_interval: f64,
     /// Shaded modules.

@@ -13,7 +13,7 @@ use serde::Serialize;
 
 use crate::inverter::{ETA_REFERENCE, PowerLimit, PvWattsCurve};
 use crate::pv_output::{PvSample, PvSource};
-use crate::sky::{self, Irradiance};
+use crate::sky::{self, Irradiance, at_least, at_most};
 use crate::sun::{Atmosphere, Observer, SunTrack, delta_t_estimate};
 use crate::transposition::{Geometry, Plane, SkyDiffuse};
 use crate::weather::{
@@ -48,6 +48,9 @@ struct StringModel {
     modules: usize,
     module_w: f64,
     shades: Vec<Shade>,
+    /// Modules shaded in the current knot interval with the beam fraction blocked
+    /// (several windows on one module add up, at most 1).
+    shaded_now: Vec<(usize, f64)>,
     /// The module-level inverter curve (used with `Layout::Module`).
     module_curve: PvWattsCurve,
 }
@@ -60,6 +63,8 @@ struct ArrayModel {
     u1: f64,
     strings: Vec<StringModel>,
     nameplate_w: f64,
+    /// This array's values at the two knots (which one is "earlier" is `Model::cur`).
+    knots: [ArrayKnot; 2],
 }
 
 /// Per-array values at one knot.
@@ -71,7 +76,7 @@ struct ArrayKnot {
 }
 
 /// Slowly varying values at one knot time.
-#[derive(Debug, Clone, Default)]
+#[derive(Debug, Clone, Copy, Default)]
 struct Knot {
     t_ms: i64,
     clear: Irradiance,
@@ -79,7 +84,6 @@ struct Knot {
     zenith_deg: f64,
     dni_extra: f64,
     inv_dni_extra: f64,
-    arrays: Vec<ArrayKnot>,
     air_c: f64,
     local_tod_s: f64,
     solar_day: i64,
@@ -113,6 +117,8 @@ struct Model {
     knot_ms: i64,
     k0: Knot,
     k1: Knot,
+    /// Slot of `k0` in every `ArrayModel::knots` (the other slot holds `k1`).
+    cur: usize,
     have_knots: bool,
     inv_span_ms: f64,
     has_shading: bool,
@@ -187,6 +193,7 @@ impl PvSystem {
                         cfg.inverter.efficiency,
                         ETA_REFERENCE,
                     ),
+                    shaded_now: Vec::new(),
                     shades: cfg
                         .shading
                         .iter()
@@ -207,10 +214,10 @@ impl PvSystem {
                 u1: a.cell_temperature.u1,
                 nameplate_w: strings.iter().map(|s| s.modules as f64 * s.module_w).sum(),
                 strings,
+                knots: [ArrayKnot::default(); 2],
             });
         }
         let pressure_pa = sky::pressure_at_altitude(location.altitude);
-        let n = arrays.len();
         let model = Model {
             observer: Observer {
                 latitude_deg: location.latitude,
@@ -241,14 +248,9 @@ impl PvSystem {
             },
             wind: Wind::new(weather.wind, weather.gustiness, seed),
             knot_ms: (cfg.knot_interval * 1000.0).round() as i64,
-            k0: Knot {
-                arrays: vec![ArrayKnot::default(); n],
-                ..Knot::default()
-            },
-            k1: Knot {
-                arrays: vec![ArrayKnot::default(); n],
-                ..Knot::default()
-            },
+            k0: Knot::default(),
+            k1: Knot::default(),
+            cur: 0,
             have_knots: false,
             inv_span_ms: 1.0,
             has_shading: !cfg.shading.is_empty(),
@@ -373,6 +375,13 @@ impl Model {
         };
         let air_c = air_temperature(&self.weather, kind, solar_hour);
         let wind = self.wind.step(span_s);
+        let slot = if which { self.cur ^ 1 } else { self.cur };
+        for a in &mut self.arrays {
+            a.knots[slot] = ArrayKnot {
+                geometry: a.plane.geometry(&sun),
+                heat: 1.0 / (a.u0 + a.u1 * wind),
+            };
+        }
         let knot = if which { &mut self.k1 } else { &mut self.k0 };
         knot.t_ms = t_ms;
         knot.clear = clear;
@@ -384,10 +393,6 @@ impl Model {
         } else {
             0.0
         };
-        for (k, a) in knot.arrays.iter_mut().zip(&self.arrays) {
-            k.geometry = a.plane.geometry(&sun);
-            k.heat = 1.0 / (a.u0 + a.u1 * wind);
-        }
         knot.air_c = air_c;
         knot.local_tod_s = (t_s + offset).rem_euclid(86_400.0);
         knot.solar_day = (solar_s / 86_400.0).floor() as i64;
@@ -406,6 +411,23 @@ impl Model {
         (ahead_ms / self.knot_ms).max(1)
     }
 
+    /// Which modules are shaded from `k0` on. Windows are given in whole minutes and
+    /// knots fall on whole minutes of the local clock (the knot interval divides a
+    /// minute by default), so evaluating them per knot is exact.
+    #[cold]
+    fn update_shading(&mut self) {
+        let tod = self.k0.local_tod_s;
+        for s in self.arrays.iter_mut().flat_map(|a| a.strings.iter_mut()) {
+            s.shaded_now.clear();
+            for sh in s.shades.iter().filter(|sh| sh.active(tod)) {
+                match s.shaded_now.iter_mut().find(|(m, _)| *m == sh.module) {
+                    Some((_, b)) => *b = (*b + sh.blocked).min(1.0),
+                    None => s.shaded_now.push((sh.module, sh.blocked.min(1.0))),
+                }
+            }
+        }
+    }
+
     #[inline]
     fn ensure_knots(&mut self, t_ms: i64) {
         if self.have_knots && t_ms >= self.k0.t_ms && t_ms < self.k1.t_ms {
@@ -414,10 +436,14 @@ impl Model {
         let start = t_ms.div_euclid(self.knot_ms) * self.knot_ms;
         if self.have_knots && self.k1.t_ms == start {
             std::mem::swap(&mut self.k0, &mut self.k1);
+            self.cur ^= 1;
         } else {
             // A jump (first step, or a step longer than the knot spacing): start afresh.
             self.fill_knot(start, false, self.knot_ms as f64 / 1000.0);
             self.have_knots = true;
+        }
+        if self.has_shading {
+            self.update_shading();
         }
         let next = self.k0.t_ms + self.knots_ahead(self.k0.zenith_deg) * self.knot_ms;
         let span_s = (next - self.k0.t_ms) as f64 / 1000.0;
@@ -466,17 +492,13 @@ impl Model {
             }
         };
         self.last_kc = kc;
-        let tod = if self.has_shading {
-            let tod = k0.local_tod_s + (t_ms - k0.t_ms) as f64 * 0.001;
-            if tod >= 86_400.0 { tod - 86_400.0 } else { tod }
-        } else {
-            0.0
-        };
         let mut dc_total = 0.0;
         let mut ac_total = 0.0;
         let mut poa_weighted = 0.0;
         let mut first_cell = f64::NAN;
-        for (array, (a0, a1)) in self.arrays.iter().zip(k0.arrays.iter().zip(&k1.arrays)) {
+        let (c0, c1) = (self.cur & 1, (self.cur ^ 1) & 1);
+        for array in &self.arrays {
+            let (a0, a1) = (&array.knots[c0], &array.knots[c1]);
             let g = Geometry {
                 cos_aoi: lerp(a0.geometry.cos_aoi, a1.geometry.cos_aoi),
                 cos_zenith: cos_z,
@@ -495,48 +517,37 @@ impl Model {
             // W of DC per (W/m²) of irradiance per W of nameplate.
             let per_irr = 0.001 * (1.0 + array.gamma * (cell - 25.0)) * self.derate;
             for s in &array.strings {
-                let active = self.has_shading && s.shades.iter().any(|sh| sh.active(tod));
                 match self.layout {
                     Layout::String => {
-                        let equivalent = if active {
+                        let equivalent = if s.shaded_now.is_empty() {
+                            s.modules as f64 * global
+                        } else {
                             self.scratch.clear();
                             self.scratch.resize(s.modules, global);
-                            for sh in s.shades.iter().filter(|sh| sh.active(tod)) {
-                                self.scratch[sh.module] -= sh.blocked * poa.beam;
+                            for &(m, blocked) in &s.shaded_now {
+                                self.scratch[m] -= blocked * poa.beam;
                             }
                             string_equivalent_irradiance(&mut self.scratch)
-                        } else {
-                            s.modules as f64 * global
                         };
                         dc_total += equivalent * s.module_w * per_irr;
                     }
                     Layout::Module => {
                         let unshaded_dc = global * s.module_w * per_irr;
                         let unshaded_ac = s.module_curve.ac(unshaded_dc);
-                        let mut shaded = 0;
-                        if active {
-                            self.scratch.clear();
-                            self.scratch.resize(s.modules, 0.0);
-                            for sh in s.shades.iter().filter(|sh| sh.active(tod)) {
-                                self.scratch[sh.module] += sh.blocked;
-                            }
-                            for b in self.scratch.iter().filter(|&&b| b > 0.0) {
-                                shaded += 1;
-                                let dc = (global - b.min(1.0) * poa.beam).max(0.0)
-                                    * s.module_w
-                                    * per_irr;
-                                dc_total += dc;
-                                ac_total += s.module_curve.ac(dc);
-                            }
+                        for &(_, blocked) in &s.shaded_now {
+                            let dc =
+                                at_least(global - blocked * poa.beam, 0.0) * s.module_w * per_irr;
+                            dc_total += dc;
+                            ac_total += s.module_curve.ac(dc);
                         }
-                        let clean = (s.modules - shaded) as f64;
+                        let clean = (s.modules - s.shaded_now.len()) as f64;
                         dc_total += clean * unshaded_dc;
                         ac_total += clean * unshaded_ac;
                     }
                 }
             }
         }
-        let dc_total = dc_total.max(0.0);
+        let dc_total = at_least(dc_total, 0.0);
         if self.layout == Layout::String {
             ac_total = self.central.ac(dc_total);
         }
@@ -572,7 +583,7 @@ impl PvSource for PvSystem {
         };
         let limit = self.limit.advance(limit_w, dt_s);
         sample.available_ac_w = available;
-        sample.ac_w = available.min(limit);
+        sample.ac_w = at_most(available, limit);
         sample
     }
 }

@@ -9,11 +9,11 @@
 //! clear-sky in 10–20 s, and short cloud-edge enhancement above the clear sky. All
 //! draws come from one PCG stream, so a seed fixes the weather.
 
-use rand::{Rng, SeedableRng};
-use rand_distr::StandardNormal;
+use rand::{Rng, RngCore, SeedableRng};
 use rand_pcg::Pcg64Mcg;
 
 use super::WeatherKind;
+use crate::sky::within;
 
 /// The sky's state inside a day.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -128,8 +128,15 @@ impl Clouds {
         self.rng.random::<f64>()
     }
 
-    fn normal(&mut self) -> f64 {
-        self.rng.sample(StandardNormal)
+    /// Unit-variance noise for the fast fluctuation: triangular (sum of two uniforms
+    /// from one 64-bit draw), several times cheaper than a Gaussian; the shape of the
+    /// regimes and ramps matters here, not the tails of the noise.
+    #[inline]
+    fn noise(&mut self) -> f64 {
+        let bits = self.rng.next_u64();
+        let u1 = (bits >> 32) as f64 * (1.0 / 4_294_967_296.0);
+        let u2 = (bits & 0xffff_ffff) as f64 * (1.0 / 4_294_967_296.0);
+        (u1 + u2 - 1.0) * 6f64.sqrt()
     }
 
     fn exponential(&mut self, mean: f64) -> f64 {
@@ -205,6 +212,7 @@ impl Clouds {
 
     /// Advances by `dt_s` and returns the clear-sky index for the step. `solar_day`
     /// numbers the day; a new number starts a new day (and, for `Varied`, draws its kind).
+    #[inline]
     pub fn step(&mut self, solar_day: i64, dt_s: f64) -> f64 {
         if self.day != Some(solar_day) {
             self.start_day(solar_day);
@@ -218,7 +226,7 @@ impl Clouds {
         if self.regime_left_s <= 0.0 {
             self.leave();
         }
-        let z = self.normal();
+        let z = self.noise();
         match self.regime {
             Regime::Clear => {
                 self.target = 1.0;
@@ -244,14 +252,17 @@ impl Clouds {
             Regime::Overcast => {
                 self.deck = OVERCAST_MEAN
                     + (self.deck - OVERCAST_MEAN) * self.deck_a
-                    + self.deck_noise * self.normal();
+                    + self.deck_noise * self.noise();
                 self.target = self.deck.clamp(0.15, 0.9);
             }
         }
         self.boost *= self.relax;
         let target = self.target + self.boost;
-        self.kc =
-            (target + (self.kc - target) * self.relax + self.relax_noise * z).clamp(0.05, 1.4);
+        self.kc = within(
+            target + (self.kc - target) * self.relax + self.relax_noise * z,
+            0.05,
+            1.4,
+        );
         self.kc
     }
 }
