@@ -14,7 +14,7 @@ pub use config::{
     ArrayConfig, ClearSkyModel, InverterConfig, Layout, LocationConfig, ShadeConfig, SolarConfig,
     SolarError, StringConfig, TemperatureModel,
 };
-pub use system::{DaySummary, LayoutGap, PvSystem, layout_gap, simulate_day};
+pub use system::{DaySummary, LayoutGap, PvSystem, layout_gap, local_midnight_ms, simulate_day};
 
 /// Faiman default constant heat-transfer coefficient, W/(m²·K).
 pub const FAIMAN_U0: f64 = 25.0;
@@ -54,6 +54,27 @@ pub fn string_equivalent_irradiance(irr: &mut [f64]) -> f64 {
         .fold(0.0, f64::max)
 }
 
+/// [`string_equivalent_irradiance`] for a string of `modules` where every module sees
+/// `global` except those in `shaded`, which lose `blocked × beam`; `shaded` lists
+/// (module, blocked) pairs sorted by `blocked` ascending. The order of the modules'
+/// irradiances is then known without sorting: the unshaded ones first, then the shaded
+/// ones in list order, so the per-second path needs no allocation or sort.
+#[inline]
+pub fn shaded_string_equivalent(
+    modules: usize,
+    global: f64,
+    beam: f64,
+    shaded: &[(usize, f64)],
+) -> f64 {
+    let clear = modules - shaded.len();
+    let mut best = clear as f64 * global.max(0.0);
+    for (j, &(_, blocked)) in shaded.iter().enumerate() {
+        let k = (clear + j + 1) as f64;
+        best = best.max(k * (global - blocked * beam).max(0.0));
+    }
+    best
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -70,6 +91,23 @@ mod tests {
         let mut deep = [800.0; 10];
         deep[0] = 160.0;
         assert_eq!(string_equivalent_irradiance(&mut deep), 7200.0);
+    }
+
+    #[test]
+    fn presorted_shading_matches_the_general_string_model() {
+        let shaded = [(4, 0.2), (1, 0.6), (7, 1.0)];
+        for (global, beam) in [(900.0, 700.0), (300.0, 50.0), (150.0, 140.0)] {
+            let mut irr = [global; 10];
+            for &(m, b) in &shaded {
+                irr[m] -= b * beam;
+            }
+            let general = string_equivalent_irradiance(&mut irr);
+            let fast = shaded_string_equivalent(10, global, beam, &shaded);
+            assert!(
+                (general - fast).abs() < 1e-9,
+                "{global}/{beam}: {general} vs {fast}"
+            );
+        }
     }
 
     #[test]

@@ -22,7 +22,7 @@ use crate::weather::{
 };
 
 use super::config::{ClearSkyModel, Layout, LocationConfig, SolarConfig, SolarError, parse_clock};
-use super::string_equivalent_irradiance;
+use super::shaded_string_equivalent;
 
 /// A module shaded in a daily window (seconds of the local day).
 #[derive(Debug, Clone)]
@@ -49,7 +49,7 @@ struct StringModel {
     module_w: f64,
     shades: Vec<Shade>,
     /// Modules shaded in the current knot interval with the beam fraction blocked
-    /// (several windows on one module add up, at most 1).
+    /// (several windows on one module add up, at most 1), least blocked first.
     shaded_now: Vec<(usize, f64)>,
     /// The module-level inverter curve (used with `Layout::Module`).
     module_curve: PvWattsCurve,
@@ -65,6 +65,8 @@ struct ArrayModel {
     nameplate_w: f64,
     /// This array's values at the two knots (which one is "earlier" is `Model::cur`).
     knots: [ArrayKnot; 2],
+    /// Whether any of its modules is shaded in the current knot interval.
+    shaded_now: bool,
 }
 
 /// Per-array values at one knot.
@@ -127,7 +129,6 @@ struct Model {
     doy_extra: f64,
     tz_block: i64,
     tz_offset_s: f64,
-    scratch: Vec<f64>,
     last_kc: f64,
 }
 
@@ -215,6 +216,7 @@ impl PvSystem {
                 nameplate_w: strings.iter().map(|s| s.modules as f64 * s.module_w).sum(),
                 strings,
                 knots: [ArrayKnot::default(); 2],
+                shaded_now: false,
             });
         }
         let pressure_pa = sky::pressure_at_altitude(location.altitude);
@@ -259,7 +261,6 @@ impl PvSystem {
             doy_extra: 0.0,
             tz_block: i64::MIN,
             tz_offset_s: 0.0,
-            scratch: Vec::new(),
             last_kc: 1.0,
         };
         Ok(PvSystem {
@@ -417,14 +418,18 @@ impl Model {
     #[cold]
     fn update_shading(&mut self) {
         let tod = self.k0.local_tod_s;
-        for s in self.arrays.iter_mut().flat_map(|a| a.strings.iter_mut()) {
-            s.shaded_now.clear();
-            for sh in s.shades.iter().filter(|sh| sh.active(tod)) {
-                match s.shaded_now.iter_mut().find(|(m, _)| *m == sh.module) {
-                    Some((_, b)) => *b = (*b + sh.blocked).min(1.0),
-                    None => s.shaded_now.push((sh.module, sh.blocked.min(1.0))),
+        for a in &mut self.arrays {
+            for s in &mut a.strings {
+                s.shaded_now.clear();
+                for sh in s.shades.iter().filter(|sh| sh.active(tod)) {
+                    match s.shaded_now.iter_mut().find(|(m, _)| *m == sh.module) {
+                        Some((_, b)) => *b = (*b + sh.blocked).min(1.0),
+                        None => s.shaded_now.push((sh.module, sh.blocked.min(1.0))),
+                    }
                 }
+                s.shaded_now.sort_by(|x, y| x.1.total_cmp(&y.1));
             }
+            a.shaded_now = a.strings.iter().any(|s| !s.shaded_now.is_empty());
         }
     }
 
@@ -516,19 +521,16 @@ impl Model {
             poa_weighted += global * array.nameplate_w;
             // W of DC per (W/m²) of irradiance per W of nameplate.
             let per_irr = 0.001 * (1.0 + array.gamma * (cell - 25.0)) * self.derate;
+            if self.layout == Layout::String && !array.shaded_now {
+                // Every string sees the same irradiance: one product for the array.
+                dc_total += global * array.nameplate_w * per_irr;
+                continue;
+            }
             for s in &array.strings {
                 match self.layout {
                     Layout::String => {
-                        let equivalent = if s.shaded_now.is_empty() {
-                            s.modules as f64 * global
-                        } else {
-                            self.scratch.clear();
-                            self.scratch.resize(s.modules, global);
-                            for &(m, blocked) in &s.shaded_now {
-                                self.scratch[m] -= blocked * poa.beam;
-                            }
-                            string_equivalent_irradiance(&mut self.scratch)
-                        };
+                        let equivalent =
+                            shaded_string_equivalent(s.modules, global, poa.beam, &s.shaded_now);
                         dc_total += equivalent * s.module_w * per_irr;
                     }
                     Layout::Module => {
