@@ -291,3 +291,27 @@ fn solar_chain_matches_pvlib_tables() {
     // Shown with `cargo test -- --nocapture`; the figures quoted in README-solar.md.
     println!("{}", report.join("\n"));
 }
+
+#[test]
+fn ten_second_steps_between_knots_keep_the_daily_energies() {
+    // Source: pvlib-python 0.16.1 daily energies (sites.json, 1-minute rectangle rule).
+    // Between knots the simulator interpolates; over a day that must not move the totals.
+    let (tables, _) = load();
+    for s in &tables.sites {
+        let weather = WeatherConfig::steady_clear(s.air, s.wind, s.linke);
+        let mut system = system_config(s, SkyDiffuse::HayDavies)
+            .build(&location(s), &weather, 1)
+            .unwrap();
+        let day = simulate_day(&mut system, s.date, 10.0, |_, _| {});
+        let rel = |a: f64, b: f64| (a - b).abs() / b;
+        assert!(
+            rel(day.ac_kwh, s.ac_kwh) < 0.005,
+            "{}: {} vs {}",
+            s.id,
+            day.ac_kwh,
+            s.ac_kwh
+        );
+        assert!(rel(day.poa_kwh_m2, s.poa_kwh_m2) < 0.005, "{}: POA", s.id);
+        assert!(rel(day.peak_ac_w, s.peak_ac_w) < 0.01, "{}: peak", s.id);
+    }
+}
