@@ -2,10 +2,14 @@
 //! temperature → DC (strings or modules) → inverter with its power limit.
 //!
 //! Speed: everything that changes slowly (sun position, clear-sky irradiance, angles of
-//! incidence, air temperature, wind, the local clock) is computed at "knots" every
-//! `knot_interval` (60 s by default) and interpolated linearly in between; a 1 s step
-//! then costs a cloud update and a few multiplications per array. At knot times the
-//! values are exact, which is what the reference tests compare.
+//! incidence, air temperature, wind, which modules are shaded) is computed at "knots"
+//! every `knot_interval` (60 s by default; up to 15 min apart at night while the sun
+//! cannot reach the horizon) and interpolated linearly in between; a 1 s step then costs
+//! a cloud update and a few multiplications per array, with no division, allocation or
+//! sort. At knot times the values are exact, which is what the reference tests compare.
+//!
+//! With a measured GHI series the sky is as measured while the sun is up; at night the
+//! output is 0 whatever the file says (sensor offsets are common).
 
 use chrono::{DateTime, Datelike, NaiveDate, Offset, TimeZone};
 use chrono_tz::Tz;
