@@ -75,10 +75,10 @@ impl InverterSpec {
 
 /// The power-limit follower: it remembers the effective limit between steps.
 ///
-/// The effective limit starts at the rating. A setpoint (`Some(w)`, clamped to
-/// `[0, rating]`) or its removal (`None` = back to the rating) is approached at the ramp
-/// rate in both directions, like an inverter's "limit ramp time" setting; a ramp of 0
-/// jumps at once.
+/// The effective limit starts at the rating. A lower setpoint (`Some(w)`, clamped to
+/// `[0, rating]`) takes effect at once, as grid codes expect of a power reduction; a
+/// higher one or its removal (`None` = back to the rating) is approached at the ramp
+/// rate, like an inverter's soft "limit ramp" after curtailment; a ramp of 0 jumps at once.
 #[derive(Debug, Clone, PartialEq)]
 pub struct PowerLimit {
     rated_w: f64,
@@ -96,7 +96,7 @@ impl PowerLimit {
     #[inline]
     pub fn advance(&mut self, setpoint: Option<f64>, dt_s: f64) -> f64 {
         let target = within(setpoint.unwrap_or(self.rated_w), 0.0, self.rated_w);
-        if self.ramp_w_per_s == 0.0 {
+        if self.ramp_w_per_s == 0.0 || target <= self.effective_w {
             self.effective_w = target;
         } else {
             let step = self.ramp_w_per_s * at_least(dt_s, 0.0);
@@ -128,13 +128,9 @@ mod tests {
     }
 
     #[test]
-    fn limit_ramps_both_ways_and_zero_ramp_is_instant() {
+    fn limit_cuts_at_once_ramps_up_and_zero_ramp_is_instant() {
         let mut l = PowerLimit::new(5000.0, 500.0);
-        assert_eq!(l.advance(Some(1000.0), 1.0), 4500.0);
-        for _ in 0..10 {
-            l.advance(Some(1000.0), 1.0);
-        }
-        assert_eq!(l.effective_w(), 1000.0);
+        assert_eq!(l.advance(Some(1000.0), 1.0), 1000.0);
         assert_eq!(l.advance(None, 2.0), 2000.0);
         let mut instant = PowerLimit::new(5000.0, 0.0);
         assert_eq!(instant.advance(Some(-5.0), 1.0), 0.0);
