@@ -21,7 +21,17 @@ impl<'de> Deserialize<'de> for Watts {
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct PlantConfig {
-    /// IANA time zone of the site; schedules are in local time.
+    /// Where the site is (latitude, longitude, altitude, time zone). Needed for the
+    /// modelled PV; its time zone is also the plant's.
+    #[serde(default)]
+    pub location: Option<crate::pv::LocationConfig>,
+    /// The PV system: arrays, strings, inverter, losses, shading.
+    #[serde(default)]
+    pub solar: Option<crate::pv::SolarConfig>,
+    /// The sky over the site (clouds, air temperature, wind, or a measured series).
+    #[serde(default)]
+    pub weather: crate::weather::WeatherConfig,
+    /// IANA time zone of the site when there is no `location`; schedules are in local time.
     #[serde(default = "default_timezone")]
     pub timezone: String,
     /// Seed the caller may use when none is given on the command line.

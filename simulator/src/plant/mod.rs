@@ -298,7 +298,8 @@ impl Plant {
     /// Builds the plant. `pv` supplies the array's output; `start_ms` is the first instant
     /// (ms since the Unix epoch, UTC); `seed` drives every random draw.
     pub fn new(cfg: &PlantConfig, pv: Box<dyn PvSource>, start_ms: i64, seed: u64) -> Result<Plant, PlantError> {
-        let tz: Tz = cfg.timezone.parse().map_err(|_| PlantError::TimeZone(cfg.timezone.clone()))?;
+        let tz_name = cfg.location.as_ref().map_or(cfg.timezone.as_str(), |l| l.timezone.as_str());
+        let tz: Tz = tz_name.parse().map_err(|_| PlantError::TimeZone(tz_name.to_owned()))?;
         let invalid = |what: &str, why: &str| PlantError::Invalid { what: what.to_owned(), why: why.to_owned() };
         if cfg.grid.is_some() && cfg.off_grid.is_some() {
             return Err(invalid("plant", "give `grid` or `off_grid`, not both"));
