@@ -20,3 +20,24 @@ fn every_example_site_loads() {
     }
     assert!(count >= 1, "no example sites found in {}", dir.display());
 }
+
+/// Every example site carries a `plant:` section that builds into a simulated plant.
+#[test]
+fn every_example_site_has_a_plant_that_builds() {
+    let dir = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("config");
+    for entry in std::fs::read_dir(&dir).unwrap() {
+        let path = entry.unwrap().path();
+        if path.extension().is_none_or(|e| e != "yaml") {
+            continue;
+        }
+        let text = std::fs::read_to_string(&path).unwrap();
+        let plant = spillway_sim::site::from_site_yaml(&text)
+            .unwrap_or_else(|e| panic!("{}: {e}", path.display()))
+            .unwrap_or_else(|| panic!("{} has no plant section", path.display()));
+        let options = spillway_sim::site::SiteOptions { start_ms: 1_781_481_600_000, seed: 1, sky: None };
+        let mut p = spillway_sim::site::build(&plant, &options).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+        for _ in 0..3600 {
+            p.step(1.0);
+        }
+    }
+}
