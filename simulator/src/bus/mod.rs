@@ -8,6 +8,7 @@
 //! `simulator/README-plant.md`.
 
 pub mod mqtt;
+pub mod probe;
 pub mod sunspec;
 
 use crate::plant::config::GarbageMode;
