@@ -439,21 +439,23 @@ impl Engine {
             absorbable += headroom;
             let st = &mut self.loads[i];
             let was_on = st.command.is_on();
-            if command != st.command {
+            // A switching is a change of state a relay or contactor sees: on/off or a
+            // stage. A modulating load moving its setpoint is following, not switching.
+            let switched = command.is_on() != was_on
+                || matches!((command, st.command), (Command::Stage(a), Command::Stage(b)) if a != b);
+            if switched {
                 switchings.push(Switching { load: LoadId(i), from: st.command, to: command, reason });
-                if command.is_on() != was_on {
-                    st.changed_at = now;
-                    if command.is_on() {
-                        st.starts.push_back(now);
-                    }
-                    if self.recovered_at.is_some_and(|r| now.since(r) < SETTLE + site.failsafe.recovery_hold) {
-                        st.settled = true;
-                    }
+            }
+            if command.is_on() != was_on {
+                st.changed_at = now;
+                if command.is_on() {
+                    st.starts.push_back(now);
+                }
+                if self.recovered_at.is_some_and(|r| now.since(r) < SETTLE + site.failsafe.recovery_hold) {
+                    st.settled = true;
                 }
                 // A new state of the load: its opposite rule starts afresh.
-                if command.is_on() != was_on {
-                    reset_rule_states(&site, i, st);
-                }
+                reset_rule_states(&site, i, st);
             }
             st.command = command;
             st.reason = reason;
