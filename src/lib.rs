@@ -8,6 +8,7 @@ pub mod actuators;
 pub mod config;
 pub mod diag;
 pub mod engine;
+pub mod offline;
 pub mod rules;
 pub mod sources;
 pub mod units;

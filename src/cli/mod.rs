@@ -2,6 +2,7 @@
 //! Nothing here decides anything; each verb is a thin wrapper over a library call.
 
 mod check;
+mod simulate;
 
 use std::io::IsTerminal;
 use std::path::PathBuf;
@@ -29,6 +30,20 @@ pub enum Verb {
         #[arg(long)]
         quiet: bool,
     },
+    /// Run the site's rules against its simulated plant (and a no-diversion baseline on
+    /// the same weather) and report energies, export, loads, obligations and costs.
+    Simulate {
+        /// The site file, with a `plant:` section.
+        site: PathBuf,
+        #[command(flatten)]
+        run: simulate::RunArgs,
+        /// Report format.
+        #[arg(long, value_enum, default_value = "text")]
+        report: simulate::Format,
+        /// Write a chart (SVG): power flows for short runs, monthly bars for long ones.
+        #[arg(long)]
+        chart: Option<PathBuf>,
+    },
 }
 
 /// Whether to colour diagnostics.
@@ -40,5 +55,6 @@ pub fn color() -> bool {
 pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     match cli.command {
         Verb::Check { site, quiet } => check::run(&site, quiet),
+        Verb::Simulate { site, run, report, chart } => simulate::run(&site, &run, report, chart.as_deref()),
     }
 }
