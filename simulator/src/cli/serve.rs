@@ -153,8 +153,13 @@ fn parse_start(text: &str, tz: Tz) -> anyhow::Result<i64> {
     Ok(local.timestamp_millis())
 }
 
-async fn serve_until_stopped(plant: Plant, options: ServeOptions, args: &Args, tz: Tz) -> anyhow::Result<()> {
+async fn serve_until_stopped(plant: Plant, mut options: ServeOptions, args: &Args, tz: Tz) -> anyhow::Result<()> {
+    // Signal handlers first: a SIGTERM that comes right after the address is printed
+    // must find them in place.
+    let mut signals = Signals::install()?;
     let start_ms = plant.now_ms();
+    let until = args.run_for.map(|s| start_ms + (s * 1000.0).round() as i64);
+    options.hold_at_ms = until;
     let handle = Server::start(plant, options).await?;
     let clock = handle.clock();
     println!(
@@ -170,7 +175,6 @@ async fn serve_until_stopped(plant: Plant, options: ServeOptions, args: &Args, t
     for spec in &args.faults {
         println!("spillway-sim: fault scheduled: {spec}");
     }
-    let until = args.run_for.map(|s| start_ms + (s * 1000.0).round() as i64);
     let every = (args.status_every > 0.0).then(|| Duration::from_secs_f64(args.status_every));
     let mut ticker = tokio::time::interval(every.unwrap_or(Duration::from_secs(3600)));
     ticker.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Skip);
@@ -178,7 +182,7 @@ async fn serve_until_stopped(plant: Plant, options: ServeOptions, args: &Args, t
     let reason = loop {
         // Cancel safety: every branch is cancel safe (signals, a watch, a tick).
         tokio::select! {
-            r = shutdown_signal() => break r?,
+            why = signals.recv() => break why,
             () = wait_until(&handle, until) => break "the --run-for time is up",
             _ = ticker.tick() => if every.is_some() { println!("{}", status(&handle, tz)) },
         }
@@ -196,19 +200,43 @@ async fn wait_until(handle: &ServerHandle, until: Option<i64>) {
     }
 }
 
-async fn shutdown_signal() -> anyhow::Result<&'static str> {
+/// SIGINT (Ctrl-C) and SIGTERM, registered as soon as this is built.
+struct Signals {
     #[cfg(unix)]
-    {
-        let mut term = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate())?;
-        tokio::select! {
-            r = tokio::signal::ctrl_c() => r.map(|()| "interrupted").map_err(Into::into),
-            _ = term.recv() => Ok("terminated"),
+    interrupt: tokio::signal::unix::Signal,
+    #[cfg(unix)]
+    terminate: tokio::signal::unix::Signal,
+}
+
+impl Signals {
+    fn install() -> anyhow::Result<Signals> {
+        #[cfg(unix)]
+        {
+            use tokio::signal::unix::{SignalKind, signal};
+            let interrupt = signal(SignalKind::interrupt()).context("cannot catch SIGINT")?;
+            let terminate = signal(SignalKind::terminate()).context("cannot catch SIGTERM")?;
+            Ok(Signals { interrupt, terminate })
         }
+        #[cfg(not(unix))]
+        Ok(Signals {})
     }
-    #[cfg(not(unix))]
-    {
-        tokio::signal::ctrl_c().await?;
-        Ok("interrupted")
+
+    /// Waits for either signal; says which.
+    async fn recv(&mut self) -> &'static str {
+        #[cfg(unix)]
+        {
+            tokio::select! {
+                _ = self.interrupt.recv() => "interrupted",
+                _ = self.terminate.recv() => "terminated",
+            }
+        }
+        #[cfg(not(unix))]
+        {
+            match tokio::signal::ctrl_c().await {
+                Ok(()) => "interrupted",
+                Err(_) => std::future::pending().await,
+            }
+        }
     }
 }
 

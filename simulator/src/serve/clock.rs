@@ -61,8 +61,16 @@ impl SimClock {
 }
 
 /// Steps the plant until cancelled: at each tick, every whole step up to the simulated
-/// instant the wall clock has reached since `t0`, then announces the new time.
-pub(super) async fn run(shared: Arc<Shared>, clock: SimClock, t0: Instant, sim0_ms: i64, cancel: CancellationToken) {
+/// instant the wall clock has reached since `t0` (`span.0` in simulated time), but not
+/// past `span.1`, then announces the new time.
+pub(super) async fn run(
+    shared: Arc<Shared>,
+    clock: SimClock,
+    t0: Instant,
+    span: (i64, i64),
+    cancel: CancellationToken,
+) {
+    let (sim0_ms, hold_at_ms) = span;
     let mut ticker = tokio::time::interval_at(t0 + clock.tick(), clock.tick());
     // Behind schedule (a busy machine), the next tick catches up on every step owed,
     // since the target comes from the elapsed wall time, not from the tick count.
@@ -75,7 +83,7 @@ pub(super) async fn run(shared: Arc<Shared>, clock: SimClock, t0: Instant, sim0_
             () = cancel.cancelled() => return,
             _ = ticker.tick() => {}
         }
-        let target = sim0_ms + clock.sim_elapsed_ms(t0.elapsed());
+        let target = sim0_ms.saturating_add(clock.sim_elapsed_ms(t0.elapsed())).min(hold_at_ms);
         loop {
             let (now, behind) = {
                 let mut plant = shared.plant();

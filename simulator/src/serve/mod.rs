@@ -77,6 +77,9 @@ pub struct ServeOptions {
     pub step: Option<Duration>,
     /// Simulated time between two MQTT snapshots (the meter's default period).
     pub publish_every: Duration,
+    /// The clock holds at this instant (ms since the epoch) rather than running past it;
+    /// the devices keep answering. `None` = it runs until stopped.
+    pub hold_at_ms: Option<i64>,
 }
 
 impl Default for ServeOptions {
@@ -88,6 +91,7 @@ impl Default for ServeOptions {
             speed: 1.0,
             step: None,
             publish_every: Duration::from_secs(1),
+            hold_at_ms: None,
         }
     }
 }
@@ -157,7 +161,8 @@ impl Server {
         let root = CancellationToken::new();
         let (generation, modbus_addr) = start_generation(&shared, options.modbus, mqtt.as_ref(), &root)?;
         let clock_task = TaskTracker::new();
-        clock_task.spawn(clock::run(shared.clone(), clock, Instant::now(), sim0_ms, root.clone()));
+        let hold_at_ms = options.hold_at_ms.unwrap_or(i64::MAX);
+        clock_task.spawn(clock::run(shared.clone(), clock, Instant::now(), (sim0_ms, hold_at_ms), root.clone()));
         clock_task.close();
         tracing::info!(%modbus_addr, speed = clock.speed, step_ms = clock.step_ms, "simulator serving");
         Ok(ServerHandle {
