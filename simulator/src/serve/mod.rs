@@ -268,7 +268,8 @@ impl ServerHandle {
         f(&mut self.shared.plant())
     }
 
-    /// Waits until the simulated clock has reached `at_ms`.
+    /// Waits until the simulated clock has reached `at_ms` (forever if the clock holds
+    /// earlier, see [`ServeOptions::hold_at_ms`]).
     pub async fn wait_until(&self, at_ms: i64) {
         let mut updates = self.shared.updates.subscribe();
         // The sender lives in `self.shared`, so `wait_for` cannot see it closed.
@@ -285,8 +286,8 @@ impl ServerHandle {
         *self.shared.mqtt.borrow()
     }
 
-    /// Waits until the MQTT link is subscribed to the command topics. Returns at once,
-    /// never ready, without MQTT: check [`ServeOptions::mqtt`] first.
+    /// Waits until the MQTT link is subscribed to the command topics; returns at once
+    /// when no broker was given ([`ServerHandle::mqtt_enabled`]).
     pub async fn wait_mqtt_subscribed(&self) {
         if self.mqtt.is_none() {
             return;
