@@ -374,7 +374,7 @@ impl Bus {
         self.inverter_changed();
     }
 
-    fn check_unit(&self, unit: u8) -> Result<(), BusError> {
+    pub(crate) fn check_unit(&self, unit: u8) -> Result<(), BusError> {
         let idx = match unit {
             METER_UNIT if !self.layout.off_grid => 0,
             INVERTER_UNIT => 1,
