@@ -166,23 +166,40 @@ pub fn run_pair(
     let halves = |offset: f64| move |f: f64| progress.update(offset + f / 2.0);
     let first = halves(0.0);
     let second = halves(0.5);
-    let mut main = RunOptions::day(p.from);
-    main.days = p.days;
-    main.seed = p.seed;
-    main.sky = p.sky;
-    main.step = step;
-    main.trace = chart_days;
-    main.progress = Some(&first);
-    let run = offline::simulate_once(&p.site, p.loaded.tariff.as_ref(), &p.plant, main).context("simulation failed")?;
-    let mut base = RunOptions::day(p.from);
-    base.days = p.days;
-    base.seed = p.seed;
-    base.sky = p.sky;
-    base.step = step;
-    base.controller = Controller::Baseline;
-    base.progress = Some(&second);
-    let baseline = offline::simulate_once(&p.site, p.loaded.tariff.as_ref(), &p.plant, base)
-        .context("baseline simulation failed")?;
+    fn options<'a>(
+        p: &Prepared,
+        step: Duration,
+        controller: Controller,
+        progress: &'a (dyn Fn(f64) + Sync),
+    ) -> RunOptions<'a> {
+        let mut o = RunOptions::day(p.from);
+        o.days = p.days;
+        o.seed = p.seed;
+        o.sky = p.sky;
+        o.step = step;
+        o.controller = controller;
+        o.progress = Some(progress);
+        o
+    }
+    // The baseline is independent of the rules: run it beside the main run when the
+    // machine has a second core.
+    let (run, baseline) = std::thread::scope(|scope| {
+        let base = scope.spawn(|| {
+            offline::simulate_once(
+                &p.site,
+                p.loaded.tariff.as_ref(),
+                &p.plant,
+                options(p, step, Controller::Baseline, &second),
+            )
+        });
+        let mut main = options(p, step, Controller::Spillway, &first);
+        main.trace = chart_days;
+        let run = offline::simulate_once(&p.site, p.loaded.tariff.as_ref(), &p.plant, main);
+        let baseline = base.join().map_err(|_| anyhow::anyhow!("the baseline run panicked"));
+        (run, baseline)
+    });
+    let run = run.context("simulation failed")?;
+    let baseline = baseline?.context("baseline simulation failed")?;
     progress.finish();
     let to = p.from + chrono::Days::new(u64::from(p.days - 1));
     let info = report::RunInfo {

@@ -1187,7 +1187,7 @@ impl Builder<'_, '_> {
         };
         if let (Some(cap), Some(n)) = (max_starts, starts_node) {
             let cycle = (min_on + min_off).as_secs_f64();
-            if cycle > 0.0 && cycle <= 86_400.0 && f64::from(cap) > 3600.0 / cycle {
+            if cycle > 0.0 && cycle <= 86_400.0 && f64::from(cap) > (3600.0 / cycle).ceil() {
                 self.diags.push(
                     Diagnostic::warning(
                         "C0229",
@@ -1198,7 +1198,7 @@ impl Builder<'_, '_> {
                     .with_note(format!(
                         "min_on + min_off = {} allows at most {} starts an hour",
                         units::format_duration(min_on + min_off),
-                        (3600.0 / cycle).floor()
+                        (3600.0 / cycle).ceil()
                     )),
                 );
             }

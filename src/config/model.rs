@@ -644,8 +644,9 @@ pub struct Window {
 impl Window {
     /// Whether a time of day (seconds since local midnight) is inside.
     pub fn contains(&self, seconds_of_day: u32) -> bool {
-        let s = self.start.signed_duration_since(NaiveTime::MIN).num_seconds() as u32;
-        let e = self.end.signed_duration_since(NaiveTime::MIN).num_seconds() as u32;
+        use chrono::Timelike;
+        let s = self.start.num_seconds_from_midnight();
+        let e = self.end.num_seconds_from_midnight();
         if s <= e { (s..e).contains(&seconds_of_day) } else { seconds_of_day >= s || seconds_of_day < e }
     }
 }

@@ -130,6 +130,9 @@ impl Guard {
         };
         self.limit = match next {
             Some(l) if l >= inv.rated => None,
+            // Changes within half the tolerance are noise: keeping the limit saves the
+            // inverter a write and the loop a wobble.
+            Some(l) if before.is_some_and(|b| (l - b).abs() < tolerance * 0.5) => before,
             Some(l) => Some(l.clamp(Power::ZERO, inv.rated)),
             None => None,
         };

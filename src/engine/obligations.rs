@@ -34,12 +34,12 @@ pub struct ObligationResult {
     pub met: bool,
 }
 
-/// Hysteresis below a temperature target before forced heating restarts
-/// (`common practice`: a thermostat deadband of about 1–3 K).
-const RESTART_BELOW: f64 = 1.5;
-/// A tank within this of the target at the deadline counts as having reached it
-/// (sensor resolution and thermostat deadband; `common practice`).
-const MET_TOLERANCE: f64 = 0.5;
+/// Hysteresis below a temperature target before forced heating restarts, and how close
+/// to the target a tank must be at its deadline to count as having reached it: one
+/// deadband, so that a tank topped up to the target and cooling a little is never both
+/// "not worth reheating" and "missed" (`common practice`: thermostat deadbands are 1–3 K).
+const RESTART_BELOW: f64 = 1.0;
+const MET_TOLERANCE: f64 = RESTART_BELOW;
 
 /// What an obligation asks of its load this tick.
 pub struct Demand {
@@ -60,7 +60,7 @@ pub struct Situation {
 }
 
 fn seconds(t: chrono::NaiveTime) -> u32 {
-    t.signed_duration_since(chrono::NaiveTime::MIN).num_seconds() as u32
+    chrono::Timelike::num_seconds_from_midnight(&t)
 }
 
 /// Seconds from `now` to the end of `window` if `now` is inside it.
@@ -194,9 +194,9 @@ mod tests {
         assert!(!s.demand(&ob, &at(14 * 3600, 0.0, Some(50.0))).force_on, "before the window");
         assert!(s.demand(&ob, &at(15 * 3600, 0.0, Some(50.0))).force_on);
         assert!(!s.demand(&ob, &at(16 * 3600, 0.0, Some(60.0))).force_on, "reached");
-        assert!(!s.demand(&ob, &at(16 * 3600 + 60, 0.0, Some(59.0))).force_on, "within the restart deadband");
-        assert!(s.demand(&ob, &at(16 * 3600 + 120, 0.0, Some(58.0))).force_on, "below the deadband");
-        let _ = s.demand(&ob, &at(17 * 3600 - 30, 0.0, Some(59.8)));
+        assert!(!s.demand(&ob, &at(16 * 3600 + 60, 0.0, Some(59.5))).force_on, "within the restart deadband");
+        assert!(s.demand(&ob, &at(16 * 3600 + 120, 0.0, Some(58.8))).force_on, "below the deadband");
+        let _ = s.demand(&ob, &at(17 * 3600 - 30, 0.0, Some(59.1)));
         assert!(s.end_of_day(&ob, Duration::ZERO, Timestamp(0)));
     }
 

@@ -242,11 +242,12 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
             let x0 = i as f64 + 0.1 + slot as f64 * 0.2;
             Rectangle::new([(x0, 0.0), (x0 + 0.18, value)], colour.filled())
         };
-        let series: [(&str, RGBColor, Box<dyn Fn(&super::report::MonthReport) -> f64>); 4] = [
-            ("import", GRID, Box::new(|m| m.import_kwh)),
-            ("import without diversion", RGBColor(240, 170, 170), Box::new(|m| m.baseline_import_kwh)),
-            ("export", EXPORT, Box::new(|m| m.export_kwh)),
-            ("diverted", LOADS[0], Box::new(|m| m.diverted_kwh)),
+        type Pick = fn(&super::report::MonthReport) -> f64;
+        let series: [(&str, RGBColor, Pick); 4] = [
+            ("import", GRID, |m| m.import_kwh),
+            ("import without diversion", RGBColor(240, 170, 170), |m| m.baseline_import_kwh),
+            ("export", EXPORT, |m| m.export_kwh),
+            ("diverted", LOADS[0], |m| m.diverted_kwh),
         ];
         for (slot, (name, colour, get)) in series.iter().enumerate() {
             let c = *colour;

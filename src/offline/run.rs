@@ -20,6 +20,9 @@ use crate::config::tariff::Tariff;
 use crate::engine::{Engine, SiteClock, Snapshot};
 use crate::units::Timestamp;
 
+/// Watches a run after every engine tick.
+pub type Observer<'a> = dyn FnMut(&Engine, &Plant) + 'a;
+
 /// Who decides.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Controller {
@@ -52,7 +55,7 @@ pub struct RunOptions<'a> {
     /// Called now and then with the fraction done (for a progress bar).
     pub progress: Option<&'a (dyn Fn(f64) + Sync)>,
     /// Called after every engine tick (site expectations watch the run through it).
-    pub observer: Option<&'a mut dyn FnMut(&Engine, &Plant)>,
+    pub observer: Option<&'a mut Observer<'a>>,
 }
 
 impl<'a> RunOptions<'a> {
