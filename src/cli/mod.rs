@@ -2,7 +2,9 @@
 //! Nothing here decides anything; each verb is a thin wrapper over a library call.
 
 mod check;
+mod compare;
 mod simulate;
+mod test;
 
 use std::io::IsTerminal;
 use std::path::PathBuf;
@@ -44,6 +46,31 @@ pub enum Verb {
         #[arg(long)]
         chart: Option<PathBuf>,
     },
+    /// Check the site's own expectations (`expect:`) against its named simulated days:
+    /// a pass/fail table, exit code 0 when every check passes, 1 otherwise.
+    Test {
+        /// The site file, with `plant:` and `expect:` sections.
+        site: PathBuf,
+        /// Simulation step.
+        #[arg(long, default_value = "1s", value_parser = simulate::parse_duration)]
+        step: std::time::Duration,
+        /// Output format.
+        #[arg(long, value_enum, default_value = "text")]
+        report: simulate::Format,
+    },
+    /// Run two site files' rules on the same plant (the first file's), weather and seed,
+    /// and show their figures side by side with the better value marked.
+    Compare {
+        /// The first site file (its plant is used for both).
+        a: PathBuf,
+        /// The second site file.
+        b: PathBuf,
+        #[command(flatten)]
+        run: simulate::RunArgs,
+        /// Output format.
+        #[arg(long, value_enum, default_value = "text")]
+        report: simulate::Format,
+    },
 }
 
 /// Whether to colour diagnostics.
@@ -56,5 +83,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     match cli.command {
         Verb::Check { site, quiet } => check::run(&site, quiet),
         Verb::Simulate { site, run, report, chart } => simulate::run(&site, &run, report, chart.as_deref()),
+        Verb::Compare { a, b, run, report } => compare::run(&a, &b, &run, report),
+        Verb::Test { site, step, report } => test::run(&site, step, report),
     }
 }

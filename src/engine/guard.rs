@@ -11,6 +11,11 @@ use super::decision::{LimitReason, Mode};
 use crate::config::model::Site;
 use crate::units::{Power, Timestamp};
 
+/// How close to its limit the inverter's output must be to count as held back by it.
+fn pinned_margin(rated: Power) -> Power {
+    Power((rated.0 * 0.02).max(50.0))
+}
+
 /// Guard state between ticks.
 #[derive(Debug, Clone, Default)]
 pub struct Guard {
@@ -42,9 +47,8 @@ impl Guard {
         if let (Some(avail), Some(pv)) = (value(site.roles.pv_available), pv) {
             return Power((avail - pv).max(0.0));
         }
-        let pinned_margin = (inv.rated.0 * 0.02).max(50.0);
         match pv {
-            Some(pv) if pv >= limit.0 - pinned_margin => (inv.rated - limit).max(Power::ZERO),
+            Some(pv) if pv >= limit.0 - pinned_margin(inv.rated).0 => (inv.rated - limit).max(Power::ZERO),
             _ => Power::ZERO,
         }
     }
@@ -116,11 +120,21 @@ impl Guard {
                     // Cut the whole excess at once.
                     Some(base - (target - expected))
                 } else if expected > target + tolerance {
-                    // Importing more than the target: give the PV back gently.
-                    Some(current + rate.min(expected - target))
-                } else if absorbable.0 > 0.0 {
-                    // At the target, but a modulating load could take more: probe upwards,
-                    // never by more than would push the grid past the export limit.
+                    // Importing more than the target: give the PV back gently — but no
+                    // further than the PV could use now. Behind a cloud the array makes
+                    // less than the limit; raising the limit then would only let the sun's
+                    // return surge into export, so the limit stays a ceiling just above
+                    // what the site consumes.
+                    let excess = expected - target;
+                    let raised = current + rate.min(excess);
+                    Some(match pv {
+                        Some(p) => raised.min(p + excess + tolerance * 2.0),
+                        None => raised,
+                    })
+                } else if absorbable.0 > 0.0 && pv.is_none_or(|p| p >= current - pinned_margin(inv.rated)) {
+                    // At the target, the inverter held at its limit, and a modulating load
+                    // could take more: probe upwards, never by more than would push the
+                    // grid past the export limit.
                     let step = rate.min(absorbable).min((expected + export_limit).max(Power::ZERO));
                     Some(current + step)
                 } else {

@@ -9,6 +9,8 @@
 pub mod baseline;
 pub mod bind;
 pub mod chart;
+pub mod compare;
+pub mod expect;
 pub mod report;
 pub mod run;
 

@@ -1,0 +1,151 @@
+//! Two rule sets on the same plant, weather and seed, side by side: energies, costs,
+//! switchings, obligations and export, with the better value marked in each row.
+
+use std::fmt::Write as _;
+
+use serde::Serialize;
+
+use super::report::Report;
+
+/// Which side is better in a row.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Better {
+    /// The first file.
+    A,
+    /// The second file.
+    B,
+    /// Equal (or not comparable).
+    Same,
+}
+
+/// One row of the comparison.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Row {
+    /// What is compared.
+    pub label: String,
+    /// Unit of the values.
+    pub unit: String,
+    /// Value for the first file.
+    pub a: f64,
+    /// Value for the second file.
+    pub b: f64,
+    /// Which is better.
+    pub better: Better,
+}
+
+/// The whole comparison.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Comparison {
+    /// Name of the first file.
+    pub a: String,
+    /// Name of the second file.
+    pub b: String,
+    /// Rows.
+    pub rows: Vec<Row>,
+}
+
+/// Which direction is better for a figure.
+#[derive(Clone, Copy)]
+enum Goal {
+    Lower,
+    Higher,
+}
+
+fn row(label: impl Into<String>, unit: &str, a: f64, b: f64, goal: Goal) -> Row {
+    let tolerance = 1e-9 + 1e-6 * a.abs().max(b.abs());
+    let better = if (a - b).abs() <= tolerance {
+        Better::Same
+    } else {
+        match (goal, a < b) {
+            (Goal::Lower, true) | (Goal::Higher, false) => Better::A,
+            _ => Better::B,
+        }
+    };
+    Row { label: label.into(), unit: unit.to_owned(), a, b, better }
+}
+
+/// Compares two reports of runs on the same plant, weather and seed.
+pub fn compare(a_name: &str, a: &Report, b_name: &str, b: &Report) -> Comparison {
+    use Goal::{Higher, Lower};
+    let mut rows = vec![
+        row("import", "kWh", a.energy.import_kwh, b.energy.import_kwh, Lower),
+        row("export", "kWh", a.energy.export_kwh, b.energy.export_kwh, Lower),
+        row("diverted into loads", "kWh", a.energy.diverted_kwh, b.energy.diverted_kwh, Higher),
+        row("self-consumption", "%", a.self_consumption_pct, b.self_consumption_pct, Higher),
+        row("PV curtailed", "kWh", a.energy.curtailed_kwh, b.energy.curtailed_kwh, Lower),
+        row("export peak", "W", a.export.peak_w, b.export.peak_w, Lower),
+        row("time over the export limit", "s", a.export.seconds_over_limit, b.export.seconds_over_limit, Lower),
+        row("guard response p95", "ms", a.guard.response_ms.p95, b.guard.response_ms.p95, Lower),
+    ];
+    if let (Some(ca), Some(cb)) = (&a.cost, &b.cost) {
+        rows.push(row("cost", &ca.currency, ca.total, cb.total, Lower));
+        rows.push(row("savings against no diversion", &ca.currency, ca.savings, cb.savings, Higher));
+    }
+    for la in &a.loads {
+        let Some(lb) = b.loads.iter().find(|l| l.name == la.name) else { continue };
+        rows.push(row(format!("{}: energy", la.name), "kWh", la.energy_kwh, lb.energy_kwh, Higher));
+        rows.push(row(format!("{}: from the grid", la.name), "kWh", la.grid_topup_kwh, lb.grid_topup_kwh, Lower));
+        rows.push(row(
+            format!("{}: switchings", la.name),
+            "",
+            f64::from(la.switchings),
+            f64::from(lb.switchings),
+            Lower,
+        ));
+    }
+    for oa in &a.obligations {
+        let Some(ob) = b.obligations.iter().find(|o| o.name == oa.name) else { continue };
+        rows.push(row(
+            format!("{}: days missed", oa.name),
+            "",
+            f64::from(oa.days_missed),
+            f64::from(ob.days_missed),
+            Lower,
+        ));
+    }
+    Comparison { a: a_name.to_owned(), b: b_name.to_owned(), rows }
+}
+
+impl Comparison {
+    /// As JSON.
+    pub fn to_json(&self) -> String {
+        serde_json::to_string_pretty(self).unwrap_or_default()
+    }
+
+    /// As a table; `◀` marks the better value.
+    pub fn to_text(&self) -> String {
+        let mut o = String::new();
+        let width = self.rows.iter().map(|r| r.label.chars().count()).max().unwrap_or(10).max(10);
+        let _ = writeln!(o, "A = {}\nB = {}\n", self.a, self.b);
+        let _ = writeln!(o, "{:<width$}  {:>14}  {:>14}", "", "A", "B");
+        for r in &self.rows {
+            let fmt = |v: f64| {
+                let text = if v.fract() == 0.0 { format!("{v:.0}") } else { format!("{v:.2}") };
+                if r.unit.is_empty() { text } else { format!("{text} {}", r.unit) }
+            };
+            let (ma, mb) = match r.better {
+                Better::A => ("◀", " "),
+                Better::B => (" ", "◀"),
+                Better::Same => (" ", " "),
+            };
+            let _ = writeln!(o, "{:<width$}  {:>14}{ma} {:>14}{mb}", r.label, fmt(r.a), fmt(r.b));
+        }
+        let wins_a = self.rows.iter().filter(|r| r.better == Better::A).count();
+        let wins_b = self.rows.iter().filter(|r| r.better == Better::B).count();
+        let _ = writeln!(o, "\nbetter in {wins_a} row(s) for A, {wins_b} for B (◀ marks the better value)");
+        o
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_better_value_is_marked_by_the_figures_direction() {
+        assert_eq!(row("import", "kWh", 1.0, 2.0, Goal::Lower).better, Better::A);
+        assert_eq!(row("diverted", "kWh", 1.0, 2.0, Goal::Higher).better, Better::B);
+        assert_eq!(row("x", "", 3.0, 3.0, Goal::Lower).better, Better::Same);
+    }
+}

@@ -1,0 +1,461 @@
+//! A site's own expectations, written by its owner or installer in the site file and
+//! checked by `spillway test` against named simulated days — an installer can keep them
+//! in their own CI.
+//!
+//! ```yaml
+//! expect:
+//!   days:
+//!     - { name: clear-june, weather: clear, date: 2026-06-21, seed: 1 }
+//!     - { name: grey-march, weather: overcast, date: 2026-03-10 }
+//!   checks:
+//!     - name: no export
+//!       always: export <= 10W         # a rule that must hold at every tick …
+//!       grace: 5s                     # … except for at most this long in a row
+//!     - name: hot by five
+//!       at: "17:00"                   # a rule checked once a day at a local time
+//!       check: tank_temp >= 60°C
+//!       days: [clear-june]            # only on these days (default: all)
+//!     - name: calm pump
+//!       switchings: pool_pump         # at most N switchings in any rolling window
+//!       at_most: 4
+//!       per: 1h
+//!     - name: duties done
+//!       obligations_met: true         # every obligation of every load met that day
+//!     - name: little export
+//!       export_over_limit: 2min       # at most this long above the export limit
+//! ```
+
+use std::collections::VecDeque;
+use std::fmt::Write as _;
+use std::sync::Arc;
+use std::time::Duration;
+
+use chrono::NaiveDate;
+use serde::Serialize;
+use spillway_sim::plant::PlantConfig;
+use spillway_sim::weather::WeatherKind;
+
+use super::OfflineError;
+use super::run::{Controller, RunOptions, simulate_once};
+use crate::config::Loaded;
+use crate::config::model::{LoadId, Site};
+use crate::config::values;
+use crate::config::yaml::{Diagnostics, MapReader, Node, Value};
+use crate::diag::Diagnostic;
+use crate::engine::Engine;
+use crate::rules::{self, Rule, RuleState};
+use crate::units::Timestamp;
+
+/// A named simulated day.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TestDay {
+    /// Its name.
+    pub name: String,
+    /// The local date.
+    pub date: NaiveDate,
+    /// The sky (`None`: the plant's).
+    pub sky: Option<WeatherKind>,
+    /// Seed.
+    pub seed: u64,
+}
+
+/// What a check asks.
+#[derive(Debug, Clone)]
+pub enum CheckKind {
+    /// A rule true at every tick, but for `grace` in a row.
+    Always {
+        /// The rule.
+        rule: Rule,
+        /// Longest run of ticks it may be false.
+        grace: Duration,
+    },
+    /// A rule true at a local time each day.
+    At {
+        /// Seconds after local midnight.
+        seconds_of_day: u32,
+        /// The rule.
+        rule: Rule,
+    },
+    /// A load switches at most `at_most` times in any window of `per`.
+    Switchings {
+        /// The load.
+        load: LoadId,
+        /// Most switchings allowed.
+        at_most: u32,
+        /// The window.
+        per: Duration,
+    },
+    /// Every obligation met.
+    ObligationsMet,
+    /// At most this long with export above the limit plus tolerance.
+    ExportOverLimit(Duration),
+}
+
+/// One check.
+#[derive(Debug, Clone)]
+pub struct Check {
+    /// Its name.
+    pub name: String,
+    /// What it asks.
+    pub kind: CheckKind,
+    /// The days it applies to (empty: all).
+    pub days: Vec<String>,
+}
+
+/// The `expect:` section.
+#[derive(Debug, Clone, Default)]
+pub struct Expectations {
+    /// Named days.
+    pub days: Vec<TestDay>,
+    /// Checks.
+    pub checks: Vec<Check>,
+}
+
+/// Reads the `expect:` section (absent → empty). Errors are located diagnostics.
+pub fn read(loaded: &Loaded) -> Result<Expectations, Vec<Diagnostic>> {
+    let mut out = Expectations::default();
+    let Value::Map(top) = &loaded.tree.value else { return Ok(out) };
+    let Some((_, node)) = top.iter().find(|(k, _)| k.name == "expect") else { return Ok(out) };
+    let mut d = Diagnostics::default();
+    let text = &loaded.source.text;
+    if let Some(mut m) = MapReader::new(node, "the `expect` section", &mut d) {
+        let days = m.get("days");
+        let checks = m.get("checks");
+        m.finish(&mut d);
+        if let Some(Value::Seq(items)) = days.map(|n| &n.value) {
+            for item in items {
+                if let Some(day) = read_day(item, &mut d) {
+                    out.days.push(day);
+                }
+            }
+        }
+        if let Some(Value::Seq(items)) = checks.map(|n| &n.value) {
+            for item in items {
+                if let Some(c) = read_check(item, &loaded.site, text, &out.days, &mut d) {
+                    out.checks.push(c);
+                }
+            }
+        }
+    }
+    if d.has_errors() { Err(d.list) } else { Ok(out) }
+}
+
+fn read_day(node: &Node, d: &mut Diagnostics) -> Option<TestDay> {
+    let mut m = MapReader::new(node, "a test day", d)?;
+    let name = m.require("name", d).and_then(|n| values::text(n, "the day's name", d)).map(str::to_owned);
+    let date = m.require("date", d).and_then(|n| {
+        let t = n.scalar_text()?;
+        let parsed = NaiveDate::parse_from_str(&t, "%Y-%m-%d").ok();
+        if parsed.is_none() {
+            d.error("C0601", "`date` must be YYYY-MM-DD", n.span.clone(), "e.g. 2026-06-21");
+        }
+        parsed
+    });
+    let sky = match m.get("weather") {
+        None => Some(None),
+        Some(n) => values::choice(n, &["clear", "mixed", "overcast", "varied"], "the weather", d).map(|w| {
+            Some(match w {
+                "clear" => WeatherKind::Clear,
+                "mixed" => WeatherKind::Mixed,
+                "overcast" => WeatherKind::Overcast,
+                _ => WeatherKind::Varied,
+            })
+        }),
+    };
+    let seed = m.get("seed").map_or(Some(1), |n| values::integer(n, 0, i64::MAX, "the seed", d).map(|s| s as u64));
+    m.finish(d);
+    Some(TestDay { name: name?, date: date?, sky: sky?, seed: seed? })
+}
+
+fn rule(node: &Node, site: &Site, text: &str, d: &mut Diagnostics) -> Option<Rule> {
+    let src = values::word(node, "a rule", d)?;
+    let offset = crate::config::yaml::locate_text(text, node, &src);
+    let scope = crate::config::load::site_scope(site);
+    match rules::compile(&src, &scope) {
+        Ok(c) => Some(c.rule),
+        Err(errors) => {
+            for e in &errors {
+                d.push(rules::to_diagnostic(e, offset));
+            }
+            None
+        }
+    }
+}
+
+fn read_check(node: &Node, site: &Site, text: &str, days: &[TestDay], d: &mut Diagnostics) -> Option<Check> {
+    let mut m = MapReader::new(node, "a check", d)?;
+    let name = m.require("name", d).and_then(|n| values::text(n, "the check's name", d)).map(str::to_owned);
+    let always = m.get("always");
+    let grace = m.get("grace");
+    let at = m.get("at");
+    let check = m.get("check");
+    let switchings = m.get("switchings");
+    let at_most = m.get("at_most");
+    let per = m.get("per");
+    let obligations = m.get("obligations_met");
+    let export = m.get("export_over_limit");
+    let days_node = m.get("days");
+    let span = m.span();
+    m.finish(d);
+    let kinds = [always.is_some(), at.is_some(), switchings.is_some(), obligations.is_some(), export.is_some()];
+    if kinds.iter().filter(|k| **k).count() != 1 {
+        d.error(
+            "C0602",
+            "a check is exactly one of `always`, `at`, `switchings`, `obligations_met` or `export_over_limit`",
+            span,
+            "what does this check ask?",
+        );
+        return None;
+    }
+    let kind = if let Some(n) = always {
+        let grace = match grace {
+            Some(g) => values::duration(g, "the grace", d)?,
+            None => Duration::ZERO,
+        };
+        CheckKind::Always { rule: rule(n, site, text, d)?, grace }
+    } else if let Some(n) = at {
+        let t = values::time_of_day(n, "`at`", d)?;
+        let Some(c) = check else {
+            d.error("C0603", "an `at` check needs `check:` (the rule to hold then)", span, "add `check: …`");
+            return None;
+        };
+        CheckKind::At { seconds_of_day: chrono::Timelike::num_seconds_from_midnight(&t), rule: rule(c, site, text, d)? }
+    } else if let Some(n) = switchings {
+        let load_name = values::text(n, "the load", d)?;
+        let Some((id, _)) = site.load(load_name) else {
+            d.error("C0604", format!("no load called \"{load_name}\""), n.span.clone(), "name a load of this site");
+            return None;
+        };
+        let at_most = at_most.map_or(Some(4), |n| values::integer(n, 0, 100_000, "`at_most`", d).map(|v| v as u32))?;
+        let per = per.map_or(Some(Duration::from_secs(3600)), |n| values::duration(n, "`per`", d))?;
+        CheckKind::Switchings { load: id, at_most, per }
+    } else if let Some(n) = obligations {
+        if !values::boolean(n, "`obligations_met`", d)? {
+            d.error(
+                "C0605",
+                "`obligations_met: false` checks nothing",
+                n.span.clone(),
+                "write `true` or remove the check",
+            );
+            return None;
+        }
+        CheckKind::ObligationsMet
+    } else {
+        CheckKind::ExportOverLimit(values::duration(export?, "`export_over_limit`", d)?)
+    };
+    let mut names = Vec::new();
+    if let Some(n) = days_node {
+        match &n.value {
+            Value::Seq(items) => {
+                for i in items {
+                    let Some(t) = values::text(i, "a day's name", d) else { continue };
+                    if !days.iter().any(|day| day.name == t) {
+                        d.error(
+                            "C0606",
+                            format!("no test day called \"{t}\""),
+                            i.span.clone(),
+                            "name a day under `expect.days`",
+                        );
+                    }
+                    names.push(t.to_owned());
+                }
+            }
+            _ => d.error("C0606", "`days` is a list of day names", n.span.clone(), "e.g. [clear-june]"),
+        }
+    }
+    Some(Check { name: name?, kind, days: names })
+}
+
+/// One check's verdict on one day.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Verdict {
+    /// The day.
+    pub day: String,
+    /// The check.
+    pub check: String,
+    /// Whether it held.
+    pub passed: bool,
+    /// When it first failed (local time), if it did.
+    pub at: Option<String>,
+    /// What the rule saw and why the engine held the loads where they were.
+    pub detail: String,
+}
+
+struct Watch {
+    state: Option<RuleState>,
+    false_since: Option<Timestamp>,
+    failed: Option<(Timestamp, String)>,
+    done_today: bool,
+    recent: VecDeque<Timestamp>,
+}
+
+fn reasons(engine: &Engine, site: &Site) -> String {
+    let mut s = String::new();
+    for i in 0..site.loads.len() {
+        let _ = write!(s, "{}{}: {}", if i > 0 { "; " } else { "" }, site.loads[i].name, engine.explain(LoadId(i)));
+    }
+    let d = engine.decisions();
+    if let Some(l) = d.inverter_limit {
+        let _ = write!(s, "; inverter limited to {l} ({:?})", d.limit_reason);
+    }
+    s
+}
+
+/// Runs every test day and checks every applicable check.
+pub fn run(
+    site: &Arc<Site>,
+    loaded: &Loaded,
+    plant: &PlantConfig,
+    exp: &Expectations,
+    step: Duration,
+) -> Result<Vec<Verdict>, OfflineError> {
+    let mut verdicts = Vec::new();
+    for day in &exp.days {
+        let checks: Vec<&Check> =
+            exp.checks.iter().filter(|c| c.days.is_empty() || c.days.contains(&day.name)).collect();
+        let mut watches: Vec<Watch> = checks
+            .iter()
+            .map(|c| Watch {
+                state: match &c.kind {
+                    CheckKind::Always { rule, .. } | CheckKind::At { rule, .. } => Some(rule.new_state()),
+                    _ => None,
+                },
+                false_since: None,
+                failed: None,
+                done_today: false,
+                recent: VecDeque::new(),
+            })
+            .collect();
+        let tz = site.timezone;
+        let local = |t: Timestamp| t.to_utc().with_timezone(&tz).format("%H:%M:%S").to_string();
+        let mut observer = |engine: &Engine, _plant: &spillway_sim::plant::Plant| {
+            let input = engine.eval_input();
+            for (c, w) in checks.iter().zip(watches.iter_mut()) {
+                if w.failed.is_some() {
+                    continue;
+                }
+                match &c.kind {
+                    CheckKind::Always { rule, grace } => {
+                        let Some(state) = w.state.as_mut() else { continue };
+                        if rule.eval(&input, state).is_true() {
+                            w.false_since = None;
+                        } else {
+                            let since = *w.false_since.get_or_insert(input.now);
+                            if input.now.since(since) >= *grace {
+                                let why = format!("{} — {}", rule.explain(&input, state), reasons(engine, site));
+                                w.failed = Some((since, why));
+                            }
+                        }
+                    }
+                    CheckKind::At { seconds_of_day, rule } => {
+                        let Some(state) = w.state.as_mut() else { continue };
+                        let truth = rule.eval(&input, state);
+                        if !w.done_today && input.local.seconds_of_day >= *seconds_of_day {
+                            w.done_today = true;
+                            if !truth.is_true() {
+                                let why = format!("{} — {}", rule.explain(&input, state), reasons(engine, site));
+                                w.failed = Some((input.now, why));
+                            }
+                        }
+                    }
+                    CheckKind::Switchings { load, at_most, per } => {
+                        for s in &engine.decisions().switchings {
+                            if s.load != *load {
+                                continue;
+                            }
+                            w.recent.push_back(input.now);
+                            while w.recent.front().is_some_and(|t| input.now.since(*t) >= *per) {
+                                w.recent.pop_front();
+                            }
+                            if w.recent.len() as u32 > *at_most {
+                                let why = format!(
+                                    "{} switchings within {}; last: {}",
+                                    w.recent.len(),
+                                    crate::units::format_duration(*per),
+                                    s.reason
+                                );
+                                w.failed = Some((input.now, why));
+                            }
+                        }
+                    }
+                    CheckKind::ObligationsMet | CheckKind::ExportOverLimit(_) => {}
+                }
+            }
+        };
+        let mut options = RunOptions::day(day.date);
+        options.seed = day.seed;
+        options.sky = day.sky;
+        options.step = step;
+        options.controller = Controller::Spillway;
+        options.observer = Some(&mut observer);
+        let out = simulate_once(site, loaded.tariff.as_ref(), plant, options)?;
+        for (c, w) in checks.iter().zip(&watches) {
+            let (passed, at, detail) = match &c.kind {
+                CheckKind::ObligationsMet => {
+                    let missed: Vec<String> = site
+                        .loads
+                        .iter()
+                        .zip(&out.loads)
+                        .flat_map(|(l, f)| {
+                            l.obligations
+                                .iter()
+                                .zip(&f.obligations)
+                                .filter(|(_, (_, missed))| *missed > 0)
+                                .map(|(o, _)| format!("{}: {}", l.name, o.describe()))
+                        })
+                        .collect();
+                    (
+                        missed.is_empty(),
+                        None,
+                        if missed.is_empty() { "all met".to_owned() } else { format!("missed: {}", missed.join(", ")) },
+                    )
+                }
+                CheckKind::ExportOverLimit(max) => {
+                    let over = Duration::from_secs_f64(out.seconds_over_limit);
+                    (
+                        over <= *max,
+                        None,
+                        format!(
+                            "{} above the limit (allowed {})",
+                            crate::units::format_duration(over),
+                            crate::units::format_duration(*max)
+                        ),
+                    )
+                }
+                _ => match &w.failed {
+                    Some((t, why)) => (false, Some(local(*t)), why.clone()),
+                    None => (true, None, String::new()),
+                },
+            };
+            verdicts.push(Verdict { day: day.name.clone(), check: c.name.clone(), passed, at, detail });
+        }
+    }
+    Ok(verdicts)
+}
+
+/// The verdicts as a table.
+pub fn to_text(verdicts: &[Verdict]) -> String {
+    let mut o = String::new();
+    let dw = verdicts.iter().map(|v| v.day.chars().count()).max().unwrap_or(3).max(3);
+    let cw = verdicts.iter().map(|v| v.check.chars().count()).max().unwrap_or(5).max(5);
+    let _ = writeln!(o, "{:<dw$}  {:<cw$}  result  when      detail", "day", "check");
+    for v in verdicts {
+        let detail = if v.detail.chars().count() > 160 {
+            format!("{}…", v.detail.chars().take(160).collect::<String>())
+        } else {
+            v.detail.clone()
+        };
+        let _ = writeln!(
+            o,
+            "{:<dw$}  {:<cw$}  {:<6}  {:<8}  {}",
+            v.day,
+            v.check,
+            if v.passed { "pass" } else { "FAIL" },
+            v.at.as_deref().unwrap_or(""),
+            detail
+        );
+    }
+    let failed = verdicts.iter().filter(|v| !v.passed).count();
+    let _ = writeln!(o, "\n{} check(s), {} passed, {} failed", verdicts.len(), verdicts.len() - failed, failed);
+    o
+}
