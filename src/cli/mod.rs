@@ -3,6 +3,7 @@
 
 mod check;
 mod compare;
+mod replay;
 mod simulate;
 mod test;
 
@@ -46,6 +47,22 @@ pub enum Verb {
         #[arg(long)]
         chart: Option<PathBuf>,
     },
+    /// Replay a recorded PV and household series (CSV: time, pv_w, house_w) against the
+    /// site's rules, with the same report as `simulate`.
+    Replay {
+        /// The site file, with a `plant:` section (its PV and house are replaced).
+        site: PathBuf,
+        /// The recorded series.
+        recorded: PathBuf,
+        #[command(flatten)]
+        run: simulate::RunArgs,
+        /// Report format.
+        #[arg(long, value_enum, default_value = "text")]
+        report: simulate::Format,
+        /// Write a chart (SVG).
+        #[arg(long)]
+        chart: Option<PathBuf>,
+    },
     /// Check the site's own expectations (`expect:`) against its named simulated days:
     /// a pass/fail table, exit code 0 when every check passes, 1 otherwise.
     Test {
@@ -85,5 +102,8 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Verb::Simulate { site, run, report, chart } => simulate::run(&site, &run, report, chart.as_deref()),
         Verb::Compare { a, b, run, report } => compare::run(&a, &b, &run, report),
         Verb::Test { site, step, report } => test::run(&site, step, report),
+        Verb::Replay { site, recorded, run, report, chart } => {
+            replay::run(&site, &recorded, &run, report, chart.as_deref())
+        }
     }
 }

@@ -197,6 +197,22 @@ pub struct Report {
     pub baseline: BaselineReport,
     /// Writes the plant refused during the run (a restarting device).
     pub refused_writes: u64,
+    /// For replays: the recorded file and what was done with its rows.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub replay: Option<ReplayReport>,
+}
+
+/// What a replay made of its recorded file.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct ReplayReport {
+    /// The CSV file.
+    pub file: String,
+    /// Rows used.
+    pub rows_used: usize,
+    /// Rows rejected (each named with its line in `notices`).
+    pub rows_rejected: usize,
+    /// Rejected rows and bridged gaps, with line numbers.
+    pub notices: Vec<String>,
 }
 
 fn percentiles(values: &[f64]) -> Percentiles {
@@ -305,6 +321,7 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
             export_peak_w: r1(baseline.export_peak_w),
         },
         refused_writes: run.refused_writes,
+        replay: None,
     }
 }
 
@@ -385,6 +402,9 @@ impl Report {
             "baseline (no diversion): import {:.1} kWh, export {:.1} kWh, export peak {:.0} W",
             b.import_kwh, b.export_kwh, b.export_peak_w
         );
+        if let Some(r) = &self.replay {
+            let _ = writeln!(o, "replayed {}: {} row(s) used, {} rejected", r.file, r.rows_used, r.rows_rejected);
+        }
         if self.refused_writes > 0 {
             let _ = writeln!(o, "note: the plant refused {} write(s) (a device restarting)", self.refused_writes);
         }

@@ -56,6 +56,8 @@ pub struct RunOptions<'a> {
     pub progress: Option<&'a (dyn Fn(f64) + Sync)>,
     /// Called after every engine tick (site expectations watch the run through it).
     pub observer: Option<&'a mut Observer<'a>>,
+    /// A recorded PV and household series in place of the modelled ones.
+    pub recorded: Option<&'a super::replay::Recorded>,
 }
 
 impl<'a> RunOptions<'a> {
@@ -72,6 +74,7 @@ impl<'a> RunOptions<'a> {
             trace_every: Duration::from_secs(60),
             progress: None,
             observer: None,
+            recorded: None,
         }
     }
 }
@@ -221,7 +224,10 @@ pub fn simulate_once(
     let start_ms = midnight(tz, options.from)?;
     let end_date = options.from + chrono::Days::new(u64::from(options.days));
     let end_ms = midnight(tz, end_date)?;
-    let mut plant = site::build(plant_cfg, &SiteOptions { start_ms, seed: options.seed, sky: options.sky })?;
+    let mut plant = match options.recorded {
+        Some(rec) => rec.build_plant(plant_cfg, start_ms, options.seed)?,
+        None => site::build(plant_cfg, &SiteOptions { start_ms, seed: options.seed, sky: options.sky })?,
+    };
     let mut binding = Binding::new(site, &plant)?;
     let mut engine = Engine::new(Arc::clone(site));
     let mut baseline = Baseline::new(site);

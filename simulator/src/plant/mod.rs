@@ -292,6 +292,8 @@ pub struct Plant {
     seed: u64,
     /// Last step length: (requested s, ms, s, h, 1/s), recomputed only when it changes.
     step_len: (f64, i64, f64, f64, f64),
+    /// A recorded household load replacing the modelled one (W at an instant, ms).
+    house_replay: Option<Box<dyn FnMut(i64) -> f64 + Send>>,
 }
 
 impl Plant {
@@ -475,6 +477,7 @@ impl Plant {
             disconnected: false,
             seed,
             step_len: (f64::NAN, 0, 0.0, 0.0, 0.0),
+            house_replay: None,
         };
         plant.begin_day();
         plant.update_grid_state();
@@ -560,7 +563,10 @@ impl Plant {
             *contact = stuck[i].unwrap_or(commanded);
         }
         let contacts = &readings.contacts;
-        let house_w = self.house.power(sec);
+        let house_w = match &mut self.house_replay {
+            Some(recorded) => recorded(t).max(0.0),
+            None => self.house.power(sec),
+        };
         let mut demand = house_w;
         for (w, drive) in self.load_w.iter_mut().zip(&self.drives) {
             *w = match drive {
@@ -790,6 +796,12 @@ impl Plant {
         self.faults.add(fault, self.now_ms, |n| self.bus.layout().channels.iter().position(|c| c == n))?;
         self.apply_faults();
         Ok(())
+    }
+
+    /// Replaces the modelled household load with a recorded one: `source(t_ms)` gives
+    /// the household's power in W at each step (used by `spillway replay`).
+    pub fn replay_house(&mut self, source: Box<dyn FnMut(i64) -> f64 + Send>) {
+        self.house_replay = Some(source);
     }
 
     /// The current instant, ms since the Unix epoch.

@@ -1,0 +1,77 @@
+//! `spillway replay SITE.yaml RECORDED.csv`: a measured PV and household series in
+//! place of the modelled ones, the same report as `simulate`.
+
+use std::path::Path;
+use std::process::ExitCode;
+
+use anyhow::Context as _;
+use spillway::offline::{self, Controller, RunOptions, replay::Recorded, report};
+
+use super::simulate::{Format, Progress, RunArgs, prepare};
+
+pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Option<&Path>) -> anyhow::Result<ExitCode> {
+    let Some(mut p) = prepare(site, args)? else { return Ok(ExitCode::from(1)) };
+    let recorded = Recorded::from_csv(csv, p.site.timezone)?;
+    let rejected = recorded.rejected();
+    for n in &recorded.notices {
+        eprintln!("{}:{}: {}{}", csv.display(), n.line, if n.rejected { "rejected: " } else { "note: " }, n.message);
+    }
+    if rejected > 0 {
+        eprintln!("{}: {rejected} row(s) rejected, {} used", csv.display(), recorded.t_ms.len());
+    }
+    // The recording decides the days unless --from/--to/--days say otherwise.
+    let (first, last) = recorded.span_ms();
+    let tz = p.site.timezone;
+    let day = |ms: i64| spillway::units::Timestamp(ms).to_utc().with_timezone(&tz).date_naive();
+    if args.from.is_none() {
+        p.from = day(first);
+        p.days = ((day(last) - p.from).num_days() + 1).max(1) as u32;
+    }
+    p.weather_label = format!("recorded ({})", csv.display());
+    let progress = Progress::new(args.quiet, "replaying");
+    let options = |controller: Controller| {
+        let mut o = RunOptions::day(p.from);
+        o.days = p.days;
+        o.seed = p.seed;
+        o.step = args.step;
+        o.controller = controller;
+        o.recorded = Some(&recorded);
+        o
+    };
+    let chart_days = chart.map(|_| (p.from, p.from + chrono::Days::new(u64::from(p.days - 1))));
+    let (run, baseline) = std::thread::scope(|s| {
+        let base = s.spawn(|| {
+            offline::simulate_once(&p.site, p.loaded.tariff.as_ref(), &p.plant, options(Controller::Baseline))
+        });
+        let mut main = options(Controller::Spillway);
+        main.trace = chart_days;
+        (offline::simulate_once(&p.site, p.loaded.tariff.as_ref(), &p.plant, main), base.join())
+    });
+    progress.finish();
+    let run = run.context("replay failed")?;
+    let baseline = baseline.map_err(|_| anyhow::anyhow!("the baseline panicked"))?.context("baseline replay failed")?;
+    let info = report::RunInfo {
+        site: p.site.name.clone(),
+        from: p.from.to_string(),
+        to: (p.from + chrono::Days::new(u64::from(p.days - 1))).to_string(),
+        days: p.days,
+        seed: p.seed,
+        weather: p.weather_label.clone(),
+        step_s: args.step.as_secs_f64(),
+    };
+    let mut report = report::build(&p.site, p.loaded.tariff.as_ref(), info, &run, &baseline);
+    report.replay = Some(report::ReplayReport {
+        file: csv.display().to_string(),
+        rows_used: recorded.t_ms.len(),
+        rows_rejected: rejected,
+        notices: recorded.notices.iter().map(|n| format!("line {}: {}", n.line, n.message)).collect(),
+    });
+    if let Some(file) = chart {
+        offline::chart::write(file, &p.site, p.loaded.tariff.as_ref(), &report, &run)?;
+    }
+    match format {
+        Format::Json => println!("{}", report.to_json()),
+        Format::Text => print!("{}", report.to_text()),
+    }
+    Ok(ExitCode::SUCCESS)
+}

@@ -1,0 +1,288 @@
+//! A measured time series in place of the modelled PV and household: what a site
+//! actually did, replayed against its rules. The file is a CSV with a header:
+//!
+//! ```text
+//! time,pv_w,house_w[,pv_available_w]
+//! 2026-05-02T06:00:00+01:00,0,412        (RFC 3339 with offset)
+//! 2026-05-02 06:00:30,3,398              (no offset: the site's local time)
+//! 1777698060,5,405                       (Unix seconds)
+//! ```
+//!
+//! - `pv_w`: PV AC power as measured; `house_w`: household consumption *without* the
+//!   managed loads (they are simulated). `pv_available_w` (optional) is what the array
+//!   could have given where the recording was itself curtailed; without it the recorded
+//!   PV is taken as the most the array could give.
+//! - Samples may be irregular and may have gaps: values are interpolated linearly
+//!   between good rows; gaps longer than 15 minutes are reported.
+//! - A row that cannot be used (a bad time, a missing or non-numeric value, a time not
+//!   after the previous row) is rejected and reported with its line number; the run goes
+//!   on without it, and the count is printed. Nothing is dropped silently.
+//! - Extra columns are ignored (and named once in the notices).
+
+use std::path::{Path, PathBuf};
+
+use chrono::{DateTime, LocalResult, NaiveDateTime, TimeZone};
+use chrono_tz::Tz;
+use spillway_sim::plant::{Plant, PlantConfig};
+use spillway_sim::pv_output::{PvSample, PvSource};
+
+use super::OfflineError;
+
+/// Longest gap between rows that passes without a notice.
+const MAX_GAP_S: f64 = 900.0;
+
+/// A row the loader could not use, or a gap it bridged.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Notice {
+    /// 1-based line number.
+    pub line: u64,
+    /// What was wrong and what was done.
+    pub message: String,
+    /// Whether the row was rejected (rather than just noted).
+    pub rejected: bool,
+}
+
+/// The recorded series, ready to replay.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Recorded {
+    /// The file.
+    pub path: PathBuf,
+    /// Sample times, ms since the epoch, increasing.
+    pub t_ms: Vec<i64>,
+    /// PV AC power, W.
+    pub pv_w: Vec<f64>,
+    /// Household power, W.
+    pub house_w: Vec<f64>,
+    /// PV available, W (same as `pv_w` when the column is absent).
+    pub available_w: Vec<f64>,
+    /// Rejected rows and bridged gaps.
+    pub notices: Vec<Notice>,
+}
+
+fn parse_time(text: &str, tz: Tz) -> Option<i64> {
+    let t = text.trim();
+    if let Ok(secs) = t.parse::<f64>() {
+        return Some((secs * 1000.0).round() as i64);
+    }
+    if let Ok(dt) = DateTime::parse_from_rfc3339(t) {
+        return Some(dt.timestamp_millis());
+    }
+    for fmt in ["%Y-%m-%d %H:%M:%S", "%Y-%m-%d %H:%M", "%Y-%m-%dT%H:%M:%S", "%Y-%m-%dT%H:%M"] {
+        if let Ok(naive) = NaiveDateTime::parse_from_str(t, fmt) {
+            return match tz.from_local_datetime(&naive) {
+                LocalResult::Single(dt) => Some(dt.timestamp_millis()),
+                // The repeated hour of an autumn DST change: take the first.
+                LocalResult::Ambiguous(a, _) => Some(a.timestamp_millis()),
+                LocalResult::None => None,
+            };
+        }
+    }
+    None
+}
+
+impl Recorded {
+    /// Reads a recorded series; the site's time zone places times without an offset.
+    pub fn from_csv(path: &Path, tz: Tz) -> Result<Recorded, OfflineError> {
+        let fail = |message: String| OfflineError::Recorded { path: path.to_path_buf(), message };
+        let text = std::fs::read_to_string(path).map_err(|e| fail(format!("cannot read the file: {e}")))?;
+        let mut reader = csv::ReaderBuilder::new()
+            .comment(Some(b'#'))
+            .trim(csv::Trim::All)
+            .flexible(true)
+            .from_reader(text.as_bytes());
+        let headers = reader.headers().map_err(|e| fail(format!("no header line: {e}")))?.clone();
+        let col = |name: &str| headers.iter().position(|h| h == name);
+        let (Some(ct), Some(cp), Some(ch)) = (col("time"), col("pv_w"), col("house_w")) else {
+            return Err(fail(format!(
+                "the header must name the columns time, pv_w and house_w (found: {})",
+                headers.iter().collect::<Vec<_>>().join(", ")
+            )));
+        };
+        let ca = col("pv_available_w");
+        let mut rec = Recorded {
+            path: path.to_path_buf(),
+            t_ms: Vec::new(),
+            pv_w: Vec::new(),
+            house_w: Vec::new(),
+            available_w: Vec::new(),
+            notices: Vec::new(),
+        };
+        let known = ["time", "pv_w", "house_w", "pv_available_w"];
+        let extra: Vec<&str> = headers.iter().filter(|h| !known.contains(h)).collect();
+        if !extra.is_empty() {
+            rec.notices.push(Notice {
+                line: 1,
+                message: format!("ignoring column(s) {}", extra.join(", ")),
+                rejected: false,
+            });
+        }
+        for result in reader.records() {
+            let record = match result {
+                Ok(r) => r,
+                Err(e) => {
+                    let line = e.position().map_or(0, |p| p.line());
+                    rec.notices.push(Notice { line, message: format!("unreadable row: {e}"), rejected: true });
+                    continue;
+                }
+            };
+            let line = record.position().map_or(0, |p| p.line());
+            let reject =
+                |rec: &mut Recorded, why: String| rec.notices.push(Notice { line, message: why, rejected: true });
+            let field = |i: usize| record.get(i).unwrap_or("").trim();
+            let Some(t) = parse_time(field(ct), tz) else {
+                reject(
+                    &mut rec,
+                    format!("time \"{}\" is not RFC 3339, YYYY-MM-DD HH:MM[:SS] or Unix seconds", field(ct)),
+                );
+                continue;
+            };
+            let number = |i: usize, name: &str| -> Result<f64, String> {
+                match field(i).parse::<f64>() {
+                    Ok(v) if v.is_finite() && v >= 0.0 => Ok(v),
+                    Ok(v) => Err(format!("{name} {v} is not a power ≥ 0")),
+                    Err(_) => Err(format!("{name} \"{}\" is not a number", field(i))),
+                }
+            };
+            let values = (|| -> Result<(f64, f64, Option<f64>), String> {
+                let avail = match ca {
+                    Some(i) if !field(i).is_empty() => Some(number(i, "pv_available_w")?),
+                    _ => None,
+                };
+                Ok((number(cp, "pv_w")?, number(ch, "house_w")?, avail))
+            })();
+            let (pv, house, avail) = match values {
+                Ok(v) => v,
+                Err(why) => {
+                    reject(&mut rec, why);
+                    continue;
+                }
+            };
+            if let Some(&last) = rec.t_ms.last() {
+                if t <= last {
+                    reject(&mut rec, "time is not after the previous row's".to_owned());
+                    continue;
+                }
+                let gap = (t - last) as f64 / 1000.0;
+                if gap > MAX_GAP_S {
+                    rec.notices.push(Notice {
+                        line,
+                        message: format!(
+                            "gap of {} before this row, bridged by interpolation",
+                            crate::units::format_duration(std::time::Duration::from_secs_f64(gap))
+                        ),
+                        rejected: false,
+                    });
+                }
+            }
+            rec.t_ms.push(t);
+            rec.pv_w.push(pv);
+            rec.house_w.push(house);
+            rec.available_w.push(avail.unwrap_or(pv).max(pv));
+        }
+        if rec.t_ms.len() < 2 {
+            return Err(fail(format!("only {} usable row(s): a replay needs at least two", rec.t_ms.len())));
+        }
+        Ok(rec)
+    }
+
+    /// Rows rejected.
+    pub fn rejected(&self) -> usize {
+        self.notices.iter().filter(|n| n.rejected).count()
+    }
+
+    /// First and last instants, ms.
+    pub fn span_ms(&self) -> (i64, i64) {
+        (self.t_ms[0], self.t_ms[self.t_ms.len() - 1])
+    }
+
+    /// The plant with the recorded PV and house in place of the modelled ones.
+    pub fn build_plant(&self, cfg: &PlantConfig, start_ms: i64, seed: u64) -> Result<Plant, OfflineError> {
+        let pv = ReplayPv {
+            series: Cursor::new(self.t_ms.clone(), vec![self.pv_w.clone(), self.available_w.clone()]),
+            limit: None,
+        };
+        let mut cfg = cfg.clone();
+        if let Some(solar) = &cfg.solar {
+            cfg.inverter.rating = solar.rated_ac_w();
+        }
+        let mut plant = Plant::new(&cfg, Box::new(pv), start_ms, seed).map_err(spillway_sim::site::SiteError::Plant)?;
+        let mut house = Cursor::new(self.t_ms.clone(), vec![self.house_w.clone()]);
+        plant.replay_house(Box::new(move |t| house.at(t)[0]));
+        Ok(plant)
+    }
+}
+
+/// Linear interpolation over increasing times, visited in increasing order.
+struct Cursor {
+    t: Vec<i64>,
+    columns: Vec<Vec<f64>>,
+    i: usize,
+    out: Vec<f64>,
+}
+
+impl Cursor {
+    fn new(t: Vec<i64>, columns: Vec<Vec<f64>>) -> Self {
+        let n = columns.len();
+        Cursor { t, columns, i: 0, out: vec![0.0; n] }
+    }
+
+    /// Values at `t_ms`; before the first row and after the last, the end values.
+    fn at(&mut self, t_ms: i64) -> &[f64] {
+        while self.i + 1 < self.t.len() && self.t[self.i + 1] <= t_ms {
+            self.i += 1;
+        }
+        while self.i > 0 && self.t[self.i] > t_ms {
+            self.i -= 1;
+        }
+        let (i, t) = (self.i, &self.t);
+        for (out, col) in self.out.iter_mut().zip(&self.columns) {
+            *out = if t_ms <= t[0] {
+                col[0]
+            } else if i + 1 >= t.len() {
+                col[t.len() - 1]
+            } else {
+                let f = (t_ms - t[i]) as f64 / (t[i + 1] - t[i]) as f64;
+                col[i] + (col[i + 1] - col[i]) * f
+            };
+        }
+        &self.out
+    }
+}
+
+/// The recorded PV as a source that obeys the inverter's limit (a cut applies at once).
+struct ReplayPv {
+    series: Cursor,
+    limit: Option<f64>,
+}
+
+impl PvSource for ReplayPv {
+    fn step(&mut self, t_ms: i64, _dt_s: f64, limit_w: Option<f64>) -> PvSample {
+        self.limit = limit_w;
+        let v = self.series.at(t_ms);
+        let (pv, available) = (v[0], v[1]);
+        let ac = limit_w.map_or(available, |l| available.min(l.max(0.0)));
+        PvSample { ac_w: ac, available_ac_w: available.max(pv), dc_w: ac, clear_sky_index: 1.0, ..PvSample::default() }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_cursor_interpolates_between_rows_and_holds_at_the_ends() {
+        let mut c = Cursor::new(vec![0, 1000, 3000], vec![vec![0.0, 10.0, 30.0]]);
+        assert_eq!(c.at(-5)[0], 0.0);
+        assert_eq!(c.at(500)[0], 5.0);
+        assert_eq!(c.at(2000)[0], 20.0);
+        assert_eq!(c.at(5000)[0], 30.0);
+    }
+
+    #[test]
+    fn times_are_read_in_three_forms() {
+        let tz: Tz = "Europe/Lisbon".parse().unwrap();
+        assert_eq!(parse_time("1777698060", tz), Some(1_777_698_060_000));
+        assert_eq!(parse_time("2026-05-02T06:00:00+01:00", tz), parse_time("2026-05-02 06:00:00", tz));
+        assert_eq!(parse_time("soon", tz), None);
+    }
+}
