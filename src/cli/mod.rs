@@ -5,6 +5,7 @@ mod check;
 mod compare;
 mod replay;
 mod simulate;
+mod sweep;
 mod test;
 
 use std::io::IsTerminal;
@@ -63,6 +64,28 @@ pub enum Verb {
         #[arg(long)]
         chart: Option<PathBuf>,
     },
+    /// Run the site once per value of one setting (a year each by default), on all
+    /// cores, and tabulate import, export, savings and the array's simple payback.
+    Sweep {
+        /// The site file.
+        site: PathBuf,
+        /// The setting and its values: KEY=FROM..TO:STEP, e.g.
+        /// `plant.solar.arrays.roof.strings.0.modules=8..20:2` or
+        /// `loads.water_heater.start#1=2kW..4kW:0.5kW` (the rule's first number).
+        #[arg(long)]
+        vary: String,
+        #[command(flatten)]
+        run: simulate::RunArgs,
+        /// Report format.
+        #[arg(long, value_enum, default_value = "text")]
+        report: simulate::Format,
+        /// Write a chart (SVG) of energies, savings and payback against the value.
+        #[arg(long)]
+        chart: Option<PathBuf>,
+        /// Runs in parallel (default: the number of cores).
+        #[arg(long)]
+        jobs: Option<usize>,
+    },
     /// Check the site's own expectations (`expect:`) against its named simulated days:
     /// a pass/fail table, exit code 0 when every check passes, 1 otherwise.
     Test {
@@ -102,6 +125,9 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Verb::Simulate { site, run, report, chart } => simulate::run(&site, &run, report, chart.as_deref()),
         Verb::Compare { a, b, run, report } => compare::run(&a, &b, &run, report),
         Verb::Test { site, step, report } => test::run(&site, step, report),
+        Verb::Sweep { site, vary, run, report, chart, jobs } => {
+            sweep::run(&site, &vary, run, report, chart.as_deref(), jobs)
+        }
         Verb::Replay { site, recorded, run, report, chart } => {
             replay::run(&site, &recorded, &run, report, chart.as_deref())
         }

@@ -14,6 +14,7 @@ pub mod expect;
 pub mod replay;
 pub mod report;
 pub mod run;
+pub mod sweep;
 
 use std::path::PathBuf;
 

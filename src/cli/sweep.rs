@@ -1,0 +1,358 @@
+//! `spillway sweep SITE.yaml --vary KEY=FROM..TO:STEP`: one run (a year by default) per
+//! value, spread over the machine's cores; a table and a chart of import, export,
+//! savings and the array's simple payback.
+
+use std::path::Path;
+use std::process::ExitCode;
+use std::sync::Mutex;
+use std::sync::atomic::{AtomicUsize, Ordering};
+
+use anyhow::Context as _;
+use serde::Serialize;
+use spillway::config;
+use spillway::offline::{self, Controller, RunOptions, sweep};
+
+use super::simulate::{Format, RunArgs};
+
+/// One value's results.
+#[derive(Debug, Clone, Serialize)]
+struct Point {
+    value: String,
+    pv_kwp: f64,
+    pv_kwh: f64,
+    import_kwh: f64,
+    export_kwh: f64,
+    diverted_kwh: f64,
+    self_consumption_pct: f64,
+    cost: Option<f64>,
+    savings_vs_no_diversion: Option<f64>,
+    savings_vs_no_pv: Option<f64>,
+    payback_years: Option<f64>,
+}
+
+#[derive(Debug, Serialize)]
+struct SweepReport {
+    key: String,
+    from: String,
+    days: u32,
+    seed: u64,
+    currency: Option<String>,
+    array_cost_per_kwp: Option<f64>,
+    no_pv_cost: Option<f64>,
+    points: Vec<Point>,
+}
+
+fn r(v: f64, d: i32) -> f64 {
+    let f = 10f64.powi(d);
+    (v * f).round() / f
+}
+
+pub fn run(
+    path: &Path,
+    vary: &str,
+    mut args: RunArgs,
+    format: Format,
+    chart: Option<&Path>,
+    jobs: Option<usize>,
+) -> anyhow::Result<ExitCode> {
+    let vary = sweep::parse_vary(vary)?;
+    if args.days.is_none() && args.to.is_none() {
+        args.days = Some(365);
+    }
+    let Some(base) = super::simulate::prepare(path, &args)? else { return Ok(ExitCode::from(1)) };
+    let text = base.loaded.source.text.clone();
+    let values = vary.texts();
+    // Check every variant before spending minutes on runs.
+    let mut variants = Vec::new();
+    for v in &values {
+        let t = sweep::substitute(&text, &vary, v)?;
+        match config::load_str(&format!("{} [{}={v}]", path.display(), vary.key()), &t) {
+            Ok(l) => variants.push((v.clone(), l)),
+            Err(e) => {
+                eprint!("{}", e.render(super::color()));
+                return Ok(ExitCode::from(1));
+            }
+        }
+    }
+    let tariff = base.loaded.tariff.clone();
+    let options = |controller: Controller| {
+        let mut o = RunOptions::day(base.from);
+        o.days = base.days;
+        o.seed = base.seed;
+        o.sky = base.sky;
+        o.step = args.step;
+        o.controller = controller;
+        o
+    };
+    // The reference without PV (the original file's house), for the array's payback.
+    let mut no_pv_plant = base.plant.clone();
+    no_pv_plant.solar = None;
+    let jobs = jobs.unwrap_or_else(|| std::thread::available_parallelism().map_or(1, |n| n.get())).max(1);
+    let next = AtomicUsize::new(0);
+    let results: Mutex<Vec<Option<anyhow::Result<Point>>>> = Mutex::new((0..variants.len()).map(|_| None).collect());
+    let no_pv = Mutex::new(None);
+    let done = AtomicUsize::new(0);
+    let total = variants.len() + 1;
+    if !args.quiet {
+        eprintln!(
+            "sweeping {} over {} value(s), {} day(s) each, on {jobs} core(s)",
+            vary.key(),
+            variants.len(),
+            base.days
+        );
+    }
+    std::thread::scope(|s| {
+        for _ in 0..jobs {
+            s.spawn(|| {
+                loop {
+                    let i = next.fetch_add(1, Ordering::Relaxed);
+                    if i > variants.len() {
+                        break;
+                    }
+                    if i == variants.len() {
+                        let out = offline::simulate_once(
+                            &base.site,
+                            tariff.as_ref(),
+                            &no_pv_plant,
+                            options(Controller::Baseline),
+                        );
+                        if let Ok(mut g) = no_pv.lock() {
+                            *g = Some(out.map(|o| o.cost));
+                        }
+                    } else {
+                        let (value, loaded) = &variants[i];
+                        let point = (|| -> anyhow::Result<Point> {
+                            let plant = offline::plant_section(loaded)?;
+                            let site = std::sync::Arc::new(loaded.site.clone());
+                            let run = offline::simulate_once(
+                                &site,
+                                loaded.tariff.as_ref(),
+                                &plant,
+                                options(Controller::Spillway),
+                            )?;
+                            let baseline = offline::simulate_once(
+                                &site,
+                                loaded.tariff.as_ref(),
+                                &plant,
+                                options(Controller::Baseline),
+                            )?;
+                            let f = &run.flows;
+                            let kwp = plant.solar.as_ref().map_or(0.0, |s| s.nameplate_w() / 1000.0);
+                            Ok(Point {
+                                value: value.clone(),
+                                pv_kwp: r(kwp, 2),
+                                pv_kwh: r(f.pv.wh / 1000.0, 1),
+                                import_kwh: r(f.grid_import.wh / 1000.0, 1),
+                                export_kwh: r(f.grid_export.wh / 1000.0, 1),
+                                diverted_kwh: r(run.diverted_wh / 1000.0, 1),
+                                self_consumption_pct: if f.pv.wh > 0.0 {
+                                    r((1.0 - f.grid_export.wh / f.pv.wh) * 100.0, 1)
+                                } else {
+                                    0.0
+                                },
+                                cost: loaded.tariff.as_ref().map(|_| r(run.cost, 2)),
+                                savings_vs_no_diversion: loaded.tariff.as_ref().map(|_| r(baseline.cost - run.cost, 2)),
+                                savings_vs_no_pv: None,
+                                payback_years: None,
+                            })
+                        })();
+                        if let Ok(mut g) = results.lock() {
+                            g[i] = Some(point);
+                        }
+                    }
+                    let d = done.fetch_add(1, Ordering::Relaxed) + 1;
+                    if !args.quiet {
+                        eprintln!("  {d}/{total} done");
+                    }
+                }
+            });
+        }
+    });
+    let no_pv_cost = no_pv
+        .into_inner()
+        .map_err(|_| anyhow::anyhow!("a sweep worker panicked"))?
+        .transpose()
+        .context("the no-PV reference failed")?;
+    let mut points = Vec::new();
+    for p in results.into_inner().map_err(|_| anyhow::anyhow!("a sweep worker panicked"))? {
+        points.push(p.ok_or_else(|| anyhow::anyhow!("a sweep value was not run"))??);
+    }
+    let year_factor = 365.0 / f64::from(base.days);
+    let cost_per_kwp = tariff.as_ref().and_then(|t| t.array_cost_per_kwp);
+    for p in &mut points {
+        if let (Some(c), Some(n)) = (p.cost, no_pv_cost) {
+            let saved = n - c;
+            p.savings_vs_no_pv = Some(r(saved, 2));
+            if let Some(cpk) = cost_per_kwp
+                && saved > 0.0
+            {
+                p.payback_years = Some(r(p.pv_kwp * cpk / (saved * year_factor), 1));
+            }
+        }
+    }
+    let report = SweepReport {
+        key: vary.key(),
+        from: base.from.to_string(),
+        days: base.days,
+        seed: base.seed,
+        currency: tariff.as_ref().map(|t| t.currency.clone()),
+        array_cost_per_kwp: cost_per_kwp,
+        no_pv_cost: no_pv_cost.map(|c| r(c, 2)),
+        points,
+    };
+    if let Some(file) = chart {
+        std::fs::write(file, chart_svg(&report)?).with_context(|| format!("cannot write {}", file.display()))?;
+    }
+    match format {
+        Format::Json => println!("{}", serde_json::to_string_pretty(&report)?),
+        Format::Text => print!("{}", to_text(&report)),
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+fn to_text(rep: &SweepReport) -> String {
+    use std::fmt::Write as _;
+    let mut o = String::new();
+    let cur = rep.currency.clone().unwrap_or_default();
+    let _ = writeln!(o, "sweep of {} — {} day(s) from {}, seed {}", rep.key, rep.days, rep.from, rep.seed);
+    if let Some(c) = rep.no_pv_cost {
+        let _ = writeln!(o, "cost of the same house without PV or diversion: {cur}{c:.2}");
+    }
+    let _ = writeln!(
+        o,
+        "\n{:>10} {:>7} {:>9} {:>9} {:>8} {:>9} {:>7} {:>10} {:>11} {:>11} {:>8}",
+        "value",
+        "kWp",
+        "PV kWh",
+        "import",
+        "export",
+        "diverted",
+        "self %",
+        "cost",
+        "saves/div",
+        "saves/noPV",
+        "payback"
+    );
+    let money = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{cur}{v:.0}"));
+    for p in &rep.points {
+        let _ = writeln!(
+            o,
+            "{:>10} {:>7.2} {:>9.0} {:>9.0} {:>8.0} {:>9.0} {:>7.1} {:>10} {:>11} {:>11} {:>8}",
+            p.value,
+            p.pv_kwp,
+            p.pv_kwh,
+            p.import_kwh,
+            p.export_kwh,
+            p.diverted_kwh,
+            p.self_consumption_pct,
+            money(p.cost),
+            money(p.savings_vs_no_diversion),
+            money(p.savings_vs_no_pv),
+            p.payback_years.map_or("-".to_owned(), |y| format!("{y:.1} y"))
+        );
+    }
+    if rep.array_cost_per_kwp.is_none() {
+        let _ = writeln!(o, "\n(no payback: give `tariff.array_cost` per kWp in the site file)");
+    }
+    o
+}
+
+fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
+    use plotters::prelude::*;
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, (1100, 720)).into_drawing_area();
+        root.fill(&WHITE).map_err(|e| anyhow::anyhow!("{e}"))?;
+        let (top, bottom) = root.split_vertically(400);
+        let n = rep.points.len();
+        let xs: Vec<f64> = (0..n).map(|i| i as f64).collect();
+        let labels: Vec<String> = rep.points.iter().map(|p| p.value.clone()).collect();
+        let energy_max =
+            rep.points.iter().flat_map(|p| [p.import_kwh, p.export_kwh, p.diverted_kwh]).fold(1.0, f64::max) * 1.15;
+        let mut c = ChartBuilder::on(&top)
+            .caption(format!("sweep of {} — energy per run ({} days)", rep.key, rep.days), ("sans-serif", 20))
+            .margin(12)
+            .x_label_area_size(30)
+            .y_label_area_size(60)
+            .build_cartesian_2d(-0.3..(n as f64 - 0.7), 0.0..energy_max)
+            .map_err(|e| anyhow::anyhow!("{e}"))?;
+        c.configure_mesh()
+            .x_labels(n)
+            .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
+            .y_desc("kWh")
+            .draw()
+            .map_err(|e| anyhow::anyhow!("{e}"))?;
+        let series: [(&str, RGBColor, fn(&Point) -> f64); 3] = [
+            ("import", RGBColor(200, 40, 40), |p| p.import_kwh),
+            ("export", RGBColor(40, 150, 70), |p| p.export_kwh),
+            ("diverted", RGBColor(60, 120, 200), |p| p.diverted_kwh),
+        ];
+        for (name, colour, get) in series {
+            c.draw_series(LineSeries::new(xs.iter().cloned().zip(rep.points.iter().map(get)), colour.stroke_width(3)))
+                .map_err(|e| anyhow::anyhow!("{e}"))?
+                .label(name)
+                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], colour.stroke_width(3)));
+        }
+        c.configure_series_labels()
+            .background_style(WHITE.mix(0.85))
+            .border_style(RGBColor(200, 200, 200))
+            .draw()
+            .map_err(|e| anyhow::anyhow!("{e}"))?;
+        let money_max = rep
+            .points
+            .iter()
+            .flat_map(|p| [p.savings_vs_no_pv.unwrap_or(0.0), p.savings_vs_no_diversion.unwrap_or(0.0)])
+            .fold(1.0, f64::max)
+            * 1.15;
+        let payback_max = rep.points.iter().filter_map(|p| p.payback_years).fold(1.0, f64::max) * 1.2;
+        let mut b = ChartBuilder::on(&bottom)
+            .caption("savings per run and simple payback of the array", ("sans-serif", 18))
+            .margin(12)
+            .x_label_area_size(30)
+            .y_label_area_size(60)
+            .right_y_label_area_size(60)
+            .build_cartesian_2d(-0.3..(n as f64 - 0.7), 0.0..money_max)
+            .map_err(|e| anyhow::anyhow!("{e}"))?
+            .set_secondary_coord(-0.3..(n as f64 - 0.7), 0.0..payback_max);
+        b.configure_mesh()
+            .x_labels(n)
+            .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
+            .y_desc(format!("savings ({})", rep.currency.clone().unwrap_or_default()))
+            .draw()
+            .map_err(|e| anyhow::anyhow!("{e}"))?;
+        b.configure_secondary_axes().y_desc("payback (years)").draw().map_err(|e| anyhow::anyhow!("{e}"))?;
+        let gold = RGBColor(230, 160, 0);
+        let violet = RGBColor(110, 70, 170);
+        b.draw_series(LineSeries::new(
+            xs.iter().cloned().zip(rep.points.iter().map(|p| p.savings_vs_no_pv.unwrap_or(0.0))),
+            gold.stroke_width(3),
+        ))
+        .map_err(|e| anyhow::anyhow!("{e}"))?
+        .label("savings against no PV")
+        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], gold.stroke_width(3)));
+        b.draw_series(LineSeries::new(
+            xs.iter().cloned().zip(rep.points.iter().map(|p| p.savings_vs_no_diversion.unwrap_or(0.0))),
+            RGBColor(60, 120, 200).stroke_width(2),
+        ))
+        .map_err(|e| anyhow::anyhow!("{e}"))?
+        .label("savings from diversion")
+        .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], RGBColor(60, 120, 200).stroke_width(2)));
+        b.draw_secondary_series(LineSeries::new(
+            xs.iter()
+                .cloned()
+                .zip(rep.points.iter().map(|p| p.payback_years.unwrap_or(f64::NAN)))
+                .filter(|(_, y)| y.is_finite()),
+            violet.stroke_width(2),
+        ))
+        .map_err(|e| anyhow::anyhow!("{e}"))?
+        .label("payback (years, right axis)")
+        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], violet.stroke_width(2)));
+        b.configure_series_labels()
+            .background_style(WHITE.mix(0.85))
+            .border_style(RGBColor(200, 200, 200))
+            .draw()
+            .map_err(|e| anyhow::anyhow!("{e}"))?;
+        root.present().map_err(|e| anyhow::anyhow!("{e}"))?;
+    }
+    Ok(svg)
+}

@@ -1,0 +1,215 @@
+//! `sweep`: one site file run again and again with one setting varied — the array size,
+//! a rule's threshold — to answer "how big an array, and is it worth it?".
+//!
+//! The setting is named by a path into the site file: map keys separated by dots; in a
+//! list, an index or the `name` of an item (`loads.water_heater.min_on`,
+//! `plant.solar.arrays.roof.strings.0.modules`). A path ending in `#n` picks the n-th
+//! number of a rule (`loads.water_heater.start#1`). Values are written into the file's
+//! text as `FROM` was written (same unit), and each variant is loaded and checked like
+//! any site file, so a sweep cannot produce a site `check` would refuse.
+
+use std::ops::Range;
+
+use super::OfflineError;
+use crate::config::yaml::{self, Node, Value};
+use crate::units::{self, trim_number};
+
+/// One `--vary` specification.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Vary {
+    /// Path into the site file.
+    pub path: Vec<String>,
+    /// Which number of a rule (1-based), for paths ending in `#n`.
+    pub number: Option<usize>,
+    /// The values, in the unit of `FROM`.
+    pub values: Vec<f64>,
+    /// The unit as written in `FROM` (may be empty).
+    pub unit: String,
+}
+
+impl Vary {
+    /// Each value as text, as it will be written into the file.
+    pub fn texts(&self) -> Vec<String> {
+        self.values.iter().map(|v| format!("{}{}", trim_number(*v), self.unit)).collect()
+    }
+
+    /// The path as written.
+    pub fn key(&self) -> String {
+        let mut k = self.path.join(".");
+        if let Some(n) = self.number {
+            k.push_str(&format!("#{n}"));
+        }
+        k
+    }
+}
+
+/// Splits `3.2kW` into (3.2, "kW").
+fn split_unit(text: &str) -> Option<(f64, String)> {
+    let q = units::parse_quantity(text).ok()?;
+    let number_end = text
+        .char_indices()
+        .find(|&(i, c)| !(c.is_ascii_digit() || c == '.' || c == '_' || ((c == '-' || c == '+') && i == 0)))
+        .map_or(text.len(), |(i, _)| i);
+    let unit = text[number_end..].trim().to_owned();
+    let factor = if unit.is_empty() { 1.0 } else { units::unit(&unit).map_or(1.0, |(_, f)| f) };
+    Some((q.value / factor, unit))
+}
+
+/// Parses `KEY=FROM..TO:STEP`.
+pub fn parse_vary(spec: &str) -> Result<Vary, OfflineError> {
+    let bad = |why: &str| {
+        OfflineError::Options(format!(
+            "--vary {spec}: {why} (expected KEY=FROM..TO:STEP, e.g. plant.solar.arrays.0.strings.0.modules=8..20:2)"
+        ))
+    };
+    let (key, range) = spec.split_once('=').ok_or_else(|| bad("no `=`"))?;
+    let (span, step) = range.rsplit_once(':').ok_or_else(|| bad("no `:STEP`"))?;
+    let (from, to) = span.split_once("..").ok_or_else(|| bad("no `FROM..TO`"))?;
+    let (from_v, unit) = split_unit(from.trim()).ok_or_else(|| bad("FROM is not a number with an optional unit"))?;
+    let (to_v, to_unit) = split_unit(to.trim()).ok_or_else(|| bad("TO is not a number"))?;
+    let (step_v, step_unit) = split_unit(step.trim()).ok_or_else(|| bad("STEP is not a number"))?;
+    let same = |u: &str| u.is_empty() || u == unit;
+    if !same(&to_unit) || !same(&step_unit) {
+        return Err(bad("FROM, TO and STEP must use the same unit"));
+    }
+    if step_v <= 0.0 || to_v < from_v {
+        return Err(bad("STEP must be positive and TO not below FROM"));
+    }
+    let n = ((to_v - from_v) / step_v + 1e-9).floor() as usize + 1;
+    if n > 64 {
+        return Err(bad("more than 64 values; use a larger STEP"));
+    }
+    let values = (0..n).map(|i| from_v + step_v * i as f64).collect();
+    let (path, number) = match key.trim().split_once('#') {
+        Some((p, n)) => {
+            (p, Some(n.parse::<usize>().ok().filter(|n| *n >= 1).ok_or_else(|| bad("`#n` needs a number from 1"))?))
+        }
+        None => (key.trim(), None),
+    };
+    if path.is_empty() {
+        return Err(bad("empty KEY"));
+    }
+    Ok(Vary { path: path.split('.').map(str::to_owned).collect(), number, values, unit })
+}
+
+fn find<'n>(node: &'n Node, path: &[String]) -> Option<&'n Node> {
+    let Some((first, rest)) = path.split_first() else { return Some(node) };
+    let next = match &node.value {
+        Value::Map(entries) => entries.iter().find(|(k, _)| &k.name == first).map(|(_, v)| v),
+        Value::Seq(items) => match first.parse::<usize>() {
+            Ok(i) => items.get(i),
+            Err(_) => items.iter().find(|item| match &item.value {
+                Value::Map(e) => {
+                    e.iter().any(|(k, v)| k.name == "name" && matches!(&v.value, Value::Str(s) if s == first))
+                }
+                _ => false,
+            }),
+        },
+        _ => None,
+    }?;
+    find(next, rest)
+}
+
+/// Byte range of the n-th number (with its unit) inside a rule's text.
+fn nth_number(text: &str, n: usize) -> Option<Range<usize>> {
+    let bytes = text.as_bytes();
+    let mut found = 0;
+    let mut i = 0;
+    while i < bytes.len() {
+        let starts_number = bytes[i].is_ascii_digit()
+            && (i == 0 || !(bytes[i - 1].is_ascii_alphanumeric() || bytes[i - 1] == b'_' || bytes[i - 1] == b':'));
+        if !starts_number {
+            i += 1;
+            continue;
+        }
+        let start = i;
+        while i < bytes.len() && (bytes[i].is_ascii_digit() || bytes[i] == b'.') {
+            i += 1;
+        }
+        // A time of day (17:00) is not a number to vary.
+        if i < bytes.len() && bytes[i] == b':' {
+            while i < bytes.len() && (bytes[i].is_ascii_digit() || bytes[i] == b':') {
+                i += 1;
+            }
+            continue;
+        }
+        // Its unit, attached or after one blank.
+        let mut j = i;
+        if j < bytes.len()
+            && bytes[j] == b' '
+            && j + 1 < bytes.len()
+            && !bytes[j + 1].is_ascii_digit()
+            && units::unit_symbols().any(|u| text[j + 1..].starts_with(u))
+        {
+            j += 1;
+        }
+        let unit_len = units::unit_symbols().filter(|u| text[j..].starts_with(u)).map(str::len).max().unwrap_or(0);
+        let end = if unit_len > 0 { j + unit_len } else { i };
+        found += 1;
+        if found == n {
+            return Some(start..end);
+        }
+        i = end.max(i);
+    }
+    None
+}
+
+/// The site file's text with the varied setting set to `value`.
+pub fn substitute(text: &str, vary: &Vary, value: &str) -> Result<String, OfflineError> {
+    let tree = yaml::parse(text).map_err(|d| OfflineError::Options(d.message.clone()))?;
+    let node = find(&tree, &vary.path)
+        .ok_or_else(|| OfflineError::Options(format!("--vary: the site file has no `{}`", vary.path.join("."))))?;
+    let range = match vary.number {
+        None => {
+            if matches!(node.value, Value::Map(_) | Value::Seq(_)) {
+                return Err(OfflineError::Options(format!(
+                    "--vary: `{}` is a section, not a value",
+                    vary.path.join(".")
+                )));
+            }
+            node.span.clone()
+        }
+        Some(n) => {
+            let rule = node
+                .scalar_text()
+                .ok_or_else(|| OfflineError::Options(format!("--vary: `{}` is not a rule", vary.path.join("."))))?;
+            let at = yaml::locate_text(text, node, &rule);
+            let r = nth_number(&rule, n)
+                .ok_or_else(|| OfflineError::Options(format!("--vary: the rule `{rule}` has no number #{n}")))?;
+            at + r.start..at + r.end
+        }
+    };
+    let mut out = String::with_capacity(text.len() + value.len());
+    out.push_str(&text[..range.start]);
+    out.push_str(value);
+    out.push_str(&text[range.end..]);
+    Ok(out)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn parses_a_range_in_the_unit_of_from() {
+        let v = parse_vary("loads.tank.start#1=2.5kW..4kW:0.5kW").unwrap();
+        assert_eq!(v.texts(), ["2.5kW", "3kW", "3.5kW", "4kW"]);
+        assert_eq!(v.number, Some(1));
+        assert_eq!(parse_vary("a.b=8..12:2").unwrap().texts(), ["8", "10", "12"]);
+        assert!(parse_vary("a=1..2").is_err());
+        assert!(parse_vary("a=1kW..2h:1kW").is_err());
+    }
+
+    #[test]
+    fn substitutes_a_value_or_a_rules_number_in_place() {
+        let text =
+            "loads:\n  - name: tank\n    min_on: 5min\n    start: surplus > 3.1kW for 20s and tank_temp < 60°C\n";
+        let on = parse_vary("loads.tank.min_on=10min..10min:1min").unwrap();
+        assert!(substitute(text, &on, "10min").unwrap().contains("min_on: 10min"));
+        let threshold = parse_vary("loads.tank.start#1=2kW..2kW:1kW").unwrap();
+        assert!(substitute(text, &threshold, "2.5kW").unwrap().contains("start: surplus > 2.5kW for 20s"));
+        let temp = parse_vary("loads.tank.start#3=55°C..55°C:1°C").unwrap();
+        assert!(substitute(text, &temp, "55°C").unwrap().contains("tank_temp < 55°C"));
+        assert!(substitute(text, &parse_vary("loads.pump.min_on=1min..1min:1min").unwrap(), "1min").is_err());
+    }
+}
