@@ -282,7 +282,8 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
             .y_desc("kWh")
             .draw()
             .map_err(|e| anyhow::anyhow!("{e}"))?;
-        let series: [(&str, RGBColor, fn(&Point) -> f64); 3] = [
+        type Pick = fn(&Point) -> f64;
+        let series: [(&str, RGBColor, Pick); 3] = [
             ("import", RGBColor(200, 40, 40), |p| p.import_kwh),
             ("export", RGBColor(40, 150, 70), |p| p.export_kwh),
             ("diverted", RGBColor(60, 120, 200), |p| p.diverted_kwh),
