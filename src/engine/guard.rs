@@ -25,7 +25,12 @@ pub struct Guard {
     /// When the limit was last changed: the next change waits for a grid reading
     /// measured after it, so a delayed meter cannot make the guard correct twice.
     acted_at: Option<Timestamp>,
+    /// Recent PV readings, to carry a late grid reading forward to now.
+    pv_history: std::collections::VecDeque<(Timestamp, Power)>,
 }
+
+/// How much PV history is kept (longer than any sensible meter latency).
+const PV_HISTORY: Duration = Duration::from_secs(10);
 
 impl Guard {
     /// Whether a limit is in force.
@@ -104,7 +109,21 @@ impl Guard {
         }
 
         let pv = site.roles.pv.map(|p| values[p.0]).filter(|v| v.is_finite()).map(Power);
-        let expected = grid + delta_loads;
+        // The grid reading describes the site as it was at `measured_at`; the inverter's
+        // own reading is current. Whatever the PV did since then shows at the meter only
+        // later, so carry the reading forward: more PV now means less import now.
+        let pv_change = match pv {
+            Some(p) => {
+                self.pv_history.push_back((now, p));
+                while self.pv_history.front().is_some_and(|(t, _)| now.since(*t) > PV_HISTORY) {
+                    self.pv_history.pop_front();
+                }
+                let then = self.pv_history.iter().rev().find(|(t, _)| *t <= measured_at).or(self.pv_history.front());
+                then.map_or(Power::ZERO, |(_, old)| p - *old)
+            }
+            None => Power::ZERO,
+        };
+        let expected = grid + delta_loads - pv_change;
         let rate = site.guard.release_rate * dt.as_secs_f64();
         if !fresh_reading {
             return (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None });

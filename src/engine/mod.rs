@@ -44,7 +44,11 @@ const SETTLE: Duration = Duration::from_secs(60);
 const MAX_INTEGRATION_GAP: Duration = Duration::from_secs(60);
 /// How long a stepped load must see room for the next stage (or lack of room for the
 /// current one) before it changes stage (`common practice` for element switching).
-const STAGE_HOLD: Duration = Duration::from_secs(15);
+const STAGE_HOLD: Duration = Duration::from_secs(30);
+/// Least time a stepped load stays at a stage before the next change, so a surplus that
+/// swings (broken cloud, a battery moving in and out of float) cannot walk it up and
+/// down every half minute (`common practice`: contactors are rated for limited cycling).
+const STAGE_DWELL: Duration = Duration::from_secs(120);
 
 /// A time-limited manual command for one load.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -72,6 +76,8 @@ struct LoadState {
     obligations: Vec<ObligationState>,
     /// Stepped loads: since when the surplus has pointed up (+1) or down (−1).
     stage_trend: Option<(i8, Timestamp)>,
+    /// Stepped loads: when the stage last changed.
+    stage_changed_at: Timestamp,
     /// Batteries: reached the upper state of charge, waiting for the resume level.
     full: bool,
     /// Settling after recovery: whether this load has used its one switching.
@@ -130,6 +136,7 @@ impl Engine {
                 inhibit: l.inhibit.as_ref().map(|r| r.rule.new_state()),
                 obligations: vec![ObligationState::default(); l.obligations.len()],
                 stage_trend: None,
+                stage_changed_at: Timestamp::NEVER,
                 full: false,
                 settled: true,
                 override_: None,
@@ -891,9 +898,12 @@ fn step_stage(stages: &[crate::units::Power], st: &mut LoadState, surplus: Optio
         return current;
     };
     let idx = usize::from(current) - 1;
-    let trend: i8 = if idx + 1 < stages.len() && surplus >= stages[idx + 1] {
+    // A band around each threshold so a surplus hovering at a stage boundary does not
+    // flip the stage back and forth.
+    let margin = (stages[idx] * 0.1).max(Power(100.0));
+    let trend: i8 = if idx + 1 < stages.len() && surplus >= stages[idx + 1] + margin {
         1
-    } else if current > 1 && surplus < stages[idx] {
+    } else if current > 1 && surplus < stages[idx] - margin {
         -1
     } else {
         0
@@ -903,8 +913,11 @@ fn step_stage(stages: &[crate::units::Power], st: &mut LoadState, surplus: Optio
         return current;
     }
     match st.stage_trend {
-        Some((t, since)) if t == trend && now.since(since) >= STAGE_HOLD => {
+        Some((t, since))
+            if t == trend && now.since(since) >= STAGE_HOLD && now.since(st.stage_changed_at) >= STAGE_DWELL =>
+        {
             st.stage_trend = None;
+            st.stage_changed_at = now;
             (i16::from(current) + i16::from(trend)) as u8
         }
         Some((t, _)) if t == trend => current,

@@ -287,16 +287,20 @@ fn a_stepped_load_climbs_and_drops_one_stage_at_a_time_with_the_surplus() {
     h.set("grid", -2600.0);
     h.run(secs(6));
     assert_eq!(h.command("heater"), Command::Stage(1));
-    // At stage 1 the export is 1.6 kW: surplus 2.6 kW covers stage 2 (2 kW) but not 3.
+    // At stage 1 the export is 1.6 kW: surplus 2.6 kW covers stage 2 (2 kW, plus the
+    // 100 W band) but not 3. The climb waits for the surplus to hold for 30 s.
     h.set("grid", -1600.0);
     h.run(secs(20));
+    assert_eq!(h.command("heater"), Command::Stage(1), "not held long enough yet");
+    h.run(secs(15));
     assert_eq!(h.command("heater"), Command::Stage(2));
     h.set("grid", -600.0);
     h.run(secs(60));
     assert_eq!(h.command("heater"), Command::Stage(2), "stage 3 (3 kW) does not fit 2.6 kW");
-    // A cloud: 300 W import at stage 2 means only 1.7 kW surplus: drop to stage 1.
+    // A cloud: 300 W import at stage 2 means only 1.7 kW surplus, below 2 kW less the
+    // band: drop to stage 1 after the hold, once the stage has been held its 2 minutes.
     h.set("grid", 300.0);
-    h.run(secs(20));
+    h.run(secs(65));
     assert_eq!(h.command("heater"), Command::Stage(1));
 }
 

@@ -353,7 +353,7 @@ impl Report {
             e.house_kwh, e.diverted_kwh, e.battery_charge_kwh, e.battery_discharge_kwh, e.curtailed_kwh
         );
         let x = &self.export;
-        let limit = x.limit_w.map_or("allowed".to_owned(), |l| format!("limit {l} W"));
+        let limit = x.limit_w.map_or("no limit".to_owned(), |l| format!("limit {l} W"));
         let _ = writeln!(
             o,
             "\nexport ({limit}): peak {:.0} W, {:.0} s over the limit + tolerance",

@@ -1,0 +1,252 @@
+//! Offline runs of the example sites: energy conservation, the export limit held over a
+//! month, obligations met, diversion cheaper than the baseline, replay of a recorded
+//! series, and byte-for-byte determinism. Everything in simulated time.
+
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+use chrono::NaiveDate;
+use spillway::config::{self, Loaded};
+use spillway::offline::{self, Controller, RunOptions, RunOutput, expect, replay::Recorded};
+use spillway_sim::weather::WeatherKind;
+
+fn example(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("config").join(name)
+}
+
+fn load(path: &Path) -> Loaded {
+    config::load_file(path).unwrap_or_else(|e| panic!("{}", e.render(false)))
+}
+
+fn run(loaded: &Loaded, from: NaiveDate, days: u32, sky: Option<WeatherKind>, controller: Controller) -> RunOutput {
+    let plant = offline::plant_section(loaded).unwrap();
+    let site = Arc::new(loaded.site.clone());
+    let mut o = RunOptions::day(from);
+    o.days = days;
+    o.seed = 11;
+    o.sky = sky;
+    o.controller = controller;
+    offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap()
+}
+
+fn date(s: &str) -> NaiveDate {
+    NaiveDate::parse_from_str(s, "%Y-%m-%d").unwrap()
+}
+
+fn examples() -> Vec<PathBuf> {
+    let mut v: Vec<PathBuf> = std::fs::read_dir(Path::new(env!("CARGO_MANIFEST_DIR")).join("config"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|e| e == "yaml"))
+        .collect();
+    v.sort();
+    v
+}
+
+/// PV + import = house + managed loads + battery in − battery out + export + losses.
+/// The plant accounts every flow; this checks the whole chain keeps the books, for each
+/// example, under the rules and under the baseline.
+#[test]
+fn every_run_conserves_energy_to_a_tenth_of_a_percent() {
+    for path in examples() {
+        let loaded = load(&path);
+        let from = offline::simulation_defaults(&loaded).unwrap().from.unwrap_or(date("2026-06-01"));
+        for controller in [Controller::Spillway, Controller::Baseline] {
+            let out = run(&loaded, from, 2, Some(WeatherKind::Mixed), controller);
+            let f = &out.flows;
+            let loads: f64 = f.loads.iter().map(|l| l.wh).sum();
+            let sources = f.pv.wh + f.grid_import.wh;
+            let sinks =
+                f.house.wh + loads + f.battery_charge.wh - f.battery_discharge.wh + f.grid_export.wh + f.losses.wh;
+            let error = (sources - sinks).abs() / sources.max(1.0);
+            assert!(error < 0.001, "{}: {controller:?}: sources {sources:.1} Wh, sinks {sinks:.1} Wh", path.display());
+            assert!(f.pv.wh > 0.0, "{}: no PV at all", path.display());
+        }
+    }
+}
+
+/// Every example with export forbidden and a curtailable inverter keeps its time above
+/// the limit (plus the guard's tolerance) within what the site itself allows
+/// (`expect: … export_over_limit`, per day) over a month of mixed weather.
+#[test]
+fn forbidden_export_stays_within_the_configured_tolerance_over_a_mixed_month() {
+    let mut checked = 0;
+    for path in examples() {
+        let loaded = load(&path);
+        let forbidden = loaded.site.export_limit().is_some_and(|l| l.0 == 0.0) && loaded.site.inverter.is_some();
+        if !forbidden {
+            continue;
+        }
+        let exp = expect::read(&loaded).unwrap();
+        let per_day = exp
+            .checks
+            .iter()
+            .find_map(|c| match c.kind {
+                expect::CheckKind::ExportOverLimit(d) => Some(d),
+                _ => None,
+            })
+            .unwrap_or_else(|| panic!("{} sets no `export_over_limit` expectation", path.display()));
+        let days = 30;
+        let out = run(&loaded, date("2026-04-01"), days, Some(WeatherKind::Mixed), Controller::Spillway);
+        let allowed = per_day.as_secs_f64() * f64::from(days);
+        assert!(
+            out.seconds_over_limit <= allowed,
+            "{}: {} s over the limit in {days} days, allowed {allowed} s",
+            path.display(),
+            out.seconds_over_limit
+        );
+        // And the baseline, with nothing to hold it, exports plenty: the test has teeth.
+        let base = run(&loaded, date("2026-04-01"), 3, Some(WeatherKind::Mixed), Controller::Baseline);
+        assert!(base.seconds_over_limit > 3600.0, "{}: the baseline hardly exported", path.display());
+        checked += 1;
+    }
+    assert!(checked >= 1, "no example with export forbidden");
+}
+
+/// The zero-export example meets its pump hours and its tank temperature every day of a
+/// mixed-weather month, from the grid where the sun did not do it, and says how much.
+#[test]
+fn the_zero_export_example_meets_its_obligations_every_day_of_a_mixed_month() {
+    let loaded = load(&example("zero-export-house.yaml"));
+    let out = run(&loaded, date("2026-10-01"), 31, Some(WeatherKind::Mixed), Controller::Spillway);
+    for (l, f) in loaded.site.loads.iter().zip(&out.loads) {
+        for (o, (met, missed)) in l.obligations.iter().zip(&f.obligations) {
+            assert_eq!((*met, *missed), (31, 0), "{}: {}", l.name, o.describe());
+        }
+    }
+    let topup: f64 = out.loads.iter().map(|f| f.grid_topup_wh).sum();
+    assert!(topup > 0.0, "an October month needs some grid top-up, and the report must say how much");
+}
+
+/// Diverting surplus saves money where export earns nothing (a fact of the trade,
+/// `common practice`): the baseline of the zero-export house costs more.
+#[test]
+fn the_baseline_costs_more_than_diverting_on_the_zero_export_example() {
+    let loaded = load(&example("zero-export-house.yaml"));
+    let diverting = run(&loaded, date("2026-05-01"), 7, Some(WeatherKind::Mixed), Controller::Spillway);
+    let baseline = run(&loaded, date("2026-05-01"), 7, Some(WeatherKind::Mixed), Controller::Baseline);
+    assert!(loaded.tariff.is_some());
+    assert!(baseline.cost > diverting.cost, "baseline {} vs diverting {}", baseline.cost, diverting.cost);
+}
+
+/// A committed recording (invented data) with a 41-minute gap and one corrupt row:
+/// the bad row is rejected with its line number, the gap is reported, and the replay
+/// still yields a full report.
+#[test]
+fn a_replay_reports_its_bad_row_and_gap_and_still_reports() {
+    let loaded = load(&example("zero-export-house.yaml"));
+    let csv = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/test_data/replay/rosemead-may-12.csv");
+    let rec = Recorded::from_csv(&csv, loaded.site.timezone).unwrap();
+    assert_eq!(rec.rejected(), 1);
+    let bad = rec.notices.iter().find(|n| n.rejected).unwrap();
+    assert_eq!(bad.line, 401, "{bad:?}");
+    assert!(bad.message.contains("07:5x"), "{bad:?}");
+    assert!(rec.notices.iter().any(|n| !n.rejected && n.message.contains("gap of 41 min")), "{:?}", rec.notices);
+    let plant = offline::plant_section(&loaded).unwrap();
+    let site = Arc::new(loaded.site.clone());
+    let mut o = RunOptions::day(date("2026-05-12"));
+    o.recorded = Some(&rec);
+    let out = offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap();
+    // Recorded house energy reaches the plant's books.
+    assert!(out.flows.house.wh > 8_000.0 && out.flows.house.wh < 14_000.0, "{}", out.flows.house.wh);
+    assert!(out.flows.pv.wh > 1_000.0);
+
+    // The command line names the rejected row and the count.
+    let cmd = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args([
+            "replay",
+            example("zero-export-house.yaml").to_str().unwrap(),
+            csv.to_str().unwrap(),
+            "--quiet",
+            "--report",
+            "json",
+        ])
+        .output()
+        .unwrap();
+    assert!(cmd.status.success(), "{}", String::from_utf8_lossy(&cmd.stderr));
+    let stderr = String::from_utf8_lossy(&cmd.stderr);
+    assert!(stderr.contains("rosemead-may-12.csv:401: rejected"), "{stderr}");
+    assert!(stderr.contains("1 row(s) rejected"), "{stderr}");
+    let json: serde_json::Value = serde_json::from_slice(&cmd.stdout).unwrap();
+    assert_eq!(json["replay"]["rows_rejected"], 1);
+    assert!(json["energy"]["pv_kwh"].as_f64().unwrap() > 1.0);
+}
+
+/// The same seed gives the same report, byte for byte.
+#[test]
+fn the_same_seed_gives_the_same_report_byte_for_byte() {
+    let simulate = || {
+        std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+            .args([
+                "simulate",
+                example("battery-ev-limited-export.yaml").to_str().unwrap(),
+                "--days",
+                "1",
+                "--from",
+                "2026-12-12",
+                "--seed",
+                "5",
+                "--quiet",
+                "--report",
+                "json",
+            ])
+            .output()
+            .unwrap()
+    };
+    let (a, b) = (simulate(), simulate());
+    assert!(a.status.success(), "{}", String::from_utf8_lossy(&a.stderr));
+    assert!(!a.stdout.is_empty());
+    assert_eq!(a.stdout, b.stdout);
+    // A different seed gives different weather.
+    let c = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args([
+            "simulate",
+            example("battery-ev-limited-export.yaml").to_str().unwrap(),
+            "--days",
+            "1",
+            "--from",
+            "2026-12-12",
+            "--seed",
+            "6",
+            "--quiet",
+            "--report",
+            "json",
+        ])
+        .output()
+        .unwrap();
+    assert_ne!(a.stdout, c.stdout);
+}
+
+/// Every example carries expectations, and they pass (what an installer's CI would run).
+#[test]
+fn every_example_passes_its_own_expectations() {
+    for path in examples() {
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+            .args(["test", path.to_str().unwrap()])
+            .output()
+            .unwrap();
+        let text = String::from_utf8_lossy(&out.stdout);
+        assert!(out.status.success(), "{}:\n{text}{}", path.display(), String::from_utf8_lossy(&out.stderr));
+        assert!(text.contains("0 failed"), "{text}");
+    }
+}
+
+/// A failing expectation makes `spillway test` exit 1 and name the failing moment.
+#[test]
+fn a_failing_expectation_exits_one_with_the_moment_and_the_reason() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let broken = text.replace("check: tank_temp >= 59°C", "check: tank_temp >= 95°C");
+    let dir = std::env::temp_dir().join(format!("spillway-test-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let file = dir.join("impossible.yaml");
+    std::fs::write(&file, broken).unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(["test", file.to_str().unwrap()])
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert_eq!(out.status.code(), Some(1), "{stdout}");
+    assert!(stdout.contains("FAIL") && stdout.contains("17:05"), "{stdout}");
+    assert!(stdout.contains("water_heater:"), "the engine's reason is shown: {stdout}");
+    let _ = std::fs::remove_dir_all(&dir);
+}
