@@ -4,6 +4,8 @@
 //! `sources` and `actuators` at the edges and `daemon` the only place that owns a
 //! runtime. See `ARCHITECTURE.md` for the map and the invariants.
 
+#![cfg_attr(not(test), deny(clippy::unwrap_used, clippy::expect_used))]
+
 pub mod actuators;
 pub mod config;
 pub mod diag;

@@ -41,3 +41,30 @@ fn every_example_site_has_a_plant_that_builds() {
         }
     }
 }
+
+/// `spillway check` exits 0 on every example and prints the model; it exits 1 on every
+/// broken fixture with the file, line and column of the first problem.
+#[test]
+fn spillway_check_exits_zero_on_examples_and_one_on_broken_files() {
+    let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR"));
+    for dir in ["config", "tests/test_data/broken"] {
+        for entry in std::fs::read_dir(root.join(dir)).unwrap() {
+            let path = entry.unwrap().path();
+            if path.extension().is_none_or(|e| e != "yaml") {
+                continue;
+            }
+            let out =
+                std::process::Command::new(env!("CARGO_BIN_EXE_spillway")).arg("check").arg(&path).output().unwrap();
+            let stdout = String::from_utf8_lossy(&out.stdout);
+            let stderr = String::from_utf8_lossy(&out.stderr);
+            if dir == "config" {
+                assert!(out.status.success(), "{}: {stderr}", path.display());
+                assert!(stdout.contains("loads, in priority order"), "{stdout}");
+            } else {
+                assert_eq!(out.status.code(), Some(1), "{}: {stdout}{stderr}", path.display());
+                let name = path.file_name().unwrap().to_string_lossy().into_owned();
+                assert!(stderr.contains(&format!("{name}:")), "{stderr}");
+            }
+        }
+    }
+}

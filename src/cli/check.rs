@@ -1,28 +1,70 @@
-//! `spillway check`: load a site, print the resolved model or every located error.
+//! `spillway check`: load a site, print the resolved model or every located error. The
+//! sections offline runs read (`plant:`, `simulation:`, `expect:`) are checked too.
 
 use std::path::Path;
 use std::process::ExitCode;
 
-use spillway::config::{self, LoadError};
+use spillway::config::{self, LoadError, yaml::Value};
 use spillway::diag;
+use spillway::offline::{self, expect};
 
 pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
-    match config::load_file(path) {
-        Ok(loaded) => {
-            if !loaded.warnings.is_empty() {
-                eprint!("{}", diag::render(&loaded.source.path, &loaded.source.text, &loaded.warnings, super::color()));
-            }
-            if !quiet {
-                print!("{}", config::describe::describe(&loaded.site));
-            }
-            println!("{}: ok ({} warning(s))", loaded.source.path, loaded.warnings.len());
-            Ok(ExitCode::SUCCESS)
-        }
+    let loaded = match config::load_file(path) {
+        Ok(l) => l,
         Err(e @ LoadError::Invalid { .. }) => {
             eprint!("{}", e.render(super::color()));
             eprintln!("{e}");
-            Ok(ExitCode::from(1))
+            return Ok(ExitCode::from(1));
         }
-        Err(e) => Err(e.into()),
+        Err(e) => return Err(e.into()),
+    };
+    if !loaded.warnings.is_empty() {
+        eprint!("{}", diag::render(&loaded.source.path, &loaded.source.text, &loaded.warnings, super::color()));
     }
+    let mut ok = true;
+    let mut extra = Vec::new();
+    let has = |key: &str| matches!(&loaded.tree.value, Value::Map(m) if m.iter().any(|(k, _)| k.name == key));
+    if has("plant") {
+        match offline::plant_section(&loaded).map_err(anyhow::Error::from).and_then(|p| {
+            let options = spillway_sim::site::SiteOptions { start_ms: 0, seed: 1, sky: None };
+            let plant = spillway_sim::site::build(&p, &options)?;
+            offline::bind::Binding::new(&loaded.site, &plant)?;
+            Ok(p)
+        }) {
+            Ok(p) => {
+                let kwp = p.solar.as_ref().map_or(0.0, |s| s.nameplate_w() / 1000.0);
+                extra.push(format!("plant: {kwp:.2} kWp, every point and actuator found on the simulated devices"));
+            }
+            Err(e) => {
+                eprintln!("{}: plant: {e:#}", loaded.source.path);
+                ok = false;
+            }
+        }
+    }
+    if let Err(e) = offline::simulation_defaults(&loaded) {
+        eprintln!("{e}");
+        ok = false;
+    }
+    match expect::read(&loaded) {
+        Ok(exp) if !exp.checks.is_empty() => {
+            extra.push(format!("expectations: {} check(s) on {} day(s)", exp.checks.len(), exp.days.len()))
+        }
+        Ok(_) => {}
+        Err(diags) => {
+            eprint!("{}", diag::render(&loaded.source.path, &loaded.source.text, &diags, super::color()));
+            ok = false;
+        }
+    }
+    if !quiet {
+        print!("{}", config::describe::describe(&loaded.site));
+        for line in &extra {
+            println!("{line}");
+        }
+    }
+    if !ok {
+        eprintln!("{}: the site is fine, but a section for offline runs is not", loaded.source.path);
+        return Ok(ExitCode::from(1));
+    }
+    println!("{}: ok ({} warning(s))", loaded.source.path, loaded.warnings.len());
+    Ok(ExitCode::SUCCESS)
 }

@@ -10,8 +10,6 @@
 //! itself, only when a command changes (and periodically for the inverter's limit, as
 //! the live link does), so stuck relays, restarts and revert timers behave as on the wire.
 
-use std::time::Duration;
-
 use spillway_sim::bus::probe::Probe;
 use spillway_sim::bus::{Bus, Table as BusTable};
 use spillway_sim::plant::Plant;
@@ -367,9 +365,4 @@ fn write_target(site: &Site, bus: &mut Bus, target: &Write, level: Level) -> boo
         }
         Write::SunSpecLimit { .. } => false,
     }
-}
-
-/// A poll period's worth of simulated time, for callers pacing their loop.
-pub fn poll_floor(site: &Site) -> Duration {
-    site.points.iter().map(|p| p.poll).min().unwrap_or(site.tick)
 }
