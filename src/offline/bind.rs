@@ -235,7 +235,11 @@ impl Binding {
             if now_ms < b.next_ms {
                 continue;
             }
-            b.next_ms += b.poll_ms * ((now_ms - b.next_ms) / b.poll_ms + 1);
+            b.next_ms += b.poll_ms;
+            if b.next_ms <= now_ms {
+                // A step longer than the poll period: catch up without a burst.
+                b.next_ms = now_ms + b.poll_ms;
+            }
             if let Some(unit) = b.unit
                 && bus.answers(unit).is_err()
             {

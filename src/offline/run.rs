@@ -255,6 +255,8 @@ pub fn simulate_once(
     let mut decided = false;
     let mut last_load_energy: Vec<f64> = vec![0.0; site.loads.len()];
     let mut standing_day: Option<i64> = None;
+    let mut next_calendar = start_ms;
+    let mut price = 0.0;
 
     // Trace.
     let trace_window = match options.trace {
@@ -354,29 +356,34 @@ pub fn simulate_once(
             }
         }
 
-        // Money and months, in local time.
-        let local = clock.at(Timestamp(now));
-        let (day, _) = clock.day(Timestamp(now));
-        if month != Some((day.year, day.month)) {
-            if let Some((y, m)) = month {
-                out.months.push(close_month(y, m, &month_fig, flows, &month_base, &sides));
+        // Money and months, in local time. The calendar and the price are looked up once
+        // a simulated minute (prices change on minute boundaries at the finest).
+        if now >= next_calendar {
+            next_calendar = now - now.rem_euclid(60_000) + 60_000;
+            let local = clock.at(Timestamp(now));
+            let (day, _) = clock.day(Timestamp(now));
+            if month != Some((day.year, day.month)) {
+                if let Some((y, m)) = month {
+                    out.months.push(close_month(y, m, &month_fig, flows, &month_base, &sides));
+                }
+                month = Some((day.year, day.month));
+                month_fig = MonthFigures::default();
+                month_base = flows.clone();
             }
-            month = Some((day.year, day.month));
-            month_fig = MonthFigures::default();
-            month_base = flows.clone();
+            if let Some(t) = tariff {
+                let month_import_kwh = (flows.grid_import.wh - month_base.grid_import.wh) / 1000.0;
+                price = t.import_price(local.seconds_of_day, local.weekday, month_import_kwh);
+                if standing_day != Some(day.day) {
+                    standing_day = Some(day.day);
+                    month_fig.cost += t.standing_per_day;
+                    out.cost += t.standing_per_day;
+                }
+            }
         }
         if let Some(t) = tariff {
-            let month_import_kwh = (flows.grid_import.wh - month_base.grid_import.wh) / 1000.0;
-            let price = t.import_price(local.seconds_of_day, local.weekday, month_import_kwh);
-            let cost = flows.grid_import.w * step_h / 1000.0 * price - export * step_h / 1000.0 * t.export_credit;
-            let standing = if standing_day != Some(day.day) {
-                standing_day = Some(day.day);
-                t.standing_per_day
-            } else {
-                0.0
-            };
-            month_fig.cost += cost + standing;
-            out.cost += cost + standing;
+            let cost = (flows.grid_import.w * price - export * t.export_credit) * step_h / 1000.0;
+            month_fig.cost += cost;
+            out.cost += cost;
         }
 
         // Trace for charts.
