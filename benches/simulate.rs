@@ -14,7 +14,11 @@ fn main() {
     let plant = offline::plant_section(&loaded).unwrap_or_else(|e| panic!("{e}"));
     let site = Arc::new(loaded.site.clone());
     let days: u32 = std::env::var("SPILLWAY_BENCH_DAYS").ok().and_then(|d| d.parse().ok()).unwrap_or(365);
+    let only = std::env::var("SPILLWAY_BENCH_ONLY").ok();
     for controller in [Controller::Spillway, Controller::Baseline] {
+        if only.as_deref().is_some_and(|o| o != format!("{controller:?}")) {
+            continue;
+        }
         let mut o = RunOptions::day(chrono::NaiveDate::from_ymd_opt(2026, 1, 1).unwrap_or_default());
         o.days = days;
         o.controller = controller;

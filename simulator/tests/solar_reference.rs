@@ -215,7 +215,7 @@ fn solar_chain_matches_pvlib_tables() {
             assert!(e <= 0.005, "{}: daily {what} off by {:.3} %", s.id, e * 100.0);
         }
     }
-    // Shown with `cargo test -- --nocapture`; the figures quoted in README-solar.md.
+    // Shown with `cargo test -- --nocapture`; the figures quoted in the README.
     println!("{}", report.join("\n"));
 }
 

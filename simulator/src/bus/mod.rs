@@ -5,7 +5,7 @@
 //! [`BusError`]s that map one-to-one onto Modbus exceptions or a timeout, so a server
 //! (Modbus TCP, MQTT) wraps this without deciding anything. Reads encode the plant's
 //! [`Readings`]; writes set its [`Controls`]. The register map is documented in
-//! `simulator/README-plant.md`.
+//! the top-level README ("The device bus").
 
 pub mod mqtt;
 pub mod probe;
@@ -41,7 +41,7 @@ pub const HR_BATTERY_W: u16 = 1;
 /// Relay module holding register of regulator 0 (then 11, 12, …): setpoint 0.1 % (0–1000).
 pub const HR_REGULATOR: u16 = 10;
 
-/// Sensor module input registers (see README-plant.md for types and scales).
+/// Sensor module input registers (the README, "The device bus", gives types and scales).
 pub mod ir {
     /// Tank temperature, 0.1 °C, int16.
     pub const TANK_TEMP: u16 = 0;
@@ -152,7 +152,7 @@ pub enum BusError {
         unit: u8,
     },
     /// MQTT: no command topic of that name.
-    #[error("unknown command topic \"{0}\": see the topic tree in README-plant.md")]
+    #[error("unknown command topic \"{0}\": see the topic tree in the README, \"The device bus\"")]
     UnknownTopic(String),
     /// MQTT: the payload does not parse for that topic.
     #[error("topic \"{topic}\": cannot use payload \"{payload}\", expected {expected}")]

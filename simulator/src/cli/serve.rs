@@ -14,7 +14,7 @@ use spillway_sim::site::{self, SiteOptions};
 use spillway_sim::weather::WeatherKind;
 
 /// Arguments of `serve`. Units on the wire: 1 grid meter, 2 PV inverter, 3 relay module,
-/// 4 sensors (README-plant.md has the register map, README-serve.md the rest).
+/// 4 sensors (the README has the register map and the rest).
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// Plant file: a `plant:` section on its own, its keys at the top level.

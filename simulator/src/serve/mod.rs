@@ -5,7 +5,7 @@
 //!
 //! Libraries spawn nothing, except here: [`Server::start`] *is* the server, so it spawns
 //! its clock, its listener and its MQTT link, and [`ServerHandle::stop`] awaits them all.
-//! Documented for users in `simulator/README-serve.md`.
+//! Documented for users in the top-level README ("The simulator on the wire").
 
 mod clock;
 mod fault;
