@@ -6,8 +6,10 @@
 
 pub mod actuators;
 pub mod config;
+pub mod daemon;
 pub mod diag;
 pub mod engine;
 pub mod rules;
 pub mod sources;
+pub mod status;
 pub mod units;
