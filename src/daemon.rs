@@ -168,7 +168,8 @@ impl Daemon {
         }
         drop(events_tx);
 
-        let (status_tx, status_rx) = watch::channel(Arc::new(status::starting(&site)));
+        let snapshot = Snapshot::empty(&site);
+        let (status_tx, status_rx) = watch::channel(Arc::new(status::starting(&engine, &snapshot)));
         let bound = http.as_ref().map(|(_, a)| *a);
         if let Some((listener, addr)) = http {
             let rx = status_rx.clone();
@@ -182,7 +183,7 @@ impl Daemon {
         }
 
         let (req_tx, req_rx) = mpsc::channel(4);
-        let control = Control::new(engine, Snapshot::empty(&site), dispatcher, status_tx, &options);
+        let control = Control::new(engine, snapshot, dispatcher, status_tx, &options);
         let handle = tracker.spawn(control.run(events_rx, req_rx, cancel.clone()));
         tracker.close();
         info!(

@@ -2,6 +2,8 @@
 //! Nothing here decides anything; each verb is a thin wrapper over a library call.
 
 mod check;
+mod logging;
+mod run;
 
 use std::io::IsTerminal;
 use std::path::PathBuf;
@@ -16,6 +18,9 @@ pub struct Cli {
     /// What to do.
     #[command(subcommand)]
     pub command: Verb,
+    /// How log lines look (the level comes from RUST_LOG, e.g. `RUST_LOG=debug`).
+    #[arg(long, global = true, value_enum, default_value = "human")]
+    pub log_format: logging::LogFormat,
 }
 
 /// The verbs.
@@ -29,6 +34,8 @@ pub enum Verb {
         #[arg(long)]
         quiet: bool,
     },
+    /// Run the controller: read the devices, decide, switch, until SIGINT or SIGTERM.
+    Run(run::RunArgs),
 }
 
 /// Whether to colour diagnostics.
@@ -40,5 +47,6 @@ pub fn color() -> bool {
 pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     match cli.command {
         Verb::Check { site, quiet } => check::run(&site, quiet),
+        Verb::Run(args) => run::run(args, cli.log_format),
     }
 }

@@ -3,7 +3,7 @@
 //! with its reason, publishes the status, persists the counters, and runs the
 //! shutdown sequence (safe states first, then cancel the links).
 
-use std::collections::HashMap;
+use std::collections::{HashMap, VecDeque};
 use std::path::PathBuf;
 use std::sync::Arc;
 use std::time::Duration;
@@ -19,13 +19,15 @@ use crate::actuators::mqtt::{limit_word, mode_word};
 use crate::config::model::{DeviceId, Site};
 use crate::engine::{Decisions, Engine, LimitReason, Mode, Snapshot};
 use crate::sources::{Clock, OverrideAction, SourceEvent};
-use crate::status::{self, DeviceHealth, Status};
+use crate::status::{self, DeviceHealth, RecentEvent, Status};
 use crate::units::Power;
 
 /// How often a repeated exception or malformed payload is logged again (with the
 /// count since), so a device that refuses one register every second does not flood
 /// the log.
 const REPEAT_LOG: Duration = Duration::from_secs(60);
+/// How many switchings and limit changes the status document keeps.
+const RECENT: usize = 12;
 
 /// What can be asked of the control task.
 #[derive(Debug)]
@@ -67,6 +69,7 @@ pub(super) struct Control {
     repeats: HashMap<String, (Instant, u64)>,
     last_limit: (Option<Power>, LimitReason),
     was_normal: bool,
+    recent: VecDeque<RecentEvent>,
     summary: Summary,
 }
 
@@ -92,6 +95,7 @@ impl Control {
             repeats: HashMap::new(),
             last_limit: (None, LimitReason::None),
             was_normal: false,
+            recent: VecDeque::with_capacity(RECENT),
             summary: Summary::default(),
         }
     }
@@ -144,18 +148,22 @@ impl Control {
         for s in &d.switchings {
             self.summary.switchings += 1;
             let name = self.site.loads.get(s.load.0).map_or("?", |l| l.name.as_str());
+            let why = self.engine.explain(s.load);
+            push_recent(&mut self.recent, d.now, format!("{name} {} → {}: {why}", s.from, s.to));
             info!(
                 load = %name,
                 from = %s.from,
                 to = %s.to,
                 reason = s.reason.code(),
-                why = %self.engine.explain(s.load),
+                why = %why,
                 surplus_w = d.surplus.0.round(),
                 grid_w = d.grid.map(|g| g.0.round()),
                 "load switched"
             );
         }
-        log_limit(&mut self.last_limit, d);
+        if let Some(text) = log_limit(&mut self.last_limit, d) {
+            push_recent(&mut self.recent, d.now, text);
+        }
         log_mode(&mut self.was_normal, d.mode);
         trace!(
             mode = mode_word(d.mode),
@@ -176,7 +184,8 @@ impl Control {
                 warn!(load = %name, obligation = %what, day = r.day, "obligation missed");
             }
         }
-        let doc = status::build(&self.engine, &self.snapshot, &self.health);
+        self.recent.make_contiguous();
+        let doc = status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0);
         self.status.send_replace(Arc::new(doc));
     }
     fn event(&mut self, ev: SourceEvent) {
@@ -333,7 +342,9 @@ impl Control {
         self.dispatcher.apply(&safe);
         let commands: Vec<String> = safe.loads.iter().map(|l| l.command.to_string()).collect();
         info!(?commands, "safe states dispatched");
-        let doc = status::stopped(status::build(&self.engine, &self.snapshot, &self.health));
+        push_recent(&mut self.recent, now, "controller stopping: safe states dispatched".to_owned());
+        self.recent.make_contiguous();
+        let doc = status::stopped(status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0));
         self.status.send_replace(Arc::new(with_safe(doc, &safe, &self.site)));
         self.persist().await;
         info!(saves = self.summary.saves, "counters saved: stopping the links");
@@ -357,12 +368,14 @@ fn with_safe(mut doc: Status, safe: &Decisions, site: &Site) -> Status {
     doc
 }
 
-fn log_limit(last: &mut (Option<Power>, LimitReason), d: &Decisions) {
+/// Logs a change of the inverter limit; returns a sentence for the status when the
+/// change is one a person should see.
+fn log_limit(last: &mut (Option<Power>, LimitReason), d: &Decisions) -> Option<String> {
     let now = (d.inverter_limit, d.limit_reason);
     let before = *last;
     *last = now;
     if now == before {
-        return;
+        return None;
     }
     let fmt = |p: Option<Power>| p.map_or_else(|| "none".to_owned(), |p| p.to_string());
     // The guard releases a curtailment step by step: log its start, its end and
@@ -375,8 +388,10 @@ fn log_limit(last: &mut (Option<Power>, LimitReason), d: &Decisions) {
             grid_w = d.grid.map(|g| g.0.round()),
             "inverter limit changed"
         );
+        Some(format!("inverter limit {} → {} ({})", fmt(before.0), fmt(now.0), limit_word(now.1)))
     } else {
         debug!(from = %fmt(before.0), to = %fmt(now.0), reason = limit_word(now.1), "inverter limit adjusted");
+        None
     }
 }
 
@@ -396,4 +411,11 @@ fn log_mode(was_normal: &mut bool, mode: Mode) {
         }
         _ => {}
     }
+}
+
+fn push_recent(recent: &mut VecDeque<RecentEvent>, at: crate::units::Timestamp, text: String) {
+    if recent.len() == RECENT {
+        recent.pop_front();
+    }
+    recent.push_back(RecentEvent { time: at.to_string(), text });
 }

@@ -50,6 +50,17 @@ pub struct Status {
     pub points: Vec<PointStatus>,
     /// Device links.
     pub devices: Vec<DeviceStatus>,
+    /// The latest switchings and limit changes, newest last.
+    pub recent: Vec<RecentEvent>,
+}
+
+/// A switching or a change of the inverter limit, for people watching.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct RecentEvent {
+    /// When (RFC 3339, UTC).
+    pub time: String,
+    /// What happened, as a sentence (`water_heater off → on: started: ...`).
+    pub text: String,
 }
 
 /// The inverter limit and why.
@@ -182,19 +193,17 @@ pub fn export_policy(site: &Site) -> String {
     }
 }
 
-/// The document before the first tick.
-pub fn starting(site: &Site) -> Status {
-    Status {
-        site: site.name.clone(),
-        time: None,
-        mode: "starting".to_owned(),
-        export_policy: export_policy(site),
-        ..Status::default()
-    }
+/// The document before the first tick: every load off, nothing measured yet.
+pub fn starting(engine: &Engine, snapshot: &Snapshot) -> Status {
+    let mut s = build(engine, snapshot, &[], &[]);
+    s.time = None;
+    s.mode = "starting".to_owned();
+    s.points.iter_mut().for_each(|p| p.age_s = None);
+    s
 }
 
 /// The document after a tick.
-pub fn build(engine: &Engine, snapshot: &Snapshot, health: &[DeviceHealth]) -> Status {
+pub fn build(engine: &Engine, snapshot: &Snapshot, health: &[DeviceHealth], recent: &[RecentEvent]) -> Status {
     let site = engine.site();
     let d = engine.decisions();
     let now = d.now;
@@ -272,6 +281,7 @@ pub fn build(engine: &Engine, snapshot: &Snapshot, health: &[DeviceHealth]) -> S
         },
         points: points(site, snapshot, now),
         devices: devices(site, health),
+        recent: recent.to_vec(),
     }
 }
 
