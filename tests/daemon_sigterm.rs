@@ -1,0 +1,60 @@
+//! The real `spillway run` binary as a child process against the test plant on
+//! loopback: it switches a load on, and on SIGTERM writes the safe states (relay open,
+//! inverter at its safe limit) before it exits with status 0. Real time: the child has
+//! its own clock; waits are bounded and nothing asserts on how long they took.
+
+mod daemon_support;
+mod support;
+
+use std::process::Stdio;
+use std::time::Duration;
+
+use daemon_support::{LOADS, Plant, plant_until};
+use tokio::io::AsyncReadExt;
+
+#[cfg(unix)]
+#[tokio::test]
+async fn sigterm_writes_the_safe_states_before_the_process_exits() {
+    let plant = Plant::start(4200.0).await;
+    let yaml = plant
+        .site_yaml(LOADS, "")
+        .replace("poll: 1s", "poll: 200ms")
+        .replace("  import_target: 40W", "  import_target: 40W\n  tick: 200ms")
+        .replace("for 5s", "for 1s");
+    let dir = std::env::temp_dir().join(format!("spillway-sigterm-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let site = dir.join("bench.yaml");
+    std::fs::write(&site, yaml).unwrap();
+
+    let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .arg("run")
+        .arg(&site)
+        .env("RUST_LOG", "info")
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let pid = child.id().unwrap();
+    let mut stderr = child.stderr.take().unwrap();
+    let log = tokio::spawn(async move {
+        let mut s = String::new();
+        let _ = stderr.read_to_string(&mut s).await;
+        s
+    });
+
+    plant_until(&plant, Duration::from_secs(30), "a load switched on by the child", |s| s.heater || s.pump).await;
+    let status = std::process::Command::new("kill").args(["-TERM", &pid.to_string()]).status().unwrap();
+    assert!(status.success());
+    let exit = tokio::time::timeout(Duration::from_secs(20), child.wait()).await.expect("the child exits").unwrap();
+    let log = log.await.unwrap();
+    assert!(exit.success(), "exit status {exit:?}\n{log}");
+    assert_eq!(plant.devices.coil(3, 0), Some(false), "heater relay open\n{log}");
+    assert_eq!(plant.devices.coil(3, 1), Some(false), "pump relay open\n{log}");
+    assert_eq!(plant.devices.holding(2, 10), Some(0), "inverter at its safe limit (0 W)\n{log}");
+    assert!(log.contains("SAFETY") && log.contains("licensed electrician"), "the banner\n{log}");
+    assert!(log.contains("SIGTERM received") && log.contains("safe states dispatched"), "{log}");
+    let state = dir.join("bench.state.json");
+    assert!(state.exists(), "counters saved next to the site file");
+    let _ = std::fs::remove_dir_all(&dir);
+}
