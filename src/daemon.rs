@@ -17,6 +17,7 @@
 //! last pass over their (now safe) commands and return; every task is awaited.
 
 pub mod banner;
+pub mod commission;
 mod control;
 pub mod state_file;
 

@@ -3,7 +3,9 @@
 
 mod check;
 mod logging;
+mod read;
 mod run;
+mod step_test;
 
 use std::io::IsTerminal;
 use std::path::PathBuf;
@@ -36,6 +38,19 @@ pub enum Verb {
     },
     /// Run the controller: read the devices, decide, switch, until SIGINT or SIGTERM.
     Run(run::RunArgs),
+    /// Read every point once and print raw registers and decoded values (commissioning).
+    Read(read::ReadArgs),
+    /// Switch one load on and off and measure the step at the grid meter (commissioning).
+    StepTest(step_test::StepTestArgs),
+}
+
+/// A duration with its unit: `10s`, `2min`, `500ms`.
+pub fn parse_duration(text: &str) -> Result<std::time::Duration, String> {
+    let q = spillway::units::parse_quantity(text).map_err(|e| format!("`{text}`: {e}"))?;
+    if q.dimension != spillway::units::Dimension::Duration || q.value < 0.0 || !q.value.is_finite() {
+        return Err(format!("`{text}` is not a duration like 10s or 2min"));
+    }
+    Ok(std::time::Duration::from_secs_f64(q.value))
 }
 
 /// Whether to colour diagnostics.
@@ -48,5 +63,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     match cli.command {
         Verb::Check { site, quiet } => check::run(&site, quiet),
         Verb::Run(args) => run::run(args, cli.log_format),
+        Verb::Read(args) => read::run(args, cli.log_format),
+        Verb::StepTest(args) => step_test::run(args, cli.log_format),
     }
 }
