@@ -49,10 +49,8 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         eprintln!("error: the site has no load \"{}\" (loads: {})", args.load, names.join(", "));
         return Ok(ExitCode::from(1));
     };
-    let targets: Vec<String> = spillway::actuators::load_levels(load, Command::On)
-        .iter()
-        .map(|(t, _)| describe_target(&site, t))
-        .collect();
+    let targets: Vec<String> =
+        spillway::actuators::load_levels(load, Command::On).iter().map(|(t, _)| describe_target(&site, t)).collect();
     println!(
         "step test: {} ({}) will be switched ON for {} through {}, then OFF.",
         load.name,

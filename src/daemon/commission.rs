@@ -315,11 +315,8 @@ pub fn step_test(
                     }
                     Some(_) => {}
                     None => {
-                        let missing = needed
-                            .iter()
-                            .find(|d| !up.contains(d))
-                            .copied()
-                            .unwrap_or(site.points[grid.0].device);
+                        let missing =
+                            needed.iter().find(|d| !up.contains(d)).copied().unwrap_or(site.points[grid.0].device);
                         let reason = last_reason
                             .iter()
                             .rev()
@@ -410,9 +407,5 @@ async fn watch_grid(
             None => break,
         }
     }
-    Means {
-        grid: (gn > 0).then(|| g / gn as f64),
-        load: (pn > 0).then(|| p / pn as f64),
-        n: gn,
-    }
+    Means { grid: (gn > 0).then(|| g / gn as f64), load: (pn > 0).then(|| p / pn as f64), n: gn }
 }

@@ -121,7 +121,9 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
         };
         points.push(match spec {
             Ok(spec) => p.read_point(&spec).await,
-            Err(reason) => PointReading { point: id, origin: "sunspec".to_owned(), raw: Vec::new(), value: Err(reason) },
+            Err(reason) => {
+                PointReading { point: id, origin: "sunspec".to_owned(), raw: Vec::new(), value: Err(reason) }
+            }
         });
     }
     // Best effort; the transport may already be gone.
@@ -165,7 +167,12 @@ struct Prober<'a> {
 
 impl Prober<'_> {
     /// One read; the outer error is "no usable answer", the inner the exception.
-    async fn read(&mut self, table: Table, address: u16, count: u16) -> Result<Result<Vec<u16>, ExceptionCode>, String> {
+    async fn read(
+        &mut self,
+        table: Table,
+        address: u16,
+        count: u16,
+    ) -> Result<Result<Vec<u16>, ExceptionCode>, String> {
         if let Some(why) = &self.dead {
             return Err(format!("not read: {why}"));
         }
@@ -259,7 +266,11 @@ impl Prober<'_> {
                     raw.extend(w);
                 }
                 Ok(Err(code)) => {
-                    return fail(origin, raw, format!("scale factor at {address}: exception {}", ExceptionName::from(code)));
+                    return fail(
+                        origin,
+                        raw,
+                        format!("scale factor at {address}: exception {}", ExceptionName::from(code)),
+                    );
                 }
                 Err(why) => return fail(origin, raw, why),
             }
