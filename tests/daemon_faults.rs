@@ -20,8 +20,8 @@ async fn running() -> (Plant, spillway::daemon::Daemon) {
 }
 
 async fn settle(plant: &Plant, daemon: &spillway::daemon::Daemon) {
-    status_until(&daemon, Duration::from_secs(60), "heater on", |s| load(s, "water_heater").on).await;
-    plant_until(&plant, Duration::from_secs(60), "heater drawing", |s| s.heater).await;
+    status_until(daemon, Duration::from_secs(60), "heater on", |s| load(s, "water_heater").on).await;
+    plant_until(plant, Duration::from_secs(60), "heater drawing", |s| s.heater).await;
     tokio::time::sleep(Duration::from_secs(60)).await;
 }
 

@@ -207,11 +207,13 @@ where
     until(&daemon, "heater on", |s| heater(s).on).await;
     let deadline = Instant::now() + Duration::from_secs(5);
     let (export_at, on_at) = loop {
-        let s = plant.state.lock().unwrap();
-        if let (Some(e), Some(o)) = (s.export_at, s.on_at) {
+        let times = {
+            let s = plant.state.lock().unwrap();
+            (s.export_at, s.on_at)
+        };
+        if let (Some(e), Some(o)) = times {
             break (e, o);
         }
-        drop(s);
         assert!(Instant::now() < deadline, "the heater command never reached the plant");
         tokio::time::sleep(Duration::from_millis(20)).await;
     };
