@@ -9,6 +9,7 @@ pub mod config;
 pub mod daemon;
 pub mod diag;
 pub mod engine;
+pub mod offline;
 pub mod rules;
 pub mod sources;
 pub mod status;

@@ -6,6 +6,7 @@ pub mod plant;
 pub mod pv;
 pub mod pv_output;
 pub mod quantity;
+pub mod serve;
 pub mod site;
 pub mod sky;
 pub mod sun;

@@ -21,8 +21,9 @@ pub struct PvSample {
 }
 
 /// Anything that produces PV power step by step: the modelled array, a replayed CSV,
-/// or a fixed profile in a test.
-pub trait PvSource {
+/// or a fixed profile in a test. `Send` so that a plant can be served from a task of a
+/// multi-threaded runtime (`spillway_sim::serve`).
+pub trait PvSource: Send {
     /// Advances over `[t_ms, t_ms + dt_s)` and returns the output for that step.
     /// `limit_w` is the inverter's active-power limit (`None` = no limit).
     fn step(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> PvSample;

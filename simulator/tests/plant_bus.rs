@@ -19,7 +19,10 @@ const HR: Table = Table::HoldingRegisters;
 // json/model_1.json, model_201.json, model_203.json, model_101.json, model_123.json and
 // model_704.json: point order and sizes (uint16/int16/enum16/sunssf/pad = 1 register,
 // acc32/uint32/int32/bitfield32 = 2, strings as given). The model lengths and offsets
-// below were counted by hand from those files.
+// below were counted by hand from those files. Model 704 follows the release shipped in
+// pySunSpec2 1.3.7 (the same offsets as the controller's own table in
+// src/sources/modbus/sunspec.rs, written independently from that release):
+// WMaxLimPct_SF at data offset 52, i.e. model offset +54.
 #[test]
 fn model_layouts_match_the_published_definitions() {
     let check = |m: &Model, len: u16, points: &[(&str, u16)]| {
@@ -80,20 +83,21 @@ fn model_layouts_match_the_published_definitions() {
     );
     check(
         &DER_AC_CONTROLS,
-        69,
+        65,
         &[
             ("WMaxLimPctEna", 12),
             ("WMaxLimPct", 13),
             ("WMaxLimPctRvrt", 14),
-            ("WMaxLimPctRvrtEna", 15),
+            ("WMaxLimPctEnaRvrt", 15),
             ("WMaxLimPctRvrtTms", 16),
             ("WMaxLimPctRvrtRem", 18),
             ("WSet", 22),
-            ("RGra", 51),
-            ("PF_SF", 55),
-            ("WMaxLim_SF", 56),
-            ("PFWInj.PF", 61),
-            ("PFWAbsRvrt.Ext", 68),
+            ("WRmp", 47),
+            ("AntiIslEna", 50),
+            ("PF_SF", 51),
+            ("WMaxLimPct_SF", 52),
+            ("PFWInj.PF", 57),
+            ("PFWAbsRvrt.Ext", 64),
         ],
     );
 }
@@ -202,7 +206,7 @@ fn model_704_applies_its_reversion_limit_when_the_timer_expires() {
     let mut p = sunspec_plant();
     let (_, m704) = control_starts(&p);
     let at = |point: &str| m704 + DER_AC_CONTROLS.offset(point).unwrap();
-    assert_eq!(words(&p, INVERTER_UNIT, at("WMaxLim_SF"), 1)[0] as i16, -2);
+    assert_eq!(words(&p, INVERTER_UNIT, at("WMaxLimPct_SF"), 1)[0] as i16, -2);
     let bus = p.bus_mut();
     // Limit 75 %, reversion limit 20 %, reversion after 30 s without a refresh.
     bus.write_registers(INVERTER_UNIT, at("WMaxLimPctEna"), &[1, 7500, 2000, 1, 0, 30]).unwrap();

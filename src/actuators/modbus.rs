@@ -125,6 +125,43 @@ pub enum LimitControl {
 impl LimitControl {
     /// The writes that set `pct` (% of rated) with `safe_pct` as the reversion limit
     /// and `refresh` as the rewrite period.
+    /// Finds the power-limit control on a device's SunSpec map: model 704 when present
+    /// (it fails safe), else model 123. Returns the control with a scale factor of 0 and
+    /// the address of its `WMaxLimPct_SF` register, which the caller reads and applies
+    /// with [`LimitControl::with_sf`].
+    pub fn locate(map: &crate::sources::modbus::sunspec::ModelMap) -> Option<(LimitControl, Option<u16>)> {
+        use crate::sources::modbus::sunspec;
+        let at = |model: u16, point: &str| -> Option<u16> {
+            let (start, _) = map.start(model)?;
+            Some(start + sunspec::locate(model, point).ok()?.offset)
+        };
+        if map.start(704).is_some() {
+            let enable = at(704, "WMaxLimPctEna")?;
+            Some((LimitControl::DerControls { enable, sf: 0 }, at(704, "WMaxLimPct_SF")))
+        } else if map.start(123).is_some() {
+            let control = LimitControl::Immediate {
+                pct: at(123, "WMaxLimPct")?,
+                revert_time: at(123, "WMaxLimPct_RvrtTms")?,
+                enable: at(123, "WMaxLim_Ena")?,
+                sf: 0,
+            };
+            Some((control, at(123, "WMaxLimPct_SF")))
+        } else {
+            None
+        }
+    }
+
+    /// The same control with its scale factor read from the device.
+    pub fn with_sf(self, sf: i16) -> LimitControl {
+        match self {
+            LimitControl::DerControls { enable, .. } => LimitControl::DerControls { enable, sf },
+            LimitControl::Immediate { pct, revert_time, enable, .. } => {
+                LimitControl::Immediate { pct, revert_time, enable, sf }
+            }
+        }
+    }
+
+    /// The writes that set the limit to `pct` % of rated power.
     pub fn ops(&self, pct: f64, safe_pct: f64, refresh: Duration) -> Vec<WriteOp> {
         let secs = (refresh.as_secs_f64() * f64::from(REVERT_FACTOR)).ceil().max(1.0);
         let raw = |p: f64, sf: i16| -> u16 {

@@ -5,6 +5,7 @@ mod check;
 mod logging;
 mod read;
 mod run;
+mod simulate;
 mod step_test;
 
 use std::io::IsTerminal;
@@ -36,6 +37,20 @@ pub enum Verb {
         #[arg(long)]
         quiet: bool,
     },
+    /// Run the site's rules against its simulated plant (and a no-diversion baseline on
+    /// the same weather) and report energies, export, loads, obligations and costs.
+    Simulate {
+        /// The site file, with a `plant:` section.
+        site: PathBuf,
+        #[command(flatten)]
+        run: simulate::RunArgs,
+        /// Report format.
+        #[arg(long, value_enum, default_value = "text")]
+        report: simulate::Format,
+        /// Write a chart (SVG): power flows for short runs, monthly bars for long ones.
+        #[arg(long)]
+        chart: Option<PathBuf>,
+    },
     /// Run the controller: read the devices, decide, switch, until SIGINT or SIGTERM.
     Run(run::RunArgs),
     /// Read every point once and print raw registers and decoded values (commissioning).
@@ -62,6 +77,7 @@ pub fn color() -> bool {
 pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     match cli.command {
         Verb::Check { site, quiet } => check::run(&site, quiet),
+        Verb::Simulate { site, run, report, chart } => simulate::run(&site, &run, report, chart.as_deref()),
         Verb::Run(args) => run::run(args, cli.log_format),
         Verb::Read(args) => read::run(args, cli.log_format),
         Verb::StepTest(args) => step_test::run(args, cli.log_format),

@@ -124,7 +124,7 @@ struct PointInfo {
 }
 
 /// The names a rule may use, with their slot and type.
-struct SiteScope {
+pub struct SiteScope {
     names: HashMap<String, (Slot, Type)>,
 }
 
@@ -739,6 +739,7 @@ impl Builder<'_, '_> {
         let unit_node = m.get("unit");
         let poll = m.get("poll");
         let stale = m.get("stale_after");
+        let latency_node = m.get("latency");
         let span = m.span();
         m.finish(self.diags);
 
@@ -936,7 +937,24 @@ impl Builder<'_, '_> {
             );
             return None;
         }
+        let latency = match latency_node {
+            Some(n) => values::duration(n, "the latency", self.diags)?,
+            None => Duration::ZERO,
+        };
+        if latency >= stale_after {
+            self.diags.error(
+                "C0258",
+                format!(
+                    "{what}: a latency of {} is not shorter than its stale timeout",
+                    units::format_duration(latency)
+                ),
+                latency_node.map_or(span.clone(), |n| n.span.clone()),
+                "latency must be below stale_after",
+            );
+            return None;
+        }
         Some(Point {
+            latency,
             name: name.to_owned(),
             device: device_id,
             read,
@@ -1977,6 +1995,12 @@ fn layout(points: usize, loads: usize) -> SlotLayout {
         })
         .collect();
     SlotLayout { len: next as usize, site, loads }
+}
+
+/// The scope of a checked site: what its rules (and its owner's expectations) may name.
+pub fn site_scope(site: &Site) -> SiteScope {
+    let names: Vec<String> = site.loads.iter().map(|l| l.name.clone()).collect();
+    scope(&site.points, &names, &site.slots)
 }
 
 fn scope(points: &[Point], load_names: &[String], slots: &SlotLayout) -> SiteScope {

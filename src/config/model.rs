@@ -281,6 +281,11 @@ pub struct Point {
     pub poll: Duration,
     /// Age after which the value counts as stale.
     pub stale_after: Duration,
+    /// How old the information is when a reading arrives: the meter's averaging period
+    /// plus its reporting delay. The export guard waits for a reading taken wholly after
+    /// its last correction before correcting again, so a slow meter cannot make it
+    /// correct twice for the same excess.
+    pub latency: Duration,
 }
 
 /// Where a point's value comes from.

@@ -178,7 +178,8 @@ pub struct LoadDecision {
     pub reason: Reason,
 }
 
-/// A change of a load's command, for the log ("every switching is logged with its cause").
+/// A load switching on or off or changing stage, for the log ("every switching is
+/// logged with its cause"). Setpoint changes of modulating loads are not switchings.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Switching {
     /// Which load.
@@ -234,7 +235,7 @@ pub struct Decisions {
     pub surplus: Power,
     /// Grid power used (import positive), if fresh.
     pub grid: Option<Power>,
-    /// Loads whose command changed this tick.
+    /// Loads that switched on or off or changed stage this tick.
     pub switchings: Vec<Switching>,
 }
 

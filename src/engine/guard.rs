@@ -17,6 +17,9 @@ pub struct Guard {
     limit: Option<Power>,
     export_since: Option<Timestamp>,
     escalated: bool,
+    /// When the limit was last changed: the next change waits for a grid reading
+    /// measured after it, so a delayed meter cannot make the guard correct twice.
+    acted_at: Option<Timestamp>,
 }
 
 impl Guard {
@@ -54,7 +57,7 @@ impl Guard {
         &mut self,
         site: &Site,
         values: &[f64],
-        grid: Option<Power>,
+        grid: Option<(Power, Timestamp)>,
         delta_loads: Power,
         absorbable: Power,
         mode: Mode,
@@ -71,9 +74,12 @@ impl Guard {
             self.escalated = false;
             return (self.limit, LimitReason::Failsafe);
         }
-        let Some(grid) = grid else {
+        let Some((grid, measured_at)) = grid else {
             return (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None });
         };
+        // `measured_at` is when the reading's information starts (arrival − latency):
+        // only a reading wholly after the last correction can show its effect.
+        let fresh_reading = self.acted_at.is_none_or(|t| measured_at > t);
         let tolerance = site.guard.tolerance;
         // Hold a no-export site at its small import; a limited one just under its limit.
         let target = if export_limit.0 <= 0.0 { site.import_target.max(tolerance) } else { -export_limit + tolerance };
@@ -96,6 +102,10 @@ impl Guard {
         let pv = site.roles.pv.map(|p| values[p.0]).filter(|v| v.is_finite()).map(Power);
         let expected = grid + delta_loads;
         let rate = site.guard.release_rate * dt.as_secs_f64();
+        if !fresh_reading {
+            return (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None });
+        }
+        let before = self.limit;
         let next = match self.limit {
             // Engage only on export beyond the limit that the loads could not take.
             None if expected < -export_limit => Some(pv.unwrap_or(inv.rated) - (target - expected)),
@@ -123,6 +133,9 @@ impl Guard {
             Some(l) => Some(l.clamp(Power::ZERO, inv.rated)),
             None => None,
         };
+        if self.limit != before {
+            self.acted_at = Some(now);
+        }
         (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None })
     }
 }

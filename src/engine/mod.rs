@@ -101,6 +101,10 @@ pub struct Engine {
     float: bool,
     /// Whether the site has ever left the initial fail-safe.
     ever_normal: bool,
+    /// When the modulating loads last jumped to absorb export (once per grid reading).
+    jump_at: Option<Timestamp>,
+    /// Reused buffer: power of lower-priority loads that cannot be stopped, per load.
+    reserved: Vec<Power>,
     guard_points: Vec<PointId>,
     decisions: Decisions,
     results: Vec<ObligationResult>,
@@ -157,6 +161,8 @@ impl Engine {
             outage_since: None,
             float: false,
             ever_normal: false,
+            jump_at: None,
+            reserved: Vec::new(),
             guard_points,
             decisions,
             results: Vec::new(),
@@ -227,6 +233,11 @@ impl Engine {
     /// The last decisions.
     pub fn decisions(&self) -> &Decisions {
         &self.decisions
+    }
+
+    /// What rules saw at the last tick: the value table, the instant and local time.
+    pub fn eval_input(&self) -> EvalInput<'_> {
+        EvalInput { values: &self.values, now: self.decisions.now, local: self.local }
     }
 
     /// The value of a slot at the last tick (NaN when unknown).
@@ -362,6 +373,9 @@ impl Engine {
 
         // Site flows.
         let grid = site.roles.grid.map(|p| self.values[p.0]).filter(|v| v.is_finite()).map(Power);
+        // When the grid reading was measured: a correction is made once per new reading,
+        // never twice on the same (delayed) one.
+        let grid_at = site.roles.grid.map_or(Timestamp::NEVER, |p| snapshot.get(p).at.minus(site.points[p.0].latency));
         let hidden = self.guard.hidden_headroom(&site, &self.values);
         let base_surplus = match &site.connection {
             Connection::Grid { .. } => grid.map(|g| managed - g),
@@ -399,9 +413,10 @@ impl Engine {
                 // Export beyond the limit: the loads take all they can at once (the guard
                 // curtails only the rest), rather than ramping while export persists.
                 match site.export_limit() {
-                    Some(limit) if -g > limit => {
+                    Some(limit) if -g > limit && self.jump_at.is_none_or(|t| grid_at > t) => {
                         let jump = (modulating_now + (pi_target - g)).min(cap).max(u);
                         self.pi.set_output(jump);
+                        self.jump_at = Some(now);
                         jump
                     }
                     _ => u,
@@ -412,7 +427,8 @@ impl Engine {
                 Power::ZERO
             }
         };
-        let reserved = self.reserved_lower(now);
+        self.reserved_lower(now);
+        let reserved = std::mem::take(&mut self.reserved);
         let mut used = Power::ZERO;
         let mut switchings = std::mem::take(&mut self.decisions.switchings);
         switchings.clear();
@@ -439,21 +455,23 @@ impl Engine {
             absorbable += headroom;
             let st = &mut self.loads[i];
             let was_on = st.command.is_on();
-            if command != st.command {
+            // A switching is a change of state a relay or contactor sees: on/off or a
+            // stage. A modulating load moving its setpoint is following, not switching.
+            let switched = command.is_on() != was_on
+                || matches!((command, st.command), (Command::Stage(a), Command::Stage(b)) if a != b);
+            if switched {
                 switchings.push(Switching { load: LoadId(i), from: st.command, to: command, reason });
-                if command.is_on() != was_on {
-                    st.changed_at = now;
-                    if command.is_on() {
-                        st.starts.push_back(now);
-                    }
-                    if self.recovered_at.is_some_and(|r| now.since(r) < SETTLE + site.failsafe.recovery_hold) {
-                        st.settled = true;
-                    }
+            }
+            if command.is_on() != was_on {
+                st.changed_at = now;
+                if command.is_on() {
+                    st.starts.push_back(now);
+                }
+                if self.recovered_at.is_some_and(|r| now.since(r) < SETTLE + site.failsafe.recovery_hold) {
+                    st.settled = true;
                 }
                 // A new state of the load: its opposite rule starts afresh.
-                if command.is_on() != was_on {
-                    reset_rule_states(&site, i, st);
-                }
+                reset_rule_states(&site, i, st);
             }
             st.command = command;
             st.reason = reason;
@@ -463,10 +481,19 @@ impl Engine {
             }
             new_power += p;
         }
+        self.reserved = reserved;
         // Export guard on the power the loads will draw after this tick's commands.
         let delta_loads = new_power - managed;
-        let (limit, limit_reason) =
-            self.guard.decide(&site, &self.values, grid, delta_loads, absorbable, self.mode, now, dt);
+        let (limit, limit_reason) = self.guard.decide(
+            &site,
+            &self.values,
+            grid.map(|g| (g, grid_at)),
+            delta_loads,
+            absorbable,
+            self.mode,
+            now,
+            dt,
+        );
 
         let d = &mut self.decisions;
         d.now = now;
@@ -590,9 +617,11 @@ impl Engine {
 
     /// For each load, the power of lower-priority loads that cannot be stopped now
     /// (minimum on-time, obligation, override): it is not surplus for this load.
-    fn reserved_lower(&self, now: Timestamp) -> Vec<Power> {
+    fn reserved_lower(&mut self, now: Timestamp) {
         let n = self.loads.len();
-        let mut reserved = vec![Power::ZERO; n];
+        let mut reserved = std::mem::take(&mut self.reserved);
+        reserved.clear();
+        reserved.resize(n, Power::ZERO);
         let mut acc = Power::ZERO;
         for i in (0..n).rev() {
             reserved[i] = acc;
@@ -606,7 +635,7 @@ impl Engine {
                 acc += st.power;
             }
         }
-        reserved
+        self.reserved = reserved;
     }
 }
 
@@ -703,9 +732,15 @@ fn decide(
 ) -> (Command, Reason, Power) {
     let l = &site.loads[i];
     // Rules are evaluated every tick so that held-for timers and windows stay current.
+    // Only the rule that can act is evaluated: the start rule while off, the stop rule
+    // while on. The other one's state is reset whenever the load switches, so skipping
+    // it changes nothing and halves the work of a tick.
     let inhibit = truth(&l.inhibit, &mut st.inhibit, input);
-    let start = truth(&l.start, &mut st.start, input);
-    let stop = truth(&l.stop, &mut st.stop, input);
+    let (start, stop) = if st.command.is_on() {
+        (None, truth(&l.stop, &mut st.stop, input))
+    } else {
+        (truth(&l.start, &mut st.start, input), None)
+    };
     // An expired override hands the load back to its rules as if from off, so a boost
     // does not linger just because the stop rule is not true.
     let mut is_on = st.command.is_on();

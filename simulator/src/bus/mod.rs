@@ -8,6 +8,7 @@
 //! `simulator/README-plant.md`.
 
 pub mod mqtt;
+pub mod probe;
 pub mod sunspec;
 
 use crate::plant::config::GarbageMode;
@@ -206,7 +207,7 @@ mod off {
     pub const C704_RVRT_ENA: usize = 15;
     pub const C704_RVRT_TMS: usize = 16;
     pub const C704_RVRT_REM: usize = 18;
-    pub const C704_SF: usize = 55;
+    pub const C704_SF: usize = 51;
 }
 
 /// Register state of the inverter's control models and their reversion timers.
@@ -233,7 +234,7 @@ impl InverterControls {
         let mut m704 = vec![0u16; usize::from(DER_AC_CONTROLS.len())];
         m704[off::C704_PCT] = 10_000;
         m704[off::C704_RVRT_PCT] = 10_000;
-        // PF_SF, WMaxLim_SF, WSet_SF, WSetPct_SF, VarSet_SF, VarSetPct_SF.
+        // PF_SF, WMaxLimPct_SF, WSet_SF, WSetPct_SF, VarSet_SF, VarSetPct_SF.
         for (k, s) in [-3i16, -2, 0, -2, 0, -2].iter().enumerate() {
             m704[off::C704_SF + k] = sf(*s);
         }
@@ -373,7 +374,7 @@ impl Bus {
         self.inverter_changed();
     }
 
-    fn check_unit(&self, unit: u8) -> Result<(), BusError> {
+    pub(crate) fn check_unit(&self, unit: u8) -> Result<(), BusError> {
         let idx = match unit {
             METER_UNIT if !self.layout.off_grid => 0,
             INVERTER_UNIT => 1,

@@ -3,6 +3,7 @@
 //! its arguments struct and a `run` function.
 
 mod pv_day;
+mod serve;
 mod sun;
 
 use clap::{Parser, Subcommand};
@@ -23,6 +24,9 @@ enum Command {
     /// One clear-sky day of a single PV array: daily energies as JSON, or the time
     /// series as CSV with --csv.
     PvDay(pv_day::Args),
+    /// Serve a plant live over Modbus TCP (units 1 meter, 2 inverter, 3 relays, 4
+    /// sensors) and optionally MQTT, in real time or faster, with injected faults.
+    Serve(serve::Args),
 }
 
 /// Parses the command line and runs the command.
@@ -30,6 +34,7 @@ pub fn run() -> anyhow::Result<()> {
     match Cli::parse().command {
         Command::Sun(args) => sun::run(&args),
         Command::PvDay(args) => pv_day::run(&args),
+        Command::Serve(args) => serve::run(&args),
     }
 }
 

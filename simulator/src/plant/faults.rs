@@ -62,28 +62,7 @@ impl Faults {
     ) -> Result<Faults, PlantError> {
         let mut events = Vec::with_capacity(cfgs.len());
         for cfg in cfgs {
-            let (start, duration, kind) = match cfg {
-                FaultConfig::MeterSilent { start, duration } => (start, duration, Kind::MeterSilent),
-                FaultConfig::DeviceRestart { device, start, duration } => {
-                    (start, duration, Kind::Restart(device_index(*device)))
-                }
-                FaultConfig::RelayStuck { channel: name, closed, start, duration } => {
-                    let channel = channel(name)
-                        .ok_or_else(|| PlantError::UnknownChannel { name: name.clone(), place: "faults".to_owned() })?;
-                    (start, duration, Kind::Stuck { channel, closed: *closed })
-                }
-                FaultConfig::Garbage { device, mode, start, duration } => {
-                    (start, duration, Kind::Garbage(device_index(*device), *mode))
-                }
-            };
-            if !(*duration >= 0.0) {
-                return Err(PlantError::Invalid {
-                    what: "faults".to_owned(),
-                    why: "a fault's duration must be ≥ 0".to_owned(),
-                });
-            }
-            let start_ms = start.resolve(start_ms);
-            events.push(Event { start_ms, end_ms: start_ms + (duration * 1000.0).round() as i64, kind });
+            events.push(event(cfg, start_ms, &channel)?);
         }
         let mut faults = Faults {
             events,
@@ -92,6 +71,18 @@ impl Faults {
         };
         faults.update(start_ms);
         Ok(faults)
+    }
+
+    /// Adds a fault while the plant runs; `When::After` counts from `now_ms`. The
+    /// caller recomputes the active set (see [`Faults::update`]).
+    pub fn add(
+        &mut self,
+        cfg: &FaultConfig,
+        now_ms: i64,
+        channel: impl Fn(&str) -> Option<usize>,
+    ) -> Result<(), PlantError> {
+        self.events.push(event(cfg, now_ms, &channel)?);
+        Ok(())
     }
 
     /// Recomputes the active set at `t_ms`. Returns, per device, whether a restart
@@ -120,4 +111,30 @@ impl Faults {
         self.next_change_ms = next;
         std::array::from_fn(|i| before[i] != self.active.restarting[i])
     }
+}
+
+/// Resolves one configured fault against the instant its `When::After` counts from.
+fn event(cfg: &FaultConfig, from_ms: i64, channel: &impl Fn(&str) -> Option<usize>) -> Result<Event, PlantError> {
+    let (start, duration, kind) = match cfg {
+        FaultConfig::MeterSilent { start, duration } => (start, duration, Kind::MeterSilent),
+        FaultConfig::DeviceRestart { device, start, duration } => {
+            (start, duration, Kind::Restart(device_index(*device)))
+        }
+        FaultConfig::RelayStuck { channel: name, closed, start, duration } => {
+            let channel = channel(name)
+                .ok_or_else(|| PlantError::UnknownChannel { name: name.clone(), place: "faults".to_owned() })?;
+            (start, duration, Kind::Stuck { channel, closed: *closed })
+        }
+        FaultConfig::Garbage { device, mode, start, duration } => {
+            (start, duration, Kind::Garbage(device_index(*device), *mode))
+        }
+    };
+    if !(*duration >= 0.0) {
+        return Err(PlantError::Invalid {
+            what: "faults".to_owned(),
+            why: "a fault's duration must be ≥ 0".to_owned(),
+        });
+    }
+    let start_ms = start.resolve(from_ms);
+    Ok(Event { start_ms, end_ms: start_ms + (duration * 1000.0).round() as i64, kind })
 }

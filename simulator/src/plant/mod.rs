@@ -784,6 +784,14 @@ impl Plant {
         }
     }
 
+    /// Adds a fault while the plant runs (a `When::After` start counts from now). One
+    /// that starts now is in force at once, before the next step.
+    pub fn inject_fault(&mut self, fault: &config::FaultConfig) -> Result<(), PlantError> {
+        self.faults.add(fault, self.now_ms, |n| self.bus.layout().channels.iter().position(|c| c == n))?;
+        self.apply_faults();
+        Ok(())
+    }
+
     /// The current instant, ms since the Unix epoch.
     pub fn now_ms(&self) -> i64 {
         self.now_ms

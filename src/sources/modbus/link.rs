@@ -417,33 +417,19 @@ impl ModbusLink {
             return Ok(None);
         };
         let safe_pct = (ic.safe_limit.0 / ic.rated.0.max(1.0) * 100.0).clamp(0.0, 100.0);
-        let at = |model: u16, point: &str| -> Option<u16> {
-            let (start, _) = map.start(model)?;
-            Some(start + sunspec::locate(model, point).ok()?.offset)
-        };
-        // The control with its scale factor still to be read (sf = 0 as placeholder).
-        let (found, control_sf) = if map.start(704).is_some() {
-            (
-                at(704, "WMaxLimPctEna").map(|enable| LimitControl::DerControls { enable, sf: 0 }),
-                at(704, "WMaxLimPct_SF"),
-            )
-        } else if map.start(123).is_some() {
-            let found = match (at(123, "WMaxLimPct"), at(123, "WMaxLimPct_RvrtTms"), at(123, "WMaxLim_Ena")) {
-                (Some(pct), Some(revert_time), Some(enable)) => {
-                    Some(LimitControl::Immediate { pct, revert_time, enable, sf: 0 })
-                }
-                _ => None,
-            };
-            (found, at(123, "WMaxLimPct_SF"))
-        } else {
-            warn!(device = %self.dev().name, "no SunSpec model 123 or 704: the inverter limit cannot be written");
-            io.emit(SourceEvent::Malformed {
-                device: Some(self.device),
-                origin: "inverter limit".to_owned(),
-                detail: "the device has no SunSpec model 123 or 704 to write a power limit to".to_owned(),
-            })
-            .await?;
-            return Ok(None);
+        let (found, control_sf) = match LimitControl::locate(map) {
+            Some((control, sf_at)) => (Some(control), sf_at),
+            None if map.start(704).is_some() || map.start(123).is_some() => (None, None),
+            None => {
+                warn!(device = %self.dev().name, "no SunSpec model 123 or 704: the inverter limit cannot be written");
+                io.emit(SourceEvent::Malformed {
+                    device: Some(self.device),
+                    origin: "inverter limit".to_owned(),
+                    detail: "the device has no SunSpec model 123 or 704 to write a power limit to".to_owned(),
+                })
+                .await?;
+                return Ok(None);
+            }
         };
         let mut sf = 0i16;
         if let Some(a) = control_sf {
@@ -462,12 +448,7 @@ impl ModbusLink {
                 }
             }
         }
-        let control = found.map(|c| match c {
-            LimitControl::DerControls { enable, .. } => LimitControl::DerControls { enable, sf },
-            LimitControl::Immediate { pct, revert_time, enable, .. } => {
-                LimitControl::Immediate { pct, revert_time, enable, sf }
-            }
-        });
+        let control = found.map(|c| c.with_sf(sf));
         info!(device = %self.dev().name, ?control, "SunSpec power-limit control");
         Ok(control.map(|control| LimitContext { control, safe_pct }))
     }

@@ -1,0 +1,217 @@
+//! `spillway simulate`: the site's rules against its simulated plant for a day, a month
+//! or a year, with a no-diversion baseline on the same weather, reported as text or JSON.
+
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use anyhow::Context as _;
+use chrono::NaiveDate;
+use indicatif::{ProgressBar, ProgressStyle};
+use spillway::config::{self, LoadError};
+use spillway::offline::{self, Controller, RunOptions, report};
+use spillway_sim::weather::{MeasuredConfig, WeatherKind};
+
+/// Arguments shared by `simulate`, `compare` and `sweep`.
+#[derive(Debug, Clone, clap::Args)]
+pub struct RunArgs {
+    /// Number of days to simulate (default: the site's `simulation.days`, else 7).
+    #[arg(long, conflicts_with = "to")]
+    pub days: Option<u32>,
+    /// First day, YYYY-MM-DD (default: the site's `simulation.from`, else today).
+    #[arg(long)]
+    pub from: Option<NaiveDate>,
+    /// Last day (inclusive), YYYY-MM-DD.
+    #[arg(long, requires = "from")]
+    pub to: Option<NaiveDate>,
+    /// Seed of the weather, household and meter noise (default: the site's, else 1).
+    #[arg(long)]
+    pub seed: Option<u64>,
+    /// Weather: clear, mixed, overcast, varied, or a CSV of measured irradiance.
+    #[arg(long)]
+    pub weather: Option<String>,
+    /// Simulation step (1s, 500ms, 10s).
+    #[arg(long, default_value = "1s", value_parser = parse_duration)]
+    pub step: Duration,
+    /// No progress bar.
+    #[arg(long)]
+    pub quiet: bool,
+}
+
+/// Parses `1s`, `500ms`, `2min`.
+pub fn parse_duration(text: &str) -> Result<Duration, String> {
+    let q = spillway::units::parse_quantity(text).map_err(|e| e.to_string())?;
+    if q.dimension != spillway::units::Dimension::Duration || q.value <= 0.0 {
+        return Err(format!("`{text}` is not a positive duration such as 1s or 500ms"));
+    }
+    Ok(Duration::from_secs_f64(q.value))
+}
+
+/// Output format.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, clap::ValueEnum)]
+pub enum Format {
+    /// For a person.
+    Text,
+    /// For a program.
+    Json,
+}
+
+/// A loaded site with what offline runs need.
+pub struct Prepared {
+    pub loaded: config::Loaded,
+    pub site: Arc<spillway::config::model::Site>,
+    pub plant: spillway_sim::plant::PlantConfig,
+    pub from: NaiveDate,
+    pub days: u32,
+    pub seed: u64,
+    pub sky: Option<WeatherKind>,
+    pub weather_label: String,
+}
+
+/// Loads a site and resolves the run's dates, seed and weather. Config errors are
+/// printed; `Ok(None)` means "exit 1".
+pub fn prepare(path: &Path, args: &RunArgs) -> anyhow::Result<Option<Prepared>> {
+    let loaded = match config::load_file(path) {
+        Ok(l) => l,
+        Err(e @ LoadError::Invalid { .. }) => {
+            eprint!("{}", e.render(super::color()));
+            eprintln!("{e}");
+            return Ok(None);
+        }
+        Err(e) => return Err(e.into()),
+    };
+    if !loaded.warnings.is_empty() && !args.quiet {
+        eprint!(
+            "{}",
+            spillway::diag::render(&loaded.source.path, &loaded.source.text, &loaded.warnings, super::color())
+        );
+    }
+    let defaults = offline::simulation_defaults(&loaded)?;
+    let mut plant = offline::plant_section(&loaded)?;
+    let from = args.from.or(defaults.from).unwrap_or_else(|| chrono::Utc::now().date_naive());
+    let days = match (args.to, args.days) {
+        (Some(to), _) => {
+            let d = (to - from).num_days() + 1;
+            anyhow::ensure!(d >= 1, "--to {to} is before --from {from}");
+            d as u32
+        }
+        (None, Some(d)) => d,
+        (None, None) => defaults.days.unwrap_or(7),
+    };
+    anyhow::ensure!(days >= 1, "--days must be at least 1");
+    let seed = args.seed.or(defaults.seed).or(plant.seed).unwrap_or(1);
+    let (sky, weather_label) = match args.weather.as_deref() {
+        None => (None, format!("{:?}", plant.weather.sky).to_lowercase()),
+        Some("clear") => (Some(WeatherKind::Clear), "clear".to_owned()),
+        Some("mixed") => (Some(WeatherKind::Mixed), "mixed".to_owned()),
+        Some("overcast") => (Some(WeatherKind::Overcast), "overcast".to_owned()),
+        Some("varied") => (Some(WeatherKind::Varied), "varied".to_owned()),
+        Some(file) => {
+            let p = PathBuf::from(file);
+            anyhow::ensure!(p.exists(), "--weather {file}: no such file (or use clear, mixed, overcast or varied)");
+            plant.weather.measured = Some(MeasuredConfig { path: p, max_gap: 900.0 });
+            (None, format!("measured ({file})"))
+        }
+    };
+    let site = Arc::new(loaded.site.clone());
+    Ok(Some(Prepared { loaded, site, plant, from, days, seed, sky, weather_label }))
+}
+
+/// A progress bar that appears only once a run has taken more than a second.
+pub struct Progress {
+    bar: std::sync::Mutex<Option<ProgressBar>>,
+    started: Instant,
+    quiet: bool,
+    label: String,
+}
+
+impl Progress {
+    pub fn new(quiet: bool, label: &str) -> Self {
+        Progress { bar: std::sync::Mutex::new(None), started: Instant::now(), quiet, label: label.to_owned() }
+    }
+
+    pub fn update(&self, fraction: f64) {
+        if self.quiet || self.started.elapsed() < Duration::from_secs(1) {
+            return;
+        }
+        let Ok(mut guard) = self.bar.lock() else { return };
+        let bar = guard.get_or_insert_with(|| {
+            let b = ProgressBar::new(1000);
+            if let Ok(style) = ProgressStyle::with_template("{msg} [{bar:40}] {percent:>3}% {elapsed}") {
+                b.set_style(style.progress_chars("=> "));
+            }
+            b.set_message(self.label.clone());
+            b
+        });
+        bar.set_position((fraction.clamp(0.0, 1.0) * 1000.0) as u64);
+    }
+
+    pub fn finish(&self) {
+        if let Ok(mut g) = self.bar.lock()
+            && let Some(b) = g.take()
+        {
+            b.finish_and_clear();
+        }
+    }
+}
+
+/// Runs the rules and the baseline and builds the report.
+pub fn run_pair(
+    p: &Prepared,
+    step: Duration,
+    progress: &Progress,
+    chart_days: Option<(NaiveDate, NaiveDate)>,
+) -> anyhow::Result<(report::Report, offline::RunOutput)> {
+    let halves = |offset: f64| move |f: f64| progress.update(offset + f / 2.0);
+    let first = halves(0.0);
+    let second = halves(0.5);
+    let mut main = RunOptions::day(p.from);
+    main.days = p.days;
+    main.seed = p.seed;
+    main.sky = p.sky;
+    main.step = step;
+    main.trace = chart_days;
+    main.progress = Some(&first);
+    let run = offline::simulate_once(&p.site, p.loaded.tariff.as_ref(), &p.plant, main).context("simulation failed")?;
+    let mut base = RunOptions::day(p.from);
+    base.days = p.days;
+    base.seed = p.seed;
+    base.sky = p.sky;
+    base.step = step;
+    base.controller = Controller::Baseline;
+    base.progress = Some(&second);
+    let baseline = offline::simulate_once(&p.site, p.loaded.tariff.as_ref(), &p.plant, base)
+        .context("baseline simulation failed")?;
+    progress.finish();
+    let to = p.from + chrono::Days::new(u64::from(p.days - 1));
+    let info = report::RunInfo {
+        site: p.site.name.clone(),
+        from: p.from.to_string(),
+        to: to.to_string(),
+        days: p.days,
+        seed: p.seed,
+        weather: p.weather_label.clone(),
+        step_s: step.as_secs_f64(),
+    };
+    let report = report::build(&p.site, p.loaded.tariff.as_ref(), info, &run, &baseline);
+    Ok((report, run))
+}
+
+pub fn run(path: &Path, args: &RunArgs, format: Format, chart: Option<&Path>) -> anyhow::Result<ExitCode> {
+    let Some(p) = prepare(path, args)? else { return Ok(ExitCode::from(1)) };
+    let progress = Progress::new(args.quiet, "simulating");
+    let chart_days = chart.map(|_| (p.from, p.from + chrono::Days::new(u64::from(p.days - 1))));
+    let (report, run) = run_pair(&p, args.step, &progress, chart_days)?;
+    if let Some(file) = chart {
+        offline::chart::write(file, &p.site, p.loaded.tariff.as_ref(), &report, &run)?;
+        if !args.quiet {
+            eprintln!("chart written to {}", file.display());
+        }
+    }
+    match format {
+        Format::Json => println!("{}", report.to_json()),
+        Format::Text => print!("{}", report.to_text()),
+    }
+    Ok(ExitCode::SUCCESS)
+}

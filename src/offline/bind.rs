@@ -1,0 +1,375 @@
+//! Connects a site file to the simulated plant in-process: each point to the value the
+//! plant's device would report at that address, each actuator to the register or coil
+//! it would write — the same addresses the site uses on the wire, so a site file that
+//! works here works against `spillway-sim serve` and on the roof.
+//!
+//! Reads go through [`Probe`]s resolved once at set-up (a year of register encoding would
+//! cost more than the physics); at set-up every point is also decoded the slow way from
+//! the encoded registers and compared with the probe, so a wrong scale or type in the
+//! site file is an error here, not a silent factor of ten. Writes go through the bus
+//! itself, only when a command changes (and periodically for the inverter's limit, as
+//! the live link does), so stuck relays, restarts and revert timers behave as on the wire.
+
+use std::time::Duration;
+
+use spillway_sim::bus::probe::Probe;
+use spillway_sim::bus::{Bus, Table as BusTable};
+use spillway_sim::plant::Plant;
+
+use super::OfflineError;
+use crate::actuators::modbus::LimitControl;
+use crate::actuators::{Level, load_levels, modbus::register_words};
+use crate::config::model::{Link, PointId, PointRead, Scale, Site, Table, Write};
+use crate::engine::{Command, Decisions, Snapshot};
+use crate::sources::modbus::codec::{self, Sentinel};
+use crate::sources::modbus::sunspec::{self, ModelMap};
+use crate::units::Timestamp;
+
+/// One point bound to the plant.
+#[derive(Debug, Clone)]
+struct BoundPoint {
+    point: PointId,
+    probe: Probe,
+    /// Unit to ask whether the device answers (MQTT points: `None`, always answer).
+    unit: Option<u8>,
+    /// The grid meter reports its own measurement time (period and delay).
+    meter_time: bool,
+    poll_ms: i64,
+    next_ms: i64,
+}
+
+/// The inverter limit bound to the plant.
+#[derive(Debug, Clone)]
+enum BoundLimit {
+    /// SunSpec 123/704 on this unit.
+    SunSpec { unit: u8, control: LimitControl },
+    /// A plain register (percent or watts).
+    Register,
+}
+
+/// The site wired to the plant.
+#[derive(Debug)]
+pub struct Binding {
+    points: Vec<BoundPoint>,
+    last: Vec<Option<Command>>,
+    limit: Option<BoundLimit>,
+    last_limit: Option<Option<f64>>,
+    limit_written_ms: i64,
+    /// Writes the bus refused (a relay module restarting, a stuck write), counted.
+    pub refused_writes: u64,
+}
+
+fn bus_table(t: Table) -> BusTable {
+    match t {
+        Table::Coil => BusTable::Coils,
+        Table::DiscreteInput => BusTable::DiscreteInputs,
+        Table::InputRegister => BusTable::InputRegisters,
+        Table::HoldingRegister => BusTable::HoldingRegisters,
+    }
+}
+
+fn unit_of(site: &Site, device: crate::config::model::DeviceId) -> Option<u8> {
+    site.devices.get(device.0).and_then(|d| d.link.modbus_unit())
+}
+
+/// Walks a unit's SunSpec model chain on the bus.
+fn discover(bus: &Bus, unit: u8) -> Option<ModelMap> {
+    let base = sunspec::BASES
+        .into_iter()
+        .find(|&b| bus.read_registers(unit, BusTable::HoldingRegisters, b, 2).is_ok_and(|w| w == sunspec::MARKER))?;
+    let mut models = Vec::new();
+    let mut addr = base.checked_add(2);
+    while let Some(a) = addr {
+        if models.len() >= sunspec::MAX_MODELS {
+            break;
+        }
+        let head = bus
+            .read_registers(unit, BusTable::HoldingRegisters, a, 2)
+            .or_else(|_| bus.read_registers(unit, BusTable::HoldingRegisters, a, 1))
+            .ok()?;
+        let id = head.first().copied().unwrap_or(sunspec::END_ID);
+        if id == sunspec::END_ID {
+            break;
+        }
+        let len = head.get(1).copied().unwrap_or(0);
+        models.push((id, a, len));
+        addr = a.checked_add(2).and_then(|x| x.checked_add(len));
+    }
+    Some(ModelMap { base, models })
+}
+
+impl Binding {
+    /// Binds every point and actuator of `site` to `plant`, or says which one cannot be.
+    pub fn new(site: &Site, plant: &Plant) -> Result<Binding, OfflineError> {
+        let bus = plant.bus();
+        let mut maps: Vec<(u8, ModelMap)> = Vec::new();
+        let mut map_of = |unit: u8| -> Option<ModelMap> {
+            if let Some((_, m)) = maps.iter().find(|(u, _)| *u == unit) {
+                return Some(m.clone());
+            }
+            let m = discover(bus, unit)?;
+            maps.push((unit, m.clone()));
+            Some(m)
+        };
+        let start = plant.now_ms();
+        let mut points = Vec::new();
+        for (i, p) in site.points.iter().enumerate() {
+            let device = &site.devices[p.device.0];
+            let fail = |why: String| OfflineError::Binding { point: p.name.clone(), why };
+            let (probe, unit, check) = match (&p.read, &device.link) {
+                (PointRead::Modbus(m), link) => {
+                    let unit =
+                        link.modbus_unit().ok_or_else(|| fail("a Modbus point on a non-Modbus device".into()))?;
+                    let probe = bus.probe(unit, bus_table(m.table), m.address).ok_or_else(|| {
+                        fail(format!(
+                            "the simulated plant has nothing at unit {unit} {} {} (see the register map in the README)",
+                            bus_table(m.table),
+                            m.address
+                        ))
+                    })?;
+                    (probe, Some(unit), Some((m.table, m.address, m.value_type, m.word_order, m.scale, Sentinel::None)))
+                }
+                (PointRead::SunSpec(s), link) => {
+                    let unit =
+                        link.modbus_unit().ok_or_else(|| fail("a SunSpec point on a non-Modbus device".into()))?;
+                    let map = map_of(unit)
+                        .ok_or_else(|| fail(format!("unit {unit} has no SunSpec map in the simulated plant")))?;
+                    let r = map.resolve(s.model, &s.point).map_err(fail)?;
+                    let probe = bus.probe(unit, BusTable::HoldingRegisters, r.address).ok_or_else(|| {
+                        fail(format!("the simulated plant does not report SunSpec {}.{}", s.model, s.point))
+                    })?;
+                    let scale = r
+                        .scale_factor
+                        .map_or(Scale::Factor(1.0), |a| Scale::Register { table: Table::HoldingRegister, address: a });
+                    let check = (
+                        Table::HoldingRegister,
+                        r.address,
+                        r.value_type,
+                        crate::config::model::WordOrder::HighFirst,
+                        scale,
+                        r.sentinel,
+                    );
+                    (probe, Some(unit), Some(check))
+                }
+                (PointRead::Mqtt(m), Link::Mqtt) => {
+                    let probe = bus.probe_topic(&m.topic).ok_or_else(|| {
+                        fail(format!(
+                            "the simulated plant publishes nothing on \"{}\" (its topics start with sim/)",
+                            m.topic
+                        ))
+                    })?;
+                    (probe, None, None)
+                }
+                (PointRead::Mqtt(_), _) => return Err(fail("an MQTT point on a Modbus device".into())),
+            };
+            // The slow way once: decode the encoded registers with the site's own types and
+            // scales, and compare with what the probe reads directly.
+            if let (Some(unit), Some((table, address, ty, order, scale, sentinel))) = (unit, check) {
+                let decoded = decode_once(bus, unit, table, address, ty, order, scale, sentinel);
+                let direct = probe.value(bus.readings(), bus.controls());
+                if let (Some(d), Some(v)) = (decoded.map(|d| d * p.unit_factor), direct)
+                    && !agrees(d, v)
+                {
+                    return Err(fail(format!(
+                        "decodes to {d} with the configured type and scale, but the plant reports {v}: check `type`, `scale` and `unit`"
+                    )));
+                }
+            }
+            let poll_ms = i64::try_from(p.poll.as_millis()).unwrap_or(1000).max(1);
+            points.push(BoundPoint {
+                point: PointId(i),
+                probe,
+                unit,
+                meter_time: matches!(probe, Probe::GridPower | Probe::GridImportWh | Probe::GridExportWh),
+                poll_ms,
+                next_ms: start,
+            });
+        }
+        let limit = match &site.inverter {
+            None => None,
+            Some(ic) => match &ic.limit {
+                Write::SunSpecLimit { device } => {
+                    let unit = unit_of(site, *device).ok_or_else(|| OfflineError::Binding {
+                        point: "inverter limit".into(),
+                        why: "not a Modbus device".into(),
+                    })?;
+                    let map = map_of(unit).ok_or_else(|| OfflineError::Binding {
+                        point: "inverter limit".into(),
+                        why: format!("unit {unit} has no SunSpec map in the simulated plant"),
+                    })?;
+                    let (control, sf_at) = LimitControl::locate(&map).ok_or_else(|| OfflineError::Binding {
+                        point: "inverter limit".into(),
+                        why: "no SunSpec model 123 or 704 on the simulated inverter".into(),
+                    })?;
+                    let sf = sf_at
+                        .and_then(|a| bus.read_registers(unit, BusTable::HoldingRegisters, a, 1).ok())
+                        .and_then(|w| w.first().map(|v| *v as i16))
+                        .filter(|v| (-10..=10).contains(v))
+                        .unwrap_or(0);
+                    Some(BoundLimit::SunSpec { unit, control: control.with_sf(sf) })
+                }
+                Write::Register { device, .. } => {
+                    let _ = device;
+                    Some(BoundLimit::Register)
+                }
+                other => {
+                    return Err(OfflineError::Binding {
+                        point: "inverter limit".into(),
+                        why: format!("{other:?} cannot be simulated in-process"),
+                    });
+                }
+            },
+        };
+        Ok(Binding {
+            points,
+            last: vec![None; site.loads.len()],
+            limit,
+            last_limit: None,
+            limit_written_ms: i64::MIN / 2,
+            refused_writes: 0,
+        })
+    }
+
+    /// Reads the points due at `now` into the snapshot (latest value wins).
+    #[inline]
+    pub fn read(&mut self, bus: &Bus, now_ms: i64, snapshot: &mut Snapshot) {
+        for b in &mut self.points {
+            if now_ms < b.next_ms {
+                continue;
+            }
+            b.next_ms += b.poll_ms * ((now_ms - b.next_ms) / b.poll_ms + 1);
+            if let Some(unit) = b.unit
+                && bus.answers(unit).is_err()
+            {
+                continue;
+            }
+            let readings = bus.readings();
+            let Some(value) = b.probe.value(readings, bus.controls()) else { continue };
+            let at = match (b.meter_time, readings.grid) {
+                (true, Some(g)) => g.updated_ms,
+                _ => now_ms,
+            };
+            snapshot.set(b.point, value, Timestamp(at));
+        }
+    }
+
+    /// Writes what changed in `decisions` to the plant.
+    pub fn write(&mut self, site: &Site, decisions: &Decisions, plant: &mut Plant) {
+        let now = plant.now_ms();
+        for (i, (load, d)) in site.loads.iter().zip(&decisions.loads).enumerate() {
+            if self.last[i] == Some(d.command) {
+                continue;
+            }
+            self.last[i] = Some(d.command);
+            for (target, level) in load_levels(load, d.command) {
+                if !write_target(site, plant.bus_mut(), target, level) {
+                    self.refused_writes += 1;
+                }
+            }
+        }
+        let (Some(limit), Some(ic)) = (&self.limit, &site.inverter) else { return };
+        let wanted = decisions.inverter_limit.map(|p| p.0);
+        let refresh_ms = i64::try_from(ic.refresh.as_millis()).unwrap_or(10_000);
+        if self.last_limit == Some(wanted) && now - self.limit_written_ms < refresh_ms {
+            return;
+        }
+        self.last_limit = Some(wanted);
+        self.limit_written_ms = now;
+        let rated = ic.rated.0.max(1.0);
+        let pct = wanted.map_or(100.0, |w| (w / rated * 100.0).clamp(0.0, 100.0));
+        let ok = match limit {
+            BoundLimit::SunSpec { unit, control } => {
+                let safe_pct = (ic.safe_limit.0 / rated * 100.0).clamp(0.0, 100.0);
+                control.ops(pct, safe_pct, ic.refresh).iter().all(|op| apply_op(plant.bus_mut(), *unit, op))
+            }
+            BoundLimit::Register => {
+                let level = match ic.limit_unit {
+                    crate::config::model::LimitUnit::Percent => Level::Value(pct),
+                    crate::config::model::LimitUnit::Watts => Level::Value(wanted.unwrap_or(rated)),
+                };
+                write_target(site, plant.bus_mut(), &ic.limit, level)
+            }
+        };
+        if !ok {
+            self.refused_writes += 1;
+        }
+    }
+}
+
+/// Whether a decoded register value and a direct reading agree to within register
+/// resolution (a tenth of a unit, or 1 % for large values).
+fn agrees(decoded: f64, direct: f64) -> bool {
+    let tolerance = (direct.abs() * 0.01).max(0.11);
+    (decoded - direct).abs() <= tolerance
+}
+
+#[allow(clippy::too_many_arguments)]
+fn decode_once(
+    bus: &Bus,
+    unit: u8,
+    table: Table,
+    address: u16,
+    ty: crate::config::model::ValueType,
+    order: crate::config::model::WordOrder,
+    scale: Scale,
+    sentinel: Sentinel,
+) -> Option<f64> {
+    let t = bus_table(table);
+    let raw = if matches!(table, Table::Coil | Table::DiscreteInput) {
+        let bits = bus.read_bits(unit, t, address, 1).ok()?;
+        if bits.first().copied()? { 1.0 } else { 0.0 }
+    } else {
+        let words = bus.read_registers(unit, t, address, ty.registers()).ok()?;
+        codec::decode(&words, ty, order, sentinel)?
+    };
+    let factor = match scale {
+        Scale::Factor(f) => f,
+        Scale::Register { table, address } => {
+            let sf = bus.read_registers(unit, bus_table(table), address, 1).ok()?.first().copied()? as i16;
+            return codec::apply_sunssf(raw, sf);
+        }
+    };
+    Some(raw * factor)
+}
+
+fn apply_op(bus: &mut Bus, unit: u8, op: &crate::actuators::WriteOp) -> bool {
+    use crate::actuators::WriteOp;
+    match op {
+        WriteOp::Coil { address, value } => bus.write_coil(unit, *address, *value).is_ok(),
+        WriteOp::Coils { address, values } => bus.write_coils(unit, *address, values).is_ok(),
+        WriteOp::Register { address, value } => bus.write_register(unit, *address, *value).is_ok(),
+        WriteOp::Registers { address, words } => bus.write_registers(unit, *address, words).is_ok(),
+    }
+}
+
+fn write_target(site: &Site, bus: &mut Bus, target: &Write, level: Level) -> bool {
+    match target {
+        Write::Coil { device, address } => {
+            let Some(unit) = unit_of(site, *device) else { return false };
+            bus.write_coil(unit, *address, level.number() > 0.5).is_ok()
+        }
+        Write::Register { device, address, value_type, word_order, scale } => {
+            let Some(unit) = unit_of(site, *device) else { return false };
+            let words = register_words(level, *value_type, *word_order, *scale);
+            if words.len() == 1 {
+                bus.write_register(unit, *address, words[0]).is_ok()
+            } else {
+                bus.write_registers(unit, *address, &words).is_ok()
+            }
+        }
+        Write::Mqtt { topic, on, off, value, .. } => {
+            let payload = match level {
+                Level::Switch(true) => on.clone(),
+                Level::Switch(false) => off.clone(),
+                Level::Value(v) => value.replace("{value}", &crate::units::trim_number(v)),
+            };
+            bus.mqtt_command(topic, &payload).is_ok()
+        }
+        Write::SunSpecLimit { .. } => false,
+    }
+}
+
+/// A poll period's worth of simulated time, for callers pacing their loop.
+pub fn poll_floor(site: &Site) -> Duration {
+    site.points.iter().map(|p| p.poll).min().unwrap_or(site.tick)
+}

@@ -1,0 +1,131 @@
+//! Offline runs: the engine against the simulated plant, in-process, in simulated time,
+//! as fast as the CPU allows — a day, a month or a year in seconds, with the same
+//! engine and the same site file as the live daemon.
+//!
+//! `simulate` runs the site's rules and, on the same weather and seed, a baseline of the
+//! same house without diversion, and reports energies, export, guard response times,
+//! per-load figures, obligations, monthly import against tariff blocks and costs.
+
+pub mod baseline;
+pub mod bind;
+pub mod chart;
+pub mod report;
+pub mod run;
+
+use std::path::PathBuf;
+
+pub use report::Report;
+pub use run::{Controller, RunOptions, RunOutput, Trace, simulate_once};
+
+/// Why an offline run could not be done.
+#[derive(Debug, thiserror::Error)]
+pub enum OfflineError {
+    /// The site file has no `plant:` section.
+    #[error(
+        "{path} has no `plant:` section: offline runs need a simulated plant (see the README, \"The plant section\")"
+    )]
+    NoPlant {
+        /// The site file.
+        path: String,
+    },
+    /// The `plant:` section does not parse.
+    #[error("{path}: the plant section is invalid: {message}")]
+    PlantSection {
+        /// The site file.
+        path: String,
+        /// The YAML/serde message with its line and column.
+        message: String,
+    },
+    /// The plant could not be built.
+    #[error("the simulated plant cannot be built: {0}")]
+    Plant(#[from] spillway_sim::site::SiteError),
+    /// A point or actuator of the site has no counterpart in the plant.
+    #[error("{point}: {why}")]
+    Binding {
+        /// The point or actuator.
+        point: String,
+        /// Why.
+        why: String,
+    },
+    /// The dates or options make no sense.
+    #[error("{0}")]
+    Options(String),
+    /// A recorded series could not be used.
+    #[error("{path}: {message}")]
+    Recorded {
+        /// The CSV file.
+        path: PathBuf,
+        /// What is wrong.
+        message: String,
+    },
+    /// An output file could not be written.
+    #[error("cannot write {path}: {source}")]
+    Write {
+        /// The file.
+        path: PathBuf,
+        /// The OS error.
+        #[source]
+        source: std::io::Error,
+    },
+    /// The chart could not be drawn.
+    #[error("cannot draw the chart: {0}")]
+    Chart(String),
+}
+
+/// Reads the `plant:` section of a loaded site file.
+pub fn plant_section(loaded: &crate::config::Loaded) -> Result<spillway_sim::plant::PlantConfig, OfflineError> {
+    let path = loaded.source.path.clone();
+    match spillway_sim::site::from_site_yaml(&loaded.source.text) {
+        Ok(Some(p)) => Ok(p),
+        Ok(None) => Err(OfflineError::NoPlant { path }),
+        Err(e) => {
+            Err(OfflineError::PlantSection { path, message: e.to_string().lines().next().unwrap_or("").to_owned() })
+        }
+    }
+}
+
+/// Defaults for offline runs from the site file's optional `simulation:` section, so an
+/// example can say which week shows it best (`from: 2026-06-15`, `days: 7`, `seed: 3`).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct SimulationDefaults {
+    /// First local day.
+    pub from: Option<chrono::NaiveDate>,
+    /// Number of days.
+    pub days: Option<u32>,
+    /// Seed.
+    pub seed: Option<u64>,
+}
+
+/// Reads the `simulation:` section (absent → no defaults).
+pub fn simulation_defaults(loaded: &crate::config::Loaded) -> Result<SimulationDefaults, OfflineError> {
+    use crate::config::yaml::{Diagnostics, MapReader, Value};
+    let mut out = SimulationDefaults { from: None, days: None, seed: None };
+    let Value::Map(top) = &loaded.tree.value else { return Ok(out) };
+    let Some((_, node)) = top.iter().find(|(k, _)| k.name == "simulation") else { return Ok(out) };
+    let mut diags = Diagnostics::default();
+    if let Some(mut m) = MapReader::new(node, "the `simulation` section", &mut diags) {
+        if let Some(n) = m.get("from") {
+            match n.scalar_text().and_then(|t| chrono::NaiveDate::parse_from_str(&t, "%Y-%m-%d").ok()) {
+                Some(d) => out.from = Some(d),
+                None => diags.error(
+                    "C0501",
+                    "`from` must be a date such as 2026-06-15",
+                    n.span.clone(),
+                    "expected YYYY-MM-DD",
+                ),
+            }
+        }
+        if let Some(n) = m.get("days") {
+            out.days = crate::config::values::integer(n, 1, 3660, "`days`", &mut diags).map(|d| d as u32);
+        }
+        if let Some(n) = m.get("seed") {
+            out.seed = crate::config::values::integer(n, 0, i64::MAX, "`seed`", &mut diags).map(|s| s as u64);
+        }
+        m.finish(&mut diags);
+    }
+    if diags.has_errors() {
+        let text = crate::diag::render_short(&loaded.source.path, &loaded.source.text, &diags.list);
+        return Err(OfflineError::Options(text.trim_end().to_owned()));
+    }
+    Ok(out)
+}

@@ -1,0 +1,393 @@
+//! The report of an offline run, as JSON (every key documented in the README) and as
+//! text. Numbers are rounded to a fixed number of decimals so that the same seed gives
+//! the same report byte for byte, and so a person is not shown noise.
+
+use std::fmt::Write as _;
+
+use serde::Serialize;
+
+use super::run::RunOutput;
+use crate::config::model::Site;
+use crate::config::tariff::Tariff;
+
+fn r1(v: f64) -> f64 {
+    (v * 10.0).round() / 10.0
+}
+fn r2(v: f64) -> f64 {
+    (v * 100.0).round() / 100.0
+}
+fn r3(v: f64) -> f64 {
+    (v * 1000.0).round() / 1000.0
+}
+
+/// What was run.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct RunInfo {
+    /// Site name.
+    pub site: String,
+    /// First local day (YYYY-MM-DD).
+    pub from: String,
+    /// Last local day.
+    pub to: String,
+    /// Number of days.
+    pub days: u32,
+    /// Seed.
+    pub seed: u64,
+    /// Weather used (`clear`, `mixed`, `overcast`, `varied`, the plant's, or a file).
+    pub weather: String,
+    /// Simulation step, s.
+    pub step_s: f64,
+}
+
+/// Energy totals, kWh.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct EnergyReport {
+    /// PV AC energy delivered.
+    pub pv_kwh: f64,
+    /// Consumption: household plus managed loads (battery charging not included).
+    pub load_kwh: f64,
+    /// Household base load alone.
+    pub house_kwh: f64,
+    /// Imported from the grid.
+    pub import_kwh: f64,
+    /// Exported to the grid.
+    pub export_kwh: f64,
+    /// Into managed loads (including a managed battery's charging).
+    pub diverted_kwh: f64,
+    /// Into battery storage.
+    pub battery_charge_kwh: f64,
+    /// Out of battery storage.
+    pub battery_discharge_kwh: f64,
+    /// Battery conversion losses.
+    pub losses_kwh: f64,
+    /// PV held back by the inverter's limit (not generated).
+    pub curtailed_kwh: f64,
+    /// Relative error of PV + import = house + loads + battery in − out + export + losses.
+    pub balance_error_pct: f64,
+}
+
+/// Export figures.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct ExportReport {
+    /// The site's export limit, W (`null` when export is allowed).
+    pub limit_w: Option<f64>,
+    /// Highest export, W.
+    pub peak_w: f64,
+    /// Seconds with export above the limit plus the guard's tolerance.
+    pub seconds_over_limit: f64,
+}
+
+/// Percentiles of a set of durations, ms.
+#[derive(Debug, Clone, Serialize, PartialEq, Default)]
+pub struct Percentiles {
+    /// Median.
+    pub p50: f64,
+    /// 95th percentile.
+    pub p95: f64,
+    /// Largest.
+    pub max: f64,
+}
+
+/// Export guard figures.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct GuardReport {
+    /// Number of export episodes above the limit plus tolerance.
+    pub episodes: usize,
+    /// Time from export appearing to its being cleared, ms.
+    pub response_ms: Percentiles,
+}
+
+/// One obligation's record.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct ObligationReport {
+    /// The obligation, as a person reads it.
+    pub name: String,
+    /// Days it was met.
+    pub days_met: u32,
+    /// Days it was missed.
+    pub days_missed: u32,
+}
+
+/// One load's figures.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct LoadReport {
+    /// Load name.
+    pub name: String,
+    /// Energy drawn, kWh.
+    pub energy_kwh: f64,
+    /// Part drawn from the grid to meet an obligation, kWh.
+    pub grid_topup_kwh: f64,
+    /// Hours on.
+    pub runtime_h: f64,
+    /// On/off and stage changes.
+    pub switchings: u32,
+    /// Most starts in any rolling hour.
+    pub max_starts_per_hour: u32,
+    /// Its obligations.
+    pub obligations: Vec<ObligationReport>,
+}
+
+/// One calendar month.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct MonthReport {
+    /// `YYYY-MM`.
+    pub month: String,
+    /// Imported, kWh.
+    pub import_kwh: f64,
+    /// Exported, kWh.
+    pub export_kwh: f64,
+    /// Diverted into managed loads, kWh.
+    pub diverted_kwh: f64,
+    /// PV, kWh.
+    pub pv_kwh: f64,
+    /// The tariff block the month's import lands in (`flat` without blocks).
+    pub tariff_block: String,
+    /// Cost of the month.
+    pub cost: f64,
+    /// Import of the baseline in that month, kWh.
+    pub baseline_import_kwh: f64,
+}
+
+/// Costs under the site's tariff.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct CostReport {
+    /// Currency as given in the tariff.
+    pub currency: String,
+    /// Cost of the run (import − export credit + standing charge).
+    pub total: f64,
+    /// Cost of the no-diversion baseline.
+    pub baseline: f64,
+    /// Baseline − run.
+    pub savings: f64,
+}
+
+/// The no-diversion baseline's energies.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct BaselineReport {
+    /// Imported, kWh.
+    pub import_kwh: f64,
+    /// Exported, kWh.
+    pub export_kwh: f64,
+    /// Highest export, W.
+    pub export_peak_w: f64,
+}
+
+/// The whole report.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct Report {
+    /// What was run.
+    pub run: RunInfo,
+    /// Energy totals.
+    pub energy: EnergyReport,
+    /// Share of PV used on site (1 − export / PV), %.
+    pub self_consumption_pct: f64,
+    /// Export.
+    pub export: ExportReport,
+    /// Export guard.
+    pub guard: GuardReport,
+    /// Managed loads in priority order.
+    pub loads: Vec<LoadReport>,
+    /// Obligations of all loads, flattened (`load: obligation`).
+    pub obligations: Vec<ObligationReport>,
+    /// Calendar months.
+    pub months: Vec<MonthReport>,
+    /// Costs (`null` without a tariff).
+    pub cost: Option<CostReport>,
+    /// The baseline.
+    pub baseline: BaselineReport,
+    /// Writes the plant refused during the run (a restarting device).
+    pub refused_writes: u64,
+}
+
+fn percentiles(values: &[f64]) -> Percentiles {
+    if values.is_empty() {
+        return Percentiles::default();
+    }
+    let mut v = values.to_vec();
+    v.sort_by(f64::total_cmp);
+    let at = |q: f64| v[((v.len() - 1) as f64 * q).round() as usize];
+    Percentiles { p50: r1(at(0.5)), p95: r1(at(0.95)), max: r1(v[v.len() - 1]) }
+}
+
+/// Builds the report of a run and its baseline.
+pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutput, baseline: &RunOutput) -> Report {
+    let f = &run.flows;
+    let kwh = |wh: f64| r3(wh / 1000.0);
+    let loads_wh: f64 = f.loads.iter().map(|l| l.wh).sum();
+    let sources = f.pv.wh + f.grid_import.wh + f.battery_discharge.wh;
+    let sinks = f.house.wh + loads_wh + f.battery_charge.wh + f.grid_export.wh + f.losses.wh;
+    let balance_error_pct = if sources > 0.0 { r3((sources - sinks) / sources * 100.0) } else { 0.0 };
+    let energy = EnergyReport {
+        pv_kwh: kwh(f.pv.wh),
+        load_kwh: kwh(f.house.wh + loads_wh),
+        house_kwh: kwh(f.house.wh),
+        import_kwh: kwh(f.grid_import.wh),
+        export_kwh: kwh(f.grid_export.wh),
+        diverted_kwh: kwh(run.diverted_wh),
+        battery_charge_kwh: kwh(f.battery_charge.wh),
+        battery_discharge_kwh: kwh(f.battery_discharge.wh),
+        losses_kwh: kwh(f.losses.wh),
+        curtailed_kwh: kwh(f.pv_curtailed.wh),
+        balance_error_pct,
+    };
+    let self_consumption_pct = if f.pv.wh > 0.0 { r1((1.0 - f.grid_export.wh / f.pv.wh) * 100.0) } else { 0.0 };
+    let mut all_obligations = Vec::new();
+    let loads = site
+        .loads
+        .iter()
+        .zip(&run.loads)
+        .map(|(l, fig)| {
+            let obligations: Vec<ObligationReport> = l
+                .obligations
+                .iter()
+                .zip(&fig.obligations)
+                .map(|(o, (met, missed))| ObligationReport { name: o.describe(), days_met: *met, days_missed: *missed })
+                .collect();
+            for o in &obligations {
+                all_obligations.push(ObligationReport { name: format!("{}: {}", l.name, o.name), ..o.clone() });
+            }
+            LoadReport {
+                name: l.name.clone(),
+                energy_kwh: kwh(fig.energy_wh),
+                grid_topup_kwh: kwh(fig.grid_topup_wh),
+                runtime_h: r2(fig.runtime_s / 3600.0),
+                switchings: fig.switchings,
+                max_starts_per_hour: fig.max_starts_per_hour,
+                obligations,
+            }
+        })
+        .collect();
+    let months = run
+        .months
+        .iter()
+        .map(|m| {
+            let baseline_import =
+                baseline.months.iter().find(|b| (b.year, b.month) == (m.year, m.month)).map_or(0.0, |b| b.import_wh);
+            MonthReport {
+                month: format!("{:04}-{:02}", m.year, m.month),
+                import_kwh: kwh(m.import_wh),
+                export_kwh: kwh(m.export_wh),
+                diverted_kwh: kwh(m.diverted_wh),
+                pv_kwh: kwh(m.pv_wh),
+                tariff_block: tariff
+                    .map_or_else(|| "flat".to_owned(), |t| t.block_label(t.block_index(m.import_wh / 1000.0))),
+                cost: r2(m.cost),
+                baseline_import_kwh: kwh(baseline_import),
+            }
+        })
+        .collect();
+    let cost = tariff.map(|t| CostReport {
+        currency: t.currency.clone(),
+        total: r2(run.cost),
+        baseline: r2(baseline.cost),
+        savings: r2(baseline.cost - run.cost),
+    });
+    Report {
+        run: info,
+        energy,
+        self_consumption_pct,
+        export: ExportReport {
+            limit_w: site.export_limit().map(|l| l.0),
+            peak_w: r1(run.export_peak_w),
+            seconds_over_limit: r1(run.seconds_over_limit),
+        },
+        guard: GuardReport {
+            episodes: run.export_episodes_ms.len(),
+            response_ms: percentiles(&run.export_episodes_ms),
+        },
+        loads,
+        obligations: all_obligations,
+        months,
+        cost,
+        baseline: BaselineReport {
+            import_kwh: kwh(baseline.flows.grid_import.wh),
+            export_kwh: kwh(baseline.flows.grid_export.wh),
+            export_peak_w: r1(baseline.export_peak_w),
+        },
+        refused_writes: run.refused_writes,
+    }
+}
+
+impl Report {
+    /// The report as pretty JSON (stable key order, rounded numbers).
+    pub fn to_json(&self) -> String {
+        serde_json::to_string_pretty(self).unwrap_or_else(|e| format!("{{\"error\": \"{e}\"}}"))
+    }
+
+    /// The report as text for a person.
+    pub fn to_text(&self) -> String {
+        let mut o = String::new();
+        let r = &self.run;
+        let _ = writeln!(
+            o,
+            "{} — {} to {} ({} day(s)), weather {}, seed {}, step {} s",
+            r.site, r.from, r.to, r.days, r.weather, r.seed, r.step_s
+        );
+        let e = &self.energy;
+        let _ = writeln!(o, "\nenergy (kWh)");
+        let _ = writeln!(
+            o,
+            "  PV {:>10.1}   import {:>8.1}   export {:>8.1}   self-consumption {:.1} %",
+            e.pv_kwh, e.import_kwh, e.export_kwh, self.self_consumption_pct
+        );
+        let _ = writeln!(
+            o,
+            "  house {:>7.1}   diverted {:>6.1}   battery in/out {:.1}/{:.1}   curtailed {:.1}",
+            e.house_kwh, e.diverted_kwh, e.battery_charge_kwh, e.battery_discharge_kwh, e.curtailed_kwh
+        );
+        let x = &self.export;
+        let limit = x.limit_w.map_or("allowed".to_owned(), |l| format!("limit {l} W"));
+        let _ = writeln!(
+            o,
+            "\nexport ({limit}): peak {:.0} W, {:.0} s over the limit + tolerance",
+            x.peak_w, x.seconds_over_limit
+        );
+        let g = &self.guard;
+        let _ = writeln!(
+            o,
+            "guard: {} episode(s), cleared in p50 {:.0} ms, p95 {:.0} ms, max {:.0} ms",
+            g.episodes, g.response_ms.p50, g.response_ms.p95, g.response_ms.max
+        );
+        let _ = writeln!(o, "\nloads                 kWh   from grid   hours   switchings   max starts/h");
+        for l in &self.loads {
+            let _ = writeln!(
+                o,
+                "  {:<16} {:>8.1} {:>11.1} {:>7.1} {:>12} {:>14}",
+                l.name, l.energy_kwh, l.grid_topup_kwh, l.runtime_h, l.switchings, l.max_starts_per_hour
+            );
+        }
+        if !self.obligations.is_empty() {
+            let _ = writeln!(o, "\nobligations                                   met   missed");
+            for ob in &self.obligations {
+                let _ = writeln!(o, "  {:<42} {:>5} {:>8}", ob.name, ob.days_met, ob.days_missed);
+            }
+        }
+        if self.months.len() > 1 || self.cost.is_some() {
+            let _ = writeln!(o, "\nmonth      import kWh   baseline   export   diverted   block                 cost");
+            for m in &self.months {
+                let _ = writeln!(
+                    o,
+                    "  {}  {:>10.1} {:>10.1} {:>8.1} {:>10.1}   {:<20} {:>7.2}",
+                    m.month, m.import_kwh, m.baseline_import_kwh, m.export_kwh, m.diverted_kwh, m.tariff_block, m.cost
+                );
+            }
+        }
+        if let Some(c) = &self.cost {
+            let _ = writeln!(
+                o,
+                "\ncost {}{:.2} against {}{:.2} without diversion: saves {}{:.2}",
+                c.currency, c.total, c.currency, c.baseline, c.currency, c.savings
+            );
+        }
+        let b = &self.baseline;
+        let _ = writeln!(
+            o,
+            "baseline (no diversion): import {:.1} kWh, export {:.1} kWh, export peak {:.0} W",
+            b.import_kwh, b.export_kwh, b.export_peak_w
+        );
+        if self.refused_writes > 0 {
+            let _ = writeln!(o, "note: the plant refused {} write(s) (a device restarting)", self.refused_writes);
+        }
+        o
+    }
+}
