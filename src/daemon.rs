@@ -19,6 +19,7 @@
 pub mod banner;
 pub mod commission;
 mod control;
+pub mod demo;
 pub mod state_file;
 
 use std::net::SocketAddr;

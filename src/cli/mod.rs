@@ -2,6 +2,7 @@
 //! Nothing here decides anything; each verb is a thin wrapper over a library call.
 
 mod check;
+mod demo;
 mod logging;
 mod read;
 mod run;
@@ -53,6 +54,8 @@ pub enum Verb {
     },
     /// Run the controller: read the devices, decide, switch, until SIGINT or SIGTERM.
     Run(run::RunArgs),
+    /// Watch the controller work: a built-in site against the plant simulator on loopback.
+    Demo(demo::DemoArgs),
     /// Read every point once and print raw registers and decoded values (commissioning).
     Read(read::ReadArgs),
     /// Switch one load on and off and measure the step at the grid meter (commissioning).
@@ -79,6 +82,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Verb::Check { site, quiet } => check::run(&site, quiet),
         Verb::Simulate { site, run, report, chart } => simulate::run(&site, &run, report, chart.as_deref()),
         Verb::Run(args) => run::run(args, cli.log_format),
+        Verb::Demo(args) => demo::run(args, cli.log_format),
         Verb::Read(args) => read::run(args, cli.log_format),
         Verb::StepTest(args) => step_test::run(args, cli.log_format),
     }

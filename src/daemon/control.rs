@@ -388,7 +388,11 @@ fn log_limit(last: &mut (Option<Power>, LimitReason), d: &Decisions) -> Option<S
             grid_w = d.grid.map(|g| g.0.round()),
             "inverter limit changed"
         );
-        Some(format!("inverter limit {} → {} ({})", fmt(before.0), fmt(now.0), limit_word(now.1)))
+        Some(if now.0 == before.0 {
+            format!("inverter limit {} ({} → {})", fmt(now.0), limit_word(before.1), limit_word(now.1))
+        } else {
+            format!("inverter limit {} → {} ({})", fmt(before.0), fmt(now.0), limit_word(now.1))
+        })
     } else {
         debug!(from = %fmt(before.0), to = %fmt(now.0), reason = limit_word(now.1), "inverter limit adjusted");
         None
