@@ -58,3 +58,41 @@ async fn sigterm_writes_the_safe_states_before_the_process_exits() {
     assert!(state.exists(), "counters saved next to the site file");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// The same against the plant simulator served in-process (real time): the child
+/// curtails the inverter, and SIGTERM leaves the simulated relays open and the limit at
+/// the site's safe value.
+#[cfg(unix)]
+#[tokio::test]
+async fn sigterm_against_the_simulator_leaves_its_relays_open_and_its_limit_safe() {
+    let sim = daemon_support::sim::Sim::start(4200.0).await;
+    let dir = std::env::temp_dir().join(format!("spillway-sigterm-sim-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let site = dir.join("house.yaml");
+    std::fs::write(&site, sim.site_yaml()).unwrap();
+    let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .arg("run")
+        .arg(&site)
+        .arg("--state")
+        .arg(dir.join("house.state.json"))
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let pid = child.id().unwrap();
+    let deadline = std::time::Instant::now() + Duration::from_secs(30);
+    while !sim.limit_w().is_some_and(|l| l > 0.0 && l < 4000.0) {
+        assert!(std::time::Instant::now() < deadline, "the child never curtailed: {:?}", sim.limit_w());
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    let status = std::process::Command::new("kill").args(["-TERM", &pid.to_string()]).status().unwrap();
+    assert!(status.success());
+    let exit = tokio::time::timeout(Duration::from_secs(20), child.wait()).await.expect("the child exits").unwrap();
+    assert!(exit.success(), "{exit:?}");
+    assert_eq!(sim.relays(), vec![false, false]);
+    assert_eq!(sim.limit_w(), Some(0.0), "the site's safe limit is 0 W");
+    assert!(dir.join("house.state.json").exists());
+    sim.handle.stop().await;
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -31,6 +31,8 @@ const FILE_ADDRESS: &str = "127.0.0.1:5020";
 /// The fastest clock the demo accepts: faster, the daemon's polls would crowd a
 /// loopback socket and the view would blur.
 pub const MAX_SPEED: f64 = 60.0;
+/// The simulator's step (simulated time) whatever the speed.
+const PLANT_STEP: Duration = Duration::from_millis(100);
 
 /// How to run the demo.
 #[derive(Debug, Clone)]
@@ -186,7 +188,9 @@ pub fn run(options: DemoOptions, mut view: impl FnMut(&Frame)) -> Result<Summary
         let sky = Some(options.sky.unwrap_or(WeatherKind::Clear));
         let plant = build(&plant_cfg, &SiteOptions { start_ms: start.0, seed, sky })
             .map_err(|e| DemoError::Simulator(e.to_string()))?;
-        let serve = ServeOptions { speed: options.speed, ..ServeOptions::default() };
+        // A fine plant step at every speed: a coarse one would make the meter lag the
+        // limit by a whole step, which the guard cannot see from the time stamps.
+        let serve = ServeOptions { speed: options.speed, step: Some(PLANT_STEP), ..ServeOptions::default() };
         let server = Server::start(plant, serve).await.map_err(|e| DemoError::Simulator(e.to_string()))?;
         let addr = server.modbus_addr();
         let text = site_text(addr, options.mqtt.as_deref());

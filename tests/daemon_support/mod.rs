@@ -19,6 +19,8 @@ use tokio_util::sync::CancellationToken;
 
 use crate::support::modbus::TestServer;
 
+pub mod sim;
+
 /// 2026-06-21 09:00 UTC (10:00 in Lisbon): a summer morning.
 pub const T0: Timestamp = Timestamp(1_782_032_400_000);
 
