@@ -8,9 +8,11 @@
 
 pub mod actuators;
 pub mod config;
+pub mod daemon;
 pub mod diag;
 pub mod engine;
 pub mod offline;
 pub mod rules;
 pub mod sources;
+pub mod status;
 pub mod units;

@@ -3,8 +3,13 @@
 
 mod check;
 mod compare;
+mod demo;
+mod logging;
+mod read;
 mod replay;
+mod run;
 mod simulate;
+mod step_test;
 mod sweep;
 mod test;
 
@@ -21,6 +26,9 @@ pub struct Cli {
     /// What to do.
     #[command(subcommand)]
     pub command: Verb,
+    /// How log lines look (the level comes from RUST_LOG, e.g. `RUST_LOG=debug`).
+    #[arg(long, global = true, value_enum, default_value = "human")]
+    pub log_format: logging::LogFormat,
 }
 
 /// The verbs.
@@ -111,6 +119,23 @@ pub enum Verb {
         #[arg(long, value_enum, default_value = "text")]
         report: simulate::Format,
     },
+    /// Run the controller: read the devices, decide, switch, until SIGINT or SIGTERM.
+    Run(run::RunArgs),
+    /// Watch the controller work: a built-in site against the plant simulator on loopback.
+    Demo(demo::DemoArgs),
+    /// Read every point once and print raw registers and decoded values (commissioning).
+    Read(read::ReadArgs),
+    /// Switch one load on and off and measure the step at the grid meter (commissioning).
+    StepTest(step_test::StepTestArgs),
+}
+
+/// A duration with its unit: `10s`, `2min`, `500ms`.
+pub fn parse_duration(text: &str) -> Result<std::time::Duration, String> {
+    let q = spillway::units::parse_quantity(text).map_err(|e| format!("`{text}`: {e}"))?;
+    if q.dimension != spillway::units::Dimension::Duration || q.value < 0.0 || !q.value.is_finite() {
+        return Err(format!("`{text}` is not a duration like 10s or 2min"));
+    }
+    Ok(std::time::Duration::from_secs_f64(q.value))
 }
 
 /// Whether to colour diagnostics.
@@ -131,5 +156,9 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Verb::Replay { site, recorded, run, report, chart } => {
             replay::run(&site, &recorded, &run, report, chart.as_deref())
         }
+        Verb::Run(args) => run::run(args, cli.log_format),
+        Verb::Demo(args) => demo::run(args, cli.log_format),
+        Verb::Read(args) => read::run(args, cli.log_format),
+        Verb::StepTest(args) => step_test::run(args, cli.log_format),
     }
 }

@@ -39,13 +39,12 @@ pub struct RunArgs {
     pub quiet: bool,
 }
 
-/// Parses `1s`, `500ms`, `2min`.
+/// Parses a positive duration: `1s`, `500ms`, `2min`.
 pub fn parse_duration(text: &str) -> Result<Duration, String> {
-    let q = spillway::units::parse_quantity(text).map_err(|e| e.to_string())?;
-    if q.dimension != spillway::units::Dimension::Duration || q.value <= 0.0 {
-        return Err(format!("`{text}` is not a positive duration such as 1s or 500ms"));
+    match super::parse_duration(text)? {
+        d if d.is_zero() => Err(format!("`{text}` must be longer than zero")),
+        d => Ok(d),
     }
-    Ok(Duration::from_secs_f64(q.value))
 }
 
 /// Output format.

@@ -18,6 +18,16 @@ pub enum Clock {
         /// The time stamp at the anchor.
         at: Timestamp,
     },
+    /// Like `Anchored`, but `speed` times faster than tokio time: follows a simulator
+    /// running an accelerated clock (`spillway demo --speed 10`).
+    Scaled {
+        /// The tokio instant of the anchor.
+        origin: tokio::time::Instant,
+        /// The time stamp at the anchor.
+        at: Timestamp,
+        /// Simulated seconds per second.
+        speed: f64,
+    },
 }
 
 impl Clock {
@@ -37,12 +47,17 @@ impl Clock {
                 let elapsed = tokio::time::Instant::now().saturating_duration_since(*origin);
                 at.plus(elapsed)
             }
+            Clock::Scaled { origin, at, speed } => {
+                let elapsed = tokio::time::Instant::now().saturating_duration_since(*origin);
+                at.plus(elapsed.mul_f64(speed.max(0.0)))
+            }
         }
     }
 }
 
 #[cfg(test)]
 mod tests {
+
     use super::*;
     use std::time::Duration;
 
@@ -52,5 +67,12 @@ mod tests {
         assert_eq!(c.now(), Timestamp(1_000_000));
         tokio::time::advance(Duration::from_millis(1500)).await;
         assert_eq!(c.now(), Timestamp(1_001_500));
+    }
+
+    #[tokio::test(start_paused = true)]
+    async fn a_scaled_clock_runs_faster_by_its_speed() {
+        let c = Clock::Scaled { origin: tokio::time::Instant::now(), at: Timestamp(0), speed: 10.0 };
+        tokio::time::advance(Duration::from_millis(1500)).await;
+        assert_eq!(c.now(), Timestamp(15_000));
     }
 }

@@ -4,6 +4,7 @@
 pub mod codec;
 mod link;
 pub mod plan;
+pub mod probe;
 pub mod sunspec;
 
 use std::fmt;

@@ -1,0 +1,121 @@
+//! `spillway read SITE.yaml [--device NAME]`: every point read once, raw and decoded,
+//! for an installer checking the wiring. Exit 0 when everything answered, 1 otherwise.
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+use std::time::Duration;
+
+use spillway::config::model::{PointId, Site};
+use spillway::daemon::commission;
+use spillway::units::trim_number;
+
+use super::logging::{self, LogFormat};
+
+/// Arguments of `read`.
+#[derive(Debug, clap::Args)]
+pub struct ReadArgs {
+    /// The site file (YAML).
+    pub site: PathBuf,
+    /// Only this device.
+    #[arg(long, value_name = "NAME")]
+    pub device: Option<String>,
+    /// How long to listen for MQTT points.
+    #[arg(long, value_name = "DURATION", default_value = "5s", value_parser = super::parse_duration)]
+    pub listen: Duration,
+}
+
+fn value_text(site: &Site, point: PointId, v: f64) -> String {
+    let p = &site.points[point.0];
+    if p.boolean {
+        return if v != 0.0 { "on (1)".to_owned() } else { "off (0)".to_owned() };
+    }
+    let unit = p.dimension.base_unit();
+    let v = (v * 1000.0).round() / 1000.0;
+    if unit.is_empty() { trim_number(v) } else { format!("{} {unit}", trim_number(v)) }
+}
+
+pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
+    let loaded = match super::run::load_site(&args.site) {
+        Ok(l) => l,
+        Err(code) => return Ok(code),
+    };
+    logging::init(format, "warn");
+    let site = loaded.site;
+    let only = match &args.device {
+        Some(name) => match site.device(name) {
+            Some((id, _)) => Some(id),
+            None => {
+                let names: Vec<&str> = site.devices.iter().map(|d| d.name.as_str()).collect();
+                eprintln!("error: the site has no device \"{name}\" (devices: {})", names.join(", "));
+                return Ok(ExitCode::from(1));
+            }
+        },
+        None => None,
+    };
+    let (devices, mqtt) = commission::read(&site, only, args.listen, Duration::from_secs(3))?;
+    let width = site.points.iter().map(|p| p.name.len()).max().unwrap_or(4).max(5);
+    let mut problems = 0usize;
+    for d in &devices {
+        let dev = &site.devices[d.device.0];
+        match &d.result {
+            Err(e) => {
+                problems += 1;
+                println!("{}: {e}", dev.name);
+            }
+            Ok(probe) => {
+                let models = if probe.models.is_empty() {
+                    String::new()
+                } else {
+                    let m: Vec<String> = probe.models.iter().map(|(id, at)| format!("{id}@{at}")).collect();
+                    format!("  SunSpec models {}", m.join(" "))
+                };
+                println!("{}{models}", dev.name);
+                if probe.points.is_empty() {
+                    println!("  (no points configured)");
+                }
+                for r in &probe.points {
+                    let name = &site.points[r.point.0].name;
+                    let raw: Vec<String> = r.raw.iter().map(|w| format!("0x{w:04X}")).collect();
+                    let shown = match &r.value {
+                        Ok(v) => value_text(&site, r.point, *v),
+                        Err(e) => {
+                            problems += 1;
+                            format!("error: {e}")
+                        }
+                    };
+                    println!("  {name:<width$}  {:<18}  {:<24}  {shown}", r.origin, format!("[{}]", raw.join(" ")));
+                }
+            }
+        }
+    }
+    if let Some(m) = mqtt {
+        println!("mqtt (listened {})", spillway::units::format_duration(args.listen));
+        if let Some(e) = &m.error {
+            problems += 1;
+            println!("  error: {e}");
+        }
+        for (point, v) in &m.samples {
+            let p = &site.points[point.0];
+            let topic = match &p.read {
+                spillway::config::model::PointRead::Mqtt(r) => r.topic.as_str(),
+                _ => "",
+            };
+            let shown = match v {
+                Some(v) => value_text(&site, *point, *v),
+                None => {
+                    problems += 1;
+                    "nothing received".to_owned()
+                }
+            };
+            println!("  {:<width$}  {topic:<40}  {shown}", p.name);
+        }
+        for (topic, detail) in &m.malformed {
+            println!("  malformed on {topic}: {detail}");
+        }
+    }
+    if problems > 0 {
+        eprintln!("{problems} problem(s): see above");
+        return Ok(ExitCode::from(1));
+    }
+    Ok(ExitCode::SUCCESS)
+}

@@ -1,0 +1,147 @@
+//! `spillway step-test SITE.yaml --load NAME [--hold 10s] [--yes]`: switch one load on,
+//! watch the grid meter, switch it off — proof that the relay feeds the right load.
+//! Exit 0 when the step looks like the load's rated power, 1 otherwise.
+
+use std::io::{BufRead, IsTerminal, Write};
+use std::path::PathBuf;
+use std::process::ExitCode;
+use std::sync::Arc;
+use std::time::Duration;
+
+use spillway::daemon::commission::{self, StepOptions, StepPhase};
+use spillway::engine::Command;
+use spillway::units::{Power, format_duration};
+
+use super::logging::{self, LogFormat};
+
+/// Arguments of `step-test`.
+#[derive(Debug, clap::Args)]
+pub struct StepTestArgs {
+    /// The site file (YAML).
+    pub site: PathBuf,
+    /// The load to switch.
+    #[arg(long, value_name = "NAME")]
+    pub load: String,
+    /// How long the load stays on.
+    #[arg(long, value_name = "DURATION", default_value = "10s", value_parser = super::parse_duration)]
+    pub hold: Duration,
+    /// How long the meter is watched before switching on and after switching off.
+    #[arg(long, value_name = "DURATION", default_value = "5s", value_parser = super::parse_duration)]
+    pub settle: Duration,
+    /// Do not ask for confirmation.
+    #[arg(long)]
+    pub yes: bool,
+}
+
+fn w(v: Option<f64>) -> String {
+    v.map_or_else(|| "no reading".to_owned(), |v| Power(v.round()).to_string())
+}
+
+pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
+    let loaded = match super::run::load_site(&args.site) {
+        Ok(l) => l,
+        Err(code) => return Ok(code),
+    };
+    logging::init(format, "warn");
+    let site = Arc::new(loaded.site);
+    let Some((id, load)) = site.load(&args.load) else {
+        let names: Vec<&str> = site.loads.iter().map(|l| l.name.as_str()).collect();
+        eprintln!("error: the site has no load \"{}\" (loads: {})", args.load, names.join(", "));
+        return Ok(ExitCode::from(1));
+    };
+    let targets: Vec<String> =
+        spillway::actuators::load_levels(load, Command::On).iter().map(|(t, _)| describe_target(&site, t)).collect();
+    println!(
+        "step test: {} ({}) will be switched ON for {} through {}, then OFF.",
+        load.name,
+        Command::On.power(&load.kind),
+        format_duration(args.hold),
+        targets.join(", ")
+    );
+    if !args.yes {
+        if !std::io::stdin().is_terminal() {
+            eprintln!("error: no terminal to confirm on: run with --yes once the load is safe to switch");
+            return Ok(ExitCode::from(1));
+        }
+        print!("Is it safe to switch this load now (nobody working on it, thermostat and cut-out in place)? [y/N] ");
+        std::io::stdout().flush()?;
+        let mut answer = String::new();
+        std::io::stdin().lock().read_line(&mut answer)?;
+        if !matches!(answer.trim(), "y" | "Y" | "yes" | "YES" | "Yes") {
+            println!("not switched");
+            return Ok(ExitCode::from(1));
+        }
+    }
+    let options = StepOptions { hold: args.hold, settle: args.settle, ..StepOptions::default() };
+    let mut last = None;
+    let result = commission::step_test(Arc::clone(&site), id, options, |phase| match phase {
+        StepPhase::Baseline => println!("devices answer; watching the meter for {}", format_duration(options.settle)),
+        StepPhase::On => println!("{}: ON", load_name(&site, id)),
+        StepPhase::Off => println!("{}: OFF", load_name(&site, id)),
+        StepPhase::Grid(g) => {
+            // One line per sample would scroll; show the reading in place on a terminal.
+            if std::io::stdout().is_terminal() {
+                print!("\r  grid {:>10}   ", Power(g.round()).to_string());
+                let _ = std::io::stdout().flush();
+                last = Some(g);
+            }
+        }
+    });
+    if last.is_some() {
+        println!();
+    }
+    let r = match result {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("error: {e}");
+            return Ok(ExitCode::from(1));
+        }
+    };
+    println!(
+        "grid before {}, while on {}, after {} ({} / {} / {} readings)",
+        w(r.grid_before),
+        w(r.grid_on),
+        w(r.grid_after),
+        r.samples[0],
+        r.samples[1],
+        r.samples[2]
+    );
+    if let Some(p) = r.load_power_on {
+        println!("the load's own meter read {} while on", w(Some(p)));
+    }
+    match r.step() {
+        Some(step) if r.plausible() => {
+            println!("step {:+.0} W against {} rated: the relay switches this load", step, Power(r.rated));
+            Ok(ExitCode::SUCCESS)
+        }
+        Some(step) => {
+            println!(
+                "step {:+.0} W against {} rated: check that {} feeds {} (and that the load was not already hot or off by its own thermostat)",
+                step,
+                Power(r.rated),
+                targets.join(", "),
+                load_name(&site, id)
+            );
+            Ok(ExitCode::from(1))
+        }
+        None => {
+            println!("no grid readings: the step could not be measured");
+            Ok(ExitCode::from(1))
+        }
+    }
+}
+
+fn load_name(site: &spillway::config::model::Site, id: spillway::config::model::LoadId) -> &str {
+    &site.loads[id.0].name
+}
+
+fn describe_target(site: &spillway::config::model::Site, t: &spillway::config::model::Write) -> String {
+    use spillway::config::model::Write;
+    let dev = &site.devices[t.device().0].name;
+    match t {
+        Write::Coil { address, .. } => format!("{dev} coil {address}"),
+        Write::Register { address, .. } => format!("{dev} register {address}"),
+        Write::Mqtt { topic, .. } => format!("{dev} topic {topic}"),
+        Write::SunSpecLimit { .. } => format!("{dev} SunSpec limit"),
+    }
+}

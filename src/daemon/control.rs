@@ -1,0 +1,425 @@
+//! The control task: owns the engine, the snapshot and the dispatcher; turns link
+//! events into samples, overrides and health, ticks the engine, logs every switching
+//! with its reason, publishes the status, persists the counters, and runs the
+//! shutdown sequence (safe states first, then cancel the links).
+
+use std::collections::{HashMap, VecDeque};
+use std::path::PathBuf;
+use std::sync::Arc;
+use std::time::Duration;
+
+use tokio::sync::{mpsc, watch};
+use tokio::time::{Instant, MissedTickBehavior, interval, interval_at};
+use tokio_util::sync::CancellationToken;
+use tracing::{debug, info, trace, warn};
+
+use super::{Options, state_file};
+use crate::actuators::Dispatcher;
+use crate::actuators::mqtt::{limit_word, mode_word};
+use crate::config::model::{DeviceId, Site};
+use crate::engine::{Decisions, Engine, LimitReason, Mode, Snapshot};
+use crate::sources::{Clock, OverrideAction, SourceEvent};
+use crate::status::{self, DeviceHealth, RecentEvent, Status};
+use crate::units::Power;
+
+/// How often a repeated exception or malformed payload is logged again (with the
+/// count since), so a device that refuses one register every second does not flood
+/// the log.
+const REPEAT_LOG: Duration = Duration::from_secs(60);
+/// How many switchings and limit changes the status document keeps.
+const RECENT: usize = 12;
+
+/// What can be asked of the control task.
+#[derive(Debug)]
+pub(super) enum Request {
+    /// Dispatch the safe states, save the counters, stop everything.
+    Shutdown,
+}
+
+/// What the control task counted, returned when the daemon has stopped.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct Summary {
+    /// Engine ticks.
+    pub ticks: u64,
+    /// Load switchings (command changes), the shutdown's included.
+    pub switchings: u64,
+    /// Samples taken into the snapshot.
+    pub samples: u64,
+    /// Exception responses reported by the links.
+    pub exceptions: u64,
+    /// Malformed payloads reported by the links.
+    pub malformed: u64,
+    /// Overrides set or cleared.
+    pub overrides: u64,
+    /// Saves of the state file that succeeded.
+    pub saves: u64,
+}
+
+pub(super) struct Control {
+    site: Arc<Site>,
+    engine: Engine,
+    snapshot: Snapshot,
+    dispatcher: Dispatcher,
+    status: watch::Sender<Arc<Status>>,
+    health: Vec<DeviceHealth>,
+    clock: Clock,
+    state_file: Option<PathBuf>,
+    persist_every: Duration,
+    /// Last log time and count since, per repeated-problem key.
+    repeats: HashMap<String, (Instant, u64)>,
+    last_limit: (Option<Power>, LimitReason),
+    was_normal: bool,
+    recent: VecDeque<RecentEvent>,
+    summary: Summary,
+}
+
+impl Control {
+    pub(super) fn new(
+        engine: Engine,
+        snapshot: Snapshot,
+        dispatcher: Dispatcher,
+        status: watch::Sender<Arc<Status>>,
+        options: &Options,
+    ) -> Control {
+        let site = Arc::clone(engine.site());
+        Control {
+            health: vec![DeviceHealth::default(); site.devices.len()],
+            site,
+            engine,
+            snapshot,
+            dispatcher,
+            status,
+            clock: options.clock,
+            state_file: options.state_file.clone(),
+            persist_every: options.persist_every,
+            repeats: HashMap::new(),
+            last_limit: (None, LimitReason::None),
+            was_normal: false,
+            recent: VecDeque::with_capacity(RECENT),
+            summary: Summary::default(),
+        }
+    }
+
+    pub(super) async fn run(
+        mut self,
+        mut events: mpsc::Receiver<SourceEvent>,
+        mut requests: mpsc::Receiver<Request>,
+        cancel: CancellationToken,
+    ) -> Summary {
+        let mut tick = interval(self.site.tick);
+        // A late tick (a busy machine) is taken late and the rhythm moves on from
+        // there, rather than firing a burst of catch-up ticks.
+        tick.set_missed_tick_behavior(MissedTickBehavior::Delay);
+        let mut persist = interval_at(Instant::now() + self.persist_every, self.persist_every);
+        persist.set_missed_tick_behavior(MissedTickBehavior::Delay);
+        let mut events_open = true;
+        loop {
+            tokio::select! {
+                biased;
+                // Cancel-safe: a token. Reached only when something other than this
+                // task cancelled (it cancels itself after the shutdown sequence).
+                () = cancel.cancelled() => break,
+                // Cancel-safe: an mpsc receive loses nothing when another branch wins.
+                r = requests.recv() => match r {
+                    Some(Request::Shutdown) | None => break,
+                },
+                // Cancel-safe: an interval tick is not consumed until it completes.
+                _ = tick.tick() => self.tick(),
+                // Cancel-safe: as above. The save itself is awaited outside `select!`.
+                _ = persist.tick() => self.persist().await,
+                // Cancel-safe: an mpsc receive.
+                ev = events.recv(), if events_open => match ev {
+                    Some(ev) => self.event(ev),
+                    None => events_open = false,
+                },
+            }
+        }
+        self.shut_down().await;
+        cancel.cancel();
+        self.summary
+    }
+
+    /// One engine tick and everything that follows from it.
+    fn tick(&mut self) {
+        let now = self.clock.now();
+        self.engine.step(now, &self.snapshot);
+        self.summary.ticks += 1;
+        let d = self.engine.decisions();
+        for s in &d.switchings {
+            self.summary.switchings += 1;
+            let name = self.site.loads.get(s.load.0).map_or("?", |l| l.name.as_str());
+            let why = self.engine.explain(s.load);
+            push_recent(&mut self.recent, d.now, format!("{name} {} → {}: {why}", s.from, s.to));
+            info!(
+                load = %name,
+                from = %s.from,
+                to = %s.to,
+                reason = s.reason.code(),
+                why = %why,
+                surplus_w = d.surplus.0.round(),
+                grid_w = d.grid.map(|g| g.0.round()),
+                "load switched"
+            );
+        }
+        if let Some(text) = log_limit(&mut self.last_limit, d) {
+            push_recent(&mut self.recent, d.now, text);
+        }
+        log_mode(&mut self.was_normal, d.mode);
+        trace!(
+            mode = mode_word(d.mode),
+            surplus_w = d.surplus.0,
+            grid_w = d.grid.map(|g| g.0),
+            limit_w = d.inverter_limit.map(|p| p.0),
+            commands = ?d.loads.iter().map(|l| l.command.to_string()).collect::<Vec<_>>(),
+            "tick"
+        );
+        self.dispatcher.apply(d);
+        for r in self.engine.take_obligation_results() {
+            let load = self.site.loads.get(r.load.0);
+            let what = load.and_then(|l| l.obligations.get(r.index)).map(|o| o.describe()).unwrap_or_default();
+            let name = load.map_or("?", |l| l.name.as_str());
+            if r.met {
+                info!(load = %name, obligation = %what, day = r.day, "obligation met");
+            } else {
+                warn!(load = %name, obligation = %what, day = r.day, "obligation missed");
+            }
+        }
+        self.recent.make_contiguous();
+        let doc = status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0);
+        self.status.send_replace(Arc::new(doc));
+    }
+    fn event(&mut self, ev: SourceEvent) {
+        match ev {
+            SourceEvent::Sample { point, value, at } => {
+                self.summary.samples += 1;
+                trace!(point = point.0, value, "sample");
+                self.snapshot.set(point, value, at);
+            }
+            SourceEvent::DeviceUp { device } => {
+                if let Some(h) = self.health.get_mut(device.0) {
+                    h.up = Some(true);
+                    h.down_reason = None;
+                }
+            }
+            SourceEvent::DeviceDown { device, reason } => {
+                if let Some(h) = self.health.get_mut(device.0) {
+                    h.up = Some(false);
+                    h.down_reason = Some(reason);
+                }
+            }
+            SourceEvent::Exception { device, function, address, code } => {
+                self.summary.exceptions += 1;
+                let total = self.health.get_mut(device.0).map_or(0, |h| {
+                    h.exceptions += 1;
+                    h.exceptions
+                });
+                let key = format!("exc/{}/{function}/{address}/{}", device.0, code.0);
+                if let Some(repeated) = self.should_log(key) {
+                    warn!(
+                        device = %self.device_name(device),
+                        function,
+                        address,
+                        code = %code,
+                        exceptions_total = total,
+                        repeated,
+                        "exception response ignored"
+                    );
+                }
+            }
+            SourceEvent::Malformed { device, origin, detail } => {
+                self.summary.malformed += 1;
+                let total = device.and_then(|d| self.health.get_mut(d.0)).map_or(0, |h| {
+                    h.malformed += 1;
+                    h.malformed
+                });
+                if let Some(repeated) = self.should_log(format!("mal/{origin}")) {
+                    warn!(
+                        device = %device.map_or("-", |d| self.device_name(d)),
+                        %origin,
+                        %detail,
+                        malformed_total = total,
+                        repeated,
+                        "malformed input ignored"
+                    );
+                }
+            }
+            SourceEvent::Override(req) => {
+                self.summary.overrides += 1;
+                let name = self.site.loads.get(req.load.0).map_or("?", |l| l.name.as_str()).to_owned();
+                match req.action {
+                    OverrideAction::Set { command, until } => {
+                        info!(load = %name, command = %command, %until, "override set");
+                        self.engine.set_override(req.load, command, until);
+                    }
+                    OverrideAction::Clear => {
+                        info!(load = %name, "override cleared");
+                        self.engine.clear_override(req.load);
+                    }
+                }
+            }
+            SourceEvent::Unresolved { point, reason } => {
+                debug!(point = point.0, %reason, "point unresolved");
+            }
+            SourceEvent::Discovered { device, base, models } => {
+                debug!(device = %self.device_name(device), base, ?models, "SunSpec models");
+            }
+            SourceEvent::Readback { device, values } => {
+                debug!(device = %self.device_name(device), ?values, "actuator read-back");
+            }
+        }
+    }
+
+    fn device_name(&self, device: DeviceId) -> &str {
+        self.site.devices.get(device.0).map_or("?", |d| d.name.as_str())
+    }
+
+    /// Whether to log a repeated problem now; the count of repeats since the last line.
+    fn should_log(&mut self, key: String) -> Option<u64> {
+        let now = Instant::now();
+        match self.repeats.get_mut(&key) {
+            None => {
+                self.repeats.insert(key, (now, 0));
+                Some(0)
+            }
+            Some((last, count)) => {
+                *count += 1;
+                if now.saturating_duration_since(*last) >= REPEAT_LOG {
+                    let n = *count;
+                    *last = now;
+                    *count = 0;
+                    Some(n)
+                } else {
+                    None
+                }
+            }
+        }
+    }
+
+    /// Saves the counters; a failure is logged and retried at the next period.
+    async fn persist(&mut self) {
+        let Some(path) = self.state_file.clone() else {
+            return;
+        };
+        let counters = self.engine.persisted();
+        let site = self.site.name.clone();
+        let now = self.clock.now();
+        let p = path.clone();
+        // fsync can take long on an SD card: keep it off the control task's thread.
+        match tokio::task::spawn_blocking(move || state_file::write(&p, &site, &counters, now)).await {
+            Ok(Ok(())) => {
+                self.summary.saves += 1;
+                debug!(path = %path.display(), "counters saved");
+            }
+            Ok(Err(e)) => warn!(error = %e, "counters not saved; will retry"),
+            Err(e) => warn!(error = %e, "counters not saved; will retry"),
+        }
+    }
+
+    /// Safe states to every actuator, counters saved. The caller cancels the links
+    /// afterwards, so their last pass writes what is dispatched here.
+    async fn shut_down(&mut self) {
+        let now = self.clock.now();
+        let safe = self.engine.safe_decisions(now);
+        let current = self.engine.decisions();
+        for (i, (l, (was, to))) in self.site.loads.iter().zip(current.loads.iter().zip(&safe.loads)).enumerate() {
+            if was.command != to.command {
+                self.summary.switchings += 1;
+                info!(
+                    load = %l.name,
+                    from = %was.command,
+                    to = %to.command,
+                    reason = "shutdown",
+                    why = "controller stopping: safe state",
+                    "load switched"
+                );
+            } else {
+                debug!(load = %l.name, command = %to.command, index = i, "already in its safe state");
+            }
+        }
+        if let Some(ic) = &self.site.inverter {
+            info!(limit = %ic.safe_limit, "inverter limit set to its safe value for shutdown");
+        }
+        self.dispatcher.apply(&safe);
+        let commands: Vec<String> = safe.loads.iter().map(|l| l.command.to_string()).collect();
+        info!(?commands, "safe states dispatched");
+        push_recent(&mut self.recent, now, "controller stopping: safe states dispatched".to_owned());
+        self.recent.make_contiguous();
+        let doc = status::stopped(status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0));
+        self.status.send_replace(Arc::new(with_safe(doc, &safe, &self.site)));
+        self.persist().await;
+        info!(saves = self.summary.saves, "counters saved: stopping the links");
+    }
+}
+
+/// The stopped document shows what was dispatched, not the last tick's commands.
+fn with_safe(mut doc: Status, safe: &Decisions, site: &Site) -> Status {
+    for ((l, d), load) in doc.loads.iter_mut().zip(&safe.loads).zip(&site.loads) {
+        l.command = d.command.to_string();
+        l.on = d.command.is_on();
+        l.power_w = if l.power_measured { l.power_w } else { d.command.power(&load.kind).0 };
+        l.reason = "shutdown".to_owned();
+        l.why = "controller stopping: safe state".to_owned();
+    }
+    if let Some(inv) = &mut doc.inverter {
+        inv.limit_w = safe.inverter_limit.map(|p| p.0);
+        inv.reason = limit_word(safe.limit_reason).to_owned();
+        inv.why = "controller stopping: safe limit".to_owned();
+    }
+    doc
+}
+
+/// Logs a change of the inverter limit; returns a sentence for the status when the
+/// change is one a person should see.
+fn log_limit(last: &mut (Option<Power>, LimitReason), d: &Decisions) -> Option<String> {
+    let now = (d.inverter_limit, d.limit_reason);
+    let before = *last;
+    *last = now;
+    if now == before {
+        return None;
+    }
+    let fmt = |p: Option<Power>| p.map_or_else(|| "none".to_owned(), |p| p.to_string());
+    // The guard releases a curtailment step by step: log its start, its end and
+    // changes of reason at INFO, the steps in between at DEBUG.
+    if now.1 != before.1 || now.0.is_some() != before.0.is_some() {
+        info!(
+            from = %fmt(before.0),
+            to = %fmt(now.0),
+            reason = limit_word(now.1),
+            grid_w = d.grid.map(|g| g.0.round()),
+            "inverter limit changed"
+        );
+        Some(if now.0 == before.0 {
+            format!("inverter limit {} ({} → {})", fmt(now.0), limit_word(before.1), limit_word(now.1))
+        } else {
+            format!("inverter limit {} → {} ({})", fmt(before.0), fmt(now.0), limit_word(now.1))
+        })
+    } else {
+        debug!(from = %fmt(before.0), to = %fmt(now.0), reason = limit_word(now.1), "inverter limit adjusted");
+        None
+    }
+}
+
+fn log_mode(was_normal: &mut bool, mode: Mode) {
+    match mode {
+        Mode::Normal if !*was_normal => {
+            *was_normal = true;
+            info!("signals fresh: rules in charge");
+        }
+        Mode::Failsafe if *was_normal => {
+            *was_normal = false;
+            warn!("fail-safe: a guard signal is stale; loads in their safe states, inverter at its safe limit");
+        }
+        Mode::Outage if *was_normal => {
+            *was_normal = false;
+            warn!("grid outage: shedding loads marked for it");
+        }
+        _ => {}
+    }
+}
+
+fn push_recent(recent: &mut VecDeque<RecentEvent>, at: crate::units::Timestamp, text: String) {
+    if recent.len() == RECENT {
+        recent.pop_front();
+    }
+    recent.push_back(RecentEvent { time: at.to_string(), text });
+}

@@ -1,0 +1,285 @@
+//! Commissioning reads: every point of one Modbus device read once, with the raw
+//! registers beside the decoded value, for an installer checking the wiring
+//! (`spillway read`). One request per point, so a wrong address shows up on the point
+//! that has it; SunSpec points are found by walking the device's model chain first.
+//!
+//! It writes nothing. Every request runs under the device's timeout; a transport error
+//! ends the probe of that device (the points not yet read say so).
+
+use std::io;
+use std::time::Duration;
+
+use tokio::time::timeout;
+use tokio_modbus::client::{Context, Reader, rtu, tcp};
+use tokio_modbus::{ExceptionCode, Slave};
+
+use super::ExceptionName;
+use super::codec::Sentinel;
+use super::plan::{self, Decoded, PointSpec, ScaleSpec, Words};
+use super::sunspec::{self, ModelMap};
+use crate::config::model::{DeviceId, Link, Parity, PointId, PointRead, Scale, Site, Table, WordOrder};
+
+/// One point as read.
+#[derive(Debug, Clone, PartialEq)]
+pub struct PointReading {
+    /// Which point.
+    pub point: PointId,
+    /// Where it was read: `holding 40087 ×2`, `coil 3`.
+    pub origin: String,
+    /// The words read (bits as 0/1), the scale-factor register last when there is one.
+    pub raw: Vec<u16>,
+    /// The value in the point's base unit, or why there is none.
+    pub value: Result<f64, String>,
+}
+
+/// What probing a device found.
+#[derive(Debug, Clone, PartialEq)]
+pub struct DeviceProbe {
+    /// The SunSpec model chain, as (model id, start address), when the device has one.
+    pub models: Vec<(u16, u16)>,
+    /// Each of the device's points, in file order.
+    pub points: Vec<PointReading>,
+}
+
+/// Why a device could not be probed at all.
+#[derive(Debug, thiserror::Error)]
+pub enum ProbeError {
+    /// The device is not a Modbus device of the site.
+    #[error("device #{0} is not a Modbus device of the site")]
+    NotModbus(usize),
+    /// No connection.
+    #[error("cannot connect to {target}: {reason}")]
+    Connect {
+        /// `host:port` or the serial path.
+        target: String,
+        /// Why.
+        reason: String,
+    },
+}
+
+/// Reads every point of `device` once.
+pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> Result<DeviceProbe, ProbeError> {
+    let dev = site.devices.get(device.0).ok_or(ProbeError::NotModbus(device.0))?;
+    let target = match &dev.link {
+        Link::ModbusTcp { host, port, unit } => format!("{host}:{port} unit {unit}"),
+        Link::ModbusRtu { path, unit, .. } => format!("{path} unit {unit}"),
+        Link::Mqtt => return Err(ProbeError::NotModbus(device.0)),
+    };
+    let mut ctx = match timeout(connect_timeout, connect(&dev.link)).await {
+        Ok(Ok(ctx)) => ctx,
+        Ok(Err(e)) => return Err(ProbeError::Connect { target, reason: e.to_string() }),
+        Err(_) => return Err(ProbeError::Connect { target, reason: "no connection within the timeout".to_owned() }),
+    };
+    let mut p = Prober { ctx: &mut ctx, limit: dev.timeout, dead: None };
+    let map = if dev.sunspec { p.discover().await } else { Ok(None) };
+    let models = match &map {
+        Ok(Some(m)) => m.models.iter().map(|&(id, start, _)| (id, start)).collect(),
+        _ => Vec::new(),
+    };
+    let mut points = Vec::new();
+    for (i, pt) in site.points.iter().enumerate() {
+        if pt.device != device {
+            continue;
+        }
+        let id = PointId(i);
+        let spec = match &pt.read {
+            PointRead::Modbus(m) => Ok(PointSpec {
+                point: id,
+                table: m.table,
+                address: m.address,
+                value_type: m.value_type,
+                word_order: m.word_order,
+                scale: match m.scale {
+                    Scale::Factor(f) => ScaleSpec::Factor(f),
+                    Scale::Register { table, address } => ScaleSpec::Register { table, address },
+                },
+                sentinel: Sentinel::None,
+                unit_factor: pt.unit_factor,
+                boolean: pt.boolean,
+                poll: pt.poll,
+            }),
+            PointRead::SunSpec(s) => match &map {
+                Ok(Some(m)) => m.resolve(s.model, &s.point).map(|r| PointSpec {
+                    point: id,
+                    table: Table::HoldingRegister,
+                    address: r.address,
+                    value_type: r.value_type,
+                    word_order: WordOrder::HighFirst,
+                    scale: r.scale_factor.map_or(ScaleSpec::Factor(1.0), |a| ScaleSpec::Register {
+                        table: Table::HoldingRegister,
+                        address: a,
+                    }),
+                    sentinel: r.sentinel,
+                    unit_factor: pt.unit_factor,
+                    boolean: pt.boolean,
+                    poll: pt.poll,
+                }),
+                Ok(None) => Err("the device has no SunSpec map".to_owned()),
+                Err(e) => Err(e.clone()),
+            },
+            PointRead::Mqtt(_) => continue,
+        };
+        points.push(match spec {
+            Ok(spec) => p.read_point(&spec).await,
+            Err(reason) => {
+                PointReading { point: id, origin: "sunspec".to_owned(), raw: Vec::new(), value: Err(reason) }
+            }
+        });
+    }
+    // Best effort; the transport may already be gone.
+    let _ = timeout(Duration::from_millis(100), tokio_modbus::client::Client::disconnect(&mut ctx)).await;
+    Ok(DeviceProbe { models, points })
+}
+
+async fn connect(link: &Link) -> io::Result<Context> {
+    match link {
+        Link::ModbusTcp { host, port, unit } => {
+            let addr = tokio::net::lookup_host((host.as_str(), *port))
+                .await?
+                .next()
+                .ok_or_else(|| io::Error::other(format!("{host} has no address")))?;
+            let stream = tokio::net::TcpStream::connect(addr).await?;
+            stream.set_nodelay(true)?;
+            Ok(tcp::attach_slave(stream, Slave(*unit)))
+        }
+        Link::ModbusRtu { path, baud, parity, stop_bits, unit } => {
+            let builder = tokio_serial::new(path, *baud)
+                .data_bits(tokio_serial::DataBits::Eight)
+                .parity(match parity {
+                    Parity::None => tokio_serial::Parity::None,
+                    Parity::Even => tokio_serial::Parity::Even,
+                    Parity::Odd => tokio_serial::Parity::Odd,
+                })
+                .stop_bits(if *stop_bits == 2 { tokio_serial::StopBits::Two } else { tokio_serial::StopBits::One });
+            let port = tokio_serial::SerialStream::open(&builder).map_err(io::Error::from)?;
+            Ok(rtu::attach_slave(port, Slave(*unit)))
+        }
+        Link::Mqtt => Err(io::Error::other("not a Modbus device")),
+    }
+}
+
+struct Prober<'a> {
+    ctx: &'a mut Context,
+    limit: Duration,
+    /// Set after a timeout or transport error: the connection cannot be trusted.
+    dead: Option<String>,
+}
+
+impl Prober<'_> {
+    /// One read; the outer error is "no usable answer", the inner the exception.
+    async fn read(
+        &mut self,
+        table: Table,
+        address: u16,
+        count: u16,
+    ) -> Result<Result<Vec<u16>, ExceptionCode>, String> {
+        if let Some(why) = &self.dead {
+            return Err(format!("not read: {why}"));
+        }
+        let bits = |r: Result<Vec<bool>, ExceptionCode>| {
+            r.map(|v| v.iter().take(usize::from(count)).map(|b| u16::from(*b)).collect())
+        };
+        let ctx = &mut *self.ctx;
+        let r = match table {
+            Table::Coil => timeout(self.limit, ctx.read_coils(address, count)).await.map(|r| r.map(bits)),
+            Table::DiscreteInput => {
+                timeout(self.limit, ctx.read_discrete_inputs(address, count)).await.map(|r| r.map(bits))
+            }
+            Table::HoldingRegister => timeout(self.limit, ctx.read_holding_registers(address, count)).await,
+            Table::InputRegister => timeout(self.limit, ctx.read_input_registers(address, count)).await,
+        };
+        match r {
+            Ok(Ok(r)) => Ok(r),
+            Ok(Err(e)) => {
+                let why = format!("transport error: {e}");
+                self.dead = Some(why.clone());
+                Err(why)
+            }
+            Err(_) => {
+                let why = format!("no answer within {}", crate::units::format_duration(self.limit));
+                self.dead = Some(why.clone());
+                Err(why)
+            }
+        }
+    }
+
+    /// Finds the SunSpec model chain (`Ok(None)`: no marker at any base).
+    async fn discover(&mut self) -> Result<Option<ModelMap>, String> {
+        let mut base = None;
+        for b in sunspec::BASES {
+            if let Ok(w) = self.read(Table::HoldingRegister, b, 2).await? {
+                if w == sunspec::MARKER {
+                    base = Some(b);
+                    break;
+                }
+            }
+        }
+        let Some(base) = base else {
+            return Err("no SunSpec marker (SunS) at holding register 40000, 50000 or 0".to_owned());
+        };
+        let mut models = Vec::new();
+        let mut addr = base.checked_add(2);
+        while let Some(a) = addr {
+            if models.len() >= sunspec::MAX_MODELS {
+                break;
+            }
+            let head = match self.read(Table::HoldingRegister, a, 2).await? {
+                Ok(w) => w,
+                Err(_) => break,
+            };
+            let id = head.first().copied().unwrap_or(sunspec::END_ID);
+            if id == sunspec::END_ID {
+                break;
+            }
+            let len = head.get(1).copied().unwrap_or(0);
+            models.push((id, a, len));
+            addr = a.checked_add(2).and_then(|x| x.checked_add(len));
+        }
+        Ok(Some(ModelMap { base, models }))
+    }
+
+    async fn read_point(&mut self, spec: &PointSpec) -> PointReading {
+        let count = spec.value_type.registers();
+        let origin = match spec.table {
+            Table::Coil => format!("coil {}", spec.address),
+            Table::DiscreteInput => format!("discrete {}", spec.address),
+            Table::HoldingRegister => format!("holding {} ×{count}", spec.address),
+            Table::InputRegister => format!("input {} ×{count}", spec.address),
+        };
+        let fail = |origin: String, raw: Vec<u16>, why: String| PointReading {
+            point: spec.point,
+            origin,
+            raw,
+            value: Err(why),
+        };
+        let mut raw = match self.read(spec.table, spec.address, count).await {
+            Ok(Ok(w)) => w,
+            Ok(Err(code)) => return fail(origin, Vec::new(), format!("exception {}", ExceptionName::from(code))),
+            Err(why) => return fail(origin, Vec::new(), why),
+        };
+        let mut words = Words::default();
+        words.insert(spec.table, spec.address, &raw);
+        if let ScaleSpec::Register { table, address } = spec.scale {
+            match self.read(table, address, 1).await {
+                Ok(Ok(w)) => {
+                    words.insert(table, address, &w);
+                    raw.extend(w);
+                }
+                Ok(Err(code)) => {
+                    return fail(
+                        origin,
+                        raw,
+                        format!("scale factor at {address}: exception {}", ExceptionName::from(code)),
+                    );
+                }
+                Err(why) => return fail(origin, raw, why),
+            }
+        }
+        let value = match plan::decode_point(spec, &words) {
+            Decoded::Value(v) => Ok(v),
+            Decoded::Missing => Err("the device reports it as not implemented".to_owned()),
+            Decoded::NotRead => Err("not read".to_owned()),
+        };
+        PointReading { point: spec.point, origin, raw, value }
+    }
+}

@@ -1,0 +1,386 @@
+//! The live state of a running site as one serialisable document: what `GET /api/status`
+//! returns, what the status page and the demo's terminal view show.
+//!
+//! Built by the daemon's control task after every tick from the engine, the snapshot and
+//! the links' health; read by anyone through a `watch` channel. Nothing here decides or
+//! does I/O (the HTTP server is in [`http`]). Numbers are in base units named in the key
+//! (`_w`, `_wh`, `_s`, `_c`), grid import positive; unknown values are `null`.
+
+pub mod http;
+
+use std::time::Duration;
+
+use serde::Serialize;
+
+use crate::actuators::mqtt::{limit_word, mode_word};
+use crate::config::model::{Connection, ExportPolicy, LoadId, Obligation, PointId, Site};
+use crate::engine::{Engine, LimitReason, Quality, Snapshot};
+use crate::units::{Power, Timestamp, format_duration, trim_number};
+
+/// The whole document.
+#[derive(Debug, Clone, Default, PartialEq, Serialize)]
+pub struct Status {
+    /// Site name.
+    pub site: String,
+    /// Instant of the last tick (RFC 3339, UTC); `null` before the first tick.
+    pub time: Option<String>,
+    /// `starting` before the first tick, then `normal`, `failsafe`, `recovering`,
+    /// `outage`, and `stopped` once the safe states have been dispatched at shutdown.
+    pub mode: String,
+    /// The export policy as a phrase: `forbidden`, `limited to 1.5 kW`, `allowed`,
+    /// `off-grid`.
+    pub export_policy: String,
+    /// Grid power, import positive; `null` when the meter is stale.
+    pub grid_w: Option<f64>,
+    /// PV power; `null` when the site has no PV point or it is stale.
+    pub pv_w: Option<f64>,
+    /// The rest of the household (PV + grid − managed loads); `null` unless both PV and
+    /// grid are fresh.
+    pub house_w: Option<f64>,
+    /// Surplus the engine saw: export plus what the managed loads draw plus the
+    /// headroom hidden by curtailment.
+    pub surplus_w: f64,
+    /// The inverter's power limit; `null` when the site has no limit control.
+    pub inverter: Option<InverterStatus>,
+    /// Managed loads in priority order.
+    pub loads: Vec<LoadStatus>,
+    /// Energy counters since local midnight.
+    pub today: TodayStatus,
+    /// Every configured point with its latest value.
+    pub points: Vec<PointStatus>,
+    /// Device links.
+    pub devices: Vec<DeviceStatus>,
+    /// The latest switchings and limit changes, newest last.
+    pub recent: Vec<RecentEvent>,
+}
+
+/// A switching or a change of the inverter limit, for people watching.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct RecentEvent {
+    /// When (RFC 3339, UTC).
+    pub time: String,
+    /// What happened, as a sentence (`water_heater off → on: started: ...`).
+    pub text: String,
+}
+
+/// The inverter limit and why.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct InverterStatus {
+    /// The limit; `null` when unlimited.
+    pub limit_w: Option<f64>,
+    /// Rated AC power (100 %).
+    pub rated_w: f64,
+    /// `none`, `export_guard`, `escalated`, `failsafe`.
+    pub reason: String,
+    /// The reason as a sentence.
+    pub why: String,
+}
+
+/// One load.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LoadStatus {
+    /// Name.
+    pub name: String,
+    /// Priority (1 first).
+    pub priority: u32,
+    /// `switched`, `stepped`, `proportional`, `charger`, `battery`.
+    pub kind: String,
+    /// The command as the engine prints it: `off`, `on`, `stage 2`, `45 %`, `16 A`,
+    /// `charge 1.2 kW`.
+    pub command: String,
+    /// Whether the command draws power.
+    pub on: bool,
+    /// Power: measured where the load has a power point that is fresh, else what the
+    /// command implies.
+    pub power_w: f64,
+    /// Whether `power_w` is measured.
+    pub power_measured: bool,
+    /// Stable reason code (`start_rule`, `min_on`, `failsafe`, ...).
+    pub reason: String,
+    /// The engine's explanation with the rule's current values.
+    pub why: String,
+    /// An active override.
+    pub r#override: Option<OverrideStatus>,
+    /// Run time since local midnight, seconds.
+    pub runtime_today_s: f64,
+    /// Energy since local midnight.
+    pub energy_today_wh: f64,
+    /// Progress of the load's obligations.
+    pub obligations: Vec<ObligationStatus>,
+}
+
+/// An override in force.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct OverrideStatus {
+    /// The forced command.
+    pub command: String,
+    /// When it ends (RFC 3339, UTC).
+    pub until: String,
+}
+
+/// Progress of one obligation today.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ObligationStatus {
+    /// What it asks (`run 5 h a day`, `reach 60 °C by 17:00`).
+    pub what: String,
+    /// Progress as a phrase (`3.2 h of 5 h`, `54.1 °C of 60 °C`, `last cycle 2026-…`).
+    pub progress: String,
+    /// Progress as a fraction 0–1 where that makes sense (`null` for cycles).
+    pub fraction: Option<f64>,
+}
+
+/// Energy since local midnight.
+#[derive(Debug, Clone, Default, PartialEq, Serialize)]
+pub struct TodayStatus {
+    /// Imported.
+    pub import_wh: f64,
+    /// Exported.
+    pub export_wh: f64,
+    /// Drawn by the managed loads.
+    pub diverted_wh: f64,
+}
+
+/// One point.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct PointStatus {
+    /// Name.
+    pub name: String,
+    /// Latest value in its base unit; `null` when never received or not a number.
+    pub value: Option<f64>,
+    /// The base unit (`W`, `°C`, `%`, ... ; empty for plain numbers and booleans).
+    pub unit: String,
+    /// `fresh`, `stale` or `missing`.
+    pub quality: String,
+    /// Age of the latest value in seconds; `null` when missing.
+    pub age_s: Option<f64>,
+}
+
+/// One device link.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct DeviceStatus {
+    /// Name.
+    pub name: String,
+    /// `true` connected, `false` down, `null` not yet known.
+    pub up: Option<bool>,
+    /// Why it is down.
+    pub down_reason: Option<String>,
+    /// Modbus exception responses received.
+    pub exceptions: u64,
+    /// Payloads or register blocks that could not be understood.
+    pub malformed: u64,
+}
+
+/// What the daemon knows about a device besides the engine.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct DeviceHealth {
+    /// Connected (`None` before the first report).
+    pub up: Option<bool>,
+    /// Why it went down.
+    pub down_reason: Option<String>,
+    /// Exception responses so far.
+    pub exceptions: u64,
+    /// Malformed payloads so far.
+    pub malformed: u64,
+}
+
+/// The export policy as a phrase.
+pub fn export_policy(site: &Site) -> String {
+    match &site.connection {
+        Connection::Grid { export: ExportPolicy::Forbidden, .. } => "forbidden".to_owned(),
+        Connection::Grid { export: ExportPolicy::Limited(p), .. } => format!("limited to {p}"),
+        Connection::Grid { export: ExportPolicy::Allowed, .. } => "allowed".to_owned(),
+        Connection::OffGrid(_) => "off-grid".to_owned(),
+    }
+}
+
+/// The document before the first tick: every load off, nothing measured yet.
+pub fn starting(engine: &Engine, snapshot: &Snapshot) -> Status {
+    let mut s = build(engine, snapshot, &[], &[]);
+    s.time = None;
+    s.mode = "starting".to_owned();
+    s.points.iter_mut().for_each(|p| p.age_s = None);
+    s
+}
+
+/// The document after a tick.
+pub fn build(engine: &Engine, snapshot: &Snapshot, health: &[DeviceHealth], recent: &[RecentEvent]) -> Status {
+    let site = engine.site();
+    let d = engine.decisions();
+    let now = d.now;
+    let fresh = |id: Option<PointId>| -> Option<f64> {
+        let id = id?;
+        let p = site.points.get(id.0)?;
+        let s = snapshot.get(id);
+        (quality(s.value, s.at, now, p.stale_after) == Quality::Fresh).then_some(s.value)
+    };
+    let persisted = engine.persisted();
+    let loads: Vec<LoadStatus> = site
+        .loads
+        .iter()
+        .enumerate()
+        .map(|(i, l)| {
+            let id = LoadId(i);
+            let ld = d.loads.get(i).copied();
+            let command = ld.map(|x| x.command);
+            let measured = fresh(l.power);
+            let implied = command.map_or(Power::ZERO, |c| c.power(&l.kind)).0;
+            let (runtime, energy) = engine.load_today(id);
+            let temperature = fresh(l.temperature);
+            let last_cycles = persisted.loads.get(i).map(|p| p.last_cycle_ms.as_slice()).unwrap_or(&[]);
+            LoadStatus {
+                name: l.name.clone(),
+                priority: l.priority,
+                kind: l.kind.word().to_owned(),
+                command: command.map_or_else(|| "off".to_owned(), |c| c.to_string()),
+                on: command.is_some_and(|c| c.is_on()),
+                power_w: measured.unwrap_or(implied).round(),
+                power_measured: measured.is_some(),
+                reason: ld.map_or("waiting", |x| x.reason.code()).to_owned(),
+                why: engine.explain(id),
+                r#override: engine
+                    .override_of(id)
+                    .map(|o| OverrideStatus { command: o.command.to_string(), until: o.until.to_string() }),
+                runtime_today_s: runtime.as_secs_f64().round(),
+                energy_today_wh: energy.0.round(),
+                obligations: l
+                    .obligations
+                    .iter()
+                    .enumerate()
+                    .map(|(k, ob)| obligation(ob, runtime, temperature, last_cycles.get(k).copied().flatten()))
+                    .collect(),
+            }
+        })
+        .collect();
+    let counters = engine.counters();
+    let pv = fresh(site.roles.pv);
+    let managed: f64 = loads.iter().map(|l: &LoadStatus| l.power_w).sum();
+    let house = match (pv, d.grid) {
+        (Some(pv), Some(grid)) => Some((pv + grid.0 - managed).max(0.0).round()),
+        _ => None,
+    };
+    Status {
+        site: site.name.clone(),
+        time: Some(now.to_string()),
+        mode: mode_word(d.mode).to_owned(),
+        export_policy: export_policy(site),
+        grid_w: d.grid.map(|g| g.0.round()),
+        pv_w: pv.map(f64::round),
+        house_w: house,
+        surplus_w: d.surplus.0.round(),
+        inverter: site.inverter.as_ref().map(|ic| InverterStatus {
+            limit_w: d.inverter_limit.map(|p| p.0.round()),
+            rated_w: ic.rated.0,
+            reason: limit_word(d.limit_reason).to_owned(),
+            why: limit_why(d.limit_reason).to_owned(),
+        }),
+        loads,
+        today: TodayStatus {
+            import_wh: counters.import_today.0.round(),
+            export_wh: counters.export_today.0.round(),
+            diverted_wh: counters.diverted_today.0.round(),
+        },
+        points: points(site, snapshot, now),
+        devices: devices(site, health),
+        recent: recent.to_vec(),
+    }
+}
+
+/// Marks a document as the shutdown's: safe states dispatched, controller stopping.
+pub fn stopped(mut status: Status) -> Status {
+    status.mode = "stopped".to_owned();
+    status
+}
+
+fn quality(value: f64, at: Timestamp, now: Timestamp, stale_after: Duration) -> Quality {
+    if at == Timestamp::NEVER || value.is_nan() {
+        Quality::Missing
+    } else if now.since(at) > stale_after {
+        Quality::Stale
+    } else {
+        Quality::Fresh
+    }
+}
+
+fn points(site: &Site, snapshot: &Snapshot, now: Timestamp) -> Vec<PointStatus> {
+    site.points
+        .iter()
+        .enumerate()
+        .map(|(i, p)| {
+            let s = snapshot.get(PointId(i));
+            let q = quality(s.value, s.at, now, p.stale_after);
+            PointStatus {
+                name: p.name.clone(),
+                value: (!s.value.is_nan()).then_some(s.value),
+                unit: if p.boolean { String::new() } else { p.dimension.base_unit().to_owned() },
+                quality: match q {
+                    Quality::Fresh => "fresh",
+                    Quality::Stale => "stale",
+                    Quality::Missing => "missing",
+                }
+                .to_owned(),
+                age_s: (s.at != Timestamp::NEVER).then(|| (now.0 - s.at.0).max(0) as f64 / 1000.0),
+            }
+        })
+        .collect()
+}
+
+fn devices(site: &Site, health: &[DeviceHealth]) -> Vec<DeviceStatus> {
+    site.devices
+        .iter()
+        .enumerate()
+        .map(|(i, dev)| {
+            let h = health.get(i).cloned().unwrap_or_default();
+            DeviceStatus {
+                name: dev.name.clone(),
+                up: h.up,
+                down_reason: h.down_reason,
+                exceptions: h.exceptions,
+                malformed: h.malformed,
+            }
+        })
+        .collect()
+}
+
+fn limit_why(reason: LimitReason) -> &'static str {
+    match reason {
+        LimitReason::None => "not limited",
+        LimitReason::ExportGuard => "export guard: export above the limit and no load can take more",
+        LimitReason::Escalated => "export guard: export outlasted the deadline, held at the safe limit",
+        LimitReason::Failsafe => "fail-safe: a guard signal is stale, held at the safe limit",
+    }
+}
+
+fn obligation(
+    ob: &Obligation,
+    runtime: Duration,
+    temperature: Option<f64>,
+    last_cycle_ms: Option<i64>,
+) -> ObligationStatus {
+    let what = ob.describe();
+    match ob {
+        Obligation::RunDaily { duration, .. } => {
+            let fraction = if duration.is_zero() { 1.0 } else { runtime.as_secs_f64() / duration.as_secs_f64() };
+            ObligationStatus {
+                what,
+                progress: format!("{} of {}", format_duration(runtime), format_duration(*duration)),
+                fraction: Some(fraction.clamp(0.0, 1.0)),
+            }
+        }
+        Obligation::ReachBy { target, .. } => match temperature {
+            Some(t) => ObligationStatus {
+                what,
+                progress: format!("{} °C of {target}", trim_number((t * 10.0).round() / 10.0)),
+                fraction: Some(if target.0 > 0.0 { (t / target.0).clamp(0.0, 1.0) } else { 1.0 }),
+            },
+            None => ObligationStatus { what, progress: "temperature unknown".to_owned(), fraction: None },
+        },
+        Obligation::Cycle { .. } => ObligationStatus {
+            what,
+            progress: match last_cycle_ms {
+                Some(ms) => format!("last cycle {}", Timestamp(ms)),
+                None => "no cycle recorded yet".to_owned(),
+            },
+            fraction: None,
+        },
+    }
+}

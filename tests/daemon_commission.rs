@@ -1,0 +1,121 @@
+//! The commissioning verbs as an installer runs them: `spillway read` prints every
+//! point raw and decoded, `spillway step-test` switches a load on and off and measures
+//! the step at the meter; both say clearly when a device does not answer. The binary
+//! runs as a child process against the test plant on loopback (real time; bounded).
+
+mod daemon_support;
+mod support;
+
+use std::time::Duration;
+
+use daemon_support::{LOADS, Plant};
+use tokio::process::Command;
+use tokio_modbus::ExceptionCode;
+
+async fn spillway(args: &[&str]) -> (i32, String, String) {
+    let out = tokio::time::timeout(
+        Duration::from_secs(60),
+        Command::new(env!("CARGO_BIN_EXE_spillway")).args(args).env_remove("RUST_LOG").output(),
+    )
+    .await
+    .expect("the command ends")
+    .unwrap();
+    (
+        out.status.code().unwrap_or(-1),
+        String::from_utf8_lossy(&out.stdout).into_owned(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
+fn write_site(plant: &Plant, tag: &str) -> (std::path::PathBuf, String) {
+    let dir = std::env::temp_dir().join(format!("spillway-commission-{tag}-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("bench.yaml");
+    // A scaled register too: the tank sensor in 0.1 °C on the relay module's inputs.
+    let yaml = plant.site_yaml(LOADS, "").replace(
+        "\ninverter:",
+        "\n  tank_temp: { device: relays, register: 5, table: input, type: i16, scale: 0.1, unit: °C }\ninverter:",
+    );
+    std::fs::write(&path, yaml).unwrap();
+    let p = path.display().to_string();
+    (path, p)
+}
+
+#[tokio::test]
+async fn read_prints_every_point_raw_and_decoded_and_names_the_failures() {
+    let plant = Plant::start(1800.0).await;
+    plant.devices.set_input(3, 5, &[(-52i16) as u16]);
+    let (path, site) = write_site(&plant, "read");
+    tokio::time::sleep(Duration::from_millis(300)).await; // a plant step or two
+
+    let (code, out, err) = spillway(&["read", &site]).await;
+    assert_eq!(code, 0, "{out}\n{err}");
+    let line = |name: &str| out.lines().find(|l| l.trim_start().starts_with(name)).unwrap_or("").to_owned();
+    assert!(line("grid").contains("holding 0 ×1") && line("grid").contains("[0xFA88]"), "{out}"); // −1400 W
+    assert!(line("grid").contains("-1.4 kW") || line("grid").ends_with("-1400 W"), "{out}");
+    assert!(line("pv ").contains("1800 W") || line("pv ").contains("1.8 kW"), "{out}");
+    assert!(line("tank_temp").contains("[0xFFCC]") && line("tank_temp").contains("-5.2 °C"), "{out}");
+
+    // One device: only its points. A refused register: named with its exception.
+    plant.devices.with(|s| {
+        s.exceptions.insert((4, 5), ExceptionCode::IllegalDataAddress);
+    });
+    let (code, out, _) = spillway(&["read", &site, "--device", "relays"]).await;
+    assert_eq!(code, 1, "{out}");
+    assert!(!out.contains("grid"), "{out}");
+    assert!(line_of(&out, "tank_temp").contains("exception IllegalDataAddress"), "{out}");
+
+    // A device that does not answer at all.
+    drop(plant);
+    tokio::time::sleep(Duration::from_millis(200)).await;
+    let (code, out, _) = spillway(&["read", &site, "--device", "meter"]).await;
+    assert_eq!(code, 1);
+    assert!(out.contains("meter: cannot connect to 127.0.0.1:"), "{out}");
+    let (code, _, err) = spillway(&["read", &site, "--device", "nope"]).await;
+    assert_eq!(code, 1);
+    assert!(err.contains("no device \"nope\"") && err.contains("meter, inverter, relays"), "{err}");
+    let _ = std::fs::remove_dir_all(path.parent().unwrap());
+}
+
+fn line_of(out: &str, name: &str) -> String {
+    out.lines().find(|l| l.trim_start().starts_with(name)).unwrap_or("").to_owned()
+}
+
+#[tokio::test]
+async fn step_test_switches_the_load_measures_the_step_and_switches_it_off() {
+    let plant = Plant::start(0.0).await;
+    let (path, site) = write_site(&plant, "step");
+    let (code, out, err) =
+        spillway(&["step-test", &site, "--load", "water_heater", "--hold", "3s", "--settle", "2s", "--yes"]).await;
+    println!("{out}");
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert!(out.contains("water_heater: ON") && out.contains("water_heater: OFF"), "{out}");
+    assert!(out.contains("step +3000 W against 3 kW rated: the relay switches this load"), "{out}");
+    assert_eq!(plant.devices.coil(3, 0), Some(false), "off again");
+    assert_eq!(plant.devices.coil(3, 1), Some(false), "the pump was never touched");
+    assert_eq!(plant.devices.holding(2, 10), Some(5000), "nor the inverter limit");
+    let on: Vec<_> = plant.history().into_iter().filter(|s| s.heater).collect();
+    assert!(!on.is_empty(), "the heater really ran");
+
+    // The wrong relay: the pump's test sees a 1.1 kW step, the heater's rating expects 3 kW.
+    let wrong = std::fs::read_to_string(&path).unwrap().replace("coil: 0 }", "coil: 1 }");
+    std::fs::write(&path, wrong).unwrap();
+    let (code, out, _) =
+        spillway(&["step-test", &site, "--load", "water_heater", "--hold", "3s", "--settle", "2s", "--yes"]).await;
+    println!("{out}");
+    assert_eq!(code, 1, "{out}");
+    assert!(out.contains("step +1100 W against 3 kW rated: check that relays coil 1 feeds water_heater"), "{out}");
+
+    // Without --yes and no terminal to ask on, nothing is switched.
+    let (code, _, err) = spillway(&["step-test", &site, "--load", "water_heater"]).await;
+    assert_eq!(code, 1);
+    assert!(err.contains("--yes"), "{err}");
+
+    // A meter that does not answer.
+    plant.meter.set_silent(true);
+    let (code, _, err) =
+        spillway(&["step-test", &site, "--load", "water_heater", "--hold", "1s", "--settle", "1s", "--yes"]).await;
+    assert_eq!(code, 1);
+    assert!(err.contains("device \"meter\" does not answer"), "{err}");
+    let _ = std::fs::remove_dir_all(path.parent().unwrap());
+}

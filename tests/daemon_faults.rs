@@ -1,0 +1,142 @@
+//! Faults a live site meets, against the daemon over loopback Modbus TCP: a meter that
+//! goes silent, devices that restart, exception responses. Paused tokio clock; figures
+//! printed in tokio time.
+
+mod daemon_support;
+mod support;
+
+use std::time::Duration;
+
+use daemon_support::{LOADS, Plant, T0, load, options, plant_until, start, status_until};
+use tokio_modbus::ExceptionCode;
+
+/// Runs a plant at 4.2 kW of PV until the heater has run a while (export cleared,
+/// heater on, curtailment released).
+async fn running() -> (Plant, spillway::daemon::Daemon) {
+    let plant = Plant::start(4200.0).await;
+    let daemon = start(&plant.site_yaml(LOADS, ""), options(T0)).await;
+    settle(&plant, &daemon).await;
+    (plant, daemon)
+}
+
+async fn settle(plant: &Plant, daemon: &spillway::daemon::Daemon) {
+    status_until(daemon, Duration::from_secs(60), "heater on", |s| load(s, "water_heater").on).await;
+    plant_until(plant, Duration::from_secs(60), "heater drawing", |s| s.heater).await;
+    tokio::time::sleep(Duration::from_secs(60)).await;
+}
+
+#[tokio::test(start_paused = true)]
+async fn a_silent_meter_sends_the_loads_to_safe_states_and_curtails_within_the_timeout() {
+    let (plant, daemon) = running().await;
+    assert!(plant.last().unwrap().heater);
+    let silent_at = tokio::time::Instant::now();
+    plant.meter.set_silent(true);
+    let safe = plant_until(&plant, Duration::from_secs(10), "heater off and PV at 0 W", |s| {
+        !s.heater && s.limit == 0.0 && s.pv == 0.0
+    })
+    .await;
+    let took = safe.at - silent_at;
+    let s = status_until(&daemon, Duration::from_secs(2), "fail-safe", |s| s.mode == "failsafe").await;
+    println!(
+        "meter silent → heater off and inverter at 0 W after {} ms of tokio time (stale after 2.5 s, tick 1 s)",
+        took.as_millis()
+    );
+    // Stale after 2.5 s (the default), noticed at the next tick, written at once.
+    assert!(took <= Duration::from_millis(3600), "{took:?}");
+    assert_eq!(load(&s, "water_heater").reason, "failsafe");
+    assert_eq!(s.inverter.as_ref().unwrap().reason, "failsafe");
+    assert_eq!(s.devices[0].up, Some(false), "the meter is reported down");
+
+    // The meter answers again: the daemon resumes, calmly.
+    let before = daemon.status().borrow().recent.len();
+    plant.meter.set_silent(false);
+    status_until(&daemon, Duration::from_secs(30), "back to normal", |s| s.mode == "normal").await;
+    tokio::time::sleep(Duration::from_secs(180)).await;
+    let s = daemon.status().borrow().clone();
+    let switchings = s.recent.iter().filter(|e| e.text.contains(" → ") && !e.text.starts_with("inverter")).count();
+    println!("after the meter returned: {switchings} load switchings in 3 min ({} events before)", before);
+    assert!(load(&s, "water_heater").on, "the heater runs again: {:?}", load(&s, "water_heater"));
+    daemon.shutdown();
+    daemon.wait().await;
+}
+
+/// Load switchings (not limit changes) in the status's recent events after `from`
+/// (RFC 3339 strings of one format compare in time order).
+fn load_switchings(s: &spillway::status::Status, from: &str) -> Vec<String> {
+    s.recent
+        .iter()
+        .filter(|e| e.time.as_str() >= from && e.text.contains(" → ") && !e.text.starts_with("inverter"))
+        .map(|e| format!("{} {}", e.time, e.text))
+        .collect()
+}
+
+#[tokio::test(start_paused = true)]
+async fn restarted_devices_get_their_commands_back_without_a_burst_of_switchings() {
+    let plant = Plant::start(4200.0).await;
+    let relay_points = "
+  heater_relay: { device: relays, coil: 0, unit: bool }
+  pump_relay: { device: relays, coil: 1, unit: bool }";
+    let yaml = plant.site_yaml(LOADS, "").replace("\ninverter:", &format!("{relay_points}\ninverter:"));
+    let daemon = start(&yaml, options(T0)).await;
+    settle(&plant, &daemon).await;
+
+    // The relay module and the inverter power-cycle: coils fall back to off, and until
+    // the links reconnect neither the relay nor the limit can be written. The relays'
+    // own coils are read as points, so the link notices the dropped connection at its
+    // next poll (a link with nothing to read notices at its next re-assertion, 30 s).
+    let t = daemon.status().borrow().time.clone().unwrap();
+    let rebooted = tokio::time::Instant::now();
+    plant.devices.reboot();
+    assert!(!plant.devices.coil(3, 0).unwrap());
+    plant_until(&plant, Duration::from_secs(1), "heater relay open", |s| s.at > rebooted && !s.heater).await;
+    let back = plant_until(&plant, Duration::from_secs(10), "heater relay re-asserted", |s| s.heater).await;
+    println!("relay module restarted: heater coil re-asserted {} ms later", (back.at - rebooted).as_millis());
+    tokio::time::sleep(Duration::from_secs(120)).await;
+    let s = daemon.status().borrow().clone();
+    let after = load_switchings(&s, &t);
+    println!("switchings in the 2 min after the restart: {after:?}");
+    // The export while the relay was open may escalate the guard and the import while
+    // it releases may stop a load by its own rule; but no load switches twice.
+    for l in ["water_heater", "pool_pump"] {
+        assert!(after.iter().filter(|e| e.contains(l)).count() <= 1, "{l} chattered: {after:?}");
+    }
+    assert_eq!(s.mode, "normal");
+
+    // The meter restarts too: no chattering either.
+    let t = s.time.clone().unwrap();
+    plant.meter.reboot();
+    tokio::time::sleep(Duration::from_secs(240)).await;
+    let s = daemon.status().borrow().clone();
+    let after = load_switchings(&s, &t);
+    println!("switchings in the 4 min after the meter restarted: {after:?}");
+    for l in ["water_heater", "pool_pump"] {
+        assert!(after.iter().filter(|e| e.contains(l)).count() <= 1, "{l} chattered: {after:?}");
+    }
+    assert_eq!(s.mode, "normal");
+    assert!(s.devices.iter().all(|d| d.up == Some(true)), "{:?}", s.devices);
+    daemon.shutdown();
+    daemon.wait().await;
+}
+
+#[tokio::test(start_paused = true)]
+async fn exception_responses_are_counted_logged_and_ignored() {
+    let (plant, daemon) = running().await;
+    // The inverter refuses to report PV (function 3 at 0): the guard works on the meter alone.
+    plant.devices.with(|s| {
+        s.exceptions.insert((3, 0), ExceptionCode::ServerDeviceBusy);
+    });
+    tokio::time::sleep(Duration::from_secs(20)).await;
+    let s = daemon.status().borrow().clone();
+    let inverter = s.devices.iter().find(|d| d.name == "inverter").unwrap();
+    println!("inverter: {} exception responses in 20 s", inverter.exceptions);
+    assert!(inverter.exceptions >= 10, "{inverter:?}");
+    assert_eq!(inverter.up, Some(true), "an exception is not a dead device");
+    assert_eq!(s.mode, "normal", "the grid meter still answers");
+    assert!(load(&s, "water_heater").on);
+    let before = s.time.clone();
+    tokio::time::sleep(Duration::from_secs(5)).await;
+    assert_ne!(daemon.status().borrow().time, before, "still ticking");
+    daemon.shutdown();
+    let summary = daemon.wait().await;
+    assert!(summary.exceptions >= 10);
+}

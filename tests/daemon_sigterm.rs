@@ -1,0 +1,98 @@
+//! The real `spillway run` binary as a child process against the test plant on
+//! loopback: it switches a load on, and on SIGTERM writes the safe states (relay open,
+//! inverter at its safe limit) before it exits with status 0. Real time: the child has
+//! its own clock; waits are bounded and nothing asserts on how long they took.
+
+mod daemon_support;
+mod support;
+
+use std::process::Stdio;
+use std::time::Duration;
+
+use daemon_support::{LOADS, Plant, plant_until};
+use tokio::io::AsyncReadExt;
+
+#[cfg(unix)]
+#[tokio::test]
+async fn sigterm_writes_the_safe_states_before_the_process_exits() {
+    let plant = Plant::start(4200.0).await;
+    let yaml = plant
+        .site_yaml(LOADS, "")
+        .replace("poll: 1s", "poll: 200ms")
+        .replace("  import_target: 40W", "  import_target: 40W\n  tick: 200ms")
+        .replace("for 5s", "for 1s");
+    let dir = std::env::temp_dir().join(format!("spillway-sigterm-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let site = dir.join("bench.yaml");
+    std::fs::write(&site, yaml).unwrap();
+
+    let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .arg("run")
+        .arg(&site)
+        .env("RUST_LOG", "info")
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let pid = child.id().unwrap();
+    let mut stderr = child.stderr.take().unwrap();
+    let log = tokio::spawn(async move {
+        let mut s = String::new();
+        let _ = stderr.read_to_string(&mut s).await;
+        s
+    });
+
+    plant_until(&plant, Duration::from_secs(30), "a load switched on by the child", |s| s.heater || s.pump).await;
+    let status = std::process::Command::new("kill").args(["-TERM", &pid.to_string()]).status().unwrap();
+    assert!(status.success());
+    let exit = tokio::time::timeout(Duration::from_secs(20), child.wait()).await.expect("the child exits").unwrap();
+    let log = log.await.unwrap();
+    assert!(exit.success(), "exit status {exit:?}\n{log}");
+    assert_eq!(plant.devices.coil(3, 0), Some(false), "heater relay open\n{log}");
+    assert_eq!(plant.devices.coil(3, 1), Some(false), "pump relay open\n{log}");
+    assert_eq!(plant.devices.holding(2, 10), Some(0), "inverter at its safe limit (0 W)\n{log}");
+    assert!(log.contains("SAFETY") && log.contains("licensed electrician"), "the banner\n{log}");
+    assert!(log.contains("SIGTERM received") && log.contains("safe states dispatched"), "{log}");
+    let state = dir.join("bench.state.json");
+    assert!(state.exists(), "counters saved next to the site file");
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+/// The same against the plant simulator served in-process (real time): the child
+/// curtails the inverter, and SIGTERM leaves the simulated relays open and the limit at
+/// the site's safe value.
+#[cfg(unix)]
+#[tokio::test]
+async fn sigterm_against_the_simulator_leaves_its_relays_open_and_its_limit_safe() {
+    let sim = daemon_support::sim::Sim::start(4200.0).await;
+    let dir = std::env::temp_dir().join(format!("spillway-sigterm-sim-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let site = dir.join("house.yaml");
+    std::fs::write(&site, sim.site_yaml()).unwrap();
+    let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .arg("run")
+        .arg(&site)
+        .arg("--state")
+        .arg(dir.join("house.state.json"))
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let pid = child.id().unwrap();
+    let deadline = std::time::Instant::now() + Duration::from_secs(30);
+    while !sim.limit_w().is_some_and(|l| l > 0.0 && l < 4000.0) {
+        assert!(std::time::Instant::now() < deadline, "the child never curtailed: {:?}", sim.limit_w());
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    let status = std::process::Command::new("kill").args(["-TERM", &pid.to_string()]).status().unwrap();
+    assert!(status.success());
+    let exit = tokio::time::timeout(Duration::from_secs(20), child.wait()).await.expect("the child exits").unwrap();
+    assert!(exit.success(), "{exit:?}");
+    assert_eq!(sim.relays(), vec![false, false]);
+    assert_eq!(sim.limit_w(), Some(0.0), "the site's safe limit is 0 W");
+    assert!(dir.join("house.state.json").exists());
+    sim.handle.stop().await;
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -1,0 +1,173 @@
+//! The daemon against the plant simulator (`spillway_sim::serve`) over loopback Modbus
+//! TCP, with the zero-export example site (SunSpec meter and inverter, relay module,
+//! tank sensor): a PV step is answered within one poll and one tick; a silent meter
+//! sends everything to its safe state; a simulator restart is followed by reconnection
+//! and re-assertion without a burst of switchings; exception responses are counted.
+//! Paused tokio clock (the simulator's clock runs on tokio time too): the figures
+//! printed are simulated time, exact and repeatable.
+
+mod daemon_support;
+mod support;
+
+use std::time::Duration;
+
+use daemon_support::sim::Sim;
+use daemon_support::{load, start, status_until};
+use spillway::daemon::{Daemon, Options};
+use spillway::sources::Clock;
+use spillway::units::Timestamp;
+use tokio::time::Instant;
+
+/// The outside bound. Source: ENA Engineering Recommendation G100 Issue 1 (2016),
+/// "Technical Guidance for Customer Export Limiting Schemes": export brought under the
+/// agreed limit within 5 s, and within 5 s when a part of the scheme fails.
+const G100: Duration = Duration::from_secs(5);
+
+async fn daemon_for(sim: &Sim, yaml: &str) -> Daemon {
+    let options = Options { clock: Clock::anchored(Timestamp(sim.handle.now_ms())), ..Options::default() };
+    start(yaml, options).await
+}
+
+/// Waits (tokio time, 10 ms steps) until `cond` holds; returns when.
+async fn sim_until(what: &str, limit: Duration, mut cond: impl FnMut() -> bool) -> Instant {
+    let deadline = Instant::now() + limit;
+    loop {
+        if cond() {
+            return Instant::now();
+        }
+        assert!(Instant::now() < deadline, "not within {limit:?}: {what}");
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+}
+
+#[tokio::test(start_paused = true)]
+async fn a_pv_step_is_curtailed_within_a_poll_a_tick_and_the_meter_latency() {
+    let sim = Sim::start(0.0).await;
+    let daemon = daemon_for(&sim, &sim.site_yaml()).await;
+    status_until(&daemon, Duration::from_secs(10), "rules in charge", |s| s.mode == "normal").await;
+    // Settle: the initial fail-safe limit released, the meter importing.
+    tokio::time::sleep(Duration::from_secs(60)).await;
+    assert!(sim.meter_w() > 0.0, "importing before the step: {}", sim.meter_w());
+
+    sim.pv.set(4200.0);
+    let exported = sim_until("export at the meter", Duration::from_secs(3), || sim.meter_w() < -20.0).await;
+    // The answer: a limit that cuts the export, or a relay that takes it.
+    let pv_then = sim.handle.readings().pv.power_w;
+    let commanded = sim_until("a command at the actuators", G100, || {
+        sim.limit_w().is_some_and(|l| l < pv_then - 500.0) || sim.relays().iter().any(|r| *r)
+    })
+    .await;
+    let cleared = sim_until("export cleared at the meter", G100, || sim.meter_w() >= -20.0).await;
+    let reaction = commanded - exported;
+    println!(
+        "simulator: export at the meter → curtailment at the inverter after {} ms; meter clear after {} ms \
+         (poll 1 s, tick 1 s, meter averaging 1 s + 0.5 s delay; ENA G100 Issue 1 allows 5 s)",
+        reaction.as_millis(),
+        (cleared - exported).as_millis()
+    );
+    // One poll period plus one engine tick, plus the grid point's configured latency
+    // (1.5 s: the guard does not act twice on readings that may predate its last
+    // change of the limit, release steps included), plus the 100 ms plant step.
+    assert!(reaction <= Duration::from_millis(1000 + 1000 + 1500 + 100), "{reaction:?}");
+    assert!(cleared - exported <= G100);
+
+    // The heater then soaks up the surplus curtailment held back.
+    let s = status_until(&daemon, Duration::from_secs(90), "heater on", |s| load(s, "water_heater").on).await;
+    assert_eq!(load(&s, "water_heater").reason, "start_rule");
+    sim_until("tank relay closed", Duration::from_secs(5), || sim.relays()[0]).await;
+    daemon.shutdown();
+    daemon.wait().await;
+    assert_eq!(sim.relays(), vec![false, false], "relays open at shutdown");
+    assert_eq!(sim.limit_w(), Some(0.0), "inverter at its safe limit (0 W) at shutdown");
+    sim.handle.stop().await;
+}
+
+#[tokio::test(start_paused = true)]
+async fn a_silent_meter_curtails_and_opens_the_relays_within_the_timeout() {
+    let sim = Sim::start(4200.0).await;
+    let daemon = daemon_for(&sim, &sim.site_yaml()).await;
+    status_until(&daemon, Duration::from_secs(90), "heater on", |s| load(s, "water_heater").on).await;
+    sim_until("tank relay closed", Duration::from_secs(5), || sim.relays()[0]).await;
+    tokio::time::sleep(Duration::from_secs(10)).await;
+
+    let silent = Instant::now();
+    sim.handle.inject_spec("meter-silent+60s").unwrap();
+    let safe = sim_until("safe states at the plant", Duration::from_secs(10), || {
+        !sim.relays()[0] && sim.limit_w() == Some(0.0)
+    })
+    .await;
+    println!(
+        "simulator: meter silent → relays open and inverter at 0 W after {} ms (stale after 2.5 s; G100 allows 5 s)",
+        (safe - silent).as_millis()
+    );
+    assert!(safe - silent <= G100);
+    let s = daemon.status().borrow().clone();
+    assert_eq!(s.mode, "failsafe");
+    assert_eq!(s.inverter.as_ref().unwrap().reason, "failsafe");
+
+    // The meter speaks again: the rules take over, calmly.
+    status_until(&daemon, Duration::from_secs(120), "normal again", |s| s.mode == "normal").await;
+    daemon.shutdown();
+    daemon.wait().await;
+    sim.handle.stop().await;
+}
+
+#[tokio::test(start_paused = true)]
+async fn a_simulator_restart_is_followed_by_reconnection_and_re_assertion_without_a_burst() {
+    let sim = Sim::start(4200.0).await;
+    let daemon = daemon_for(&sim, &sim.site_yaml()).await;
+    status_until(&daemon, Duration::from_secs(90), "heater on", |s| load(s, "water_heater").on).await;
+    sim_until("tank relay closed", Duration::from_secs(5), || sim.relays()[0]).await;
+    tokio::time::sleep(Duration::from_secs(30)).await;
+    let before = daemon.status().borrow().clone();
+    let t = before.time.clone().unwrap();
+
+    // Every device restarts at its power-on state: relays open, no limit.
+    sim.handle.restart_after(Duration::from_millis(500)).await.unwrap();
+    assert!(!sim.relays()[0]);
+    let back = Instant::now();
+    let reasserted = sim_until("tank relay re-asserted", Duration::from_secs(40), || sim.relays()[0]).await;
+    println!("simulator restarted: tank relay closed again after {} ms", (reasserted - back).as_millis());
+    tokio::time::sleep(Duration::from_secs(120)).await;
+    let s = daemon.status().borrow().clone();
+    let switchings: Vec<_> = s
+        .recent
+        .iter()
+        .filter(|e| e.time.as_str() >= t.as_str() && e.text.contains(" → ") && !e.text.starts_with("inverter"))
+        .map(|e| e.text.clone())
+        .collect();
+    println!("switchings in the 2 min after the restart: {switchings:?}");
+    for l in ["water_heater", "pool_pump"] {
+        assert!(switchings.iter().filter(|e| e.starts_with(l)).count() <= 1, "{l} chattered: {switchings:?}");
+    }
+    assert!(s.devices.iter().all(|d| d.up == Some(true)), "{:?}", s.devices);
+    assert_eq!(s.mode, "normal");
+    daemon.shutdown();
+    daemon.wait().await;
+    sim.handle.stop().await;
+}
+
+#[tokio::test(start_paused = true)]
+async fn exception_responses_from_the_simulator_are_counted_and_ignored() {
+    let sim = Sim::start(2000.0).await;
+    // A point at an address the relay module does not have: every poll draws an
+    // IllegalDataAddress; the rest of the site goes on.
+    let yaml = sim
+        .site_yaml()
+        .replace("\ninverter:", "\n  bogus:     { device: relays, register: 9000, table: input, unit: W }\ninverter:");
+    let daemon = daemon_for(&sim, &yaml).await;
+    status_until(&daemon, Duration::from_secs(10), "rules in charge", |s| s.mode == "normal").await;
+    tokio::time::sleep(Duration::from_secs(20)).await;
+    let s = daemon.status().borrow().clone();
+    let relays = s.devices.iter().find(|d| d.name == "relays").unwrap();
+    println!("simulator: relay module answered {} polls with exceptions in 20 s", relays.exceptions);
+    assert!(relays.exceptions >= 10, "{relays:?}");
+    assert_eq!(relays.up, Some(true));
+    assert_eq!(s.mode, "normal");
+    let bogus = s.points.iter().find(|p| p.name == "bogus").unwrap();
+    assert_eq!(bogus.quality, "missing");
+    daemon.shutdown();
+    let summary = daemon.wait().await;
+    assert!(summary.exceptions >= 10);
+    sim.handle.stop().await;
+}

@@ -1,0 +1,99 @@
+//! Restarting the daemon mid-day: the counters survive in the state file, and the pool
+//! pump's daily hours go on from where they were; a restart on another day starts
+//! them afresh. Paused tokio clock over loopback Modbus TCP.
+
+mod daemon_support;
+mod support;
+
+use std::path::PathBuf;
+use std::time::Duration;
+
+use daemon_support::{Plant, T0, load, options, start, status_until};
+use spillway::daemon::state_file;
+
+const PUMP_ONLY: &str = "
+  - name: pool_pump
+    priority: 1
+    rated: 1.1kW
+    switch: { device: relays, coil: 1 }
+    start: surplus > 1.2kW for 10s
+    stop: import > 400W for 10s
+    min_on: 2min
+    min_off: 2min
+    obligations:
+      - run: 5h
+        grid_window: 16:00..21:00
+";
+
+fn state_path(test: &str) -> PathBuf {
+    let dir = std::env::temp_dir().join(format!("spillway-daemon-{test}-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let p = dir.join("bench.state.json");
+    let _ = std::fs::remove_file(&p);
+    p
+}
+
+#[tokio::test(start_paused = true)]
+async fn a_restart_mid_day_keeps_the_pumps_hours_and_another_day_starts_afresh() {
+    let plant = Plant::start(2500.0).await;
+    let path = state_path("restart");
+    let yaml = plant.site_yaml(PUMP_ONLY, "");
+
+    // First run: ten minutes with the pump on surplus.
+    let mut opts = options(T0);
+    opts.state_file = Some(path.clone());
+    let daemon = start(&yaml, opts).await;
+    status_until(&daemon, Duration::from_secs(60), "pump on", |s| load(s, "pool_pump").on).await;
+    tokio::time::sleep(Duration::from_secs(600)).await;
+    daemon.shutdown();
+    let summary = daemon.wait().await;
+    assert!(summary.saves >= 1);
+    let saved = state_file::read(&path).unwrap().expect("a state file");
+    let pump = saved.counters.loads.iter().find(|l| l.name == "pool_pump").unwrap();
+    println!("saved after the first run: pump ran {:.0} s, {:.0} Wh", pump.runtime_today_s, pump.energy_today_wh);
+    assert!((580.0..=620.0).contains(&pump.runtime_today_s), "{pump:?}");
+    assert!(pump.energy_today_wh > 150.0, "{pump:?}");
+
+    // Second run, later the same day: the counters come back before the first tick.
+    let mut opts = options(T0.plus(Duration::from_secs(900)));
+    opts.state_file = Some(path.clone());
+    let daemon = start(&yaml, opts).await;
+    let s = daemon.status().borrow().clone();
+    assert_eq!(s.mode, "starting");
+    let restored = load(&s, "pool_pump").runtime_today_s;
+    assert!((restored - pump.runtime_today_s).abs() < 1.0, "{restored} vs {}", pump.runtime_today_s);
+    assert!(load(&s, "pool_pump").obligations[0].progress.ends_with("of 5 h"));
+    status_until(&daemon, Duration::from_secs(60), "pump on", |s| load(s, "pool_pump").on).await;
+    tokio::time::sleep(Duration::from_secs(300)).await;
+    let s = daemon.status().borrow().clone();
+    let now = load(&s, "pool_pump").runtime_today_s;
+    println!("after the second run's 5 min: pump {now:.0} s today ({})", load(&s, "pool_pump").obligations[0].progress);
+    assert!(now >= restored + 270.0, "the hours go on: {now} vs {restored}");
+    daemon.shutdown();
+    daemon.wait().await;
+
+    // Third run, the next morning: yesterday's hours do not count today.
+    let mut opts = options(T0.plus(Duration::from_secs(24 * 3600)));
+    opts.state_file = Some(path.clone());
+    let daemon = start(&yaml, opts).await;
+    assert_eq!(load(&daemon.status().borrow(), "pool_pump").runtime_today_s, 0.0);
+    daemon.shutdown();
+    daemon.wait().await;
+    let _ = std::fs::remove_dir_all(path.parent().unwrap());
+}
+
+#[tokio::test(start_paused = true)]
+async fn a_corrupt_state_file_is_reported_and_replaced() {
+    let plant = Plant::start(0.0).await;
+    let path = state_path("corrupt");
+    std::fs::write(&path, "{ half a document").unwrap();
+    let mut opts = options(T0);
+    opts.state_file = Some(path.clone());
+    let daemon = start(&plant.site_yaml(PUMP_ONLY, ""), opts).await;
+    status_until(&daemon, Duration::from_secs(10), "ticking", |s| s.time.is_some()).await;
+    daemon.shutdown();
+    daemon.wait().await;
+    let doc = state_file::read(&path).unwrap().expect("replaced by a good one");
+    assert_eq!(doc.site, "Bench");
+    let _ = std::fs::remove_dir_all(path.parent().unwrap());
+}
