@@ -25,6 +25,8 @@ pub struct Guard {
     /// When the limit was last changed: the next change waits for a grid reading
     /// measured after it, so a delayed meter cannot make the guard correct twice.
     acted_at: Option<Timestamp>,
+    /// Whether the last change raised the limit (a cut may then follow at once).
+    last_raised: bool,
     /// Recent PV readings, to carry a late grid reading forward to now.
     pv_history: std::collections::VecDeque<(Timestamp, Power)>,
 }
@@ -125,7 +127,14 @@ impl Guard {
         };
         let expected = grid + delta_loads - pv_change;
         let rate = site.guard.release_rate * dt.as_secs_f64();
-        if !fresh_reading {
+        // A cut right after a release may act on a reading that predates the release: it
+        // then cuts too little, never too much, so it need not wait. Everything else does.
+        let cut_needed = match self.limit {
+            None => expected < -export_limit,
+            Some(_) => expected < target - tolerance,
+        };
+        let may_act = fresh_reading || (cut_needed && self.last_raised);
+        if !may_act {
             return (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None });
         }
         let before = self.limit;
@@ -171,6 +180,11 @@ impl Guard {
         };
         if self.limit != before {
             self.acted_at = Some(now);
+            self.last_raised = match (before, self.limit) {
+                (Some(b), Some(l)) => l > b,
+                (Some(_), None) => true,
+                _ => false,
+            };
         }
         (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None })
     }

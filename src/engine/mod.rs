@@ -78,6 +78,8 @@ struct LoadState {
     stage_trend: Option<(i8, Timestamp)>,
     /// Stepped loads: when the stage last changed.
     stage_changed_at: Timestamp,
+    /// The fired rule's explanation at the last switching (its state is reset then).
+    switched_because: Option<String>,
     /// Batteries: reached the upper state of charge, waiting for the resume level.
     full: bool,
     /// Settling after recovery: whether this load has used its one switching.
@@ -137,6 +139,7 @@ impl Engine {
                 obligations: vec![ObligationState::default(); l.obligations.len()],
                 stage_trend: None,
                 stage_changed_at: Timestamp::NEVER,
+                switched_because: None,
                 full: false,
                 settled: true,
                 override_: None,
@@ -278,6 +281,7 @@ impl Engine {
             other => other.to_string(),
         };
         let detail = match state.reason {
+            Reason::Started | Reason::Stopped if state.switched_because.is_some() => state.switched_because.clone(),
             Reason::Started | Reason::Waiting | Reason::MinOff { .. } => rule_detail(&l.start, &state.start),
             Reason::Stopped | Reason::Running | Reason::MinOn { .. } => rule_detail(&l.stop, &state.stop),
             Reason::Inhibited => rule_detail(&l.inhibit, &state.inhibit),
@@ -477,6 +481,17 @@ impl Engine {
                 if self.recovered_at.is_some_and(|r| now.since(r) < SETTLE + site.failsafe.recovery_hold) {
                     st.settled = true;
                 }
+                // Say why in the words of the rule that fired, before its state is reset
+                // (a switching is rare: the allocation is not on the tick's hot path).
+                let l = &site.loads[i];
+                let fired = match reason {
+                    Reason::Started => l.start.as_ref().zip(st.start.as_ref()),
+                    Reason::Stopped => l.stop.as_ref().zip(st.stop.as_ref()),
+                    _ => None,
+                };
+                st.switched_because = fired.map(|(r, state)| {
+                    r.rule.explain(&EvalInput { values: &self.values, now, local: input_local }, state)
+                });
                 // A new state of the load: its opposite rule starts afresh.
                 reset_rule_states(&site, i, st);
             }
