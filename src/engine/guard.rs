@@ -27,9 +27,13 @@ pub struct Guard {
     acted_at: Option<Timestamp>,
     /// Whether the last change raised the limit (a cut may then follow at once).
     last_raised: bool,
-    /// Recent PV readings, to carry a late grid reading forward to now.
+    /// Recent PV readings, stamped with when each was measured, to carry a late grid
+    /// reading forward to now.
     pv_history: std::collections::VecDeque<(Timestamp, Power)>,
 }
+
+/// The longest stretch of time one release step may count (see `decide`).
+const RELEASE_WINDOW_MAX: Duration = Duration::from_secs(5);
 
 /// How much PV history is kept (longer than any sensible meter latency).
 const PV_HISTORY: Duration = Duration::from_secs(10);
@@ -69,6 +73,7 @@ impl Guard {
         site: &Site,
         values: &[f64],
         grid: Option<(Power, Timestamp)>,
+        pv_measured_at: Timestamp,
         delta_loads: Power,
         absorbable: Power,
         mode: Mode,
@@ -116,17 +121,31 @@ impl Guard {
         // later, so carry the reading forward: more PV now means less import now.
         let pv_change = match pv {
             Some(p) => {
-                self.pv_history.push_back((now, p));
+                if self.pv_history.back().is_none_or(|(t, _)| pv_measured_at > *t) {
+                    self.pv_history.push_back((pv_measured_at, p));
+                }
                 while self.pv_history.front().is_some_and(|(t, _)| now.since(*t) > PV_HISTORY) {
                     self.pv_history.pop_front();
                 }
-                let then = self.pv_history.iter().rev().find(|(t, _)| *t <= measured_at).or(self.pv_history.front());
+                // The PV as the grid reading saw it: the first PV sample measured at or
+                // after the reading. A change between two PV samples may have happened
+                // before the reading or after it; counting it as already in the reading
+                // is what keeps the guard from correcting its own raise twice (the
+                // inverter follows a raised limit within a PV poll, long before the next
+                // PV sample shows it). A cloud that clears in that gap is cut one reading
+                // later; while curtailed, the limit's ceiling caps what it can add.
+                let then = self.pv_history.iter().find(|(t, _)| *t >= measured_at).or(self.pv_history.back());
                 then.map_or(Power::ZERO, |(_, old)| p - *old)
             }
             None => Power::ZERO,
         };
         let expected = grid + delta_loads - pv_change;
-        let rate = site.guard.release_rate * dt.as_secs_f64();
+        // The release rate is per second of time since the limit last moved: a change
+        // waits for a reading measured after the last one, so counting only this tick
+        // would slow the release by the meter's latency. Capped, so a limit that sat
+        // still for long is not given back in one leap.
+        let since_change = self.acted_at.map_or(dt, |t| now.since(t)).clamp(dt, RELEASE_WINDOW_MAX);
+        let rate = site.guard.release_rate * since_change.as_secs_f64();
         // A cut right after a release may act on a reading that predates the release: it
         // then cuts too little, never too much, so it need not wait. Everything else does.
         let cut_needed = match self.limit {

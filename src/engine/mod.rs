@@ -387,6 +387,7 @@ impl Engine {
         // When the grid reading was measured: a correction is made once per new reading,
         // never twice on the same (delayed) one.
         let grid_at = site.roles.grid.map_or(Timestamp::NEVER, |p| snapshot.get(p).at.minus(site.points[p.0].latency));
+        let pv_at = site.roles.pv.map_or(now, |p| snapshot.get(p).at.minus(site.points[p.0].latency));
         let hidden = self.guard.hidden_headroom(&site, &self.values);
         let base_surplus = match &site.connection {
             Connection::Grid { .. } => grid.map(|g| managed - g),
@@ -510,6 +511,7 @@ impl Engine {
             &site,
             &self.values,
             grid.map(|g| (g, grid_at)),
+            pv_at,
             delta_loads,
             absorbable,
             self.mode,

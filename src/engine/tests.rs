@@ -423,6 +423,58 @@ fn curtailment_is_released_gradually_once_import_returns() {
     assert!(second.0 > first.0 && second.0 - first.0 <= 200.0 + 1e-9, "{first} → {second}: at most the release rate");
 }
 
+/// The live set-up that once made the guard oscillate: ticks every second, the PV
+/// polled half a second before each tick, and a meter whose reading describes the site
+/// 1.5 s before it arrives. A limit raise shows in the next PV sample and, already, in
+/// the next fresh grid reading; the guard must not count it twice (cutting back what it
+/// just gave) but settle at the import target with the limit still.
+#[test]
+fn a_limit_raise_seen_by_a_late_meter_is_not_corrected_twice() {
+    let yaml = site("  export: forbidden\n  import_target: 100W", TWO_LOADS)
+        .replace("type: i32, unit: W }", "type: i32, unit: W, latency: 1500ms }");
+    let mut h = Harness::new(&yaml);
+    let grid_p = h.point("grid");
+    let pv_p = h.point("pv");
+    let tank = h.load("tank");
+    // The plant on a 0.5 s grid: 5.2 kW of sun, a 300 W house, the tank's 3 kW element
+    // on (forced via the decisions below), an inverter that follows its limit at once.
+    let potential: f64 = 5200.0;
+    let house = 300.0;
+    let mut limit: Option<f64> = None;
+    let mut drawn = 0.0;
+    let mut grid_history: Vec<f64> = Vec::new(); // one entry per 0.5 s
+    let mut limits = Vec::new();
+    let mut grids = Vec::new();
+    for tick in 0..240 {
+        // Two half-second plant steps per tick.
+        for _ in 0..2 {
+            let pv = limit.map_or(potential, |l: f64| potential.min(l));
+            grid_history.push(house + drawn - pv);
+        }
+        let now = h.now.plus(h.site.tick);
+        let half = Duration::from_millis(500);
+        // PV polled 0.5 s before the tick; the meter's answer at the same moment
+        // describes the site 1.5 s earlier (three half-steps back).
+        let n = grid_history.len();
+        let pv_then = limit.map_or(potential, |l: f64| potential.min(l));
+        h.snapshot.set(pv_p, pv_then, now.minus(half));
+        h.snapshot.set(grid_p, grid_history[n.saturating_sub(4)], now.minus(half));
+        let d = h.tick();
+        limit = d.inverter_limit.map(|p| p.0);
+        drawn = d.loads.iter().zip(&h.site.loads).map(|(l, sl)| l.command.power(&sl.kind).0).sum();
+        if tick >= 180 {
+            limits.push(limit);
+            grids.push(*grid_history.last().unwrap());
+        }
+    }
+    assert!(h.engine.decisions().loads[tank].command.is_on(), "the tank took the surplus");
+    let changes = limits.windows(2).filter(|w| w[0] != w[1]).count();
+    assert!(changes <= 1, "the limit settles, it does not swing: {limits:?}");
+    for g in &grids {
+        assert!((-50.0..=400.0).contains(g), "grid held near the 100 W import target: {grids:?}");
+    }
+}
+
 #[test]
 fn the_guard_escalates_to_the_safe_limit_when_export_outlasts_its_deadline() {
     let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
