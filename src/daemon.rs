@@ -260,7 +260,9 @@ fn restore(engine: &mut Engine, path: &std::path::Path, clock: &Clock) -> Result
             Ok(())
         }
         Err(e @ StateFileError::Invalid { .. }) => {
-            warn!(error = %e, "state file ignored: counters start at zero");
+            // Kept, not overwritten by the next save: it may be worth restoring by hand.
+            let aside = state_file::set_aside(path)?;
+            warn!(error = %e, kept_as = %aside.display(), "state file ignored: counters start at zero");
             Ok(())
         }
         Err(e) => Err(e.into()),

@@ -86,6 +86,18 @@ pub fn read(path: &Path) -> Result<Option<StateDocument>, StateFileError> {
     Ok(Some(doc))
 }
 
+/// Moves a state file this build cannot use out of the way (`home.state.json` →
+/// `home.state.json.invalid`, replacing an older one), so the next save does not
+/// overwrite what a person may want to look at or restore by hand. Returns where it
+/// went.
+pub fn set_aside(path: &Path) -> Result<PathBuf, StateFileError> {
+    let mut name = path.file_name().map_or_else(|| "state.json".into(), |n| n.to_os_string());
+    name.push(".invalid");
+    let aside = path.with_file_name(name);
+    fs::rename(path, &aside).map_err(|source| StateFileError::Io { path: path.display().to_string(), source })?;
+    Ok(aside)
+}
+
 /// Writes the counters atomically (temporary file, fsync, rename, directory sync).
 pub fn write(path: &Path, site: &str, counters: &PersistedState, now: Timestamp) -> Result<(), StateFileError> {
     let doc = StateDocument {
@@ -148,7 +160,7 @@ mod tests {
     }
 
     #[test]
-    fn counters_survive_a_write_and_a_read_and_no_temporary_file_is_left() {
+    fn counters_survive_a_write_and_a_read_and_an_unreadable_file_is_kept_aside() {
         let dir = std::env::temp_dir().join(format!("spillway-state-{}", std::process::id()));
         fs::create_dir_all(&dir).unwrap();
         let path = dir.join("home.state.json");
@@ -160,6 +172,10 @@ mod tests {
         assert!(!temp_path(&path).exists());
         fs::write(&path, "{\"format\": \"other\"}").unwrap();
         assert!(matches!(read(&path), Err(StateFileError::Invalid { .. })));
+        let aside = set_aside(&path).unwrap();
+        assert_eq!(aside, dir.join("home.state.json.invalid"));
+        assert_eq!(fs::read_to_string(&aside).unwrap(), "{\"format\": \"other\"}", "kept as it was");
+        assert_eq!(read(&path).unwrap(), None, "the next start begins afresh");
         fs::remove_dir_all(&dir).unwrap();
     }
 
