@@ -171,11 +171,13 @@ impl Guard {
                     // further than the PV could use now. Behind a cloud the array makes
                     // less than the limit; raising the limit then would only let the sun's
                     // return surge into export, so the limit stays a ceiling just above
-                    // what the site consumes.
+                    // what the site consumes. A release never lowers the limit, though:
+                    // following the consumption down would rewrite the inverter at every
+                    // wobble of the house load (all night long, with no sun at all).
                     let excess = expected - target;
                     let raised = current + rate.min(excess);
                     Some(match pv {
-                        Some(p) => raised.min(p + excess + tolerance * 2.0),
+                        Some(p) => raised.min(p + excess + tolerance * 2.0).max(current),
                         None => raised,
                     })
                 } else if absorbable.0 > 0.0 && pv.is_none_or(|p| p >= current - pinned_margin(inv.rated)) {

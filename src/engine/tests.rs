@@ -475,6 +475,30 @@ fn a_limit_raise_seen_by_a_late_meter_is_not_corrected_twice() {
     }
 }
 
+/// With no sun the limit has nothing to hold back: it must not follow the house load
+/// down and up, rewriting the inverter at every wobble all night.
+#[test]
+fn a_curtailment_does_not_chase_the_house_load_through_the_night() {
+    let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
+    h.set("pv", 4000.0);
+    h.set("grid", -1500.0);
+    let mut limit = h.tick().inverter_limit.expect("curtailed");
+    // Night: no PV, a house wobbling between 200 and 400 W (a fridge, standby loads).
+    h.set("pv", 0.0);
+    let mut changes = 0;
+    for t in 0..600 {
+        h.set("grid", if (t / 7) % 2 == 0 { 200.0 } else { 400.0 });
+        let next = h.tick().inverter_limit;
+        let Some(next) = next else { break };
+        assert!(next >= limit, "a release never lowers the limit: {limit} → {next} at t={t}");
+        if next != limit {
+            changes += 1;
+        }
+        limit = next;
+    }
+    assert!(changes <= 2, "{changes} limit writes over ten minutes of night");
+}
+
 #[test]
 fn the_guard_escalates_to_the_safe_limit_when_export_outlasts_its_deadline() {
     let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
