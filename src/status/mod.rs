@@ -344,7 +344,7 @@ fn devices(site: &Site, health: &[DeviceHealth]) -> Vec<DeviceStatus> {
 fn limit_why(reason: LimitReason) -> &'static str {
     match reason {
         LimitReason::None => "not limited",
-        LimitReason::ExportGuard => "export guard: export above the limit and no load can take more",
+        LimitReason::ExportGuard => "export guard: the loads cannot take all the PV, so the inverter is held back",
         LimitReason::Escalated => "export guard: export outlasted the deadline, held at the safe limit",
         LimitReason::Failsafe => "fail-safe: a guard signal is stale, held at the safe limit",
     }
