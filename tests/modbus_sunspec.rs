@@ -158,13 +158,46 @@ fn published_offsets_resolve_to_absolute_addresses() {
     ] {
         assert_eq!(locate(704, point).unwrap().offset, offset, "704.{point}");
     }
+    // Source: json/model_120.json and model_121.json as shipped in pySunSpec2 1.3.7 —
+    // WRtg at +3 with WRtg_SF at +4; WMax at +2 with WMax_SF at +22.
+    for (model, point, offset, sf) in [(120, "WRtg", 3, 4), (121, "WMax", 2, 22)] {
+        let l = locate(model, point).unwrap();
+        assert_eq!((l.offset, l.sf_offset), (offset, Some(sf)), "{model}.{point}");
+    }
     // Model lengths: the last point ends at 2 + L.
-    for (model, last, len) in
-        [(1, "Pad", 66), (103, "EvtVnd4", 50), (203, "Evt", 105), (123, "VArPct_SF", 24), (704, "PFWAbsRvrt.Ext", 65)]
-    {
+    for (model, last, len) in [
+        (1, "Pad", 66),
+        (103, "EvtVnd4", 50),
+        (120, "Pad", 26),
+        (121, "ECPNomHz_SF", 30),
+        (203, "Evt", 105),
+        (123, "VArPct_SF", 24),
+        (704, "PFWAbsRvrt.Ext", 65),
+    ] {
         let l = locate(model, last).unwrap();
         assert_eq!(l.offset + l.size, 2 + len, "model {model}");
     }
+}
+
+/// SunSpec takes `WMaxLimPct` as a percentage of the device's `WMax` (model 121), not
+/// of whatever the site file calls the rating: a 4 kW `WMax` under a site that says
+/// 5 kW must get 62.5 % for 2.5 kW, or the inverter would be held at 2 kW.
+#[tokio::test(start_paused = true)]
+async fn the_limit_percentage_is_taken_of_the_devices_own_wmax() {
+    let server = TestServer::start().await;
+    let starts = sunspec_map(&server, 1, 40000, &[(1, 66), (203, 105), (103, 50), (121, 30), (123, 24)]);
+    let (m121, c) = (starts[3], starts[4]);
+    // Source: json/model_121.json (pySunSpec2 1.3.7): WMax at +2, WMax_SF at +22.
+    server.set_holding(1, m121 + 2, &[400]);
+    server.set_holding(1, m121 + 22, &[1]); // 400 × 10^1 = 4 kW
+    server.set_holding(1, c + 23, &[(-2i16) as u16]); // WMaxLimPct_SF = -2
+    let mut b = start(server).await;
+    wait_for(&mut b.events, Duration::from_secs(5), |e| matches!(e, SourceEvent::Readback { .. }).then_some(())).await;
+    b.dispatcher.apply(&limit(Some(2500.0)));
+    drain_for(&mut b.events, Duration::from_millis(200)).await;
+    assert_eq!(b.server.holding(1, c + 5), Some(6250), "2.5 kW of a 4 kW WMax = 62.50 %");
+    b.cancel.cancel();
+    b.task.await.unwrap();
 }
 
 #[tokio::test(start_paused = true)]

@@ -5,7 +5,7 @@ mod plant_support;
 
 use plant_support::{Constant, HalfSine, MONDAY_UTC_MS, fixture, plant, run};
 use spillway_sim::bus::sunspec::{
-    COMMON, DER_AC_CONTROLS, IMMEDIATE_CONTROLS, INVERTER_1PH, METER_1PH, METER_WYE, Model,
+    COMMON, DER_AC_CONTROLS, IMMEDIATE_CONTROLS, INVERTER_1PH, METER_1PH, METER_WYE, Model, NAMEPLATE,
 };
 use spillway_sim::bus::{
     AVAILABLE_POWER, BusError, HR_BATTERY_W, HR_EV_CURRENT, HR_REGULATOR, INVERTER_UNIT, METER_UNIT, RELAY_UNIT,
@@ -16,8 +16,8 @@ use spillway_sim::plant::Plant;
 const HR: Table = Table::HoldingRegisters;
 
 // Source: SunSpec information models, repository sunspec/models, files
-// json/model_1.json, model_201.json, model_203.json, model_101.json, model_123.json and
-// model_704.json: point order and sizes (uint16/int16/enum16/sunssf/pad = 1 register,
+// json/model_1.json, model_201.json, model_203.json, model_101.json, model_120.json,
+// model_123.json and model_704.json: point order and sizes (uint16/int16/enum16/sunssf/pad = 1 register,
 // acc32/uint32/int32/bitfield32 = 2, strings as given). The model lengths and offsets
 // below were counted by hand from those files. Model 704 follows the release shipped in
 // pySunSpec2 1.3.7 (the same offsets as the controller's own table in
@@ -32,6 +32,8 @@ fn model_layouts_match_the_published_definitions() {
         }
     };
     check(&COMMON, 66, &[("Mn", 0), ("Md", 16), ("Opt", 32), ("Vr", 40), ("SN", 48), ("DA", 64)]);
+    // Model 120 as shipped in pySunSpec2 1.3.7 (sunspec2/models/json/model_120.json).
+    check(&NAMEPLATE, 26, &[("DERTyp", 0), ("WRtg", 1), ("WRtg_SF", 2), ("MaxDisChaRte_SF", 24), ("Pad", 25)]);
     let meter = [
         ("A", 0),
         ("A_SF", 4),
@@ -132,7 +134,12 @@ fn the_chains_list_the_models_in_order() {
     let p = sunspec_plant();
     let ids = |u| chain(&p, u).iter().map(|m| m.0).collect::<Vec<_>>();
     assert_eq!(ids(METER_UNIT), [1, 201]);
-    assert_eq!(ids(INVERTER_UNIT), [1, 101, 123, 704]);
+    assert_eq!(ids(INVERTER_UNIT), [1, 101, 123, 704, 120]);
+    // The nameplate carries the rating a limit percentage is taken of.
+    let nameplate = chain(&p, INVERTER_UNIT)[4].1;
+    let np = |point: &str| nameplate + NAMEPLATE.offset(point).unwrap();
+    assert_eq!(words(&p, INVERTER_UNIT, np("DERTyp"), 1)[0], 4, "PV");
+    assert_eq!(words(&p, INVERTER_UNIT, np("WRtg"), 2), [4000, 0], "4 kW, WRtg_SF 0");
     let three = Plant::new(&fixture("battery_ev_house.yaml"), Box::new(HalfSine::new(5e3)), MONDAY_UTC_MS, 1).unwrap();
     assert_eq!(chain(&three, METER_UNIT).iter().map(|m| m.0).collect::<Vec<_>>(), [1, 203]);
     let common = chain(&p, METER_UNIT)[0].1;

@@ -207,8 +207,11 @@ pub struct WriteTracker {
 pub struct LimitContext {
     /// The control found on the device.
     pub control: LimitControl,
-    /// The site's safe limit in % of rated.
+    /// The site's safe limit in % of the device's own base (`WMax`).
     pub safe_pct: f64,
+    /// Converts a percentage of the site's `inverter.rated` into one of the device's
+    /// `WMax` (rated ÷ WMax; 1 when the device does not say).
+    pub rated_to_device: f64,
 }
 
 impl WriteTracker {
@@ -259,7 +262,7 @@ impl WriteTracker {
                 }
                 Write::SunSpecLimit { .. } => {
                     let Some(ctx) = limit else { continue };
-                    let pct = w.level.number();
+                    let pct = (w.level.number() * ctx.rated_to_device).clamp(0.0, 100.0);
                     let ops = ctx.control.ops(pct, ctx.safe_pct, w.refresh);
                     // Remember the encoded request so a changed limit is written at once.
                     let enc: Vec<u16> = ops

@@ -16,8 +16,8 @@ use crate::plant::faults::Active;
 use crate::plant::noise::mix;
 use crate::plant::{Controls, Readings};
 use sunspec::{
-    COMMON, DER_AC_CONTROLS, IMMEDIATE_CONTROLS, INVERTER_1PH, Image, METER_1PH, METER_WYE, acc32, i16_sf, sf, string,
-    u16_sf, u32_words, words_u32,
+    COMMON, DER_AC_CONTROLS, IMMEDIATE_CONTROLS, INVERTER_1PH, Image, METER_1PH, METER_WYE, NAMEPLATE, acc32, i16_sf,
+    sf, string, u16_sf, u32_words, words_u32,
 };
 
 /// Unit id of the SunSpec grid meter.
@@ -789,6 +789,11 @@ impl Bus {
         let rem_s = inv.lim704_until.map_or(0, |t| ((t - self.now_ms).max(0) + 999) / 1000) as u32;
         let at = s704 + off::C704_RVRT_REM;
         img.regs[at..at + 2].copy_from_slice(&u32_words(rem_s));
+        // Model 120 last, so the control models keep their addresses.
+        let n = img.model(&NAMEPLATE);
+        img.set(n, &NAMEPLATE, "DERTyp", &[4]); // 4 = PV
+        img.set(n, &NAMEPLATE, "WRtg", &[u16_sf(self.layout.inverter_rating_w, w_sf)]);
+        img.set(n, &NAMEPLATE, "WRtg_SF", &[sf(w_sf)]);
         img.end();
         img.regs
     }

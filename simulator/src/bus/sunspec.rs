@@ -362,6 +362,41 @@ pub const DER_AC_CONTROLS: Model = Model {
     ],
 };
 
+/// Model 120, nameplate ratings (all read-only). Only `DERTyp` and `WRtg` are served;
+/// `WRtg` is the power that a `WMaxLimPct` percentage is taken of when the device has
+/// no model 121 (as here).
+pub const NAMEPLATE: Model = Model {
+    id: 120,
+    points: &[
+        p("DERTyp", Ty::U16, false),
+        p("WRtg", Ty::U16, false),
+        p("WRtg_SF", Ty::Sf, false),
+        p("VARtg", Ty::U16, false),
+        p("VARtg_SF", Ty::Sf, false),
+        p("VArRtgQ1", Ty::I16, false),
+        p("VArRtgQ2", Ty::I16, false),
+        p("VArRtgQ3", Ty::I16, false),
+        p("VArRtgQ4", Ty::I16, false),
+        p("VArRtg_SF", Ty::Sf, false),
+        p("ARtg", Ty::U16, false),
+        p("ARtg_SF", Ty::Sf, false),
+        p("PFRtgQ1", Ty::I16, false),
+        p("PFRtgQ2", Ty::I16, false),
+        p("PFRtgQ3", Ty::I16, false),
+        p("PFRtgQ4", Ty::I16, false),
+        p("PFRtg_SF", Ty::Sf, false),
+        p("WHRtg", Ty::U16, false),
+        p("WHRtg_SF", Ty::Sf, false),
+        p("AhrRtg", Ty::U16, false),
+        p("AhrRtg_SF", Ty::Sf, false),
+        p("MaxChaRte", Ty::U16, false),
+        p("MaxChaRte_SF", Ty::Sf, false),
+        p("MaxDisChaRte", Ty::U16, false),
+        p("MaxDisChaRte_SF", Ty::Sf, false),
+        p("Pad", Ty::Pad, false),
+    ],
+};
+
 /// `SunS`, the marker at the base address.
 pub const MARKER: [u16; 2] = [0x5375, 0x6E53];
 /// The end model's ID (followed by length 0).

@@ -416,7 +416,24 @@ impl ModbusLink {
         let Some(ic) = &self.site.inverter else {
             return Ok(None);
         };
-        let safe_pct = (ic.safe_limit.0 / ic.rated.0.max(1.0) * 100.0).clamp(0.0, 100.0);
+        // A limit percentage is of the device's WMax, which may differ from the site
+        // file's rating: read it, and take the percentage of what the device says.
+        let rated = ic.rated.0.max(1.0);
+        let base = match self.device_wmax(ctx, map, st, io).await? {
+            Some(wmax) if (wmax - rated).abs() > 0.02 * rated => {
+                warn!(
+                    device = %self.dev().name,
+                    wmax_w = wmax,
+                    rated_w = rated,
+                    "the inverter's WMax differs from the site's inverter.rated: limits are written as a \
+                     percentage of WMax; set inverter.rated to match"
+                );
+                wmax
+            }
+            Some(wmax) => wmax,
+            None => rated,
+        };
+        let safe_pct = (ic.safe_limit.0 / base * 100.0).clamp(0.0, 100.0);
         let (found, control_sf) = match LimitControl::locate(map) {
             Some((control, sf_at)) => (Some(control), sf_at),
             None if map.start(704).is_some() || map.start(123).is_some() => (None, None),
@@ -444,13 +461,47 @@ impl ModbusLink {
                     }
                 },
                 Err(code) => {
-                    io.exception(6, a, code).await?;
+                    io.exception(3, a, code).await?;
                 }
             }
         }
         let control = found.map(|c| c.with_sf(sf));
         info!(device = %self.dev().name, ?control, "SunSpec power-limit control");
-        Ok(control.map(|control| LimitContext { control, safe_pct }))
+        Ok(control.map(|control| LimitContext { control, safe_pct, rated_to_device: rated / base }))
+    }
+
+    /// The power a limit percentage is taken of: model 121's `WMax`, else model 120's
+    /// `WRtg`, in W; `None` when the device has neither or does not implement them.
+    async fn device_wmax(
+        &self,
+        ctx: &mut Context,
+        map: &ModelMap,
+        st: &mut State,
+        io: &Io<'_>,
+    ) -> Result<Option<f64>, Fail> {
+        for (model, point) in [(121, "WMax"), (120, "WRtg")] {
+            let Ok(loc) = map.resolve(model, point) else { continue };
+            let Some(sf_at) = loc.scale_factor else { continue };
+            let mut words = [0u16; 2];
+            for (i, a) in [loc.address, sf_at].into_iter().enumerate() {
+                match io.call(ctx.read_holding_registers(a, 1), st).await? {
+                    Ok(w) if !w.is_empty() => words[i] = w[0],
+                    Ok(_) => return Ok(None),
+                    Err(code) => {
+                        io.exception(3, a, code).await?;
+                        return Ok(None);
+                    }
+                }
+            }
+            let (value, sf) = (words[0], words[1] as i16);
+            if value == u16::MAX || sf == codec::SUNSSF_UNIMPLEMENTED || !(-10..=10).contains(&sf) || value == 0 {
+                continue;
+            }
+            let w = f64::from(value) * 10f64.powi(i32::from(sf));
+            info!(device = %self.dev().name, model, point, w, "inverter power base for limits");
+            return Ok(Some(w));
+        }
+        Ok(None)
     }
 
     async fn readback(&self, ctx: &mut Context, st: &mut State, io: &Io<'_>) -> Result<(), Fail> {

@@ -89,8 +89,9 @@ pub struct Location {
 
 /// Where `point` sits in `model`, by the published layout.
 pub fn locate(model: u16, point: &str) -> Result<Location, String> {
-    let defs = layout(model)
-        .ok_or_else(|| format!("SunSpec model {model} is not one Spillway knows (1, 101-103, 123, 201-204, 704)"))?;
+    let defs = layout(model).ok_or_else(|| {
+        format!("SunSpec model {model} is not one Spillway knows (1, 101-103, 120, 121, 123, 201-204, 704)")
+    })?;
     let mut offsets = Vec::with_capacity(defs.len());
     let mut at = 2u16;
     for (name, ty, _) in defs {
@@ -113,6 +114,8 @@ pub fn layout(model: u16) -> Option<&'static [Def]> {
     Some(match model {
         1 => M1,
         101..=103 => M10X,
+        120 => M120,
+        121 => M121,
         123 => M123,
         201 => M201,
         202..=204 => M20X,
@@ -240,6 +243,71 @@ const M10X: &[Def] = &[
     ("EvtVnd2", Bitfield32, None),
     ("EvtVnd3", Bitfield32, None),
     ("EvtVnd4", Bitfield32, None),
+];
+
+/// Model 120: Nameplate ratings (read-only). `WRtg` is what a `WMaxLimPct` percentage
+/// is taken of when the device has no model 121.
+const M120: &[Def] = &[
+    ("DERTyp", Enum16, None),
+    ("WRtg", U16, Some("WRtg_SF")),
+    ("WRtg_SF", Sf, None),
+    ("VARtg", U16, Some("VARtg_SF")),
+    ("VARtg_SF", Sf, None),
+    ("VArRtgQ1", I16, Some("VArRtg_SF")),
+    ("VArRtgQ2", I16, Some("VArRtg_SF")),
+    ("VArRtgQ3", I16, Some("VArRtg_SF")),
+    ("VArRtgQ4", I16, Some("VArRtg_SF")),
+    ("VArRtg_SF", Sf, None),
+    ("ARtg", U16, Some("ARtg_SF")),
+    ("ARtg_SF", Sf, None),
+    ("PFRtgQ1", I16, Some("PFRtg_SF")),
+    ("PFRtgQ2", I16, Some("PFRtg_SF")),
+    ("PFRtgQ3", I16, Some("PFRtg_SF")),
+    ("PFRtgQ4", I16, Some("PFRtg_SF")),
+    ("PFRtg_SF", Sf, None),
+    ("WHRtg", U16, Some("WHRtg_SF")),
+    ("WHRtg_SF", Sf, None),
+    ("AhrRtg", U16, Some("AhrRtg_SF")),
+    ("AhrRtg_SF", Sf, None),
+    ("MaxChaRte", U16, Some("MaxChaRte_SF")),
+    ("MaxChaRte_SF", Sf, None),
+    ("MaxDisChaRte", U16, Some("MaxDisChaRte_SF")),
+    ("MaxDisChaRte_SF", Sf, None),
+    ("Pad", Pad, None),
+];
+
+/// Model 121: Basic Settings. `WMax` is the power a `WMaxLimPct` percentage is taken of.
+const M121: &[Def] = &[
+    ("WMax", U16, Some("WMax_SF")),
+    ("VRef", U16, Some("VRef_SF")),
+    ("VRefOfs", I16, Some("VRefOfs_SF")),
+    ("VMax", U16, Some("VMinMax_SF")),
+    ("VMin", U16, Some("VMinMax_SF")),
+    ("VAMax", U16, Some("VAMax_SF")),
+    ("VArMaxQ1", I16, Some("VArMax_SF")),
+    ("VArMaxQ2", I16, Some("VArMax_SF")),
+    ("VArMaxQ3", I16, Some("VArMax_SF")),
+    ("VArMaxQ4", I16, Some("VArMax_SF")),
+    ("WGra", U16, Some("WGra_SF")),
+    ("PFMinQ1", I16, Some("PFMin_SF")),
+    ("PFMinQ2", I16, Some("PFMin_SF")),
+    ("PFMinQ3", I16, Some("PFMin_SF")),
+    ("PFMinQ4", I16, Some("PFMin_SF")),
+    ("VArAct", Enum16, None),
+    ("ClcTotVA", Enum16, None),
+    ("MaxRmpRte", U16, Some("MaxRmpRte_SF")),
+    ("ECPNomHz", U16, Some("ECPNomHz_SF")),
+    ("ConnPh", Enum16, None),
+    ("WMax_SF", Sf, None),
+    ("VRef_SF", Sf, None),
+    ("VRefOfs_SF", Sf, None),
+    ("VMinMax_SF", Sf, None),
+    ("VAMax_SF", Sf, None),
+    ("VArMax_SF", Sf, None),
+    ("WGra_SF", Sf, None),
+    ("PFMin_SF", Sf, None),
+    ("MaxRmpRte_SF", Sf, None),
+    ("ECPNomHz_SF", Sf, None),
 ];
 
 /// Model 123: Immediate Controls.
