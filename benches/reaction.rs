@@ -96,17 +96,31 @@ async fn run(period: &str) -> Vec<Duration> {
     let mut out = Vec::new();
     for _ in 0..TRIALS {
         // Settled: the heater drawing and the curtailment given back, so the grid sits
-        // near its small import target (the release is deliberately gradual).
-        let settled = until(Duration::from_secs(90), || {
+        // near its small import target (the release is deliberately gradual) — and still
+        // so 3 s later, since the meter's late reading can look settled for a moment
+        // right after the previous trial's relay closed again.
+        let settled_now = || {
             let r = h.readings();
-            r.contacts.first().copied().unwrap_or(false) && (0.0..400.0).contains(&meter(h))
-        })
-        .await;
-        if settled.is_none() {
+            r.contacts.first().copied().unwrap_or(false)
+                && r.loads_w.first().is_some_and(|w| *w > 2000.0)
+                && (0.0..400.0).contains(&meter(h))
+        };
+        let deadline = tokio::time::Instant::now() + Duration::from_secs(90);
+        let mut settled = false;
+        while tokio::time::Instant::now() < deadline {
+            if until(Duration::from_secs(90), settled_now).await.is_none() {
+                break;
+            }
+            tokio::time::sleep(Duration::from_secs(3)).await;
+            if settled_now() {
+                settled = true;
+                break;
+            }
+        }
+        if !settled {
             eprintln!("the site did not settle near its import target within 90 s; trial skipped");
             continue;
         }
-        tokio::time::sleep(Duration::from_secs(3)).await;
         if let Err(e) = sim.inject_spec("relay-stuck:tank:open+8s") {
             eprintln!("cannot inject the fault: {e}");
             break;
