@@ -6,7 +6,7 @@
 use std::process::{Command, Stdio};
 use std::time::{Duration, Instant};
 
-use spillway::daemon::demo::{self, DemoOptions, Frame};
+use spillway::daemon::demo::{self, DemoOptions, Frame, WeatherKind};
 
 #[test]
 fn the_demo_shows_the_controller_at_work_and_stops_in_safe_states() {
@@ -36,6 +36,33 @@ fn the_demo_shows_the_controller_at_work_and_stops_in_safe_states() {
     assert_eq!(last.status.mode, "stopped");
     assert!(last.plant.relays.iter().all(|(_, closed)| !closed), "{:?}", last.plant.relays);
     assert_eq!(last.plant.limit_w, Some(0.0));
+}
+
+/// The simulated inverter applies the limit the engine decided, also at high speed
+/// under clouds, where the limit may sit still for a while: its revert timer counts
+/// simulated seconds, so the limit must not lapse between two refreshes.
+#[test]
+fn the_simulated_inverter_keeps_the_engines_limit_at_twenty_times_speed() {
+    let mut frames: Vec<Frame> = Vec::new();
+    let options = DemoOptions {
+        speed: 20.0,
+        sky: Some(WeatherKind::Mixed),
+        run_for: Some(Duration::from_secs(15)),
+        ..DemoOptions::default()
+    };
+    demo::run(options, |f| frames.push(f.clone())).unwrap();
+    // A frame may catch a change in transit; the first seconds are start-up.
+    let disagree: Vec<(Option<f64>, Option<f64>)> = frames[3..frames.len() - 1]
+        .iter()
+        .map(|f| (f.status.inverter.as_ref().and_then(|i| i.limit_w), f.plant.limit_w))
+        .filter(|(engine, plant)| match (engine, plant) {
+            (Some(e), Some(p)) => (e - p).abs() > 100.0,
+            (None, None) => false,
+            (None, Some(p)) => *p < 5900.0,
+            (Some(_), None) => true,
+        })
+        .collect();
+    assert!(disagree.len() <= 2, "engine limit vs the inverter's: {disagree:?}");
 }
 
 fn demo_child(args: &[&str]) -> std::process::Child {

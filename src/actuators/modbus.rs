@@ -212,6 +212,19 @@ pub struct LimitContext {
     /// Converts a percentage of the site's `inverter.rated` into one of the device's
     /// `WMax` (rated ÷ WMax; 1 when the device does not say).
     pub rated_to_device: f64,
+    /// How many of the device's seconds pass in one of ours: 1 on a real site; the
+    /// clock speed in the demo, whose simulated inverter counts its revert timer in
+    /// simulated seconds while our refresh period shrank to wall time.
+    pub device_seconds_per_second: f64,
+}
+
+impl LimitContext {
+    /// The writes that set `pct_of_rated` (% of the site's rating), refreshed every
+    /// `refresh` of our time.
+    pub fn ops(&self, pct_of_rated: f64, refresh: Duration) -> Vec<WriteOp> {
+        let pct = (pct_of_rated * self.rated_to_device).clamp(0.0, 100.0);
+        self.control.ops(pct, self.safe_pct, refresh.mul_f64(self.device_seconds_per_second.max(1.0)))
+    }
 }
 
 impl WriteTracker {
@@ -262,8 +275,7 @@ impl WriteTracker {
                 }
                 Write::SunSpecLimit { .. } => {
                     let Some(ctx) = limit else { continue };
-                    let pct = (w.level.number() * ctx.rated_to_device).clamp(0.0, 100.0);
-                    let ops = ctx.control.ops(pct, ctx.safe_pct, w.refresh);
+                    let ops = ctx.ops(w.level.number(), w.refresh);
                     // Remember the encoded request so a changed limit is written at once.
                     let enc: Vec<u16> = ops
                         .iter()
@@ -331,4 +343,45 @@ impl WriteTracker {
 pub fn register_words(level: Level, ty: ValueType, order: WordOrder, scale: f64) -> Vec<u16> {
     let scale = if scale == 0.0 { 1.0 } else { scale };
     codec::encode(level.number() / scale, ty, order)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn ctx(rated_to_device: f64, speed: f64) -> LimitContext {
+        LimitContext {
+            control: LimitControl::DerControls { enable: 100, sf: -2 },
+            safe_pct: 0.0,
+            rated_to_device,
+            device_seconds_per_second: speed,
+        }
+    }
+
+    fn words(ops: &[WriteOp]) -> Vec<u16> {
+        match ops {
+            [WriteOp::Registers { words, .. }] => words.clone(),
+            other => panic!("one block write expected: {other:?}"),
+        }
+    }
+
+    #[test]
+    fn the_percentage_is_converted_to_the_devices_own_base() {
+        // 50 % of a 5 kW site rating on an inverter whose WMax is 4 kW: 62.5 %.
+        let w = words(&ctx(5.0 / 4.0, 1.0).ops(50.0, Duration::from_secs(10)));
+        assert_eq!(w[1], 6250);
+        // Never above 100 % of the device.
+        assert_eq!(words(&ctx(2.0, 1.0).ops(80.0, Duration::from_secs(10)))[1], 10_000);
+    }
+
+    #[test]
+    fn the_revert_timer_is_counted_in_the_devices_seconds() {
+        // A real site: 4 × a 10 s refresh.
+        let w = words(&ctx(1.0, 1.0).ops(50.0, Duration::from_secs(10)));
+        assert_eq!((w[4], w[5]), (0, 40));
+        // The demo at 20×: our refresh shrank to 0.5 s of wall time, but the simulated
+        // inverter counts simulated seconds, so its timer must still be 40 s.
+        let w = words(&ctx(1.0, 20.0).ops(50.0, Duration::from_millis(500)));
+        assert_eq!((w[4], w[5]), (0, 40));
+    }
 }

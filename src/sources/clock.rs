@@ -37,6 +37,14 @@ impl Clock {
     }
 
     /// The time now.
+    /// How fast this clock runs against wall time (1 except for a scaled clock).
+    pub fn speed(&self) -> f64 {
+        match self {
+            Clock::Scaled { speed, .. } => *speed,
+            Clock::System | Clock::Anchored { .. } => 1.0,
+        }
+    }
+
     pub fn now(&self) -> Timestamp {
         match self {
             Clock::System => {

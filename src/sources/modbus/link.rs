@@ -253,6 +253,9 @@ impl ModbusLink {
         let io = Io { link: self, events, cancel };
         if self.dev().sunspec && st.map.is_none() {
             self.discover(ctx, st, &io).await?;
+            if let Some(limit) = &mut st.limit {
+                limit.device_seconds_per_second = clock.speed();
+            }
         }
         if st.up != Some(true) {
             st.up = Some(true);
@@ -467,7 +470,12 @@ impl ModbusLink {
         }
         let control = found.map(|c| c.with_sf(sf));
         info!(device = %self.dev().name, ?control, "SunSpec power-limit control");
-        Ok(control.map(|control| LimitContext { control, safe_pct, rated_to_device: rated / base }))
+        Ok(control.map(|control| LimitContext {
+            control,
+            safe_pct,
+            rated_to_device: rated / base,
+            device_seconds_per_second: 1.0,
+        }))
     }
 
     /// The power a limit percentage is taken of: model 121's `WMax`, else model 120's
