@@ -1,12 +1,14 @@
 //! Plant throughput: simulated seconds per wall second for a household + tank + pump +
 //! battery + meter site at 1 s steps, with a stub PV source (the PV chain is benched
-//! separately). Criterion reports "elements/s" = simulated seconds per second.
+//! separately), and the whole plant of the zero-export example with its modelled PV
+//! and mixed clouds. Criterion reports "elements/s" = simulated seconds per second.
 
 use std::hint::black_box;
 
 use criterion::{Criterion, Throughput, criterion_group, criterion_main};
 use spillway_sim::plant::{Plant, PlantConfig};
 use spillway_sim::pv_output::{PvSample, PvSource};
+use spillway_sim::site::{SiteOptions, build, from_site_yaml};
 
 /// A cheap stand-in for the PV chain: a fixed triangular day, limit obeyed.
 struct Stub;
@@ -68,6 +70,18 @@ fn bench(c: &mut Criterion) {
     g.bench_function("year_at_1s", |b| {
         b.iter(|| {
             let mut p = plant();
+            simulate(&mut p, year);
+            black_box(p.flows().balance_error_wh())
+        })
+    });
+    // The whole plant: the example's roof, mixed weather, house, tank and pump.
+    let example = from_site_yaml(include_str!("../../config/zero-export-house.yaml"))
+        .expect("the example parses")
+        .expect("the example has a plant");
+    g.bench_function("year_at_1s_whole_plant", |b| {
+        b.iter(|| {
+            let options = SiteOptions { start_ms: START_MS, seed: 7, sky: None };
+            let mut p = build(&example, &options).expect("the example builds");
             simulate(&mut p, year);
             black_box(p.flows().balance_error_wh())
         })
