@@ -354,7 +354,7 @@ impl Model {
             }
         };
         let solar_s = t_s + self.observer.longitude_deg * 240.0;
-        let solar_hour = (solar_s / 3600.0).rem_euclid(24.0);
+        let solar_hour = crate::sun::wrap(solar_s / 3600.0, 24.0);
         let kind = match &self.sky {
             Sky::Clouds(c) => c.day_kind(),
             Sky::Measured(_) => WeatherKind::Clear,
@@ -373,7 +373,7 @@ impl Model {
         knot.dni_extra = dni_extra;
         knot.inv_dni_extra = if dni_extra > 0.0 { 1.0 / dni_extra } else { 0.0 };
         knot.air_c = air_c;
-        knot.local_tod_s = (t_s + offset).rem_euclid(86_400.0);
+        knot.local_tod_s = crate::sun::wrap(t_s + offset, 86_400.0);
         knot.solar_day = (solar_s / 86_400.0).floor() as i64;
     }
 
