@@ -45,6 +45,7 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
         });
         let mut main = options(Controller::Spillway);
         main.trace = chart_days;
+        main.trace_every = offline::chart::trace_interval(p.days);
         (offline::simulate_once(&p.site, p.loaded.tariff.as_ref(), &p.plant, main), base.join())
     });
     progress.finish();

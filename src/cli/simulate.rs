@@ -193,6 +193,7 @@ pub fn run_pair(
         });
         let mut main = options(p, step, Controller::Spillway, &first);
         main.trace = chart_days;
+        main.trace_every = offline::chart::trace_interval(p.days);
         let run = offline::simulate_once(&p.site, p.loaded.tariff.as_ref(), &p.plant, main);
         let baseline = base.join().map_err(|_| anyhow::anyhow!("the baseline run panicked"));
         (run, baseline)

@@ -7,7 +7,9 @@
 use std::path::Path;
 
 use plotters::coord::Shift;
+use plotters::coord::ranged1d::{DefaultFormatting, KeyPointHint, Ranged};
 use plotters::prelude::*;
+use plotters::style::text_anchor::{HPos, Pos, VPos};
 
 use super::OfflineError;
 use super::report::Report;
@@ -31,6 +33,103 @@ const LOADS: [RGBColor; 6] = [
     RGBColor(120, 100, 200),
     RGBColor(200, 170, 80),
 ];
+
+/// Most month labels on the monthly chart's axis (more months label every k-th).
+const MAX_MONTH_LABELS: usize = 14;
+
+/// A monthly series whose largest month is below this fraction of the axis is not drawn.
+const VISIBLE_FRACTION: f64 = 0.005;
+
+/// PV below this is "the array is not producing": no inverter limit is drawn there.
+const PV_SHOWN_W: f64 = 10.0;
+
+/// Most samples a flows chart needs: about two per pixel of its 1200 px width.
+const MAX_TRACE_SAMPLES: u64 = 2400;
+
+/// The sampling interval of the time series behind a flows chart of `days` days: one
+/// minute for a day or two, coarser for longer runs (the chart averages over it), always
+/// a whole number of minutes that divides an hour.
+pub fn trace_interval(days: u32) -> std::time::Duration {
+    let needed_min = (u64::from(days) * 1440).div_ceil(MAX_TRACE_SAMPLES);
+    let minutes = [1, 2, 5, 10, 15, 20, 30, 60].into_iter().find(|&m| m >= needed_min).unwrap_or(60);
+    std::time::Duration::from_secs(minutes * 60)
+}
+
+/// Tick marks of a time axis in hours after the first sample `t0_ms`, on whole local
+/// hours (so they follow daylight-saving changes): bold with a label at local midnights
+/// for runs longer than 30 h (light every 6 h), otherwise every 2 h (light every hour).
+/// A linear f64 axis with tick marks where we put them. (plotters' own `with_key_points`
+/// wrapper loses the f64 label formatter, so `configure_mesh` refuses it.)
+struct Ticked {
+    range: std::ops::Range<f64>,
+    bold: Vec<f64>,
+    light: Vec<f64>,
+}
+
+impl Ticked {
+    fn new(range: std::ops::Range<f64>, bold: Vec<f64>, light: Vec<f64>) -> Self {
+        Ticked { range, bold, light }
+    }
+}
+
+impl Ranged for Ticked {
+    type ValueType = f64;
+    type FormatOption = DefaultFormatting;
+
+    fn map(&self, v: &f64, limit: (i32, i32)) -> i32 {
+        let span = self.range.end - self.range.start;
+        if span == 0.0 {
+            return (limit.0 + limit.1) / 2;
+        }
+        let fraction = (v - self.range.start) / span;
+        limit.0 + (fraction * f64::from(limit.1 - limit.0)).round() as i32
+    }
+
+    fn key_points<H: KeyPointHint>(&self, hint: H) -> Vec<f64> {
+        if hint.weight().allow_light_points() { self.light.clone() } else { self.bold.clone() }
+    }
+
+    fn range(&self) -> std::ops::Range<f64> {
+        self.range.clone()
+    }
+}
+
+struct TimeAxis {
+    bold: Vec<f64>,
+    light: Vec<f64>,
+    day_labels: bool,
+}
+
+fn time_axis(tz: chrono_tz::Tz, t0_ms: i64, span_h: f64) -> TimeAxis {
+    use chrono::Timelike;
+    let day_labels = span_h > 30.0;
+    let (bold_every, light_every) = if day_labels { (24, 6) } else { (2, 1) };
+    let (mut bold, mut light) = (Vec::new(), Vec::new());
+    // Every UTC quarter hour is looked at, so zones with half- and quarter-hour offsets
+    // get their ticks on whole local hours too.
+    const QUARTER_MS: i64 = 900_000;
+    let end_ms = t0_ms + (span_h * 3_600_000.0) as i64;
+    let mut t = t0_ms - t0_ms.rem_euclid(QUARTER_MS);
+    while t <= end_ms {
+        let local = crate::units::Timestamp(t).to_utc().with_timezone(&tz);
+        let h = (t - t0_ms) as f64 / 3_600_000.0;
+        if t >= t0_ms && local.minute() == 0 {
+            if local.hour() % bold_every == 0 {
+                bold.push(h);
+            } else if local.hour() % light_every == 0 {
+                light.push(h);
+            }
+        }
+        t += QUARTER_MS;
+    }
+    TimeAxis { bold, light, day_labels }
+}
+
+/// `2026-06` → `Jun 2026` (anything else is shown as it is).
+fn month_label(month: &str) -> String {
+    chrono::NaiveDate::parse_from_str(&format!("{month}-01"), "%Y-%m-%d")
+        .map_or_else(|_| month.to_owned(), |d| d.format("%b %Y").to_string())
+}
 
 fn err(e: impl std::fmt::Display) -> OfflineError {
     OfflineError::Chart(e.to_string())
@@ -89,7 +188,6 @@ fn draw_flows(
     let span_h = hours.last().copied().unwrap_or(24.0).max(1.0);
     let kw = |w: f64| w / 1000.0;
     // Stacked consumption: house, then each load in priority order.
-    let n = hours.len();
     let mut stack: Vec<Vec<f64>> = Vec::new();
     let mut base = trace.house_w.iter().map(|w| kw(*w)).collect::<Vec<_>>();
     stack.push(base.clone());
@@ -105,10 +203,11 @@ fn draw_flows(
     let y_min = grid.iter().chain(&battery).cloned().fold(0.0, f64::min).min(-0.2) * 1.15;
     let has_tank = trace.tank_c.iter().any(|t| t.is_finite());
 
-    let local_start = crate::units::Timestamp(t0).to_utc().with_timezone(&tz);
+    let axis = time_axis(tz, t0, span_h);
+    let day_labels = axis.day_labels;
     let label_hour = |h: &f64| {
-        let t = local_start + chrono::Duration::seconds((*h * 3600.0) as i64);
-        if span_h > 30.0 { t.format("%a %d %Hh").to_string() } else { t.format("%H:%M").to_string() }
+        let t = crate::units::Timestamp(t0 + (*h * 3_600_000.0).round() as i64).to_utc().with_timezone(&tz);
+        if day_labels { t.format("%a %d %b").to_string() } else { t.format("%H:%M").to_string() }
     };
 
     let mut chart = ChartBuilder::on(root)
@@ -117,16 +216,16 @@ fn draw_flows(
         .x_label_area_size(36)
         .y_label_area_size(56)
         .right_y_label_area_size(if has_tank { 56 } else { 10 })
-        .build_cartesian_2d(0.0..span_h, y_min..y_max)
+        .build_cartesian_2d(Ticked::new(0.0..span_h, axis.bold, axis.light), y_min..y_max)
         .map_err(err)?
         .set_secondary_coord(0.0..span_h, 0.0..90.0);
     chart
         .configure_mesh()
-        .x_labels(if span_h > 30.0 { 8 } else { 12 })
         .x_label_formatter(&label_hour)
         .y_desc("power (kW)")
         .y_label_formatter(&|v| format!("{v:.1}"))
         .light_line_style(RGBColor(235, 235, 235))
+        .bold_line_style(RGBColor(200, 200, 200))
         .draw()
         .map_err(err)?;
     if has_tank {
@@ -172,8 +271,14 @@ fn draw_flows(
             .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], BATTERY.stroke_width(2)));
     }
     if trace.limit_w.iter().any(|l| l.is_finite()) {
-        let segments: Vec<(f64, f64)> =
-            hours.iter().zip(&trace.limit_w).filter(|(_, l)| l.is_finite()).map(|(h, l)| (*h, kw(*l))).collect();
+        // Only while the array produces: a limit held overnight says nothing.
+        let segments: Vec<(f64, f64)> = hours
+            .iter()
+            .zip(&trace.limit_w)
+            .zip(&trace.pv_w)
+            .filter(|((_, l), pv)| l.is_finite() && **pv > PV_SHOWN_W)
+            .map(|((h, l), _)| (*h, kw(*l)))
+            .collect();
         chart
             .draw_series(segments.iter().map(|&(h, l)| Circle::new((h, l), 1, LIMIT.filled())))
             .map_err(err)?
@@ -202,7 +307,6 @@ fn draw_flows(
         .label_font(("sans-serif", 13))
         .draw()
         .map_err(err)?;
-    let _ = n;
     Ok(())
 }
 
@@ -221,27 +325,25 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
             .chain(thresholds.iter().cloned())
             .fold(10.0, f64::max)
             * 1.15;
+        // Tick marks at month boundaries; each month's label at the middle of its group.
+        let every = n.div_ceil(MAX_MONTH_LABELS).max(1);
+        let centres: Vec<f64> = (0..n).step_by(every).map(|i| i as f64 + 0.5).collect();
         let mut chart = ChartBuilder::on(&root)
             .caption(title(report, "energy per month"), ("sans-serif", 22))
             .margin(14)
             .x_label_area_size(36)
             .y_label_area_size(60)
-            .build_cartesian_2d(0.0..n as f64, 0.0..y_max)
+            .build_cartesian_2d(Ticked::new(0.0..n as f64, centres, Vec::new()), 0.0..y_max)
             .map_err(err)?;
-        let labels: Vec<String> = months.iter().map(|m| m.month.clone()).collect();
+        let labels: Vec<String> = months.iter().map(|m| month_label(&m.month)).collect();
         chart
             .configure_mesh()
             .disable_x_mesh()
-            .x_labels(n.max(1))
             .x_label_formatter(&|x| labels.get(x.floor() as usize).cloned().unwrap_or_default())
             .y_desc("energy (kWh)")
             .light_line_style(RGBColor(235, 235, 235))
             .draw()
             .map_err(err)?;
-        let bar = |i: usize, slot: usize, value: f64, colour: RGBColor| {
-            let x0 = i as f64 + 0.1 + slot as f64 * 0.2;
-            Rectangle::new([(x0, 0.0), (x0 + 0.18, value)], colour.filled())
-        };
         type Pick = fn(&super::report::MonthReport) -> f64;
         let series: [(&str, RGBColor, Pick); 4] = [
             ("import", GRID, |m| m.import_kwh),
@@ -249,20 +351,54 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
             ("export", EXPORT, |m| m.export_kwh),
             ("diverted", LOADS[0], |m| m.diverted_kwh),
         ];
-        for (slot, (name, colour, get)) in series.iter().enumerate() {
+        // A series too small to see in any month (export at a zero-export site, a few Wh
+        // while the guard responds) gets no slot, only a legend line giving its largest
+        // month, so each month's bars stay together.
+        let largest: Vec<f64> = series.iter().map(|(_, _, get)| months.iter().map(get).fold(0.0, f64::max)).collect();
+        let shown: Vec<bool> = largest.iter().map(|m| *m >= VISIBLE_FRACTION * y_max).collect();
+        let slots = shown.iter().filter(|s| **s).count().max(1);
+        let width = 0.8 / slots as f64;
+        let mut slot = 0;
+        for (((name, colour, get), shown), largest) in series.iter().zip(&shown).zip(&largest) {
             let c = *colour;
+            if !shown {
+                chart
+                    .draw_series(std::iter::empty::<Rectangle<(f64, f64)>>())
+                    .map_err(err)?
+                    .label(format!("{name}: at most {largest:.1} kWh a month"))
+                    .legend(move |(x, y)| Rectangle::new([(x, y - 5), (x + 14, y + 5)], c.mix(0.3).filled()));
+                continue;
+            }
+            let x_of = |i: usize| i as f64 + 0.1 + slot as f64 * width;
             chart
-                .draw_series(months.iter().enumerate().map(|(i, m)| bar(i, slot, get(m), c)))
+                .draw_series(
+                    months
+                        .iter()
+                        .enumerate()
+                        .map(|(i, m)| Rectangle::new([(x_of(i), 0.0), (x_of(i) + width * 0.9, get(m))], c.filled())),
+                )
                 .map_err(err)?
                 .label(*name)
                 .legend(move |(x, y)| Rectangle::new([(x, y - 5), (x + 14, y + 5)], c.filled()));
+            slot += 1;
         }
+        // Block thresholds: one legend entry, and each line says where its block starts.
         for (k, t) in thresholds.iter().enumerate() {
-            chart
-                .draw_series(LineSeries::new([(0.0, *t), (n as f64, *t)], LIMIT.stroke_width(1)))
-                .map_err(err)?
-                .label(if k == 0 { "tariff block thresholds" } else { "" })
-                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], LIMIT.stroke_width(1)));
+            let line =
+                chart.draw_series(LineSeries::new([(0.0, *t), (n as f64, *t)], LIMIT.stroke_width(1))).map_err(err)?;
+            if k == 0 {
+                line.label("tariff block thresholds")
+                    .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], LIMIT.stroke_width(1)));
+            }
+            // Where the block starts, on a white patch so bars behind it do not hide it.
+            let text = format!("block {} from {t:.0} kWh", k + 2);
+            let width_px = 7 * text.chars().count() as i32 + 6;
+            let style =
+                TextStyle::from(("sans-serif", 12).into_font()).color(&LIMIT).pos(Pos::new(HPos::Left, VPos::Bottom));
+            let tag = EmptyElement::at((0.02, *t))
+                + Rectangle::new([(0, -16), (width_px, -2)], WHITE.mix(0.85).filled())
+                + Text::new(text, (3, -3), style);
+            chart.draw_series(std::iter::once(tag)).map_err(err)?;
         }
         chart
             .configure_series_labels()
@@ -275,4 +411,101 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
         root.present().map_err(err)?;
     }
     Ok(svg)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::offline::report::{self, RunInfo};
+    use crate::offline::run::MonthFigures;
+
+    fn example() -> crate::config::Loaded {
+        let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("config/zero-export-house.yaml");
+        crate::config::load_file(&path).unwrap_or_else(|e| panic!("{}", e.render(false)))
+    }
+
+    fn info(site: &Site, days: u32) -> RunInfo {
+        RunInfo {
+            site: site.name.clone(),
+            from: "2026-01-01".into(),
+            to: "2026-12-31".into(),
+            days,
+            seed: 1,
+            weather: "mixed".into(),
+            step_s: 1.0,
+        }
+    }
+
+    #[test]
+    fn longer_runs_are_sampled_more_coarsely_on_whole_minutes() {
+        let minutes = |days| trace_interval(days).as_secs() / 60;
+        assert_eq!(minutes(1), 1);
+        assert_eq!(minutes(3), 2);
+        assert_eq!(minutes(7), 5);
+        assert_eq!(minutes(45), 30);
+        assert_eq!(minutes(1000), 60);
+        for days in 1..=60 {
+            assert!(u64::from(days) * 1440 / minutes(days) <= MAX_TRACE_SAMPLES, "{days} days");
+            assert_eq!(60 % minutes(days), 0);
+        }
+    }
+
+    #[test]
+    fn day_ticks_fall_on_local_midnights_across_a_dst_change_and_in_half_hour_zones() {
+        // Europe/Lisbon leaves summer time on 2026-10-25 (a 25 h day); Australia/Adelaide
+        // is UTC+10:30 in summer (source: the IANA tz database through chrono-tz).
+        for (zone, start) in [("Europe/Lisbon", "2026-10-24"), ("Australia/Adelaide", "2026-12-05")] {
+            let tz: chrono_tz::Tz = zone.parse().unwrap();
+            let date = chrono::NaiveDate::parse_from_str(start, "%Y-%m-%d").unwrap();
+            let t0 = crate::offline::run::midnight(tz, date).unwrap() + 30_000;
+            let axis = time_axis(tz, t0, 71.0);
+            assert!(axis.day_labels);
+            assert_eq!(axis.bold.len(), 2, "{zone}: {:?}", axis.bold);
+            for h in &axis.bold {
+                let t = crate::units::Timestamp(t0 + (h * 3_600_000.0).round() as i64).to_utc().with_timezone(&tz);
+                assert_eq!(t.format("%H:%M").to_string(), "00:00", "{zone}");
+            }
+            let light_per_day = axis.light.len() as f64 / 3.0;
+            assert!((2.5..=3.0).contains(&light_per_day), "{zone}: {light_per_day}");
+        }
+        let tz: chrono_tz::Tz = "Europe/Lisbon".parse().unwrap();
+        let jan = chrono::NaiveDate::from_ymd_opt(2026, 1, 15).unwrap();
+        let axis = time_axis(tz, crate::offline::run::midnight(tz, jan).unwrap(), 24.0);
+        assert!(!axis.day_labels);
+        assert_eq!(axis.bold.len(), 13, "00:00 to 24:00 every 2 h");
+        assert_eq!(axis.light.len(), 12);
+    }
+
+    #[test]
+    fn month_labels_read_as_words() {
+        assert_eq!(month_label("2026-06"), "Jun 2026");
+        assert_eq!(month_label("not a month"), "not a month");
+    }
+
+    #[test]
+    fn monthly_bars_leave_out_a_series_too_small_to_see_and_name_each_block() {
+        let loaded = example();
+        let site = &loaded.site;
+        let month = |m, import_wh, export_wh| MonthFigures {
+            year: 2026,
+            month: m,
+            import_wh,
+            export_wh,
+            diverted_wh: 300_000.0,
+            pv_wh: 500_000.0,
+            cost: 40.0,
+        };
+        let run = RunOutput { months: (1..=12).map(|m| month(m, 250_000.0, 120.0)).collect(), ..RunOutput::default() };
+        let baseline =
+            RunOutput { months: (1..=12).map(|m| month(m, 480_000.0, 0.0)).collect(), ..RunOutput::default() };
+        let r = report::build(site, loaded.tariff.as_ref(), info(site, 365), &run, &baseline);
+        let svg = monthly(site, loaded.tariff.as_ref(), &r).unwrap();
+        assert!(svg.contains("export: at most 0.1 kWh a month"), "the tiny export has no bars");
+        assert!(svg.contains("block 2 from 200 kWh") && svg.contains("block 3 from 450 kWh"));
+        assert_eq!(svg.matches("tariff block thresholds").count(), 1, "one legend entry for all blocks");
+        assert!(svg.contains("Jan 2026") && svg.contains("Dec 2026"));
+        // Three series of twelve bars (import, import without diversion, diverted).
+        let bars = svg.matches("<rect").count();
+        assert!((36..=36 + 12).contains(&bars), "{bars} rectangles");
+    }
 }
