@@ -267,18 +267,22 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
         let n = rep.points.len();
         let xs: Vec<f64> = (0..n).map(|i| i as f64).collect();
         let labels: Vec<String> = rep.points.iter().map(|p| p.value.clone()).collect();
+        // Headroom above the data for the legend in the upper left.
         let energy_max =
-            rep.points.iter().flat_map(|p| [p.import_kwh, p.export_kwh, p.diverted_kwh]).fold(1.0, f64::max) * 1.15;
+            rep.points.iter().flat_map(|p| [p.import_kwh, p.export_kwh, p.diverted_kwh]).fold(1.0, f64::max) * 1.35;
         let mut c = ChartBuilder::on(&top)
             .caption(format!("sweep of {} — energy per run ({} days)", rep.key, rep.days), ("sans-serif", 20))
             .margin(12)
-            .x_label_area_size(30)
+            .x_label_area_size(44)
             .y_label_area_size(60)
             .build_cartesian_2d(-0.3..(n as f64 - 0.7), 0.0..energy_max)
             .map_err(|e| anyhow::anyhow!("{e}"))?;
+        // The varied setting's own name under the axis (`modules`, `min_on`, `start#1`).
+        let x_desc = rep.key.rsplit('.').next().unwrap_or(&rep.key).to_owned();
         c.configure_mesh()
             .x_labels(n)
             .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
+            .x_desc(x_desc.clone())
             .y_desc("kWh")
             .draw()
             .map_err(|e| anyhow::anyhow!("{e}"))?;
@@ -289,12 +293,17 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
             ("diverted", RGBColor(60, 120, 200), |p| p.diverted_kwh),
         ];
         for (name, colour, get) in series {
-            c.draw_series(LineSeries::new(xs.iter().cloned().zip(rep.points.iter().map(get)), colour.stroke_width(3)))
-                .map_err(|e| anyhow::anyhow!("{e}"))?
-                .label(name)
-                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], colour.stroke_width(3)));
+            // A dot at each value run: the lines between them are not runs.
+            c.draw_series(
+                LineSeries::new(xs.iter().cloned().zip(rep.points.iter().map(get)), colour.stroke_width(3))
+                    .point_size(4),
+            )
+            .map_err(|e| anyhow::anyhow!("{e}"))?
+            .label(name)
+            .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], colour.stroke_width(3)));
         }
         c.configure_series_labels()
+            .position(SeriesLabelPosition::UpperLeft)
             .background_style(WHITE.mix(0.85))
             .border_style(RGBColor(200, 200, 200))
             .draw()
@@ -309,7 +318,7 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
         let mut b = ChartBuilder::on(&bottom)
             .caption("savings per run and simple payback of the array", ("sans-serif", 18))
             .margin(12)
-            .x_label_area_size(30)
+            .x_label_area_size(44)
             .y_label_area_size(60)
             .right_y_label_area_size(60)
             .build_cartesian_2d(-0.3..(n as f64 - 0.7), 0.0..money_max)
@@ -318,33 +327,43 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
         b.configure_mesh()
             .x_labels(n)
             .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
+            .x_desc(x_desc)
             .y_desc(format!("savings ({})", rep.currency.clone().unwrap_or_default()))
             .draw()
             .map_err(|e| anyhow::anyhow!("{e}"))?;
         b.configure_secondary_axes().y_desc("payback (years)").draw().map_err(|e| anyhow::anyhow!("{e}"))?;
         let gold = RGBColor(230, 160, 0);
         let violet = RGBColor(110, 70, 170);
-        b.draw_series(LineSeries::new(
-            xs.iter().cloned().zip(rep.points.iter().map(|p| p.savings_vs_no_pv.unwrap_or(0.0))),
-            gold.stroke_width(3),
-        ))
+        b.draw_series(
+            LineSeries::new(
+                xs.iter().cloned().zip(rep.points.iter().map(|p| p.savings_vs_no_pv.unwrap_or(0.0))),
+                gold.stroke_width(3),
+            )
+            .point_size(4),
+        )
         .map_err(|e| anyhow::anyhow!("{e}"))?
         .label("savings against no PV")
         .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], gold.stroke_width(3)));
-        b.draw_series(LineSeries::new(
-            xs.iter().cloned().zip(rep.points.iter().map(|p| p.savings_vs_no_diversion.unwrap_or(0.0))),
-            RGBColor(60, 120, 200).stroke_width(2),
-        ))
+        b.draw_series(
+            LineSeries::new(
+                xs.iter().cloned().zip(rep.points.iter().map(|p| p.savings_vs_no_diversion.unwrap_or(0.0))),
+                RGBColor(60, 120, 200).stroke_width(2),
+            )
+            .point_size(4),
+        )
         .map_err(|e| anyhow::anyhow!("{e}"))?
         .label("savings from diversion")
         .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], RGBColor(60, 120, 200).stroke_width(2)));
-        b.draw_secondary_series(LineSeries::new(
-            xs.iter()
-                .cloned()
-                .zip(rep.points.iter().map(|p| p.payback_years.unwrap_or(f64::NAN)))
-                .filter(|(_, y)| y.is_finite()),
-            violet.stroke_width(2),
-        ))
+        b.draw_secondary_series(
+            LineSeries::new(
+                xs.iter()
+                    .cloned()
+                    .zip(rep.points.iter().map(|p| p.payback_years.unwrap_or(f64::NAN)))
+                    .filter(|(_, y)| y.is_finite()),
+                violet.stroke_width(2),
+            )
+            .point_size(4),
+        )
         .map_err(|e| anyhow::anyhow!("{e}"))?
         .label("payback (years, right axis)")
         .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], violet.stroke_width(2)));
