@@ -376,3 +376,44 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
     }
     Ok(svg)
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn point(value: &str, import_kwh: f64) -> Point {
+        Point {
+            value: value.into(),
+            pv_kwp: 2.0,
+            pv_kwh: 2500.0,
+            import_kwh,
+            export_kwh: 0.0,
+            diverted_kwh: 900.0,
+            self_consumption_pct: 100.0,
+            cost: Some(500.0),
+            savings_vs_no_diversion: Some(80.0),
+            savings_vs_no_pv: Some(300.0),
+            payback_years: Some(5.5),
+        }
+    }
+
+    #[test]
+    fn the_chart_names_the_varied_setting_and_marks_each_value_run() {
+        let rep = SweepReport {
+            key: "plant.solar.arrays.0.strings.0.modules".into(),
+            from: "2026-01-01".into(),
+            days: 365,
+            seed: 1,
+            currency: Some("€".into()),
+            array_cost_per_kwp: Some(850.0),
+            no_pv_cost: Some(900.0),
+            points: vec![point("4", 3000.0), point("6", 2600.0), point("8", 2300.0)],
+        };
+        let svg = chart_svg(&rep).unwrap();
+        // plotters writes each text on its own line between the tags.
+        let axis_names = svg.lines().filter(|l| l.trim() == "modules").count();
+        assert_eq!(axis_names, 2, "under both x axes");
+        // A dot per value on each of the six lines.
+        assert!(svg.matches("<circle").count() >= 6 * 3, "{} circles", svg.matches("<circle").count());
+    }
+}

@@ -55,9 +55,6 @@ pub fn trace_interval(days: u32) -> std::time::Duration {
     std::time::Duration::from_secs(minutes * 60)
 }
 
-/// Tick marks of a time axis in hours after the first sample `t0_ms`, on whole local
-/// hours (so they follow daylight-saving changes): bold with a label at local midnights
-/// for runs longer than 30 h (light every 6 h), otherwise every 2 h (light every hour).
 /// A linear f64 axis with tick marks where we put them. (plotters' own `with_key_points`
 /// wrapper loses the f64 label formatter, so `configure_mesh` refuses it.)
 struct Ticked {
@@ -94,12 +91,16 @@ impl Ranged for Ticked {
     }
 }
 
+/// Where a time axis has its tick marks, in hours after its first sample.
 struct TimeAxis {
     bold: Vec<f64>,
     light: Vec<f64>,
     day_labels: bool,
 }
 
+/// Tick marks of a time axis in hours after the first sample `t0_ms`, on whole local
+/// hours (so they follow daylight-saving changes): bold with a label at local midnights
+/// for runs longer than 30 h (light every 6 h), otherwise every 2 h (light every hour).
 fn time_axis(tz: chrono_tz::Tz, t0_ms: i64, span_h: f64) -> TimeAxis {
     use chrono::Timelike;
     let day_labels = span_h > 30.0;
@@ -325,7 +326,8 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
             .chain(thresholds.iter().cloned())
             .fold(10.0, f64::max)
             * 1.15;
-        // Tick marks at month boundaries; each month's label at the middle of its group.
+        // One labelled tick at the middle of each month's group (every k-th month on
+        // long runs).
         let every = n.div_ceil(MAX_MONTH_LABELS).max(1);
         let centres: Vec<f64> = (0..n).step_by(every).map(|i| i as f64 + 0.5).collect();
         let mut chart = ChartBuilder::on(&root)
@@ -507,5 +509,26 @@ mod tests {
         // Three series of twelve bars (import, import without diversion, diverted).
         let bars = svg.matches("<rect").count();
         assert!((36..=36 + 12).contains(&bars), "{bars} rectangles");
+    }
+
+    #[test]
+    fn the_inverter_limit_is_drawn_only_while_the_array_produces() {
+        let loaded = example();
+        let site = &loaded.site;
+        let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
+        // Four samples an hour apart: two at night, two in sunshine, all with a limit.
+        let trace = Trace {
+            t_ms: (0..4).map(|h| 1_781_481_600_000 + h * 3_600_000).collect(),
+            pv_w: vec![0.0, 0.0, 2500.0, 3000.0],
+            house_w: vec![300.0; 4],
+            grid_w: vec![300.0, 300.0, -100.0, 0.0],
+            battery_w: vec![0.0; 4],
+            tank_c: vec![f64::NAN; 4],
+            loads: Vec::new(),
+            limit_w: vec![2000.0; 4],
+        };
+        let svg = flows(site, &r, &trace).unwrap();
+        // Two limit dots plus the legend's.
+        assert_eq!(svg.matches("<circle").count(), 3, "{svg}");
     }
 }
