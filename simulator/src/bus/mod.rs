@@ -523,20 +523,26 @@ impl Bus {
 
     /// `None` when an address is not writable; otherwise the result of the write.
     fn write_inverter(&mut self, address: u16, values: &[u16]) -> Option<Result<(), BusError>> {
+        // Called on every limit change (each second in a long offline run), so the
+        // writable points are looked up in tables built at compile time.
+        const W123: [bool; IMMEDIATE_CONTROLS.len() as usize] = IMMEDIATE_CONTROLS.writable_offsets();
+        const W704: [bool; DER_AC_CONTROLS.len() as usize] = DER_AC_CONTROLS.writable_offsets();
         let (s123, s704) = Bus::control_starts();
         let locate = |a: u16| -> Option<(bool, usize)> {
-            let (model, start, is123) = if (s123..s123 + IMMEDIATE_CONTROLS.len()).contains(&a) {
-                (&IMMEDIATE_CONTROLS, s123, true)
+            let (map, is123, o) = if (s123..s123 + IMMEDIATE_CONTROLS.len()).contains(&a) {
+                (&W123[..], true, usize::from(a - s123))
             } else if (s704..s704 + DER_AC_CONTROLS.len()).contains(&a) {
-                (&DER_AC_CONTROLS, s704, false)
+                (&W704[..], false, usize::from(a - s704))
             } else {
                 return None;
             };
-            let (point, _) = model.point_at(a - start)?;
-            point.writable.then_some((is123, usize::from(a - start)))
+            map[o].then_some((is123, o))
         };
-        let targets: Vec<(bool, usize)> =
-            (0..values.len() as u16).map(|k| locate(address + k)).collect::<Option<_>>()?;
+        let mut targets = [(false, 0usize); 123];
+        let targets = targets.get_mut(..values.len())?;
+        for (k, t) in targets.iter_mut().enumerate() {
+            *t = locate(address.wrapping_add(k as u16))?;
+        }
         let unit = INVERTER_UNIT;
         let invalid = |what: String| Some(Err(BusError::IllegalDataValue { unit, what }));
         for (&(is123, o), &v) in targets.iter().zip(values) {

@@ -111,6 +111,26 @@ impl Model {
         None
     }
 
+    /// For every data offset, whether a client may write it: a table built at compile
+    /// time so a write is checked without walking the point list (`N` must be
+    /// [`Model::len`]).
+    pub const fn writable_offsets<const N: usize>(&self) -> [bool; N] {
+        let mut map = [false; N];
+        let (mut i, mut off) = (0, 0);
+        while i < self.points.len() {
+            let p = self.points[i];
+            let mut k = 0;
+            while k < p.size() {
+                map[(off + k) as usize] = p.writable;
+                k += 1;
+            }
+            off += p.size();
+            i += 1;
+        }
+        assert!(off as usize == N, "N must be the model's length");
+        map
+    }
+
     /// The point that covers data offset `off`, with the point's own start offset.
     pub fn point_at(&self, off: u16) -> Option<(Point, u16)> {
         let mut start = 0;
@@ -493,4 +513,24 @@ pub fn string(text: &str, n: usize) -> Vec<u16> {
     let mut bytes: Vec<u8> = text.bytes().take(2 * n).collect();
     bytes.resize(2 * n, 0);
     bytes.chunks(2).map(|c| u16::from_be_bytes([c[0], c[1]])).collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The compile-time writable tables say what walking the point list says.
+    #[test]
+    fn writable_offsets_agree_with_the_point_list() {
+        fn check<const N: usize>(m: &Model) {
+            let map: [bool; N] = m.writable_offsets();
+            for (off, &w) in map.iter().enumerate() {
+                let (point, _) = m.point_at(off as u16).expect("offset inside the model");
+                assert_eq!(w, point.writable, "model {} offset {off} ({})", m.id, point.name);
+            }
+        }
+        check::<{ IMMEDIATE_CONTROLS.len() as usize }>(&IMMEDIATE_CONTROLS);
+        check::<{ DER_AC_CONTROLS.len() as usize }>(&DER_AC_CONTROLS);
+        check::<{ INVERTER_1PH.len() as usize }>(&INVERTER_1PH);
+    }
 }
