@@ -119,3 +119,27 @@ async fn step_test_switches_the_load_measures_the_step_and_switches_it_off() {
     assert!(err.contains("device \"meter\" does not answer"), "{err}");
     let _ = std::fs::remove_dir_all(path.parent().unwrap());
 }
+
+/// Against the plant simulator (a SunSpec inverter with models 123 and 704): `read`
+/// names the SunSpec models and says which one the limit is written to and what the
+/// inverter does by itself if Spillway stops (model 704 falls back to the safe limit,
+/// SunSpec model 704 `WMaxLimPctRvrt`).
+#[tokio::test]
+async fn read_says_which_model_takes_the_inverter_limit_and_how_it_fails() {
+    let sim = daemon_support::sim::Sim::start(3000.0).await;
+    let dir = std::env::temp_dir().join(format!("spillway-commission-sunspec-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("site.yaml");
+    std::fs::write(&path, sim.site_yaml()).unwrap();
+    let site = path.display().to_string();
+    let (code, out, err) = spillway(&["read", &site, "--device", "inverter"]).await;
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert!(out.contains("SunSpec models") && out.contains("123@") && out.contains("704@"), "{out}");
+    let note = line_of(&out, "power limit:");
+    assert!(note.contains("model 704") && note.contains("falls back to 0 W") && note.contains("40 s"), "{out}");
+    assert!(!out.contains("warning"), "{out}");
+    // Other devices carry no such line.
+    let (_, out, _) = spillway(&["read", &site, "--device", "meter"]).await;
+    assert!(!out.contains("power limit"), "{out}");
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -122,9 +122,43 @@ pub enum LimitControl {
     },
 }
 
+/// Which SunSpec model the power limit is written to, given the model ids a device
+/// offers: 704 when present, else 123 (the choice [`LimitControl::locate`] makes).
+pub fn limit_model(models: &[u16]) -> Option<u16> {
+    [704, 123].into_iter().find(|m| models.contains(m))
+}
+
+/// What an installer must know about the inverter's limit control on this site: `Err`
+/// with a warning when the site's export is limited but the limit is written to model
+/// 123, which drops the limit (full power) when its revert timer runs out, so a
+/// controller that stops leaves the site exporting; `Ok` with a one-line description
+/// otherwise. `None` when the device offers neither model.
+pub fn limit_model_note(site: &crate::config::model::Site, models: &[u16]) -> Option<Result<String, String>> {
+    let model = limit_model(models)?;
+    let refresh = site.inverter.as_ref().map_or(Duration::from_secs(10), |i| i.refresh);
+    let revert = crate::units::format_duration(refresh * REVERT_FACTOR);
+    Some(match model {
+        704 => {
+            let safe = site.inverter.as_ref().map_or(0.0, |i| i.safe_limit.0);
+            Ok(format!(
+                "power limit: model 704; if Spillway stops refreshing it, the inverter falls back to {} W \
+                 by itself after {revert}",
+                crate::units::trim_number(safe)
+            ))
+        }
+        _ if site.export_limit().is_some() => Err(format!(
+            "power limit: model 123 only; if Spillway stops refreshing it, the inverter drops the limit after \
+             {revert} and may export at full power. On a site whose export is limited, use an inverter with \
+             model 704 or fit an independent export limiter, as the local grid code requires"
+        )),
+        _ => Ok(format!(
+            "power limit: model 123; if Spillway stops refreshing it, the inverter returns to full power after \
+             {revert} (export is allowed on this site)"
+        )),
+    })
+}
+
 impl LimitControl {
-    /// The writes that set `pct` (% of rated) with `safe_pct` as the reversion limit
-    /// and `refresh` as the rewrite period.
     /// Finds the power-limit control on a device's SunSpec map: model 704 when present
     /// (it fails safe), else model 123. Returns the control with a scale factor of 0 and
     /// the address of its `WMaxLimPct_SF` register, which the caller reads and applies
@@ -363,6 +397,45 @@ mod tests {
             [WriteOp::Registers { words, .. }] => words.clone(),
             other => panic!("one block write expected: {other:?}"),
         }
+    }
+
+    fn sunspec_site(export: &str) -> crate::config::model::Site {
+        let text = format!(
+            "
+site: {{ name: T, timezone: UTC, export: {export} }}
+devices:
+  inv: {{ modbus_tcp: 127.0.0.1:1502, unit: 1, sunspec: true }}
+points:
+  grid: {{ device: inv, sunspec: 201.W }}
+inverter:
+  rated: 4kW
+  limit: {{ device: inv, sunspec: true }}
+  safe_limit: 200W
+"
+        );
+        crate::config::load_str("t.yaml", &text).map_err(|e| e.render(false)).unwrap().site
+    }
+
+    #[test]
+    fn model_704_is_preferred_because_it_falls_back_to_the_safe_limit_by_itself() {
+        assert_eq!(limit_model(&[1, 101, 120, 123, 704]), Some(704));
+        assert_eq!(limit_model(&[1, 101, 123]), Some(123));
+        assert_eq!(limit_model(&[1, 101]), None);
+        let note = limit_model_note(&sunspec_site("forbidden"), &[1, 101, 123, 704]).unwrap().unwrap();
+        assert!(note.contains("model 704") && note.contains("200 W") && note.contains("40 s"), "{note}");
+    }
+
+    #[test]
+    fn model_123_alone_on_a_site_that_may_not_export_is_a_warning() {
+        // Model 123 drops its limit when the revert timer runs out (SunSpec model 123,
+        // `WMaxLimPct_RvrtTms`): a controller that stops leaves the inverter at full power.
+        for export in ["forbidden", "1kW"] {
+            let warning = limit_model_note(&sunspec_site(export), &[1, 101, 123]).unwrap().unwrap_err();
+            assert!(warning.contains("full power") && warning.contains("model 704"), "{warning}");
+        }
+        let note = limit_model_note(&sunspec_site("allowed"), &[1, 101, 123]).unwrap().unwrap();
+        assert!(note.contains("export is allowed"), "{note}");
+        assert!(limit_model_note(&sunspec_site("forbidden"), &[1, 101]).is_none());
     }
 
     #[test]

@@ -5,7 +5,8 @@ use std::path::PathBuf;
 use std::process::ExitCode;
 use std::time::Duration;
 
-use spillway::config::model::{PointId, Site};
+use spillway::actuators::modbus::limit_model_note;
+use spillway::config::model::{DeviceId, PointId, Site, Write};
 use spillway::daemon::commission;
 use spillway::units::trim_number;
 
@@ -32,6 +33,25 @@ fn value_text(site: &Site, point: PointId, v: f64) -> String {
     let unit = p.dimension.base_unit();
     let v = (v * 1000.0).round() / 1000.0;
     if unit.is_empty() { trim_number(v) } else { format!("{} {unit}", trim_number(v)) }
+}
+
+/// The line about the inverter's power-limit control, for the device the site writes
+/// its SunSpec limit to: which model it uses and what happens if Spillway stops.
+fn limit_note(site: &Site, device: DeviceId, models: &[(u16, u16)]) -> Option<String> {
+    let limit_device = match site.inverter.as_ref().map(|i| &i.limit) {
+        Some(Write::SunSpecLimit { device }) => *device,
+        _ => return None,
+    };
+    if limit_device != device {
+        return None;
+    }
+    let ids: Vec<u16> = models.iter().map(|&(id, _)| id).collect();
+    match limit_model_note(site, &ids) {
+        Some(Ok(note)) => Some(note),
+        Some(Err(warning)) => Some(format!("warning: {warning}")),
+        None if models.is_empty() => None,
+        None => Some("warning: no SunSpec model 123 or 704: the inverter limit cannot be written".to_owned()),
+    }
 }
 
 pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
@@ -70,6 +90,9 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
                     format!("  SunSpec models {}", m.join(" "))
                 };
                 println!("{}{models}", dev.name);
+                if let Some(note) = limit_note(&site, d.device, &probe.models) {
+                    println!("  {note}");
+                }
                 if probe.points.is_empty() {
                     println!("  (no points configured)");
                 }

@@ -470,6 +470,10 @@ impl ModbusLink {
         }
         let control = found.map(|c| c.with_sf(sf));
         info!(device = %self.dev().name, ?control, "SunSpec power-limit control");
+        let ids: Vec<u16> = map.models.iter().map(|&(id, _, _)| id).collect();
+        if let Some(Err(warning)) = crate::actuators::modbus::limit_model_note(&self.site, &ids) {
+            warn!(device = %self.dev().name, "{warning}");
+        }
         Ok(control.map(|control| LimitContext {
             control,
             safe_pct,
