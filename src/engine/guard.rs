@@ -30,7 +30,14 @@ pub struct Guard {
     /// Recent PV readings, stamped with when each was measured, to carry a late grid
     /// reading forward to now.
     pv_history: std::collections::VecDeque<(Timestamp, Power)>,
+    /// The PV last seen producing below its limit (so giving all the array had), and
+    /// when: what the array can give, for a site without a `pv_available` point.
+    ceiling: Option<(Timestamp, Power)>,
 }
+
+/// How long a PV reading taken below the limit stands for what the array can give. The
+/// sun moves, so the memory is short; our choice, not a standard.
+pub const CEILING_MEMORY: Duration = Duration::from_secs(15 * 60);
 
 /// The longest stretch of time one release step may count (see `decide`).
 const RELEASE_WINDOW_MAX: Duration = Duration::from_secs(5);
@@ -45,21 +52,50 @@ impl Guard {
     }
 
     /// Surplus hidden by the curtailment: what the inverter could add if released.
-    /// Known exactly when the site has a `pv_available` point; otherwise, while the
-    /// inverter sits at its limit, the rest of its rating is assumed available (an
-    /// optimistic guess: a load that starts on it and finds too little is stopped by
-    /// its stop rule, and no export results either way).
-    pub fn hidden_headroom(&self, site: &Site, values: &[f64]) -> Power {
-        let (Some(limit), Some(inv)) = (self.limit, &site.inverter) else {
+    /// Known exactly when the site has a `pv_available` point. Otherwise, while the
+    /// inverter sits at its limit, the array is assumed able to give what it was last
+    /// seen giving below a limit (within [`CEILING_MEMORY`], and only while that
+    /// reading is not disproved by the array holding a higher limit since), else the
+    /// rest of the inverter's rating. Without that memory, a load started on the
+    /// rating's guess at dusk finds too little, is stopped by its stop rule, and starts
+    /// again on the same guess after its `min_off`, all evening. Either guess errs
+    /// towards import, never export: the guard still holds the grid. Called once per
+    /// tick, before [`Guard::decide`]: it also takes this tick's PV reading in.
+    pub fn hidden_headroom(&mut self, site: &Site, values: &[f64], now: Timestamp) -> Power {
+        let Some(inv) = &site.inverter else {
             return Power::ZERO;
         };
         let value = |p: Option<crate::config::model::PointId>| p.map(|p| values[p.0]).filter(|v| v.is_finite());
-        let pv = value(site.roles.pv);
+        let pv = value(site.roles.pv).map(Power);
+        let margin = pinned_margin(inv.rated);
+        if let Some(p) = pv {
+            match self.limit {
+                // Below its limit (or with none) the array gives all it has.
+                None => self.ceiling = Some((now, p)),
+                Some(l) if p < l - margin => self.ceiling = Some((now, p)),
+                // Holding a limit above the remembered reading: that reading was a cloud
+                // or a ramp, not what the array can give.
+                Some(l) if self.ceiling.is_some_and(|(_, c)| l > c + margin) => self.ceiling = None,
+                Some(_) => {}
+            }
+        }
+        if self.ceiling.is_some_and(|(t, _)| now.since(t) > CEILING_MEMORY) {
+            self.ceiling = None;
+        }
+        let Some(limit) = self.limit else {
+            return Power::ZERO;
+        };
         if let (Some(avail), Some(pv)) = (value(site.roles.pv_available), pv) {
-            return Power((avail - pv).max(0.0));
+            return Power((avail - pv.0).max(0.0));
         }
         match pv {
-            Some(pv) if pv >= limit.0 - pinned_margin(inv.rated).0 => (inv.rated - limit).max(Power::ZERO),
+            Some(pv) if pv >= limit - margin => {
+                let rest_of_rating = (inv.rated - limit).max(Power::ZERO);
+                match self.ceiling {
+                    Some((_, c)) => rest_of_rating.min((c - limit).max(Power::ZERO)),
+                    None => rest_of_rating,
+                }
+            }
             _ => Power::ZERO,
         }
     }

@@ -388,7 +388,7 @@ impl Engine {
         // never twice on the same (delayed) one.
         let grid_at = site.roles.grid.map_or(Timestamp::NEVER, |p| snapshot.get(p).at.minus(site.points[p.0].latency));
         let pv_at = site.roles.pv.map_or(now, |p| snapshot.get(p).at.minus(site.points[p.0].latency));
-        let hidden = self.guard.hidden_headroom(&site, &self.values);
+        let hidden = self.guard.hidden_headroom(&site, &self.values, now);
         let base_surplus = match &site.connection {
             Connection::Grid { .. } => grid.map(|g| managed - g),
             Connection::OffGrid(og) => self.off_grid_surplus(og, managed),
