@@ -127,10 +127,7 @@ async fn step_test_switches_the_load_measures_the_step_and_switches_it_off() {
 #[tokio::test]
 async fn read_says_which_model_takes_the_inverter_limit_and_how_it_fails() {
     let sim = daemon_support::sim::Sim::start(3000.0).await;
-    let dir = std::env::temp_dir().join(format!("spillway-commission-sunspec-{}", std::process::id()));
-    std::fs::create_dir_all(&dir).unwrap();
-    let path = dir.join("site.yaml");
-    std::fs::write(&path, sim.site_yaml()).unwrap();
+    let (dir, path) = sim.write_site("commission-sunspec", "site");
     let site = path.display().to_string();
     let (code, out, err) = spillway(&["read", &site, "--device", "inverter"]).await;
     assert_eq!(code, 0, "{out}\n{err}");

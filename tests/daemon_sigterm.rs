@@ -66,10 +66,7 @@ async fn sigterm_writes_the_safe_states_before_the_process_exits() {
 #[tokio::test]
 async fn sigterm_against_the_simulator_leaves_its_relays_open_and_its_limit_safe() {
     let sim = daemon_support::sim::Sim::start(4200.0).await;
-    let dir = std::env::temp_dir().join(format!("spillway-sigterm-sim-{}", std::process::id()));
-    std::fs::create_dir_all(&dir).unwrap();
-    let site = dir.join("house.yaml");
-    std::fs::write(&site, sim.site_yaml()).unwrap();
+    let (dir, site) = sim.write_site("sigterm-sim", "house");
     let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
         .arg("run")
         .arg(&site)

@@ -67,6 +67,16 @@ impl Sim {
         SITE.replace("127.0.0.1:5020", &self.addr().to_string())
     }
 
+    /// Writes [`Sim::site_yaml`] to `NAME.yaml` in a fresh temporary directory named by
+    /// `tag`; returns the directory and the file (the test removes the directory).
+    pub fn write_site(&self, tag: &str, name: &str) -> (std::path::PathBuf, std::path::PathBuf) {
+        let dir = std::env::temp_dir().join(format!("spillway-{tag}-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let site = dir.join(format!("{name}.yaml"));
+        std::fs::write(&site, self.site_yaml()).unwrap();
+        (dir, site)
+    }
+
     /// Grid power at the simulated meter as it reports it (import positive).
     pub fn meter_w(&self) -> f64 {
         self.handle.readings().grid.map_or(f64::NAN, |g| g.power_w)
