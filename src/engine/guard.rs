@@ -42,8 +42,10 @@ pub const CEILING_MEMORY: Duration = Duration::from_secs(15 * 60);
 /// The longest stretch of time one release step may count (see `decide`).
 const RELEASE_WINDOW_MAX: Duration = Duration::from_secs(5);
 
-/// How much PV history is kept (longer than any sensible meter latency).
-const PV_HISTORY: Duration = Duration::from_secs(10);
+/// The PV history reaches back to the grid reading in use, however late the meter is
+/// (a reading is used until it goes stale, so its age is bounded by the point's latency
+/// plus its stale timeout); this only bounds the memory if readings stop moving on.
+const PV_HISTORY_MAX: Duration = Duration::from_secs(10 * 60);
 
 impl Guard {
     /// Whether a limit is in force.
@@ -160,7 +162,11 @@ impl Guard {
                 if self.pv_history.back().is_none_or(|(t, _)| pv_measured_at > *t) {
                     self.pv_history.push_back((pv_measured_at, p));
                 }
-                while self.pv_history.front().is_some_and(|(t, _)| now.since(*t) > PV_HISTORY) {
+                // Samples measured before the reading are never needed again: the next
+                // reading is measured later still. The newest sample always stays.
+                while self.pv_history.len() > 1
+                    && self.pv_history.front().is_some_and(|(t, _)| *t < measured_at || now.since(*t) > PV_HISTORY_MAX)
+                {
                     self.pv_history.pop_front();
                 }
                 // The PV as the grid reading saw it: the first PV sample measured at or

@@ -475,6 +475,54 @@ fn a_limit_raise_seen_by_a_late_meter_is_not_corrected_twice() {
     }
 }
 
+/// Closed loop for the carry-forward with a slow meter: PV polled every second, a grid
+/// reading that describes the site `latency_s` before it arrives, a 3 kW house and the
+/// sun coming out from behind a cloud edge (the array's potential ramps 1 → 5 kW at
+/// 100 W/s, then stays): export starts 20 s into the ramp. Returns the export energy in
+/// Wh over the ramp and after.
+fn export_wh_on_a_ramp_with_a_late_meter(latency_s: usize) -> f64 {
+    let yaml = site("  export: forbidden\n  import_target: 100W", TWO_LOADS).replace(
+        "grid:      { device: meter, register: 0, type: i32, unit: W }",
+        &format!(
+            "grid:      {{ device: meter, register: 0, type: i32, unit: W, latency: {latency_s}s, stale_after: 30s }}"
+        ),
+    );
+    let mut h = Harness::new(&yaml);
+    let (grid_p, pv_p) = (h.point("grid"), h.point("pv"));
+    let house = 3000.0;
+    let mut limit: Option<f64> = None;
+    let mut grid_history: Vec<f64> = Vec::new(); // one entry per second
+    let mut export_wh = 0.0;
+    for tick in 0..180usize {
+        let potential = (1000.0 + 100.0 * (tick as f64 - 30.0).max(0.0)).min(5000.0);
+        let pv = limit.map_or(potential, |l| potential.min(l));
+        let grid = house - pv;
+        grid_history.push(grid);
+        export_wh += (-grid).max(0.0) / 3600.0;
+        let now = h.now.plus(h.site.tick);
+        h.snapshot.set(pv_p, pv, now);
+        // The reading arriving now describes the site `latency_s` seconds ago.
+        h.snapshot.set(grid_p, grid_history[tick.saturating_sub(latency_s)], now);
+        limit = h.tick().inverter_limit.map(|p| p.0);
+    }
+    export_wh
+}
+
+/// The guard carries a late grid reading forward by the PV change since the reading was
+/// measured, so the PV history must reach back to the reading however late the meter is
+/// (within its stale timeout). With a 10 s window a 15 s meter lost the first 5 s of
+/// every ramp and the site exported that share until the meter caught up.
+#[test]
+fn the_carry_forward_reaches_back_to_a_meter_later_than_ten_seconds() {
+    let prompt = export_wh_on_a_ramp_with_a_late_meter(2);
+    let late = export_wh_on_a_ramp_with_a_late_meter(15);
+    let later = export_wh_on_a_ramp_with_a_late_meter(25);
+    eprintln!("export over the ramp: {prompt:.3} Wh (2 s meter), {late:.3} Wh (15 s), {later:.3} Wh (25 s)");
+    for (what, wh) in [("2 s", prompt), ("15 s", late), ("25 s", later)] {
+        assert!(wh < 1.0, "a {what} meter: {wh:.3} Wh exported over a ramp the guard could see coming");
+    }
+}
+
 /// With no sun the limit has nothing to hold back: it must not follow the house load
 /// down and up, rewriting the inverter at every wobble all night.
 #[test]
