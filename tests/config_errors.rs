@@ -74,6 +74,14 @@ fn a_stop_rule_that_holds_whenever_the_start_rule_does_is_an_error() {
     check("chattering-rules");
 }
 
+/// A key that belongs to another kind of source used to be ignored without a word (an
+/// ignored `scale: -1` on an MQTT grid meter would reverse the sign the export guard
+/// relies on); a zero scale made every reading 0.
+#[test]
+fn keys_of_another_kind_of_point_and_a_zero_scale_are_errors() {
+    check("misplaced-point-keys");
+}
+
 #[test]
 fn every_error_of_a_file_is_reported_in_one_run() {
     let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/test_data/broken");

@@ -60,7 +60,12 @@ struct Bench {
 }
 
 async fn start(server: TestServer) -> Bench {
-    let site = site(&yaml(server.addr.port()));
+    let yaml = yaml(server.addr.port());
+    start_with(server, &yaml).await
+}
+
+async fn start_with(server: TestServer, yaml: &str) -> Bench {
+    let site = site(yaml);
     let (id, _) = site.device("inv").unwrap();
     let link = ModbusLink::new(site.clone(), id, ModbusOptions::default()).unwrap();
     let dispatcher = Dispatcher::new(site.clone(), ActuatorOptions::default());
@@ -129,6 +134,28 @@ async fn discovery_finds_the_chain_at_each_base_and_resolves_meter_and_inverter_
         b.cancel.cancel();
         b.task.await.unwrap();
     }
+}
+
+/// A meter that counts export as positive is flipped by the point's `scale`, applied
+/// after the SunSpec scale factor found by discovery.
+#[tokio::test(start_paused = true)]
+async fn a_sunspec_points_scale_multiplies_the_value_after_its_scale_factor() {
+    let server = TestServer::start().await;
+    let starts = sunspec_map(&server, 1, 40000, &[(1, 66), (203, 105), (103, 50)]);
+    // Meter W = 1500 × 10^1 (this meter's +15 kW means export).
+    server.set_holding(1, starts[1] + 18, &[1500]);
+    server.set_holding(1, starts[1] + 22, &[1]);
+    let yaml = yaml(server.addr.port()).replace("sunspec: 203.W }", "sunspec: 203.W, scale: -1 }");
+    let mut b = start_with(server, &yaml).await;
+    let grid = b.site.point("grid").unwrap().0;
+    let v = wait_for(&mut b.events, Duration::from_secs(5), |e| match e {
+        SourceEvent::Sample { point, value, .. } if *point == grid => Some(*value),
+        _ => None,
+    })
+    .await;
+    assert_eq!(v, -15_000.0, "1500 × 10^1 × −1");
+    b.cancel.cancel();
+    b.task.await.unwrap();
 }
 
 #[test]

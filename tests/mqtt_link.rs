@@ -34,6 +34,7 @@ points:
   pv: {{ device: home, topic: pv/output, unit: kW }}
   tank_temp: {{ device: home, topic: tank/state, json: /temperature, unit: °C }}
   door: {{ device: home, topic: door/state, unit: bool }}
+  feed_in: {{ device: home, topic: meter/feed_in, unit: kW, scale: -1 }}
 loads:
   - name: pump
     priority: 1
@@ -153,6 +154,9 @@ async fn samples_come_from_plain_and_json_payloads_and_malformed_ones_are_counte
     assert_eq!(b.sample("door").await, 1.0);
     b.broker.publish("door/state", "false", false);
     assert_eq!(b.sample("door").await, 0.0);
+    // A meter that counts export as positive, flipped by its `scale`, on top of its unit.
+    b.broker.publish("meter/feed_in", "0.5", false);
+    assert_eq!(b.sample("feed_in").await, -500.0, "kW × 1000 × −1");
 
     b.broker.publish("meter/power", "lots", false);
     let (origin, detail) = b.malformed().await;
@@ -166,7 +170,7 @@ async fn samples_come_from_plain_and_json_payloads_and_malformed_ones_are_counte
     b.broker.publish("meter/power", "12", false);
     assert_eq!(b.sample("grid").await, 12.0);
     let c = b.stats.counts();
-    assert_eq!((c.malformed, c.samples, c.connects), (3, 6, 1));
+    assert_eq!((c.malformed, c.samples, c.connects), (3, 7, 1));
     b.cancel.cancel();
     b.task.await.unwrap();
 }

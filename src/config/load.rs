@@ -813,6 +813,64 @@ impl Builder<'_, '_> {
                 }
             },
         };
+        // Keys that belong to another kind of source would be ignored without a word;
+        // an ignored `scale: -1` on a grid meter reverses the sign the guard relies on.
+        let misplaced: &[(&str, Option<&Node>)] = if topic.is_some() {
+            &[("table", table), ("type", type_node), ("word_order", order_node)]
+        } else if sunspec.is_some() {
+            &[("table", table), ("type", type_node), ("word_order", order_node), ("json", json), ("qos", qos)]
+        } else {
+            &[("json", json), ("qos", qos)]
+        };
+        let kind = if topic.is_some() {
+            "an MQTT point"
+        } else if sunspec.is_some() {
+            "a SunSpec point"
+        } else {
+            "a Modbus point"
+        };
+        let mut misplaced_found = false;
+        for (key, node) in misplaced {
+            if let Some(n) = node {
+                self.diags.error(
+                    "C0260",
+                    format!("{what}: `{key}` does not apply to {kind}"),
+                    n.span.clone(),
+                    if sunspec.is_some() && !matches!(*key, "json" | "qos") {
+                        "the SunSpec model gives it: remove it"
+                    } else {
+                        "remove it"
+                    },
+                );
+                misplaced_found = true;
+            }
+        }
+        if misplaced_found {
+            return None;
+        }
+        // A topic's or a SunSpec point's `scale` is a plain factor on top of the unit
+        // (e.g. -1 for a meter that counts export as positive).
+        let mut unit_factor = unit_factor;
+        if topic.is_some() || sunspec.is_some() {
+            if let Some(n) = scale_node {
+                match self.scale(n)? {
+                    Scale::Factor(f) => unit_factor *= f,
+                    Scale::Register { .. } => {
+                        self.diags.error(
+                            "C0261",
+                            format!("{what}: {kind} takes a plain `scale` factor, not a register"),
+                            n.span.clone(),
+                            if sunspec.is_some() {
+                                "the SunSpec scale factor is found automatically"
+                            } else {
+                                "an MQTT payload has no registers"
+                            },
+                        );
+                        return None;
+                    }
+                }
+            }
+        }
         let read = if let Some(n) = topic {
             let topic = values::text(n, "the topic", self.diags)?;
             if topic.contains(['+', '#']) {
@@ -981,7 +1039,19 @@ impl Builder<'_, '_> {
 
     fn scale(&mut self, node: &Node) -> Option<Scale> {
         match &node.value {
-            Value::Int(_) | Value::Float(_) => Some(Scale::Factor(values::number(node, "the scale", self.diags)?)),
+            Value::Int(_) | Value::Float(_) => {
+                let factor = values::number(node, "the scale", self.diags)?;
+                if factor == 0.0 || !factor.is_finite() {
+                    self.diags.error(
+                        "C0259",
+                        "a scale of 0 would make every reading 0",
+                        node.span.clone(),
+                        "expected a non-zero factor, e.g. 0.1, or -1 for a meter that counts export as positive",
+                    );
+                    return None;
+                }
+                Some(Scale::Factor(factor))
+            }
             Value::Map(_) => {
                 let mut m = MapReader::new(node, "the scale", self.diags)?;
                 let address = m
