@@ -105,10 +105,10 @@ pub fn describe(site: &Site) -> String {
                 };
                 format!("{table} {}{ty}{scale}", m.address)
             }
-            PointRead::SunSpec(s) => format!("SunSpec {}.{}", s.model, s.point),
+            PointRead::SunSpec(s) => format!("SunSpec {}.{}{}", s.model, s.point, factor_note(p.unit_factor)),
             PointRead::Mqtt(m) => match &m.payload {
-                Payload::Plain => format!("topic {}", m.topic),
-                Payload::Json(ptr) => format!("topic {} at {ptr}", m.topic),
+                Payload::Plain => format!("topic {}{}", m.topic, factor_note(p.unit_factor)),
+                Payload::Json(ptr) => format!("topic {} at {ptr}{}", m.topic, factor_note(p.unit_factor)),
             },
         };
         let what = if p.boolean {
@@ -217,5 +217,35 @@ fn write_text(site: &Site, w: &Write) -> String {
         }
         Write::Mqtt { topic, .. } => format!("topic {topic} via {device}"),
         Write::SunSpecLimit { .. } => format!("SunSpec power limit on {device}"),
+    }
+}
+
+/// The factor a topic or SunSpec value is multiplied by (its unit's and its `scale`),
+/// shown when it is not 1; a negative one is called out, since it reverses the sign.
+fn factor_note(factor: f64) -> String {
+    if factor == 1.0 {
+        String::new()
+    } else if factor < 0.0 {
+        format!(" × {} (sign reversed)", trim_number(factor))
+    } else {
+        format!(" × {}", trim_number(factor))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use crate::config::load_str;
+
+    /// `spillway check` shows what a topic's or SunSpec value is multiplied by, and calls
+    /// out a reversed sign: the installer must see it before anything is switched.
+    #[test]
+    fn a_reversed_sign_on_a_topic_point_is_shown() {
+        let yaml = "site: { name: Flip, timezone: Europe/Lisbon }\nmqtt: { broker: 127.0.0.1:1883 }\n\
+            devices:\n  home: { mqtt: true }\npoints:\n  grid: { device: home, topic: meter/feed_in, unit: kW, scale: -1 }\n  \
+            pv: { device: home, topic: pv/power, unit: W }\n";
+        let site = load_str("flip.yaml", yaml).map_err(|e| e.render(false)).unwrap().site;
+        let text = super::describe(&site);
+        assert!(text.contains("topic meter/feed_in × -1000 (sign reversed); power"), "{text}");
+        assert!(text.contains("topic pv/power; power"), "{text}");
     }
 }
