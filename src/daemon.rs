@@ -102,7 +102,7 @@ pub enum DaemonError {
         #[source]
         source: std::io::Error,
     },
-    /// The state file exists but cannot be read.
+    /// The state file exists but cannot be read, or cannot be written.
     #[error("{0}")]
     State(#[from] StateFileError),
 }
@@ -126,6 +126,7 @@ impl Daemon {
         let mut engine = Engine::new(Arc::clone(&site));
         if let Some(path) = &options.state_file {
             restore(&mut engine, path, &options.clock)?;
+            state_file::write_at_start(path, &site.name, &engine.persisted(), options.clock.now())?;
         }
         let http = match options.http {
             Some(addr) => {

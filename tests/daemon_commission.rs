@@ -140,3 +140,34 @@ async fn read_says_which_model_takes_the_inverter_limit_and_how_it_fails() {
     assert!(!out.contains("power limit"), "{out}");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// An unreadable site file is an error that stops the command (exit 2) for the daemon and
+/// the commissioning verbs as for every other command; a site file that reads but does
+/// not check is a checked problem (exit 1). A state file whose directory is missing stops
+/// `run` before any device is touched (exit 2), with the advice in the message.
+#[tokio::test]
+async fn exit_codes_tell_an_unreadable_file_from_a_bad_one() {
+    let dir = std::env::temp_dir().join(format!("spillway-exit-codes-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let missing = dir.join("no-such-site.yaml").display().to_string();
+    for verb in [&["run"][..], &["read"], &["step-test", "--load", "pump", "--yes"], &["check"], &["simulate"]] {
+        let mut args: Vec<&str> = verb.to_vec();
+        args.insert(1, &missing);
+        let (code, _, err) = spillway(&args).await;
+        assert_eq!(code, 2, "{verb:?} on a missing file: {err}");
+        assert!(err.contains("no-such-site.yaml"), "{verb:?} names the file: {err}");
+    }
+    let bad = dir.join("bad.yaml");
+    std::fs::write(&bad, "site: { name: Bad, timezone: Europe/Lisbon }\nloads: 3\n").unwrap();
+    let bad = bad.display().to_string();
+    for verb in ["run", "read", "check"] {
+        let (code, _, err) = spillway(&[verb, &bad]).await;
+        assert_eq!(code, 1, "{verb} on an invalid file: {err}");
+    }
+    let good = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("config/zero-export-house.yaml");
+    let state = dir.join("not-created/site.state.json").display().to_string();
+    let (code, _, err) = spillway(&["run", &good.display().to_string(), "--state", &state]).await;
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("does not exist: create it"), "{err}");
+    let _ = std::fs::remove_dir_all(&dir);
+}

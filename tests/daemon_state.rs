@@ -97,3 +97,40 @@ async fn a_corrupt_state_file_is_reported_and_replaced() {
     assert_eq!(doc.site, "Bench");
     let _ = std::fs::remove_dir_all(path.parent().unwrap());
 }
+
+/// A state file that cannot be written stops the daemon at start with advice, instead of
+/// a warning at every save while the counters are lost: checked with a directory that
+/// does not exist (a typo in `--state`, or `/var/lib/spillway` never created).
+#[tokio::test(start_paused = true)]
+async fn a_state_file_in_a_missing_directory_stops_the_start_with_advice() {
+    let plant = Plant::start(0.0).await;
+    let parent = state_path("missing-dir").parent().unwrap().to_path_buf();
+    let missing = parent.join("not-created");
+    let mut opts = options(T0);
+    opts.state_file = Some(missing.join("bench.state.json"));
+    let site = support::site(&plant.site_yaml(PUMP_ONLY, ""));
+    let err = spillway::daemon::Daemon::start(site, opts).await.expect_err("the daemon must not start");
+    let msg = err.to_string();
+    println!("{msg}");
+    assert!(msg.contains("cannot be written"), "{msg}");
+    assert!(msg.contains(&format!("its directory {} does not exist", missing.display())), "{msg}");
+    assert!(msg.contains("--state"), "{msg}");
+    assert!(!missing.exists(), "nothing is created behind the installer's back");
+    let _ = std::fs::remove_dir_all(&parent);
+}
+
+/// The counters are written once at start, so a freshly installed site has its state
+/// file (and its directory proven writable) before the first periodic save.
+#[tokio::test(start_paused = true)]
+async fn the_state_file_is_written_at_start() {
+    let plant = Plant::start(0.0).await;
+    let path = state_path("written-at-start");
+    let mut opts = options(T0);
+    opts.state_file = Some(path.clone());
+    let daemon = start(&plant.site_yaml(PUMP_ONLY, ""), opts).await;
+    let doc = state_file::read(&path).unwrap().expect("written at start");
+    assert_eq!(doc.site, "Bench");
+    daemon.shutdown();
+    daemon.wait().await;
+    let _ = std::fs::remove_dir_all(path.parent().unwrap());
+}

@@ -51,9 +51,11 @@ pub fn load_site(path: &Path) -> Result<Loaded, ExitCode> {
             eprintln!("{e}");
             Err(ExitCode::from(1))
         }
+        // An unreadable file stops the command (2), as for every other command; a file
+        // that reads but does not check is a checked problem (1).
         Err(e) => {
             eprintln!("error: {e}");
-            Err(ExitCode::from(1))
+            Err(ExitCode::from(2))
         }
     }
 }

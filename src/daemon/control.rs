@@ -11,7 +11,7 @@ use std::time::Duration;
 use tokio::sync::{mpsc, watch};
 use tokio::time::{Instant, MissedTickBehavior, interval, interval_at};
 use tokio_util::sync::CancellationToken;
-use tracing::{debug, info, trace, warn};
+use tracing::{debug, error, info, trace, warn};
 
 use super::{Options, state_file};
 use crate::actuators::Dispatcher;
@@ -126,7 +126,9 @@ impl Control {
                 // Cancel-safe: an interval tick is not consumed until it completes.
                 _ = tick.tick() => self.tick(),
                 // Cancel-safe: as above. The save itself is awaited outside `select!`.
-                _ = persist.tick() => self.persist().await,
+                _ = persist.tick() => {
+                    self.persist().await;
+                }
                 // Cancel-safe: an mpsc receive.
                 ev = events.recv(), if events_open => match ev {
                     Some(ev) => self.event(ev),
@@ -295,10 +297,11 @@ impl Control {
         }
     }
 
-    /// Saves the counters; a failure is logged and retried at the next period.
-    async fn persist(&mut self) {
+    /// Saves the counters; a failure is logged and retried at the next period. Returns
+    /// whether they were saved (`None`: there is no state file).
+    async fn persist(&mut self) -> Option<bool> {
         let Some(path) = self.state_file.clone() else {
-            return;
+            return None;
         };
         let counters = self.engine.persisted();
         let site = self.site.name.clone();
@@ -309,9 +312,16 @@ impl Control {
             Ok(Ok(())) => {
                 self.summary.saves += 1;
                 debug!(path = %path.display(), "counters saved");
+                Some(true)
             }
-            Ok(Err(e)) => warn!(error = %e, "counters not saved; will retry"),
-            Err(e) => warn!(error = %e, "counters not saved; will retry"),
+            Ok(Err(e)) => {
+                warn!(error = %e, "counters not saved; will retry");
+                Some(false)
+            }
+            Err(e) => {
+                warn!(error = %e, "counters not saved; will retry");
+                Some(false)
+            }
         }
     }
 
@@ -346,8 +356,14 @@ impl Control {
         self.recent.make_contiguous();
         let doc = status::stopped(status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0));
         self.status.send_replace(Arc::new(with_safe(doc, &safe, &self.site)));
-        self.persist().await;
-        info!(saves = self.summary.saves, "counters saved: stopping the links");
+        match self.persist().await {
+            Some(true) => info!(saves = self.summary.saves, "counters saved: stopping the links"),
+            Some(false) => error!(
+                saves = self.summary.saves,
+                "counters NOT saved at shutdown (see the warning above): today's run times since the last save are lost; stopping the links"
+            ),
+            None => info!("no state file: stopping the links"),
+        }
     }
 }
 

@@ -51,6 +51,18 @@ pub enum StateFileError {
         #[source]
         source: std::io::Error,
     },
+    /// The file cannot be written at start-up (checked once, so the daemon does not run
+    /// for days believing it keeps its counters).
+    #[error("state file {path} cannot be written ({source}): {advice}")]
+    Unwritable {
+        /// The file.
+        path: String,
+        /// What to do about it.
+        advice: String,
+        /// The operating-system error.
+        #[source]
+        source: std::io::Error,
+    },
     /// The file is not a state document this build understands.
     #[error("state file {path} cannot be used: {detail}; it will be replaced at the next save")]
     Invalid {
@@ -84,6 +96,33 @@ pub fn read(path: &Path) -> Result<Option<StateDocument>, StateFileError> {
         return Err(invalid(format!("it is version {}, this build reads version {VERSION}", doc.version)));
     }
     Ok(Some(doc))
+}
+
+/// Writes the counters once at start-up: a state file that cannot be written (its
+/// directory missing, no permission, a read-only file system) is an error then, with
+/// advice, rather than a warning at every save while the counters are silently lost.
+pub fn write_at_start(
+    path: &Path,
+    site: &str,
+    counters: &PersistedState,
+    now: Timestamp,
+) -> Result<(), StateFileError> {
+    write(path, site, counters, now).map_err(|e| match e {
+        StateFileError::Io { source, .. } => {
+            let dir = path.parent().filter(|d| !d.as_os_str().is_empty()).unwrap_or(Path::new("."));
+            let advice = if dir.is_dir() {
+                format!("check the permissions of {} and of the file, or choose another path with --state", dir.display())
+            } else {
+                format!(
+                    "its directory {} does not exist: create it (e.g. `install -d {}`) or choose another path with --state",
+                    dir.display(),
+                    dir.display()
+                )
+            };
+            StateFileError::Unwritable { path: path.display().to_string(), advice, source }
+        }
+        other => other,
+    })
 }
 
 /// Moves a state file this build cannot use out of the way (`home.state.json` →
