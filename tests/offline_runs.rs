@@ -170,6 +170,33 @@ fn a_replay_reports_its_bad_row_and_gap_and_still_reports() {
     let json: serde_json::Value = serde_json::from_slice(&cmd.stdout).unwrap();
     assert_eq!(json["replay"]["rows_rejected"], 1);
     assert!(json["energy"]["pv_kwh"].as_f64().unwrap() > 1.0);
+
+    // `--days` alone counts from the recording's first day, and the hours it adds beyond
+    // the recording are called out (held values, not measurements), never silently.
+    let site = example("zero-export-house.yaml");
+    let replay = |extra: &[&str]| {
+        let mut args = vec!["replay", site.to_str().unwrap(), csv.to_str().unwrap(), "--quiet"];
+        args.extend_from_slice(extra);
+        args.extend_from_slice(&["--report", "json"]);
+        std::process::Command::new(env!("CARGO_BIN_EXE_spillway")).args(&args).output().unwrap()
+    };
+    let two = replay(&["--days", "2"]);
+    assert!(two.status.success(), "{}", String::from_utf8_lossy(&two.stderr));
+    let stderr = String::from_utf8_lossy(&two.stderr);
+    assert!(stderr.contains("24.0 h of the run lie outside the recording"), "{stderr}");
+    let json: serde_json::Value = serde_json::from_slice(&two.stdout).unwrap();
+    assert_eq!(
+        (json["run"]["from"].as_str(), json["run"]["days"].as_u64()),
+        (Some("2026-05-12"), Some(2)),
+        "{}",
+        json["run"]
+    );
+    let notices = json["replay"]["notices"].as_array().unwrap();
+    assert!(notices.iter().any(|n| n.as_str().unwrap().contains("outside the recording")), "{notices:?}");
+    // The recording replaces the modelled PV: a weather flag would change nothing, so it is refused.
+    let weather = replay(&["--weather", "overcast"]);
+    assert_eq!(weather.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&weather.stderr).contains("--weather does not apply to replay"));
 }
 
 /// The same seed gives the same report, byte for byte.

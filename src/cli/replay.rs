@@ -10,6 +10,11 @@ use spillway::offline::{self, Controller, RunOptions, replay::Recorded, report};
 use super::simulate::{Format, Progress, RunArgs, prepare};
 
 pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Option<&Path>) -> anyhow::Result<ExitCode> {
+    // Accepted silently, it would look as if it changed something.
+    anyhow::ensure!(
+        args.weather.is_none(),
+        "--weather does not apply to replay: the recording replaces the modelled PV and household load"
+    );
     let Some(mut p) = prepare(site, args)? else { return Ok(ExitCode::from(1)) };
     let recorded = Recorded::from_csv(csv, p.site.timezone)?;
     let rejected = recorded.rejected();
@@ -19,13 +24,22 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
     if rejected > 0 {
         eprintln!("{}: {rejected} row(s) rejected, {} used", csv.display(), recorded.t_ms.len());
     }
-    // The recording decides the days unless --from/--to/--days say otherwise.
+    // The recording decides the days unless --from/--to/--days say otherwise; --days
+    // alone counts from the recording's first day.
     let (first, last) = recorded.span_ms();
     let tz = p.site.timezone;
     let day = |ms: i64| spillway::units::Timestamp(ms).to_utc().with_timezone(&tz).date_naive();
     if args.from.is_none() {
         p.from = day(first);
-        p.days = ((day(last) - p.from).num_days() + 1).max(1) as u32;
+        p.days = args.days.unwrap_or(((day(last) - p.from).num_days() + 1).max(1) as u32);
+    }
+    let mut notices: Vec<String> = recorded.notices.iter().map(|n| format!("line {}: {}", n.line, n.message)).collect();
+    if let Some(outside) = hours_outside(&recorded, tz, p.from, p.days) {
+        let note = format!(
+            "{outside:.1} h of the run lie outside the recording: its first and last values are held there, not measured"
+        );
+        eprintln!("{}: warning: {note}", csv.display());
+        notices.push(note);
     }
     p.weather_label = format!("recorded ({})", csv.display());
     let progress = Progress::new(args.quiet, "replaying");
@@ -65,7 +79,7 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
         file: csv.display().to_string(),
         rows_used: recorded.t_ms.len(),
         rows_rejected: rejected,
-        notices: recorded.notices.iter().map(|n| format!("line {}: {}", n.line, n.message)).collect(),
+        notices,
     });
     if let Some(file) = chart {
         offline::chart::write(file, &p.site, p.loaded.tariff.as_ref(), &report, &run)?;
@@ -75,4 +89,15 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
         Format::Text => print!("{}", report.to_text()),
     }
     Ok(ExitCode::SUCCESS)
+}
+
+/// Hours of the run's local days `[from, from + days)` that the recording does not cover,
+/// when more than one (a recording rarely starts exactly at midnight; an hour is noise).
+fn hours_outside(recorded: &Recorded, tz: chrono_tz::Tz, from: chrono::NaiveDate, days: u32) -> Option<f64> {
+    let (first, last) = recorded.span_ms();
+    let start = spillway_sim::pv::local_midnight_ms(tz, from)?;
+    let end = spillway_sim::pv::local_midnight_ms(tz, from + chrono::Days::new(u64::from(days)))?;
+    let covered = (last.min(end) - first.max(start)).max(0);
+    let outside_h = ((end - start) - covered) as f64 / 3_600_000.0;
+    (outside_h > 1.0).then_some(outside_h)
 }

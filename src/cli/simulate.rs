@@ -13,13 +13,15 @@ use spillway::config::{self, LoadError};
 use spillway::offline::{self, Controller, RunOptions, report};
 use spillway_sim::weather::{MeasuredConfig, WeatherKind};
 
-/// Arguments shared by `simulate`, `compare` and `sweep`.
+/// Arguments shared by `simulate`, `compare`, `replay` and `sweep`.
 #[derive(Debug, Clone, clap::Args)]
 pub struct RunArgs {
-    /// Number of days to simulate (default: the site's `simulation.days`, else 7).
+    /// Number of days (default: the site's `simulation.days`, else 7; `sweep`: 365;
+    /// `replay`: the recording's days).
     #[arg(long, conflicts_with = "to")]
     pub days: Option<u32>,
-    /// First day, YYYY-MM-DD (default: the site's `simulation.from`, else today).
+    /// First day, YYYY-MM-DD (default: the site's `simulation.from`, else today;
+    /// `replay`: the recording's first day).
     #[arg(long)]
     pub from: Option<NaiveDate>,
     /// Last day (inclusive), YYYY-MM-DD.
@@ -28,7 +30,8 @@ pub struct RunArgs {
     /// Seed of the weather, household and meter noise (default: the site's, else 1).
     #[arg(long)]
     pub seed: Option<u64>,
-    /// Weather: clear, mixed, overcast, varied, or a CSV of measured irradiance.
+    /// Weather: clear, mixed, overcast, varied, or a CSV of measured irradiance (not for
+    /// `replay`, whose recording replaces the modelled PV).
     #[arg(long)]
     pub weather: Option<String>,
     /// Simulation step (1s, 500ms, 10s).
