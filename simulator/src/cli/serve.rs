@@ -46,11 +46,13 @@ pub struct Args {
     #[arg(long, value_enum)]
     weather: Option<Sky>,
     /// A fault to inject (repeatable): KIND[:ARG]…[@START][+DURATION], e.g.
-    /// meter-silent@120s+30s, relay-stuck:pool_pump:open@1h+10min, restart:inverter@5min+20s,
-    /// garbage:meter:spike@90s+5s. START counts from --start.
+    /// meter-silent@120s+30s, relay-stuck:pump:open@1h+10min, restart:inverter@5min+20s,
+    /// garbage:meter:spike@90s+5s. START counts from --start. A relay channel is the
+    /// plant's name for it (`tank`, `pump`, a `plant.loads` name), not the site's load name.
     #[arg(long = "fault", value_name = "SPEC")]
     faults: Vec<String>,
-    /// Wall time between two status lines, with a unit; 0 = none.
+    /// Wall time between two status lines, with a unit; 0 = none (one last line is
+    /// still printed at stop).
     #[arg(long, default_value = "5s", value_parser = super::duration_arg)]
     status_every: f64,
     /// Stop by itself after this much simulated time, with a unit [default: run until Ctrl-C].

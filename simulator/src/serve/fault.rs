@@ -13,7 +13,7 @@
 //! DURATION = a duration; absent = until the server stops
 //! ```
 //!
-//! Examples: `meter-silent@120s+30s`, `relay-stuck:pool_pump:open@1h+10min`,
+//! Examples: `meter-silent@120s+30s`, `relay-stuck:pump:open@1h+10min`,
 //! `restart:inverter@10min+20s`, `garbage:meter:spike@90s+5s`.
 
 use crate::plant::config::{Device, FaultConfig, GarbageMode, When};
