@@ -300,9 +300,7 @@ impl Control {
     /// Saves the counters; a failure is logged and retried at the next period. Returns
     /// whether they were saved (`None`: there is no state file).
     async fn persist(&mut self) -> Option<bool> {
-        let Some(path) = self.state_file.clone() else {
-            return None;
-        };
+        let path = self.state_file.clone()?;
         let counters = self.engine.persisted();
         let site = self.site.name.clone();
         let now = self.clock.now();
