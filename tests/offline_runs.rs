@@ -120,6 +120,26 @@ fn the_zero_export_example_meets_its_obligations_every_day_of_a_mixed_month() {
 
 /// Diverting surplus saves money where export earns nothing (a fact of the trade,
 /// `common practice`): the baseline of the zero-export house costs more.
+/// The months add up to the run: every step's energy lands in exactly one month (the
+/// first month once began after the run's first step and lost it).
+#[test]
+fn the_months_add_up_to_the_whole_run_across_a_month_boundary() {
+    let loaded = load(&example("zero-export-house.yaml"));
+    for controller in [Controller::Spillway, Controller::Baseline] {
+        let out = run(&loaded, date("2026-06-30"), 2, Some(WeatherKind::Mixed), controller);
+        assert_eq!(out.months.len(), 2, "{controller:?}: June and July");
+        let f = &out.flows;
+        let sum = |g: fn(&offline::run::MonthFigures) -> f64| out.months.iter().map(g).sum::<f64>();
+        for (what, months, total) in [
+            ("import", sum(|m| m.import_wh), f.grid_import.wh),
+            ("export", sum(|m| m.export_wh), f.grid_export.wh),
+            ("pv", sum(|m| m.pv_wh), f.pv.wh),
+        ] {
+            assert!((months - total).abs() < 1e-6, "{controller:?} {what}: months {months} Wh vs run {total} Wh");
+        }
+    }
+}
+
 #[test]
 fn the_baseline_costs_more_than_diverting_on_the_zero_export_example() {
     let loaded = load(&example("zero-export-house.yaml"));

@@ -363,12 +363,14 @@ pub fn simulate_once(
             let local = clock.at(Timestamp(now));
             let (day, _) = clock.day(Timestamp(now));
             if month != Some((day.year, day.month)) {
+                // The first month counts from the run's start (zero flows), not from
+                // after its first step; later ones from where the previous one closed.
                 if let Some((y, m)) = month {
                     out.months.push(close_month(y, m, &month_fig, flows, &month_base, &sides));
+                    month_base = flows.clone();
                 }
                 month = Some((day.year, day.month));
                 month_fig = MonthFigures::default();
-                month_base = flows.clone();
             }
             if let Some(t) = tariff {
                 let month_import_kwh = (flows.grid_import.wh - month_base.grid_import.wh) / 1000.0;
