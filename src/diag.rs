@@ -123,7 +123,21 @@ pub fn render(path: &str, text: &str, diagnostics: &[Diagnostic], color: bool) -
         let primary = clamp_span(text, &d.primary.span);
         let mut report =
             Report::build(kind, (path, primary.clone())).with_config(config).with_code(d.code).with_message(&d.message);
-        let mut label = Label::new((path, primary)).with_order(0);
+        // Labels in file order: ariadne starts a new snippet (headed by the primary's
+        // location, wrongly for the other label) whenever a label lies above the last.
+        // Labels on one line keep their given order (primary first), which ariadne draws
+        // best; only the lines are put in file order.
+        let line_of = |at: usize| text[..at.min(text.len())].bytes().filter(|&b| b == b'\n').count();
+        let mut keys: Vec<(usize, usize)> = std::iter::once(line_of(primary.start))
+            .chain(d.secondary.iter().map(|s| line_of(clamp_span(text, &s.span).start)))
+            .enumerate()
+            .map(|(i, line)| (line, i))
+            .collect();
+        let given = keys.clone();
+        keys.sort_unstable();
+        let order_of =
+            |i: usize| i32::try_from(keys.iter().position(|k| *k == given[i]).unwrap_or(i)).unwrap_or(i32::MAX);
+        let mut label = Label::new((path, primary.clone())).with_order(order_of(0));
         if !d.primary.message.is_empty() {
             label = label.with_message(&d.primary.message);
         }
@@ -135,9 +149,8 @@ pub fn render(path: &str, text: &str, diagnostics: &[Diagnostic], color: bool) -
         }
         report = report.with_label(label);
         for (i, s) in d.secondary.iter().enumerate() {
-            let mut label = Label::new((path, clamp_span(text, &s.span)))
-                .with_message(&s.message)
-                .with_order(i32::try_from(i + 1).unwrap_or(i32::MAX));
+            let span = clamp_span(text, &s.span);
+            let mut label = Label::new((path, span)).with_message(&s.message).with_order(order_of(i + 1));
             if color {
                 label = label.with_color(ariadne::Color::Blue);
             }
