@@ -120,8 +120,10 @@ impl Comparison {
         let _ = writeln!(o, "A = {}\nB = {}\n", self.a, self.b);
         let _ = writeln!(o, "{:<width$}  {:>14}  {:>14}", "", "A", "B");
         for r in &self.rows {
+            // One number of decimals per row, so the two sides line up and read alike.
+            let whole = r.a.fract() == 0.0 && r.b.fract() == 0.0;
             let fmt = |v: f64| {
-                let text = if v.fract() == 0.0 { format!("{v:.0}") } else { format!("{v:.2}") };
+                let text = if whole { format!("{v:.0}") } else { format!("{v:.2}") };
                 if r.unit.is_empty() { text } else { format!("{text} {}", r.unit) }
             };
             let (ma, mb) = match r.better {
@@ -147,5 +149,20 @@ mod tests {
         assert_eq!(row("import", "kWh", 1.0, 2.0, Goal::Lower).better, Better::A);
         assert_eq!(row("diverted", "kWh", 1.0, 2.0, Goal::Higher).better, Better::B);
         assert_eq!(row("x", "", 3.0, 3.0, Goal::Lower).better, Better::Same);
+    }
+
+    #[test]
+    fn both_sides_of_a_row_have_the_same_decimals() {
+        let c = Comparison {
+            a: "a.yaml".into(),
+            b: "b.yaml".into(),
+            rows: vec![
+                row("export peak", "W", 2893.6, 1723.0, Goal::Lower),
+                row("switchings", "", 4.0, 6.0, Goal::Lower),
+            ],
+        };
+        let text = c.to_text();
+        assert!(text.contains("2893.60 W") && text.contains("1723.00 W"), "{text}");
+        assert!(text.contains(" 4◀") && text.contains(" 6 "), "{text}");
     }
 }
