@@ -213,6 +213,15 @@ fn a_replay_reports_its_bad_row_and_gap_and_still_reports() {
     );
     let notices = json["replay"]["notices"].as_array().unwrap();
     assert!(notices.iter().any(|n| n.as_str().unwrap().contains("outside the recording")), "{notices:?}");
+    // `--from` alone moves the first day and keeps the recording's number of days.
+    let moved = replay(&["--from", "2026-05-13"]);
+    let json: serde_json::Value = serde_json::from_slice(&moved.stdout).unwrap();
+    assert_eq!(
+        (json["run"]["from"].as_str(), json["run"]["days"].as_u64()),
+        (Some("2026-05-13"), Some(1)),
+        "{}",
+        json["run"]
+    );
     // The recording replaces the modelled PV: a weather flag would change nothing, so it is refused.
     let weather = replay(&["--weather", "overcast"]);
     assert_eq!(weather.status.code(), Some(2));

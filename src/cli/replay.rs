@@ -24,14 +24,17 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
     if rejected > 0 {
         eprintln!("{}: {rejected} row(s) rejected, {} used", csv.display(), recorded.t_ms.len());
     }
-    // The recording decides the days unless --from/--to/--days say otherwise; --days
-    // alone counts from the recording's first day.
+    // The recording decides what the command line does not: the first day unless
+    // --from, the number of days unless --days or --to.
     let (first, last) = recorded.span_ms();
     let tz = p.site.timezone;
     let day = |ms: i64| spillway::units::Timestamp(ms).to_utc().with_timezone(&tz).date_naive();
+    let recorded_days = ((day(last) - day(first)).num_days() + 1).max(1) as u32;
     if args.from.is_none() {
         p.from = day(first);
-        p.days = args.days.unwrap_or(((day(last) - p.from).num_days() + 1).max(1) as u32);
+    }
+    if args.days.is_none() && args.to.is_none() {
+        p.days = recorded_days;
     }
     let mut notices: Vec<String> = recorded.notices.iter().map(|n| format!("line {}: {}", n.line, n.message)).collect();
     if let Some(outside) = hours_outside(&recorded, tz, p.from, p.days) {
