@@ -46,9 +46,11 @@ const PV_SHOWN_W: f64 = 10.0;
 /// Most samples a flows chart needs: about two per pixel of its 1200 px width.
 const MAX_TRACE_SAMPLES: u64 = 2400;
 
-/// The sampling interval of the time series behind a flows chart of `days` days: one
-/// minute for a day or two, coarser for longer runs (the chart averages over it), always
-/// a whole number of minutes that divides an hour.
+/// The sampling interval of the time series behind a flows chart of `days` days (the
+/// chart averages over it): the shortest of 1, 2, 5, 10, 15, 20, 30 or 60 minutes (each
+/// divides an hour) that keeps the run within `MAX_TRACE_SAMPLES` samples — one minute
+/// for one day, two for two or three days, five for four to eight days (a week), coarser
+/// for longer runs.
 pub fn trace_interval(days: u32) -> std::time::Duration {
     let needed_min = (u64::from(days) * 1440).div_ceil(MAX_TRACE_SAMPLES);
     let minutes = [1, 2, 5, 10, 15, 20, 30, 60].into_iter().find(|&m| m >= needed_min).unwrap_or(60);
