@@ -186,7 +186,7 @@ impl Guard {
         // waits for a reading measured after the last one, so counting only this tick
         // would slow the release by the meter's latency. Capped, so a limit that sat
         // still for long is not given back in one leap.
-        let since_change = self.acted_at.map_or(dt, |t| now.since(t)).clamp(dt, RELEASE_WINDOW_MAX);
+        let since_change = self.acted_at.map_or(dt, |t| now.since(t)).min(RELEASE_WINDOW_MAX).max(dt);
         let rate = site.guard.release_rate * since_change.as_secs_f64();
         // A cut right after a release may act on a reading that predates the release: it
         // then cuts too little, never too much, so it need not wait. Everything else does.

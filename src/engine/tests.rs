@@ -523,6 +523,23 @@ fn the_carry_forward_reaches_back_to_a_meter_later_than_ten_seconds() {
     }
 }
 
+/// Every tick the site file allows (up to 60 s) runs: the release window was clamped to
+/// `[tick, 5 s]`, which panics once the tick is longer than 5 s.
+#[test]
+fn a_tick_longer_than_the_release_window_does_not_panic() {
+    for tick in ["6s", "10s", "60s"] {
+        let mut h =
+            Harness::new(&site(&format!("  export: forbidden\n  import_target: 40W\n  tick: {tick}"), TWO_LOADS));
+        h.set("pv", 4000.0);
+        h.set("grid", -1500.0);
+        let cut = h.tick().inverter_limit.expect("curtailed");
+        h.set("pv", cut.0);
+        h.set("grid", 400.0);
+        let released = h.run(secs(180)).inverter_limit;
+        assert!(released.is_none_or(|l| l > cut), "tick {tick}: the limit is given back ({cut} → {released:?})");
+    }
+}
+
 /// With no sun the limit has nothing to hold back: it must not follow the house load
 /// down and up, rewriting the inverter at every wobble all night.
 #[test]
