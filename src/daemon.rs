@@ -32,7 +32,7 @@ use tokio::sync::{mpsc, watch};
 use tokio::task::JoinHandle;
 use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
-use tracing::{info, warn};
+use tracing::{error, info, warn};
 
 use crate::actuators::{ActuatorOptions, Dispatcher};
 use crate::config::model::{DeviceId, Link, LoadId, Site};
@@ -65,6 +65,10 @@ pub struct Options {
     pub mqtt: MqttOptions,
     /// Actuator re-assertion.
     pub actuators: ActuatorOptions,
+    /// A fail point for tests of the failure path: the engine panics on this tick
+    /// (counted from 1). Never set on a site.
+    #[doc(hidden)]
+    pub fail_at_tick: Option<u64>,
 }
 
 impl Default for Options {
@@ -77,6 +81,7 @@ impl Default for Options {
             modbus: ModbusOptions::default(),
             mqtt: MqttOptions::default(),
             actuators: ActuatorOptions::default(),
+            fail_at_tick: None,
         }
     }
 }
@@ -102,6 +107,11 @@ pub enum DaemonError {
         #[source]
         source: std::io::Error,
     },
+    /// The engine failed while running; the daemon stopped with safe states.
+    #[error(
+        "the engine failed ({0}); the daemon sent the safe states and stopped. This is a bug: please report it with the log"
+    )]
+    EngineFailed(String),
     /// The state file exists but cannot be read, or cannot be written.
     #[error("{0}")]
     State(#[from] StateFileError),
@@ -116,7 +126,7 @@ pub struct Daemon {
     status: watch::Receiver<Arc<Status>>,
     http: Option<SocketAddr>,
     links: Vec<(String, Arc<LinkStats>)>,
-    control: JoinHandle<Summary>,
+    control: JoinHandle<Result<Summary, tokio::task::JoinError>>,
 }
 
 impl Daemon {
@@ -187,7 +197,19 @@ impl Daemon {
 
         let (req_tx, req_rx) = mpsc::channel(4);
         let control = Control::new(engine, snapshot, dispatcher, status_tx, &options);
-        let handle = tracker.spawn(control.run(events_rx, req_rx, cancel.clone()));
+        // The control task normally cancels the links itself after its shutdown; if it
+        // dies some other way, this stops them too, so the process cannot hang on with
+        // links and a status page but no controller.
+        let inner = tokio::spawn(control.run(events_rx, req_rx, cancel.clone()));
+        let stop = cancel.clone();
+        let handle = tracker.spawn(async move {
+            let r = inner.await;
+            if let Err(e) = &r {
+                error!(error = %e, "the control task died: stopping the links");
+            }
+            stop.cancel();
+            r
+        });
         tracker.close();
         info!(
             site = %site.name,
@@ -229,10 +251,10 @@ impl Daemon {
     pub async fn wait(self) -> Summary {
         self.tracker.wait().await;
         match self.control.await {
-            Ok(summary) => summary,
-            Err(e) => {
+            Ok(Ok(summary)) => summary,
+            Ok(Err(e)) | Err(e) => {
                 warn!(error = %e, "control task ended abnormally");
-                Summary::default()
+                Summary { engine_failed: Some(e.to_string()), ..Summary::default() }
             }
         }
     }
@@ -293,7 +315,11 @@ pub fn run(site: Arc<Site>, options: Options, on_start: impl FnOnce(&Daemon)) ->
             () = daemon.stopping() => {}
         }
         daemon.shutdown();
-        Ok(daemon.wait().await)
+        let summary = daemon.wait().await;
+        match summary.engine_failed {
+            Some(why) => Err(DaemonError::EngineFailed(why)),
+            None => Ok(summary),
+        }
     })
 }
 

@@ -140,3 +140,26 @@ async fn exception_responses_are_counted_logged_and_ignored() {
     let summary = daemon.wait().await;
     assert!(summary.exceptions >= 10);
 }
+
+/// If the engine panics while the site runs (a bug), the daemon must not run on with its
+/// links up and no controller: the panic is caught, the loads go to their safe states and
+/// the inverter to its safe limit, the counters are saved, and `run` ends with an error
+/// (so a service manager restarts it). Triggered by a test-only fail point.
+#[tokio::test(start_paused = true)]
+async fn an_engine_panic_sends_the_safe_states_and_stops_the_daemon_with_an_error() {
+    let plant = Plant::start(4200.0).await;
+    let mut opts = options(T0);
+    opts.fail_at_tick = Some(150);
+    let daemon = start(&plant.site_yaml(LOADS, ""), opts).await;
+    settle(&plant, &daemon).await;
+    assert!(plant.last().unwrap().heater, "the heater runs before the failure");
+    let summary =
+        tokio::time::timeout(Duration::from_secs(120), daemon.wait()).await.expect("the daemon stops by itself");
+    let why = summary.engine_failed.expect("the failure is reported");
+    assert!(why.contains("fail point: tick 150"), "{why}");
+    let safe = plant_until(&plant, Duration::from_secs(10), "heater off, inverter at its safe limit", |s| {
+        !s.heater && !s.pump && s.limit == 0.0
+    })
+    .await;
+    println!("after the engine failed: heater {}, pump {}, limit {} W", safe.heater, safe.pump, safe.limit);
+}

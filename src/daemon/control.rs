@@ -37,7 +37,7 @@ pub(super) enum Request {
 }
 
 /// What the control task counted, returned when the daemon has stopped.
-#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
 pub struct Summary {
     /// Engine ticks.
     pub ticks: u64,
@@ -53,6 +53,9 @@ pub struct Summary {
     pub overrides: u64,
     /// Saves of the state file that succeeded.
     pub saves: u64,
+    /// Why the engine failed, if a tick panicked: the daemon then stopped with safe
+    /// states instead of running on without a controller.
+    pub engine_failed: Option<String>,
 }
 
 pub(super) struct Control {
@@ -65,6 +68,7 @@ pub(super) struct Control {
     clock: Clock,
     state_file: Option<PathBuf>,
     persist_every: Duration,
+    fail_at_tick: Option<u64>,
     /// Last log time and count since, per repeated-problem key.
     repeats: HashMap<String, (Instant, u64)>,
     last_limit: (Option<Power>, LimitReason),
@@ -92,6 +96,7 @@ impl Control {
             clock: options.clock,
             state_file: options.state_file.clone(),
             persist_every: options.persist_every,
+            fail_at_tick: options.fail_at_tick,
             repeats: HashMap::new(),
             last_limit: (None, LimitReason::None),
             was_normal: false,
@@ -124,7 +129,16 @@ impl Control {
                     Some(Request::Shutdown) | None => break,
                 },
                 // Cancel-safe: an interval tick is not consumed until it completes.
-                _ = tick.tick() => self.tick(),
+                _ = tick.tick() => {
+                    if let Err(why) = self.guarded_tick() {
+                        error!(
+                            error = %why,
+                            "the engine failed: stopping with safe states (a bug: please report it with this log)"
+                        );
+                        self.summary.engine_failed = Some(why);
+                        break;
+                    }
+                }
                 // Cancel-safe: as above. The save itself is awaited outside `select!`.
                 _ = persist.tick() => {
                     self.persist().await;
@@ -141,8 +155,24 @@ impl Control {
         self.summary
     }
 
+    /// A tick that cannot take the daemon down with it: a panic in the engine is caught
+    /// here, so the caller can still send the safe states, save the counters and stop,
+    /// rather than leave the links running with no controller behind them.
+    fn guarded_tick(&mut self) -> Result<(), String> {
+        std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| self.tick())).map_err(|payload| {
+            payload
+                .downcast_ref::<&str>()
+                .map(|s| (*s).to_owned())
+                .or_else(|| payload.downcast_ref::<String>().cloned())
+                .unwrap_or_else(|| "a panic without a message".to_owned())
+        })
+    }
+
     /// One engine tick and everything that follows from it.
     fn tick(&mut self) {
+        if self.fail_at_tick == Some(self.summary.ticks + 1) {
+            panic!("fail point: tick {}", self.summary.ticks + 1);
+        }
         let now = self.clock.now();
         self.engine.step(now, &self.snapshot);
         self.summary.ticks += 1;
