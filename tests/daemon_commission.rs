@@ -171,3 +171,51 @@ async fn exit_codes_tell_an_unreadable_file_from_a_bad_one() {
     assert!(err.contains("does not exist: create it"), "{err}");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// Ctrl-C (or SIGTERM) in the middle of a step test must not leave the load switched on
+/// with nobody controlling it: the load is switched off again before the command ends.
+#[tokio::test]
+async fn an_interrupted_step_test_switches_the_load_off_again() {
+    use tokio::io::{AsyncBufReadExt, BufReader};
+    let plant = Plant::start(0.0).await;
+    let (path, site) = write_site(&plant, "step-interrupted");
+    for signal in ["-INT", "-TERM"] {
+        let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))
+            .args(["step-test", &site, "--load", "water_heater", "--hold", "60s", "--settle", "1s", "--yes"])
+            .env_remove("RUST_LOG")
+            .stdout(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::piped())
+            .kill_on_drop(true)
+            .spawn()
+            .unwrap();
+        let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
+        tokio::time::timeout(Duration::from_secs(30), async {
+            while let Some(line) = lines.next_line().await.unwrap() {
+                if line.contains("water_heater: ON") {
+                    return;
+                }
+            }
+            panic!("the step test ended before switching on");
+        })
+        .await
+        .expect("the load is switched on");
+        tokio::time::timeout(Duration::from_secs(10), async {
+            while plant.devices.coil(3, 0) != Some(true) {
+                tokio::time::sleep(Duration::from_millis(50)).await;
+            }
+        })
+        .await
+        .expect("the coil closes");
+        let pid = child.id().unwrap().to_string();
+        assert!(std::process::Command::new("kill").args([signal, &pid]).status().unwrap().success());
+        let out = tokio::time::timeout(Duration::from_secs(20), child.wait_with_output())
+            .await
+            .expect("the step test stops")
+            .unwrap();
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(1), "{signal}: {err}");
+        assert!(err.contains("interrupted: the load was switched OFF again"), "{signal}: {err}");
+        assert_eq!(plant.devices.coil(3, 0), Some(false), "{signal}: the heater's coil is open again");
+    }
+    let _ = std::fs::remove_dir_all(path.parent().unwrap());
+}

@@ -211,6 +211,9 @@ pub enum StepError {
     /// The site has no grid meter to watch.
     #[error("the site has no grid point to measure the step on")]
     NoGridPoint,
+    /// Ctrl-C or SIGTERM during the test; the load was commanded off before stopping.
+    #[error("interrupted: the load was switched OFF again and the test stopped")]
+    Interrupted,
 }
 
 /// The phases as they happen, for a live display.
@@ -345,8 +348,14 @@ pub fn step_test(
                 rated,
                 samples: [before.n, on.n, after.n],
             })
-        }
-        .await;
+        };
+        // Ctrl-C or SIGTERM must not leave a mains load switched on with nobody watching
+        // it: the test stops, and the load is switched off below like after any outcome.
+        let outcome = tokio::select! {
+            // Both cancel-safe: dropping the test mid-way loses only its measurements.
+            r = outcome => r,
+            () = interrupted() => Err(StepError::Interrupted),
+        };
         // Whatever happened: the load off, then the links' last pass writes it.
         command(&off_writes);
         cancel.cancel();
@@ -355,6 +364,32 @@ pub fn step_test(
         tracker.wait().await;
         outcome
     })
+}
+
+/// Resolves on Ctrl-C or (on Unix) SIGTERM. If a signal cannot be listened for, that
+/// branch never fires and the test runs to its end as before.
+async fn interrupted() {
+    #[cfg(unix)]
+    let mut term = tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()).ok();
+    #[cfg(unix)]
+    let terminate = async {
+        match term.as_mut() {
+            Some(t) => {
+                t.recv().await;
+            }
+            None => std::future::pending::<()>().await,
+        }
+    };
+    #[cfg(not(unix))]
+    let terminate = std::future::pending::<()>();
+    tokio::select! {
+        r = tokio::signal::ctrl_c() => {
+            if r.is_err() {
+                std::future::pending::<()>().await;
+            }
+        }
+        () = terminate => {}
+    }
 }
 
 fn writes_for(site: &Site, load: LoadId, command: Command) -> Vec<DesiredWrite> {
