@@ -140,6 +140,31 @@ fn the_months_add_up_to_the_whole_run_across_a_month_boundary() {
     }
 }
 
+/// Runs that could only mislead are refused before they start: a step longer than a
+/// point's stale timeout (the whole run would be spent in fail-safe, PV at 0 W, and look
+/// like a result), and more days than the site file allows (which also overflowed dates).
+#[test]
+fn a_step_longer_than_the_stale_timeout_and_an_endless_run_are_refused() {
+    let loaded = load(&example("zero-export-house.yaml"));
+    let plant = offline::plant_section(&loaded).unwrap();
+    let site = Arc::new(loaded.site.clone());
+    let mut o = RunOptions::day(date("2026-06-21"));
+    o.step = std::time::Duration::from_secs(10);
+    let err = offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_err().to_string();
+    assert!(err.contains("a step of 10 s is longer than point `grid`'s stale timeout (2.5 s)"), "{err}");
+    let mut o = RunOptions::day(date("2026-06-21"));
+    o.days = 100_000_000;
+    let err = offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_err().to_string();
+    assert!(err.contains("at most 3660 days"), "{err}");
+    // The command line says so before any run, with exit 2.
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(["simulate", example("zero-export-house.yaml").to_str().unwrap(), "--days", "4000", "--quiet"])
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("at most 3660 days"));
+}
+
 #[test]
 fn the_baseline_costs_more_than_diverting_on_the_zero_export_example() {
     let loaded = load(&example("zero-export-house.yaml"));

@@ -34,7 +34,7 @@ pub struct RunArgs {
     /// `replay`, whose recording replaces the modelled PV).
     #[arg(long)]
     pub weather: Option<String>,
-    /// Simulation step (1s, 500ms, 10s).
+    /// Simulation step (1s, 500ms, 2s); at most the points' stale timeout.
     #[arg(long, default_value = "1s", value_parser = parse_duration)]
     pub step: Duration,
     /// No progress bar.
@@ -102,6 +102,8 @@ pub fn prepare(path: &Path, args: &RunArgs) -> anyhow::Result<Option<Prepared>> 
         (None, None) => defaults.days.unwrap_or(7),
     };
     anyhow::ensure!(days >= 1, "--days must be at least 1");
+    let max = offline::run::MAX_DAYS;
+    anyhow::ensure!(days <= max, "a run lasts at most {max} days (ten years), not {days}");
     let seed = args.seed.or(defaults.seed).or(plant.seed).unwrap_or(1);
     let (sky, weather_label) = match args.weather.as_deref() {
         None => (None, format!("{:?}", plant.weather.sky).to_lowercase()),

@@ -120,7 +120,8 @@ pub fn simulation_defaults(loaded: &crate::config::Loaded) -> Result<SimulationD
             }
         }
         if let Some(n) = m.get("days") {
-            out.days = crate::config::values::integer(n, 1, 3660, "`days`", &mut diags).map(|d| d as u32);
+            out.days =
+                crate::config::values::integer(n, 1, i64::from(run::MAX_DAYS), "`days`", &mut diags).map(|d| d as u32);
         }
         if let Some(n) = m.get("seed") {
             out.seed = crate::config::values::integer(n, 0, i64::MAX, "`seed`", &mut diags).map(|s| s as u64);

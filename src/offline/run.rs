@@ -207,6 +207,9 @@ fn plant_side(site: &Site, plant: &Plant, ev_name: Option<&str>, load: &crate::c
     }
 }
 
+/// The longest run, in days (the same bound as `simulation.days` in the site file).
+pub const MAX_DAYS: u32 = 3660;
+
 /// Runs the plant once under one controller.
 pub fn simulate_once(
     site: &Arc<Site>,
@@ -217,8 +220,21 @@ pub fn simulate_once(
     if options.days == 0 {
         return Err(OfflineError::Options("the run must last at least one day".into()));
     }
+    if options.days > MAX_DAYS {
+        return Err(OfflineError::Options(format!("a run lasts at most {MAX_DAYS} days (ten years)")));
+    }
     if options.step.is_zero() || options.step > Duration::from_secs(60) {
         return Err(OfflineError::Options("--step must be between 1ms and 60s".into()));
+    }
+    // Readings are refreshed once a step: a step longer than a point's stale timeout
+    // would leave it stale between steps, and the whole run would be spent in fail-safe.
+    if let Some(p) = site.points.iter().filter(|p| options.step > p.stale_after).min_by_key(|p| p.stale_after) {
+        return Err(OfflineError::Options(format!(
+            "a step of {} is longer than point `{}`'s stale timeout ({}): every reading would go stale between steps and the site would run in fail-safe; use a shorter --step (1 s is the default) or raise its `stale_after`",
+            crate::units::format_duration(options.step),
+            p.name,
+            crate::units::format_duration(p.stale_after)
+        )));
     }
     let tz = site.timezone;
     let start_ms = midnight(tz, options.from)?;
