@@ -163,6 +163,17 @@ fn a_step_longer_than_the_stale_timeout_and_an_endless_run_are_refused() {
         .unwrap();
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("at most 3660 days"));
+    // A chart that cannot be written is found before the run, not after it.
+    let chart = std::env::temp_dir().join(format!("spillway-no-such-dir-{}", std::process::id())).join("week.svg");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(["simulate", example("zero-export-house.yaml").to_str().unwrap(), "--days", "1", "--quiet"])
+        .arg("--chart")
+        .arg(&chart)
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("(checked before the run)"));
+    assert!(out.stdout.is_empty(), "nothing was run");
 }
 
 #[test]

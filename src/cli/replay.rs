@@ -16,6 +16,9 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
         "--weather does not apply to replay: the recording replaces the modelled PV and household load"
     );
     let Some(mut p) = prepare(site, args)? else { return Ok(ExitCode::from(1)) };
+    if let Some(file) = chart {
+        super::simulate::check_writable(file)?;
+    }
     let recorded = Recorded::from_csv(csv, p.site.timezone)?;
     let rejected = recorded.rejected();
     for n in &recorded.notices {
@@ -84,12 +87,12 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
         rows_rejected: rejected,
         notices,
     });
-    if let Some(file) = chart {
-        offline::chart::write(file, &p.site, p.loaded.tariff.as_ref(), &report, &run)?;
-    }
     match format {
         Format::Json => println!("{}", report.to_json()),
         Format::Text => print!("{}", report.to_text()),
+    }
+    if let Some(file) = chart {
+        offline::chart::write(file, &p.site, p.loaded.tariff.as_ref(), &report, &run)?;
     }
     Ok(ExitCode::SUCCESS)
 }

@@ -222,18 +222,38 @@ pub fn run_pair(
 
 pub fn run(path: &Path, args: &RunArgs, format: Format, chart: Option<&Path>) -> anyhow::Result<ExitCode> {
     let Some(p) = prepare(path, args)? else { return Ok(ExitCode::from(1)) };
+    if let Some(file) = chart {
+        check_writable(file)?;
+    }
     let progress = Progress::new(args.quiet, "simulating");
     let chart_days = chart.map(|_| (p.from, p.from + chrono::Days::new(u64::from(p.days - 1))));
     let (report, run) = run_pair(&p, args.step, &progress, chart_days)?;
+    // The report first: a chart that fails to write after all cannot take it along.
+    match format {
+        Format::Json => println!("{}", report.to_json()),
+        Format::Text => print!("{}", report.to_text()),
+    }
     if let Some(file) = chart {
         offline::chart::write(file, &p.site, p.loaded.tariff.as_ref(), &report, &run)?;
         if !args.quiet {
             eprintln!("chart written to {}", file.display());
         }
     }
-    match format {
-        Format::Json => println!("{}", report.to_json()),
-        Format::Text => print!("{}", report.to_text()),
-    }
     Ok(ExitCode::SUCCESS)
+}
+
+/// Fails before a run if `path` cannot be written, so a long simulation is not thrown
+/// away at its end for a mistyped directory. Leaves no file behind when it created one
+/// to find out, and never truncates one that exists.
+pub fn check_writable(path: &Path) -> anyhow::Result<()> {
+    let existed = path.exists();
+    std::fs::OpenOptions::new()
+        .append(true)
+        .create(true)
+        .open(path)
+        .with_context(|| format!("cannot write the chart to {} (checked before the run)", path.display()))?;
+    if !existed {
+        let _ = std::fs::remove_file(path);
+    }
+    Ok(())
 }

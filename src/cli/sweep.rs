@@ -60,6 +60,9 @@ pub fn run(
         args.days = Some(365);
     }
     let Some(base) = super::simulate::prepare(path, &args)? else { return Ok(ExitCode::from(1)) };
+    if let Some(file) = chart {
+        super::simulate::check_writable(file)?;
+    }
     let text = base.loaded.source.text.clone();
     let values = vary.texts();
     // Check every variant before spending minutes on runs.
@@ -200,12 +203,12 @@ pub fn run(
         no_pv_cost: no_pv_cost.map(|c| r(c, 2)),
         points,
     };
-    if let Some(file) = chart {
-        std::fs::write(file, chart_svg(&report)?).with_context(|| format!("cannot write {}", file.display()))?;
-    }
     match format {
         Format::Json => println!("{}", serde_json::to_string_pretty(&report)?),
         Format::Text => print!("{}", to_text(&report)),
+    }
+    if let Some(file) = chart {
+        std::fs::write(file, chart_svg(&report)?).with_context(|| format!("cannot write {}", file.display()))?;
     }
     Ok(ExitCode::SUCCESS)
 }
