@@ -174,6 +174,16 @@ fn a_step_longer_than_the_stale_timeout_and_an_endless_run_are_refused() {
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("(checked before the run)"));
     assert!(out.stdout.is_empty(), "nothing was run");
+    // A sweep checks each value's plant before any run, and names the value.
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(["sweep", example("zero-export-house.yaml").to_str().unwrap()])
+        .args(["--vary", "plant.solar.arrays.roof.strings.0.modules=0..8:4", "--days", "1", "--quiet"])
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(1), "{err}");
+    assert!(err.contains("modules=0: the plant is not valid with this value"), "{err}");
+    assert!(out.stdout.is_empty(), "nothing was run");
 }
 
 #[test]

@@ -70,7 +70,21 @@ pub fn run(
     for v in &values {
         let t = sweep::substitute(&text, &vary, v)?;
         match config::load_str(&format!("{} [{}={v}]", path.display(), vary.key()), &t) {
-            Ok(l) => variants.push((v.clone(), l)),
+            Ok(l) => {
+                // The plant too, as `check` does: a bad plant value found in a worker
+                // would discard every other value's finished year.
+                let plant = offline::plant_section(&l).map_err(anyhow::Error::from).and_then(|p| {
+                    let options = spillway_sim::site::SiteOptions { start_ms: 0, seed: 1, sky: None };
+                    let built = spillway_sim::site::build(&p, &options)?;
+                    offline::bind::Binding::new(&l.site, &built)?;
+                    Ok(())
+                });
+                if let Err(e) = plant {
+                    eprintln!("error: {}={v}: the plant is not valid with this value: {e}", vary.key());
+                    return Ok(ExitCode::from(1));
+                }
+                variants.push((v.clone(), l));
+            }
             Err(e) => {
                 eprint!("{}", e.render(super::color()));
                 return Ok(ExitCode::from(1));
