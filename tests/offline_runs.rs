@@ -140,6 +140,34 @@ fn the_months_add_up_to_the_whole_run_across_a_month_boundary() {
     }
 }
 
+/// A measured weather series says what it skipped and how much of the run it does not
+/// cover (the sky is dark there), and the report names it as the weather.
+#[test]
+fn a_measured_weather_series_reports_its_bad_rows_and_its_coverage() {
+    let dir = std::env::temp_dir().join(format!("spillway-measured-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let csv = dir.join("ghi.csv");
+    let mut text = String::from("time,ghi_w_m2\n");
+    for h in 0..24 {
+        let ghi = if (7..20).contains(&h) { 600 } else { 0 };
+        text.push_str(&format!("2026-06-21 {h:02}:00,{}\n", if h == 1 { "x".to_owned() } else { ghi.to_string() }));
+    }
+    std::fs::write(&csv, text).unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(["simulate", example("zero-export-house.yaml").to_str().unwrap()])
+        .args(["--from", "2026-06-21", "--days", "2", "--quiet", "--report", "json", "--weather"])
+        .arg(&csv)
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(out.status.success(), "{err}");
+    assert!(err.contains("ghi.csv:3: cannot read ghi_w_m2 value `x`"), "{err}");
+    assert!(err.contains("h of the run lie outside the series"), "{err}");
+    let json: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert!(json["run"]["weather"].as_str().unwrap().starts_with("measured"), "{}", json["run"]);
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
 /// Runs that could only mislead are refused before they start: a step longer than a
 /// point's stale timeout (the whole run would be spent in fail-safe, PV at 0 W, and look
 /// like a result), and more days than the site file allows (which also overflowed dates).

@@ -118,8 +118,48 @@ pub fn prepare(path: &Path, args: &RunArgs) -> anyhow::Result<Option<Prepared>> 
             (None, format!("measured ({file})"))
         }
     };
+    let mut weather_label = weather_label;
+    if sky.is_none()
+        && let Some(m) = &plant.weather.measured
+    {
+        weather_label = format!("measured ({})", m.path.display());
+        report_measured(&m.path, m.max_gap, &loaded.site, from, days)?;
+    }
     let site = Arc::new(loaded.site.clone());
     Ok(Some(Prepared { loaded, site, plant, from, days, seed, sky, weather_label }))
+}
+
+/// Reads a measured weather series once before the runs, to show what the plant would
+/// otherwise keep to itself: each row it skipped or changed (with its line), and how much
+/// of the run the series does not cover (the sky is then dark, not measured).
+fn report_measured(
+    path: &Path,
+    max_gap_s: f64,
+    site: &spillway::config::model::Site,
+    from: NaiveDate,
+    days: u32,
+) -> anyhow::Result<()> {
+    let (series, notices) = spillway_sim::weather::MeasuredSeries::load(path, site.timezone, max_gap_s)
+        .with_context(|| format!("measured weather {}", path.display()))?;
+    for n in &notices {
+        eprintln!("{}:{}: {}", path.display(), n.line, n.message);
+    }
+    if !notices.is_empty() {
+        eprintln!("{}: {} row notice(s)", path.display(), notices.len());
+    }
+    let (first_s, last_s) = series.span_s();
+    let midnight = |d: NaiveDate| spillway_sim::pv::local_midnight_ms(site.timezone, d).map(|ms| ms as f64 / 1000.0);
+    if let (Some(start), Some(end)) = (midnight(from), midnight(from + chrono::Days::new(u64::from(days)))) {
+        let covered = (last_s.min(end) - first_s.max(start)).max(0.0);
+        let outside_h = (end - start - covered) / 3600.0;
+        if outside_h > 1.0 {
+            eprintln!(
+                "{}: warning: {outside_h:.1} h of the run lie outside the series: the measured quantity is 0 there",
+                path.display()
+            );
+        }
+    }
+    Ok(())
 }
 
 /// A progress bar that appears only once a run has taken more than a second.

@@ -80,7 +80,17 @@ pub enum OfflineError {
 pub fn plant_section(loaded: &crate::config::Loaded) -> Result<spillway_sim::plant::PlantConfig, OfflineError> {
     let path = loaded.source.path.clone();
     match spillway_sim::site::from_site_yaml(&loaded.source.text) {
-        Ok(Some(p)) => Ok(p),
+        Ok(Some(mut p)) => {
+            // A measured series named in the site file is found next to it, wherever the
+            // command is run from.
+            if let Some(m) = &mut p.weather.measured
+                && m.path.is_relative()
+                && let Some(dir) = std::path::Path::new(&path).parent()
+            {
+                m.path = dir.join(&m.path);
+            }
+            Ok(p)
+        }
         Ok(None) => Err(OfflineError::NoPlant { path }),
         Err(e) => {
             Err(OfflineError::PlantSection { path, message: e.to_string().lines().next().unwrap_or("").to_owned() })
