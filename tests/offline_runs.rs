@@ -202,6 +202,19 @@ fn a_step_longer_than_the_stale_timeout_and_an_endless_run_are_refused() {
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("(checked before the run)"));
     assert!(out.stdout.is_empty(), "nothing was run");
+    // A site file without a plant is a checked problem, as under `check`: exit 1.
+    let no_plant = std::env::temp_dir().join(format!("spillway-no-plant-{}.yaml", std::process::id()));
+    std::fs::write(&no_plant, "site: { name: Bare, timezone: Europe/Lisbon }\n").unwrap();
+    for verb in ["simulate", "sweep", "test"] {
+        let mut cmd = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"));
+        cmd.arg(verb).arg(&no_plant);
+        if verb == "sweep" {
+            cmd.args(["--vary", "plant.pump.rated=1..2:1"]);
+        }
+        let out = cmd.output().unwrap();
+        assert_eq!(out.status.code(), Some(1), "{verb}: {}", String::from_utf8_lossy(&out.stderr));
+    }
+    let _ = std::fs::remove_file(&no_plant);
     // A sweep checks each value's plant before any run, and names the value.
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
         .args(["sweep", example("zero-export-house.yaml").to_str().unwrap()])

@@ -89,8 +89,22 @@ pub fn prepare(path: &Path, args: &RunArgs) -> anyhow::Result<Option<Prepared>> 
             spillway::diag::render(&loaded.source.path, &loaded.source.text, &loaded.warnings, super::color())
         );
     }
-    let defaults = offline::simulation_defaults(&loaded)?;
-    let mut plant = offline::plant_section(&loaded)?;
+    // Problems of the site file are checked problems (exit 1), as under `check`; the
+    // plant is built and bound once here so they show before any run.
+    let checked = offline::simulation_defaults(&loaded).and_then(|d| {
+        let p = offline::plant_section(&loaded)?;
+        let options = spillway_sim::site::SiteOptions { start_ms: 0, seed: 1, sky: None };
+        let built = spillway_sim::site::build(&p, &options)?;
+        offline::bind::Binding::new(&loaded.site, &built)?;
+        Ok((d, p))
+    });
+    let (defaults, mut plant) = match checked {
+        Ok(c) => c,
+        Err(e) => {
+            eprintln!("error: {e}");
+            return Ok(None);
+        }
+    };
     let from = args.from.or(defaults.from).unwrap_or_else(|| chrono::Utc::now().date_naive());
     let days = match (args.to, args.days) {
         (Some(to), _) => {

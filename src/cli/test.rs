@@ -35,7 +35,14 @@ pub fn run(path: &Path, step: Duration, format: Format) -> anyhow::Result<ExitCo
         );
         return Ok(ExitCode::from(1));
     }
-    let plant = offline::plant_section(&loaded)?;
+    let plant = match offline::plant_section(&loaded) {
+        Ok(p) => p,
+        // A site file without a usable plant is a checked problem (1), as under `check`.
+        Err(e) => {
+            eprintln!("error: {e}");
+            return Ok(ExitCode::from(1));
+        }
+    };
     let site = Arc::new(loaded.site.clone());
     let verdicts = expect::run(&site, &loaded, &plant, &exp, step)?;
     match format {
