@@ -53,7 +53,8 @@ async fn sigterm_writes_the_safe_states_before_the_process_exits() {
     assert_eq!(plant.devices.coil(3, 1), Some(false), "pump relay open\n{log}");
     assert_eq!(plant.devices.holding(2, 10), Some(0), "inverter at its safe limit (0 W)\n{log}");
     assert!(log.contains("SAFETY") && log.contains("licensed electrician"), "the banner\n{log}");
-    assert!(log.contains("SIGTERM received") && log.contains("safe states dispatched"), "{log}");
+    assert!(log.contains("SIGTERM received") && log.contains("safe states handed to the links"), "{log}");
+    assert!(log.contains("safe state written at shutdown device=relays"), "the relay module says it took them\n{log}");
     let state = dir.join("bench.state.json");
     assert!(state.exists(), "counters saved next to the site file");
     let _ = std::fs::remove_dir_all(&dir);

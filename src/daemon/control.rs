@@ -375,11 +375,11 @@ impl Control {
             }
         }
         if let Some(ic) = &self.site.inverter {
-            info!(limit = %ic.safe_limit, "inverter limit set to its safe value for shutdown");
+            info!(limit = %ic.safe_limit, "inverter limit: its safe value is sent for shutdown");
         }
         self.dispatcher.apply(&safe);
         let commands: Vec<String> = safe.loads.iter().map(|l| l.command.to_string()).collect();
-        info!(?commands, "safe states dispatched");
+        info!(?commands, "safe states handed to the links (each says whether its device took them)");
         push_recent(&mut self.recent, now, "controller stopping: safe states dispatched".to_owned());
         self.recent.make_contiguous();
         let doc = status::stopped(status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0));

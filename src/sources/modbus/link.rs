@@ -100,7 +100,10 @@ impl ModbusLink {
             let connected = tokio::select! {
                 biased;
                 // Cancel-safe: dropping a pending connect just closes the socket.
-                () = cancel.cancelled() => return,
+                () = cancel.cancelled() => {
+                    self.last_attempt(&mut st, &mut commands, &events).await;
+                    return;
+                }
                 r = timeout(self.options.connect_timeout, self.connect()) => r,
             };
             let reason = match connected {
@@ -142,7 +145,10 @@ impl ModbusLink {
             tokio::select! {
                 biased;
                 // Both cancel-safe: a token and a sleep.
-                () = cancel.cancelled() => return,
+                () = cancel.cancelled() => {
+                    self.last_attempt(&mut st, &mut commands, &events).await;
+                    return;
+                }
                 () = sleep(delay) => {}
             }
         }
@@ -307,6 +313,40 @@ impl ModbusLink {
         }
     }
 
+    /// On shutdown while not connected: one more connection, to write the safe states
+    /// the daemon has just dispatched, and a warning if the device still cannot be
+    /// reached (it then keeps what it had, or does what its hardware does alone).
+    async fn last_attempt(
+        &self,
+        st: &mut State,
+        commands: &mut watch::Receiver<Arc<DeviceCommands>>,
+        events: &mpsc::Sender<SourceEvent>,
+    ) {
+        // A device with nothing to write (a meter) has no safe state to deliver.
+        let has_writes = {
+            let c = commands.borrow();
+            c.commanded && !c.writes.is_empty()
+        };
+        if !has_writes {
+            return;
+        }
+        match timeout(self.options.connect_timeout, self.connect()).await {
+            Ok(Ok(mut ctx)) => {
+                self.final_writes(&mut ctx, st, commands, events).await;
+                let _ = timeout(Duration::from_millis(100), ctx.disconnect()).await;
+            }
+            Ok(Err(e)) => warn!(
+                device = %self.dev().name,
+                reason = %e,
+                "safe state NOT written at shutdown: the device cannot be reached; it keeps what it had, or does what its hardware does without a controller"
+            ),
+            Err(_) => warn!(
+                device = %self.dev().name,
+                "safe state NOT written at shutdown: no connection within the timeout; it keeps what it had, or does what its hardware does without a controller"
+            ),
+        }
+    }
+
     /// On shutdown: one last pass over the latest commands (the daemon puts the safe
     /// states there before it cancels), each request still under its timeout.
     async fn final_writes(
@@ -322,7 +362,12 @@ impl ModbusLink {
         let live = CancellationToken::new();
         let io = Io { link: self, events, cancel: &live };
         if self.write_due(ctx, st, &io).await.is_ok() {
-            debug!(device = %self.dev().name, "final writes done");
+            info!(device = %self.dev().name, "safe state written at shutdown");
+        } else {
+            warn!(
+                device = %self.dev().name,
+                "safe state NOT written at shutdown: the device did not take it; it keeps what it had, or does what its hardware does without a controller"
+            );
         }
     }
 
