@@ -37,6 +37,22 @@ fn unknown_keys_are_rejected() {
     assert!(e.contains("device"), "{e}");
 }
 
+/// A negative power or capacity is refused with the key that is wrong: it used to run
+/// and give reports that read as if the controller had failed (a pump "running" for
+/// 0 kWh, a house exporting).
+#[test]
+fn negative_powers_and_capacities_are_refused_by_key() {
+    for (yaml, key) in [
+        ("pump: { rated: -1.1kW }", "pump: `rated` must be ≥ 0"),
+        ("house: { standby: -700W }", "house: `standby` must be ≥ 0"),
+        ("battery: { capacity: 10kWh, max_charge: -3kW, max_discharge: 3kW }", "battery: `max_charge` must be ≥ 0"),
+    ] {
+        let cfg = spillway_sim::plant::PlantConfig::from_yaml(yaml).unwrap();
+        let e = Plant::new(&cfg, Box::new(HalfSine::new(6000.0)), MONDAY_UTC_MS, 1).err().expect(yaml).to_string();
+        assert!(e.contains(key), "{yaml}: {e}");
+    }
+}
+
 #[test]
 fn the_default_household_ticks_over_at_800_to_1000_w_in_the_daytime() {
     // `common practice`: a household ticking over at 800–1000 W in the daytime is

@@ -315,6 +315,38 @@ impl Plant {
         if !(cfg.inverter.rating > 0.0) {
             return Err(invalid("inverter", "rating must be > 0"));
         }
+        // Powers and capacities that cannot be negative: a negative one runs, and gives
+        // reports that read as if the controller had failed.
+        let mut non_negative: Vec<(&str, &str, f64)> = vec![
+            ("house", "standby", cfg.house.standby),
+            ("house", "activity", cfg.house.activity),
+            ("house", "weekend", cfg.house.weekend),
+            ("house", "variability", cfg.house.variability),
+        ];
+        if let Some(p) = &cfg.pump {
+            non_negative.push(("pump", "rated", p.rated));
+        }
+        if let Some(b) = &cfg.battery {
+            non_negative.extend([
+                ("battery", "capacity", b.capacity),
+                ("battery", "max_charge", b.max_charge),
+                ("battery", "max_discharge", b.max_discharge),
+            ]);
+        }
+        if let Some(e) = &cfg.ev {
+            non_negative.extend([
+                ("ev", "capacity", e.capacity),
+                ("ev", "min_current", e.min_current),
+                ("ev", "max_current", e.max_current),
+                ("ev", "step", e.step),
+                ("ev", "voltage", e.voltage),
+            ]);
+        }
+        for (section, key, v) in non_negative {
+            if !(v >= 0.0 && v.is_finite()) {
+                return Err(invalid(section, &format!("`{key}` must be ≥ 0 (it is {v})")));
+            }
+        }
 
         let mut channels: Vec<String> = Vec::new();
         let mut regulators: Vec<String> = Vec::new();
