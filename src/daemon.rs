@@ -268,6 +268,16 @@ fn restore(engine: &mut Engine, path: &std::path::Path, clock: &Clock) -> Result
             Ok(())
         }
         Ok(Some(doc)) => {
+            if doc.site != engine.site().name {
+                // Loads match by name, so this may be right (a renamed site); it may
+                // also be another site's file given by mistake.
+                warn!(
+                    path = %path.display(),
+                    file_site = %doc.site,
+                    site = %engine.site().name,
+                    "the state file was written by another site name: its counters are restored for loads of the same name; check --state if this is not a renamed site"
+                );
+            }
             engine.restore(&doc.counters, clock.now());
             let site = Arc::clone(engine.site());
             for (i, l) in site.loads.iter().enumerate() {

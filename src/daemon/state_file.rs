@@ -126,13 +126,20 @@ pub fn write_at_start(
 }
 
 /// Moves a state file this build cannot use out of the way (`home.state.json` →
-/// `home.state.json.invalid`, replacing an older one), so the next save does not
-/// overwrite what a person may want to look at or restore by hand. Returns where it
-/// went.
+/// `home.state.json.invalid`, or `.invalid.2`, `.invalid.3`… when that is taken, so an
+/// earlier one is never replaced), so the next save does not overwrite what a person may
+/// want to look at or restore by hand. Returns where it went.
 pub fn set_aside(path: &Path) -> Result<PathBuf, StateFileError> {
-    let mut name = path.file_name().map_or_else(|| "state.json".into(), |n| n.to_os_string());
-    name.push(".invalid");
-    let aside = path.with_file_name(name);
+    let base = path.file_name().map_or_else(|| "state.json".into(), |n| n.to_os_string());
+    let candidate = |n: u32| {
+        let mut name = base.clone();
+        name.push(".invalid");
+        if n > 1 {
+            name.push(format!(".{n}"));
+        }
+        path.with_file_name(name)
+    };
+    let aside = (1..10_000).map(candidate).find(|p| !p.exists()).unwrap_or_else(|| candidate(10_000));
     fs::rename(path, &aside).map_err(|source| StateFileError::Io { path: path.display().to_string(), source })?;
     Ok(aside)
 }
@@ -215,6 +222,11 @@ mod tests {
         assert_eq!(aside, dir.join("home.state.json.invalid"));
         assert_eq!(fs::read_to_string(&aside).unwrap(), "{\"format\": \"other\"}", "kept as it was");
         assert_eq!(read(&path).unwrap(), None, "the next start begins afresh");
+        // A second bad file does not replace the first one set aside.
+        fs::write(&path, "{\"format\": \"another\"}").unwrap();
+        let second = set_aside(&path).unwrap();
+        assert_eq!(second, dir.join("home.state.json.invalid.2"));
+        assert_eq!(fs::read_to_string(&aside).unwrap(), "{\"format\": \"other\"}", "the first is still there");
         fs::remove_dir_all(&dir).unwrap();
     }
 
