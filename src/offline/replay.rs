@@ -59,25 +59,34 @@ pub struct Recorded {
     pub notices: Vec<Notice>,
 }
 
-fn parse_time(text: &str, tz: Tz) -> Option<i64> {
+/// Unix seconds beyond this (about the year 5138) are taken for milliseconds given by
+/// mistake, which would otherwise replay a run thousands of years away.
+const MAX_UNIX_S: f64 = 1e11;
+
+fn parse_time(text: &str, tz: Tz) -> Result<i64, String> {
     let t = text.trim();
     if let Ok(secs) = t.parse::<f64>() {
-        return Some((secs * 1000.0).round() as i64);
+        if !secs.is_finite() || secs.abs() > MAX_UNIX_S {
+            return Err(format!("time \"{t}\" is too large for Unix seconds (milliseconds? divide by 1000)"));
+        }
+        return Ok((secs * 1000.0).round() as i64);
     }
     if let Ok(dt) = DateTime::parse_from_rfc3339(t) {
-        return Some(dt.timestamp_millis());
+        return Ok(dt.timestamp_millis());
     }
     for fmt in ["%Y-%m-%d %H:%M:%S", "%Y-%m-%d %H:%M", "%Y-%m-%dT%H:%M:%S", "%Y-%m-%dT%H:%M"] {
         if let Ok(naive) = NaiveDateTime::parse_from_str(t, fmt) {
             return match tz.from_local_datetime(&naive) {
-                LocalResult::Single(dt) => Some(dt.timestamp_millis()),
+                LocalResult::Single(dt) => Ok(dt.timestamp_millis()),
                 // The repeated hour of an autumn DST change: take the first.
-                LocalResult::Ambiguous(a, _) => Some(a.timestamp_millis()),
-                LocalResult::None => None,
+                LocalResult::Ambiguous(a, _) => Ok(a.timestamp_millis()),
+                LocalResult::None => Err(format!(
+                    "local time \"{t}\" does not exist in {tz} (the clocks went forward): give RFC 3339 with an offset or Unix seconds"
+                )),
             };
         }
     }
-    None
+    Err(format!("time \"{t}\" is not RFC 3339, YYYY-MM-DD HH:MM[:SS] or Unix seconds"))
 }
 
 impl Recorded {
@@ -129,12 +138,12 @@ impl Recorded {
             let reject =
                 |rec: &mut Recorded, why: String| rec.notices.push(Notice { line, message: why, rejected: true });
             let field = |i: usize| record.get(i).unwrap_or("").trim();
-            let Some(t) = parse_time(field(ct), tz) else {
-                reject(
-                    &mut rec,
-                    format!("time \"{}\" is not RFC 3339, YYYY-MM-DD HH:MM[:SS] or Unix seconds", field(ct)),
-                );
-                continue;
+            let t = match parse_time(field(ct), tz) {
+                Ok(t) => t,
+                Err(why) => {
+                    reject(&mut rec, why);
+                    continue;
+                }
             };
             let number = |i: usize, name: &str| -> Result<f64, String> {
                 match field(i).parse::<f64>() {
@@ -281,8 +290,18 @@ mod tests {
     #[test]
     fn times_are_read_in_three_forms() {
         let tz: Tz = "Europe/Lisbon".parse().unwrap();
-        assert_eq!(parse_time("1777698060", tz), Some(1_777_698_060_000));
+        assert_eq!(parse_time("1777698060", tz), Ok(1_777_698_060_000));
         assert_eq!(parse_time("2026-05-02T06:00:00+01:00", tz), parse_time("2026-05-02 06:00:00", tz));
-        assert_eq!(parse_time("soon", tz), None);
+        assert!(parse_time("soon", tz).unwrap_err().contains("is not RFC 3339"));
+    }
+
+    /// Times that parse but cannot be meant say why: milliseconds given as seconds (a run
+    /// in the year 58331), and a local time skipped by the spring DST change.
+    #[test]
+    fn milliseconds_and_times_skipped_by_dst_are_named_as_such() {
+        let tz: Tz = "Europe/Lisbon".parse().unwrap();
+        assert!(parse_time("1777698060000", tz).unwrap_err().contains("milliseconds?"));
+        let e = parse_time("2026-03-29 01:30:00", tz).unwrap_err();
+        assert!(e.contains("does not exist in Europe/Lisbon (the clocks went forward)"), "{e}");
     }
 }
