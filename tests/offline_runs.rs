@@ -168,6 +168,21 @@ fn a_measured_weather_series_reports_its_bad_rows_and_its_coverage() {
     let _ = std::fs::remove_dir_all(&dir);
 }
 
+/// `compare` runs B's rules on A's plant: where B does not fit it (another time zone,
+/// loads without a namesake, which get no row), it says so.
+#[test]
+fn compare_says_where_b_does_not_fit_as_plant() {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(["compare", example("zero-export-house.yaml").to_str().unwrap()])
+        .args([example("battery-ev-limited-export.yaml").to_str().unwrap(), "--days", "1", "--quiet"])
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(out.status.success(), "{err}");
+    assert!(err.contains("warning: B's time zone is Australia/Adelaide"), "{err}");
+    assert!(err.contains("B's loads car, home_battery have no namesake in A"), "{err}");
+}
+
 /// Runs that could only mislead are refused before they start: a step longer than a
 /// point's stale timeout (the whole run would be spent in fail-safe, PV at 0 W, and look
 /// like a result), and more days than the site file allows (which also overflowed dates).

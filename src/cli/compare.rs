@@ -9,6 +9,29 @@ use spillway::offline::{self, Controller, RunOptions, compare, report};
 
 use super::simulate::{Format, Prepared, Progress, RunArgs, prepare};
 
+/// Where B's site does not match A's (whose plant both run on): another time zone, and
+/// loads of either side with no namesake on the other (they get no row in the table).
+fn mismatches(a: &Prepared, b: &Prepared) -> Vec<String> {
+    let mut out = Vec::new();
+    if a.site.timezone != b.site.timezone {
+        out.push(format!(
+            "B's time zone is {} but both run on A's plant in {}: B's time windows fall at other hours of A's day",
+            b.site.timezone, a.site.timezone
+        ));
+    }
+    let names = |p: &Prepared| p.site.loads.iter().map(|l| l.name.clone()).collect::<Vec<_>>();
+    let (la, lb) = (names(a), names(b));
+    let only_b: Vec<&str> = lb.iter().filter(|n| !la.contains(n)).map(String::as_str).collect();
+    let only_a: Vec<&str> = la.iter().filter(|n| !lb.contains(n)).map(String::as_str).collect();
+    if !only_b.is_empty() {
+        out.push(format!("B's loads {} have no namesake in A: they get no row in the table", only_b.join(", ")));
+    }
+    if !only_a.is_empty() {
+        out.push(format!("A's loads {} have no namesake in B: they get no row in the table", only_a.join(", ")));
+    }
+    out
+}
+
 fn options<'a>(p: &Prepared, args: &RunArgs, controller: Controller) -> RunOptions<'a> {
     let mut o = RunOptions::day(p.from);
     o.days = p.days;
@@ -22,7 +45,11 @@ fn options<'a>(p: &Prepared, args: &RunArgs, controller: Controller) -> RunOptio
 pub fn run(a_path: &Path, b_path: &Path, args: &RunArgs, format: Format) -> anyhow::Result<ExitCode> {
     let Some(a) = prepare(a_path, args)? else { return Ok(ExitCode::from(1)) };
     let Some(mut b) = prepare(b_path, args)? else { return Ok(ExitCode::from(1)) };
-    // Same plant, dates, seed and weather for both: A's.
+    // Same plant, dates, seed and weather for both: A's. B's rules must fit that plant;
+    // say where they do not, since the table can only set like against like.
+    for w in mismatches(&a, &b) {
+        eprintln!("warning: {w}");
+    }
     b.plant = a.plant.clone();
     b.from = a.from;
     b.days = a.days;
