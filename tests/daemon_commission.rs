@@ -72,7 +72,7 @@ async fn read_prints_every_point_raw_and_decoded_and_names_the_failures() {
     assert_eq!(code, 1);
     assert!(out.contains("meter: cannot connect to 127.0.0.1:"), "{out}");
     let (code, _, err) = spillway(&["read", &site, "--device", "nope"]).await;
-    assert_eq!(code, 1);
+    assert_eq!(code, 2, "an unknown device is a bad flag value");
     assert!(err.contains("no device \"nope\"") && err.contains("meter, inverter, relays"), "{err}");
     let _ = std::fs::remove_dir_all(path.parent().unwrap());
 }
@@ -157,6 +157,11 @@ async fn exit_codes_tell_an_unreadable_file_from_a_bad_one() {
         assert_eq!(code, 2, "{verb:?} on a missing file: {err}");
         assert!(err.contains("no-such-site.yaml"), "{verb:?} names the file: {err}");
     }
+    // An unknown load is a bad flag value, like an unknown device.
+    let good_site = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("config/zero-export-house.yaml");
+    let (code, _, err) = spillway(&["step-test", &good_site.display().to_string(), "--load", "nope", "--yes"]).await;
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("no load \"nope\""), "{err}");
     let bad = dir.join("bad.yaml");
     std::fs::write(&bad, "site: { name: Bad, timezone: Europe/Lisbon }\nloads: 3\n").unwrap();
     let bad = bad.display().to_string();

@@ -87,9 +87,11 @@ pub fn run(args: DemoArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
             println!("stopped after {} ticks and {} switchings", summary.ticks, summary.switchings);
             Ok(ExitCode::SUCCESS)
         }
+        // The demo could not run (a bad flag, a port in use): an error that stopped it,
+        // as for `run`.
         Err(e) => {
             eprintln!("error: {e}");
-            Ok(ExitCode::from(1))
+            Ok(ExitCode::from(2))
         }
     }
 }

@@ -67,7 +67,8 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
             None => {
                 let names: Vec<&str> = site.devices.iter().map(|d| d.name.as_str()).collect();
                 eprintln!("error: the site has no device \"{name}\" (devices: {})", names.join(", "));
-                return Ok(ExitCode::from(1));
+                // A bad flag value: an error that stops the command.
+                return Ok(ExitCode::from(2));
             }
         },
         None => None,

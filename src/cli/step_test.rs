@@ -47,7 +47,8 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
     let Some((id, load)) = site.load(&args.load) else {
         let names: Vec<&str> = site.loads.iter().map(|l| l.name.as_str()).collect();
         eprintln!("error: the site has no load \"{}\" (loads: {})", args.load, names.join(", "));
-        return Ok(ExitCode::from(1));
+        // A bad flag value: an error that stops the command.
+        return Ok(ExitCode::from(2));
     };
     let targets: Vec<String> =
         spillway::actuators::load_levels(load, Command::On).iter().map(|(t, _)| describe_target(&site, t)).collect();
