@@ -13,9 +13,16 @@ fn main() -> ExitCode {
         Ok(code) => code,
         Err(e) => {
             // The whole chain, outermost first: "cannot read site file x: No such file".
+            // Many messages already end with their cause; a cause already said is not
+            // repeated.
             eprintln!("error: {e}");
+            let mut said = e.to_string();
             for cause in e.chain().skip(1) {
-                eprintln!("  caused by: {cause}");
+                let text = cause.to_string();
+                if !said.contains(&text) {
+                    eprintln!("  caused by: {text}");
+                }
+                said.push_str(&text);
             }
             ExitCode::from(2)
         }

@@ -8,7 +8,17 @@ fn main() -> ExitCode {
     match cli::run() {
         Ok(()) => ExitCode::SUCCESS,
         Err(e) => {
-            eprintln!("spillway-sim: {e:#}");
+            // The chain, outermost first, without repeating a cause a message already
+            // ends with.
+            let mut text = e.to_string();
+            for cause in e.chain().skip(1) {
+                let c = cause.to_string();
+                if !text.contains(&c) {
+                    text.push_str(": ");
+                    text.push_str(&c);
+                }
+            }
+            eprintln!("spillway-sim: {text}");
             ExitCode::FAILURE
         }
     }
