@@ -196,6 +196,10 @@ fn a_step_longer_than_the_stale_timeout_and_an_endless_run_are_refused() {
     let err = offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_err().to_string();
     assert!(err.contains("a step of 10 s is longer than point `grid`'s stale timeout (2.5 s)"), "{err}");
     let mut o = RunOptions::day(date("2026-06-21"));
+    o.step = std::time::Duration::from_micros(1_000_900);
+    let err = offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_err().to_string();
+    assert!(err.contains("whole number of milliseconds"), "{err}");
+    let mut o = RunOptions::day(date("2026-06-21"));
     o.days = 100_000_000;
     let err = offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_err().to_string();
     assert!(err.contains("at most 3660 days"), "{err}");

@@ -226,6 +226,18 @@ pub fn simulate_once(
     if options.step.is_zero() || options.step > Duration::from_secs(60) {
         return Err(OfflineError::Options("--step must be between 1ms and 60s".into()));
     }
+    if options.step.subsec_nanos() % 1_000_000 != 0 {
+        return Err(OfflineError::Options(format!(
+            "--step must be a whole number of milliseconds, not {:?}",
+            options.step
+        )));
+    }
+    if options.trace.is_some() && options.trace_every.as_millis() % options.step.as_millis() != 0 {
+        return Err(OfflineError::Options(format!(
+            "with --chart, the step must divide the chart's averaging interval ({}): use e.g. 1s, 2s or 5s",
+            crate::units::format_duration(options.trace_every)
+        )));
+    }
     // Readings are refreshed once a step: a step longer than a point's stale timeout
     // would leave it stale between steps, and the whole run would be spent in fail-safe.
     if let Some(p) = site.points.iter().filter(|p| options.step > p.stale_after).min_by_key(|p| p.stale_after) {
