@@ -43,16 +43,17 @@ impl Vary {
     }
 }
 
-/// Splits `3.2kW` into (3.2, "kW").
+/// Splits `3.2kW` into (3.2, "kW"). The unit is kept as written, whatever it is (the
+/// site's `kW` and `°C`, or the plant's `L`, `Wp`, `°`, `/day`): each variant is checked
+/// like any site file before it runs, which catches a wrong one.
 fn split_unit(text: &str) -> Option<(f64, String)> {
-    let q = units::parse_quantity(text).ok()?;
     let number_end = text
         .char_indices()
         .find(|&(i, c)| !(c.is_ascii_digit() || c == '.' || c == '_' || ((c == '-' || c == '+') && i == 0)))
         .map_or(text.len(), |(i, _)| i);
-    let unit = text[number_end..].trim().to_owned();
-    let factor = if unit.is_empty() { 1.0 } else { units::unit(&unit).map_or(1.0, |(_, f)| f) };
-    Some((q.value / factor, unit))
+    let number: String = text[..number_end].chars().filter(|&c| c != '_').collect();
+    let value: f64 = number.parse().ok().filter(|v: &f64| v.is_finite())?;
+    Some((value, text[number_end..].trim().to_owned()))
 }
 
 /// Parses `KEY=FROM..TO:STEP`.
@@ -88,6 +89,11 @@ pub fn parse_vary(spec: &str) -> Result<Vary, OfflineError> {
     };
     if path.is_empty() {
         return Err(bad("empty KEY"));
+    }
+    // The run's dates and seed come from the base file and the command line, so varying
+    // them would give identical rows.
+    if path == "plant.seed" || path == "simulation" || path.starts_with("simulation.") {
+        return Err(bad("the dates and the seed are the same for every value: use --from, --days and --seed"));
     }
     Ok(Vary { path: path.split('.').map(str::to_owned).collect(), number, values, unit })
 }
@@ -196,6 +202,10 @@ mod tests {
         assert_eq!(v.texts(), ["2.5kW", "3kW", "3.5kW", "4kW"]);
         assert_eq!(v.number, Some(1));
         assert_eq!(parse_vary("a.b=8..12:2").unwrap().texts(), ["8", "10", "12"]);
+        // The plant's own units, kept as written.
+        assert_eq!(parse_vary("plant.tank.volume=100L..150L:50L").unwrap().texts(), ["100L", "150L"]);
+        assert_eq!(parse_vary("plant.solar.arrays.0.tilt=10°..40°:15°").unwrap().texts(), ["10°", "25°", "40°"]);
+        assert!(parse_vary("plant.seed=1..2:1").unwrap_err().to_string().contains("use --from, --days and --seed"));
         assert!(parse_vary("a=1..2").is_err());
         assert!(parse_vary("a=1kW..2h:1kW").is_err());
     }
