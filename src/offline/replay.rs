@@ -63,7 +63,15 @@ pub struct Recorded {
 /// mistake, which would otherwise replay a run thousands of years away.
 const MAX_UNIX_S: f64 = 1e11;
 
+#[cfg(test)]
 fn parse_time(text: &str, tz: Tz) -> Result<i64, String> {
+    parse_time_after(text, tz, None)
+}
+
+/// As [`parse_time`]; a local time that occurs twice (the repeated hour of an autumn DST
+/// change) is the first occurrence unless that is not after `previous` (the last row's
+/// time), so a recording that runs through the repeated hour reads in order.
+fn parse_time_after(text: &str, tz: Tz, previous: Option<i64>) -> Result<i64, String> {
     let t = text.trim();
     if let Ok(secs) = t.parse::<f64>() {
         if !secs.is_finite() || secs.abs() > MAX_UNIX_S {
@@ -78,8 +86,12 @@ fn parse_time(text: &str, tz: Tz) -> Result<i64, String> {
         if let Ok(naive) = NaiveDateTime::parse_from_str(t, fmt) {
             return match tz.from_local_datetime(&naive) {
                 LocalResult::Single(dt) => Ok(dt.timestamp_millis()),
-                // The repeated hour of an autumn DST change: take the first.
-                LocalResult::Ambiguous(a, _) => Ok(a.timestamp_millis()),
+                // The repeated hour of an autumn DST change: the first occurrence, or
+                // the second when the recording is already past the first.
+                LocalResult::Ambiguous(a, b) => Ok(match previous {
+                    Some(p) if a.timestamp_millis() <= p => b.timestamp_millis(),
+                    _ => a.timestamp_millis(),
+                }),
                 LocalResult::None => Err(format!(
                     "local time \"{t}\" does not exist in {tz} (the clocks went forward): give RFC 3339 with an offset or Unix seconds"
                 )),
@@ -138,7 +150,7 @@ impl Recorded {
             let reject =
                 |rec: &mut Recorded, why: String| rec.notices.push(Notice { line, message: why, rejected: true });
             let field = |i: usize| record.get(i).unwrap_or("").trim();
-            let t = match parse_time(field(ct), tz) {
+            let t = match parse_time_after(field(ct), tz, rec.t_ms.last().copied()) {
                 Ok(t) => t,
                 Err(why) => {
                     reject(&mut rec, why);
@@ -303,5 +315,11 @@ mod tests {
         assert!(parse_time("1777698060000", tz).unwrap_err().contains("milliseconds?"));
         let e = parse_time("2026-03-29 01:30:00", tz).unwrap_err();
         assert!(e.contains("does not exist in Europe/Lisbon (the clocks went forward)"), "{e}");
+        // The repeated hour of 2026-10-25 (01:00–02:00 twice): the second pass reads as
+        // the second occurrence once the recording is past the first.
+        let first = parse_time("2026-10-25 01:30:00", tz).unwrap();
+        let later_row = parse_time("2026-10-25 01:50:00", tz).unwrap();
+        let second = parse_time_after("2026-10-25 01:10:00", tz, Some(later_row)).unwrap();
+        assert_eq!(second - first, 3_600_000 - 20 * 60_000, "one hour later, less the 20 min");
     }
 }
