@@ -182,12 +182,41 @@ pub fn parse(text: &str) -> Result<Node, Box<Diagnostic>> {
                 let start = offset_of_line_col(text, line, col);
                 start..(start + 1).min(text.len())
             });
-            let message = first_line_of_error(&e.to_string());
-            Err(Box::new(Diagnostic::error("C0001", format!("the file is not valid YAML: {message}"), span.unwrap_or(0..0))
-                .with_label("here")
-                .with_note("check indentation (spaces, not tabs) and quote text that contains `: ` or starts with `{`, `[`, `*` or `&`")))
+            let (message, note) = plain_yaml_message(&first_line_of_error(&e.to_string()));
+            Err(Box::new(
+                Diagnostic::error("C0001", format!("the file is not valid YAML: {message}"), span.unwrap_or(0..0))
+                    .with_label("here")
+                    .with_note(note),
+            ))
         }
     }
+}
+
+/// The parser's message in the site file's terms, with advice that fits it: the parser
+/// speaks of its own options (`DuplicateKeyPolicy`, `from_str_multiple`, budgets), which
+/// mean nothing to whoever edits the file.
+fn plain_yaml_message(message: &str) -> (String, &'static str) {
+    const LAYOUT: &str =
+        "check indentation (spaces, not tabs) and quote text that contains `: ` or starts with `{`, `[`, `*` or `&`";
+    let m = message.trim();
+    if let Some(key) = m.strip_prefix("duplicate mapping key: ") {
+        let key = key.split(',').next().unwrap_or(key).trim();
+        return (format!("the key `{key}` is given twice in the same section"), "keep one of them");
+    }
+    if m.contains("from_str_multiple") || m.contains("multiple documents") {
+        return (
+            "more than one YAML document (a second `---`)".to_owned(),
+            "a site file is one document: remove the `---` line and what follows, or merge it",
+        );
+    }
+    if m.contains("budget breached") {
+        let what = if m.contains("Depth") { "nested too deeply" } else { "too large (too many nodes or aliases)" };
+        return (
+            format!("the file is {what} to be a site file"),
+            "a site file is a few hundred lines of plain sections; check for a runaway anchor/alias or a generated file",
+        );
+    }
+    (m.to_owned(), LAYOUT)
 }
 
 /// serde-saphyr's message embeds its own snippet; keep only the message line.
@@ -394,6 +423,17 @@ fn floor_boundary(text: &str, mut i: usize) -> usize {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// The parser's own vocabulary (`DuplicateKeyPolicy`, `from_str_multiple`) does not
+    /// reach the person editing the file.
+    #[test]
+    fn parser_errors_are_put_in_the_files_terms() {
+        let e = parse("site:\n  name: A\n  name: B\n").unwrap_err();
+        assert_eq!(e.message, "the file is not valid YAML: the key `name` is given twice in the same section");
+        let e = parse("site: { name: A }\n---\nsite: { name: B }\n").unwrap_err();
+        assert!(e.message.contains("more than one YAML document"), "{}", e.message);
+        assert!(!e.message.contains("from_str_multiple"), "{}", e.message);
+    }
 
     #[test]
     fn keys_and_values_carry_their_byte_spans() {
