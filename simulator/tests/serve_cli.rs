@@ -81,6 +81,15 @@ fn a_bad_fault_spec_is_refused_with_the_syntax() {
 }
 
 #[test]
+fn a_site_file_given_as_a_plant_file_points_to_site() {
+    let out =
+        sim().args(["serve", "--plant", &site("zero-export-house.yaml"), "--modbus", "127.0.0.1:0"]).output().unwrap();
+    assert!(!out.status.success());
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(stderr.contains("not a plant file but a site file: give it with --site"), "{stderr}");
+}
+
+#[test]
 fn help_documents_every_flag() {
     let out = sim().args(["serve", "--help"]).output().unwrap();
     let help = String::from_utf8_lossy(&out.stdout);

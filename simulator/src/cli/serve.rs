@@ -128,7 +128,15 @@ fn load(args: &Args) -> anyhow::Result<(PlantConfig, Tz)> {
             .with_context(|| format!("{}: not a valid site file", path.display()))?
             .with_context(|| format!("{}: the site has no `plant:` section to serve", path.display()))?
     } else {
-        site::from_yaml(&text).with_context(|| format!("{}: not a valid plant file", path.display()))?
+        site::from_yaml(&text).with_context(|| {
+            // A whole site file given as a plant file: say which flag takes it.
+            let looks_like_site = text.lines().any(|l| l.starts_with("site:") || l.starts_with("plant:"));
+            if looks_like_site {
+                format!("{}: not a plant file but a site file: give it with --site", path.display())
+            } else {
+                format!("{}: not a valid plant file", path.display())
+            }
+        })?
     };
     for spec in &args.faults {
         cfg.faults.push(parse_fault(spec)?);
