@@ -25,12 +25,7 @@ pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
     let mut extra = Vec::new();
     let has = |key: &str| matches!(&loaded.tree.value, Value::Map(m) if m.iter().any(|(k, _)| k.name == key));
     if has("plant") {
-        match offline::plant_section(&loaded).map_err(anyhow::Error::from).and_then(|p| {
-            let options = spillway_sim::site::SiteOptions { start_ms: 0, seed: 1, sky: None };
-            let plant = spillway_sim::site::build(&p, &options)?;
-            offline::bind::Binding::new(&loaded.site, &plant)?;
-            Ok(p)
-        }) {
+        match offline::checked_plant(&loaded) {
             Ok(p) => {
                 let kwp = p.solar.as_ref().map_or(0.0, |s| s.nameplate_w() / 1000.0);
                 extra.push(format!("plant: {kwp:.2} kWp, every point and actuator found on the simulated devices"));

@@ -91,13 +91,7 @@ pub fn prepare(path: &Path, args: &RunArgs) -> anyhow::Result<Option<Prepared>> 
     }
     // Problems of the site file are checked problems (exit 1), as under `check`; the
     // plant is built and bound once here so they show before any run.
-    let checked = offline::simulation_defaults(&loaded).and_then(|d| {
-        let p = offline::plant_section(&loaded)?;
-        let options = spillway_sim::site::SiteOptions { start_ms: 0, seed: 1, sky: None };
-        let built = spillway_sim::site::build(&p, &options)?;
-        offline::bind::Binding::new(&loaded.site, &built)?;
-        Ok((d, p))
-    });
+    let checked = offline::simulation_defaults(&loaded).and_then(|d| Ok((d, offline::checked_plant(&loaded)?)));
     let (defaults, mut plant) = match checked {
         Ok(c) => c,
         Err(e) => {

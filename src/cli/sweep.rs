@@ -73,13 +73,7 @@ pub fn run(
             Ok(l) => {
                 // The plant too, as `check` does: a bad plant value found in a worker
                 // would discard every other value's finished year.
-                let plant = offline::plant_section(&l).map_err(anyhow::Error::from).and_then(|p| {
-                    let options = spillway_sim::site::SiteOptions { start_ms: 0, seed: 1, sky: None };
-                    let built = spillway_sim::site::build(&p, &options)?;
-                    offline::bind::Binding::new(&l.site, &built)?;
-                    Ok(())
-                });
-                if let Err(e) = plant {
+                if let Err(e) = offline::checked_plant(&l) {
                     eprintln!("error: {}={v}: the plant is not valid with this value: {e}", vary.key());
                     return Ok(ExitCode::from(1));
                 }

@@ -98,6 +98,16 @@ pub fn plant_section(loaded: &crate::config::Loaded) -> Result<spillway_sim::pla
     }
 }
 
+/// The `plant:` section, built once and bound to the site's points and actuators: what
+/// `check` reports and what the offline commands verify before spending time on runs.
+pub fn checked_plant(loaded: &crate::config::Loaded) -> Result<spillway_sim::plant::PlantConfig, OfflineError> {
+    let p = plant_section(loaded)?;
+    let options = spillway_sim::site::SiteOptions { start_ms: 0, seed: 1, sky: None };
+    let built = spillway_sim::site::build(&p, &options)?;
+    bind::Binding::new(&loaded.site, &built)?;
+    Ok(p)
+}
+
 /// Defaults for offline runs from the site file's optional `simulation:` section, so an
 /// example can say which week shows it best (`from: 2026-06-15`, `days: 7`, `seed: 3`).
 #[derive(Debug, Clone, Copy, PartialEq)]
