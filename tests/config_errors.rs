@@ -92,3 +92,14 @@ fn every_error_of_a_file_is_reported_in_one_run() {
     };
     assert!(diagnostics.iter().filter(|d| d.is_error()).count() >= 4, "{diagnostics:#?}");
 }
+
+/// A file saved in another encoding says where and what to do, not only "invalid UTF-8".
+#[test]
+fn a_file_that_is_not_utf8_names_the_line_and_the_fix() {
+    let path = std::env::temp_dir().join(format!("spillway-latin1-{}.yaml", std::process::id()));
+    std::fs::write(&path, b"site:\n  name: Caf\xe9\n").unwrap();
+    let Err(err) = spillway::config::load_file(&path) else { panic!("refused") };
+    let err = err.to_string();
+    let _ = std::fs::remove_file(&path);
+    assert!(err.contains("not UTF-8 text (line 2, byte 17): save the file as UTF-8"), "{err}");
+}

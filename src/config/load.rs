@@ -81,8 +81,17 @@ pub const OTHER_SECTIONS: &[&str] = &["plant", "expect", "simulation"];
 
 /// Reads and checks a site file.
 pub fn load_file(path: &Path) -> Result<Loaded, LoadError> {
-    let text =
-        std::fs::read_to_string(path).map_err(|source| LoadError::Io { path: path.display().to_string(), source })?;
+    let io = |source| LoadError::Io { path: path.display().to_string(), source };
+    let bytes = std::fs::read(path).map_err(io)?;
+    let text = String::from_utf8(bytes).map_err(|e| {
+        // Say where, and what to do: an editor that saved Latin-1 or UTF-16 is the usual cause.
+        let at = e.utf8_error().valid_up_to();
+        let line = e.as_bytes()[..at].iter().filter(|&&b| b == b'\n').count() + 1;
+        io(std::io::Error::new(
+            std::io::ErrorKind::InvalidData,
+            format!("not UTF-8 text (line {line}, byte {at}): save the file as UTF-8"),
+        ))
+    })?;
     load_str(&path.display().to_string(), &text)
 }
 
