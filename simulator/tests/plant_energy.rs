@@ -46,6 +46,7 @@ fn negative_powers_and_capacities_are_refused_by_key() {
         ("pump: { rated: -1.1kW }", "pump: `rated` must be ≥ 0"),
         ("house: { standby: -700W }", "house: `standby` must be ≥ 0"),
         ("battery: { capacity: 10kWh, max_charge: -3kW, max_discharge: 3kW }", "battery: `max_charge` must be ≥ 0"),
+        ("tank: { volume: 150L, element: -3kW, ua: 2W/K }", "`element` must be ≥ 0"),
     ] {
         let cfg = spillway_sim::plant::PlantConfig::from_yaml(yaml).unwrap();
         let e = Plant::new(&cfg, Box::new(HalfSine::new(6000.0)), MONDAY_UTC_MS, 1).err().expect(yaml).to_string();

@@ -77,11 +77,16 @@ impl Tank {
     /// Builds the tank from its configuration.
     pub fn new(cfg: &TankConfig, rng: Stream) -> Result<Tank, PlantError> {
         let bad = |why: String| PlantError::Invalid { what: format!("tank \"{}\"", cfg.name), why };
-        if !(cfg.volume > 0.0) || !(cfg.element >= 0.0) || !(cfg.ua >= 0.0) {
-            return Err(bad("volume must be > 0, element and ua ≥ 0".to_owned()));
-        }
-        if !(cfg.thermostat.deadband >= 0.0) || !(cfg.flow_l_per_min > 0.0) {
-            return Err(bad("deadband must be ≥ 0 and the flow > 0".to_owned()));
+        // Each key on its own, so the message names the one that is wrong.
+        let checks = [
+            ("volume", cfg.volume, cfg.volume > 0.0, "> 0"),
+            ("element", cfg.element, cfg.element >= 0.0, "≥ 0"),
+            ("ua", cfg.ua, cfg.ua >= 0.0, "≥ 0"),
+            ("thermostat.deadband", cfg.thermostat.deadband, cfg.thermostat.deadband >= 0.0, "≥ 0"),
+            ("flow_l_per_min", cfg.flow_l_per_min, cfg.flow_l_per_min > 0.0, "> 0"),
+        ];
+        if let Some((key, v, _, rule)) = checks.iter().find(|c| !c.2) {
+            return Err(bad(format!("`{key}` must be {rule} (it is {v})")));
         }
         let defaults;
         let list = match &cfg.draws {
