@@ -29,6 +29,11 @@ fn run(loaded: &Loaded, from: NaiveDate, days: u32, sky: Option<WeatherKind>, co
     offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap()
 }
 
+/// Runs the `spillway` binary with `args` to its end.
+fn spillway<S: AsRef<std::ffi::OsStr>>(args: impl IntoIterator<Item = S>) -> std::process::Output {
+    std::process::Command::new(env!("CARGO_BIN_EXE_spillway")).args(args).output().unwrap()
+}
+
 fn date(s: &str) -> NaiveDate {
     NaiveDate::parse_from_str(s, "%Y-%m-%d").unwrap()
 }
@@ -153,12 +158,21 @@ fn a_measured_weather_series_reports_its_bad_rows_and_its_coverage() {
         text.push_str(&format!("2026-06-21 {h:02}:00,{}\n", if h == 1 { "x".to_owned() } else { ghi.to_string() }));
     }
     std::fs::write(&csv, text).unwrap();
-    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
-        .args(["simulate", example("zero-export-house.yaml").to_str().unwrap()])
-        .args(["--from", "2026-06-21", "--days", "2", "--quiet", "--report", "json", "--weather"])
-        .arg(&csv)
-        .output()
-        .unwrap();
+    let site = example("zero-export-house.yaml");
+    let (site, weather) = (site.to_str().unwrap(), csv.to_str().unwrap());
+    let out = spillway([
+        "simulate",
+        site,
+        "--from",
+        "2026-06-21",
+        "--days",
+        "2",
+        "--quiet",
+        "--report",
+        "json",
+        "--weather",
+        weather,
+    ]);
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(out.status.success(), "{err}");
     assert!(err.contains("ghi.csv:3: cannot read ghi_w_m2 value `x`"), "{err}");
@@ -172,11 +186,8 @@ fn a_measured_weather_series_reports_its_bad_rows_and_its_coverage() {
 /// loads without a namesake, which get no row), it says so.
 #[test]
 fn compare_says_where_b_does_not_fit_as_plant() {
-    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
-        .args(["compare", example("zero-export-house.yaml").to_str().unwrap()])
-        .args([example("battery-ev-limited-export.yaml").to_str().unwrap(), "--days", "1", "--quiet"])
-        .output()
-        .unwrap();
+    let (a, b) = (example("zero-export-house.yaml"), example("battery-ev-limited-export.yaml"));
+    let out = spillway(["compare", a.to_str().unwrap(), b.to_str().unwrap(), "--days", "1", "--quiet"]);
     let err = String::from_utf8_lossy(&out.stderr);
     assert!(out.status.success(), "{err}");
     assert!(err.contains("warning: B's time zone is Australia/Adelaide"), "{err}");
@@ -204,20 +215,14 @@ fn a_step_longer_than_the_stale_timeout_and_an_endless_run_are_refused() {
     let err = offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_err().to_string();
     assert!(err.contains("at most 3660 days"), "{err}");
     // The command line says so before any run, with exit 2.
-    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
-        .args(["simulate", example("zero-export-house.yaml").to_str().unwrap(), "--days", "4000", "--quiet"])
-        .output()
-        .unwrap();
+    let house = example("zero-export-house.yaml");
+    let house = house.to_str().unwrap();
+    let out = spillway(["simulate", house, "--days", "4000", "--quiet"]);
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("at most 3660 days"));
     // A chart that cannot be written is found before the run, not after it.
     let chart = std::env::temp_dir().join(format!("spillway-no-such-dir-{}", std::process::id())).join("week.svg");
-    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
-        .args(["simulate", example("zero-export-house.yaml").to_str().unwrap(), "--days", "1", "--quiet"])
-        .arg("--chart")
-        .arg(&chart)
-        .output()
-        .unwrap();
+    let out = spillway(["simulate", house, "--days", "1", "--quiet", "--chart", chart.to_str().unwrap()]);
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("(checked before the run)"));
     assert!(out.stdout.is_empty(), "nothing was run");
@@ -225,21 +230,24 @@ fn a_step_longer_than_the_stale_timeout_and_an_endless_run_are_refused() {
     let no_plant = std::env::temp_dir().join(format!("spillway-no-plant-{}.yaml", std::process::id()));
     std::fs::write(&no_plant, "site: { name: Bare, timezone: Europe/Lisbon }\n").unwrap();
     for verb in ["simulate", "sweep", "test"] {
-        let mut cmd = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"));
-        cmd.arg(verb).arg(&no_plant);
+        let mut args = vec![verb, no_plant.to_str().unwrap()];
         if verb == "sweep" {
-            cmd.args(["--vary", "plant.pump.rated=1..2:1"]);
+            args.extend(["--vary", "plant.pump.rated=1..2:1"]);
         }
-        let out = cmd.output().unwrap();
+        let out = spillway(args);
         assert_eq!(out.status.code(), Some(1), "{verb}: {}", String::from_utf8_lossy(&out.stderr));
     }
     let _ = std::fs::remove_file(&no_plant);
     // A sweep checks each value's plant before any run, and names the value.
-    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
-        .args(["sweep", example("zero-export-house.yaml").to_str().unwrap()])
-        .args(["--vary", "plant.solar.arrays.roof.strings.0.modules=0..8:4", "--days", "1", "--quiet"])
-        .output()
-        .unwrap();
+    let out = spillway([
+        "sweep",
+        house,
+        "--vary",
+        "plant.solar.arrays.roof.strings.0.modules=0..8:4",
+        "--days",
+        "1",
+        "--quiet",
+    ]);
     let err = String::from_utf8_lossy(&out.stderr);
     assert_eq!(out.status.code(), Some(1), "{err}");
     assert!(err.contains("modules=0: the plant is not valid with this value"), "{err}");
@@ -304,7 +312,7 @@ fn a_replay_reports_its_bad_row_and_gap_and_still_reports() {
         let mut args = vec!["replay", site.to_str().unwrap(), csv.to_str().unwrap(), "--quiet"];
         args.extend_from_slice(extra);
         args.extend_from_slice(&["--report", "json"]);
-        std::process::Command::new(env!("CARGO_BIN_EXE_spillway")).args(&args).output().unwrap()
+        spillway(args)
     };
     let two = replay(&["--days", "2"]);
     assert!(two.status.success(), "{}", String::from_utf8_lossy(&two.stderr));
