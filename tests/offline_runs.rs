@@ -179,6 +179,29 @@ fn a_measured_weather_series_reports_its_bad_rows_and_its_coverage() {
     assert!(err.contains("h of the run lie outside the series"), "{err}");
     let json: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert!(json["run"]["weather"].as_str().unwrap().starts_with("measured"), "{}", json["run"]);
+
+    // A replay replaces the modelled sky with its recording: the plant's own measured
+    // series is not used, so its row notices and coverage would only mislead.
+    let with_series = std::fs::read_to_string(example("zero-export-house.yaml"))
+        .unwrap()
+        .replace("weather: { sky: mixed }", &format!("weather: {{ measured: {{ path: {weather} }} }}"));
+    assert!(with_series.contains("ghi.csv"), "the example's weather line moved");
+    let measured_site = dir.join("measured-site.yaml");
+    std::fs::write(&measured_site, with_series).unwrap();
+    let recording = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/test_data/replay/rosemead-may-12.csv");
+    let out = spillway([
+        "replay",
+        measured_site.to_str().unwrap(),
+        recording.to_str().unwrap(),
+        "--quiet",
+        "--report",
+        "json",
+    ]);
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(out.status.success(), "{err}");
+    assert!(!err.contains("ghi.csv"), "{err}");
+    let json: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert!(json["run"]["weather"].as_str().unwrap().starts_with("recorded"), "{}", json["run"]);
     let _ = std::fs::remove_dir_all(&dir);
 }
 
@@ -340,6 +363,46 @@ fn a_replay_reports_its_bad_row_and_gap_and_still_reports() {
     let weather = replay(&["--weather", "overcast"]);
     assert_eq!(weather.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&weather.stderr).contains("--weather does not apply to replay"));
+}
+
+/// A recording with a whole day missing: the run still goes through, but the hours it
+/// interpolates across the gap are counted, warned about and put in the report — a day
+/// of invented flat load must never pass for a measured one.
+#[test]
+fn a_replay_counts_and_warns_about_hours_it_interpolates_across_a_gap() {
+    let dir = std::env::temp_dir().join(format!("spillway-gap-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let csv = dir.join("two-days-apart.csv");
+    // Invented data: 06:00–18:00 every 10 min on 1 and 3 October; 2 October missing.
+    let mut text = String::from("time,pv_w,house_w\n");
+    for day in ["2026-10-01", "2026-10-03"] {
+        for m in (0..=720).step_by(10) {
+            let (h, min) = (6 + m / 60, m % 60);
+            let pv = (f64::from(m) * std::f64::consts::PI / 720.0).sin() * 3000.0;
+            text.push_str(&format!("{day} {h:02}:{min:02},{pv:.0},600\n"));
+        }
+    }
+    std::fs::write(&csv, text).unwrap();
+    let out = spillway([
+        "replay",
+        example("zero-export-house.yaml").to_str().unwrap(),
+        csv.to_str().unwrap(),
+        "--quiet",
+        "--report",
+        "json",
+    ]);
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(out.status.success(), "{stderr}");
+    // 18:00 on the 1st to 06:00 on the 3rd is 36 h of gap.
+    assert!(stderr.contains("36.0 h of the run fall in gaps of over 15 min"), "{stderr}");
+    let json: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(json["run"]["days"], 3);
+    assert!((json["replay"]["bridged_h"].as_f64().unwrap() - 36.0).abs() < 1e-9, "{}", json["replay"]);
+    // Before 06:00 on the 1st and after 18:00 on the 3rd: 12 h held at the end values.
+    assert!((json["replay"]["outside_h"].as_f64().unwrap() - 12.0).abs() < 1e-9, "{}", json["replay"]);
+    let notices = json["replay"]["notices"].as_array().unwrap();
+    assert!(notices.iter().any(|n| n.as_str().unwrap().contains("interpolated there, not measured")), "{notices:?}");
+    std::fs::remove_dir_all(&dir).ok();
 }
 
 /// The same seed gives the same report, byte for byte.

@@ -7,7 +7,7 @@ use std::process::ExitCode;
 use anyhow::Context as _;
 use spillway::offline::{self, Controller, RunOptions, replay::Recorded, report};
 
-use super::simulate::{Format, Progress, RunArgs, prepare};
+use super::simulate::{Format, Progress, RunArgs, prepare_for};
 
 pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Option<&Path>) -> anyhow::Result<ExitCode> {
     // Accepted silently, it would look as if it changed something.
@@ -15,7 +15,7 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
         args.weather.is_none(),
         "--weather does not apply to replay: the recording replaces the modelled PV and household load"
     );
-    let Some(mut p) = prepare(site, args)? else { return Ok(ExitCode::from(1)) };
+    let Some(mut p) = prepare_for(site, args, false)? else { return Ok(ExitCode::from(1)) };
     if let Some(file) = chart {
         super::simulate::check_writable(file)?;
     }
@@ -40,9 +40,21 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
         p.days = recorded_days;
     }
     let mut notices: Vec<String> = recorded.notices.iter().map(|n| format!("line {}: {}", n.line, n.message)).collect();
-    if let Some(outside) = hours_outside(&recorded, tz, p.from, p.days) {
+    let coverage = coverage(&recorded, tz, p.from, p.days);
+    // An hour is noise (a recording rarely starts exactly at midnight); more is called out,
+    // since the report counts those hours as if they had been measured.
+    if coverage.outside_h > 1.0 {
         let note = format!(
-            "{outside:.1} h of the run lie outside the recording: its first and last values are held there, not measured"
+            "{:.1} h of the run lie outside the recording: its first and last values are held there, not measured",
+            coverage.outside_h
+        );
+        eprintln!("{}: warning: {note}", csv.display());
+        notices.push(note);
+    }
+    if coverage.bridged_h > 1.0 {
+        let note = format!(
+            "{:.1} h of the run fall in gaps of over 15 min between rows: interpolated there, not measured",
+            coverage.bridged_h
         );
         eprintln!("{}: warning: {note}", csv.display());
         notices.push(note);
@@ -85,6 +97,8 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
         file: csv.display().to_string(),
         rows_used: recorded.t_ms.len(),
         rows_rejected: rejected,
+        bridged_h: coverage.bridged_h,
+        outside_h: coverage.outside_h,
         notices,
     });
     match format {
@@ -97,13 +111,21 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
     Ok(ExitCode::SUCCESS)
 }
 
-/// Hours of the run's local days `[from, from + days)` that the recording does not cover,
-/// when more than one (a recording rarely starts exactly at midnight; an hour is noise).
-fn hours_outside(recorded: &Recorded, tz: chrono_tz::Tz, from: chrono::NaiveDate, days: u32) -> Option<f64> {
+/// How much of a run the recording does not measure.
+struct Coverage {
+    /// Hours before the first row or after the last.
+    outside_h: f64,
+    /// Hours inside gaps of over 15 minutes between rows.
+    bridged_h: f64,
+}
+
+/// What the recording covers of the run's local days `[from, from + days)`.
+fn coverage(recorded: &Recorded, tz: chrono_tz::Tz, from: chrono::NaiveDate, days: u32) -> Coverage {
     let (first, last) = recorded.span_ms();
-    let start = spillway_sim::pv::local_midnight_ms(tz, from)?;
-    let end = spillway_sim::pv::local_midnight_ms(tz, from + chrono::Days::new(u64::from(days)))?;
+    let bounds = spillway_sim::pv::local_midnight_ms(tz, from)
+        .zip(spillway_sim::pv::local_midnight_ms(tz, from + chrono::Days::new(u64::from(days))));
+    let Some((start, end)) = bounds else { return Coverage { outside_h: 0.0, bridged_h: 0.0 } };
     let covered = (last.min(end) - first.max(start)).max(0);
-    let outside_h = ((end - start) - covered) as f64 / 3_600_000.0;
-    (outside_h > 1.0).then_some(outside_h)
+    let hours = |ms: i64| ms as f64 / 3_600_000.0;
+    Coverage { outside_h: hours((end - start) - covered), bridged_h: hours(recorded.bridged_ms(start, end)) }
 }

@@ -216,6 +216,16 @@ impl Recorded {
         (self.t_ms[0], self.t_ms[self.t_ms.len() - 1])
     }
 
+    /// Milliseconds of `[start_ms, end_ms)` that fall in gaps between rows longer than
+    /// 15 minutes: interpolated there, not measured.
+    pub fn bridged_ms(&self, start_ms: i64, end_ms: i64) -> i64 {
+        self.t_ms
+            .windows(2)
+            .filter(|w| (w[1] - w[0]) as f64 / 1000.0 > MAX_GAP_S)
+            .map(|w| (w[1].min(end_ms) - w[0].max(start_ms)).max(0))
+            .sum()
+    }
+
     /// The plant with the recorded PV and house in place of the modelled ones.
     pub fn build_plant(&self, cfg: &PlantConfig, start_ms: i64, seed: u64) -> Result<Plant, OfflineError> {
         let pv = ReplayPv {

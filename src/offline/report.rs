@@ -211,6 +211,10 @@ pub struct ReplayReport {
     pub rows_used: usize,
     /// Rows rejected (each named with its line in `notices`).
     pub rows_rejected: usize,
+    /// Hours of the run inside gaps over 15 minutes between rows (interpolated).
+    pub bridged_h: f64,
+    /// Hours of the run before the first row or after the last (end values held).
+    pub outside_h: f64,
     /// Rejected rows and bridged gaps, with line numbers.
     pub notices: Vec<String>,
 }
@@ -403,7 +407,16 @@ impl Report {
             b.import_kwh, b.export_kwh, b.export_peak_w
         );
         if let Some(r) = &self.replay {
-            let _ = writeln!(o, "replayed {}: {} row(s) used, {} rejected", r.file, r.rows_used, r.rows_rejected);
+            let _ = write!(o, "replayed {}: {} row(s) used, {} rejected", r.file, r.rows_used, r.rows_rejected);
+            // Hours the report counts that the recording did not measure.
+            if r.bridged_h >= 0.05 || r.outside_h >= 0.05 {
+                let _ = write!(
+                    o,
+                    "; not measured: {:.1} h in gaps over 15 min, {:.1} h outside the recording",
+                    r.bridged_h, r.outside_h
+                );
+            }
+            let _ = writeln!(o);
         }
         if self.refused_writes > 0 {
             let _ = writeln!(o, "note: the plant refused {} write(s) (a device restarting)", self.refused_writes);
