@@ -74,6 +74,12 @@ pub struct Prepared {
 /// Loads a site and resolves the run's dates, seed and weather. Config errors are
 /// printed; `Ok(None)` means "exit 1".
 pub fn prepare(path: &Path, args: &RunArgs) -> anyhow::Result<Option<Prepared>> {
+    prepare_for(path, args, true)
+}
+
+/// As [`prepare`]; `uses_weather` is false for a replay, whose recording replaces the
+/// modelled sky, so a measured weather file of the plant is neither read nor reported.
+pub fn prepare_for(path: &Path, args: &RunArgs, uses_weather: bool) -> anyhow::Result<Option<Prepared>> {
     let loaded = match config::load_file(path) {
         Ok(l) => l,
         Err(e @ LoadError::Invalid { .. }) => {
@@ -128,6 +134,7 @@ pub fn prepare(path: &Path, args: &RunArgs) -> anyhow::Result<Option<Prepared>> 
     };
     let mut weather_label = weather_label;
     if sky.is_none()
+        && uses_weather
         && let Some(m) = &plant.weather.measured
     {
         weather_label = format!("measured ({})", m.path.display());
