@@ -151,11 +151,24 @@ fn parse_start(text: &str, tz: Tz) -> anyhow::Result<i64> {
     if let Ok(at) = DateTime::parse_from_rfc3339(text) {
         return Ok(at.timestamp_millis());
     }
-    let naive = NaiveDateTime::parse_from_str(text, "%Y-%m-%dT%H:%M:%S")
-        .or_else(|_| NaiveDateTime::parse_from_str(text, "%Y-%m-%dT%H:%M"))
-        .with_context(|| {
-            format!("--start `{text}` is not an RFC 3339 time such as 2026-06-21T09:00:00 or 2026-06-21T09:00:00+02:00")
-        })?;
+    let (with_seconds, without) = (
+        NaiveDateTime::parse_from_str(text, "%Y-%m-%dT%H:%M:%S"),
+        NaiveDateTime::parse_from_str(text, "%Y-%m-%dT%H:%M"),
+    );
+    let naive = match (with_seconds, without) {
+        (Ok(n), _) | (_, Ok(n)) => n,
+        (Err(a), Err(b)) => {
+            use chrono::format::ParseErrorKind::{Impossible, OutOfRange};
+            // The shape is right but a field is not (30 February, hour 25): say that,
+            // not what the other format found wrong with it.
+            if [a.kind(), b.kind()].iter().any(|k| matches!(k, OutOfRange | Impossible)) {
+                anyhow::bail!("--start `{text}`: no such date or time (a day, month, hour or minute out of range)");
+            }
+            anyhow::bail!(
+                "--start `{text}` is not an RFC 3339 time such as 2026-06-21T09:00:00 or 2026-06-21T09:00:00+02:00"
+            );
+        }
+    };
     let local = tz
         .from_local_datetime(&naive)
         .earliest()
@@ -304,5 +317,10 @@ mod tests {
         // 2026-03-29 01:30 does not exist in Lisbon (clocks go 01:00 → 02:00).
         assert!(parse_start("2026-03-29T01:30:00", lisbon).is_err());
         assert!(parse_start("tomorrow", lisbon).is_err());
+        // An impossible date says so, in either format.
+        for text in ["2026-02-30T10:00", "2026-02-30T10:00:00", "2026-06-21T25:00"] {
+            let e = parse_start(text, lisbon).unwrap_err().to_string();
+            assert!(e.contains("no such date or time"), "{text}: {e}");
+        }
     }
 }

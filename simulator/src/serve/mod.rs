@@ -28,13 +28,23 @@ pub use clock::SimClock;
 pub use fault::parse_fault;
 pub use mqtt::{COMMAND_FILTER, STATUS_TOPIC};
 
+/// What to do about a listener that could not be opened, by what the system said.
+fn bind_hint(e: &std::io::Error) -> &'static str {
+    match e.kind() {
+        std::io::ErrorKind::AddrInUse => "another server holds that port: stop it, or give port 0 to pick a free one",
+        std::io::ErrorKind::AddrNotAvailable => {
+            "that address is not one of this machine's: use 127.0.0.1, or 0.0.0.0 for every interface"
+        }
+        std::io::ErrorKind::PermissionDenied => "ports below 1024 need privileges: use a port such as 5020",
+        _ => "check the address, or give port 0 to pick a free one",
+    }
+}
+
 /// Errors of the server.
 #[derive(Debug, thiserror::Error)]
 pub enum ServeError {
     /// The Modbus TCP listener could not be opened.
-    #[error(
-        "cannot listen for Modbus TCP on {addr}: {source} (is another server on that port? port 0 picks a free one)"
-    )]
+    #[error("cannot listen for Modbus TCP on {addr}: {source} ({})", bind_hint(source))]
     Bind {
         /// The address asked for.
         addr: SocketAddr,
@@ -346,5 +356,20 @@ impl Drop for ServerHandle {
     /// waiting for them).
     fn drop(&mut self) {
         self.root.cancel();
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The advice fits what went wrong: a busy port is not a foreign address.
+    #[test]
+    fn a_listener_that_cannot_open_gets_advice_for_its_cause() {
+        let addr: SocketAddr = "10.255.255.1:5020".parse().unwrap();
+        let said = |kind: std::io::ErrorKind| ServeError::Bind { addr, source: kind.into() }.to_string();
+        assert!(said(std::io::ErrorKind::AddrInUse).contains("another server holds that port"));
+        assert!(said(std::io::ErrorKind::AddrNotAvailable).contains("not one of this machine's"));
+        assert!(said(std::io::ErrorKind::PermissionDenied).contains("below 1024"));
     }
 }
