@@ -163,3 +163,31 @@ async fn an_engine_panic_sends_the_safe_states_and_stops_the_daemon_with_an_erro
     .await;
     println!("after the engine failed: heater {}, pump {}, limit {} W", safe.heater, safe.pump, safe.limit);
 }
+
+/// At shutdown each device link says whether its safe state was written: the inverter,
+/// reachable, takes its safe limit; a relay board that cannot be reached (its port
+/// closed) gets one more connection attempt and then a warning that names it, so the
+/// log never claims a safe state that was not delivered.
+#[tokio::test(start_paused = true)]
+async fn the_shutdown_log_names_a_device_whose_safe_state_was_not_written() {
+    let plant = Plant::start(0.0).await;
+    let closed = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+    let yaml = plant.site_yaml(LOADS, "");
+    let relays = format!("relays:   {{ modbus_tcp: 127.0.0.1:{}", plant.devices.addr.port());
+    assert!(yaml.contains(&relays), "the test site's relay line moved");
+    let yaml = yaml.replace(&relays, &format!("relays:   {{ modbus_tcp: 127.0.0.1:{closed}"));
+    let (logs, _guard) = support::Logs::capture();
+    let daemon = start(&yaml, options(T0)).await;
+    status_until(&daemon, Duration::from_secs(30), "ticking", |s| s.time.is_some()).await;
+    tokio::time::sleep(Duration::from_secs(5)).await;
+    daemon.shutdown();
+    daemon.wait().await;
+    let text = logs.text();
+    let line = |device: &str, what: &str| {
+        text.lines().find(|l| l.contains(what) && l.contains(&format!("device={device}"))).map(str::to_owned)
+    };
+    let relays = line("relays", "safe state NOT written at shutdown").unwrap_or_else(|| panic!("{text}"));
+    assert!(relays.contains("WARN") && relays.contains("cannot be reached"), "{relays}");
+    assert!(line("inverter", "safe state written at shutdown").is_some(), "{text}");
+    assert!(line("relays", "safe state written at shutdown").is_none(), "{text}");
+}

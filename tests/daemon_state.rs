@@ -135,20 +135,6 @@ async fn the_state_file_is_written_at_start() {
     let _ = std::fs::remove_dir_all(path.parent().unwrap());
 }
 
-/// Log lines of the daemon under test, kept for the test to read.
-#[derive(Clone, Default)]
-struct Captured(std::sync::Arc<std::sync::Mutex<Vec<u8>>>);
-
-impl std::io::Write for Captured {
-    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
-        self.0.lock().unwrap().extend_from_slice(buf);
-        Ok(buf.len())
-    }
-    fn flush(&mut self) -> std::io::Result<()> {
-        Ok(())
-    }
-}
-
 /// A state file written under another site name (a renamed site, or another site's file
 /// given to `--state` by mistake): its counters are restored for loads of the same name,
 /// with a warning that names both sites.
@@ -168,17 +154,14 @@ async fn a_state_file_of_another_site_name_is_restored_with_a_warning() {
     doc["site"] = "Hillcrest Cottage".into();
     std::fs::write(&path, serde_json::to_vec(&doc).unwrap()).unwrap();
 
-    let logs = Captured::default();
-    let writer = logs.clone();
-    let subscriber = tracing_subscriber::fmt().with_ansi(false).with_writer(move || writer.clone()).finish();
-    let _guard = tracing::subscriber::set_default(subscriber);
+    let (logs, _guard) = support::Logs::capture();
     let mut opts = options(T0.plus(Duration::from_secs(600)));
     opts.state_file = Some(path.clone());
     let daemon = start(&yaml, opts).await;
     let restored = load(&daemon.status().borrow(), "pool_pump").runtime_today_s;
     daemon.shutdown();
     daemon.wait().await;
-    let text = String::from_utf8(logs.0.lock().unwrap().clone()).unwrap();
+    let text = logs.text();
     let warning = text.lines().find(|l| l.contains("another site name")).unwrap_or_else(|| panic!("{text}"));
     assert!(warning.contains("WARN"), "{warning}");
     assert!(warning.contains("Hillcrest Cottage") && warning.contains("Bench"), "{warning}");

@@ -63,3 +63,37 @@ pub async fn until(what: &str, mut cond: impl FnMut() -> bool) {
         tokio::time::sleep(Duration::from_millis(10)).await;
     }
 }
+
+/// The log lines of code under test, kept for the test to read. Capture covers the
+/// current thread (a `#[tokio::test]` runtime runs its tasks there) while the guard lives.
+#[derive(Clone, Default)]
+pub struct Logs(Arc<std::sync::Mutex<Vec<u8>>>);
+
+impl Logs {
+    /// Starts capturing every level, without colour.
+    pub fn capture() -> (Logs, tracing::subscriber::DefaultGuard) {
+        let logs = Logs::default();
+        let writer = logs.clone();
+        let subscriber = tracing_subscriber::fmt()
+            .with_ansi(false)
+            .with_max_level(tracing::Level::DEBUG)
+            .with_writer(move || writer.clone())
+            .finish();
+        (logs, tracing::subscriber::set_default(subscriber))
+    }
+
+    /// Everything logged so far.
+    pub fn text(&self) -> String {
+        String::from_utf8_lossy(&self.0.lock().unwrap()).into_owned()
+    }
+}
+
+impl std::io::Write for Logs {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        self.0.lock().unwrap().extend_from_slice(buf);
+        Ok(buf.len())
+    }
+    fn flush(&mut self) -> std::io::Result<()> {
+        Ok(())
+    }
+}
