@@ -825,6 +825,12 @@ fn decide(
         }
     }
     if let Some(j) = forced {
+        // A top-up that would start the load keeps to the same anti-chatter limits as
+        // the rules: an inhibit rule that trips on the import the top-up causes would
+        // otherwise switch the relay every tick.
+        if !is_on && let Some(reason) = start_blocked(l, st, now) {
+            return (st.command, reason, Power::ZERO);
+        }
         let command = if l.kind.is_modulating() { full_command(&l.kind) } else { on_command(&l.kind, st.command) };
         return (command, Reason::Obligation { index: j }, Power::ZERO);
     }
@@ -847,17 +853,8 @@ fn decide(
     } else {
         match start {
             Some(Truth::True) | None if start.is_some() || l.kind.is_modulating() => {
-                if let Some(left) = time_left(now, st.changed_at, l.min_off) {
-                    Err(Reason::MinOff { left })
-                } else if let Some(cap) = l.max_starts_per_hour
-                    && {
-                        while st.starts.front().is_some_and(|t| now.since(*t) >= Duration::from_secs(3600)) {
-                            st.starts.pop_front();
-                        }
-                        st.starts.len() as u32 >= cap
-                    }
-                {
-                    Err(Reason::StartsCapped { cap })
+                if let Some(reason) = start_blocked(l, st, now) {
+                    Err(reason)
                 } else if settling {
                     Err(Reason::Settling)
                 } else {
@@ -882,6 +879,19 @@ fn decide(
         }
         (kind, Ok(enabled)) => modulate(kind, st, enabled, input, u_total, is_on),
     }
+}
+
+/// Why a load that is off may not start now, if it may not: its minimum off-time, or
+/// its cap on starts per hour (rolling). Rules and grid top-ups both keep to these.
+fn start_blocked(l: &crate::config::model::Load, st: &mut LoadState, now: Timestamp) -> Option<Reason> {
+    if let Some(left) = time_left(now, st.changed_at, l.min_off) {
+        return Some(Reason::MinOff { left });
+    }
+    let cap = l.max_starts_per_hour?;
+    while st.starts.front().is_some_and(|t| now.since(*t) >= Duration::from_secs(3600)) {
+        st.starts.pop_front();
+    }
+    (st.starts.len() as u32 >= cap).then_some(Reason::StartsCapped { cap })
 }
 
 /// Full power for a kind (safe state `on`, boosts, obligations).

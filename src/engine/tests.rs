@@ -736,6 +736,47 @@ fn a_reach_by_obligation_heats_from_the_grid_in_its_window_until_the_target() {
     assert_eq!(h.command("tank"), Command::Off, "{:?}", h.reason("tank"));
 }
 
+/// A grid top-up keeps to the load's anti-chatter limits. Here an inhibit rule trips on
+/// the very import the top-up causes: without `min_off` and the starts cap applying to
+/// the top-up, the relay would switch on and off every tick through the window.
+#[test]
+fn a_grid_top_up_keeps_to_min_off_and_the_starts_cap_when_an_inhibit_keeps_tripping() {
+    let loads = r#"
+  - name: tank
+    rated: 3kW
+    switch: { device: relays, coil: 0 }
+    temperature: tank_temp
+    start: surplus > 3.1kW for 20s
+    stop: import > 300W for 10s
+    inhibit: import > 2kW
+    min_off: 5min
+    max_starts_per_hour: 4
+    obligations:
+      - reach: 60°C
+        by: "17:00"
+        grid_window: 15:00..17:00
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads)).at_local(15, 0);
+    h.set("tank_temp", 45.0);
+    let mut starts = Vec::new();
+    let mut on = false;
+    for _ in 0..3600 {
+        // The house draws 500 W; the heater, when on, adds its 3 kW at the meter.
+        h.set("grid", if on { 3500.0 } else { 500.0 });
+        let d = h.tick();
+        let now_on = d.loads[0].command.is_on();
+        if now_on && !on {
+            starts.push(h.now);
+        }
+        on = now_on;
+    }
+    assert!(!starts.is_empty(), "the top-up is tried");
+    assert!(starts.len() <= 4, "at most 4 starts in the hour, not one every other tick: {}", starts.len());
+    for pair in starts.windows(2) {
+        assert!(pair[1].since(pair[0]) >= secs(300), "5 min off between starts: {pair:?}");
+    }
+}
+
 // ---------------------------------------------------------------- overrides, outages, off-grid
 
 #[test]
