@@ -103,3 +103,9 @@ fn a_file_that_is_not_utf8_names_the_line_and_the_fix() {
     let _ = std::fs::remove_file(&path);
     assert!(err.contains("not UTF-8 text (line 2, byte 17): save the file as UTF-8"), "{err}");
 }
+
+/// Durations beyond a year are refused with the key named (they used to panic).
+#[test]
+fn durations_beyond_a_year_are_refused() {
+    check("endless-durations");
+}

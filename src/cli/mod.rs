@@ -135,7 +135,10 @@ pub fn parse_duration(text: &str) -> Result<std::time::Duration, String> {
     if q.dimension != spillway::units::Dimension::Duration || q.value < 0.0 || !q.value.is_finite() {
         return Err(format!("`{text}` is not a duration like 10s or 2min"));
     }
-    Ok(std::time::Duration::from_secs_f64(q.value))
+    match std::time::Duration::try_from_secs_f64(q.value) {
+        Ok(d) if d <= spillway::config::values::MAX_DURATION => Ok(d),
+        _ => Err(format!("`{text}` is longer than a year (366 d at most)")),
+    }
 }
 
 /// Whether to colour diagnostics.

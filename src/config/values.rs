@@ -104,14 +104,25 @@ pub fn quantity(node: &Node, dimension: Dimension, what: &str, diags: &mut Diagn
     None
 }
 
-/// Reads a non-negative duration.
+/// The longest duration a site file may give: no setting of a controller that decides
+/// every second means anything beyond a year, and a bound keeps the arithmetic on
+/// durations (sums, multiples) from overflowing.
+pub const MAX_DURATION: Duration = Duration::from_secs(366 * 86_400);
+
+/// Reads a non-negative duration of at most [`MAX_DURATION`].
 pub fn duration(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<Duration> {
     let seconds = quantity(node, Dimension::Duration, what, diags)?;
-    if seconds < 0.0 || !seconds.is_finite() {
+    if seconds < 0.0 || seconds.is_nan() {
         diags.error("C0305", format!("{what} cannot be negative"), node.span.clone(), "expected a duration ≥ 0");
         return None;
     }
-    Some(Duration::from_secs_f64(seconds))
+    match Duration::try_from_secs_f64(seconds) {
+        Ok(d) if d <= MAX_DURATION => Some(d),
+        _ => {
+            diags.error("C0305", format!("{what} is longer than a year"), node.span.clone(), "expected at most 366 d");
+            None
+        }
+    }
 }
 
 /// Reads a positive, finite power/energy/etc., rejecting negatives.

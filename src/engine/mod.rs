@@ -342,7 +342,9 @@ impl Engine {
             };
             let s = &mut self.loads[id.0];
             if same_day {
-                s.runtime_today = Duration::from_secs_f64(p.runtime_today_s.max(0.0));
+                // A day holds at most 24 h: a damaged file must not panic the start.
+                s.runtime_today =
+                    Duration::try_from_secs_f64(p.runtime_today_s.clamp(0.0, 86_400.0)).unwrap_or_default();
                 s.energy_today = Energy(p.energy_today_wh);
             }
             for (o, last) in s.obligations.iter_mut().zip(&p.last_cycle_ms) {

@@ -143,11 +143,12 @@ pub fn parse_override(load: &Load, payload: &[u8], now: Timestamp) -> Result<Ove
             if q.dimension != Dimension::Duration || q.value <= 0.0 {
                 return Err(format!("\"{d}\" is not a duration such as 30min or 2h"));
             }
-            let d = Duration::from_secs_f64(q.value);
-            if d > MAX_OVERRIDE {
-                return Err("an override lasts at most 24 h".to_owned());
+            // `try_`: a payload is untrusted input, and a duration too large for the
+            // type must be refused, not panic the link.
+            match Duration::try_from_secs_f64(q.value) {
+                Ok(d) if d <= MAX_OVERRIDE => d,
+                _ => return Err("an override lasts at most 24 h".to_owned()),
             }
-            d
         }
     };
     let command = match word.as_str() {
