@@ -109,3 +109,42 @@ fn a_file_that_is_not_utf8_names_the_line_and_the_fix() {
 fn durations_beyond_a_year_are_refused() {
     check("endless-durations");
 }
+
+/// Guard gains below zero, a tolerance that would waste the array, `sunspec: false` on a
+/// limit, and a safe limit above the export limit.
+#[test]
+fn guard_settings_out_of_range_are_refused() {
+    check("guard-out-of-range");
+}
+
+/// A safe limit that lets a no-export site export while its meter is lost: the site
+/// loads, with a warning at the safe limit.
+#[test]
+fn a_safe_limit_above_the_export_limit_is_warned_about() {
+    let yaml = "
+site: { name: Open House, timezone: Europe/Lisbon, export: forbidden }
+devices:
+  meter:    { modbus_tcp: 127.0.0.1:5020, unit: 1 }
+  inverter: { modbus_tcp: 127.0.0.1:5020, unit: 2 }
+points:
+  grid: { device: meter, register: 0, type: i16, unit: W }
+inverter:
+  rated: 5kW
+  limit: { device: inverter, register: 10 }
+  safe_limit: 5kW
+loads: []
+";
+    let loaded = spillway::config::load_str("open.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let shown = spillway::diag::render("open.yaml", yaml, &loaded.warnings, false);
+    assert!(shown.contains("[C0262] Warning: the safe limit is above the export limit"), "{shown}");
+    assert!(shown.contains("11 │   safe_limit: 5kW"), "{shown}");
+    // At or below the limit, nothing to say.
+    let quiet = spillway::config::load_str("ok.yaml", &yaml.replace("safe_limit: 5kW", "safe_limit: 0W")).unwrap();
+    assert!(quiet.warnings.iter().all(|w| w.code != "C0262"));
+}
+
+/// Off-grid levels outside what they can mean.
+#[test]
+fn off_grid_settings_out_of_range_are_refused() {
+    check("off-grid-out-of-range");
+}

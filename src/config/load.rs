@@ -256,7 +256,7 @@ impl Builder<'_, '_> {
             slots,
             mqtt,
         };
-        self.site_checks(&site, &header.spans, inverter_node.is_some());
+        self.site_checks(&site, &header.spans, inverter_node);
         Some(site)
     }
 
@@ -413,9 +413,19 @@ impl Builder<'_, '_> {
         let mut m = MapReader::new(node, "the `guard` section", self.diags)?;
         let mut ok = true;
         if let Some(n) = m.get("tolerance") {
-            ok &= values::quantity(n, Dimension::Power, "the guard tolerance", self.diags)
-                .map(|v| g.tolerance = Power(v))
-                .is_some();
+            // The least import a no-export site is held at is the tolerance, and limit
+            // changes under half of it are not written: a large one wastes the array.
+            ok &= values::quantity_in(
+                n,
+                Dimension::Power,
+                (0.0, 250.0),
+                "the guard tolerance",
+                "0 W and 250 W",
+                "it is meter noise, and the least import a no-export site is held at; to allow some export, set `export:` to a power",
+                self.diags,
+            )
+            .map(|v| g.tolerance = Power(v))
+            .is_some();
         }
         if let Some(n) = m.get("deadline") {
             ok &= values::duration(n, "the guard deadline", self.diags).map(|v| g.deadline = v).is_some();
@@ -425,11 +435,17 @@ impl Builder<'_, '_> {
                 .map(|v| g.release_rate = Power(v))
                 .is_some();
         }
+        // A negative gain turns the loop's correction round: it would chase export.
+        let gain_note = "a negative gain drives the loads the wrong way; 0 turns that term off";
         if let Some(n) = m.get("kp") {
-            ok &= values::number(n, "kp", self.diags).map(|v| g.kp = v).is_some();
+            ok &= values::quantity_in(n, Dimension::Scalar, (0.0, 100.0), "kp", "0 and 100", gain_note, self.diags)
+                .map(|v| g.kp = v)
+                .is_some();
         }
         if let Some(n) = m.get("ki") {
-            ok &= values::number(n, "ki", self.diags).map(|v| g.ki = v).is_some();
+            ok &= values::quantity_in(n, Dimension::Scalar, (0.0, 100.0), "ki", "0 and 100", gain_note, self.diags)
+                .map(|v| g.ki = v)
+                .is_some();
         }
         m.finish(self.diags);
         ok.then_some(g)
@@ -464,18 +480,39 @@ impl Builder<'_, '_> {
         let float_voltage = m
             .require("float_voltage", self.diags)
             .and_then(|n| values::positive(n, Dimension::Voltage, "the float voltage", self.diags));
+        let at_least_zero = |n: &Node, dimension, what: &str, diags: &mut super::yaml::Diagnostics| {
+            let range = if dimension == Dimension::Voltage { "0 V and 1000 V" } else { "0 W and 1 MW" };
+            let max = if dimension == Dimension::Voltage { 1000.0 } else { 1e6 };
+            values::quantity_in(
+                n,
+                dimension,
+                (0.0, max),
+                what,
+                range,
+                "a negative value turns its meaning round",
+                diags,
+            )
+        };
         let hysteresis = m
             .get("float_hysteresis")
-            .map_or(Some(0.8), |n| values::quantity(n, Dimension::Voltage, "the float hysteresis", self.diags));
-        let full_soc = m
-            .get("full_soc")
-            .map_or(Some(98.0), |n| values::quantity(n, Dimension::Ratio, "the full state of charge", self.diags));
+            .map_or(Some(0.8), |n| at_least_zero(n, Dimension::Voltage, "the float hysteresis", self.diags));
+        let full_soc = m.get("full_soc").map_or(Some(98.0), |n| {
+            values::quantity_in(
+                n,
+                Dimension::Ratio,
+                (0.0, 100.0),
+                "the full state of charge",
+                "0 % and 100 %",
+                "a state of charge is a percentage of the capacity",
+                self.diags,
+            )
+        });
         let acceptance = m
             .get("charge_acceptance")
-            .map_or(Some(2000.0), |n| values::quantity(n, Dimension::Power, "the charge acceptance", self.diags));
+            .map_or(Some(2000.0), |n| at_least_zero(n, Dimension::Power, "the charge acceptance", self.diags));
         let headroom = m
             .get("float_headroom")
-            .map_or(Some(500.0), |n| values::quantity(n, Dimension::Power, "the float headroom", self.diags));
+            .map_or(Some(500.0), |n| at_least_zero(n, Dimension::Power, "the float headroom", self.diags));
         m.finish(self.diags);
         Some(OffGridSettings {
             float_voltage: Voltage(float_voltage?),
@@ -1763,8 +1800,18 @@ impl Builder<'_, '_> {
             Some(n) if matches!(&n.value, Value::Map(e) if e.iter().any(|(k, _)| k.name == "sunspec")) => {
                 let mut lm = MapReader::new(n, "the inverter limit", self.diags)?;
                 let dev = lm.require("device", self.diags).and_then(|d| self.device_ref(d, devices));
-                let _ = lm.get("sunspec");
+                let marked =
+                    lm.get("sunspec").and_then(|s| values::boolean(s, "`sunspec`", self.diags).map(|b| (b, s)));
                 lm.finish(self.diags);
+                if let Some((false, s)) = marked {
+                    self.diags.error(
+                        "C0244",
+                        "`sunspec: false` in the limit: a register limit names its register instead",
+                        s.span.clone(),
+                        "write `limit: {device: NAME, register: N}`, or `sunspec: true`",
+                    );
+                    return None;
+                }
                 let (id, d) = dev?;
                 if !d.sunspec {
                     self.diags.error(
@@ -1914,7 +1961,8 @@ impl Builder<'_, '_> {
         Some(Obligation::Cycle { target: Temperature(target), hold, every, grid_window })
     }
 
-    fn site_checks(&mut self, site: &Site, spans: &HeaderSpans, inverter_written: bool) {
+    fn site_checks(&mut self, site: &Site, spans: &HeaderSpans, inverter_node: Option<&Node>) {
+        let inverter_written = inverter_node.is_some();
         let site_span = spans.site.clone();
         match &site.connection {
             Connection::Grid { export, backup } => {
@@ -1937,6 +1985,28 @@ impl Builder<'_, '_> {
                         Diagnostic::warning("C0254", "export is limited but the inverter cannot be curtailed", spans.export.clone().unwrap_or(site_span.clone()))
                             .with_label("only the loads can hold the limit")
                             .with_note("add an `inverter:` section with a power-limit actuator, or the limit will be broken whenever the loads are full"),
+                    );
+                }
+                // The safe limit is what the inverter holds while the meter is lost: above
+                // the export limit, a silent meter means export past it.
+                if let (Some(limit), Some(inv)) = (export.limit(), &site.inverter)
+                    && inv.safe_limit.0 > limit.0.max(0.0)
+                {
+                    let span = inverter_node
+                        .and_then(|n| match &n.value {
+                            Value::Map(entries) => {
+                                entries.iter().find(|(k, _)| k.name == "safe_limit").map(|(_, v)| v.span.clone())
+                            }
+                            _ => None,
+                        })
+                        .unwrap_or(site_span.clone());
+                    self.diags.push(
+                        Diagnostic::warning("C0262", "the safe limit is above the export limit", span)
+                            .with_label(format!("{} while the meter is lost", inv.safe_limit))
+                            .with_note(format!(
+                                "with the meter silent the site may export up to {} less the house load; grid codes usually want the inverter at the export limit or below then ({})",
+                                inv.safe_limit, limit
+                            )),
                     );
                 }
                 if backup.is_some() && site.roles.grid_available.is_none() {

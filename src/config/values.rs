@@ -238,6 +238,31 @@ pub fn integer(node: &Node, min: i64, max: i64, what: &str, diags: &mut Diagnost
     }
 }
 
+/// Reads a quantity of `dimension` that must lie in `[min, max]` (in the dimension's
+/// base unit: W, V, %, s …). `range` says the bounds in the user's words ("0 W to 250 W"),
+/// `why` what they protect.
+#[allow(clippy::too_many_arguments)]
+pub fn quantity_in(
+    node: &Node,
+    dimension: Dimension,
+    (min, max): (f64, f64),
+    what: &str,
+    range: &str,
+    why: &str,
+    diags: &mut Diagnostics,
+) -> Option<f64> {
+    let v = quantity(node, dimension, what, diags)?;
+    if (min..=max).contains(&v) {
+        return Some(v);
+    }
+    diags.push(
+        Diagnostic::error("C0106", format!("{what} must lie between {range}"), node.span.clone())
+            .with_label("out of range")
+            .with_note(why.to_owned()),
+    );
+    None
+}
+
 /// Reads a plain number (no unit).
 pub fn number(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<f64> {
     quantity(node, Dimension::Scalar, what, diags)

@@ -236,8 +236,12 @@ impl Guard {
         self.limit = match next {
             Some(l) if l >= inv.rated => None,
             // Changes within half the tolerance are noise: keeping the limit saves the
-            // inverter a write and the loop a wobble.
-            Some(l) if before.is_some_and(|b| (l - b).abs() < tolerance * 0.5) => before,
+            // inverter a write and the loop a wobble. Never wider than half a second's
+            // release, or a slow release would be swallowed for good and the limit
+            // never climb back.
+            Some(l) if before.is_some_and(|b| (l - b).abs() < (tolerance * 0.5).min(site.guard.release_rate * 0.5)) => {
+                before
+            }
             Some(l) => Some(l.clamp(Power::ZERO, inv.rated)),
             None => None,
         };

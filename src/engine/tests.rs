@@ -423,6 +423,28 @@ fn curtailment_is_released_gradually_once_import_returns() {
     assert!(second.0 > first.0 && second.0 - first.0 <= 200.0 + 1e-9, "{first} → {second}: at most the release rate");
 }
 
+/// A slow release with the widest tolerance: each second's step is smaller than half
+/// the tolerance, which once kept every release from being written, so the limit never
+/// climbed back and the array stayed curtailed all day.
+#[test]
+fn a_slow_release_is_not_swallowed_by_a_wide_tolerance() {
+    let header = "  export: forbidden\n  import_target: 40W\n  guard: { tolerance: 250W, release_rate: 20W }";
+    let mut h = Harness::new(&site(header, TWO_LOADS));
+    h.set("pv", 4000.0);
+    h.set("grid", -1500.0);
+    let first = h.tick().inverter_limit.unwrap();
+    // The inverter obeys; the house now imports well above the target.
+    h.set("pv", first.0);
+    h.set("grid", 1500.0);
+    let mut limit = first;
+    for _ in 0..30 {
+        let d = h.tick();
+        limit = d.inverter_limit.unwrap_or(Power(4000.0));
+        h.set("pv", limit.0);
+    }
+    assert!(limit.0 >= first.0 + 300.0, "30 s at 20 W/s gives back about 600 W: {first} → {limit}");
+}
+
 /// The live set-up that once made the guard oscillate: ticks every second, the PV
 /// polled half a second before each tick, and a meter whose reading describes the site
 /// 1.5 s before it arrives. A limit raise shows in the next PV sample and, already, in
