@@ -148,3 +148,9 @@ loads: []
 fn off_grid_settings_out_of_range_are_refused() {
     check("off-grid-out-of-range");
 }
+
+/// `by: "24:00"` is refused with the fix; `24:00` ending a window is accepted.
+#[test]
+fn a_deadline_at_24_00_is_refused_and_a_window_to_24_00_is_not() {
+    check("midnight-deadline");
+}

@@ -464,6 +464,47 @@ fn every_example_passes_its_own_expectations() {
     }
 }
 
+/// A check time the run never reaches is no pass, and a rule that is unknown (a window
+/// still filling) neither holds nor breaks an `always` check — but one unknown all day
+/// fails, since nothing was checked.
+#[test]
+fn unreached_check_times_and_rules_unknown_all_day_fail_while_a_filling_window_does_not() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let extra = r#"  checks:
+    - { name: late check, at: "23:59:59", check: "pool_pump.runtime_today >= 0s", days: [clear-june] }
+    - { name: filling window, always: "avg(export, 1min) <= 500W", grace: 10s, days: [clear-june] }
+    - { name: never known, always: "avg(export, 2d) <= 100W", days: [clear-june] }
+"#;
+    let changed = text.replacen("  checks:\n", extra, 1);
+    assert_ne!(changed, text, "the example's checks moved");
+    let dir = std::env::temp_dir().join(format!("spillway-unreached-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let file = dir.join("late.yaml");
+    std::fs::write(&file, changed).unwrap();
+    let out = spillway(["test", file.to_str().unwrap(), "--step", "2s", "--report", "json"]);
+    let json: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap_or_else(|e| {
+        panic!("{e}: {}{}", String::from_utf8_lossy(&out.stdout), String::from_utf8_lossy(&out.stderr))
+    });
+    let verdict = |check: &str| {
+        json.as_array()
+            .unwrap()
+            .iter()
+            .find(|v| v["check"] == check)
+            .unwrap_or_else(|| panic!("{check}: {json}"))
+            .clone()
+    };
+    let late = verdict("late check");
+    assert_eq!(late["passed"], false, "{late}");
+    assert!(late["detail"].as_str().unwrap().contains("never checked: no tick at or after 23:59:59"), "{late}");
+    let filling = verdict("filling window");
+    assert_eq!(filling["passed"], true, "the first minute's unknown is not a failure: {filling}");
+    let never = verdict("never known");
+    assert_eq!(never["passed"], false, "{never}");
+    assert!(never["detail"].as_str().unwrap().contains("unknown all day"), "{never}");
+    assert_eq!(out.status.code(), Some(1));
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
 /// A failing expectation makes `spillway test` exit 1 and name the failing moment.
 #[test]
 fn a_failing_expectation_exits_one_with_the_moment_and_the_reason() {

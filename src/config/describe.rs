@@ -165,7 +165,13 @@ pub fn describe(site: &Site) -> String {
         }
         for ob in &l.obligations {
             let window = ob.grid_window().map_or(" (from surplus only)".to_owned(), |w| {
-                format!(" (grid allowed {}–{})", w.start.format("%H:%M"), w.end.format("%H:%M"))
+                // A window ends at midnight as 24:00, the way it was written.
+                let end = if w.end == chrono::NaiveTime::MIN {
+                    "24:00".to_owned()
+                } else {
+                    w.end.format("%H:%M").to_string()
+                };
+                format!(" (grid allowed {}–{end})", w.start.format("%H:%M"))
             });
             let temp = match (ob, l.temperature) {
                 (Obligation::RunDaily { .. }, _) | (_, None) => String::new(),

@@ -642,12 +642,14 @@ pub struct Window {
 }
 
 impl Window {
-    /// Whether a time of day (seconds since local midnight) is inside.
+    /// Whether a time of day (seconds since local midnight) is inside. A window whose
+    /// start and end coincide is the whole day (`00:00..24:00`; the loader refuses any
+    /// other such window as empty).
     pub fn contains(&self, seconds_of_day: u32) -> bool {
         use chrono::Timelike;
         let s = self.start.num_seconds_from_midnight();
         let e = self.end.num_seconds_from_midnight();
-        if s <= e { (s..e).contains(&seconds_of_day) } else { seconds_of_day >= s || seconds_of_day < e }
+        if s < e { (s..e).contains(&seconds_of_day) } else { seconds_of_day >= s || seconds_of_day < e }
     }
 }
 
@@ -854,3 +856,26 @@ pub const LOAD_ATTRIBUTES: &[(&str, Option<Dimension>, &str)] = &[
     ("energy_today", Some(Dimension::Energy), "energy drawn since local midnight"),
     ("since_change", Some(Dimension::Duration), "time since it last switched"),
 ];
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn window(a: (u32, u32), b: (u32, u32)) -> Window {
+        let t = |(h, m)| chrono::NaiveTime::from_hms_opt(h, m, 0).unwrap();
+        Window { start: t(a), end: t(b) }
+    }
+
+    #[test]
+    fn windows_ending_at_midnight_and_the_whole_day() {
+        // "20:00..24:00": 24:00 is read as 00:00, so the window wraps to the end of the day.
+        let evening = window((20, 0), (0, 0));
+        assert!(evening.contains(20 * 3600) && evening.contains(86_399) && !evening.contains(0));
+        // "00:00..24:00": start and end coincide, the whole day.
+        let day = window((0, 0), (0, 0));
+        assert!(day.contains(0) && day.contains(43_200) && day.contains(86_399));
+        // An ordinary window is half-open.
+        let w = window((15, 0), (17, 0));
+        assert!(w.contains(15 * 3600) && !w.contains(17 * 3600));
+    }
+}

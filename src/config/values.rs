@@ -149,8 +149,18 @@ pub fn parse_time_of_day(text: &str) -> Option<NaiveTime> {
     NaiveTime::parse_from_str(text, "%H:%M").or_else(|_| NaiveTime::parse_from_str(text, "%H:%M:%S")).ok()
 }
 
-/// Reads a time of day.
+/// Reads a time of day (an instant: a deadline, a moment to check).
 pub fn time_of_day(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<NaiveTime> {
+    // As an instant, 24:00 would be read as 00:00, the start of the day: the opposite
+    // of what it says. (As a window's end it is fine, and means the end of the day.)
+    if matches!(&node.value, Value::Str(s) if s.trim() == "24:00") {
+        diags.push(
+            Diagnostic::error("C0306", format!("{what} cannot be 24:00"), node.span.clone())
+                .with_label("this would be midnight at the start of the day")
+                .with_note("write \"23:59\" for the end of the day"),
+        );
+        return None;
+    }
     let parsed = match &node.value {
         Value::Str(s) => parse_time_of_day(s),
         _ => None,
@@ -167,13 +177,16 @@ pub fn time_of_day(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<N
 /// Reads a window `HH:MM..HH:MM` (half-open; wraps over midnight if the start is later).
 pub fn window(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<Window> {
     let parsed = match &node.value {
-        Value::Str(s) => s
-            .split_once("..")
-            .and_then(|(a, b)| Some(Window { start: parse_time_of_day(a)?, end: parse_time_of_day(b)? })),
+        Value::Str(s) => s.split_once("..").and_then(|(a, b)| {
+            let w = Window { start: parse_time_of_day(a)?, end: parse_time_of_day(b)? };
+            // `00:00..24:00` is the whole day (a window whose start and end coincide).
+            Some((w, w.start == NaiveTime::MIN && b.trim() == "24:00"))
+        }),
         _ => None,
     };
     match parsed {
-        Some(w) if w.start == w.end => {
+        Some((w, true)) => Some(w),
+        Some((w, false)) if w.start == w.end => {
             diags.error(
                 "C0307",
                 format!("{what} is empty: it starts and ends at the same time"),
@@ -182,7 +195,7 @@ pub fn window(node: &Node, what: &str, diags: &mut Diagnostics) -> Option<Window
             );
             None
         }
-        Some(w) => Some(w),
+        Some((w, false)) => Some(w),
         None => {
             diags.push(
                 Diagnostic::error(

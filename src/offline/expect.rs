@@ -43,7 +43,7 @@ use crate::config::values;
 use crate::config::yaml::{Diagnostics, MapReader, Node, Value};
 use crate::diag::Diagnostic;
 use crate::engine::Engine;
-use crate::rules::{self, Rule, RuleState};
+use crate::rules::{self, Rule, RuleState, Truth};
 use crate::units::Timestamp;
 
 /// A named simulated day.
@@ -286,6 +286,8 @@ struct Watch {
     false_since: Option<Timestamp>,
     failed: Option<(Timestamp, String)>,
     done_today: bool,
+    /// An `always` rule was true or false at least once (not unknown all day).
+    known: bool,
     recent: VecDeque<Timestamp>,
 }
 
@@ -323,6 +325,7 @@ pub fn run(
                 false_since: None,
                 failed: None,
                 done_today: false,
+                known: false,
                 recent: VecDeque::new(),
             })
             .collect();
@@ -337,14 +340,23 @@ pub fn run(
                 match &c.kind {
                     CheckKind::Always { rule, grace } => {
                         let Some(state) = w.state.as_mut() else { continue };
-                        if rule.eval(&input, state).is_true() {
-                            w.false_since = None;
-                        } else {
-                            let since = *w.false_since.get_or_insert(input.now);
-                            if input.now.since(since) >= *grace {
-                                let why = format!("{} — {}", rule.explain(&input, state), reasons(engine, site));
-                                w.failed = Some((since, why));
+                        match rule.eval(&input, state) {
+                            Truth::True => {
+                                w.known = true;
+                                w.false_since = None;
                             }
+                            Truth::False => {
+                                w.known = true;
+                                let since = *w.false_since.get_or_insert(input.now);
+                                if input.now.since(since) >= *grace {
+                                    let why = format!("{} — {}", rule.explain(&input, state), reasons(engine, site));
+                                    w.failed = Some((since, why));
+                                }
+                            }
+                            // Not yet known (a window still filling, a stale point): it
+                            // neither holds nor breaks the rule. A rule never known all
+                            // day fails at the end.
+                            Truth::Unknown => {}
                         }
                     }
                     CheckKind::At { seconds_of_day, rule } => {
@@ -421,6 +433,22 @@ pub fn run(
                             crate::units::format_duration(*max)
                         ),
                     )
+                }
+                // A check time after the day's last tick (a long `--step`) is never
+                // reached: that is no pass.
+                CheckKind::At { seconds_of_day, .. } if w.failed.is_none() && !w.done_today => (
+                    false,
+                    None,
+                    format!(
+                        "never checked: no tick at or after {} before the day ended (a shorter --step reaches it)",
+                        {
+                            let t = *seconds_of_day;
+                            format!("{:02}:{:02}:{:02}", t / 3600, t / 60 % 60, t % 60)
+                        }
+                    ),
+                ),
+                CheckKind::Always { .. } if w.failed.is_none() && !w.known => {
+                    (false, None, "the rule was unknown all day (its signals never fresh)".to_owned())
                 }
                 _ => match &w.failed {
                     Some((t, why)) => (false, Some(local(*t)), why.clone()),
