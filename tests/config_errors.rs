@@ -154,3 +154,23 @@ fn off_grid_settings_out_of_range_are_refused() {
 fn a_deadline_at_24_00_is_refused_and_a_window_to_24_00_is_not() {
     check("midnight-deadline");
 }
+
+/// `start: false` parks a load: a warning that the start rule never fires, not the
+/// chatter error (a rule that never holds implies every stop rule).
+#[test]
+fn a_parked_load_gets_the_never_fires_warning_not_the_chatter_error() {
+    let yaml = "
+site: { name: Parked House, timezone: Europe/Lisbon }
+devices:
+  relays: { modbus_tcp: 127.0.0.1:5020, unit: 3 }
+loads:
+  - name: sauna
+    rated: 6kW
+    switch: { device: relays, coil: 0 }
+    start: false
+    stop: import > 300W
+";
+    let loaded = spillway::config::load_str("parked.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let codes: Vec<&str> = loaded.warnings.iter().map(|w| w.code).collect();
+    assert_eq!(codes, ["C0231"], "{codes:?}");
+}

@@ -1321,7 +1321,9 @@ impl Builder<'_, '_> {
         }
         // Hysteresis sanity: a stop rule that holds whenever the start rule holds makes the
         // load chatter; a start rule that can never hold leaves it off for ever.
+        // A start rule that can never hold implies anything; C0231 says what is wrong then.
         if let (Some(start), Some(stop)) = (&start, &stop)
+            && rules::satisfiable(&start.rule) != Some(false)
             && rules::implies(&start.rule, &stop.rule) == Some(true)
         {
             self.diags.push(
