@@ -505,6 +505,59 @@ fn unreached_check_times_and_rules_unknown_all_day_fail_while_a_filling_window_d
     let _ = std::fs::remove_dir_all(&dir);
 }
 
+/// Expectations that would be ignored in part are refused with their place: a key of
+/// another kind of check, a section that is not a list, an empty `days`, `per: 0s`, and
+/// two days or checks of one name.
+#[test]
+fn expectations_that_would_be_ignored_in_part_are_refused() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let cut = text.find("expect:").expect("the example has expectations");
+    let site = &text[..cut];
+    let codes = |expect: &str| -> Vec<&'static str> {
+        let loaded =
+            config::load_str("x.yaml", &format!("{site}{expect}")).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        match expect::read(&loaded) {
+            Ok(_) => Vec::new(),
+            Err(diags) => diags.iter().map(|d| d.code).collect(),
+        }
+    };
+    let day = "  days:\n    - { name: d, weather: clear, date: 2026-06-21 }\n";
+    assert_eq!(
+        codes(&format!(
+            "expect:\n{day}  checks:\n    - {{ name: a, always: export <= 200W, check: tank_temp >= 99°C }}\n"
+        )),
+        ["C0607"]
+    );
+    assert_eq!(
+        codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, always: export <= 200W, per: 1h }}\n")),
+        ["C0607"]
+    );
+    assert_eq!(
+        codes(&format!(
+            "expect:\n{day}  checks:\n    - {{ name: a, at: \"17:00\", check: tank_temp >= 50°C, grace: 5s }}\n"
+        )),
+        ["C0607"]
+    );
+    assert_eq!(
+        codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, switchings: pool_pump, per: 0s }}\n")),
+        ["C0607"]
+    );
+    assert_eq!(
+        codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, obligations_met: true, days: [] }}\n")),
+        ["C0606"]
+    );
+    assert_eq!(codes(&format!("expect:\n{day}  checks:\n    name: a\n    obligations_met: true\n")), ["C0608"]);
+    assert_eq!(
+        codes(&format!(
+            "expect:\n{day}{}  checks:\n    - {{ name: a, obligations_met: true }}\n    - {{ name: a, export_over_limit: 1min }}\n",
+            &day[8..]
+        )),
+        ["C0609", "C0609"]
+    );
+    // The example's own expectations are fine.
+    assert!(codes(&text[cut..]).is_empty());
+}
+
 /// A failing expectation makes `spillway test` exit 1 and name the failing moment.
 #[test]
 fn a_failing_expectation_exits_one_with_the_moment_and_the_reason() {

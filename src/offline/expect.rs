@@ -122,9 +122,29 @@ pub fn read(loaded: &Loaded) -> Result<Expectations, Vec<Diagnostic>> {
         let days = m.get("days");
         let checks = m.get("checks");
         m.finish(&mut d);
+        // A mapping or a word where a list belongs would otherwise be skipped in silence.
+        for (node, what, example) in [
+            (days, "`expect.days`", "- { name: clear-june, weather: clear, date: 2026-06-21 }"),
+            (checks, "`expect.checks`", "- { name: no export, always: export <= 200W }"),
+        ] {
+            if let Some(n) = node
+                && !matches!(n.value, Value::Seq(_))
+            {
+                d.error("C0608", format!("{what} is a list"), n.span.clone(), format!("one item per line: {example}"));
+            }
+        }
         if let Some(Value::Seq(items)) = days.map(|n| &n.value) {
             for item in items {
                 if let Some(day) = read_day(item, &mut d) {
+                    if out.days.iter().any(|o| o.name == day.name) {
+                        d.error(
+                            "C0609",
+                            format!("two test days are called \"{}\"", day.name),
+                            item.span.clone(),
+                            "give each day its own name",
+                        );
+                        continue;
+                    }
                     out.days.push(day);
                 }
             }
@@ -132,6 +152,15 @@ pub fn read(loaded: &Loaded) -> Result<Expectations, Vec<Diagnostic>> {
         if let Some(Value::Seq(items)) = checks.map(|n| &n.value) {
             for item in items {
                 if let Some(c) = read_check(item, &loaded.site, text, &out.days, &mut d) {
+                    if out.checks.iter().any(|o| o.name == c.name) {
+                        d.error(
+                            "C0609",
+                            format!("two checks are called \"{}\"", c.name),
+                            item.span.clone(),
+                            "give each check its own name",
+                        );
+                        continue;
+                    }
                     out.checks.push(c);
                 }
             }
@@ -207,6 +236,34 @@ fn read_check(node: &Node, site: &Site, text: &str, days: &[TestDay], d: &mut Di
         );
         return None;
     }
+    // A key of another kind of check would be ignored: say so instead.
+    let mut misplaced = false;
+    for (key, node, belongs) in [
+        ("grace", grace, always.is_some()),
+        ("check", check, at.is_some()),
+        ("at_most", at_most, switchings.is_some()),
+        ("per", per, switchings.is_some()),
+    ] {
+        if let Some(n) = node
+            && !belongs
+        {
+            let owner = match key {
+                "grace" => "`always`",
+                "check" => "`at`",
+                _ => "`switchings`",
+            };
+            d.error(
+                "C0607",
+                format!("`{key}` belongs to an {owner} check"),
+                n.span.clone(),
+                "remove it, or make the check that kind",
+            );
+            misplaced = true;
+        }
+    }
+    if misplaced {
+        return None;
+    }
     let kind = if let Some(n) = always {
         let grace = match grace {
             Some(g) => values::duration(g, "the grace", d)?,
@@ -228,6 +285,11 @@ fn read_check(node: &Node, site: &Site, text: &str, days: &[TestDay], d: &mut Di
         };
         let at_most = at_most.map_or(Some(4), |n| values::integer(n, 0, 100_000, "`at_most`", d).map(|v| v as u32))?;
         let per = per.map_or(Some(Duration::from_secs(3600)), |n| values::duration(n, "`per`", d))?;
+        if per.is_zero() {
+            let at = span.clone();
+            d.error("C0607", "`per` of 0 s counts nothing, so the check could never fail", at, "e.g. `per: 1h`");
+            return None;
+        }
         CheckKind::Switchings { load: id, at_most, per }
     } else if let Some(n) = obligations {
         if !values::boolean(n, "`obligations_met`", d)? {
@@ -246,6 +308,12 @@ fn read_check(node: &Node, site: &Site, text: &str, days: &[TestDay], d: &mut Di
     let mut names = Vec::new();
     if let Some(n) = days_node {
         match &n.value {
+            Value::Seq(items) if items.is_empty() => d.error(
+                "C0606",
+                "an empty `days` list",
+                n.span.clone(),
+                "remove `days` to run the check on every test day, or name the days",
+            ),
             Value::Seq(items) => {
                 for i in items {
                     let Some(t) = values::text(i, "a day's name", d) else { continue };
