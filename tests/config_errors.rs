@@ -174,3 +174,9 @@ loads:
     let codes: Vec<&str> = loaded.warnings.iter().map(|w| w.code).collect();
     assert_eq!(codes, ["C0231"], "{codes:?}");
 }
+
+/// A point or load named like a keyword or a weekday could never appear in a rule.
+#[test]
+fn names_taken_by_the_rule_language_are_refused() {
+    check("reserved-names");
+}

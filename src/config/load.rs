@@ -750,6 +750,14 @@ impl Builder<'_, '_> {
                 );
                 continue;
             }
+            if crate::rules::is_reserved_word(&key.name) {
+                self.diags.push(
+                    Diagnostic::error("C0105", format!("point name \"{}\" is a word of the rule language", key.name), key.span.clone())
+                        .with_label("a rule could never name it")
+                        .with_note("`and`, `or`, `not`, `for`, `in`, `true`, `false` and the weekdays `mon` … `sun` are taken: pick another name"),
+                );
+                continue;
+            }
             if SITE_SIGNALS.iter().any(|(n, _, _)| *n == key.name) || key.name == "clock" || key.name == "weekday" {
                 self.diags.error(
                     "C0214",

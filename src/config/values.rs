@@ -304,7 +304,14 @@ pub fn choice<'c>(node: &Node, choices: &[&'c str], what: &str, diags: &mut Diag
 /// Reads a name (`[a-z_][a-z0-9_]*`): load, point and device names appear in rules.
 pub fn name<'n>(node: &'n Node, what: &str, diags: &mut Diagnostics) -> Option<&'n str> {
     let s = text(node, what, diags)?;
-    if is_name(s) {
+    if is_name(s) && crate::rules::is_reserved_word(s) {
+        diags.push(
+            Diagnostic::error("C0105", format!("{what} \"{s}\" is a word of the rule language"), node.span.clone())
+                .with_label("a rule could never name it")
+                .with_note("`and`, `or`, `not`, `for`, `in`, `true`, `false` and the weekdays `mon` … `sun` are taken: pick another name"),
+        );
+        None
+    } else if is_name(s) {
         Some(s)
     } else {
         diags.push(

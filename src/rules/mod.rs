@@ -33,6 +33,12 @@ mod window;
 mod tests;
 
 pub use analysis::{implies, satisfiable};
+
+/// Whether a word is taken by the rule language itself (`and`, `in`, `true`, a weekday
+/// such as `sat`), so a signal of that name could never be written in a rule.
+pub fn is_reserved_word(s: &str) -> bool {
+    lexer::KEYWORDS.contains(&s) || lexer::WEEKDAYS.contains(&s)
+}
 pub use diagnostic::to_diagnostic;
 pub use program::RuleState;
 
