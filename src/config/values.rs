@@ -61,7 +61,7 @@ pub fn quantity(node: &Node, dimension: Dimension, what: &str, diags: &mut Diagn
             Err(UnitError::UnknownUnit(u)) => {
                 let mut d = Diagnostic::error("C0301", format!("unknown unit \"{u}\" in {what}"), node.span.clone())
                     .with_label(expected());
-                if let Some(s) = did_you_mean(&u, units::unit_symbols()) {
+                if let Some(s) = crate::rules::suggest_unit(&u) {
                     d = d.with_note(format!("did you mean \"{s}\"?"));
                 }
                 diags.push(d);
@@ -89,7 +89,9 @@ pub fn quantity(node: &Node, dimension: Dimension, what: &str, diags: &mut Diagn
         diags.push(
             Diagnostic::error("C0303", format!("{what} needs a unit"), node.span.clone())
                 .with_label(expected())
-                .with_note(format!("write it as `{}{}`", units::trim_number(value), dimension.base_unit())),
+                .with_note(crate::rules::unit_suggestion(value, dimension).unwrap_or_else(|| {
+                    format!("write it as `{}{}`", units::trim_number(value), dimension.base_unit())
+                })),
         );
     } else {
         diags.push(

@@ -398,7 +398,7 @@ fn unit_end(text: &str, start: usize) -> usize {
 
 /// A known unit close to `symbol`: case slips first, then common spellings, then
 /// edit distance.
-fn suggest_unit(symbol: &str) -> Option<&'static str> {
+pub(crate) fn suggest_unit(symbol: &str) -> Option<&'static str> {
     if let Some(s) = units::unit_symbols().find(|s| s.eq_ignore_ascii_case(symbol)) {
         return Some(s);
     }

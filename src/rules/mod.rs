@@ -34,6 +34,17 @@ mod tests;
 
 pub use analysis::{implies, satisfiable};
 
+/// The unit a mistyped symbol most likely means (`m` → `min`, `sec` → `s`, `kw` → `kW`),
+/// the same advice in site files as in rules.
+pub fn suggest_unit(symbol: &str) -> Option<&'static str> {
+    lexer::suggest_unit(symbol)
+}
+
+/// How to write a bare number as a quantity of `dimension` ("write 95%" for 0.95).
+pub fn unit_suggestion(value: f64, dimension: crate::units::Dimension) -> Option<String> {
+    format::unit_suggestion(value, dimension)
+}
+
 /// Whether a word is taken by the rule language itself (`and`, `in`, `true`, a weekday
 /// such as `sat`), so a signal of that name could never be written in a rule.
 pub fn is_reserved_word(s: &str) -> bool {
