@@ -180,3 +180,9 @@ loads:
 fn names_taken_by_the_rule_language_are_refused() {
     check("reserved-names");
 }
+
+/// An error on the second line of a folded rule is shown on that line, under its word.
+#[test]
+fn an_error_in_a_folded_rule_is_shown_where_it_is() {
+    check("folded-rule");
+}

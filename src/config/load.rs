@@ -1627,17 +1627,17 @@ impl Builder<'_, '_> {
 
     fn rule(&mut self, node: &Node, scope: &SiteScope, origin: &str) -> Option<RuleText> {
         let text = values::word(node, "a rule", self.diags)?;
-        let offset = yaml::locate_text(self.text, node, &text);
+        let map = yaml::map_text(self.text, node, &text);
         match rules::compile(&text, scope) {
             Ok(compiled) => {
                 for w in &compiled.warnings {
-                    self.diags.push(rules::to_diagnostic(w, offset));
+                    self.diags.push(rules::to_diagnostic_mapped(w, &map));
                 }
                 Some(RuleText { rule: compiled.rule, origin: origin.to_owned() })
             }
             Err(errors) => {
                 for e in &errors {
-                    self.diags.push(rules::to_diagnostic(e, offset));
+                    self.diags.push(rules::to_diagnostic_mapped(e, &map));
                 }
                 None
             }

@@ -413,6 +413,37 @@ pub fn locate_text(file: &str, node: &Node, needle: &str) -> usize {
     from
 }
 
+/// Where each byte of `needle` (the text of `node`'s scalar) sits in `file`: one offset
+/// per byte, and one for the end. A folded or multi-line scalar reads its line breaks as
+/// spaces, so a plain offset would put carets on later lines in the wrong place; this
+/// walks the file and skips the break and the indentation. Where the text cannot be
+/// followed (escapes in a quoted string) the offsets are those of [`locate_text`].
+pub fn map_text(file: &str, node: &Node, needle: &str) -> Vec<usize> {
+    let start = locate_text(file, node, needle);
+    let linear = || (0..=needle.len()).map(|i| start + i).collect::<Vec<_>>();
+    if file[start..].starts_with(needle) {
+        return linear();
+    }
+    let mut map = Vec::with_capacity(needle.len() + 1);
+    let mut j = start;
+    for ch in needle.chars() {
+        let at = j;
+        if ch.is_whitespace() {
+            // A folded break: the file has a newline and indentation (or just spaces).
+            while let Some(c) = file[j..].chars().next().filter(|c| c.is_whitespace()) {
+                j += c.len_utf8();
+            }
+        } else if file[j..].starts_with(ch) {
+            j += ch.len_utf8();
+        } else {
+            return linear();
+        }
+        map.extend(std::iter::repeat_n(at, ch.len_utf8()));
+    }
+    map.push(j);
+    map
+}
+
 fn floor_boundary(text: &str, mut i: usize) -> usize {
     while i > 0 && !text.is_char_boundary(i) {
         i -= 1;
@@ -476,5 +507,22 @@ mod tests {
         let Value::Map(m) = &node.value else { panic!() };
         assert_eq!(locate_text(text, &m[0].1, "x > 1W"), 4);
         assert_eq!(&text[locate_text(text, &m[1].1, "y < 2W\n")..][..6], "y < 2W");
+    }
+
+    /// A rule folded over lines reads its breaks as spaces; each of its bytes still maps
+    /// to its own place in the file, so a caret on the second line lands on its word.
+    #[test]
+    fn maps_a_folded_rule_back_onto_its_lines() {
+        for text in
+            ["start: >\n  surplus > 3kW\n  and tank_tmp < 60°C\n", "start: surplus > 3kW\n  and tank_tmp < 60°C\n"]
+        {
+            let node = parse(text).unwrap();
+            let Value::Map(m) = &node.value else { panic!() };
+            let Value::Str(rule) = &m[0].1.value else { panic!() };
+            let map = map_text(text, &m[0].1, rule);
+            assert_eq!(map.len(), rule.len() + 1);
+            let at = rule.find("tank_tmp").unwrap();
+            assert_eq!(&text[map[at]..map[at] + 8], "tank_tmp", "{text:?}");
+        }
     }
 }

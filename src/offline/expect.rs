@@ -198,13 +198,13 @@ fn read_day(node: &Node, d: &mut Diagnostics) -> Option<TestDay> {
 
 fn rule(node: &Node, site: &Site, text: &str, d: &mut Diagnostics) -> Option<Rule> {
     let src = values::word(node, "a rule", d)?;
-    let offset = crate::config::yaml::locate_text(text, node, &src);
+    let map = crate::config::yaml::map_text(text, node, &src);
     let scope = crate::config::load::site_scope(site);
     match rules::compile(&src, &scope) {
         Ok(c) => Some(c.rule),
         Err(errors) => {
             for e in &errors {
-                d.push(rules::to_diagnostic(e, offset));
+                d.push(rules::to_diagnostic_mapped(e, &map));
             }
             None
         }

@@ -58,7 +58,21 @@ pub(crate) fn unit_list() -> String {
 /// A rule diagnostic as a file diagnostic, its spans moved by `offset` bytes (where the
 /// rule text starts inside the file).
 pub fn to_diagnostic(d: &RuleDiagnostic, offset: usize) -> diag::Diagnostic {
-    let shift = |r: &Range<usize>| r.start + offset..r.end + offset;
+    to_diagnostic_with(d, |i| i + offset)
+}
+
+/// As [`to_diagnostic`], with `map` giving the file offset of each byte of the rule text
+/// (and of its end), as `config::yaml::map_text` makes for a multi-line rule.
+pub fn to_diagnostic_mapped(d: &RuleDiagnostic, map: &[usize]) -> diag::Diagnostic {
+    let last = map.last().copied().unwrap_or(0);
+    to_diagnostic_with(d, |i| map.get(i).copied().unwrap_or(last))
+}
+
+fn to_diagnostic_with(d: &RuleDiagnostic, at: impl Fn(usize) -> usize) -> diag::Diagnostic {
+    let shift = |r: &Range<usize>| {
+        let (s, e) = (at(r.start), at(r.end));
+        s..e.max(s)
+    };
     let mut out = match d.severity {
         Severity::Error => diag::Diagnostic::error(d.code, d.message.clone(), shift(&d.span)),
         Severity::Warning => diag::Diagnostic::warning(d.code, d.message.clone(), shift(&d.span)),

@@ -50,7 +50,7 @@ pub fn unit_suggestion(value: f64, dimension: crate::units::Dimension) -> Option
 pub fn is_reserved_word(s: &str) -> bool {
     lexer::KEYWORDS.contains(&s) || lexer::WEEKDAYS.contains(&s)
 }
-pub use diagnostic::to_diagnostic;
+pub use diagnostic::{to_diagnostic, to_diagnostic_mapped};
 pub use program::RuleState;
 
 use program::Program;
