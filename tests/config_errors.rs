@@ -186,3 +186,45 @@ fn names_taken_by_the_rule_language_are_refused() {
 fn an_error_in_a_folded_rule_is_shown_where_it_is() {
     check("folded-rule");
 }
+
+/// Polls and timeouts of no time, a limit re-written without pause, and an export limit
+/// without a unit.
+#[test]
+fn periods_of_no_time_and_a_bare_export_limit_are_refused() {
+    check("too-fast");
+}
+
+/// A limited-export site slower than ENA EREC G100 Issue 1's 5 s to act on a lost meter
+/// or an export excursion gets a warning naming both; `export: 0` is no export.
+#[test]
+fn settings_slower_than_g100_are_warned_about_and_export_zero_is_forbidden() {
+    let yaml = "
+site:
+  name: Slow House
+  timezone: Europe/Lisbon
+  export: 0
+  guard: { deadline: 1h }
+  failsafe: { stale_after: 1h }
+devices:
+  meter: { modbus_tcp: 127.0.0.1:5020, unit: 1 }
+points:
+  grid: { device: meter, register: 0, type: i16, unit: W }
+loads: []
+";
+    let loaded = spillway::config::load_str("slow.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    assert!(matches!(
+        loaded.site.connection,
+        spillway::config::model::Connection::Grid { export: spillway::config::model::ExportPolicy::Forbidden, .. }
+    ));
+    let shown = spillway::diag::render("slow.yaml", yaml, &loaded.warnings, false);
+    assert!(shown.contains("[C0263] Warning: slower than 5 s"), "{shown}");
+    assert!(shown.contains("a lost grid meter is noticed after 3601 s"), "{shown}");
+    assert!(shown.contains("escalated to the safe limit after 1 h"), "{shown}");
+    // The defaults are inside the 5 s.
+    let quick = spillway::config::load_str(
+        "ok.yaml",
+        &yaml.replace("  guard: { deadline: 1h }\n  failsafe: { stale_after: 1h }\n", ""),
+    )
+    .unwrap();
+    assert!(quick.warnings.iter().all(|w| w.code != "C0263"), "{:?}", quick.warnings);
+}

@@ -149,6 +149,10 @@ impl Scope for SiteScope {
 }
 
 const DEFAULT_POLL: Duration = Duration::from_secs(1);
+/// The shortest poll: a device asked without pause answers nothing else (and a poll of
+/// 0 s would spin a core).
+const MIN_POLL: Duration = Duration::from_millis(50);
+const POLL_WHY: &str = "a device polled without pause has no time for anything else; 100 ms is already fast";
 const DEFAULT_TIMEOUT: Duration = Duration::from_millis(500);
 /// Default age at which a point is stale. With the guard deadline below it keeps a
 /// failed scheme inside the 5 s of ENA EREC G100 Issue 1 (see `engine` tests).
@@ -374,19 +378,9 @@ impl Builder<'_, '_> {
         match &node.value {
             Value::Str(s) if s == "allowed" => Some(ExportPolicy::Allowed),
             Value::Str(s) if s == "forbidden" => Some(ExportPolicy::Forbidden),
-            Value::Str(s) if units::parse_quantity(s).is_ok() => {
-                let limit = values::quantity(node, Dimension::Power, "the export limit", self.diags)?;
-                if limit < 0.0 {
-                    self.diags.error(
-                        "C0207",
-                        "the export limit cannot be negative",
-                        node.span.clone(),
-                        "use `forbidden` for no export at all",
-                    );
-                    return None;
-                }
-                Some(if limit == 0.0 { ExportPolicy::Forbidden } else { ExportPolicy::Limited(Power(limit)) })
-            }
+            // A bare number: 0 is "no export" as in any unit; another number needs one.
+            Value::Str(s) if units::parse_quantity(s).is_ok() => self.export_limit(node),
+            Value::Int(_) | Value::Float(_) => self.export_limit(node),
             _ => {
                 self.diags.push(
                     Diagnostic::error(
@@ -399,6 +393,21 @@ impl Builder<'_, '_> {
                 None
             }
         }
+    }
+
+    /// A power limit on export; 0 (with or without a unit) is no export at all.
+    fn export_limit(&mut self, node: &Node) -> Option<ExportPolicy> {
+        let limit = values::quantity(node, Dimension::Power, "the export limit", self.diags)?;
+        if limit < 0.0 {
+            self.diags.error(
+                "C0207",
+                "the export limit cannot be negative",
+                node.span.clone(),
+                "use `forbidden` for no export at all",
+            );
+            return None;
+        }
+        Some(if limit == 0.0 { ExportPolicy::Forbidden } else { ExportPolicy::Limited(Power(limit)) })
     }
 
     fn guard(&mut self, node: Option<&Node>) -> Option<GuardSettings> {
@@ -646,9 +655,18 @@ impl Builder<'_, '_> {
         let rtu = m.get("modbus_rtu");
         let mqtt = m.get("mqtt");
         let unit = m.get("unit").map(|n| values::integer(n, 0, 255, "the Modbus unit id", self.diags).map(|u| u as u8));
-        let poll = m.get("poll").map_or(Some(DEFAULT_POLL), |n| values::duration(n, "the poll period", self.diags));
-        let timeout =
-            m.get("timeout").map_or(Some(DEFAULT_TIMEOUT), |n| values::duration(n, "the request timeout", self.diags));
+        let poll = m.get("poll").map_or(Some(DEFAULT_POLL), |n| {
+            values::duration_at_least(n, "the poll period", MIN_POLL, POLL_WHY, self.diags)
+        });
+        let timeout = m.get("timeout").map_or(Some(DEFAULT_TIMEOUT), |n| {
+            values::duration_at_least(
+                n,
+                "the request timeout",
+                Duration::from_millis(10),
+                "no device answers in no time: every request would fail",
+                self.diags,
+            )
+        });
         let sunspec = m.get("sunspec").map_or(Some(false), |n| values::boolean(n, "`sunspec`", self.diags));
         let span = m.span();
         m.finish(self.diags);
@@ -1026,7 +1044,7 @@ impl Builder<'_, '_> {
             PointRead::Modbus(ModbusRead { table, address, value_type, word_order, scale })
         };
         let poll = match poll {
-            Some(n) => values::duration(n, "the poll period", self.diags)?,
+            Some(n) => values::duration_at_least(n, "the poll period", MIN_POLL, POLL_WHY, self.diags)?,
             None => device.poll,
         };
         let stale_after = match stale {
@@ -1781,9 +1799,15 @@ impl Builder<'_, '_> {
             m.get("limit_unit").map_or(Some("%"), |n| values::choice(n, &["%", "W"], "the limit unit", self.diags));
         let safe_node = m.get("safe_limit");
         let safe = safe_node.map_or(Some(0.0), |n| values::quantity(n, Dimension::Power, "the safe limit", self.diags));
-        let refresh = m
-            .get("refresh")
-            .map_or(Some(Duration::from_secs(10)), |n| values::duration(n, "the refresh period", self.diags));
+        let refresh = m.get("refresh").map_or(Some(Duration::from_secs(10)), |n| {
+            values::duration_at_least(
+                n,
+                "the refresh period",
+                Duration::from_secs(1),
+                "the limit is re-written this often even when unchanged; more often only wears the inverter's memory",
+                self.diags,
+            )
+        });
         m.finish(self.diags);
         let limit = match limit_node {
             Some(n) if matches!(&n.value, Value::Str(s) if s == "sunspec") => {
@@ -1996,6 +2020,42 @@ impl Builder<'_, '_> {
                             .with_label("only the loads can hold the limit")
                             .with_note("add an `inverter:` section with a power-limit actuator, or the limit will be broken whenever the loads are full"),
                     );
+                }
+                // Grid codes bound how long export may outlast a fault: ENA EREC G100
+                // Issue 1 (Great Britain) allows 5 s for a lost meter or an export
+                // excursion. Slower settings may be right elsewhere: a warning, not an error.
+                if export.limit().is_some() {
+                    const G100: Duration = Duration::from_secs(5);
+                    let lost = site.roles.grid.map(|p| site.points[p.0].stale_after + site.tick);
+                    let slow: Vec<String> = [
+                        lost.filter(|d| *d > G100).map(|d| {
+                            format!(
+                                "a lost grid meter is noticed after {} (its stale_after + one tick)",
+                                units::format_duration(d)
+                            )
+                        }),
+                        (site.guard.deadline > G100).then(|| {
+                            format!(
+                                "export is escalated to the safe limit after {} (guard.deadline)",
+                                units::format_duration(site.guard.deadline)
+                            )
+                        }),
+                    ]
+                    .into_iter()
+                    .flatten()
+                    .collect();
+                    if !slow.is_empty() {
+                        let mut d = Diagnostic::warning(
+                            "C0263",
+                            "slower than 5 s to act on a fault of a limited-export site",
+                            spans.export.clone().unwrap_or(site_span.clone()),
+                        )
+                        .with_label("export is limited here");
+                        for s in slow {
+                            d = d.with_note(s);
+                        }
+                        self.diags.push(d.with_note("ENA EREC G100 (GB) allows 5 s; check what your grid code asks"));
+                    }
                 }
                 // The safe limit is what the inverter holds while the meter is lost: above
                 // the export limit, a silent meter means export past it.

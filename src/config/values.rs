@@ -253,6 +253,30 @@ pub fn integer(node: &Node, min: i64, max: i64, what: &str, diags: &mut Diagnost
     }
 }
 
+/// Reads a duration of at least `min` (a poll of 0 s would query a device without pause).
+pub fn duration_at_least(
+    node: &Node,
+    what: &str,
+    min: Duration,
+    why: &str,
+    diags: &mut Diagnostics,
+) -> Option<Duration> {
+    let d = duration(node, what, diags)?;
+    if d >= min {
+        return Some(d);
+    }
+    diags.push(
+        Diagnostic::error(
+            "C0106",
+            format!("{what} must be at least {}", crate::units::format_duration(min)),
+            node.span.clone(),
+        )
+        .with_label("too short")
+        .with_note(why.to_owned()),
+    );
+    None
+}
+
 /// Reads a quantity of `dimension` that must lie in `[min, max]` (in the dimension's
 /// base unit: W, V, %, s …). `range` says the bounds in the user's words ("0 W to 250 W"),
 /// `why` what they protect.
