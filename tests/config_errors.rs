@@ -228,3 +228,10 @@ loads: []
     .unwrap();
     assert!(quick.warnings.iter().all(|w| w.code != "C0263"), "{:?}", quick.warnings);
 }
+
+/// An ordinal sign typed for the degree sign, and an unquoted rule with a comma in a
+/// flow mapping, each get advice that names the slip.
+#[test]
+fn keyboard_slips_get_advice_that_names_them() {
+    check("keyboard-slips");
+}

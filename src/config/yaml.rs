@@ -379,7 +379,13 @@ impl<'n> MapReader<'n> {
             let mut d =
                 Diagnostic::error("C0005", format!("unknown key \"{}\" in {}", key.name, self.what), key.span.clone())
                     .with_label("not a key Spillway knows here");
+            // `{ always: avg(export, 1min) <= 100W }`: in a flow mapping the comma ends the
+            // value, and the rest reads as a key.
+            let looks_like_rule = key.name.contains(')') || key.name.contains(['<', '>', '=']);
             match did_you_mean(&key.name, self.known.iter().copied()) {
+                _ if looks_like_rule => {
+                    d = d.with_note("this looks like the rest of a rule: inside `{ … }` a comma ends the value, so quote the whole rule, e.g. `start: \"avg(surplus, 3min) > 1kW\"`")
+                }
                 Some(s) => d = d.with_note(format!("did you mean \"{s}\"?")),
                 None => {
                     let mut known = self.known.clone();

@@ -175,6 +175,9 @@ impl Lexer<'_, '_> {
                             d = d.note("write a leading zero: `0.5`");
                         } else if c == '"' || c == '\'' {
                             d = d.note("names are written without quotes");
+                        } else if c == 'º' || c == 'ª' {
+                            // The ordinal indicator sits where ° does on some keyboards.
+                            d = d.note("that is the ordinal sign `º`: write the degree sign, `60°C`, or `60degC`");
                         }
                         self.diags.push(d);
                         return false;
