@@ -235,3 +235,25 @@ loads: []
 fn keyboard_slips_get_advice_that_names_them() {
     check("keyboard-slips");
 }
+
+/// A cycle whose hold is longer than its grid window can only be completed from surplus.
+#[test]
+fn a_cycle_hold_longer_than_its_window_is_warned_about() {
+    let yaml = "
+site: { name: Cycle House, timezone: Europe/Lisbon }
+devices:
+  sensors: { modbus_tcp: 127.0.0.1:5020, unit: 4 }
+points:
+  tank_temp: { device: sensors, register: 1, unit: °C }
+loads:
+  - name: heater
+    rated: 3kW
+    switch: { device: sensors, coil: 0 }
+    temperature: tank_temp
+    obligations:
+      - { cycle: 60°C, hold: 5h, every: 7d, grid_window: \"11:00..11:30\" }
+";
+    let loaded = spillway::config::load_str("cycle.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let shown = spillway::diag::render("cycle.yaml", yaml, &loaded.warnings, false);
+    assert!(shown.contains("a hold of 5 h cannot fit inside a 30 min grid window"), "{shown}");
+}

@@ -1992,6 +1992,24 @@ impl Builder<'_, '_> {
             self.diags.error("C0252", "a cycle repeats at most hourly", span, "`every` is too short");
             return None;
         }
+        // The hold is counted inside the window: a longer one can only come from surplus.
+        if let Some(w) = grid_window
+            && hold > window_len(&w)
+        {
+            self.diags.push(
+                Diagnostic::warning(
+                    "C0250",
+                    format!(
+                        "{what}: a hold of {} cannot fit inside a {} grid window",
+                        units::format_duration(hold),
+                        units::format_duration(window_len(&w))
+                    ),
+                    span.clone(),
+                )
+                .with_label("longer than the window")
+                .with_note("on a day without sun the cycle will not be completed"),
+            );
+        }
         Some(Obligation::Cycle { target: Temperature(target), hold, every, grid_window })
     }
 
