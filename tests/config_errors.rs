@@ -257,3 +257,29 @@ loads:
     let shown = spillway::diag::render("cycle.yaml", yaml, &loaded.warnings, false);
     assert!(shown.contains("a hold of 5 h cannot fit inside a 30 min grid window"), "{shown}");
 }
+
+/// A temperature target above the inhibit threshold can never be met: a warning.
+#[test]
+fn a_target_the_inhibit_rule_forbids_is_warned_about() {
+    let yaml = "
+site: { name: Hot House, timezone: Europe/Lisbon }
+devices:
+  sensors: { modbus_tcp: 127.0.0.1:5020, unit: 4 }
+points:
+  tank_temp: { device: sensors, register: 1, unit: °C }
+loads:
+  - name: heater
+    rated: 3kW
+    switch: { device: sensors, coil: 0 }
+    temperature: tank_temp
+    inhibit: tank_temp >= 75°C
+    obligations:
+      - { reach: 80°C, by: \"17:00\", grid_window: \"14:00..17:00\" }
+";
+    let loaded = spillway::config::load_str("hot.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let shown = spillway::diag::render("hot.yaml", yaml, &loaded.warnings, false);
+    assert!(shown.contains("[C0264] Warning: load \"heater\": the inhibit rule stops the load before"), "{shown}");
+    // A target below the threshold is fine.
+    let ok = spillway::config::load_str("ok.yaml", &yaml.replace("reach: 80°C", "reach: 60°C")).unwrap();
+    assert!(ok.warnings.iter().all(|w| w.code != "C0264"), "{:?}", ok.warnings);
+}

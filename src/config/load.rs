@@ -1300,6 +1300,37 @@ impl Builder<'_, '_> {
         };
         let obligations =
             obligations_node.map(|n| self.obligations(n, temperature.is_some(), &what)).unwrap_or(Some(Vec::new()));
+        // A temperature target the inhibit rule forbids can never be met: the load is
+        // forced off before the water gets there (within the 1 K the target allows).
+        if let (Some(obs), Some(inh), Some(t), Some(n)) = (&obligations, &inhibit, temperature, obligations_node)
+            && let Some(point) = ctx.points.get(t.0)
+        {
+            for ob in obs {
+                let target = match ob {
+                    Obligation::ReachBy { target, .. } | Obligation::Cycle { target, .. } => target.0,
+                    Obligation::RunDaily { .. } => continue,
+                };
+                let reached = format!("{} >= {}°C", point.name, units::trim_number(target - 1.0));
+                let blocked =
+                    rules::compile(&reached, ctx.scope).is_ok_and(|r| rules::implies(&r.rule, &inh.rule) == Some(true));
+                if blocked {
+                    self.diags.push(
+                        Diagnostic::warning(
+                            "C0264",
+                            format!("{what}: the inhibit rule stops the load before `{}` can be met", ob.describe()),
+                            n.span.clone(),
+                        )
+                        .with_label("cannot be met")
+                        .with_note(format!(
+                            "inhibit: {}, true before {} is within 1 K of the target",
+                            inh.rule.describe(),
+                            point.name
+                        ))
+                        .with_note("lower the target, or raise the inhibit threshold above it"),
+                    );
+                }
+            }
+        }
         let min_on = min_on?;
         let min_off = min_off?;
         let day = Duration::from_secs(86_400);
