@@ -191,3 +191,43 @@ async fn the_shutdown_log_names_a_device_whose_safe_state_was_not_written() {
     assert!(line("inverter", "safe state written at shutdown").is_some(), "{text}");
     assert!(line("relays", "safe state written at shutdown").is_none(), "{text}");
 }
+
+/// SIGINT while a request to a slow inverter is in flight: that connection is spoilt by
+/// the cancellation, so the safe limit goes out on a fresh one — before, the link just
+/// ended, the inverter kept its limit and nothing in the log said so.
+#[tokio::test(start_paused = true)]
+async fn a_shutdown_in_the_middle_of_a_request_still_writes_the_safe_limit() {
+    let (plant, daemon) = running().await;
+    assert_ne!(plant.devices.holding(2, 10), Some(0), "the inverter is not at its safe limit before");
+    let (logs, _guard) = support::Logs::capture();
+    plant.devices.set_silent(true);
+    plant.devices.take_log();
+    // Wait until a request to the inverter hangs unanswered, then stop.
+    support::until("an inverter request in flight", || plant.devices.take_log().iter().any(|r| r.unit == 2)).await;
+    daemon.shutdown();
+    plant.devices.set_silent(false);
+    daemon.wait().await;
+    let text = logs.text();
+    assert!(
+        text.lines().any(|l| l.contains("safe state written at shutdown") && l.contains("device=inverter")),
+        "{text}"
+    );
+    assert_eq!(plant.devices.holding(2, 10), Some(0), "the safe limit (0 W) is written");
+}
+
+/// A safe state the device refuses (an exception response) is reported as NOT written.
+#[tokio::test(start_paused = true)]
+async fn a_safe_state_refused_at_shutdown_is_logged_as_not_written() {
+    let (plant, daemon) = running().await;
+    let (logs, _guard) = support::Logs::capture();
+    // The relay board refuses coil writes from now on (function 5, coil 0: the heater).
+    plant.devices.with(|s| s.exceptions.insert((5, 0), tokio_modbus::ExceptionCode::ServerDeviceFailure));
+    daemon.shutdown();
+    daemon.wait().await;
+    let text = logs.text();
+    let line = text
+        .lines()
+        .find(|l| l.contains("device=relays") && l.contains("at shutdown"))
+        .unwrap_or_else(|| panic!("{text}"));
+    assert!(line.contains("WARN") && line.contains("NOT written") && line.contains("refused"), "{line}");
+}

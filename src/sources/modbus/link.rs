@@ -42,8 +42,12 @@ pub struct ModbusLink {
 enum Fail {
     /// Timeout or transport error: reconnect.
     Transport(String),
-    /// The cancellation token fired.
+    /// The cancellation token fired in the middle of a request: the connection is
+    /// unusable and the safe states still have to be written.
     Cancelled,
+    /// The cancellation token fired between requests and the safe states were written
+    /// (or their failure logged) on the live connection.
+    Stopped,
     /// Nobody listens to the events any more.
     Closed,
 }
@@ -115,7 +119,13 @@ impl ModbusLink {
                     // Best effort; the transport may already be gone.
                     let _ = timeout(Duration::from_millis(100), ctx.disconnect()).await;
                     match r {
-                        Fail::Cancelled | Fail::Closed => return,
+                        Fail::Stopped | Fail::Closed => return,
+                        // Stopped mid-request (a slow device): that connection is spoilt,
+                        // so the safe states go out on a fresh one.
+                        Fail::Cancelled => {
+                            self.last_attempt(&mut st, &mut commands, &events).await;
+                            return;
+                        }
                         Fail::Transport(reason) => reason,
                     }
                 }
@@ -302,7 +312,7 @@ impl ModbusLink {
                 // others completes first.
                 () = cancel.cancelled() => {
                     self.final_writes(ctx, st, commands, events).await;
-                    return Err(Fail::Cancelled);
+                    return Err(Fail::Stopped);
                 }
                 changed = commands.changed(), if st.watching => match changed {
                     Ok(()) => st.commands = Arc::clone(&commands.borrow_and_update()),
@@ -361,13 +371,30 @@ impl ModbusLink {
         }
         let live = CancellationToken::new();
         let io = Io { link: self, events, cancel: &live };
-        if self.write_due(ctx, st, &io).await.is_ok() {
-            info!(device = %self.dev().name, "safe state written at shutdown");
-        } else {
-            warn!(
+        // A device with nothing to write (a meter) has no safe state to report.
+        let has_writes = st.commands.commanded && !st.commands.writes.is_empty();
+        // A SunSpec limit whose control was never found cannot be written at all.
+        let limit_unknown = st.limit.is_none()
+            && st.commands.writes.iter().any(|w| matches!(w.target, crate::config::model::Write::SunSpecLimit { .. }));
+        match self.write_due(ctx, st, &io).await {
+            Ok(0) if !limit_unknown => {
+                if has_writes {
+                    info!(device = %self.dev().name, "safe state written at shutdown");
+                }
+            }
+            Ok(refused) if refused > 0 => warn!(
                 device = %self.dev().name,
-                "safe state NOT written at shutdown: the device did not take it; it keeps what it had, or does what its hardware does without a controller"
-            );
+                refused,
+                "safe state NOT written at shutdown: the device refused it (exception response); it keeps what it had, or does what its hardware does without a controller"
+            ),
+            Ok(_) => warn!(
+                device = %self.dev().name,
+                "safe limit NOT written at shutdown: the inverter's SunSpec limit control was never found; it keeps what it had"
+            ),
+            Err(_) => warn!(
+                device = %self.dev().name,
+                "safe state NOT written at shutdown: the device did not answer; it keeps what it had, or does what its hardware does without a controller"
+            ),
         }
     }
 
@@ -614,7 +641,10 @@ impl ModbusLink {
         io.emit(SourceEvent::Readback { device: self.device, values }).await
     }
 
-    async fn write_due(&self, ctx: &mut Context, st: &mut State, io: &Io<'_>) -> Result<(), Fail> {
+    /// Writes every target that is due. Returns how many batches the device refused
+    /// with an exception response (each is retried at its refresh period).
+    async fn write_due(&self, ctx: &mut Context, st: &mut State, io: &Io<'_>) -> Result<u32, Fail> {
+        let mut refused = 0;
         let batches = st.tracker.due(&st.commands, Instant::now(), st.limit.as_ref());
         for batch in batches {
             for op in &batch.ops {
@@ -633,6 +663,7 @@ impl ModbusLink {
                     }
                 };
                 if let Err(code) = r {
+                    refused += 1;
                     io.exception(op.function(), op.address(), code).await?;
                     // The rest of the batch would not make sense without this part.
                     break;
@@ -642,7 +673,7 @@ impl ModbusLink {
             // refresh period rather than on every wake-up.
             st.tracker.mark(&batch, Instant::now());
         }
-        Ok(())
+        Ok(refused)
     }
 
     async fn poll_group(
@@ -771,6 +802,9 @@ impl Io<'_> {
         link.stats.count(Counter::Exception);
         let code = ExceptionName::from(code);
         warn!(device = %link.dev().name, function, address, %code, "modbus exception response");
-        self.emit(SourceEvent::Exception { device: link.device, function, address, code }).await
+        // At shutdown nobody may be listening any more; the refusal is logged either way,
+        // and the caller still needs to know it was a refusal, not a lost line.
+        let _ = self.emit(SourceEvent::Exception { device: link.device, function, address, code }).await;
+        Ok(())
     }
 }
