@@ -69,6 +69,10 @@ pub struct Options {
     /// (counted from 1). Never set on a site.
     #[doc(hidden)]
     pub fail_at_tick: Option<u64>,
+    /// A fail point for tests of a dying link: the named device's link panics this long
+    /// after the start. Never set on a site.
+    #[doc(hidden)]
+    pub fail_link_after: Option<(String, Duration)>,
 }
 
 impl Default for Options {
@@ -82,6 +86,7 @@ impl Default for Options {
             mqtt: MqttOptions::default(),
             actuators: ActuatorOptions::default(),
             fail_at_tick: None,
+            fail_link_after: None,
         }
     }
 }
@@ -109,7 +114,7 @@ pub enum DaemonError {
     },
     /// The engine failed while running; the daemon stopped with safe states.
     #[error(
-        "the engine failed ({0}); the daemon sent the safe states and stopped. This is a bug: please report it with the log"
+        "the controller failed ({0}); the daemon sent the safe states and stopped. This is a bug: please report it with the log"
     )]
     EngineFailed(String),
     /// The state file exists but cannot be read, or cannot be written.
@@ -173,11 +178,43 @@ impl Daemon {
             }
             None => None,
         };
+        // A link ends only when the daemon stops. One that ends before (a panic) leaves
+        // its device unread and uncommanded: the watchdog asks for the orderly stop.
+        let (req_tx, req_rx) = mpsc::channel(4);
+        let watch_link = |name: String, task: tokio::task::JoinHandle<()>| {
+            let (stop, requests) = (cancel.clone(), req_tx.clone());
+            async move {
+                let r = task.await;
+                if !stop.is_cancelled() {
+                    let why = match r {
+                        Err(e) if e.is_panic() => format!("the link of {name} panicked"),
+                        _ => format!("the link of {name} ended"),
+                    };
+                    error!(link = %name, "{why}: stopping with safe states");
+                    let _ = requests.send(Request::LinkDied(why)).await;
+                }
+            }
+        };
         for (link, rx) in modbus {
-            tracker.spawn(link.run(rx, events_tx.clone(), options.clock, cancel.clone()));
+            let name = site.devices[link.device().0].name.clone();
+            let run = link.run(rx, events_tx.clone(), options.clock, cancel.clone());
+            let task = match &options.fail_link_after {
+                Some((failing, after)) if *failing == name => {
+                    let after = *after;
+                    tokio::spawn(async move {
+                        tokio::select! {
+                            () = run => {}
+                            () = tokio::time::sleep(after) => panic!("fail point: link panics"),
+                        }
+                    })
+                }
+                _ => tokio::spawn(run),
+            };
+            tracker.spawn(watch_link(name, task));
         }
         if let Some(link) = mqtt {
-            tracker.spawn(link.run(dispatcher.mqtt(), events_tx.clone(), options.clock, cancel.clone()));
+            let task = tokio::spawn(link.run(dispatcher.mqtt(), events_tx.clone(), options.clock, cancel.clone()));
+            tracker.spawn(watch_link("the MQTT broker".to_owned(), task));
         }
         drop(events_tx);
 
@@ -195,7 +232,6 @@ impl Daemon {
             });
         }
 
-        let (req_tx, req_rx) = mpsc::channel(4);
         let control = Control::new(engine, snapshot, dispatcher, status_tx, &options);
         // The control task normally cancels the links itself after its shutdown; if it
         // dies some other way, this stops them too, so the process cannot hang on with

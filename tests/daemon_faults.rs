@@ -231,3 +231,25 @@ async fn a_safe_state_refused_at_shutdown_is_logged_as_not_written() {
         .unwrap_or_else(|| panic!("{text}"));
     assert!(line.contains("WARN") && line.contains("NOT written") && line.contains("refused"), "{line}");
 }
+
+/// A device link that dies while the site runs (a panic: a bug) leaves its device unread
+/// and uncommanded, so the daemon stops as after an engine failure: safe states on the
+/// devices it can still reach, and an error. Here the meter's link dies; the heater goes
+/// off and the inverter to its safe limit. Triggered by a test-only fail point.
+#[tokio::test(start_paused = true)]
+async fn a_link_that_dies_stops_the_daemon_with_safe_states_and_an_error() {
+    let plant = Plant::start(4200.0).await;
+    let mut opts = options(T0);
+    opts.fail_link_after = Some(("meter".to_owned(), Duration::from_secs(180)));
+    let daemon = start(&plant.site_yaml(LOADS, ""), opts).await;
+    settle(&plant, &daemon).await;
+    assert!(plant.last().unwrap().heater, "the heater runs before the failure");
+    let summary =
+        tokio::time::timeout(Duration::from_secs(120), daemon.wait()).await.expect("the daemon stops by itself");
+    let why = summary.engine_failed.expect("the failure is reported");
+    assert!(why.contains("the link of meter panicked"), "{why}");
+    plant_until(&plant, Duration::from_secs(10), "heater off, inverter at its safe limit", |s| {
+        !s.heater && !s.pump && s.limit == 0.0
+    })
+    .await;
+}

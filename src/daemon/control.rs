@@ -34,6 +34,9 @@ const RECENT: usize = 12;
 pub(super) enum Request {
     /// Dispatch the safe states, save the counters, stop everything.
     Shutdown,
+    /// A device link's task ended before the daemon stopped (a panic): its device is no
+    /// longer read or commanded, so the daemon stops as after an engine failure.
+    LinkDied(String),
 }
 
 /// What the control task counted, returned when the daemon has stopped.
@@ -127,6 +130,11 @@ impl Control {
                 // Cancel-safe: an mpsc receive loses nothing when another branch wins.
                 r = requests.recv() => match r {
                     Some(Request::Shutdown) | None => break,
+                    Some(Request::LinkDied(why)) => {
+                        error!(error = %why, "a device link died: stopping with safe states (a bug: please report it with this log)");
+                        self.summary.engine_failed = Some(why);
+                        break;
+                    }
                 },
                 // Cancel-safe: an interval tick is not consumed until it completes.
                 _ = tick.tick() => {

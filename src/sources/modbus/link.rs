@@ -78,6 +78,11 @@ impl ModbusLink {
         Ok(ModbusLink { site, device, options, stats: LinkStats::shared() })
     }
 
+    /// The device this link serves.
+    pub fn device(&self) -> DeviceId {
+        self.device
+    }
+
     /// The link's counters.
     pub fn stats(&self) -> Arc<LinkStats> {
         Arc::clone(&self.stats)
