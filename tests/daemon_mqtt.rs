@@ -199,6 +199,7 @@ where
     let prefix = unique_prefix(label);
     let plant = MqttPlant::start(port, &prefix).await;
     let site = support::site(&site_yaml(port, &prefix));
+    let (logs, _guard) = support::Logs::capture();
     let daemon = Daemon::start(site, Options::default()).await.unwrap();
     until(&daemon, "rules in charge", |s| s.mode == "normal").await;
 
@@ -283,6 +284,31 @@ where
     let status_topic = format!("{prefix}/ctl/status");
     assert_eq!(seen.iter().rev().find(|(t, _, _)| *t == status_topic).map(|x| x.1.as_str()), Some("offline"));
     assert!(!plant.state.lock().unwrap().heater, "heater commanded off at shutdown");
+    // And the log says so.
+    assert!(logs.text().contains("safe states sent to the broker at shutdown"), "{}", logs.text());
+}
+
+/// With the broker gone at shutdown, the safe states cannot be sent: the log says so in
+/// a warning instead of staying silent about the heater switched over MQTT.
+#[tokio::test]
+async fn safe_states_that_cannot_be_sent_at_shutdown_are_warned_about() {
+    let broker = Broker::start().await;
+    let prefix = unique_prefix("gone");
+    let plant = MqttPlant::start(broker.addr.port(), &prefix).await;
+    let site = support::site(&site_yaml(broker.addr.port(), &prefix));
+    let (logs, _guard) = support::Logs::capture();
+    let daemon = Daemon::start(site, Options::default()).await.unwrap();
+    until(&daemon, "rules in charge", |s| s.mode == "normal").await;
+    plant.set_pv(3200.0);
+    until(&daemon, "heater on", |s| heater(s).on).await;
+    broker.stop();
+    until(&daemon, "the broker noticed gone", |s| s.devices[0].up == Some(false)).await;
+    daemon.shutdown();
+    daemon.wait().await;
+    let text = logs.text();
+    let line =
+        text.lines().find(|l| l.contains("safe states NOT sent at shutdown")).unwrap_or_else(|| panic!("{text}"));
+    assert!(line.contains("WARN") && line.contains("not connected to the broker"), "{line}");
 }
 
 #[tokio::test]

@@ -192,7 +192,13 @@ impl MqttLink {
                     continue;
                 }
                 // Cancel-safe: a sleep.
-                () = sleep_until(deadline.unwrap_or_else(Instant::now)), if deadline.is_some() => break,
+                () = sleep_until(deadline.unwrap_or_else(Instant::now)), if deadline.is_some() => {
+                    warn!(
+                        broker = %self.broker(),
+                        "the broker connection did not flush within the shutdown grace: the last publications (safe states, offline) may not have reached it"
+                    );
+                    break;
+                }
                 // Not cancel-safe (a request may be half written); only the two
                 // shutdown branches above ever drop it.
                 r = eventloop.poll() => r,
@@ -325,11 +331,22 @@ impl MqttLink {
                 biased;
                 // All branches cancel-safe: a token, an mpsc receive, a watch change, a sleep.
                 () = cancel.cancelled() => {
+                    // The daemon puts the safe states here before it cancels.
+                    current = Arc::clone(&outputs.borrow_and_update());
+                    let has_commands = current.commands.commanded && !current.commands.writes.is_empty();
                     if connected {
-                        // The daemon puts the safe states here before it cancels.
-                        current = Arc::clone(&outputs.borrow_and_update());
+                        let queued_before = self.stats.counts().writes;
                         self.publish_due(&client, &current, &mut sent);
                         let _ = client.try_publish(status_topic(&self.settings), QoS::AtLeastOnce, true, "offline");
+                        if has_commands {
+                            let queued = self.stats.counts().writes - queued_before;
+                            info!(broker = %self.broker(), queued, "safe states sent to the broker at shutdown");
+                        }
+                    } else if has_commands {
+                        warn!(
+                            broker = %self.broker(),
+                            "safe states NOT sent at shutdown: not connected to the broker; devices switched over MQTT keep what they had"
+                        );
                     }
                     let _ = client.try_disconnect();
                     return;
