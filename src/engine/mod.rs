@@ -814,6 +814,15 @@ fn decide(
             (Command::On, k) => full_command(k),
             (c, _) => c,
         };
+        // Off is obeyed at once. A start waits out `min_off` and the starts cap like any
+        // other, so an automation that toggles the override cannot chatter a contactor
+        // or a compressor; the override stays and takes effect when they allow.
+        if command.is_on()
+            && !is_on
+            && let Some(reason) = start_blocked(l, st, now)
+        {
+            return (st.command, reason, Power::ZERO);
+        }
         return (command, Reason::Override { until: o.until }, Power::ZERO);
     }
     // 4. Obligations that must be met from the grid now.

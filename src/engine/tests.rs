@@ -829,6 +829,46 @@ fn an_override_expires_by_itself_and_never_defeats_the_inhibit_rule() {
     assert_eq!(h.engine.override_of(LoadId(0)), None);
 }
 
+/// An automation toggling a pump's override every few seconds cannot chatter it: `off`
+/// is obeyed at once, `on` waits out `min_off` and the starts cap, and then takes effect.
+#[test]
+fn an_override_start_keeps_to_min_off_and_the_starts_cap() {
+    let loads = r#"
+  - name: pump
+    rated: 1kW
+    switch: { device: relays, coil: 0 }
+    start: surplus > 1.1kW for 20s
+    stop: import > 300W for 10s
+    min_off: 5min
+    max_starts_per_hour: 2
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads));
+    h.set("grid", 200.0);
+    h.tick();
+    let mut starts = 0;
+    let mut on = false;
+    for i in 0..1800 {
+        // Every 2 s the automation flips its mind.
+        if i % 2 == 0 {
+            let command = if (i / 2) % 2 == 0 { Command::On } else { Command::Off };
+            h.engine.set_override(LoadId(0), command, h.now.plus(secs(3600)));
+        }
+        let now_on = h.tick().loads[0].command.is_on();
+        if now_on && !on {
+            starts += 1;
+        }
+        on = now_on;
+    }
+    assert!((1..=2).contains(&starts), "at most the cap of 2 starts in the half hour, not 450: {starts}");
+    // A plain override after the wait starts the pump at once.
+    let mut h = Harness::new(&site("  export: allowed", loads));
+    h.set("grid", 200.0);
+    h.run(secs(400));
+    h.engine.set_override(LoadId(0), Command::On, h.now.plus(secs(600)));
+    h.tick();
+    assert_eq!(h.command("pump"), Command::On);
+}
+
 #[test]
 fn an_override_never_defeats_the_failsafe() {
     let mut h = Harness::new(&site("  export: forbidden", TWO_LOADS));
