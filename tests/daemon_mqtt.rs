@@ -284,6 +284,10 @@ where
     let status_topic = format!("{prefix}/ctl/status");
     assert_eq!(seen.iter().rev().find(|(t, _, _)| *t == status_topic).map(|x| x.1.as_str()), Some("offline"));
     assert!(!plant.state.lock().unwrap().heater, "heater commanded off at shutdown");
+    // The retained site state says the controller stopped, with no stale numbers.
+    let site_topic = format!("{prefix}/ctl/state/site");
+    let last = seen.iter().rev().find(|(t, _, _)| *t == site_topic).map(|x| x.1.clone()).unwrap_or_default();
+    assert!(last.contains("\"mode\":\"stopped\"") && last.contains("\"grid\":null"), "{last}");
     // And the log says so.
     assert!(logs.text().contains("safe states sent to the broker at shutdown"), "{}", logs.text());
 }

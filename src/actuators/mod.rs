@@ -222,6 +222,16 @@ impl Dispatcher {
     /// Hands a tick's decisions to the links; a channel is only touched when its
     /// content changes, so links wake on change, not on every tick.
     pub fn apply(&self, decisions: &Decisions) {
+        self.apply_as(decisions, false);
+    }
+
+    /// The safe states at shutdown: as [`Dispatcher::apply`], and the retained site
+    /// state says `stopped` (with no live numbers) rather than the last tick's.
+    pub fn apply_stopped(&self, safe: &Decisions) {
+        self.apply_as(safe, true);
+    }
+
+    fn apply_as(&self, decisions: &Decisions, stopped: bool) {
         let planned = plan(&self.site, decisions, self.options);
         let mut mqtt = DeviceCommands { commanded: true, writes: Vec::new() };
         for ((device, commands), tx) in self.site.devices.iter().zip(planned).zip(&self.devices) {
@@ -236,7 +246,11 @@ impl Dispatcher {
                 changed
             });
         }
-        let outputs = MqttOutputs { commands: mqtt, state: state_topics(&self.site, decisions) };
+        let mut state = state_topics(&self.site, decisions);
+        if stopped {
+            mqtt::mark_stopped(&mut state, decisions);
+        }
+        let outputs = MqttOutputs { commands: mqtt, state };
         self.mqtt.send_if_modified(|cur| {
             let changed = **cur != outputs;
             if changed {

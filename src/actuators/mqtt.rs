@@ -78,6 +78,23 @@ pub fn state_topics(site: &Site, decisions: &Decisions) -> Vec<StateTopic> {
     out
 }
 
+/// The site state at shutdown: mode `stopped`, no live numbers (they would be stale
+/// the moment the controller is gone), the safe limit dispatched.
+pub fn mark_stopped(state: &mut [StateTopic], safe: &Decisions) {
+    if let Some(site) = state.iter_mut().find(|s| s.suffix == "state/site") {
+        let limit = safe.inverter_limit.map(|p| p.0.round());
+        site.payload = json!({
+            "mode": "stopped",
+            "surplus": null,
+            "grid": null,
+            "inverter_limit": limit,
+            "limit_reason": "shutdown",
+        })
+        .to_string();
+        site.key = "stopped".to_owned();
+    }
+}
+
 /// The site mode as a word.
 pub fn mode_word(mode: Mode) -> &'static str {
     match mode {

@@ -385,7 +385,7 @@ impl Control {
         if let Some(ic) = &self.site.inverter {
             info!(limit = %ic.safe_limit, "inverter limit: its safe value is sent for shutdown");
         }
-        self.dispatcher.apply(&safe);
+        self.dispatcher.apply_stopped(&safe);
         let commands: Vec<String> = safe.loads.iter().map(|l| l.command.to_string()).collect();
         info!(?commands, "safe states handed to the links (each says whether its device took them)");
         push_recent(&mut self.recent, now, "controller stopping: safe states dispatched".to_owned());
@@ -433,13 +433,24 @@ fn log_limit(last: &mut (Option<Power>, LimitReason), d: &Decisions) -> Option<S
     // The guard releases a curtailment step by step: log its start, its end and
     // changes of reason at INFO, the steps in between at DEBUG.
     if now.1 != before.1 || now.0.is_some() != before.0.is_some() {
-        info!(
-            from = %fmt(before.0),
-            to = %fmt(now.0),
-            reason = limit_word(now.1),
-            grid_w = d.grid.map(|g| g.0.round()),
-            "inverter limit changed"
-        );
+        if now.0 == before.0 {
+            // Same limit, another reason (the guard's cut becomes the fail-safe's).
+            info!(
+                limit = %fmt(now.0),
+                from = limit_word(before.1),
+                reason = limit_word(now.1),
+                grid_w = d.grid.map(|g| g.0.round()),
+                "inverter limit kept, for another reason"
+            );
+        } else {
+            info!(
+                from = %fmt(before.0),
+                to = %fmt(now.0),
+                reason = limit_word(now.1),
+                grid_w = d.grid.map(|g| g.0.round()),
+                "inverter limit changed"
+            );
+        }
         Some(if now.0 == before.0 {
             format!("inverter limit {} ({} → {})", fmt(now.0), limit_word(before.1), limit_word(now.1))
         } else {
