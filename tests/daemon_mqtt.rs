@@ -202,6 +202,9 @@ where
     let (logs, _guard) = support::Logs::capture();
     let daemon = Daemon::start(site, Options::default()).await.unwrap();
     until(&daemon, "rules in charge", |s| s.mode == "normal").await;
+    // The broker's own health is on the status page.
+    let s = until(&daemon, "the broker reported up", |s| s.broker.as_ref().is_some_and(|b| b.up == Some(true))).await;
+    assert_eq!(s.broker.unwrap().name, format!("127.0.0.1:{port}"));
 
     // Export appears; the heater's start rule clears it.
     plant.set_pv(3200.0);
@@ -307,6 +310,7 @@ async fn safe_states_that_cannot_be_sent_at_shutdown_are_warned_about() {
     until(&daemon, "heater on", |s| heater(s).on).await;
     broker.stop();
     until(&daemon, "the broker noticed gone", |s| s.devices[0].up == Some(false)).await;
+    until(&daemon, "the broker reported down", |s| s.broker.as_ref().is_some_and(|b| b.up == Some(false))).await;
     daemon.shutdown();
     daemon.wait().await;
     let text = logs.text();

@@ -90,7 +90,9 @@ impl Control {
     ) -> Control {
         let site = Arc::clone(engine.site());
         Control {
-            health: vec![DeviceHealth::default(); site.devices.len()],
+            // One slot per device, and one more for the MQTT broker (`status::build`
+            // reads it as the broker's health).
+            health: vec![DeviceHealth::default(); site.devices.len() + 1],
             site,
             engine,
             snapshot,
@@ -247,6 +249,18 @@ impl Control {
                     h.down_reason = Some(reason);
                 }
             }
+            SourceEvent::BrokerUp => {
+                if let Some(h) = self.health.last_mut() {
+                    h.up = Some(true);
+                    h.down_reason = None;
+                }
+            }
+            SourceEvent::BrokerDown { reason } => {
+                if let Some(h) = self.health.last_mut() {
+                    h.up = Some(false);
+                    h.down_reason = Some(reason);
+                }
+            }
             SourceEvent::Exception { device, function, address, code } => {
                 self.summary.exceptions += 1;
                 let total = self.health.get_mut(device.0).map_or(0, |h| {
@@ -268,7 +282,10 @@ impl Control {
             }
             SourceEvent::Malformed { device, origin, detail } => {
                 self.summary.malformed += 1;
-                let total = device.and_then(|d| self.health.get_mut(d.0)).map_or(0, |h| {
+                // Without a device (an override topic on a site with no MQTT devices)
+                // it counts against the broker.
+                let slot = device.map_or(self.site.devices.len(), |d| d.0);
+                let total = self.health.get_mut(slot).map_or(0, |h| {
                     h.malformed += 1;
                     h.malformed
                 });

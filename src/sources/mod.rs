@@ -53,6 +53,14 @@ pub enum SourceEvent {
         /// Why, as a lowercase fragment.
         reason: String,
     },
+    /// The MQTT broker connection is up (reported whether or not the site has MQTT
+    /// devices: overrides and state travel over it too).
+    BrokerUp,
+    /// The MQTT broker connection is down; it will retry after its backoff.
+    BrokerDown {
+        /// Why, as a lowercase fragment.
+        reason: String,
+    },
     /// The device answered with a Modbus exception; counted, the link goes on.
     Exception {
         /// Which device.

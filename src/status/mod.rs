@@ -50,6 +50,10 @@ pub struct Status {
     pub points: Vec<PointStatus>,
     /// Device links.
     pub devices: Vec<DeviceStatus>,
+    /// The MQTT broker connection, when the site has `mqtt:` (its `name` is the
+    /// broker's address; `malformed` counts payloads no device claims, such as bad
+    /// overrides on a site without MQTT devices).
+    pub broker: Option<DeviceStatus>,
     /// The latest switchings and limit changes, newest last.
     pub recent: Vec<RecentEvent>,
 }
@@ -281,6 +285,16 @@ pub fn build(engine: &Engine, snapshot: &Snapshot, health: &[DeviceHealth], rece
         },
         points: points(site, snapshot, now),
         devices: devices(site, health),
+        broker: site.mqtt.as_ref().map(|m| {
+            let h = health.get(site.devices.len()).cloned().unwrap_or_default();
+            DeviceStatus {
+                name: format!("{}:{}", m.host, m.port),
+                up: h.up,
+                down_reason: h.down_reason,
+                exceptions: 0,
+                malformed: h.malformed,
+            }
+        }),
         recent: recent.to_vec(),
     }
 }

@@ -214,6 +214,9 @@ impl MqttLink {
                     let _ = notes.send(Note::Connected).await;
                     if up != Some(true) {
                         up = Some(true);
+                        if events.send(SourceEvent::BrokerUp).await.is_err() {
+                            return;
+                        }
                         for d in &self.devices {
                             if events.send(SourceEvent::DeviceUp { device: *d }).await.is_err() {
                                 return;
@@ -243,6 +246,9 @@ impl MqttLink {
                     if up != Some(false) {
                         up = Some(false);
                         warn!(broker = %self.broker(), %reason, retry_in_ms = delay.as_millis() as u64, "mqtt connection lost");
+                        if events.send(SourceEvent::BrokerDown { reason: reason.clone() }).await.is_err() {
+                            return;
+                        }
                         for d in &self.devices {
                             let ev = SourceEvent::DeviceDown { device: *d, reason: format!("mqtt: {reason}") };
                             if events.send(ev).await.is_err() {
