@@ -43,21 +43,15 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
     let coverage = coverage(&recorded, tz, p.from, p.days);
     // An hour is noise (a recording rarely starts exactly at midnight); more is called out,
     // since the report counts those hours as if they had been measured.
-    if coverage.outside_h > 1.0 {
-        let note = format!(
-            "{:.1} h of the run lie outside the recording: its first and last values are held there, not measured",
-            coverage.outside_h
-        );
-        eprintln!("{}: warning: {note}", csv.display());
-        notices.push(note);
-    }
-    if coverage.bridged_h > 1.0 {
-        let note = format!(
-            "{:.1} h of the run fall in gaps of over 15 min between rows: interpolated there, not measured",
-            coverage.bridged_h
-        );
-        eprintln!("{}: warning: {note}", csv.display());
-        notices.push(note);
+    for (hours, what) in [
+        (coverage.outside_h, "lie outside the recording: its first and last values are held there, not measured"),
+        (coverage.bridged_h, "fall in gaps of over 15 min between rows: interpolated there, not measured"),
+    ] {
+        if hours > 1.0 {
+            let note = format!("{hours:.1} h of the run {what}");
+            eprintln!("{}: warning: {note}", csv.display());
+            notices.push(note);
+        }
     }
     p.weather_label = format!("recorded ({})", csv.display());
     let progress = Progress::new(args.quiet, "replaying");

@@ -135,38 +135,39 @@ pub fn read(loaded: &Loaded) -> Result<Expectations, Vec<Diagnostic>> {
         }
         if let Some(Value::Seq(items)) = days.map(|n| &n.value) {
             for item in items {
-                if let Some(day) = read_day(item, &mut d) {
-                    if out.days.iter().any(|o| o.name == day.name) {
-                        d.error(
-                            "C0609",
-                            format!("two test days are called \"{}\"", day.name),
-                            item.span.clone(),
-                            "give each day its own name",
-                        );
-                        continue;
-                    }
+                if let Some(day) = read_day(item, &mut d)
+                    && unique(out.days.iter().map(|o| &o.name), &day.name, "test days", item, &mut d)
+                {
                     out.days.push(day);
                 }
             }
         }
         if let Some(Value::Seq(items)) = checks.map(|n| &n.value) {
             for item in items {
-                if let Some(c) = read_check(item, &loaded.site, text, &out.days, &mut d) {
-                    if out.checks.iter().any(|o| o.name == c.name) {
-                        d.error(
-                            "C0609",
-                            format!("two checks are called \"{}\"", c.name),
-                            item.span.clone(),
-                            "give each check its own name",
-                        );
-                        continue;
-                    }
+                if let Some(c) = read_check(item, &loaded.site, text, &out.days, &mut d)
+                    && unique(out.checks.iter().map(|o| &o.name), &c.name, "checks", item, &mut d)
+                {
                     out.checks.push(c);
                 }
             }
         }
     }
     if d.has_errors() { Err(d.list) } else { Ok(out) }
+}
+
+/// Whether `name` is new among `taken`; reports the second of two items of one name.
+fn unique<'a>(
+    mut taken: impl Iterator<Item = &'a String>,
+    name: &str,
+    what: &str,
+    item: &Node,
+    d: &mut Diagnostics,
+) -> bool {
+    if taken.any(|t| t == name) {
+        d.error("C0609", format!("two {what} are called \"{name}\""), item.span.clone(), "give each its own name");
+        return false;
+    }
+    true
 }
 
 fn read_day(node: &Node, d: &mut Diagnostics) -> Option<TestDay> {
