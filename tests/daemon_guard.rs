@@ -79,8 +79,13 @@ async fn a_pv_step_on_a_no_export_site_is_cleared_within_one_poll_and_one_tick()
 
 /// A minimal HTTP/1.1 GET over loopback: status code and body.
 async fn get(addr: std::net::SocketAddr, path: &str) -> (u16, String) {
+    get_as(addr, &addr.to_string(), path).await
+}
+
+/// A GET with the given `Host` header.
+async fn get_as(addr: std::net::SocketAddr, host: &str, path: &str) -> (u16, String) {
     let mut s = tokio::net::TcpStream::connect(addr).await.unwrap();
-    let req = format!("GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n");
+    let req = format!("GET {path} HTTP/1.1\r\nHost: {host}\r\nConnection: close\r\n\r\n");
     s.write_all(req.as_bytes()).await.unwrap();
     let mut raw = Vec::new();
     s.read_to_end(&mut raw).await.unwrap();
@@ -130,6 +135,13 @@ async fn the_status_api_and_page_answer_over_loopback() {
     assert!(!page.contains("http://") && !page.contains("https://"), "the page loads nothing from elsewhere");
     let (code, _) = get(addr, "/nothing-here").await;
     assert_eq!(code, 404);
+    // Bound to loopback, it answers loopback names only: a page elsewhere whose own
+    // name was pointed at 127.0.0.1 (DNS rebinding) must not read the site's status.
+    let (code, _) = get_as(addr, &format!("localhost:{}", addr.port()), "/api/status").await;
+    assert_eq!(code, 200);
+    let (code, body) = get_as(addr, "rebound.example:8080", "/api/status").await;
+    assert_eq!(code, 403);
+    assert!(body.contains("answers only to localhost"), "{body}");
 
     daemon.shutdown();
     daemon.wait().await;
