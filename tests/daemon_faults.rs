@@ -121,11 +121,17 @@ async fn restarted_devices_get_their_commands_back_without_a_burst_of_switchings
 #[tokio::test(start_paused = true)]
 async fn exception_responses_are_counted_logged_and_ignored() {
     let (plant, daemon) = running().await;
+    let (logs, _guard) = support::Logs::capture();
     // The inverter refuses to report PV (function 3 at 0): the guard works on the meter alone.
     plant.devices.with(|s| {
         s.exceptions.insert((3, 0), ExceptionCode::ServerDeviceBusy);
     });
     tokio::time::sleep(Duration::from_secs(20)).await;
+    // One warning for the kind, then repeats only once a minute: not one per poll.
+    let text = logs.text();
+    let warnings: Vec<&str> = text.lines().filter(|l| l.contains("WARN") && l.contains("exception")).collect();
+    assert_eq!(warnings.len(), 1, "{text}");
+    assert!(warnings[0].contains("device=inverter") && warnings[0].contains("function=3"), "{}", warnings[0]);
     let s = daemon.status().borrow().clone();
     let inverter = s.devices.iter().find(|d| d.name == "inverter").unwrap();
     println!("inverter: {} exception responses in 20 s", inverter.exceptions);

@@ -806,10 +806,14 @@ impl Io<'_> {
         let link = self.link;
         link.stats.count(Counter::Exception);
         let code = ExceptionName::from(code);
-        warn!(device = %link.dev().name, function, address, %code, "modbus exception response");
-        // At shutdown nobody may be listening any more; the refusal is logged either way,
-        // and the caller still needs to know it was a refusal, not a lost line.
-        let _ = self.emit(SourceEvent::Exception { device: link.device, function, address, code }).await;
+        // The controller logs exceptions, once per kind and then rate-limited (a device
+        // that refuses one register answers so at every poll). At shutdown nobody may be
+        // listening any more: the refusal is then logged here, and the caller still
+        // needs to know it was a refusal, not a lost line.
+        debug!(device = %link.dev().name, function, address, %code, "modbus exception response");
+        if self.emit(SourceEvent::Exception { device: link.device, function, address, code }).await.is_err() {
+            warn!(device = %link.dev().name, function, address, %code, "modbus exception response");
+        }
         Ok(())
     }
 }
