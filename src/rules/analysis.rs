@@ -545,7 +545,16 @@ fn span(p: &Program, i: u32) -> Range<usize> {
 
 fn lint_node(p: &Program, i: u32, diags: &mut Vec<RuleDiagnostic>) {
     match p.nodes[i as usize] {
-        Node::Not(a) | Node::Hold { input: a, .. } => lint_node(p, a, diags),
+        Node::Hold { input, ms, .. } => {
+            if let Some(run) = longest_clock_run(p, input)
+                && run > 0
+                && ms >= run * 1000
+            {
+                diags.push(hold_outlasts_clock(p, i, input, ms, run));
+            }
+            lint_node(p, input, diags)
+        }
+        Node::Not(a) => lint_node(p, a, diags),
         Node::And(..) | Node::Or(..) => lint_chain(p, i, diags),
         Node::Cmp(..) | Node::InClock(..) | Node::InDays(..) | Node::InSet(..) => {
             let Some(o) = outcome_of(p, &[i], true) else {
@@ -657,4 +666,86 @@ fn constant_atom(p: &Program, i: u32, always: bool) -> RuleDiagnostic {
             warning("R0402", message, span(p, i)).label(verdict).note(range)
         }
     }
+}
+
+/// Local times at which a summer-time change can repeat an hour: every zone in the IANA
+/// database turns its clocks back between 23:00 and 03:00 local time, so a stretch of
+/// the day that overlaps 22:00–04:00 may last up to an hour longer on that night (our
+/// margin, wider than the changes themselves).
+const REPEATABLE: [(f64, f64); 2] = [(0.0, 4.0 * 3600.0), (22.0 * 3600.0, DAY_SECONDS)];
+
+/// The longest stretch, in whole seconds, during which the condition `i` can stay true
+/// when the local clock bounds it; `None` when it does not read the clock, could be
+/// true all day, or is too large to analyse. An upper bound: every other signal is left
+/// free to take whatever value makes the condition true, and a stretch over the hours
+/// a summer-time change may repeat gets an extra hour.
+fn longest_clock_run(p: &Program, i: u32) -> Option<i64> {
+    let mut m = Model::default();
+    let f = m.formula(p, i, Mode::Free);
+    let clock = m.vars.iter().position(|v| v.key == Key::Clock)?;
+    // The clock's cells as `cells_of` lays them out: each constant (from 00:00) as a
+    // point, then the open stretch up to the next one, the last up to 24:00.
+    let mut points: Vec<f64> =
+        m.vars[clock].consts.iter().copied().filter(|c| (0.0..DAY_SECONDS).contains(c)).collect();
+    points.push(0.0);
+    points.sort_by(f64::total_cmp);
+    points.dedup();
+    // (from, to, whole seconds of the clock inside): the clock reads whole seconds.
+    let mut cells: Vec<(f64, f64, i64)> = Vec::with_capacity(points.len() * 2);
+    for (k, &a) in points.iter().enumerate() {
+        let b = points.get(k + 1).copied().unwrap_or(DAY_SECONDS);
+        cells.push((a, a, i64::from(a.fract() == 0.0)));
+        cells.push((a, b, ((b.ceil() - a.floor()) as i64 - 1).max(0)));
+    }
+    let reps = cells_of(&m.vars[clock]);
+    if reps.len() != cells.len() {
+        return None;
+    }
+    let mut possible = vec![false; cells.len()];
+    let complete = each_cell(&m, |vals| {
+        if eval(&f, vals) == 1.0
+            && let Some(k) = reps.iter().position(|&r| r == vals[clock])
+        {
+            possible[k] = true;
+        }
+        true
+    });
+    let start = possible.iter().position(|ok| !ok)?;
+    if !complete {
+        return None;
+    }
+    // Runs of cells where it can be true, around the clock (23:59:59 is followed by
+    // 00:00:00), starting after a cell where it cannot.
+    let n = cells.len();
+    let (mut longest, mut run, mut repeatable) = (0i64, 0i64, false);
+    for step in 1..=n {
+        let k = (start + step) % n;
+        if possible[k] {
+            let (a, b, secs) = cells[k];
+            run += secs;
+            repeatable |= REPEATABLE.iter().any(|&(lo, hi)| a < hi && (b > lo || (a == b && a >= lo)));
+        } else {
+            run = 0;
+            repeatable = false;
+        }
+        longest = longest.max(run + if repeatable { 3600 } else { 0 });
+    }
+    Some(longest)
+}
+
+/// The warning for a hold longer than the clock lets its condition last.
+fn hold_outlasts_clock(p: &Program, hold: u32, input: u32, ms: i64, run_s: i64) -> RuleDiagnostic {
+    let d = |ms: i64| crate::units::format_duration(std::time::Duration::from_millis(ms.max(0) as u64));
+    warning(
+        "R0407",
+        format!(
+            "`{}` is true for at most {} at a time, so holding it for {} never fires",
+            describe(p, input),
+            d(run_s * 1000),
+            d(ms)
+        ),
+        span(p, hold),
+    )
+    .label("never true")
+    .note("a time of day such as `clock == 10:00` lasts one second; hold a range such as `clock in 10:00..10:05` for less than its length, or drop the hold")
 }

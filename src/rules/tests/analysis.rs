@@ -88,6 +88,34 @@ fn constant_comparisons_and_empty_windows_are_warned() {
 }
 
 #[test]
+fn a_hold_longer_than_the_clock_lets_its_condition_last_is_warned() {
+    let never = |text: &str| assert_eq!(codes(&compiled(text).warnings), ["R0407"], "{text}");
+    let fine = |text: &str| assert!(compiled(text).warnings.is_empty(), "{text}: {:?}", compiled(text).warnings);
+    // A time of day lasts one second of the clock.
+    never("clock == 10:00 for 1min");
+    never("clock == 10:00 for 1s");
+    never("clock == 10:00 for 1min and tank.on");
+    never("(clock == 10:00 and surplus > 1kW) for 1min");
+    never("tank.on or clock == 10:00 for 10s");
+    // A range lasts its length: a hold must be shorter.
+    never("clock in 10:00..10:05 for 5min");
+    fine("clock in 10:00..10:05 for 4min");
+    fine("(clock in 10:00..10:05 or clock in 10:05..10:10) for 8min");
+    never("(clock in 10:00..10:05 or clock in 10:06..10:10) for 6min");
+    // Another signal that can be true all day lifts the bound.
+    fine("(clock == 10:00 or surplus > 1kW) for 1min");
+    // Around midnight the day wraps, and a summer-time change may repeat an hour there.
+    fine("clock in 23:50..00:10 for 15min");
+    fine("clock in 01:00..01:30 for 45min");
+    never("clock in 01:00..01:30 for 2h");
+    never("clock >= 23:00 for 2h");
+    // A condition that is never true at all gets the warning for that, not this one.
+    assert_eq!(codes(&compiled("clock in 10:00..10:00 for 1min").warnings), ["R0406"]);
+    let w = &compiled("clock == 10:00 for 1min").warnings[0];
+    assert_eq!(w.message, "`clock == 10:00` is true for at most 1 s at a time, so holding it for 1 min never fires");
+}
+
+#[test]
 fn tautologies_in_a_disjunction_are_warned() {
     let c = compiled("surplus > 3kW or surplus <= 3kW");
     assert_eq!(codes(&c.warnings), ["R0405"]);

@@ -55,6 +55,7 @@ const CASES: &[(&str, &str)] = &[
     ("R0404_hold_for_zero", "tank.on for 0s"),
     ("R0405_tautology", "surplus > 3kW or surplus <= 3kW"),
     ("R0406_empty_time_window", "clock in 10:00..10:00 and tank.on"),
+    ("R0407_hold_outlasts_the_clock", "clock == 10:00 for 1min and tank.on"),
 ];
 
 /// What the user sees: the rule, then every diagnostic drawn under it.
