@@ -82,6 +82,14 @@ fn keys_of_another_kind_of_point_and_a_zero_scale_are_errors() {
     check("misplaced-point-keys");
 }
 
+/// A point whose definition fails (an unknown unit) is one error: the rules, the load's
+/// temperature, its obligation and the site's need for a grid meter that use it say
+/// nothing more (they used to add five errors about a name that was plainly there).
+#[test]
+fn a_broken_point_is_one_error_not_one_per_use() {
+    check("one-broken-point");
+}
+
 #[test]
 fn every_error_of_a_file_is_reported_in_one_run() {
     let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/test_data/broken");

@@ -105,7 +105,7 @@ pub fn load_str(path: &str, text: &str) -> Result<Loaded, LoadError> {
         }
     };
     let mut diags = Diagnostics::default();
-    let mut builder = Builder { text, diags: &mut diags, tariff: None };
+    let mut builder = Builder { text, diags: &mut diags, tariff: None, broken_points: Vec::new() };
     let site = builder.site(&tree);
     let tariff = builder.tariff.take();
     // File order reads best: a user fixes top to bottom.
@@ -125,6 +125,9 @@ struct Builder<'t, 'd> {
     text: &'t str,
     diags: &'d mut Diagnostics,
     tariff: Option<super::tariff::Tariff>,
+    /// Points whose definition has an error already reported: what refers to them
+    /// (rules, loads, site roles) says nothing more, so one typo gives one error.
+    broken_points: Vec<String>,
 }
 
 /// Raw facts about a point gathered before the model is assembled.
@@ -785,9 +788,12 @@ impl Builder<'_, '_> {
                 );
                 continue;
             }
-            if let Some(p) = self.point(&key.name, pnode, devices, stale_default) {
-                points.push(p);
-                info.push(PointInfo { name_span: key.span.clone() });
+            match self.point(&key.name, pnode, devices, stale_default) {
+                Some(p) => {
+                    points.push(p);
+                    info.push(PointInfo { name_span: key.span.clone() });
+                }
+                None => self.broken_points.push(key.name.clone()),
             }
         }
         (points, info)
@@ -864,7 +870,9 @@ impl Builder<'_, '_> {
                         let mut d =
                             Diagnostic::error("C0301", format!("unknown unit \"{text}\" for {what}"), n.span.clone())
                                 .with_label("expected W, kW, Wh, kWh, °C, %, V, A, s, bool or none");
-                        if let Some(s) = did_you_mean(&text, units::unit_symbols()) {
+                        if let Some(s) = crate::rules::suggest_unit(text.trim())
+                            .or_else(|| did_you_mean(&text, units::unit_symbols()))
+                        {
                             d = d.with_note(format!("did you mean \"{s}\"?"));
                         }
                         self.diags.push(d);
@@ -1251,9 +1259,12 @@ impl Builder<'_, '_> {
         let power = m
             .get("power")
             .and_then(|n| self.point_ref(n, ctx.points, Some(Dimension::Power), "the load's power meter"));
-        let temperature = m
-            .get("temperature")
+        let temperature_node = m.get("temperature");
+        let temperature = temperature_node
             .and_then(|n| self.point_ref(n, ctx.points, Some(Dimension::Temperature), "the load's temperature"));
+        // A `temperature` that names a missing or wrong point has its own error; the
+        // obligations need not add that there is none.
+        let temperature_given = temperature_node.is_some();
         let start_node = m.get("start");
         let start = start_node.and_then(|n| self.rule(n, ctx.scope, &format!("{name}.start")));
         let stop_node = m.get("stop");
@@ -1299,7 +1310,7 @@ impl Builder<'_, '_> {
             _ => (start, stop),
         };
         let obligations =
-            obligations_node.map(|n| self.obligations(n, temperature.is_some(), &what)).unwrap_or(Some(Vec::new()));
+            obligations_node.map(|n| self.obligations(n, temperature_given, &what)).unwrap_or(Some(Vec::new()));
         // A temperature target the inhibit rule forbids can never be met: the load is
         // forced off before the water gets there (within the 1 K the target allows).
         if let (Some(obs), Some(inh), Some(t), Some(n)) = (&obligations, &inhibit, temperature, obligations_node)
@@ -1648,6 +1659,9 @@ impl Builder<'_, '_> {
     ) -> Option<PointId> {
         let name = values::text(node, what, self.diags)?;
         let Some(i) = points.iter().position(|p| p.name == name) else {
+            if self.is_broken(name) {
+                return None;
+            }
             let mut d = Diagnostic::error("C0238", format!("no point called \"{name}\""), node.span.clone())
                 .with_label(format!("{what} must name a point"));
             if let Some(s) = did_you_mean(name, points.iter().map(|p| p.name.as_str())) {
@@ -1685,12 +1699,23 @@ impl Builder<'_, '_> {
                 Some(RuleText { rule: compiled.rule, origin: origin.to_owned() })
             }
             Err(errors) => {
-                for e in &errors {
+                // A name that is unknown only because its point's definition failed is
+                // no news: that error is already reported.
+                let news: Vec<&rules::RuleDiagnostic> = errors
+                    .iter()
+                    .filter(|e| !(e.code == "R0201" && text.get(e.span.clone()).is_some_and(|n| self.is_broken(n))))
+                    .collect();
+                for e in news {
                     self.diags.push(rules::to_diagnostic_mapped(e, &map));
                 }
                 None
             }
         }
+    }
+
+    /// Whether `name` is a point whose definition has an error already reported.
+    fn is_broken(&self, name: &str) -> bool {
+        self.broken_points.iter().any(|b| b == name)
     }
 
     fn default_rule(&mut self, text: &str, scope: &SiteScope, origin: &str) -> Option<RuleText> {
@@ -2049,7 +2074,7 @@ impl Builder<'_, '_> {
         let site_span = spans.site.clone();
         match &site.connection {
             Connection::Grid { export, backup } => {
-                if export.limit().is_some() && site.roles.grid.is_none() {
+                if export.limit().is_some() && site.roles.grid.is_none() && !self.is_broken("grid") {
                     self.diags.push(
                         Diagnostic::error(
                             "C0253",
@@ -2128,7 +2153,7 @@ impl Builder<'_, '_> {
                             )),
                     );
                 }
-                if backup.is_some() && site.roles.grid_available.is_none() {
+                if backup.is_some() && site.roles.grid_available.is_none() && !self.is_broken("grid_available") {
                     self.diags.push(
                         Diagnostic::error("C0255", "a backup site needs a `grid_available` point", site_span.clone())
                             .with_label("grid: backup")
@@ -2147,9 +2172,12 @@ impl Builder<'_, '_> {
                 }
             }
             Connection::OffGrid(_) => {
-                if site.roles.battery_voltage.is_none()
-                    || (site.roles.battery_current.is_none() && site.roles.battery_power.is_none())
-                {
+                let missing_voltage = site.roles.battery_voltage.is_none() && !self.is_broken("battery_voltage");
+                let missing_flow = site.roles.battery_current.is_none()
+                    && site.roles.battery_power.is_none()
+                    && !self.is_broken("battery_current")
+                    && !self.is_broken("battery_power");
+                if missing_voltage || missing_flow {
                     self.diags.push(
                         Diagnostic::error("C0257", "an off-grid site needs battery signals", site_span.clone())
                             .with_label("grid: off")

@@ -412,9 +412,37 @@ pub(crate) fn suggest_unit(symbol: &str) -> Option<&'static str> {
         "hr" | "hrs" | "hour" | "hours" => Some("h"),
         "day" | "days" => Some("d"),
         "watt" | "watts" => Some("W"),
-        "c" | "°" | "deg" | "degc" => Some("°C"),
+        "kilowatt" | "kilowatts" => Some("kW"),
+        "kilowatt-hour" | "kilowatt-hours" | "kilowatthour" | "kilowatthours" => Some("kWh"),
+        "c" | "°" | "deg" | "degc" | "degree" | "degrees" | "celsius" | "centigrade" => Some("°C"),
         "pct" | "percent" => Some("%"),
+        "volt" | "volts" => Some("V"),
+        "amp" | "amps" | "ampere" | "amperes" => Some("A"),
         _ => None,
     };
     alias.or_else(|| did_you_mean(symbol, units::unit_symbols()))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::suggest_unit;
+
+    #[test]
+    fn spelt_out_units_get_their_symbol() {
+        for (written, symbol) in [
+            ("watts", "W"),
+            ("Kilowatts", "kW"),
+            ("kilowatt-hours", "kWh"),
+            ("celsius", "°C"),
+            ("centigrade", "°C"),
+            ("degrees", "°C"),
+            ("volts", "V"),
+            ("amps", "A"),
+            ("minutes", "min"),
+            ("KW", "kW"),
+        ] {
+            assert_eq!(suggest_unit(written), Some(symbol), "{written}");
+        }
+        assert_eq!(suggest_unit("furlongs"), None);
+    }
 }
