@@ -27,6 +27,13 @@ pub struct Guard {
     acted_at: Option<Timestamp>,
     /// Whether the last change raised the limit (a cut may then follow at once).
     last_raised: bool,
+    /// A raise whose effect the PV readings have not yet shown in full: the inverter
+    /// ramps up to a raised limit (often over more than one PV poll), and a grid
+    /// reading taken during the ramp shows only part of it. Another raise waits until
+    /// the PV has stopped rising, and for a grid reading measured after that.
+    raise_pending: bool,
+    /// When the PV was last seen settled after a raise (a PV sample's measured time).
+    settled_at: Option<Timestamp>,
     /// Recent PV readings, stamped with when each was measured, to carry a late grid
     /// reading forward to now.
     pv_history: std::collections::VecDeque<(Timestamp, Power)>,
@@ -123,7 +130,13 @@ impl Guard {
             return (None, LimitReason::None);
         };
         if mode == Mode::Failsafe {
+            // The fail-safe set the limit: after it, the guard waits for a reading
+            // measured after the last forced tick (one taken before the meter went
+            // silent, served again as it returns, must not count).
+            self.acted_at = Some(now);
             self.limit = Some(inv.safe_limit);
+            self.last_raised = false;
+            self.raise_pending = false;
             self.export_since = None;
             self.escalated = false;
             return (self.limit, LimitReason::Failsafe);
@@ -160,6 +173,20 @@ impl Guard {
         let pv_change = match pv {
             Some(p) => {
                 if self.pv_history.back().is_none_or(|(t, _)| pv_measured_at > *t) {
+                    // A raise has settled once the PV reaches the limit, or stops rising
+                    // between two samples both measured after the raise.
+                    if self.raise_pending && self.acted_at.is_some_and(|a| pv_measured_at > a) {
+                        let margin = pinned_margin(inv.rated);
+                        let at_limit = p >= self.limit.unwrap_or(inv.rated) - margin;
+                        let flat = self
+                            .pv_history
+                            .back()
+                            .is_some_and(|(t, prev)| self.acted_at.is_some_and(|a| *t > a) && p <= *prev + margin);
+                        if at_limit || flat {
+                            self.raise_pending = false;
+                            self.settled_at = Some(pv_measured_at);
+                        }
+                    }
                     self.pv_history.push_back((pv_measured_at, p));
                 }
                 // Samples measured before the reading are never needed again: the next
@@ -198,6 +225,9 @@ impl Guard {
         if !may_act {
             return (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None });
         }
+        // Without a PV reading there is no ramp to watch: raises wait only for a fresh
+        // grid reading, as before.
+        let may_raise = pv.is_none() || (!self.raise_pending && self.settled_at.is_none_or(|s| measured_at >= s));
         let before = self.limit;
         let next = match self.limit {
             // Engage only on export beyond the limit that the loads could not take.
@@ -208,6 +238,8 @@ impl Guard {
                 if expected < target - tolerance {
                     // Cut the whole excess at once.
                     Some(base - (target - expected))
+                } else if expected > target + tolerance && !may_raise {
+                    Some(current)
                 } else if expected > target + tolerance {
                     // Importing more than the target: give the PV back gently — but no
                     // further than the PV could use now. Behind a cloud the array makes
@@ -222,7 +254,8 @@ impl Guard {
                         Some(p) => raised.min(p + excess + tolerance * 2.0).max(current),
                         None => raised,
                     })
-                } else if absorbable.0 > 0.0 && pv.is_none_or(|p| p >= current - pinned_margin(inv.rated)) {
+                } else if may_raise && absorbable.0 > 0.0 && pv.is_none_or(|p| p >= current - pinned_margin(inv.rated))
+                {
                     // At the target, the inverter held at its limit, and a modulating load
                     // could take more: probe upwards, never by more than would push the
                     // grid past the export limit.
@@ -252,6 +285,7 @@ impl Guard {
                 (Some(_), None) => true,
                 _ => false,
             };
+            self.raise_pending = self.last_raised && pv.is_some();
         }
         (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None })
     }

@@ -497,6 +497,69 @@ fn a_limit_raise_seen_by_a_late_meter_is_not_corrected_twice() {
     }
 }
 
+/// The live set-up in which a return from the fail-safe once exported: an inverter that
+/// ramps up to a raised limit at 10 % of its rating per second (so a big release takes
+/// more than one PV poll), a meter averaging 1 s and answering 0.5 s late, and the first
+/// answer after its silence the frozen reading from before it. The guard gave back the
+/// house's consumption in one step, then read a grid reading taken during the ramp as
+/// import still to be covered and raised again: 0.1–0.3 kW of export for a few seconds.
+/// A raise now waits for the PV to stop rising and for a reading measured after that.
+#[test]
+fn a_release_during_the_inverters_ramp_is_not_counted_twice() {
+    let loads = "  - name: tank\n    rated: 3kW\n    switch: { device: relays, coil: 0 }\n    start: surplus > 50kW\n";
+    let yaml = site("  export: forbidden\n  import_target: 100W", loads)
+        .replace("type: i32, unit: W }", "type: i32, unit: W, latency: 1500ms }");
+    let mut h = Harness::new(&yaml);
+    let (grid_p, pv_p) = (h.point("grid"), h.point("pv"));
+    let (potential, house, ramp_per_half_s) = (5000.0_f64, 770.0, 250.0);
+    let mut limit: Option<f64> = None;
+    // The limit the inverter obeys: the decision of the tick before (the write goes out
+    // on the inverter link's next cycle).
+    let mut written: Option<f64> = None;
+    let mut out = potential;
+    let mut grid_history: Vec<f64> = Vec::new(); // one entry per 0.5 s
+    let mut frozen = None;
+    let mut worst_export: f64 = 0.0;
+    for tick in 0..120 {
+        for _ in 0..2 {
+            let target = written.map_or(potential, |l| potential.min(l));
+            out = if target < out { target } else { (out + ramp_per_half_s).min(target) };
+            let grid = house - out;
+            grid_history.push(grid);
+            if tick >= 40 {
+                worst_export = worst_export.max(-grid);
+            }
+        }
+        let now = h.now.plus(h.site.tick);
+        let half = Duration::from_millis(500);
+        let n = grid_history.len();
+        h.snapshot.set(pv_p, out, now.minus(half));
+        // The meter's latency (1 s average, 0.5 s delay) is configured, but the poll
+        // adds up to a second more that nobody can see: the reading answered now
+        // describes the second that ended a whole second ago.
+        let reading = (grid_history[n.saturating_sub(4)] + grid_history[n.saturating_sub(3)]) / 2.0;
+        match tick {
+            // Silent for 15 s: the last reading is kept to be served again on return.
+            20..35 => {
+                frozen.get_or_insert(reading);
+            }
+            35 => h.snapshot.set(grid_p, frozen.unwrap(), now.minus(half)),
+            _ => h.snapshot.set(grid_p, reading, now.minus(half)),
+        }
+        let d = h.tick();
+        if tick == 30 {
+            assert_eq!(d.mode, Mode::Failsafe);
+            assert_eq!(d.inverter_limit, Some(Power::ZERO), "the safe limit");
+        }
+        written = limit;
+        limit = d.inverter_limit.map(|p| p.0);
+    }
+    let grid_now = *grid_history.last().unwrap();
+    eprintln!("after the return: worst export {worst_export:.0} W, grid now {grid_now:.0} W, limit {limit:?}");
+    assert!(worst_export <= 10.0, "no export on the way back from the fail-safe: {worst_export:.0} W");
+    assert!((0.0..=250.0).contains(&grid_now), "the house's consumption is given back: grid {grid_now:.0} W");
+}
+
 /// Closed loop for the carry-forward with a slow meter: PV polled every second, a grid
 /// reading that describes the site `latency_s` before it arrives, a 3 kW house and the
 /// sun coming out from behind a cloud edge (the array's potential ramps 1 → 5 kW at
