@@ -131,7 +131,16 @@ async fn a_silent_meter_curtails_and_opens_the_relays_within_the_timeout() {
     assert_eq!(s.mode, "failsafe");
     assert_eq!(s.inverter.as_ref().unwrap().reason, "failsafe");
 
-    // The meter speaks again: the rules take over, calmly.
+    // The meter speaks again (its first answer the reading from before its silence):
+    // the limit is given back without a moment of export, and the rules take over,
+    // calmly. (A live run once exported 0.1 kW for two seconds here, a reading taken
+    // during the inverter's ramp read as import still to cover; on the paused clock the
+    // polls and plant steps line up too well to show it, so the engine test
+    // `a_release_during_the_inverters_ramp_is_not_counted_twice` reproduces that case.)
+    let until_back = Duration::from_secs(60).saturating_sub(silent.elapsed());
+    let exported = longest_export(&sim, until_back + Duration::from_secs(40)).await;
+    println!("simulator: meter back after 60 s → longest export above 20 W at the meter {} ms", exported.as_millis());
+    assert_eq!(exported, Duration::ZERO, "no export on the way back from the fail-safe");
     status_until(&daemon, Duration::from_secs(120), "normal again", |s| s.mode == "normal").await;
     daemon.shutdown();
     daemon.wait().await;
