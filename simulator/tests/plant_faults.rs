@@ -29,6 +29,33 @@ fn a_silent_meter_freezes_and_times_out() {
 }
 
 #[test]
+fn a_frozen_meter_answers_on_time_but_repeats_its_last_reading() {
+    // The PV changes under it, so a live meter's reading would move.
+    let yaml = format!(
+        "{QUIET}meter: {{ period: 1s, delay: 2s, noise: 10W }}\nfaults: [{{ kind: meter_frozen, start: 10min, duration: 5min }}]\n"
+    );
+    let mut p = plant(&yaml, Constant(300.0));
+    run(&mut p, 600, 1.0);
+    let before = p.readings().grid.unwrap();
+    run(&mut p, 1, 1.0);
+    let queued = p.readings().grid.unwrap();
+    assert_ne!(queued.power_w, before.power_w, "noise moves a live reading");
+    run(&mut p, 120, 1.0);
+    let during = p.readings().grid.unwrap();
+    assert_eq!(during.updated_ms, p.now_ms(), "still reporting on time");
+    run(&mut p, 1, 1.0);
+    let next = p.readings().grid.unwrap();
+    assert_eq!(next.power_w, during.power_w, "the same reading, report after report");
+    assert_eq!((next.import_wh, next.export_wh), (during.import_wh, during.export_wh), "counters hang too");
+    assert!(next.updated_ms > during.updated_ms);
+    assert!(p.bus().read(METER_UNIT, HR, SUNSPEC_BASE, 2).is_ok(), "the unit answers");
+    run(&mut p, 200, 1.0);
+    let after = p.readings().grid.unwrap();
+    run(&mut p, 1, 1.0);
+    assert_ne!(p.readings().grid.unwrap().power_w, after.power_w, "live again");
+}
+
+#[test]
 fn a_restarting_relay_module_drops_its_outputs_and_forgets_its_coils() {
     let yaml = format!(
         "{QUIET}pump: {{ rated: 750W }}\nloads: [{{ name: heater, kind: switched, rated: 1kW }}]\nwiring: [pump]\nfaults: [{{ kind: device_restart, device: relays, start: 60s, duration: 30s }}]\n"

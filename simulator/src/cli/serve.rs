@@ -46,7 +46,7 @@ pub struct Args {
     #[arg(long, value_enum)]
     weather: Option<Sky>,
     /// A fault to inject (repeatable): KIND[:ARG]…[@START][+DURATION], e.g.
-    /// meter-silent@120s+30s, relay-stuck:pump:open@1h+10min, restart:inverter@5min+20s,
+    /// meter-silent@120s+30s, meter-frozen@2min+1min, relay-stuck:pump:open@1h+10min, restart:inverter@5min+20s,
     /// garbage:meter:spike@90s+5s. START counts from --start. A relay channel is the
     /// plant's name for it (`tank`, `pump`, a `plant.loads` name), not the site's load name.
     #[arg(long = "fault", value_name = "SPEC")]

@@ -736,6 +736,16 @@ pub enum FaultConfig {
         #[serde(deserialize_with = "quantity::duration")]
         duration: f64,
     },
+    /// The grid meter's reading hangs while its gateway keeps answering: every report
+    /// repeats the last value (and energy counters) with a fresh time, so the link looks
+    /// alive and only the repetition gives it away.
+    MeterFrozen {
+        /// When it begins.
+        start: When,
+        /// How long it lasts.
+        #[serde(deserialize_with = "quantity::duration")]
+        duration: f64,
+    },
     /// A device reboots: no service for `duration`, then its registers and coils are at
     /// their power-on state.
     DeviceRestart {

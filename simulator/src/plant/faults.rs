@@ -17,6 +17,7 @@ pub fn device_index(d: Device) -> usize {
 #[derive(Debug, Clone, Copy)]
 enum Kind {
     MeterSilent,
+    MeterFrozen,
     Restart(usize),
     Stuck { channel: usize, closed: bool },
     Garbage(usize, GarbageMode),
@@ -34,6 +35,8 @@ struct Event {
 pub struct Active {
     /// The grid meter reports nothing.
     pub meter_silent: bool,
+    /// The grid meter repeats its last reading.
+    pub meter_frozen: bool,
     /// Per device (unit − 1): rebooting.
     pub restarting: [bool; 4],
     /// Per device (unit − 1): reporting garbage.
@@ -102,6 +105,7 @@ impl Faults {
             next = next.min(e.end_ms);
             match e.kind {
                 Kind::MeterSilent => active.meter_silent = true,
+                Kind::MeterFrozen => active.meter_frozen = true,
                 Kind::Restart(d) => active.restarting[d] = true,
                 Kind::Stuck { channel, closed } => active.stuck[channel] = Some(closed),
                 Kind::Garbage(d, mode) => active.garbage[d] = Some(mode),
@@ -117,6 +121,7 @@ impl Faults {
 fn event(cfg: &FaultConfig, from_ms: i64, channel: &impl Fn(&str) -> Option<usize>) -> Result<Event, PlantError> {
     let (start, duration, kind) = match cfg {
         FaultConfig::MeterSilent { start, duration } => (start, duration, Kind::MeterSilent),
+        FaultConfig::MeterFrozen { start, duration } => (start, duration, Kind::MeterFrozen),
         FaultConfig::DeviceRestart { device, start, duration } => {
             (start, duration, Kind::Restart(device_index(*device)))
         }

@@ -1,5 +1,5 @@
 //! Grid meter: reports the mean grid power over each period with seeded noise, a
-//! reporting delay, energy counters, and the silent and garbage faults.
+//! reporting delay, energy counters, and the silent, frozen and garbage faults.
 
 use std::collections::VecDeque;
 
@@ -31,6 +31,10 @@ pub struct Meter {
     acc_ms: i64,
     next_report_ms: i64,
     queue: VecDeque<Report>,
+    /// While frozen: the reading every report repeats (the last one made before).
+    frozen: Option<Report>,
+    /// The last report made (shown or still queued).
+    last: Report,
     /// The report shown now.
     pub shown: Report,
 }
@@ -50,23 +54,19 @@ impl Meter {
             acc_ms: 0,
             next_report_ms: start_ms + period_ms,
             queue: VecDeque::with_capacity((delay_ms / period_ms + 2) as usize),
+            frozen: None,
+            last: Report { visible_ms: start_ms, ..Report::default() },
             shown: Report { visible_ms: start_ms, ..Report::default() },
         }
     }
 
     /// Integrates `grid_w` over a step ending at `end_ms` of `dt_ms`. `counters` are the
     /// true import and export energies at `end_ms`. A silent meter measures but does not
-    /// report; a garbage fault corrupts what it reports.
+    /// report; a frozen one reports on time but repeats its last reading; a garbage fault
+    /// corrupts what it reports.
     #[inline]
-    pub fn step(
-        &mut self,
-        end_ms: i64,
-        dt_ms: i64,
-        grid_w: f64,
-        counters: (f64, f64),
-        silent: bool,
-        garbage: Option<GarbageMode>,
-    ) {
+    pub fn step(&mut self, end_ms: i64, dt_ms: i64, grid_w: f64, counters: (f64, f64), faults: MeterFaults) {
+        let MeterFaults { silent, frozen, garbage } = faults;
         self.acc_w_ms += grid_w * dt_ms as f64;
         self.acc_ms += dt_ms;
         if end_ms >= self.next_report_ms {
@@ -82,18 +82,24 @@ impl Meter {
             if let Some(mode) = garbage {
                 w = garble(mode, w, end_ms as u64);
             }
-            if !silent && self.delay_ms == 0 {
-                self.shown = Report { visible_ms: end_ms, w, import_wh: counters.0, export_wh: counters.1 };
-            } else if !silent {
-                if self.queue.len() == self.queue.capacity() {
-                    self.queue.pop_front();
+            let mut report =
+                Report { visible_ms: end_ms + self.delay_ms, w, import_wh: counters.0, export_wh: counters.1 };
+            if frozen {
+                let held = *self.frozen.get_or_insert(self.last);
+                report = Report { visible_ms: report.visible_ms, ..held };
+            } else {
+                self.frozen = None;
+            }
+            if !silent {
+                self.last = report;
+                if self.delay_ms == 0 {
+                    self.shown = report;
+                } else {
+                    if self.queue.len() == self.queue.capacity() {
+                        self.queue.pop_front();
+                    }
+                    self.queue.push_back(report);
                 }
-                self.queue.push_back(Report {
-                    visible_ms: end_ms + self.delay_ms,
-                    w,
-                    import_wh: counters.0,
-                    export_wh: counters.1,
-                });
             }
             self.acc_w_ms = 0.0;
             self.acc_ms = 0;
@@ -109,6 +115,17 @@ impl Meter {
             self.queue.pop_front();
         }
     }
+}
+
+/// The meter's faults in force during a step.
+#[derive(Debug, Clone, Copy, Default)]
+pub struct MeterFaults {
+    /// Reports nothing (a dead link or a rebooting meter).
+    pub silent: bool,
+    /// Reports on time, repeating the last reading.
+    pub frozen: bool,
+    /// Corrupts what it reports.
+    pub garbage: Option<GarbageMode>,
 }
 
 /// Corrupts a value the way a faulty device would, reproducibly from `salt`.

@@ -741,15 +741,13 @@ impl Plant {
         // The devices' clock reads the end of the step, so requests between steps and
         // timers that expire now act before the next step.
         self.bus.tick(self.now_ms);
-        let meter_silent = self.faults.active.meter_silent || self.faults.active.restarting[0];
-        self.meter.step(
-            self.now_ms,
-            dt_ms,
-            grid_w,
-            (f.grid_import.wh, f.grid_export.wh),
-            meter_silent,
-            self.faults.active.garbage[0],
-        );
+        let active = &self.faults.active;
+        let meter_faults = meter::MeterFaults {
+            silent: active.meter_silent || active.restarting[0],
+            frozen: active.meter_frozen,
+            garbage: active.garbage[0],
+        };
+        self.meter.step(self.now_ms, dt_ms, grid_w, (f.grid_import.wh, f.grid_export.wh), meter_faults);
         self.bus.readings.pv.limit_w = limit;
         self.bus.readings.pv.available_w = pv_sample.available_ac_w;
         self.refresh_readings(battery_ac);

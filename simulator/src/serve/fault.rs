@@ -4,6 +4,7 @@
 //! ```text
 //! SPEC     = KIND [":" ARG]* ["@" START] ["+" DURATION]
 //! KIND     = meter-silent
+//!          | meter-frozen                        answers, but repeats its last reading
 //!          | restart:DEVICE                      DEVICE = meter | inverter | relays | sensors
 //!          | relay-stuck:CHANNEL[:closed|:open]  closed by default
 //!          | garbage:DEVICE[:nan|:spike|:random] random by default
@@ -60,6 +61,10 @@ pub fn parse_fault(spec: &str) -> Result<FaultConfig, ServeError> {
             arity(0)?;
             FaultConfig::MeterSilent { start, duration }
         }
+        "meter-frozen" => {
+            arity(0)?;
+            FaultConfig::MeterFrozen { start, duration }
+        }
         "restart" => {
             arity(1)?;
             let device = parse_device(args.first().copied()).map_err(bad)?;
@@ -91,7 +96,7 @@ pub fn parse_fault(spec: &str) -> Result<FaultConfig, ServeError> {
         }
         other => {
             return Err(bad(format!(
-                "unknown fault `{other}`: use meter-silent, restart:DEVICE, relay-stuck:CHANNEL or garbage:DEVICE"
+                "unknown fault `{other}`: use meter-silent, meter-frozen, restart:DEVICE, relay-stuck:CHANNEL or garbage:DEVICE"
             )));
         }
     };
@@ -137,6 +142,7 @@ mod tests {
     fn specs_map_onto_plant_faults() {
         check("meter-silent@120s+30s", "MeterSilent { start: After(120.0), duration: 30.0 }");
         check("meter-silent+30s", "MeterSilent { start: After(0.0), duration: 30.0 }");
+        check("meter-frozen@2min+1min", "MeterFrozen { start: After(120.0), duration: 60.0 }");
         check("restart:inverter@10min+20s", "DeviceRestart { device: Inverter, start: After(600.0), duration: 20.0 }");
         check(
             "relay-stuck:pool_pump@1h+10min",
@@ -169,7 +175,7 @@ mod tests {
     fn mistakes_say_what_would_be_right() {
         check(
             "meter-quiet@1s",
-            "error: fault `meter-quiet@1s`: unknown fault `meter-quiet`: use meter-silent, restart:DEVICE, relay-stuck:CHANNEL or garbage:DEVICE",
+            "error: fault `meter-quiet@1s`: unknown fault `meter-quiet`: use meter-silent, meter-frozen, restart:DEVICE, relay-stuck:CHANNEL or garbage:DEVICE",
         );
         check(
             "restart:pump@1s",
