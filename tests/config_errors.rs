@@ -195,6 +195,13 @@ fn an_error_in_a_folded_rule_is_shown_where_it_is() {
     check("folded-rule");
 }
 
+/// A frozen-reading timeout is for measurements only, and must outlast two polls: one
+/// repeat proves nothing.
+#[test]
+fn frozen_after_on_an_on_off_value_or_shorter_than_two_polls_is_refused() {
+    check("frozen-after");
+}
+
 /// Polls and timeouts of no time, a limit re-written without pause, and an export limit
 /// without a unit.
 #[test]

@@ -1,8 +1,8 @@
 //! The daemon against the plant simulator (`spillway_sim::serve`) over loopback Modbus
 //! TCP, with the zero-export example site (SunSpec meter and inverter, relay module,
 //! tank sensor): a PV step is held at the meter and a load drop answered within a poll,
-//! a tick and the meter's latency; a silent meter
-//! sends everything to its safe state; a simulator restart is followed by reconnection
+//! a tick and the meter's latency; a silent meter, and one whose gateway repeats its
+//! last reading, send everything to its safe state; a simulator restart is followed by reconnection
 //! and re-assertion without a burst of switchings; exception responses are counted.
 //! Paused tokio clock (the simulator's clock runs on tokio time too): the figures
 //! printed are simulated time, exact and repeatable.
@@ -141,6 +141,46 @@ async fn a_silent_meter_curtails_and_opens_the_relays_within_the_timeout() {
     let exported = longest_export(&sim, until_back + Duration::from_secs(40)).await;
     println!("simulator: meter back after 60 s → longest export above 20 W at the meter {} ms", exported.as_millis());
     assert_eq!(exported, Duration::ZERO, "no export on the way back from the fail-safe");
+    status_until(&daemon, Duration::from_secs(120), "normal again", |s| s.mode == "normal").await;
+    daemon.shutdown();
+    daemon.wait().await;
+    sim.handle.stop().await;
+}
+
+/// A meter gateway that keeps answering with the last reading of a meter that hung: the
+/// link stays up, so only `frozen_after` (1 min on the example's grid point) can tell.
+#[tokio::test(start_paused = true)]
+async fn a_frozen_meter_is_caught_by_its_repeated_reading_and_the_site_fails_safe() {
+    let sim = Sim::start(5200.0).await;
+    let yaml = sim.site_yaml();
+    assert!(yaml.contains("frozen_after: 1min"), "the example guards its grid point");
+    let daemon = daemon_for(&sim, &yaml).await;
+    status_until(&daemon, Duration::from_secs(240), "heater on", |s| load(s, "water_heater").on).await;
+    sim_until("tank relay closed", Duration::from_secs(5), || sim.relays()[0]).await;
+    tokio::time::sleep(Duration::from_secs(10)).await;
+
+    let frozen = Instant::now();
+    sim.handle.inject_spec("meter-frozen+120s").unwrap();
+    tokio::time::sleep(Duration::from_secs(30)).await;
+    let s = daemon.status().borrow().clone();
+    assert_eq!(s.mode, "normal", "30 s of one reading is not yet proof");
+    assert_eq!(s.devices[0].up, Some(true), "the gateway answers every poll");
+    let safe = sim_until("safe states at the plant", Duration::from_secs(45), || {
+        !sim.relays()[0] && sim.limit_w() == Some(0.0)
+    })
+    .await;
+    println!(
+        "simulator: meter frozen → relays open and inverter at 0 W after {} ms (frozen_after 1 min)",
+        (safe - frozen).as_millis()
+    );
+    // A minute of one reading, then one poll and one tick to act on it.
+    assert!(safe - frozen <= Duration::from_secs(64), "{:?}", safe - frozen);
+    let s = status_until(&daemon, Duration::from_secs(2), "fail-safe", |s| s.mode == "failsafe").await;
+    let grid = s.points.iter().find(|p| p.name == "grid").unwrap();
+    assert_eq!(grid.quality, "frozen");
+    assert!(load(&s, "water_heater").why.contains("\"grid\" is frozen"), "{}", load(&s, "water_heater").why);
+
+    // The meter moves again: the site leaves the fail-safe by itself.
     status_until(&daemon, Duration::from_secs(120), "normal again", |s| s.mode == "normal").await;
     daemon.shutdown();
     daemon.wait().await;

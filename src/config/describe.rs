@@ -117,9 +117,11 @@ pub fn describe(site: &Site) -> String {
             p.dimension.describe().trim_start_matches("a ").trim_start_matches("an ").to_owned()
         };
         let role = if ROLE_NAMES.iter().any(|(n, _)| *n == p.name) { "  (site role)" } else { "" };
+        let frozen =
+            p.frozen_after.map_or(String::new(), |f| format!(", frozen after {} unchanged", format_duration(f)));
         let _ = writeln!(
             out,
-            "  {:<16} {device}: {source}; {what}, every {}, stale after {}{role}",
+            "  {:<16} {device}: {source}; {what}, every {}, stale after {}{frozen}{role}",
             p.name,
             format_duration(p.poll),
             format_duration(p.stale_after)

@@ -818,6 +818,7 @@ impl Builder<'_, '_> {
         let poll = m.get("poll");
         let stale = m.get("stale_after");
         let latency_node = m.get("latency");
+        let frozen_node = m.get("frozen_after");
         let span = m.span();
         m.finish(self.diags);
 
@@ -1091,8 +1092,13 @@ impl Builder<'_, '_> {
             );
             return None;
         }
+        let frozen_after = match frozen_node {
+            Some(n) => Some(self.frozen_after(n, &what, boolean, poll)?),
+            None => None,
+        };
         Some(Point {
             latency,
+            frozen_after,
             name: name.to_owned(),
             device: device_id,
             read,
@@ -1102,6 +1108,39 @@ impl Builder<'_, '_> {
             poll,
             stale_after,
         })
+    }
+
+    /// `frozen_after`: how long a measurement may repeat exactly before it counts as
+    /// stale. At least two polls (one repeat proves nothing), and only for measurements:
+    /// an on/off value may rightly stay put for days.
+    fn frozen_after(&mut self, n: &Node, what: &str, boolean: bool, poll: Duration) -> Option<Duration> {
+        let d = values::duration(n, "the frozen timeout", self.diags)?;
+        if boolean {
+            self.diags.error(
+                "C0265",
+                format!("{what} is an on/off value: `frozen_after` is for measurements"),
+                n.span.clone(),
+                "an on/off value may rightly stay the same for days",
+            );
+            return None;
+        }
+        if d < poll * 2 {
+            self.diags.push(
+                Diagnostic::error(
+                    "C0266",
+                    format!(
+                        "{what}: frozen_after ({}) is shorter than two polls ({})",
+                        units::format_duration(d),
+                        units::format_duration(poll * 2)
+                    ),
+                    n.span.clone(),
+                )
+                .with_label("a value read once or twice proves nothing by repeating")
+                .with_note("a live meter's reading changes in the last digit within seconds; 30s to 2min is typical"),
+            );
+            return None;
+        }
+        Some(d)
     }
 
     fn value_type(&mut self, node: &Node) -> Option<ValueType> {

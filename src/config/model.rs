@@ -286,6 +286,10 @@ pub struct Point {
     /// its last correction before correcting again, so a slow meter cannot make it
     /// correct twice for the same excess.
     pub latency: Duration,
+    /// A value that repeats exactly for this long counts as stale: a gateway that keeps
+    /// serving its last reading after the meter behind it died, or a meter whose
+    /// measurement has hung, answers every poll and would otherwise look alive.
+    pub frozen_after: Option<Duration>,
 }
 
 /// Where a point's value comes from.

@@ -206,7 +206,7 @@ impl Control {
         if let Some(text) = log_limit(&mut self.last_limit, d) {
             push_recent(&mut self.recent, d.now, text);
         }
-        log_mode(&mut self.was_normal, d.mode);
+        log_mode(&mut self.was_normal, d.mode, &self.engine);
         trace!(
             mode = mode_word(d.mode),
             surplus_w = d.surplus.0,
@@ -479,7 +479,7 @@ fn log_limit(last: &mut (Option<Power>, LimitReason), d: &Decisions) -> Option<S
     }
 }
 
-fn log_mode(was_normal: &mut bool, mode: Mode) {
+fn log_mode(was_normal: &mut bool, mode: Mode, engine: &Engine) {
     match mode {
         Mode::Normal if !*was_normal => {
             *was_normal = true;
@@ -487,7 +487,8 @@ fn log_mode(was_normal: &mut bool, mode: Mode) {
         }
         Mode::Failsafe if *was_normal => {
             *was_normal = false;
-            warn!("fail-safe: a guard signal is stale; loads in their safe states, inverter at its safe limit");
+            let lost = engine.lost_guard_signals().join(", ");
+            warn!(lost = %lost, "fail-safe: a guard signal is lost; loads in their safe states, inverter at its safe limit");
         }
         Mode::Outage if *was_normal => {
             *was_normal = false;

@@ -71,12 +71,12 @@ impl fmt::Display for Command {
 /// override, an override beats an obligation, an obligation beats the rules.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub enum Reason {
-    /// A signal it depends on is stale or missing: held in its safe state.
+    /// A signal it depends on is stale, missing or frozen: held in its safe state.
     SignalLost {
         /// Point index of the first stale signal.
         point: usize,
     },
-    /// The site is in fail-safe (a guard signal is stale).
+    /// The site is in fail-safe (a guard signal is stale, missing or frozen).
     Failsafe,
     /// Fresh data returned; held a little longer so the return is calm.
     Recovering {
@@ -201,7 +201,7 @@ pub enum LimitReason {
     ExportGuard,
     /// Export persisted past the guard deadline: the safe limit.
     Escalated,
-    /// A guard signal is stale.
+    /// A guard signal is stale, missing or frozen.
     Failsafe,
 }
 
@@ -210,7 +210,7 @@ pub enum LimitReason {
 pub enum Mode {
     /// Rules in charge.
     Normal,
-    /// A guard signal is stale: everything in its safe state.
+    /// A guard signal is lost: everything in its safe state.
     Failsafe,
     /// Fresh data returned; loads held for the recovery period.
     Recovering,
@@ -243,7 +243,7 @@ impl fmt::Display for Reason {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
             Reason::SignalLost { point } => write!(f, "safe state: signal #{point} is stale"),
-            Reason::Failsafe => f.write_str("safe state: a guard signal is stale"),
+            Reason::Failsafe => f.write_str("safe state: a guard signal is lost (stale, missing or frozen)"),
             Reason::Recovering { left } => {
                 write!(f, "held in safe state after signals returned ({} left)", format_duration(*left))
             }

@@ -95,6 +95,8 @@ pub struct Engine {
     site: Arc<Site>,
     clock: SiteClock,
     values: Vec<f64>,
+    /// Each point's quality at the last tick (why a signal was lost).
+    qualities: Vec<Quality>,
     last_now: Option<Timestamp>,
     day: Option<LocalDay>,
     local: LocalClock,
@@ -159,6 +161,7 @@ impl Engine {
         Engine {
             clock: SiteClock::new(site.timezone),
             values: vec![f64::NAN; site.slots.len],
+            qualities: vec![Quality::Missing; site.points.len()],
             last_now: None,
             day: None,
             local: LocalClock { seconds_of_day: 0, weekday: chrono::Weekday::Mon },
@@ -255,6 +258,33 @@ impl Engine {
         self.values.get(slot.0 as usize).copied().unwrap_or(f64::NAN)
     }
 
+    /// The guard signals that are not fresh at the last tick, each with what is wrong
+    /// (`point "grid" is frozen (the same reading for over 1 min)`): why the site is in
+    /// fail-safe.
+    pub fn lost_guard_signals(&self) -> Vec<String> {
+        self.guard_points
+            .iter()
+            .filter(|p| self.qualities.get(p.0).is_some_and(|q| *q != Quality::Fresh))
+            .map(|p| self.point_problem(p.0))
+            .collect()
+    }
+
+    /// What is wrong with a point that is not fresh, in words.
+    fn point_problem(&self, point: usize) -> String {
+        let Some(p) = self.site.points.get(point) else {
+            return format!("point #{point} is stale or missing");
+        };
+        match (self.qualities.get(point), p.frozen_after) {
+            (Some(Quality::Frozen), Some(f)) => format!(
+                "point \"{}\" is frozen (the same reading for over {})",
+                p.name,
+                crate::units::format_duration(f)
+            ),
+            (Some(q @ (Quality::Stale | Quality::Missing)), _) => format!("point \"{}\" is {}", p.name, q.word()),
+            _ => format!("point \"{}\" is stale or missing", p.name),
+        }
+    }
+
     /// A sentence saying why a load is where it is, with the rule's current values.
     pub fn explain(&self, load: LoadId) -> String {
         let (Some(state), Some(l)) = (self.loads.get(load.0), self.site.loads.get(load.0)) else {
@@ -267,10 +297,11 @@ impl Engine {
         };
         let base = match state.reason {
             Reason::SignalLost { point } => {
-                format!(
-                    "safe state: point \"{}\" is stale or missing",
-                    self.site.points.get(point).map_or("?", |p| p.name.as_str())
-                )
+                format!("safe state: {}", self.point_problem(point))
+            }
+            Reason::Failsafe => {
+                let lost = self.lost_guard_signals();
+                if lost.is_empty() { Reason::Failsafe.to_string() } else { format!("safe state: {}", lost.join(", ")) }
             }
             Reason::Obligation { index } => {
                 format!(
@@ -364,12 +395,13 @@ impl Engine {
         self.local = self.clock.at(now);
         self.calendar(now);
 
-        // Freshness: stale or missing values become NaN, which rules read as unknown.
+        // Freshness: stale, missing or frozen values become NaN, which rules read as
+        // unknown.
         for (i, p) in site.points.iter().enumerate() {
             let s = snapshot.samples.get(i).copied().unwrap_or(Sample::MISSING);
-            let fresh =
-                s.value.is_finite() && s.at <= now.plus(Duration::from_secs(5)) && now.since(s.at) <= p.stale_after;
-            self.values[i] = if fresh { s.value } else { f64::NAN };
+            let q = s.quality(now, p);
+            self.qualities[i] = q;
+            self.values[i] = if q == Quality::Fresh { s.value } else { f64::NAN };
         }
         let guard_ok = self.guard_points.iter().all(|p| self.values[p.0].is_finite());
         self.update_mode(now, guard_ok);

@@ -1,10 +1,15 @@
-//! The engine's input: the latest value of every point and when it was measured.
+//! The engine's input: the latest value of every point, when it was measured, and since
+//! when it has read exactly that value.
 //!
 //! Sources overwrite samples (latest value wins); the engine judges freshness itself
 //! from each sample's age, so staleness is an input to the decision, never an exception.
 
-use crate::config::model::{PointId, Site};
+use crate::config::model::{Point, PointId, Site};
 use crate::units::Timestamp;
+
+/// How far ahead of `now` a sample's time may lie before it is distrusted (a source
+/// with a clock set wrong); beyond it the sample counts as stale.
+const FUTURE_SLACK_MS: i64 = 5_000;
 
 /// One measurement: value in the point's base unit, and when it was taken.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -13,11 +18,35 @@ pub struct Sample {
     pub value: f64,
     /// When it was measured; [`Timestamp::NEVER`] if it never arrived.
     pub at: Timestamp,
+    /// When the point first read this exact value (the start of a run of identical
+    /// readings); [`Timestamp::NEVER`] if it never arrived.
+    pub since: Timestamp,
 }
 
 impl Sample {
     /// A sample that never arrived.
-    pub const MISSING: Sample = Sample { value: f64::NAN, at: Timestamp::NEVER };
+    pub const MISSING: Sample = Sample { value: f64::NAN, at: Timestamp::NEVER, since: Timestamp::NEVER };
+
+    /// How usable this sample of `point` is at `now`.
+    ///
+    /// A sample is *missing* if it never arrived or is not a number, *stale* once older
+    /// than the point's `stale_after` (or dated more than 5 s ahead of `now`), and
+    /// *frozen* once the point has read exactly the same value for longer than its
+    /// `frozen_after`: a gateway that keeps answering with the last reading of a meter
+    /// that died looks alive to every poll.
+    #[inline]
+    pub fn quality(&self, now: Timestamp, point: &Point) -> Quality {
+        if self.at == Timestamp::NEVER || !self.value.is_finite() {
+            return Quality::Missing;
+        }
+        if self.at.0 > now.0.saturating_add(FUTURE_SLACK_MS) || now.since(self.at) > point.stale_after {
+            return Quality::Stale;
+        }
+        match point.frozen_after {
+            Some(f) if self.at.since(self.since) > f => Quality::Frozen,
+            _ => Quality::Fresh,
+        }
+    }
 }
 
 /// How usable a sample is at a given instant.
@@ -29,6 +58,20 @@ pub enum Quality {
     Stale,
     /// Never received (or not a number).
     Missing,
+    /// Read exactly the same for longer than the point's `frozen_after`.
+    Frozen,
+}
+
+impl Quality {
+    /// The word the status page and explanations use.
+    pub fn word(self) -> &'static str {
+        match self {
+            Quality::Fresh => "fresh",
+            Quality::Stale => "stale",
+            Quality::Missing => "missing",
+            Quality::Frozen => "frozen",
+        }
+    }
 }
 
 /// The latest sample of every point of a site, indexed by [`PointId`].
@@ -44,10 +87,14 @@ impl Snapshot {
         Snapshot { samples: vec![Sample::MISSING; site.points.len()] }
     }
 
-    /// Records a measurement.
+    /// Records a measurement. A value identical to the last one (bit for bit) continues
+    /// the run of identical readings; any other value starts a new one.
+    #[inline]
     pub fn set(&mut self, point: PointId, value: f64, at: Timestamp) {
         if let Some(s) = self.samples.get_mut(point.0) {
-            *s = Sample { value, at };
+            let repeat = s.since != Timestamp::NEVER && s.value.to_bits() == value.to_bits();
+            let since = if repeat { s.since } else { at };
+            *s = Sample { value, at, since };
         }
     }
 

@@ -707,6 +707,56 @@ fn stale_grid_signal_sends_loads_to_safe_states_and_curtails_within_the_timeout(
 }
 
 #[test]
+fn a_grid_reading_that_repeats_exactly_past_frozen_after_puts_the_site_in_fail_safe() {
+    let yaml = site("  export: forbidden\n  import_target: 40W", TWO_LOADS).replace(
+        "grid:      { device: meter, register: 0, type: i32, unit: W }",
+        "grid:      { device: meter, register: 0, type: i32, unit: W, frozen_after: 30s }",
+    );
+    let mut h = Harness::new(&yaml);
+    h.set("pv", 4000.0);
+    // A live meter: the last digit moves every reading.
+    for i in 0..40 {
+        h.set("grid", -3500.0 - f64::from(i % 3));
+        h.tick();
+    }
+    assert_eq!(h.engine.decisions().mode, Mode::Normal);
+    assert_eq!(h.command("tank"), Command::On);
+    // The gateway keeps answering on time with the last reading of a meter that hung.
+    h.set("grid", -500.0);
+    let mut failsafe_after = None;
+    for t in 1..=40 {
+        let d = h.tick();
+        if d.mode == Mode::Failsafe {
+            failsafe_after = Some(t);
+            break;
+        }
+    }
+    // 30 s of the same reading, then the next one proves it hung.
+    assert_eq!(failsafe_after, Some(31), "fail-safe once the reading has repeated for over 30 s");
+    let d = h.engine.decisions().clone();
+    assert!(d.loads.iter().all(|l| l.command == Command::Off && l.reason == Reason::Failsafe));
+    assert_eq!(d.inverter_limit, Some(Power(0.0)));
+    let why = h.engine.explain(LoadId(0));
+    assert!(why.contains("\"grid\" is frozen (the same reading for over 30 s)"), "{why}");
+    assert_eq!(h.engine.lost_guard_signals(), vec![why.trim_start_matches("safe state: ").to_owned()]);
+    // The meter comes back to life: the fail-safe ends.
+    for i in 0..5 {
+        h.set("grid", -500.0 - f64::from(i));
+        h.tick();
+    }
+    assert_ne!(h.engine.decisions().mode, Mode::Failsafe);
+}
+
+#[test]
+fn a_constant_reading_without_frozen_after_stays_fresh() {
+    let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
+    h.set("pv", 4000.0);
+    h.set("grid", -3500.0);
+    h.run(secs(600));
+    assert_eq!(h.engine.decisions().mode, Mode::Normal);
+}
+
+#[test]
 fn fresh_data_returning_causes_at_most_one_switching_per_load_in_the_next_minute() {
     let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
     h.set("pv", 4000.0);

@@ -153,7 +153,7 @@ pub struct PointStatus {
     pub value: Option<f64>,
     /// The base unit (`W`, `°C`, `%`, ... ; empty for plain numbers and booleans).
     pub unit: String,
-    /// `fresh`, `stale` or `missing`.
+    /// `fresh`, `stale`, `missing` or `frozen`.
     pub quality: String,
     /// Age of the latest value in seconds; `null` when missing.
     pub age_s: Option<f64>,
@@ -215,7 +215,7 @@ pub fn build(engine: &Engine, snapshot: &Snapshot, health: &[DeviceHealth], rece
         let id = id?;
         let p = site.points.get(id.0)?;
         let s = snapshot.get(id);
-        (quality(s.value, s.at, now, p.stale_after) == Quality::Fresh).then_some(s.value)
+        (s.quality(now, p) == Quality::Fresh).then_some(s.value)
     };
     let persisted = engine.persisted();
     let loads: Vec<LoadStatus> = site
@@ -305,33 +305,18 @@ pub fn stopped(mut status: Status) -> Status {
     status
 }
 
-fn quality(value: f64, at: Timestamp, now: Timestamp, stale_after: Duration) -> Quality {
-    if at == Timestamp::NEVER || value.is_nan() {
-        Quality::Missing
-    } else if now.since(at) > stale_after {
-        Quality::Stale
-    } else {
-        Quality::Fresh
-    }
-}
-
 fn points(site: &Site, snapshot: &Snapshot, now: Timestamp) -> Vec<PointStatus> {
     site.points
         .iter()
         .enumerate()
         .map(|(i, p)| {
             let s = snapshot.get(PointId(i));
-            let q = quality(s.value, s.at, now, p.stale_after);
+            let q = s.quality(now, p);
             PointStatus {
                 name: p.name.clone(),
                 value: (!s.value.is_nan()).then_some(s.value),
                 unit: if p.boolean { String::new() } else { p.dimension.base_unit().to_owned() },
-                quality: match q {
-                    Quality::Fresh => "fresh",
-                    Quality::Stale => "stale",
-                    Quality::Missing => "missing",
-                }
-                .to_owned(),
+                quality: q.word().to_owned(),
                 age_s: (s.at != Timestamp::NEVER).then(|| (now.0 - s.at.0).max(0) as f64 / 1000.0),
             }
         })
@@ -360,7 +345,7 @@ fn limit_why(reason: LimitReason) -> &'static str {
         LimitReason::None => "not limited",
         LimitReason::ExportGuard => "export guard: the loads cannot take all the PV, so the inverter is held back",
         LimitReason::Escalated => "export guard: export outlasted the deadline, held at the safe limit",
-        LimitReason::Failsafe => "fail-safe: a guard signal is stale, held at the safe limit",
+        LimitReason::Failsafe => "fail-safe: a guard signal is lost (stale, missing or frozen), held at the safe limit",
     }
 }
 
