@@ -97,6 +97,8 @@ pub struct Engine {
     values: Vec<f64>,
     /// Each point's quality at the last tick (why a signal was lost).
     qualities: Vec<Quality>,
+    /// Each point's timeouts, in milliseconds.
+    timeouts: Vec<snapshot::Timeouts>,
     last_now: Option<Timestamp>,
     day: Option<LocalDay>,
     local: LocalClock,
@@ -162,6 +164,7 @@ impl Engine {
             clock: SiteClock::new(site.timezone),
             values: vec![f64::NAN; site.slots.len],
             qualities: vec![Quality::Missing; site.points.len()],
+            timeouts: site.points.iter().map(snapshot::Timeouts::of).collect(),
             last_now: None,
             day: None,
             local: LocalClock { seconds_of_day: 0, weekday: chrono::Weekday::Mon },
@@ -397,9 +400,9 @@ impl Engine {
 
         // Freshness: stale, missing or frozen values become NaN, which rules read as
         // unknown.
-        for (i, p) in site.points.iter().enumerate() {
+        for (i, t) in self.timeouts.iter().enumerate() {
             let s = snapshot.samples.get(i).copied().unwrap_or(Sample::MISSING);
-            let q = s.quality(now, p);
+            let q = s.quality_within(now, t);
             self.qualities[i] = q;
             self.values[i] = if q == Quality::Fresh { s.value } else { f64::NAN };
         }

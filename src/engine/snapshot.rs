@@ -34,18 +34,39 @@ impl Sample {
     /// *frozen* once the point has read exactly the same value for longer than its
     /// `frozen_after`: a gateway that keeps answering with the last reading of a meter
     /// that died looks alive to every poll.
-    #[inline]
     pub fn quality(&self, now: Timestamp, point: &Point) -> Quality {
+        self.quality_within(now, &Timeouts::of(point))
+    }
+
+    /// [`Sample::quality`] with the point's timeouts already in milliseconds (the
+    /// engine judges every point at every tick).
+    #[inline]
+    pub(crate) fn quality_within(&self, now: Timestamp, t: &Timeouts) -> Quality {
         if self.at == Timestamp::NEVER || !self.value.is_finite() {
             return Quality::Missing;
         }
-        if self.at.0 > now.0.saturating_add(FUTURE_SLACK_MS) || now.since(self.at) > point.stale_after {
+        // Ages are whole milliseconds, so `age > timeout` compares the same in ms as in
+        // the `Duration`s the site file gives (a timeout's sub-millisecond rest is floored).
+        let age = now.0.saturating_sub(self.at.0).max(0);
+        if self.at.0 > now.0.saturating_add(FUTURE_SLACK_MS) || age > t.stale_ms {
             return Quality::Stale;
         }
-        match point.frozen_after {
-            Some(f) if self.at.since(self.since) > f => Quality::Frozen,
-            _ => Quality::Fresh,
-        }
+        if self.at.0.saturating_sub(self.since.0).max(0) > t.frozen_ms { Quality::Frozen } else { Quality::Fresh }
+    }
+}
+
+/// A point's timeouts in whole milliseconds (floored).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub(crate) struct Timeouts {
+    stale_ms: i64,
+    /// `i64::MAX` when the point has no `frozen_after`.
+    frozen_ms: i64,
+}
+
+impl Timeouts {
+    pub(crate) fn of(point: &Point) -> Timeouts {
+        let ms = |d: std::time::Duration| i64::try_from(d.as_millis()).unwrap_or(i64::MAX);
+        Timeouts { stale_ms: ms(point.stale_after), frozen_ms: point.frozen_after.map_or(i64::MAX, ms) }
     }
 }
 

@@ -538,14 +538,16 @@ impl Bus {
             };
             map[o].then_some((is123, o))
         };
-        let mut targets = [(false, 0usize); 123];
-        let targets = targets.get_mut(..values.len())?;
-        for (k, t) in targets.iter_mut().enumerate() {
-            *t = locate(address.wrapping_add(k as u16))?;
+        // Two passes over the addresses (check everything, then write) rather than a
+        // table of targets: zeroing a 123-entry table cost more than the whole write.
+        let targets = || (0..values.len()).map(|k| locate(address.wrapping_add(k as u16)));
+        if values.len() > 123 || targets().any(|t| t.is_none()) {
+            return None;
         }
+        let targets = || targets().flatten();
         let unit = INVERTER_UNIT;
         let invalid = |what: String| Some(Err(BusError::IllegalDataValue { unit, what }));
-        for (&(is123, o), &v) in targets.iter().zip(values) {
+        for ((is123, o), &v) in targets().zip(values) {
             let enum01 = if is123 {
                 [off::C123_CONN, off::C123_ENA].contains(&o)
             } else {
@@ -563,7 +565,7 @@ impl Bus {
         let inv = &mut self.inverter;
         let before_conn = inv.m123[off::C123_CONN];
         let (mut lim123, mut conn, mut lim704) = (false, false, false);
-        for (&(is123, o), &v) in targets.iter().zip(values) {
+        for ((is123, o), &v) in targets().zip(values) {
             if is123 {
                 inv.m123[o] = v;
                 lim123 |= [off::C123_PCT, off::C123_RVRT, off::C123_ENA].contains(&o);
