@@ -1236,6 +1236,17 @@ impl Builder<'_, '_> {
                 continue;
             }
             let id = Some(PointId(i));
+            if p.frozen_after.is_some() && matches!(p.name.as_str(), "pv" | "pv_available") {
+                self.diags.push(
+                    Diagnostic::warning(
+                        "C0267",
+                        format!("point \"{}\" has `frozen_after`, but a PV reading stays at 0 W all night", p.name),
+                        info[i].name_span.clone(),
+                    )
+                    .with_label("every night this point would count as lost")
+                    .with_note("set `frozen_after` on the grid meter, whose reading always moves"),
+                );
+            }
             match p.name.as_str() {
                 "grid" => roles.grid = id,
                 "pv" => roles.pv = id,
