@@ -17,9 +17,9 @@ use super::{Options, state_file};
 use crate::actuators::Dispatcher;
 use crate::actuators::mqtt::{limit_word, mode_word};
 use crate::config::model::{DeviceId, Site};
-use crate::engine::{Decisions, Engine, LimitReason, Mode, Snapshot};
+use crate::engine::{Decisions, Engine, LimitReason, Mode, SiteCounters, Snapshot};
 use crate::sources::{Clock, OverrideAction, SourceEvent};
-use crate::status::{self, DeviceHealth, RecentEvent, Status};
+use crate::status::{self, DeviceHealth, RecentEvent, Status, Totals};
 use crate::units::Power;
 
 /// How often a repeated exception or malformed payload is logged again (with the
@@ -78,6 +78,11 @@ pub(super) struct Control {
     was_normal: bool,
     recent: VecDeque<RecentEvent>,
     summary: Summary,
+    /// Counters since start, for the status document and `/metrics`.
+    totals: Totals,
+    /// The engine's daily counters at the last tick and when it was, to add their
+    /// growth to `totals` (they restart at midnight).
+    last_counters: Option<(SiteCounters, crate::units::Timestamp)>,
 }
 
 impl Control {
@@ -93,7 +98,6 @@ impl Control {
             // One slot per device, and one more for the MQTT broker (`status::build`
             // reads it as the broker's health).
             health: vec![DeviceHealth::default(); site.devices.len() + 1],
-            site,
             engine,
             snapshot,
             dispatcher,
@@ -107,6 +111,9 @@ impl Control {
             was_normal: false,
             recent: VecDeque::with_capacity(RECENT),
             summary: Summary::default(),
+            totals: Totals { load_switchings: vec![0; site.loads.len()], ..Totals::default() },
+            last_counters: None,
+            site,
         }
     }
 
@@ -189,6 +196,9 @@ impl Control {
         let d = self.engine.decisions();
         for s in &d.switchings {
             self.summary.switchings += 1;
+            if let Some(n) = self.totals.load_switchings.get_mut(s.load.0) {
+                *n += 1;
+            }
             let name = self.site.loads.get(s.load.0).map_or("?", |l| l.name.as_str());
             let why = self.engine.explain(s.load);
             push_recent(&mut self.recent, d.now, format!("{name} {} → {}: {why}", s.from, s.to));
@@ -206,7 +216,9 @@ impl Control {
         if let Some(text) = log_limit(&mut self.last_limit, d) {
             push_recent(&mut self.recent, d.now, text);
         }
-        log_mode(&mut self.was_normal, d.mode, &self.engine);
+        if log_mode(&mut self.was_normal, d.mode, &self.engine) {
+            self.totals.failsafe_entries += 1;
+        }
         trace!(
             mode = mode_word(d.mode),
             surplus_w = d.surplus.0,
@@ -226,9 +238,34 @@ impl Control {
                 warn!(load = %name, obligation = %what, day = r.day, "obligation missed");
             }
         }
+        self.count(now);
         self.recent.make_contiguous();
-        let doc = status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0);
+        let doc = status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0, &self.totals);
         self.status.send_replace(Arc::new(doc));
+    }
+
+    /// Adds this tick to the counters since start: the growth of the engine's daily
+    /// energy counters (all of the new day's after midnight), and the time the grid
+    /// reading showed export above the limit plus tolerance.
+    fn count(&mut self, now: crate::units::Timestamp) {
+        self.totals.ticks += 1;
+        let c = self.engine.counters();
+        if let Some((before, at)) = self.last_counters {
+            let grown = |now: crate::units::Energy, before: crate::units::Energy| {
+                if now.0 >= before.0 { now.0 - before.0 } else { now.0 }
+            };
+            self.totals.import_wh += grown(c.import_today, before.import_today);
+            self.totals.export_wh += grown(c.export_today, before.export_today);
+            self.totals.diverted_wh += grown(c.diverted_today, before.diverted_today);
+            let d = self.engine.decisions();
+            if let (Some(grid), Some(limit)) = (d.grid, self.site.export_limit())
+                && -grid.0 > limit.0 + self.site.guard.tolerance.0
+            {
+                // Capped like the engine's integration: a stopped clock is not export.
+                self.totals.export_over_limit_s += now.since(at).min(Duration::from_secs(60)).as_secs_f64();
+            }
+        }
+        self.last_counters = Some((c, now));
     }
     fn event(&mut self, ev: SourceEvent) {
         match ev {
@@ -407,7 +444,13 @@ impl Control {
         info!(?commands, "safe states handed to the links (each says whether its device took them)");
         push_recent(&mut self.recent, now, "controller stopping: safe states dispatched".to_owned());
         self.recent.make_contiguous();
-        let doc = status::stopped(status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0));
+        let doc = status::stopped(status::build(
+            &self.engine,
+            &self.snapshot,
+            &self.health,
+            self.recent.as_slices().0,
+            &self.totals,
+        ));
         self.status.send_replace(Arc::new(with_safe(doc, &safe, &self.site)));
         match self.persist().await {
             Some(true) => info!(saves = self.summary.saves, "counters saved: stopping the links"),
@@ -479,7 +522,8 @@ fn log_limit(last: &mut (Option<Power>, LimitReason), d: &Decisions) -> Option<S
     }
 }
 
-fn log_mode(was_normal: &mut bool, mode: Mode, engine: &Engine) {
+/// Logs a change of mode; returns whether the site just went into fail-safe.
+fn log_mode(was_normal: &mut bool, mode: Mode, engine: &Engine) -> bool {
     match mode {
         Mode::Normal if !*was_normal => {
             *was_normal = true;
@@ -489,6 +533,7 @@ fn log_mode(was_normal: &mut bool, mode: Mode, engine: &Engine) {
             *was_normal = false;
             let lost = engine.lost_guard_signals().join(", ");
             warn!(lost = %lost, "fail-safe: a guard signal is lost; loads in their safe states, inverter at its safe limit");
+            return true;
         }
         Mode::Outage if *was_normal => {
             *was_normal = false;
@@ -496,6 +541,7 @@ fn log_mode(was_normal: &mut bool, mode: Mode, engine: &Engine) {
         }
         _ => {}
     }
+    false
 }
 
 fn push_recent(recent: &mut VecDeque<RecentEvent>, at: crate::units::Timestamp, text: String) {

@@ -1,5 +1,6 @@
-//! The local status page and JSON API: `GET /api/status` (the [`Status`] document) and
-//! `GET /` (a self-contained HTML page that polls the API every second).
+//! The local status page and JSON API: `GET /api/status` (the [`Status`] document),
+//! `GET /metrics` (the same document as OpenMetrics text, for Prometheus) and `GET /` (a
+//! self-contained HTML page that polls the API every second).
 //!
 //! Read-only on purpose: nothing here can switch a load or change a limit, so exposing
 //! it on a LAN leaks readings but cannot drive the plant. It binds loopback unless the
@@ -31,7 +32,11 @@ pub const PAGE: &str = include_str!("page.html");
 /// The routes over a status channel; `loopback_only` refuses requests whose `Host` is
 /// not a loopback name (see the module docs).
 pub fn router(status: watch::Receiver<Arc<Status>>, loopback_only: bool) -> Router {
-    let routes = Router::new().route("/", get(page)).route("/api/status", get(api)).with_state(status);
+    let routes = Router::new()
+        .route("/", get(page))
+        .route("/api/status", get(api))
+        .route("/metrics", get(metrics))
+        .with_state(status);
     if loopback_only { routes.layer(middleware::from_fn(loopback_host)) } else { routes }
 }
 
@@ -87,6 +92,15 @@ async fn api(State(status): State<watch::Receiver<Arc<Status>>>) -> Response {
             ([(header::CONTENT_TYPE, "application/json"), (header::CACHE_CONTROL, "no-store")], body).into_response()
         }
         Err(e) => (StatusCode::INTERNAL_SERVER_ERROR, format!("status cannot be encoded: {e}")).into_response(),
+    }
+}
+
+async fn metrics(State(status): State<watch::Receiver<Arc<Status>>>) -> Response {
+    let doc = Arc::clone(&status.borrow());
+    match super::metrics::render(&doc) {
+        Ok(body) => ([(header::CONTENT_TYPE, super::metrics::CONTENT_TYPE), (header::CACHE_CONTROL, "no-store")], body)
+            .into_response(),
+        Err(e) => (StatusCode::INTERNAL_SERVER_ERROR, format!("metrics cannot be encoded: {e}")).into_response(),
     }
 }
 

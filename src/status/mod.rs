@@ -7,6 +7,7 @@
 //! (`_w`, `_wh`, `_s`, `_c`), grid import positive; unknown values are `null`.
 
 pub mod http;
+pub mod metrics;
 
 use std::time::Duration;
 
@@ -56,6 +57,30 @@ pub struct Status {
     pub broker: Option<DeviceStatus>,
     /// The latest switchings and limit changes, newest last.
     pub recent: Vec<RecentEvent>,
+    /// Counters since the daemon started.
+    pub totals: Totals,
+}
+
+/// Counters since the daemon started (from zero at every start): what `/metrics`
+/// exposes as counters.
+#[derive(Debug, Clone, Default, PartialEq, Serialize)]
+pub struct Totals {
+    /// Engine ticks.
+    pub ticks: u64,
+    /// Times the site went into fail-safe after having been out of it.
+    pub failsafe_entries: u64,
+    /// Seconds the grid reading showed export above the limit plus the guard's
+    /// tolerance (0 on a site whose export is allowed).
+    pub export_over_limit_s: f64,
+    /// Imported, by the engine's counters.
+    pub import_wh: f64,
+    /// Exported, by the engine's counters.
+    pub export_wh: f64,
+    /// Drawn by the managed loads, by the engine's counters.
+    pub diverted_wh: f64,
+    /// Switchings per load, in priority order (shown as each load's `switchings`).
+    #[serde(skip)]
+    pub load_switchings: Vec<u64>,
 }
 
 /// A switching or a change of the inverter limit, for people watching.
@@ -111,6 +136,8 @@ pub struct LoadStatus {
     pub energy_today_wh: f64,
     /// Progress of the load's obligations.
     pub obligations: Vec<ObligationStatus>,
+    /// On/off and stage changes since the daemon started.
+    pub switchings: u64,
 }
 
 /// An override in force.
@@ -199,7 +226,7 @@ pub fn export_policy(site: &Site) -> String {
 
 /// The document before the first tick: every load off, nothing measured yet.
 pub fn starting(engine: &Engine, snapshot: &Snapshot) -> Status {
-    let mut s = build(engine, snapshot, &[], &[]);
+    let mut s = build(engine, snapshot, &[], &[], &Totals::default());
     s.time = None;
     s.mode = "starting".to_owned();
     s.points.iter_mut().for_each(|p| p.age_s = None);
@@ -207,7 +234,13 @@ pub fn starting(engine: &Engine, snapshot: &Snapshot) -> Status {
 }
 
 /// The document after a tick.
-pub fn build(engine: &Engine, snapshot: &Snapshot, health: &[DeviceHealth], recent: &[RecentEvent]) -> Status {
+pub fn build(
+    engine: &Engine,
+    snapshot: &Snapshot,
+    health: &[DeviceHealth],
+    recent: &[RecentEvent],
+    totals: &Totals,
+) -> Status {
     let site = engine.site();
     let d = engine.decisions();
     let now = d.now;
@@ -252,6 +285,7 @@ pub fn build(engine: &Engine, snapshot: &Snapshot, health: &[DeviceHealth], rece
                     .enumerate()
                     .map(|(k, ob)| obligation(ob, runtime, temperature, last_cycles.get(k).copied().flatten()))
                     .collect(),
+                switchings: totals.load_switchings.get(i).copied().unwrap_or(0),
             }
         })
         .collect();
@@ -296,6 +330,7 @@ pub fn build(engine: &Engine, snapshot: &Snapshot, health: &[DeviceHealth], rece
             }
         }),
         recent: recent.to_vec(),
+        totals: Totals { load_switchings: Vec::new(), ..totals.clone() },
     }
 }
 
