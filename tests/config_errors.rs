@@ -195,6 +195,12 @@ fn an_error_in_a_folded_rule_is_shown_where_it_is() {
     check("folded-rule");
 }
 
+/// A discovery prefix is a topic without wildcards; a boost button lasts 1 min to 24 h.
+#[test]
+fn a_wildcard_discovery_prefix_and_a_boost_over_a_day_are_refused() {
+    check("discovery");
+}
+
 /// A frozen-reading timeout is for measurements only, and must outlast two polls: one
 /// repeat proves nothing.
 #[test]

@@ -341,6 +341,49 @@ async fn override_requests_are_parsed_and_bad_ones_ignored() {
     b.task.await.unwrap();
 }
 
+/// With `mqtt.discovery`, Home Assistant finds each load's sensors and buttons in
+/// retained documents under its prefix; a button press is an ordinary override request.
+/// Source for the document format: Home Assistant documentation, MQTT integration, "MQTT
+/// Discovery" (see `src/sources/mqtt/discovery.rs`).
+#[tokio::test(start_paused = true)]
+async fn home_assistant_discovery_is_retained_and_a_button_press_is_an_override() {
+    let broker = Broker::start().await;
+    let mut b = Bench::start(broker, ", discovery: { boost: 2h }").await;
+    b.settle().await;
+    let doc = |topic: &str| -> serde_json::Value {
+        let text = b.broker.retained(topic).unwrap_or_else(|| panic!("no retained {topic}"));
+        serde_json::from_str(&text).unwrap()
+    };
+    let boost = doc("homeassistant/button/spillway_bench_pump_boost/config");
+    assert_eq!(boost["name"], "pump boost 2 h");
+    assert_eq!(boost["command_topic"], "bench/site/override/pump");
+    assert_eq!(boost["payload_press"], "on 2h");
+    assert_eq!(boost["availability_topic"], "bench/site/status");
+    let power = doc("homeassistant/sensor/spillway_bench_pump_power/config");
+    assert_eq!(power["state_topic"], "bench/site/state/pump");
+    assert_eq!(power["unit_of_measurement"], "W");
+    let on = doc("homeassistant/binary_sensor/spillway_bench_dimmer_on/config");
+    assert_eq!(on["state_topic"], "bench/site/state/dimmer");
+    let grid = doc("homeassistant/sensor/spillway_bench_grid/config");
+    assert_eq!(grid["state_topic"], "bench/site/state/site");
+
+    // What the sensors' templates read is in the state documents.
+    b.dispatcher.apply(&decisions(&[Command::On, Command::Setpoint(Ratio(40.0))]));
+    b.settle().await;
+    let pump: serde_json::Value = serde_json::from_str(&b.broker.retained("bench/site/state/pump").unwrap()).unwrap();
+    assert_eq!((pump["on"].as_bool(), pump["power"].as_f64()), (Some(true), Some(1000.0)));
+    assert!(pump["reason"].is_string());
+
+    // Pressing the button in Home Assistant publishes its payload to its topic.
+    let t = b.clock.now();
+    b.broker.publish(boost["command_topic"].as_str().unwrap(), boost["payload_press"].as_str().unwrap(), false);
+    let r = b.override_request().await;
+    assert_eq!(r.load, b.site.load("pump").unwrap().0);
+    assert_eq!(r.action, OverrideAction::Set { command: Command::On, until: t.plus(Duration::from_secs(7200)) });
+    b.cancel.cancel();
+    (&mut b.task).await.unwrap();
+}
+
 #[tokio::test(start_paused = true)]
 async fn a_password_from_a_file_logs_in() {
     let broker = Broker::start().await;

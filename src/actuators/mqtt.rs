@@ -2,10 +2,11 @@
 //! retained state documents under `<topic_prefix>/state/...`.
 //!
 //! State documents (JSON, retained):
-//! - `<prefix>/state/<load>`: `{"command": "on", "reason": "start_rule",
+//! - `<prefix>/state/<load>`: `{"command": "on", "on": true, "reason": "start_rule",
 //!   "why": "started: start rule is true", "power": 3000}` — `command` as the engine
-//!   prints it (`off`, `on`, `stage 2`, `45 %`, `16 A`, `charge 1.2 kW`), `reason` a
-//!   stable code, `why` the sentence, `power` the watts the command implies;
+//!   prints it (`off`, `on`, `stage 2`, `45 %`, `16 A`, `charge 1.2 kW`), `on` whether
+//!   it draws power, `reason` a stable code, `why` the sentence, `power` the watts the
+//!   command implies;
 //! - `<prefix>/state/site`: `{"mode": "normal", "surplus": 1520, "grid": -35,
 //!   "inverter_limit": 2500, "limit_reason": "export_guard"}` — watts, `grid` import
 //!   positive (`null` when stale), `inverter_limit` `null` when unlimited.
@@ -50,6 +51,7 @@ pub fn state_topics(site: &Site, decisions: &Decisions) -> Vec<StateTopic> {
         let power = d.command.power(&load.kind).0;
         let doc = json!({
             "command": command,
+            "on": d.command.is_on(),
             "reason": d.reason.code(),
             "why": d.reason.to_string(),
             "power": power.round(),

@@ -63,6 +63,14 @@ pub fn describe(site: &Site) -> String {
             if m.tls.is_some() { " over TLS" } else { "" },
             m.topic_prefix
         );
+        if let Some(d) = &m.discovery {
+            let _ = writeln!(
+                out,
+                "  Home Assistant discovery under {}/ (boost and hold-off buttons: {})",
+                d.prefix,
+                format_duration(d.boost)
+            );
+        }
     }
 
     let _ = writeln!(out, "\ndevices");

@@ -586,6 +586,10 @@ impl Builder<'_, '_> {
         let keep_alive = m
             .get("keep_alive")
             .map_or(Some(Duration::from_secs(30)), |n| values::duration(n, "the keep-alive", self.diags));
+        let discovery = match m.get("discovery") {
+            None => Some(None),
+            Some(n) => self.discovery(n),
+        };
         m.finish(self.diags);
         let (broker, broker_span) = broker?;
         let (host, port) = match split_host_port(broker, 1883) {
@@ -618,7 +622,58 @@ impl Builder<'_, '_> {
             topic_prefix,
             qos: qos?,
             keep_alive: keep_alive?,
+            discovery: discovery?,
         })
+    }
+
+    /// `mqtt.discovery`: `true`, `false`, or `{ prefix, boost }`. `None` on an error,
+    /// `Some(None)` when discovery is off.
+    fn discovery(&mut self, node: &Node) -> Option<Option<Discovery>> {
+        let mut d = Discovery { prefix: "homeassistant".to_owned(), boost: Duration::from_secs(3600) };
+        match &node.value {
+            Value::Bool(true) => return Some(Some(d)),
+            Value::Bool(false) => return Some(None),
+            _ => {}
+        }
+        let mut m = MapReader::new(node, "the `discovery` section", self.diags)?;
+        let prefix = m.get("prefix");
+        let boost = m.get("boost");
+        m.finish(self.diags);
+        // Both keys are checked before giving up, so one run reports both mistakes.
+        let mut ok = true;
+        if let Some(n) = prefix {
+            match values::text(n, "the discovery prefix", self.diags).map(|t| t.trim_end_matches('/')) {
+                Some(text) if !text.is_empty() && !text.contains(['+', '#']) && !text.starts_with('/') => {
+                    d.prefix = text.to_owned();
+                }
+                Some(text) => {
+                    self.diags.error(
+                        "C0268",
+                        format!("discovery prefix \"{text}\" is not a topic prefix"),
+                        n.span.clone(),
+                        "expected a topic without wildcards, e.g. homeassistant",
+                    );
+                    ok = false;
+                }
+                None => ok = false,
+            }
+        }
+        if let Some(n) = boost {
+            match values::duration(n, "the boost", self.diags) {
+                Some(b) if (Duration::from_secs(60)..=MAX_OVERRIDE).contains(&b) => d.boost = b,
+                Some(b) => {
+                    self.diags.error(
+                        "C0268",
+                        format!("a boost of {} is outside 1 min to 24 h", units::format_duration(b)),
+                        n.span.clone(),
+                        "an override lasts at least a minute and at most a day",
+                    );
+                    ok = false;
+                }
+                None => ok = false,
+            }
+        }
+        ok.then_some(Some(d))
     }
 
     fn qos(&mut self, node: &Node) -> Option<Qos> {

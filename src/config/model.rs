@@ -763,6 +763,21 @@ pub struct MqttSettings {
     pub qos: Qos,
     /// Keep-alive interval.
     pub keep_alive: Duration,
+    /// Home Assistant MQTT discovery documents to publish, if asked for.
+    pub discovery: Option<Discovery>,
+}
+
+/// The longest override accepted (over MQTT, and for a discovery boost button).
+pub const MAX_OVERRIDE: Duration = Duration::from_secs(24 * 3600);
+
+/// Home Assistant MQTT discovery (`mqtt.discovery`): retained documents that make each
+/// load's power, reason and buttons, and the site's flows, appear in Home Assistant.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Discovery {
+    /// Home Assistant's discovery prefix (`homeassistant` unless changed there).
+    pub prefix: String,
+    /// How long a press of a load's boost button forces it on.
+    pub boost: Duration,
 }
 
 /// Where a secret comes from; read at start-up, never stored in the model.

@@ -7,7 +7,9 @@
 //!   `offline` is also published before a clean shutdown;
 //! - `<prefix>/state/<load>` and `<prefix>/state/site`: retained JSON documents (see
 //!   [`crate::actuators::mqtt`]);
-//! - `<prefix>/override/<load>`: override requests (see [`payload`]).
+//! - `<prefix>/override/<load>`: override requests (see [`payload`]);
+//! - with `mqtt.discovery`, Home Assistant discovery documents under its prefix,
+//!   retained, after every connect (see [`discovery`]).
 //!
 //! QoS: each point and command topic has its own (`qos:`), default 1 (at least once);
 //! the prefix topics use the `mqtt.qos` setting, default 1. rumqttc reconnects on the
@@ -16,6 +18,7 @@
 //! deliveries on signal and override topics are ignored: a retained reading may be
 //! hours old, and a retained override would come back after every reconnect.
 
+pub mod discovery;
 pub mod payload;
 
 use std::collections::HashMap;
@@ -95,6 +98,7 @@ pub struct MqttLink {
     stats: Arc<LinkStats>,
     points: Vec<(PointId, MqttRead)>,
     devices: Vec<DeviceId>,
+    discovery: Vec<discovery::DiscoveryDoc>,
 }
 
 /// What the event-loop half tells the publishing half.
@@ -138,7 +142,11 @@ impl MqttLink {
             .filter(|(_, d)| matches!(d.link, crate::config::model::Link::Mqtt))
             .map(|(i, _)| DeviceId(i))
             .collect();
-        Ok(MqttLink { site, settings, options, rumqtt: o, stats: LinkStats::shared(), points, devices })
+        let discovery = match &settings.discovery {
+            Some(d) => discovery::documents(&site, &settings, d),
+            None => Vec::new(),
+        };
+        Ok(MqttLink { site, settings, options, rumqtt: o, stats: LinkStats::shared(), points, devices, discovery })
     }
 
     /// The link's counters.
@@ -156,7 +164,7 @@ impl MqttLink {
         clock: Clock,
         cancel: CancellationToken,
     ) {
-        let cap = 64 + 2 * (self.points.len() + self.site.loads.len());
+        let cap = 64 + 2 * (self.points.len() + self.site.loads.len()) + self.discovery.len();
         let (client, mut eventloop) = AsyncClient::new(self.rumqtt.clone(), cap);
         // Commands are small and latency matters more than packing them: no Nagle.
         let mut net = eventloop.network_options();
@@ -390,6 +398,14 @@ impl MqttLink {
             warn!(error = %e, "mqtt status could not be queued");
         }
         self.stats.count(Counter::Request);
+        // Retained, so Home Assistant finds them whenever it starts; sent again after
+        // every connect in case the broker lost its retained store.
+        for doc in &self.discovery {
+            self.queue(client, &doc.topic, &doc.payload, true, qos(self.settings.qos));
+        }
+        if !self.discovery.is_empty() {
+            debug!(documents = self.discovery.len(), "home assistant discovery published");
+        }
     }
 
     /// Queues what is due; returns when something held back falls due.

@@ -26,8 +26,7 @@ use crate::units::{Current, Dimension, Power, Ratio, Timestamp, parse_quantity};
 
 /// How long an override lasts when the payload does not say.
 pub const DEFAULT_OVERRIDE: Duration = Duration::from_secs(3600);
-/// The longest override accepted.
-pub const MAX_OVERRIDE: Duration = Duration::from_secs(24 * 3600);
+pub use crate::config::model::MAX_OVERRIDE;
 
 /// What a person asked for one load.
 #[derive(Debug, Clone, Copy, PartialEq)]
