@@ -132,9 +132,10 @@ pub fn documents(site: &Site, mqtt: &MqttSettings, d: &Discovery) -> Vec<Discove
             &mut doc,
             json!({
                 "state_topic": state,
-                // A stale meter or no limit in force is `null` in the state document: the
-                // sensor is then unknown, not 0.
-                "value_template": format!("{{{{ value_json.{field} if value_json.{field} is not none else 'unknown' }}}}"),
+                // A stale meter or no limit in force is `null` in the state document; it
+                // renders as `None`, which Home Assistant's MQTT sensor takes for
+                // "unknown", not 0 (from memory of its `PAYLOAD_NONE`).
+                "value_template": format!("{{{{ value_json.{field} }}}}"),
                 "unit_of_measurement": "W",
                 "device_class": "power",
                 "state_class": "measurement",
