@@ -37,7 +37,7 @@ type CounterF = Counter<f64, AtomicU64>;
 pub fn render(status: &Status) -> Result<String, fmt::Error> {
     let mut r = Registry::with_prefix_and_labels(
         "spillway",
-        [(Cow::Borrowed("site"), Cow::Owned(status.site.clone()))].into_iter(),
+        [(Cow::Borrowed("site"), Cow::Owned(escape(&status.site)))].into_iter(),
     );
     site(&mut r, status);
     loads(&mut r, status);
@@ -79,7 +79,7 @@ fn gauges(
     let mut any = false;
     for (key, value) in items {
         if let Some(v) = value {
-            f.get_or_create(&[(label, key)]).set(v);
+            f.get_or_create(&[(label, escape(&key))]).set(v);
             any = true;
         }
     }
@@ -99,12 +99,28 @@ fn counters(
     let f = Family::<Labels, CounterF>::default();
     let mut any = false;
     for (key, value) in items {
-        f.get_or_create(&[(label, key)]).inc_by(value.max(0.0));
+        f.get_or_create(&[(label, escape(&key))]).inc_by(value.max(0.0));
         any = true;
     }
     if any {
         register(r, name, help, None, f);
     }
+}
+
+/// A label value escaped as the OpenMetrics text format asks (`\\`, `\"`, `\n`):
+/// `prometheus-client` 0.24 writes label values as they are, and a site name is free
+/// text.
+fn escape(value: &str) -> String {
+    let mut out = String::with_capacity(value.len());
+    for c in value.chars() {
+        match c {
+            '\\' => out.push_str("\\\\"),
+            '"' => out.push_str("\\\""),
+            '\n' => out.push_str("\\n"),
+            c => out.push(c),
+        }
+    }
+    out
 }
 
 fn register(r: &mut Registry, name: &str, help: &str, unit: Option<Unit>, metric: impl Metric) {
@@ -244,4 +260,29 @@ fn links(r: &mut Registry, s: &Status) {
         "device",
         devices().map(|d| (d.name.clone(), d.malformed as f64)),
     );
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Label values are escaped as OpenMetrics asks (`\"`, `\\`, `\n`), so a site or load
+    /// name cannot break the exposition.
+    #[test]
+    fn names_with_quotes_and_newlines_are_escaped_and_unknowns_left_out() {
+        let status = Status {
+            site: "Rose \"Mead\"\\\nEast".to_owned(),
+            mode: "normal".to_owned(),
+            grid_w: None,
+            ..Status::default()
+        };
+        let text = render(&status).unwrap();
+        assert!(text.contains(r#"site="Rose \"Mead\"\\\nEast""#), "{text}");
+        assert!(!text.contains("spillway_grid_watts{"), "unknown grid power is left out:\n{text}");
+        assert!(text.contains("spillway_surplus_watts{"), "{text}");
+        assert!(text.ends_with("# EOF\n"));
+        for line in text.lines() {
+            assert!(line.starts_with('#') || line.starts_with("spillway_"), "{line}");
+        }
+    }
 }
