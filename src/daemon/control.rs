@@ -267,6 +267,7 @@ impl Control {
         }
         self.last_counters = Some((c, now));
     }
+
     fn event(&mut self, ev: SourceEvent) {
         match ev {
             SourceEvent::Sample { point, value, at } => {
