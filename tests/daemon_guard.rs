@@ -84,6 +84,17 @@ async fn get(addr: std::net::SocketAddr, path: &str) -> (u16, String) {
 
 /// A GET with the given `Host` header.
 async fn get_as(addr: std::net::SocketAddr, host: &str, path: &str) -> (u16, String) {
+    let (head, body) = request(addr, host, path).await;
+    let code = head.split_whitespace().nth(1).unwrap().parse().unwrap();
+    (code, body)
+}
+
+/// A GET over loopback: the response head and body.
+async fn get_with_head(addr: std::net::SocketAddr, path: &str) -> (String, String) {
+    request(addr, &addr.to_string(), path).await
+}
+
+async fn request(addr: std::net::SocketAddr, host: &str, path: &str) -> (String, String) {
     let mut s = tokio::net::TcpStream::connect(addr).await.unwrap();
     let req = format!("GET {path} HTTP/1.1\r\nHost: {host}\r\nConnection: close\r\n\r\n");
     s.write_all(req.as_bytes()).await.unwrap();
@@ -91,8 +102,7 @@ async fn get_as(addr: std::net::SocketAddr, host: &str, path: &str) -> (u16, Str
     s.read_to_end(&mut raw).await.unwrap();
     let text = String::from_utf8(raw).unwrap();
     let (head, body) = text.split_once("\r\n\r\n").unwrap();
-    let code = head.split_whitespace().nth(1).unwrap().parse().unwrap();
-    (code, body.to_owned())
+    (head.to_owned(), body.to_owned())
 }
 
 #[tokio::test(start_paused = true)]
@@ -200,16 +210,4 @@ async fn the_metrics_endpoint_serves_the_status_as_openmetrics_text() {
     assert!(body.contains("spillway_mode{site=\"Bench\",mode=\"failsafe\"} 1"));
     daemon.shutdown();
     daemon.wait().await;
-}
-
-/// A GET over loopback: the response head and body.
-async fn get_with_head(addr: std::net::SocketAddr, path: &str) -> (String, String) {
-    let mut s = tokio::net::TcpStream::connect(addr).await.unwrap();
-    let req = format!("GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n");
-    s.write_all(req.as_bytes()).await.unwrap();
-    let mut raw = Vec::new();
-    s.read_to_end(&mut raw).await.unwrap();
-    let text = String::from_utf8(raw).unwrap();
-    let (head, body) = text.split_once("\r\n\r\n").unwrap();
-    (head.to_owned(), body.to_owned())
 }
