@@ -20,6 +20,7 @@ pub mod banner;
 pub mod commission;
 mod control;
 pub mod demo;
+pub mod failsafe_test;
 pub mod state_file;
 
 use std::net::SocketAddr;

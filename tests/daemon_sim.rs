@@ -147,6 +147,42 @@ async fn a_silent_meter_curtails_and_opens_the_relays_within_the_timeout() {
     sim.handle.stop().await;
 }
 
+/// `spillway failsafe-test` against the simulator: the "cable pulled" is the
+/// simulator's silent meter; the test times the way to the safe state and the return.
+#[tokio::test(start_paused = true)]
+async fn the_failsafe_test_times_a_lost_meter_and_a_calm_return() {
+    use spillway::daemon::failsafe_test::{self, FailsafePhase, FailsafeTestOptions};
+    let sim = Sim::start(5200.0).await;
+    let yaml = sim.site_yaml();
+    let site = spillway::config::load_str("site.yaml", &yaml).unwrap().site;
+    let daemon = daemon_for(&sim, &yaml).await;
+    status_until(&daemon, Duration::from_secs(240), "heater on", |s| load(s, "water_heater").on).await;
+    let options = FailsafeTestOptions { settle: Duration::from_secs(5), ..FailsafeTestOptions::default() };
+    let mut phases = Vec::new();
+    let report = failsafe_test::run(&daemon, &site, options, |p| {
+        phases.push(p);
+        if p == FailsafePhase::Disconnect {
+            sim.handle.inject_spec("meter-silent+30s").unwrap();
+        }
+    })
+    .await
+    .unwrap();
+    println!("{report:?}");
+    assert_eq!(phases, [FailsafePhase::Disconnect, FailsafePhase::Reconnect]);
+    assert!(report.time_to_safe() <= G100, "{:?}", report.time_to_safe());
+    assert_eq!(report.loads_off.len(), 1, "the heater was on: {:?}", report.loads_off);
+    assert!(report.loads_off[0].1.is_some());
+    assert!(report.limit_at.is_some() && report.pv_watched && report.pv_safe_at.is_some());
+    assert!(report.export_after.is_none(), "{:?}", report.export_after);
+    assert!(report.passed());
+    // The meter was silent for 30 s: the rules are back once it answers and the
+    // recovery hold is over.
+    assert!(report.back_at.since(report.last_reading) >= Duration::from_secs(30));
+    daemon.shutdown();
+    daemon.wait().await;
+    sim.handle.stop().await;
+}
+
 /// A meter gateway that keeps answering with the last reading of a meter that hung: the
 /// link stays up, so only `frozen_after` (1 min on the example's grid point) can tell.
 #[tokio::test(start_paused = true)]

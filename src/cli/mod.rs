@@ -4,6 +4,7 @@
 mod check;
 mod compare;
 mod demo;
+mod failsafe_test;
 mod logging;
 mod read;
 mod replay;
@@ -127,6 +128,9 @@ pub enum Verb {
     Read(read::ReadArgs),
     /// Switch one load on and off and measure the step at the grid meter (commissioning).
     StepTest(step_test::StepTestArgs),
+    /// Time the way to the safe state while the grid meter's link is disconnected, and
+    /// the return once it is reconnected (commissioning).
+    FailsafeTest(failsafe_test::FailsafeTestArgs),
 }
 
 /// A duration with its unit: `10s`, `2min`, `500ms`.
@@ -163,5 +167,6 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Verb::Demo(args) => demo::run(args, cli.log_format),
         Verb::Read(args) => read::run(args, cli.log_format),
         Verb::StepTest(args) => step_test::run(args, cli.log_format),
+        Verb::FailsafeTest(args) => failsafe_test::run(args, cli.log_format),
     }
 }

@@ -1,0 +1,259 @@
+//! `spillway failsafe-test SITE.yaml [--within 5s] [--wait 2min] [--yes] [--record FILE]`:
+//! the controller runs on the live site; the installer disconnects the grid meter's
+//! data link when told and reconnects it when told; the way to the safe state and the
+//! return are timed, for the commissioning record. Exit 0 when the site reached its safe
+//! state within the bound and returned without lasting export, 1 otherwise.
+
+use std::fmt::Write as _;
+use std::io::{BufRead, IsTerminal, Write};
+use std::path::PathBuf;
+use std::process::ExitCode;
+use std::sync::Arc;
+use std::time::Duration;
+
+use spillway::config::model::Site;
+use spillway::daemon::failsafe_test::{self, FailsafePhase, FailsafeReport, FailsafeTestOptions};
+use spillway::daemon::{self, Daemon, Options};
+use spillway::units::{Power, Timestamp, format_duration};
+
+use super::logging::{self, LogFormat};
+
+/// Arguments of `failsafe-test`.
+#[derive(Debug, clap::Args)]
+pub struct FailsafeTestArgs {
+    /// The site file (YAML).
+    pub site: PathBuf,
+    /// The bound for the time from the last reading to the safe state (ENA EREC G100
+    /// Issue 1: 5 s; check what the local grid code asks).
+    #[arg(long, value_name = "DURATION", default_value = "5s", value_parser = super::parse_duration)]
+    pub within: Duration,
+    /// How long to wait for the disconnection, and for the reconnection.
+    #[arg(long, value_name = "DURATION", default_value = "2min", value_parser = super::parse_duration)]
+    pub wait: Duration,
+    /// How long the grid is watched for export once the rules are back in charge.
+    #[arg(long, value_name = "DURATION", default_value = "1min", value_parser = super::parse_duration)]
+    pub watch: Duration,
+    /// Also write the result as a Markdown record to this file.
+    #[arg(long, value_name = "FILE")]
+    pub record: Option<PathBuf>,
+    /// Do not ask for confirmation.
+    #[arg(long)]
+    pub yes: bool,
+}
+
+pub fn run(args: FailsafeTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
+    let loaded = match super::run::load_site(&args.site) {
+        Ok(l) => l,
+        Err(code) => return Ok(code),
+    };
+    super::run::print_banner(&loaded.site, format);
+    logging::init(format, "warn");
+    let site = Arc::new(loaded.site);
+    let Some(grid) = site.roles.grid.map(|p| site.points[p.0].name.clone()) else {
+        eprintln!("error: the site has no grid meter (point `grid`): there is nothing for this test to disconnect");
+        return Ok(ExitCode::from(2));
+    };
+    if site.export_limit().is_none() {
+        eprintln!("error: {}", failsafe_test::FailsafeTestError::NothingGuarded);
+        return Ok(ExitCode::from(2));
+    }
+    println!(
+        "fail-safe test: {} (export {}). Spillway will run the site as `spillway run` does. When told, disconnect the grid meter's data link (point \"{grid}\": unplug its cable or power off its gateway); the site must reach its safe state — loads in their safe states, the inverter at {} — within {}. Then reconnect it when told.",
+        site.name,
+        spillway::status::export_policy(&site),
+        site.inverter.as_ref().map_or_else(|| "its safe limit".to_owned(), |i| i.safe_limit.to_string()),
+        format_duration(args.within)
+    );
+    if !args.yes {
+        if !std::io::stdin().is_terminal() {
+            eprintln!("error: no terminal to confirm on: run with --yes once the site is safe to control");
+            return Ok(ExitCode::from(1));
+        }
+        print!(
+            "Is it safe to run the controller on this site now (relays, inverter and protections as installed)? [y/N] "
+        );
+        std::io::stdout().flush()?;
+        let mut answer = String::new();
+        std::io::stdin().lock().read_line(&mut answer)?;
+        if !matches!(answer.trim(), "y" | "Y" | "yes" | "YES" | "Yes") {
+            println!("not started");
+            return Ok(ExitCode::from(1));
+        }
+    }
+    let options = FailsafeTestOptions {
+        wait: args.wait,
+        watch_after: args.watch,
+        within: args.within,
+        ..FailsafeTestOptions::default()
+    };
+    let rt = daemon::runtime()?;
+    let result = rt.block_on(async {
+        let daemon = Daemon::start(Arc::clone(&site), Options::default()).await?;
+        println!("controller running; waiting for fresh readings and the rules in charge …");
+        let test = failsafe_test::run(&daemon, &site, options, |phase| match phase {
+            FailsafePhase::Disconnect => {
+                println!("DISCONNECT the grid meter's data link now (waiting up to {}).", format_duration(args.wait))
+            }
+            FailsafePhase::Reconnect => println!(
+                "safe state reached. RECONNECT the grid meter's data link now (waiting up to {}).",
+                format_duration(args.wait)
+            ),
+        });
+        let outcome = tokio::select! {
+            r = test => Some(r),
+            // Cancel-safe: the test only reads the status; dropping it changes nothing.
+            _ = tokio::signal::ctrl_c() => None,
+        };
+        daemon.shutdown();
+        daemon.wait().await;
+        Ok::<_, daemon::DaemonError>(outcome)
+    });
+    let report = match result {
+        Ok(Some(Ok(r))) => r,
+        Ok(Some(Err(e))) => {
+            eprintln!("error: {e}; the controller stopped with the safe states");
+            return Ok(ExitCode::from(1));
+        }
+        Ok(None) => {
+            eprintln!("interrupted; the controller stopped with the safe states");
+            return Ok(ExitCode::from(1));
+        }
+        Err(e) => {
+            eprintln!("error: {e}");
+            return Ok(ExitCode::from(2));
+        }
+    };
+    let text = describe(&site, &grid, &report);
+    print!("{text}");
+    if let Some(path) = &args.record {
+        let record = record(&site, &args.site, &text, &report);
+        if let Err(e) = std::fs::write(path, record) {
+            eprintln!("error: cannot write the record {}: {e}", path.display());
+            return Ok(ExitCode::from(2));
+        }
+        println!("record written to {}", path.display());
+    }
+    Ok(if report.passed() { ExitCode::SUCCESS } else { ExitCode::from(1) })
+}
+
+/// The timeline and the verdict, as the terminal and the record show them.
+pub fn describe(site: &Site, grid: &str, r: &FailsafeReport) -> String {
+    let mut out = String::new();
+    let mut row = |label: &str, value: String| {
+        let _ = writeln!(out, "  {label:<34} {value}");
+    };
+    let at = |t: Timestamp| format!("+{:.1} s", t.since(r.last_reading).as_secs_f64());
+    row(&format!("last reading of \"{grid}\" (UTC)"), r.last_reading.to_string());
+    row("fail-safe", at(r.failsafe_at));
+    if let Some(i) = &site.inverter {
+        let label = format!("inverter limit ordered to {}", Power(i.safe_limit.0));
+        row(&label, r.limit_at.map_or_else(|| "not seen".to_owned(), at));
+        match (r.pv_watched, r.pv_safe_at) {
+            (true, Some(t)) => row("the inverter's own reading at it", at(t)),
+            (true, None) => {
+                row("the inverter's own reading at it", "not seen: check that it obeys its limit".to_owned())
+            }
+            (false, _) => row("(no PV reading)", "the limit is seen as ordered, not as obeyed".to_owned()),
+        }
+    }
+    for (name, off) in &r.loads_off {
+        row(&format!("{name} off"), off.map_or_else(|| "not seen".to_owned(), at));
+    }
+    if r.loads_off.is_empty() {
+        row("(no load was on when the link dropped)", String::new());
+    }
+    row("rules in charge again", at(r.back_at));
+    let _ = writeln!(
+        out,
+        "time to the safe state: {:.1} s (bound {})",
+        r.time_to_safe().as_secs_f64(),
+        format_duration(r.within)
+    );
+    match r.export_after {
+        None => {
+            let _ = writeln!(out, "export after the return: none above the limit while watched");
+        }
+        Some((peak, longest)) => {
+            let _ = writeln!(
+                out,
+                "export after the return: up to {} for {:.1} s at most",
+                Power(peak.round()),
+                longest.as_secs_f64()
+            );
+        }
+    }
+    let _ = writeln!(out, "result: {}", if r.passed() { "PASS" } else { "FAIL" });
+    out
+}
+
+/// A Markdown record for the commissioning file.
+fn record(site: &Site, path: &std::path::Path, text: &str, r: &FailsafeReport) -> String {
+    let mut out = String::new();
+    let _ = writeln!(out, "# Fail-safe test: {}\n", site.name);
+    let _ = writeln!(out, "- site file: `{}`", path.display());
+    let _ = writeln!(out, "- Spillway {}", env!("CARGO_PKG_VERSION"));
+    let _ = writeln!(out, "- export: {}", spillway::status::export_policy(site));
+    let _ = writeln!(out, "- test started at the last reading: {}", r.last_reading);
+    let _ = writeln!(out, "- result: **{}**\n", if r.passed() { "PASS" } else { "FAIL" });
+    let _ = writeln!(out, "```text\n{text}```\n");
+    let _ = writeln!(out, "Tested by: ____________________  Date: __________  Signature: ____________________");
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn report() -> FailsafeReport {
+        let t = |s: i64| Timestamp(1_782_036_000_000 + s * 1000);
+        FailsafeReport {
+            last_reading: t(0),
+            failsafe_at: t(3),
+            limit_at: Some(t(3)),
+            pv_safe_at: Some(t(4)),
+            pv_watched: true,
+            loads_off: vec![("water_heater".to_owned(), Some(t(3)))],
+            back_at: t(41),
+            export_after: None,
+            within: Duration::from_secs(5),
+        }
+    }
+
+    fn site() -> Site {
+        let yaml = "site: { name: T, timezone: Europe/Lisbon, export: forbidden }
+devices:
+  meter: { modbus_tcp: 127.0.0.1:5020, unit: 1 }
+points:
+  grid: { device: meter, register: 0, type: i16, unit: W }
+inverter: { rated: 5kW, limit: { device: meter, register: 10 } }
+loads: []
+";
+        spillway::config::load_str("t.yaml", yaml).map(|l| l.site).unwrap_or_else(|e| panic!("{}", e.render(false)))
+    }
+
+    #[test]
+    fn the_timeline_reads_from_the_last_reading_and_says_pass() {
+        let text = describe(&site(), "grid", &report());
+        assert!(text.contains("fail-safe                          +3.0 s"), "{text}");
+        assert!(text.contains("inverter limit ordered to 0 W      +3.0 s"), "{text}");
+        assert!(text.contains("the inverter's own reading at it   +4.0 s"), "{text}");
+        assert!(text.contains("time to the safe state: 4.0 s (bound 5 s)"), "{text}");
+        assert!(text.ends_with("result: PASS\n"), "{text}");
+    }
+
+    #[test]
+    fn too_slow_an_unseen_event_or_lasting_export_fails() {
+        let mut slow = report();
+        slow.pv_safe_at = Some(Timestamp(slow.last_reading.0 + 6000));
+        assert!(!slow.passed(), "6 s against a 5 s bound");
+        let mut unseen = report();
+        unseen.loads_off[0].1 = None;
+        assert!(!unseen.passed(), "a load never seen off");
+        let mut exported = report();
+        exported.export_after = Some((800.0, Duration::from_secs(6)));
+        assert!(!exported.passed(), "export outlasting the bound after the return");
+        exported.export_after = Some((800.0, Duration::from_secs(2)));
+        assert!(exported.passed(), "a blip shorter than the bound is reported, not failed");
+        assert!(describe(&site(), "grid", &exported).contains("up to 800 W for 2.0 s at most"));
+    }
+}
