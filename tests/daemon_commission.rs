@@ -1,6 +1,7 @@
 //! The commissioning verbs as an installer runs them: `spillway read` prints every
 //! point raw and decoded, `spillway step-test` switches a load on and off and measures
-//! the step at the meter; both say clearly when a device does not answer. The binary
+//! the step at the meter, `spillway failsafe-test` times the safe state while the
+//! meter's link is down; they say clearly when a device does not answer. The binary
 //! runs as a child process against the test plant on loopback (real time; bounded).
 
 mod daemon_support;
@@ -117,6 +118,58 @@ async fn step_test_switches_the_load_measures_the_step_and_switches_it_off() {
         spillway(&["step-test", &site, "--load", "water_heater", "--hold", "1s", "--settle", "1s", "--yes"]).await;
     assert_eq!(code, 1);
     assert!(err.contains("device \"meter\" does not answer"), "{err}");
+    let _ = std::fs::remove_dir_all(path.parent().unwrap());
+}
+
+/// `failsafe-test` as an installer runs it: the meter's link is "unplugged" when the
+/// command says DISCONNECT and plugged back at RECONNECT; the timeline, the verdict and
+/// the record. Real time, about half a minute (10 s of settling, the recovery hold).
+#[tokio::test]
+async fn failsafe_test_times_the_safe_state_and_writes_a_record() {
+    use tokio::io::{AsyncBufReadExt, BufReader};
+    let plant = Plant::start(4500.0).await;
+    let (path, site) = write_site(&plant, "failsafe");
+    let record = path.with_file_name("record.md");
+    let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(["failsafe-test", &site, "--yes", "--watch", "3s", "--wait", "30s", "--record"])
+        .arg(&record)
+        .env_remove("RUST_LOG")
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::null())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
+    let mut out = String::new();
+    let run = async {
+        while let Some(line) = lines.next_line().await.unwrap() {
+            if line.starts_with("DISCONNECT") {
+                plant.meter.set_silent(true);
+            } else if line.contains("RECONNECT") {
+                plant.meter.set_silent(false);
+            }
+            out.push_str(&line);
+            out.push('\n');
+        }
+        child.wait().await.unwrap()
+    };
+    let status = tokio::time::timeout(Duration::from_secs(120), run).await.expect("the test ends");
+    println!("{out}");
+    assert_eq!(status.code(), Some(0), "{out}");
+    assert!(out.contains("result: PASS"), "{out}");
+    let safe = out.lines().find(|l| l.starts_with("time to the safe state:")).unwrap();
+    let secs: f64 = safe.split_whitespace().nth(5).unwrap().parse().unwrap();
+    assert!(secs <= 5.0, "{safe}");
+    assert!(out.lines().any(|l| l.contains(" off ") && l.contains("+")), "a load that was on was switched off: {out}");
+    let text = std::fs::read_to_string(&record).unwrap();
+    assert!(text.starts_with("# Fail-safe test: Bench") && text.contains("**PASS**") && text.contains("Signature"));
+
+    // A site whose export is allowed has no fail-safe to test: refused before starting.
+    let allowed = std::fs::read_to_string(&path).unwrap().replace("export: forbidden", "export: allowed");
+    std::fs::write(&path, allowed).unwrap();
+    let (code, _, err) = spillway(&["failsafe-test", &site, "--yes"]).await;
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("export is allowed"), "{err}");
     let _ = std::fs::remove_dir_all(path.parent().unwrap());
 }
 
