@@ -27,4 +27,24 @@ pub trait PvSource: Send {
     /// Advances over `[t_ms, t_ms + dt_s)` and returns the output for that step.
     /// `limit_w` is the inverter's active-power limit (`None` = no limit).
     fn step(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> PvSample;
+
+    /// [`step`](PvSource::step) for a caller that needs only the AC powers (the plant).
+    /// A source may override it to skip the rest of the sample; the powers must be the
+    /// ones `step` gives.
+    #[inline]
+    fn step_ac(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> AcPower {
+        let s = self.step(t_ms, dt_s, limit_w);
+        AcPower { ac_w: s.ac_w, available_ac_w: s.available_ac_w }
+    }
+}
+
+/// The AC side of a [`PvSample`]: small enough to come back in registers, which matters
+/// once a step: a 56-byte sample returned through memory and read back at once costs a
+/// store-forwarding stall in the plant's hot loop.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct AcPower {
+    /// AC power delivered, W.
+    pub ac_w: f64,
+    /// AC power available with no limit set, W.
+    pub available_ac_w: f64,
 }

@@ -3,8 +3,9 @@
 
 use std::collections::VecDeque;
 
+use super::GridReading;
 use super::config::{GarbageMode, MeterConfig};
-use super::noise::{Stream, mix};
+use super::noise::{NormalBatch, Stream, mix};
 
 /// One meter report.
 #[derive(Debug, Clone, Copy, Default, PartialEq)]
@@ -26,15 +27,16 @@ pub struct Meter {
     inv_period: f64,
     delay_ms: i64,
     noise_w: f64,
-    rng: Stream,
+    noise: NormalBatch,
     acc_w_ms: f64,
     acc_ms: i64,
     next_report_ms: i64,
+    /// Reports made but not yet visible. With a delay shorter than the period (the usual
+    /// meter) at most one waits, in `pending`; a longer delay queues them in `queue`.
+    pending: Option<Report>,
     queue: VecDeque<Report>,
     /// While frozen: the reading every report repeats (the last one made before).
     frozen: Option<Report>,
-    /// The last report made (shown or still queued).
-    last: Report,
     /// The report shown now.
     pub shown: Report,
 }
@@ -49,13 +51,13 @@ impl Meter {
             inv_period: 1.0 / period_ms as f64,
             delay_ms,
             noise_w: cfg.noise.max(0.0),
-            rng,
+            noise: NormalBatch::new(rng),
             acc_w_ms: 0.0,
             acc_ms: 0,
             next_report_ms: start_ms + period_ms,
-            queue: VecDeque::with_capacity((delay_ms / period_ms + 2) as usize),
+            pending: None,
+            queue: VecDeque::with_capacity(if delay_ms < period_ms { 0 } else { (delay_ms / period_ms + 2) as usize }),
             frozen: None,
-            last: Report { visible_ms: start_ms, ..Report::default() },
             shown: Report { visible_ms: start_ms, ..Report::default() },
         }
     }
@@ -63,55 +65,101 @@ impl Meter {
     /// Integrates `grid_w` over a step ending at `end_ms` of `dt_ms`. `counters` are the
     /// true import and export energies at `end_ms`. A silent meter measures but does not
     /// report; a frozen one reports on time but repeats its last reading; a garbage fault
-    /// corrupts what it reports.
+    /// corrupts what it reports. A report that becomes visible is also written to `out`
+    /// (the grid reading), straight from registers: copying `shown` afterwards would
+    /// read back what was just stored, a store-forwarding stall in the hot loop.
     #[inline]
-    pub fn step(&mut self, end_ms: i64, dt_ms: i64, grid_w: f64, counters: (f64, f64), faults: MeterFaults) {
+    pub fn step(
+        &mut self,
+        end_ms: i64,
+        dt_ms: i64,
+        grid_w: f64,
+        counters: (f64, f64),
+        faults: MeterFaults,
+        out: Option<&mut GridReading>,
+    ) {
         let MeterFaults { silent, frozen, garbage } = faults;
+        let mut out = out;
+        // Reports made earlier that are visible by now.
+        if let Some(p) = self.pending
+            && p.visible_ms <= end_ms
+        {
+            self.show(p, out.as_deref_mut());
+            self.pending = None;
+        }
+        if !self.queue.is_empty() {
+            self.show_queued(end_ms, out.as_deref_mut());
+        }
         self.acc_w_ms += grid_w * dt_ms as f64;
         self.acc_ms += dt_ms;
-        if end_ms >= self.next_report_ms {
-            // A whole period (the usual case) divides by a precomputed reciprocal.
-            let mut w = if self.acc_ms == self.period_ms {
-                self.acc_w_ms * self.inv_period
+        if end_ms < self.next_report_ms {
+            return;
+        }
+        // A whole period (the usual case) divides by a precomputed reciprocal.
+        let mut w = if self.acc_ms == self.period_ms {
+            self.acc_w_ms * self.inv_period
+        } else {
+            self.acc_w_ms / self.acc_ms.max(1) as f64
+        };
+        if self.noise_w > 0.0 {
+            w += self.noise_w * self.noise.draw();
+        }
+        if let Some(mode) = garbage {
+            w = garble(mode, w, end_ms as u64);
+        }
+        let mut report = Report { visible_ms: end_ms + self.delay_ms, w, import_wh: counters.0, export_wh: counters.1 };
+        if frozen {
+            let last = self.last_made();
+            let held = *self.frozen.get_or_insert(last);
+            report = Report { visible_ms: report.visible_ms, ..held };
+        } else {
+            self.frozen = None;
+        }
+        if !silent {
+            if self.delay_ms == 0 {
+                self.show(report, out);
+            } else if self.delay_ms < self.period_ms {
+                // The report before this one became visible `delay` after it was made,
+                // before this one was made, and was shown above: at most one waits.
+                self.pending = Some(report);
             } else {
-                self.acc_w_ms / self.acc_ms.max(1) as f64
-            };
-            if self.noise_w > 0.0 {
-                w += self.noise_w * self.rng.normal();
-            }
-            if let Some(mode) = garbage {
-                w = garble(mode, w, end_ms as u64);
-            }
-            let mut report =
-                Report { visible_ms: end_ms + self.delay_ms, w, import_wh: counters.0, export_wh: counters.1 };
-            if frozen {
-                let held = *self.frozen.get_or_insert(self.last);
-                report = Report { visible_ms: report.visible_ms, ..held };
-            } else {
-                self.frozen = None;
-            }
-            if !silent {
-                self.last = report;
-                if self.delay_ms == 0 {
-                    self.shown = report;
-                } else {
-                    if self.queue.len() == self.queue.capacity() {
-                        self.queue.pop_front();
-                    }
-                    self.queue.push_back(report);
+                if self.queue.len() == self.queue.capacity() {
+                    self.queue.pop_front();
                 }
-            }
-            self.acc_w_ms = 0.0;
-            self.acc_ms = 0;
-            while self.next_report_ms <= end_ms {
-                self.next_report_ms += self.period_ms;
+                self.queue.push_back(report);
             }
         }
-        while let Some(front) = self.queue.front() {
+        self.acc_w_ms = 0.0;
+        self.acc_ms = 0;
+        while self.next_report_ms <= end_ms {
+            self.next_report_ms += self.period_ms;
+        }
+    }
+
+    #[inline]
+    fn show(&mut self, report: Report, out: Option<&mut GridReading>) {
+        self.shown = report;
+        if let Some(g) = out {
+            g.power_w = report.w;
+            g.import_wh = report.import_wh;
+            g.export_wh = report.export_wh;
+            g.updated_ms = report.visible_ms;
+        }
+    }
+
+    /// The last report made: still waiting, or shown.
+    fn last_made(&self) -> Report {
+        self.pending.or_else(|| self.queue.back().copied()).unwrap_or(self.shown)
+    }
+
+    /// Shows the queued reports that are visible at `end_ms` (a delay of a period or more).
+    #[cold]
+    fn show_queued(&mut self, end_ms: i64, mut out: Option<&mut GridReading>) {
+        while let Some(&front) = self.queue.front() {
             if front.visible_ms > end_ms {
                 break;
             }
-            self.shown = *front;
+            self.show(front, out.as_deref_mut());
             self.queue.pop_front();
         }
     }

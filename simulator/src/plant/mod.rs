@@ -287,6 +287,11 @@ pub struct Plant {
     /// Channels wired to a coil of the relay module.
     wired: Vec<bool>,
     load_w: Vec<f64>,
+    /// Every load is the tank or a plain switched one: its demand changes only with a
+    /// contact or the thermostat, so `load_w` is kept between steps.
+    loads_switched_only: bool,
+    /// The tank's thermostat call when `load_w` was last computed (`None`: never).
+    heat_call: Option<bool>,
     grid_available: bool,
     disconnected: bool,
     seed: u64,
@@ -452,6 +457,7 @@ impl Plant {
         };
 
         let n_loads = load_names.len();
+        let loads_switched_only = drives.iter().all(|d| matches!(d, Drive::Tank { .. } | Drive::Switched { .. }));
         let controls = Controls {
             relays: vec![false; channels.len()],
             regulators: vec![0.0; regulators.len()],
@@ -505,6 +511,8 @@ impl Plant {
             bus,
             wired,
             load_w: vec![0.0; n_loads],
+            loads_switched_only,
+            heat_call: None,
             grid_available: cfg.off_grid.is_none(),
             disconnected: false,
             seed,
@@ -515,6 +523,13 @@ impl Plant {
         plant.update_grid_state();
         plant.bus.set_faults(&plant.faults.active);
         plant.refresh_readings(0.0);
+        if let (Some(_), Some(g)) = (&plant.grid, &mut plant.bus.readings.grid) {
+            let shown = plant.meter.shown;
+            g.power_w = shown.w;
+            g.import_wh = shown.import_wh;
+            g.export_wh = shown.export_wh;
+            g.updated_ms = shown.visible_ms;
+        }
         Ok(plant)
     }
 
@@ -590,47 +605,30 @@ impl Plant {
         let controls = &self.bus.controls;
         let stuck = &self.faults.active.stuck;
         let readings = &mut self.bus.readings;
-        for (i, contact) in readings.contacts.iter_mut().enumerate() {
-            let commanded = controls.relays[i] && !(relays_down && self.wired[i]);
-            *contact = stuck[i].unwrap_or(commanded);
+        let mut contacts_changed = false;
+        for (((contact, &commanded), &wired), &stuck) in
+            readings.contacts.iter_mut().zip(&controls.relays).zip(&self.wired).zip(stuck)
+        {
+            let closed = stuck.unwrap_or(commanded && !(relays_down && wired));
+            contacts_changed |= closed != *contact;
+            *contact = closed;
         }
-        let contacts = &readings.contacts;
         let house_w = match &mut self.house_replay {
             Some(recorded) => recorded(t).max(0.0),
             None => self.house.power(sec),
         };
+        // Switched loads and the tank draw what they drew last step unless a contact or
+        // the tank's thermostat has changed since: most steps skip the drive loop.
+        let heat_call = self.tank.as_ref().is_some_and(Tank::calls_for_heat);
+        if !self.loads_switched_only || contacts_changed || Some(heat_call) != self.heat_call {
+            self.heat_call = Some(heat_call);
+            self.update_load_demand(dt, relays_down);
+        }
         let mut demand = house_w;
-        for (w, drive) in self.load_w.iter_mut().zip(&self.drives) {
-            *w = match drive {
-                Drive::Tank { channel, rated } => match &self.tank {
-                    Some(tank) if contacts[*channel] && tank.calls_for_heat() => *rated,
-                    _ => 0.0,
-                },
-                Drive::Switched { channel, rated } => {
-                    if contacts[*channel] {
-                        *rated
-                    } else {
-                        0.0
-                    }
-                }
-                Drive::Stepped { first, stages } => {
-                    stages.iter().enumerate().filter(|(k, _)| contacts[first + k]).map(|(_, p)| p).sum()
-                }
-                Drive::Regulated { index, rated } => {
-                    let pct = if relays_down { 0.0 } else { controls.regulators[*index] };
-                    let pct = if pct.is_finite() { pct.clamp(0.0, 100.0) } else { 0.0 };
-                    rated * pct / 100.0
-                }
-                Drive::Ev => match &mut self.ev {
-                    Some(ev) => {
-                        let cmd = if relays_down { 0.0 } else { controls.ev_current_a };
-                        ev.power_w(cmd, dt)
-                    }
-                    None => 0.0,
-                },
-            };
+        for w in &self.load_w {
             demand += *w;
         }
+        let controls = &self.bus.controls;
 
         // Supply.
         let battery_cmd = if relays_down { 0.0 } else { controls.battery_w };
@@ -659,7 +657,7 @@ impl Plant {
             // A grid-tied inverter without a battery to form the island stops (anti-islanding).
             let cap = if self.battery.is_none() { 0.0 } else { served * demand + charge_room };
             let lim = limit.map_or(cap, |l| l.min(cap)).max(0.0);
-            pv_sample = self.pv.step(t, dt, Some(lim));
+            pv_sample = self.pv.step_ac(t, dt, Some(lim));
             let mut pv = pv_sample.ac_w.max(0.0);
             if pv > cap {
                 spilled = pv - cap;
@@ -681,7 +679,7 @@ impl Plant {
             battery_ac = net;
             grid_w = 0.0;
         } else {
-            pv_sample = self.pv.step(t, dt, limit);
+            pv_sample = self.pv.step_ac(t, dt, limit);
             pv_w = pv_sample.ac_w.max(0.0);
             let cmd = if battery_cmd.is_finite() { battery_cmd } else { 0.0 };
             battery_ac = cmd.clamp(-discharge_room, charge_room);
@@ -701,23 +699,17 @@ impl Plant {
         f.pv.add(pv_w, dt_h);
         f.house.add(house_w * served, dt_h);
         let shown = &mut self.bus.readings.loads_w;
-        for (i, drive) in self.drives.iter().enumerate() {
-            let w = self.load_w[i] * served;
-            match drive {
-                Drive::Tank { .. } => {
-                    if let Some(tank) = &mut self.tank {
-                        tank.step(w, dt, sec);
-                    }
-                }
-                Drive::Ev => {
-                    if let Some(ev) = &mut self.ev {
-                        ev.charge(w, dt);
-                    }
-                }
-                _ => {}
-            }
-            f.loads[i].add(w, dt_h);
-            shown[i] = w;
+        for ((flow, shown), &w) in f.loads.iter_mut().zip(shown.iter_mut()).zip(&self.load_w) {
+            let w = w * served;
+            flow.add(w, dt_h);
+            *shown = w;
+        }
+        // The tank is always the first load and the EV the last.
+        if let Some(tank) = &mut self.tank {
+            tank.step(self.load_w[0] * served, dt, sec);
+        }
+        if let Some(ev) = &mut self.ev {
+            ev.charge(self.load_w[self.load_w.len() - 1] * served, dt);
         }
         f.battery_charge.add(into, dt_h);
         f.battery_discharge.add(out, dt_h);
@@ -747,12 +739,50 @@ impl Plant {
             frozen: active.meter_frozen,
             garbage: active.garbage[0],
         };
-        self.meter.step(self.now_ms, dt_ms, grid_w, (f.grid_import.wh, f.grid_export.wh), meter_faults);
+        let shown = self.bus.readings.grid.as_mut().filter(|_| self.grid.is_some());
+        self.meter.step(self.now_ms, dt_ms, grid_w, (f.grid_import.wh, f.grid_export.wh), meter_faults, shown);
         self.bus.readings.pv.limit_w = limit;
         self.bus.readings.pv.available_w = pv_sample.available_ac_w;
         self.refresh_readings(battery_ac);
         if served == 0.0 && demand > 0.0 {
             self.bus.readings.loads_disconnected = true;
+        }
+    }
+
+    /// Each load's demand from its drive: contacts, regulator setpoints, the tank's
+    /// thermostat and the EV's session. Loads are off while the relay module reboots.
+    fn update_load_demand(&mut self, dt: f64, relays_down: bool) {
+        let controls = &self.bus.controls;
+        let contacts = &self.bus.readings.contacts;
+        for (w, drive) in self.load_w.iter_mut().zip(&self.drives) {
+            *w = match drive {
+                Drive::Tank { channel, rated } => match &self.tank {
+                    Some(tank) if contacts[*channel] && tank.calls_for_heat() => *rated,
+                    _ => 0.0,
+                },
+                Drive::Switched { channel, rated } => {
+                    if contacts[*channel] {
+                        *rated
+                    } else {
+                        0.0
+                    }
+                }
+                Drive::Stepped { first, stages } => {
+                    stages.iter().enumerate().filter(|(k, _)| contacts[first + k]).map(|(_, p)| p).sum()
+                }
+                Drive::Regulated { index, rated } => {
+                    let pct = if relays_down { 0.0 } else { controls.regulators[*index] };
+                    let pct = if pct.is_finite() { pct.clamp(0.0, 100.0) } else { 0.0 };
+                    rated * pct / 100.0
+                }
+                Drive::Ev => match &mut self.ev {
+                    Some(ev) => {
+                        let cmd = if relays_down { 0.0 } else { controls.ev_current_a };
+                        ev.power_w(cmd, dt)
+                    }
+                    None => 0.0,
+                },
+            };
         }
     }
 
@@ -763,15 +793,11 @@ impl Plant {
         let f = &self.flows;
         let r = &mut self.bus.readings;
         r.grid_available = self.grid_available;
+        // The meter writes its visible report into `r.grid` itself (see `Meter::step`).
         if let (Some(grid), Some(g)) = (&self.grid, &mut r.grid) {
             let up = self.grid_available;
-            let shown = &self.meter.shown;
-            g.power_w = shown.w;
-            g.import_wh = shown.import_wh;
-            g.export_wh = shown.export_wh;
             g.voltage_v = if up { grid.voltage } else { 0.0 };
             g.frequency_hz = if up { grid.frequency } else { 0.0 };
-            g.updated_ms = shown.visible_ms;
         }
         r.pv.power_w = f.pv.w;
         r.pv.energy_wh = f.pv.wh;

@@ -16,7 +16,7 @@ use chrono_tz::Tz;
 use serde::Serialize;
 
 use crate::inverter::{ETA_REFERENCE, PowerLimit, PvWattsCurve};
-use crate::pv_output::{PvSample, PvSource};
+use crate::pv_output::{AcPower, PvSample, PvSource};
 use crate::sky::{self, Irradiance, at_least, at_most};
 use crate::sun::{Atmosphere, Observer, SunTrack, delta_t_estimate};
 use crate::transposition::{Geometry, Plane, SkyDiffuse};
@@ -436,6 +436,9 @@ impl Model {
 
     /// DC power (after the derate) and available AC power at `t_ms`, and the sample
     /// fields that describe the sky.
+    /// Inlined into both callers: the plant's `step_ac` reads only the AC power, and the
+    /// optimiser then drops the sample's stores (and their read-back) entirely.
+    #[inline(always)]
     fn produce(&mut self, t_ms: i64, dt_s: f64) -> (f64, PvSample) {
         self.ensure_knots(t_ms);
         // No division on the per-step path: `inv_span_ms` is kept with the knots.
@@ -533,6 +536,7 @@ impl Model {
 impl PvSource for PvSystem {
     /// Output for the step starting at `t_ms` (UTC Unix milliseconds), evaluated at its
     /// start; the limit follower advances by `dt_s`.
+    #[inline]
     fn step(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> PvSample {
         let (available, mut sample) = match &mut self.source {
             Source::Model(m) => m.produce(t_ms, dt_s),
@@ -545,6 +549,13 @@ impl PvSource for PvSystem {
         sample.available_ac_w = available;
         sample.ac_w = at_most(available, limit);
         sample
+    }
+
+    #[inline]
+    fn step_ac(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> AcPower {
+        // The same as `step`, inlined so that the sample fields nobody reads are dropped.
+        let s = self.step(t_ms, dt_s, limit_w);
+        AcPower { ac_w: s.ac_w, available_ac_w: s.available_ac_w }
     }
 }
 
