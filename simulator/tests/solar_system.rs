@@ -242,3 +242,43 @@ fn measured_pv_ac_is_replayed_under_the_limit() {
     assert!((limited.ac_w - 300.0).abs() < 1e-9 && limited.available_ac_w > 1500.0, "{limited:?}");
     std::fs::remove_file(path).ok();
 }
+
+#[test]
+fn the_plants_batched_ac_path_gives_the_samples_of_stepping_one_at_a_time() {
+    // `step_ac` computes a knot interval's steps ahead in one loop; whatever the caller
+    // does (steady 1 s steps, a jump in time, a change of step length, a switch to
+    // `step`, a limit), its powers must be bit-for-bit those of `step` alone.
+    let cfg = small_roof();
+    let w = weather(WeatherKind::Mixed);
+    let start = 1_744_700_000_000_i64; // 2025-04-15, morning in Munich
+    let mut times: Vec<(i64, f64)> = Vec::new();
+    let mut t = start;
+    for i in 0..20_000 {
+        let dt = match i {
+            5_000..=5_100 => 0.5,
+            7_000..=7_010 => 7.0,
+            _ => 1.0,
+        };
+        if i == 9_000 {
+            t += 3_600_000; // a jump of an hour
+        }
+        times.push((t, dt));
+        t += (dt * 1000.0) as i64;
+    }
+    let limit = |i: usize| if (12_000..12_500).contains(&i) { Some(400.0) } else { None };
+    let mut plain = cfg.build(&munich(), &w, 11).unwrap();
+    let mut batched = cfg.build(&munich(), &w, 11).unwrap();
+    for (i, &(t, dt)) in times.iter().enumerate() {
+        let want = plain.step(t, dt, limit(i));
+        // Every 997th step goes through `step` on the batched system too.
+        let (ac, available) = if i % 997 == 0 {
+            let s = batched.step(t, dt, limit(i));
+            (s.ac_w, s.available_ac_w)
+        } else {
+            let a = batched.step_ac(t, dt, limit(i));
+            (a.ac_w, a.available_ac_w)
+        };
+        assert_eq!(ac.to_bits(), want.ac_w.to_bits(), "step {i} at {t}: {ac} vs {}", want.ac_w);
+        assert_eq!(available.to_bits(), want.available_ac_w.to_bits(), "step {i}");
+    }
+}

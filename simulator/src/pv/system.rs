@@ -133,7 +133,33 @@ struct Model {
     tz_block: i64,
     tz_offset_s: f64,
     last_kc: f64,
+    batch: Batch,
 }
+
+/// Available AC power for the steps ahead in the current knot interval, computed in one
+/// tight loop by [`Model::available_ac`]. Step by step, each PV evaluation sat between
+/// two plant updates and waited on its own dependency chain; in a batch the out-of-order
+/// core overlaps consecutive evaluations (only the cloud index is carried from one to
+/// the next). Values are bit-for-bit those of stepping one at a time.
+#[derive(Debug, Clone, Default)]
+struct Batch {
+    t0_ms: i64,
+    dt_ms: i64,
+    dt_s: f64,
+    /// Index of the next step to hand out.
+    next: usize,
+    ac_w: Vec<f64>,
+    /// The clouds and clear-sky index before the batch's first step, with the day and
+    /// night flag the batch ran under, to replay exactly the steps a caller took if it
+    /// leaves the batch early (a time jump, another step length, or `step`).
+    clouds_before: Option<Clouds>,
+    kc_before: f64,
+    night: bool,
+    solar_day: i64,
+}
+
+/// The most steps computed ahead at once (a night interval at 1 s is 900).
+const BATCH_MAX: usize = 1024;
 
 #[derive(Debug, Clone)]
 enum Source {
@@ -262,6 +288,7 @@ impl PvSystem {
             tz_block: i64::MIN,
             tz_offset_s: 0.0,
             last_kc: 1.0,
+            batch: Batch::default(),
         };
         Ok(PvSystem {
             source: Source::Model(Box::new(model)),
@@ -436,6 +463,69 @@ impl Model {
 
     /// DC power (after the derate) and available AC power at `t_ms`, and the sample
     /// fields that describe the sky.
+    /// Available AC power for the step `[t_ms, t_ms + dt_s)`, served from a batch
+    /// computed ahead (see [`Batch`]); the same value `produce` gives.
+    #[inline]
+    fn available_ac(&mut self, t_ms: i64, dt_s: f64) -> f64 {
+        let b = &mut self.batch;
+        if b.next < b.ac_w.len() && dt_s == b.dt_s && t_ms == b.t0_ms + b.next as i64 * b.dt_ms {
+            let w = b.ac_w[b.next];
+            b.next += 1;
+            return w;
+        }
+        self.fill_batch(t_ms, dt_s)
+    }
+
+    #[inline(never)]
+    fn fill_batch(&mut self, t_ms: i64, dt_s: f64) -> f64 {
+        self.leave_batch();
+        let dt_ms = (dt_s * 1000.0).round() as i64;
+        if !matches!(self.sky, Sky::Clouds(_)) || dt_ms <= 0 || dt_ms as f64 != dt_s * 1000.0 {
+            return self.produce(t_ms, dt_s).0;
+        }
+        self.ensure_knots(t_ms);
+        let steps = ((self.k1.t_ms - t_ms + dt_ms - 1) / dt_ms).clamp(1, BATCH_MAX as i64) as usize;
+        let mut b = std::mem::take(&mut self.batch);
+        b.ac_w.clear();
+        b.t0_ms = t_ms;
+        b.dt_ms = dt_ms;
+        b.dt_s = dt_s;
+        b.kc_before = self.last_kc;
+        b.night = self.k0.clear.ghi <= 0.0 && self.k1.clear.ghi <= 0.0;
+        b.solar_day = self.k0.solar_day;
+        b.clouds_before = match &self.sky {
+            Sky::Clouds(c) => Some(c.clone()),
+            Sky::Measured(_) => None,
+        };
+        for i in 0..steps {
+            b.ac_w.push(self.produce(t_ms + i as i64 * dt_ms, dt_s).0);
+        }
+        b.next = 1;
+        let first = b.ac_w[0];
+        self.batch = b;
+        first
+    }
+
+    /// Ends the batch. If some of its steps were not taken, the clouds went further than
+    /// the caller: put them back and replay the steps taken, so that what follows is
+    /// what stepping one at a time would have given.
+    fn leave_batch(&mut self) {
+        let b = &mut self.batch;
+        if b.next < b.ac_w.len()
+            && let (Some(before), Sky::Clouds(clouds)) = (b.clouds_before.take(), &mut self.sky)
+        {
+            *clouds = before;
+            self.last_kc = b.kc_before;
+            if !b.night {
+                for _ in 0..b.next {
+                    self.last_kc = clouds.step(b.solar_day, b.dt_s);
+                }
+            }
+        }
+        b.ac_w.clear();
+        b.next = 0;
+    }
+
     /// Inlined into both callers: the plant's `step_ac` reads only the AC power, and the
     /// optimiser then drops the sample's stores (and their read-back) entirely.
     #[inline(always)]
@@ -533,13 +623,16 @@ impl Model {
     }
 }
 
-impl PvSource for PvSystem {
-    /// Output for the step starting at `t_ms` (UTC Unix milliseconds), evaluated at its
-    /// start; the limit follower advances by `dt_s`.
-    #[inline]
-    fn step(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> PvSample {
+impl PvSystem {
+    /// One step: the sample with its AC powers. Inlined into both trait methods, so
+    /// that `step_ac` (the plant's call) drops the sample's other fields.
+    #[inline(always)]
+    fn advance(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> PvSample {
         let (available, mut sample) = match &mut self.source {
-            Source::Model(m) => m.produce(t_ms, dt_s),
+            Source::Model(m) => {
+                m.leave_batch();
+                m.produce(t_ms, dt_s)
+            }
             Source::Replay(series) => {
                 let ac = series.value_at(t_ms as f64 / 1000.0).min(self.rated_ac_w);
                 (ac, PvSample { dc_w: ac / crate::inverter::ETA_NOMINAL, clear_sky_index: 1.0, ..PvSample::default() })
@@ -550,12 +643,23 @@ impl PvSource for PvSystem {
         sample.ac_w = at_most(available, limit);
         sample
     }
+}
 
-    #[inline]
+impl PvSource for PvSystem {
+    /// Output for the step starting at `t_ms` (UTC Unix milliseconds), evaluated at its
+    /// start; the limit follower advances by `dt_s`.
+    fn step(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> PvSample {
+        self.advance(t_ms, dt_s, limit_w)
+    }
+
     fn step_ac(&mut self, t_ms: i64, dt_s: f64, limit_w: Option<f64>) -> AcPower {
-        // The same as `step`, inlined so that the sample fields nobody reads are dropped.
-        let s = self.step(t_ms, dt_s, limit_w);
-        AcPower { ac_w: s.ac_w, available_ac_w: s.available_ac_w }
+        let Source::Model(m) = &mut self.source else {
+            let s = self.advance(t_ms, dt_s, limit_w);
+            return AcPower { ac_w: s.ac_w, available_ac_w: s.available_ac_w };
+        };
+        let available = m.available_ac(t_ms, dt_s);
+        let limit = self.limit.advance(limit_w, dt_s);
+        AcPower { ac_w: at_most(available, limit), available_ac_w: available }
     }
 }
 
