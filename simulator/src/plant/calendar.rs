@@ -74,7 +74,10 @@ impl Day {
     /// Local clock seconds since midnight at `t_ms` (0 ..= 86 399).
     #[inline]
     pub fn local_sec(&self, t_ms: i64) -> u32 {
-        let mut s = (t_ms - self.start_ms).div_euclid(1000);
+        // The day contains `t_ms` in the hot loop: an unsigned division by a constant
+        // is a multiply and a shift, `div_euclid` several more instructions.
+        let since = t_ms - self.start_ms;
+        let mut s = if since >= 0 { (since as u64 / 1000) as i64 } else { since.div_euclid(1000) };
         if t_ms >= self.shift_at_ms {
             s += self.shift_s;
         }

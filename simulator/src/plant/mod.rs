@@ -788,7 +788,7 @@ impl Plant {
 
     /// Copies the state into the readings, with faults applied (per-load powers are
     /// copied in `step`).
-    #[inline]
+    #[inline(always)]
     fn refresh_readings(&mut self, battery_ac: f64) {
         let f = &self.flows;
         let r = &mut self.bus.readings;
