@@ -292,6 +292,8 @@ pub struct Plant {
     loads_switched_only: bool,
     /// The tank's thermostat call when `load_w` was last computed (`None`: never).
     heat_call: Option<bool>,
+    /// The battery, unserved and spilled flows were all zero last step.
+    side_flows_quiet: bool,
     grid_available: bool,
     disconnected: bool,
     seed: u64,
@@ -513,6 +515,7 @@ impl Plant {
             load_w: vec![0.0; n_loads],
             loads_switched_only,
             heat_call: None,
+            side_flows_quiet: false,
             grid_available: cfg.off_grid.is_none(),
             disconnected: false,
             seed,
@@ -711,14 +714,20 @@ impl Plant {
         if let Some(ev) = &mut self.ev {
             ev.charge(self.load_w[self.load_w.len() - 1] * served, dt);
         }
-        f.battery_charge.add(into, dt_h);
-        f.battery_discharge.add(out, dt_h);
-        f.losses.add(loss, dt_h);
         f.grid_import.add(grid_w.max(0.0), dt_h);
         f.grid_export.add((-grid_w).max(0.0), dt_h);
-        f.unserved.add(unserved, dt_h);
-        f.pv_spilled.add(spilled, dt_h);
         f.pv_curtailed.add((pv_sample.available_ac_w - pv_sample.ac_w).max(0.0), dt_h);
+        // Battery, unserved and spilled flows are zero on most grid-tied steps: while they
+        // stay zero, adding 0 W changes nothing and is skipped.
+        let side_quiet = into == 0.0 && out == 0.0 && loss == 0.0 && unserved == 0.0 && spilled == 0.0;
+        if !(side_quiet && self.side_flows_quiet) {
+            f.battery_charge.add(into, dt_h);
+            f.battery_discharge.add(out, dt_h);
+            f.losses.add(loss, dt_h);
+            f.unserved.add(unserved, dt_h);
+            f.pv_spilled.add(spilled, dt_h);
+            self.side_flows_quiet = side_quiet;
+        }
 
         if let (Some(og), Some(b)) = (&self.off_grid, &self.battery) {
             let soc = b.soc_pct();
