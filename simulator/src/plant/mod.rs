@@ -294,6 +294,10 @@ pub struct Plant {
     heat_call: Option<bool>,
     /// The battery, unserved and spilled flows were all zero last step.
     side_flows_quiet: bool,
+    /// Every load's demand is zero (kept with `load_w`).
+    loads_off: bool,
+    /// The loads' flows and shown powers were written as zero last step.
+    load_flows_quiet: bool,
     grid_available: bool,
     disconnected: bool,
     seed: u64,
@@ -516,6 +520,8 @@ impl Plant {
             loads_switched_only,
             heat_call: None,
             side_flows_quiet: false,
+            loads_off: true,
+            load_flows_quiet: false,
             grid_available: cfg.off_grid.is_none(),
             disconnected: false,
             seed,
@@ -702,10 +708,14 @@ impl Plant {
         f.pv.add(pv_w, dt_h);
         f.house.add(house_w * served, dt_h);
         let shown = &mut self.bus.readings.loads_w;
-        for ((flow, shown), &w) in f.loads.iter_mut().zip(shown.iter_mut()).zip(&self.load_w) {
-            let w = w * served;
-            flow.add(w, dt_h);
-            *shown = w;
+        // Most of the night every load is off: while they stay off there is nothing to add.
+        if !(self.loads_off && self.load_flows_quiet) {
+            for ((flow, shown), &w) in f.loads.iter_mut().zip(shown.iter_mut()).zip(&self.load_w) {
+                let w = w * served;
+                flow.add(w, dt_h);
+                *shown = w;
+            }
+            self.load_flows_quiet = self.loads_off;
         }
         // The tank is always the first load and the EV the last.
         if let Some(tank) = &mut self.tank {
@@ -793,6 +803,7 @@ impl Plant {
                 },
             };
         }
+        self.loads_off = self.load_w.iter().all(|w| *w == 0.0);
     }
 
     /// Copies the state into the readings, with faults applied (per-load powers are
