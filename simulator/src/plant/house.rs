@@ -126,6 +126,8 @@ pub struct House {
     /// Power changes of the current day (local second, delta W), sorted.
     changes: Vec<(u32, f64)>,
     next: usize,
+    /// When the change at `next` is due (`u32::MAX`: none left today).
+    next_at: u32,
     events_w: f64,
 }
 
@@ -170,6 +172,7 @@ impl House {
             minute_w: vec![0.0; (DAY_S / 60) as usize],
             changes: Vec::with_capacity(512),
             next: 0,
+            next_at: u32::MAX,
             events_w: 0.0,
         })
     }
@@ -231,12 +234,20 @@ impl House {
         }
         self.changes.sort_by_key(|c| c.0);
         self.next = 0;
+        self.next_at = self.changes.first().map_or(u32::MAX, |c| c.0);
         self.events_w = 0.0;
     }
 
     /// Household power at local second `sec` of the current day.
     #[inline]
     pub fn power(&mut self, sec: u32) -> f64 {
+        if sec >= self.next_at {
+            self.apply_changes(sec);
+        }
+        self.minute_w[(sec / 60) as usize] + self.events_w.max(0.0)
+    }
+
+    fn apply_changes(&mut self, sec: u32) {
         while let Some(&(at, delta)) = self.changes.get(self.next) {
             if at > sec {
                 break;
@@ -244,7 +255,7 @@ impl House {
             self.events_w += delta;
             self.next += 1;
         }
-        self.minute_w[(sec / 60) as usize] + self.events_w.max(0.0)
+        self.next_at = self.changes.get(self.next).map_or(u32::MAX, |c| c.0);
     }
 }
 

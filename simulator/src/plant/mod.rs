@@ -633,10 +633,14 @@ impl Plant {
             self.heat_call = Some(heat_call);
             self.update_load_demand(dt, relays_down);
         }
-        let mut demand = house_w;
-        for w in &self.load_w {
-            demand += *w;
-        }
+        // Summed in load order whatever the count; the usual one or two loads without a
+        // loop.
+        let demand = match self.load_w.as_slice() {
+            [] => house_w,
+            [a] => house_w + a,
+            [a, b] => house_w + a + b,
+            all => all.iter().fold(house_w, |d, w| d + w),
+        };
         let controls = &self.bus.controls;
 
         // Supply.
@@ -729,7 +733,9 @@ impl Plant {
         f.pv_curtailed.add((pv_sample.available_ac_w - pv_sample.ac_w).max(0.0), dt_h);
         // Battery, unserved and spilled flows are zero on most grid-tied steps: while they
         // stay zero, adding 0 W changes nothing and is skipped.
-        let side_quiet = into == 0.0 && out == 0.0 && loss == 0.0 && unserved == 0.0 && spilled == 0.0;
+        // With no battery and the grid up, these are exactly zero.
+        let side_quiet = (self.battery.is_none() && !island)
+            || (into == 0.0 && out == 0.0 && loss == 0.0 && unserved == 0.0 && spilled == 0.0);
         if !(side_quiet && self.side_flows_quiet) {
             f.battery_charge.add(into, dt_h);
             f.battery_discharge.add(out, dt_h);

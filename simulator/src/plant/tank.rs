@@ -47,6 +47,9 @@ pub struct Tank {
     /// Today's draws: (start, end) local seconds, tap temperature.
     today: Vec<(u32, u32, f64)>,
     next_draw: usize,
+    /// Start of the draw at `next_draw` (`u32::MAX`: none left today): before it, a
+    /// step skips the draw loop.
+    draw_from: u32,
     /// exp(−dt/τ) for the last dt, recomputed only when dt changes.
     cached_dt: f64,
     cached_k: f64,
@@ -124,6 +127,7 @@ impl Tank {
             tripped: cfg.initial >= cfg.cutout,
             today: Vec::with_capacity(16),
             next_draw: 0,
+            draw_from: u32::MAX,
             cached_dt: f64::NAN,
             cached_k: 1.0,
             inv_ua: if cfg.ua > 0.0 { 1.0 / cfg.ua } else { 0.0 },
@@ -148,6 +152,7 @@ impl Tank {
         }
         self.today.sort_by_key(|d| d.0);
         self.next_draw = 0;
+        self.draw_from = self.today.first().map_or(u32::MAX, |d| d.0);
     }
 
     /// Whether the thermostat and the cut-out let the element heat.
@@ -159,24 +164,8 @@ impl Tank {
     /// Advances by `dt` seconds with `element_w` of heating at local second `sec`.
     #[inline]
     pub fn step(&mut self, element_w: f64, dt: f64, sec: u32) {
-        // Draw: the tap mixes hot with cold to reach its temperature; the hot volume
-        // leaves the node and the same volume of cold water comes in.
-        while let Some(&(start, end, tap)) = self.today.get(self.next_draw) {
-            if sec >= end {
-                self.next_draw += 1;
-                continue;
-            }
-            if sec >= start {
-                let hot_share = if self.temp_c > tap && self.temp_c > self.cold {
-                    ((tap - self.cold) / (self.temp_c - self.cold)).clamp(0.0, 1.0)
-                } else {
-                    1.0
-                };
-                let hot_l = (self.flow_lps * dt * hot_share).min(self.volume_l);
-                self.temp_c -= hot_l / self.volume_l * (self.temp_c - self.cold);
-                self.drawn_l += hot_l;
-            }
-            break;
+        if sec >= self.draw_from {
+            self.draw(dt, sec);
         }
         // Heating against standing loss: exact for constant power over the step,
         // T(dt) = T_eq + (T − T_eq)·exp(−UA·dt/(m·c)) with T_eq = T_a + P/UA.
@@ -198,5 +187,29 @@ impl Tank {
         if self.temp_c >= self.cutout {
             self.tripped = true;
         }
+    }
+
+    /// Hot-water draws at local second `sec`: the tap mixes hot with cold to reach its
+    /// temperature; the hot volume leaves the node and the same volume of cold water
+    /// comes in.
+    fn draw(&mut self, dt: f64, sec: u32) {
+        while let Some(&(start, end, tap)) = self.today.get(self.next_draw) {
+            if sec >= end {
+                self.next_draw += 1;
+                continue;
+            }
+            if sec >= start {
+                let hot_share = if self.temp_c > tap && self.temp_c > self.cold {
+                    ((tap - self.cold) / (self.temp_c - self.cold)).clamp(0.0, 1.0)
+                } else {
+                    1.0
+                };
+                let hot_l = (self.flow_lps * dt * hot_share).min(self.volume_l);
+                self.temp_c -= hot_l / self.volume_l * (self.temp_c - self.cold);
+                self.drawn_l += hot_l;
+            }
+            break;
+        }
+        self.draw_from = self.today.get(self.next_draw).map_or(u32::MAX, |d| d.0);
     }
 }
