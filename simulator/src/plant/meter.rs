@@ -56,7 +56,7 @@ impl Meter {
             acc_ms: 0,
             next_report_ms: start_ms + period_ms,
             pending: None,
-            queue: VecDeque::with_capacity(if delay_ms < period_ms { 0 } else { (delay_ms / period_ms + 2) as usize }),
+            queue: VecDeque::with_capacity((delay_ms / period_ms + 2) as usize),
             frozen: None,
             shown: Report { visible_ms: start_ms, ..Report::default() },
         }
@@ -118,9 +118,11 @@ impl Meter {
         if !silent {
             if self.delay_ms == 0 {
                 self.show(report, out);
-            } else if self.delay_ms < self.period_ms {
-                // The report before this one became visible `delay` after it was made,
-                // before this one was made, and was shown above: at most one waits.
+            } else if self.pending.is_none() && self.queue.is_empty() && self.delay_ms < self.period_ms {
+                // Steps that end on the period leave at most one report waiting: the one
+                // before became visible `delay` after it was made, and was shown above.
+                // Irregular steps can make two reports closer than a period; the later
+                // ones then queue behind this one, which stays the oldest.
                 self.pending = Some(report);
             } else {
                 if self.queue.len() == self.queue.capacity() {
@@ -147,9 +149,10 @@ impl Meter {
         }
     }
 
-    /// The last report made: still waiting, or shown.
+    /// The last report made: the newest still waiting (the queue holds newer ones than
+    /// `pending`), or the one shown.
     fn last_made(&self) -> Report {
-        self.pending.or_else(|| self.queue.back().copied()).unwrap_or(self.shown)
+        self.queue.back().copied().or(self.pending).unwrap_or(self.shown)
     }
 
     /// Shows the queued reports that are visible at `end_ms` (a delay of a period or more).
@@ -189,5 +192,57 @@ pub fn garble(mode: GarbageMode, value: f64, salt: u64) -> f64 {
             }
         }
         GarbageMode::Random => ((h >> 11) as f64 / (1u64 << 53) as f64 - 0.5) * 100_000.0,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// What a meter shows at the end of each step, worked out the plain way: a report is
+    /// made at the first step end on or after each period boundary (none while silent),
+    /// every report is kept, and the newest one visible by a step's end is shown. The
+    /// meter's `pending` slot and queue must give the same, whatever the steps.
+    fn check(period: f64, delay: f64, steps_ms: &[i64]) {
+        let cfg = MeterConfig { period, delay, noise: 0.0, phases: 1 };
+        let (period_ms, delay_ms) = ((period * 1000.0) as i64, (delay * 1000.0) as i64);
+        let start = 1_000_000;
+        let mut meter = Meter::new(&cfg, Stream::new(1, 4), start);
+        let mut reading = GridReading { updated_ms: start, ..GridReading::default() };
+        // (visible at, import counter) of every report made.
+        let mut made: Vec<(i64, f64)> = Vec::new();
+        let mut next_report = start + period_ms;
+        let mut shown = (start, 0.0);
+        let mut t = start;
+        for (i, &dt) in steps_ms.iter().cycle().take(5_000).enumerate() {
+            t += dt;
+            let silent = (1_500..1_600).contains(&i);
+            let counter = i as f64 + 1.0;
+            let faults = MeterFaults { silent, ..MeterFaults::default() };
+            meter.step(t, dt, 100.0, (counter, 0.0), faults, Some(&mut reading));
+            if t >= next_report {
+                if !silent {
+                    made.push((t + delay_ms, counter));
+                }
+                while next_report <= t {
+                    next_report += period_ms;
+                }
+            }
+            if let Some(r) = made.iter().rev().find(|r| r.0 <= t) {
+                shown = *r;
+            }
+            let what = format!("step {i} ending at {t} (period {period} s, delay {delay} s, steps {steps_ms:?})");
+            assert_eq!((meter.shown.visible_ms, meter.shown.import_wh), shown, "{what}");
+            assert_eq!((reading.updated_ms, reading.import_wh), shown, "{what}");
+        }
+    }
+
+    #[test]
+    fn reports_show_in_order_with_regular_and_irregular_steps() {
+        for (period, delay) in [(1.0, 0.0), (1.0, 0.5), (1.0, 0.999), (1.0, 1.0), (1.0, 2.5), (5.0, 0.5)] {
+            for steps in [&[1000][..], &[700], &[250, 999, 1, 1000, 1300], &[100], &[4000, 10, 10]] {
+                check(period, delay, steps);
+            }
+        }
     }
 }

@@ -731,9 +731,9 @@ impl Plant {
         f.grid_import.add(grid_w.max(0.0), dt_h);
         f.grid_export.add((-grid_w).max(0.0), dt_h);
         f.pv_curtailed.add((pv_sample.available_ac_w - pv_sample.ac_w).max(0.0), dt_h);
-        // Battery, unserved and spilled flows are zero on most grid-tied steps: while they
-        // stay zero, adding 0 W changes nothing and is skipped.
-        // With no battery and the grid up, these are exactly zero.
+        // Battery, unserved and spilled flows are zero on most grid-tied steps (exactly
+        // zero with no battery and the grid up): while they stay zero, adding 0 W
+        // changes nothing and is skipped.
         let side_quiet = (self.battery.is_none() && !island)
             || (into == 0.0 && out == 0.0 && loss == 0.0 && unserved == 0.0 && spilled == 0.0);
         if !(side_quiet && self.side_flows_quiet) {

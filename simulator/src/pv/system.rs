@@ -461,8 +461,6 @@ impl Model {
         self.inv_span_ms = 1.0 / (next - self.k0.t_ms) as f64;
     }
 
-    /// DC power (after the derate) and available AC power at `t_ms`, and the sample
-    /// fields that describe the sky.
     /// Available AC power for the step `[t_ms, t_ms + dt_s)`, served from a batch
     /// computed ahead (see [`Batch`]); the same value `produce` gives.
     #[inline]
@@ -476,6 +474,8 @@ impl Model {
         self.fill_batch(t_ms, dt_s)
     }
 
+    /// Starts a batch at `t_ms` running to the next knot, and returns its first value.
+    /// A measured sky, or a step that is not whole milliseconds, is stepped one at a time.
     #[inline(never)]
     fn fill_batch(&mut self, t_ms: i64, dt_s: f64) -> f64 {
         self.leave_batch();
@@ -526,8 +526,9 @@ impl Model {
         b.next = 0;
     }
 
-    /// Inlined into both callers: the plant's `step_ac` reads only the AC power, and the
-    /// optimiser then drops the sample's stores (and their read-back) entirely.
+    /// DC power (after the derate) and available AC power at `t_ms`, and the sample
+    /// fields that describe the sky. Inlined into both callers: the batch reads only the
+    /// AC power, and the optimiser then drops the sample's stores entirely.
     #[inline(always)]
     fn produce(&mut self, t_ms: i64, dt_s: f64) -> (f64, PvSample) {
         self.ensure_knots(t_ms);
