@@ -1,7 +1,7 @@
 //! Plant throughput: simulated seconds per wall second for a household + tank + pump +
 //! battery + meter site at 1 s steps, with a stub PV source (the PV chain is benched
 //! separately), and the whole plant of the zero-export example with its modelled PV
-//! and mixed clouds. Criterion reports "elements/s" = simulated seconds per second.
+//! and mixed clouds, also with a battery added. Criterion reports "elements/s" = simulated seconds per second.
 
 use std::hint::black_box;
 
@@ -82,6 +82,20 @@ fn bench(c: &mut Criterion) {
         b.iter(|| {
             let options = SiteOptions { start_ms: START_MS, seed: 7, sky: None };
             let mut p = build(&example, &options).expect("the example builds");
+            simulate(&mut p, year);
+            black_box(p.flows().balance_error_wh())
+        })
+    });
+    // The same with a home battery as well (the "whole plant" lists one): the
+    // crude controller charges it from export and discharges it against import.
+    let mut with_battery = example.clone();
+    with_battery.battery = Some(
+        serde_saphyr::from_str("{ capacity: 10kWh, max_charge: 3kW, max_discharge: 3kW }").expect("battery parses"),
+    );
+    g.bench_function("year_at_1s_whole_plant_battery", |b| {
+        b.iter(|| {
+            let options = SiteOptions { start_ms: START_MS, seed: 7, sky: None };
+            let mut p = build(&with_battery, &options).expect("the example with a battery builds");
             simulate(&mut p, year);
             black_box(p.flows().balance_error_wh())
         })

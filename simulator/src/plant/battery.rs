@@ -77,6 +77,12 @@ pub struct Battery {
     ocv_v: f64,
     inv_ocv: f64,
     ocv_at_wh: f64,
+    /// The step (1/s) the two thresholds below were worked out for (NaN: none yet).
+    rooms_inv_dt: f64,
+    /// At or below this charge the charging room is the full rating.
+    full_rating_below_wh: f64,
+    /// At or above this charge the discharging room is the full rating.
+    full_rating_above_wh: f64,
 }
 
 impl Battery {
@@ -118,6 +124,9 @@ impl Battery {
             ocv_v: 0.0,
             inv_ocv: 0.0,
             ocv_at_wh: 0.0,
+            rooms_inv_dt: f64::NAN,
+            full_rating_below_wh: f64::NEG_INFINITY,
+            full_rating_above_wh: f64::INFINITY,
         })
         .map(|mut b| {
             b.ocv_at_wh = b.stored_wh;
@@ -156,6 +165,11 @@ impl Battery {
     /// headroom to `soc_max` so a step never overshoots.
     #[inline]
     pub fn charge_room_w(&self, inv_dt: f64) -> f64 {
+        // Far from full the room is the rating: a comparison instead of the formula keeps
+        // the stored charge's step-to-step dependency chain short (see `prepare_step`).
+        if self.stored_wh <= self.full_rating_below_wh && inv_dt == self.rooms_inv_dt {
+            return self.max_charge_w;
+        }
         let room = (self.max_wh - self.stored_wh).max(0.0) * 3600.0 * self.inv_eta_c * inv_dt;
         self.max_charge_w.min(room)
     }
@@ -163,8 +177,34 @@ impl Battery {
     /// Largest AC discharging power for a step of 1/`inv_dt` s.
     #[inline]
     pub fn discharge_room_w(&self, inv_dt: f64) -> f64 {
+        if self.stored_wh >= self.full_rating_above_wh && inv_dt == self.rooms_inv_dt {
+            return self.max_discharge_w;
+        }
         let room = (self.stored_wh - self.min_wh).max(0.0) * 3600.0 * self.eta_d * inv_dt;
         self.max_discharge_w.min(room)
+    }
+
+    /// Works out, for steps of 1/`inv_dt` s, the charge below which charging (above
+    /// which discharging) is limited by the rating alone, so that `charge_room_w` and
+    /// `discharge_room_w` return the rating without the formula there. The thresholds
+    /// keep a relative margin of 10⁻⁹, far above the formula's rounding (a few 10⁻¹⁶),
+    /// so the rating is returned only where the formula gives at least the rating: the
+    /// result is the same bit for bit.
+    pub fn prepare_step(&mut self, inv_dt: f64) {
+        const MARGIN: f64 = 1.0 + 1e-9;
+        let per_wh_charge = 3600.0 * self.inv_eta_c * inv_dt;
+        let per_wh_discharge = 3600.0 * self.eta_d * inv_dt;
+        self.rooms_inv_dt = inv_dt;
+        self.full_rating_below_wh = if per_wh_charge > 0.0 && per_wh_charge.is_finite() {
+            self.max_wh - self.max_charge_w / per_wh_charge * MARGIN
+        } else {
+            f64::NEG_INFINITY
+        };
+        self.full_rating_above_wh = if per_wh_discharge > 0.0 && per_wh_discharge.is_finite() {
+            self.min_wh + self.max_discharge_w / per_wh_discharge * MARGIN
+        } else {
+            f64::INFINITY
+        };
     }
 
     /// Applies `ac_w` (+ charging, − discharging; already within the rooms) for `dt` s.

@@ -592,6 +592,9 @@ impl Plant {
             let dt_ms = ((dt_s * 1000.0).round() as i64).max(1);
             let dt = dt_ms as f64 / 1000.0;
             self.step_len = (dt_s, dt_ms, dt, dt / 3600.0, 1.0 / dt);
+            if let Some(b) = &mut self.battery {
+                b.prepare_step(1.0 / dt);
+            }
         }
         let (_, dt_ms, dt, dt_h, inv_dt) = self.step_len;
         let t = self.now_ms;

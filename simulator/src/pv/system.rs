@@ -497,13 +497,61 @@ impl Model {
             Sky::Clouds(c) => Some(c.clone()),
             Sky::Measured(_) => None,
         };
-        for i in 0..steps {
-            b.ac_w.push(self.produce(t_ms + i as i64 * dt_ms, dt_s).0);
+        let plain = !b.night && self.layout == Layout::String && matches!(self.arrays.as_slice(), [a] if !a.shaded_now);
+        if plain {
+            self.fill_plain(&mut b.ac_w, t_ms, dt_ms, dt_s, steps);
+        } else {
+            for i in 0..steps {
+                b.ac_w.push(self.produce(t_ms + i as i64 * dt_ms, dt_s).0);
+            }
         }
         b.next = 1;
         let first = b.ac_w[0];
         self.batch = b;
         first
+    }
+
+    /// The batch of the common site (one unshaded array on a string inverter, clouds, the
+    /// sun up) in two loops: the cloud index for every step first (the only value carried
+    /// from step to step), then the rest of `produce`'s chain, the same operations in the
+    /// same order, for all steps with nothing carried, which the core (and the
+    /// vectoriser) can overlap.
+    fn fill_plain(&mut self, out: &mut Vec<f64>, t_ms: i64, dt_ms: i64, dt_s: f64, steps: usize) {
+        let Sky::Clouds(clouds) = &mut self.sky else {
+            unreachable!("fill_plain runs under clouds only");
+        };
+        let day = self.k0.solar_day;
+        out.extend((0..steps).map(|_| clouds.step(day, dt_s)));
+        self.last_kc = out.last().copied().unwrap_or(self.last_kc);
+        let (k0, k1) = (&self.k0, &self.k1);
+        let array = &self.arrays[0];
+        let (a0, a1) = (&array.knots[self.cur & 1], &array.knots[(self.cur ^ 1) & 1]);
+        for (i, slot) in out.iter_mut().enumerate() {
+            let kc = *slot;
+            let f = (t_ms + i as i64 * dt_ms - k0.t_ms) as f64 * self.inv_span_ms;
+            let lerp = |a: f64, b: f64| a + (b - a) * f;
+            let air_c = lerp(k0.air_c, k1.air_c);
+            let clear = Irradiance {
+                ghi: lerp(k0.clear.ghi, k1.clear.ghi),
+                dni: lerp(k0.clear.dni, k1.clear.dni),
+                dhi: lerp(k0.clear.dhi, k1.clear.dhi),
+            };
+            let cos_z = lerp(k0.cos_zenith, k1.cos_zenith);
+            let irr = sky::cloudy(&clear, cos_z, kc);
+            let g = Geometry {
+                cos_aoi: lerp(a0.geometry.cos_aoi, a1.geometry.cos_aoi),
+                cos_zenith: cos_z,
+                projection_ratio: lerp(a0.geometry.projection_ratio, a1.geometry.projection_ratio),
+            };
+            let poa = array.plane.poa_with_inverse(&g, &irr, k0.inv_dni_extra, self.albedo, self.diffuse);
+            let global = poa.global();
+            let cell = air_c + global * lerp(a0.heat, a1.heat);
+            let per_irr = 0.001 * (1.0 + array.gamma * (cell - 25.0)) * self.derate;
+            // `produce` sums into 0.0 first; 0.0 + x differs from x only for x = −0,
+            // which `at_least` turns into +0 either way.
+            let dc = at_least(global * array.nameplate_w * per_irr, 0.0);
+            *slot = self.central.ac(dc);
+        }
     }
 
     /// Ends the batch. If some of its steps were not taken, the clouds went further than
