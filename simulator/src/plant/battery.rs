@@ -9,8 +9,8 @@
 //! V = OCV(SoC) + I·R (I > 0 charging), which raises the voltage while charging and
 //! sags it under load, as a real pack does.
 
-use super::PlantError;
 use super::config::{BatteryConfig, Chemistry, OffGridConfig};
+use super::{PlantError, clamp};
 
 /// Open-circuit voltage per cell against state of charge (0, 10, …, 100 %).
 /// LFP: the flat plateau around 3.3 V with steep ends; lead-acid: the near-linear
@@ -145,7 +145,7 @@ impl Battery {
 
     /// Open-circuit voltage of the pack now.
     pub fn ocv(&self) -> f64 {
-        let x = (self.soc_pct() * 0.1).clamp(0.0, 10.0);
+        let x = clamp(self.soc_pct() * 0.1, 0.0, 10.0);
         let i = (x as usize).min(9);
         let f = x - i as f64;
         self.cells * (self.ocv_table[i] * (1.0 - f) + self.ocv_table[i + 1] * f)
@@ -219,7 +219,7 @@ impl Battery {
             (0.0, out, out + ac_w)
         };
         self.stored_wh += (into - out) * dt * (1.0 / 3600.0);
-        self.stored_wh = self.stored_wh.clamp(0.0, self.capacity_wh);
+        self.stored_wh = clamp(self.stored_wh, 0.0, self.capacity_wh);
         // Reported terminal values: I = P_dc / OCV, V = OCV + I·R. The OCV is
         // re-read from the curve only after the charge moves by 0.01 % of capacity
         // (under 1 mV on these curves), which keeps the division off most steps.
