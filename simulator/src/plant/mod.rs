@@ -568,9 +568,13 @@ impl Plant {
         }
     }
 
+    /// Whether the grid is up now, and when that next changes; the grid's readings
+    /// (availability, voltage, frequency) change only here.
     fn update_grid_state(&mut self) {
+        let r = &mut self.bus.readings;
         let Some(g) = &mut self.grid else {
             self.grid_available = false;
+            r.grid_available = false;
             return;
         };
         let t = self.now_ms;
@@ -586,6 +590,11 @@ impl Plant {
         }
         g.next_change_ms = next;
         self.grid_available = up;
+        r.grid_available = up;
+        if let Some(reading) = &mut r.grid {
+            reading.voltage_v = if up { g.voltage } else { 0.0 };
+            reading.frequency_hz = if up { g.frequency } else { 0.0 };
+        }
     }
 
     /// Applies fault edges: a restarting device's outputs go to their power-on state
@@ -836,13 +845,8 @@ impl Plant {
     fn refresh_readings(&mut self, battery_ac: f64) {
         let f = &self.flows;
         let r = &mut self.bus.readings;
-        r.grid_available = self.grid_available;
-        // The meter writes its visible report into `r.grid` itself (see `Meter::step`).
-        if let (Some(grid), Some(g)) = (&self.grid, &mut r.grid) {
-            let up = self.grid_available;
-            g.voltage_v = if up { grid.voltage } else { 0.0 };
-            g.frequency_hz = if up { grid.frequency } else { 0.0 };
-        }
+        // The grid's availability, voltage and frequency are set by `update_grid_state`,
+        // its power and counters by the meter (see `Meter::step`).
         r.pv.power_w = f.pv.w;
         r.pv.energy_wh = f.pv.wh;
         if let (Some(t), Some(tr)) = (&self.tank, &mut r.tank) {

@@ -512,22 +512,21 @@ impl Model {
     }
 
     /// The batch of the common site (one unshaded array on a string inverter, clouds, the
-    /// sun up) in two loops: the cloud index for every step first (the only value carried
-    /// from step to step), then the rest of `produce`'s chain, the same operations in the
-    /// same order, for all steps with nothing carried, which the core (and the
-    /// vectoriser) can overlap.
+    /// sun up): `produce`'s chain, the same operations in the same order, with nothing
+    /// from the sample that is not needed and the cloud step inlined. Only the cloud
+    /// index is carried from one step to the next, so the core overlaps its dependency
+    /// chain with the rest of the step and with the steps around it.
     fn fill_plain(&mut self, out: &mut Vec<f64>, t_ms: i64, dt_ms: i64, dt_s: f64, steps: usize) {
         let Sky::Clouds(clouds) = &mut self.sky else {
             unreachable!("fill_plain runs under clouds only");
         };
         let day = self.k0.solar_day;
-        out.extend((0..steps).map(|_| clouds.step(day, dt_s)));
-        self.last_kc = out.last().copied().unwrap_or(self.last_kc);
         let (k0, k1) = (&self.k0, &self.k1);
         let array = &self.arrays[0];
         let (a0, a1) = (&array.knots[self.cur & 1], &array.knots[(self.cur ^ 1) & 1]);
-        for (i, slot) in out.iter_mut().enumerate() {
-            let kc = *slot;
+        let mut kc = self.last_kc;
+        for i in 0..steps {
+            kc = clouds.step_inlined(day, dt_s);
             let f = (t_ms + i as i64 * dt_ms - k0.t_ms) as f64 * self.inv_span_ms;
             let lerp = |a: f64, b: f64| a + (b - a) * f;
             let air_c = lerp(k0.air_c, k1.air_c);
@@ -550,8 +549,9 @@ impl Model {
             // `produce` sums into 0.0 first; 0.0 + x differs from x only for x = −0,
             // which `at_least` turns into +0 either way.
             let dc = at_least(global * array.nameplate_w * per_irr, 0.0);
-            *slot = self.central.ac(dc);
+            out.push(self.central.ac(dc));
         }
+        self.last_kc = kc;
     }
 
     /// Ends the batch. If some of its steps were not taken, the clouds went further than

@@ -198,6 +198,14 @@ impl Clouds {
     /// numbers the day; a new number starts a new day (and, for `Varied`, draws its kind).
     #[inline]
     pub fn step(&mut self, solar_day: i64, dt_s: f64) -> f64 {
+        self.step_inlined(solar_day, dt_s)
+    }
+
+    /// [`Clouds::step`], always inlined: the PV batch loop runs it beside the rest of
+    /// each step's chain, so that the cloud index's step-to-step dependency overlaps
+    /// with work that does not depend on it.
+    #[inline(always)]
+    pub(crate) fn step_inlined(&mut self, solar_day: i64, dt_s: f64) -> f64 {
         if self.day != Some(solar_day) {
             self.start_day(solar_day);
         }
