@@ -307,8 +307,10 @@ pub struct Plant {
     loads_switched_only: bool,
     /// The tank's thermostat call when `load_w` was last computed (`None`: never).
     heat_call: Option<bool>,
-    /// The battery, unserved and spilled flows were all zero last step.
-    side_flows_quiet: bool,
+    /// The battery flows were all zero last step.
+    battery_flows_quiet: bool,
+    /// The unserved and spilled flows were both zero last step.
+    island_flows_quiet: bool,
     /// Every load's demand is zero (kept with `load_w`).
     loads_off: bool,
     /// The loads' flows and shown powers were written as zero last step.
@@ -534,7 +536,8 @@ impl Plant {
             load_w: vec![0.0; n_loads],
             loads_switched_only,
             heat_call: None,
-            side_flows_quiet: false,
+            battery_flows_quiet: false,
+            island_flows_quiet: false,
             loads_off: true,
             load_flows_quiet: false,
             grid_available: cfg.off_grid.is_none(),
@@ -758,18 +761,21 @@ impl Plant {
         f.grid_import.add(grid_w.max(0.0), dt_h);
         f.grid_export.add((-grid_w).max(0.0), dt_h);
         f.pv_curtailed.add((pv_sample.available_ac_w - pv_sample.ac_w).max(0.0), dt_h);
-        // Battery, unserved and spilled flows are zero on most grid-tied steps (exactly
-        // zero with no battery and the grid up): while they stay zero, adding 0 W
-        // changes nothing and is skipped.
-        let side_quiet = (self.battery.is_none() && !island)
-            || (into == 0.0 && out == 0.0 && loss == 0.0 && unserved == 0.0 && spilled == 0.0);
-        if !(side_quiet && self.side_flows_quiet) {
+        // Battery flows are zero without a battery (and at rest), unserved and spilled ones
+        // while the grid is up: while a group stays zero, adding 0 W changes nothing and
+        // is skipped.
+        let battery_quiet = self.battery.is_none() || (into == 0.0 && out == 0.0 && loss == 0.0);
+        if !(battery_quiet && self.battery_flows_quiet) {
             f.battery_charge.add(into, dt_h);
             f.battery_discharge.add(out, dt_h);
             f.losses.add(loss, dt_h);
+            self.battery_flows_quiet = battery_quiet;
+        }
+        let island_quiet = !island || (unserved == 0.0 && spilled == 0.0);
+        if !(island_quiet && self.island_flows_quiet) {
             f.unserved.add(unserved, dt_h);
             f.pv_spilled.add(spilled, dt_h);
-            self.side_flows_quiet = side_quiet;
+            self.island_flows_quiet = island_quiet;
         }
 
         if let (Some(og), Some(b)) = (&self.off_grid, &self.battery) {
