@@ -112,7 +112,7 @@ impl Meter {
             let last = self.last_made();
             let held = *self.frozen.get_or_insert(last);
             report = Report { visible_ms: report.visible_ms, ..held };
-        } else {
+        } else if self.frozen.is_some() {
             self.frozen = None;
         }
         if !silent {

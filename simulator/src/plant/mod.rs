@@ -86,6 +86,15 @@ pub(crate) fn clamp(x: f64, lo: f64, hi: f64) -> f64 {
     x
 }
 
+/// The meter's faults among those in force.
+fn meter_faults(active: &faults::Active) -> meter::MeterFaults {
+    meter::MeterFaults {
+        silent: active.meter_silent || active.restarting[0],
+        frozen: active.meter_frozen,
+        garbage: active.garbage[0],
+    }
+}
+
 /// What actuators set: the plant reads these at every step.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Controls {
@@ -297,6 +306,8 @@ pub struct Plant {
     grid: Option<Grid>,
     off_grid: Option<OffGrid>,
     faults: Faults,
+    /// The meter's share of `faults.active`, kept with it (see `apply_faults`).
+    meter_faults: meter::MeterFaults,
     flows: Flows,
     bus: Bus,
     /// Channels wired to a coil of the relay module.
@@ -529,6 +540,7 @@ impl Plant {
             meter: Meter::new(&cfg.meter, Stream::new(seed, 4), start_ms),
             grid,
             off_grid,
+            meter_faults: meter_faults(&faults.active),
             faults,
             flows: Flows { loads: vec![Flow::default(); n_loads], ..Flows::default() },
             bus,
@@ -611,6 +623,7 @@ impl Plant {
             self.bus.reset_inverter();
         }
         self.bus.set_faults(&self.faults.active);
+        self.meter_faults = meter_faults(&self.faults.active);
     }
 
     /// Advances the physics by `dt_s` seconds with the current controls.
@@ -791,14 +804,8 @@ impl Plant {
         // The devices' clock reads the end of the step, so requests between steps and
         // timers that expire now act before the next step.
         self.bus.tick(self.now_ms);
-        let active = &self.faults.active;
-        let meter_faults = meter::MeterFaults {
-            silent: active.meter_silent || active.restarting[0],
-            frozen: active.meter_frozen,
-            garbage: active.garbage[0],
-        };
         let shown = self.bus.readings.grid.as_mut().filter(|_| self.grid.is_some());
-        self.meter.step(self.now_ms, dt_ms, grid_w, (f.grid_import.wh, f.grid_export.wh), meter_faults, shown);
+        self.meter.step(self.now_ms, dt_ms, grid_w, (f.grid_import.wh, f.grid_export.wh), self.meter_faults, shown);
         self.bus.readings.pv.limit_w = limit;
         self.bus.readings.pv.available_w = pv_sample.available_ac_w;
         self.refresh_readings(battery_ac);
