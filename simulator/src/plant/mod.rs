@@ -95,6 +95,16 @@ fn meter_faults(active: &faults::Active) -> meter::MeterFaults {
     }
 }
 
+/// What [`Plant::island_supply`] decides for one step.
+struct IslandSupply {
+    pv: crate::pv_output::AcPower,
+    pv_w: f64,
+    battery_ac: f64,
+    served: f64,
+    spilled: f64,
+    limit: Option<f64>,
+}
+
 /// What actuators set: the plant reads these at every step.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Controls {
@@ -703,37 +713,12 @@ impl Plant {
             }
             None => (0.0, 0.0),
         };
-        let mut served = 1.0;
-        let mut spilled = 0.0;
+        let (mut served, mut spilled) = (1.0, 0.0);
         let (pv_sample, pv_w, battery_ac, grid_w);
         if island {
-            if self.disconnected || self.battery.is_none() {
-                served = 0.0;
-            }
-            // A grid-tied inverter without a battery to form the island stops (anti-islanding).
-            let cap = if self.battery.is_none() { 0.0 } else { served * demand + charge_room };
-            let lim = limit.map_or(cap, |l| l.min(cap)).max(0.0);
-            pv_sample = self.pv.step_ac(t, dt, Some(lim));
-            let mut pv = pv_sample.ac_w.max(0.0);
-            if pv > cap {
-                spilled = pv - cap;
-                pv = cap;
-            }
-            let mut net = pv - served * demand;
-            if net < 0.0 && -net > discharge_room {
-                // Overload: the island inverter trips and every load drops for this step.
-                served = 0.0;
-                net = pv;
-                if net > charge_room {
-                    spilled += net - charge_room;
-                    net = charge_room;
-                    pv = charge_room;
-                }
-            }
-            limit = Some(lim);
-            pv_w = pv;
-            battery_ac = net;
-            grid_w = 0.0;
+            let s = self.island_supply(t, dt, demand, limit, charge_room, discharge_room);
+            (pv_sample, pv_w, battery_ac, grid_w) = (s.pv, s.pv_w, s.battery_ac, 0.0);
+            (served, spilled, limit) = (s.served, s.spilled, s.limit);
         } else {
             pv_sample = self.pv.step_ac(t, dt, limit);
             pv_w = pv_sample.ac_w.max(0.0);
@@ -812,6 +797,47 @@ impl Plant {
         if served == 0.0 && demand > 0.0 {
             self.bus.readings.loads_disconnected = true;
         }
+    }
+
+    /// The supply of an island step (off-grid, or a grid outage): the PV follows the
+    /// demand and the battery's room, the battery forms the island, and an overload trips
+    /// the loads. Kept out of `step`, whose grid-tied path is the hot one.
+    #[inline(never)]
+    fn island_supply(
+        &mut self,
+        t: i64,
+        dt: f64,
+        demand: f64,
+        limit: Option<f64>,
+        charge_room: f64,
+        discharge_room: f64,
+    ) -> IslandSupply {
+        let mut served = 1.0;
+        let mut spilled = 0.0;
+        if self.disconnected || self.battery.is_none() {
+            served = 0.0;
+        }
+        // A grid-tied inverter without a battery to form the island stops (anti-islanding).
+        let cap = if self.battery.is_none() { 0.0 } else { served * demand + charge_room };
+        let lim = limit.map_or(cap, |l| l.min(cap)).max(0.0);
+        let pv_sample = self.pv.step_ac(t, dt, Some(lim));
+        let mut pv = pv_sample.ac_w.max(0.0);
+        if pv > cap {
+            spilled = pv - cap;
+            pv = cap;
+        }
+        let mut net = pv - served * demand;
+        if net < 0.0 && -net > discharge_room {
+            // Overload: the island inverter trips and every load drops for this step.
+            served = 0.0;
+            net = pv;
+            if net > charge_room {
+                spilled += net - charge_room;
+                net = charge_room;
+                pv = charge_room;
+            }
+        }
+        IslandSupply { pv: pv_sample, pv_w: pv, battery_ac: net, served, spilled, limit: Some(lim) }
     }
 
     /// Each load's demand from its drive: contacts, regulator setpoints, the tank's
