@@ -842,6 +842,7 @@ impl Plant {
 
     /// Each load's demand from its drive: contacts, regulator setpoints, the tank's
     /// thermostat and the EV's session. Loads are off while the relay module reboots.
+    #[inline(never)]
     fn update_load_demand(&mut self, dt: f64, relays_down: bool) {
         let controls = &self.bus.controls;
         let contacts = &self.bus.readings.contacts;
@@ -912,9 +913,17 @@ impl Plant {
 
         // Faulty sensors and inverters report garbage (the meter garbles at the source).
         let garbage = self.faults.active.garbage;
-        if garbage[1].is_none() && garbage[3].is_none() {
-            return;
+        if garbage[1].is_some() || garbage[3].is_some() {
+            self.garble_readings();
         }
+    }
+
+    /// Corrupts the PV and sensor readings under a garbage fault.
+    #[cold]
+    #[inline(never)]
+    fn garble_readings(&mut self) {
+        let garbage = self.faults.active.garbage;
+        let r = &mut self.bus.readings;
         let salt = self.now_ms as u64 ^ self.seed;
         let g = |mode: Option<GarbageMode>, v: &mut f64, k: u64| {
             if let Some(m) = mode {
