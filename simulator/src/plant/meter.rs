@@ -33,7 +33,10 @@ pub struct Meter {
     next_report_ms: i64,
     /// Reports made but not yet visible. With a delay shorter than the period (the usual
     /// meter) at most one waits, in `pending`; a longer delay queues them in `queue`.
-    pending: Option<Report>,
+    pending: Report,
+    /// When `pending` becomes visible (`i64::MAX`: nothing waits there). A plain time
+    /// rather than an `Option`, so the per-step check is one comparison.
+    pending_at: i64,
     queue: VecDeque<Report>,
     /// While frozen: the reading every report repeats (the last one made before).
     frozen: Option<Report>,
@@ -55,7 +58,8 @@ impl Meter {
             acc_w_ms: 0.0,
             acc_ms: 0,
             next_report_ms: start_ms + period_ms,
-            pending: None,
+            pending: Report::default(),
+            pending_at: i64::MAX,
             queue: VecDeque::with_capacity((delay_ms / period_ms + 2) as usize),
             frozen: None,
             shown: Report { visible_ms: start_ms, ..Report::default() },
@@ -81,11 +85,9 @@ impl Meter {
         let MeterFaults { silent, frozen, garbage } = faults;
         let mut out = out;
         // Reports made earlier that are visible by now.
-        if let Some(p) = self.pending
-            && p.visible_ms <= end_ms
-        {
-            self.show(p, out.as_deref_mut());
-            self.pending = None;
+        if self.pending_at <= end_ms {
+            self.show(self.pending, out.as_deref_mut());
+            self.pending_at = i64::MAX;
         }
         if !self.queue.is_empty() {
             self.show_queued(end_ms, out.as_deref_mut());
@@ -118,12 +120,13 @@ impl Meter {
         if !silent {
             if self.delay_ms == 0 {
                 self.show(report, out);
-            } else if self.pending.is_none() && self.queue.is_empty() && self.delay_ms < self.period_ms {
+            } else if self.pending_at == i64::MAX && self.queue.is_empty() && self.delay_ms < self.period_ms {
                 // Steps that end on the period leave at most one report waiting: the one
                 // before became visible `delay` after it was made, and was shown above.
                 // Irregular steps can make two reports closer than a period; the later
                 // ones then queue behind this one, which stays the oldest.
-                self.pending = Some(report);
+                self.pending = report;
+                self.pending_at = report.visible_ms;
             } else {
                 if self.queue.len() == self.queue.capacity() {
                     self.queue.pop_front();
@@ -152,7 +155,8 @@ impl Meter {
     /// The last report made: the newest still waiting (the queue holds newer ones than
     /// `pending`), or the one shown.
     fn last_made(&self) -> Report {
-        self.queue.back().copied().or(self.pending).unwrap_or(self.shown)
+        let pending = (self.pending_at != i64::MAX).then_some(self.pending);
+        self.queue.back().copied().or(pending).unwrap_or(self.shown)
     }
 
     /// Shows the queued reports that are visible at `end_ms` (a delay of a period or more).
