@@ -19,7 +19,7 @@ use crate::inverter::{ETA_REFERENCE, PowerLimit, PvWattsCurve};
 use crate::pv_output::{AcPower, PvSample, PvSource};
 use crate::sky::{self, Irradiance, at_least, at_most};
 use crate::sun::{Atmosphere, Observer, SunTrack, delta_t_estimate};
-use crate::transposition::{Geometry, Plane, SkyDiffuse};
+use crate::transposition::{Geometry, Plane, Poa, SkyDiffuse};
 use crate::weather::{
     Clouds, MeasuredQuantity, MeasuredSeries, RowNotice, WeatherConfig, WeatherKind, Wind, air_temperature,
 };
@@ -524,28 +524,15 @@ impl Model {
         let (k0, k1) = (&self.k0, &self.k1);
         let array = &self.arrays[0];
         let (a0, a1) = (&array.knots[self.cur & 1], &array.knots[(self.cur ^ 1) & 1]);
+        let optics = (self.albedo, self.diffuse, self.derate);
         let mut kc = self.last_kc;
         for i in 0..steps {
             kc = clouds.step_inlined(day, dt_s);
             let f = (t_ms + i as i64 * dt_ms - k0.t_ms) as f64 * self.inv_span_ms;
-            let lerp = |a: f64, b: f64| a + (b - a) * f;
-            let air_c = lerp(k0.air_c, k1.air_c);
-            let clear = Irradiance {
-                ghi: lerp(k0.clear.ghi, k1.clear.ghi),
-                dni: lerp(k0.clear.dni, k1.clear.dni),
-                dhi: lerp(k0.clear.dhi, k1.clear.dhi),
-            };
-            let cos_z = lerp(k0.cos_zenith, k1.cos_zenith);
+            let air_c = lerp(k0.air_c, k1.air_c, f);
+            let (clear, cos_z) = clear_sky_at(k0, k1, f);
             let irr = sky::cloudy(&clear, cos_z, kc);
-            let g = Geometry {
-                cos_aoi: lerp(a0.geometry.cos_aoi, a1.geometry.cos_aoi),
-                cos_zenith: cos_z,
-                projection_ratio: lerp(a0.geometry.projection_ratio, a1.geometry.projection_ratio),
-            };
-            let poa = array.plane.poa_with_inverse(&g, &irr, k0.inv_dni_extra, self.albedo, self.diffuse);
-            let global = poa.global();
-            let cell = air_c + global * lerp(a0.heat, a1.heat);
-            let per_irr = 0.001 * (1.0 + array.gamma * (cell - 25.0)) * self.derate;
+            let (_, global, _, per_irr) = array_at(array, (a0, a1), f, &irr, cos_z, air_c, k0.inv_dni_extra, optics);
             // `produce` sums into 0.0 first; 0.0 + x differs from x only for x = −0,
             // which `at_least` turns into +0 either way.
             let dc = at_least(global * array.nameplate_w * per_irr, 0.0);
@@ -582,19 +569,13 @@ impl Model {
         self.ensure_knots(t_ms);
         // No division on the per-step path: `inv_span_ms` is kept with the knots.
         let f = (t_ms - self.k0.t_ms) as f64 * self.inv_span_ms;
-        let lerp = |a: f64, b: f64| a + (b - a) * f;
         let (k0, k1) = (&self.k0, &self.k1);
-        let air_c = lerp(k0.air_c, k1.air_c);
+        let air_c = lerp(k0.air_c, k1.air_c, f);
         if k0.clear.ghi <= 0.0 && k1.clear.ghi <= 0.0 {
             let sample = PvSample { cell_temp_c: air_c, clear_sky_index: self.last_kc, ..PvSample::default() };
             return (0.0, sample);
         }
-        let clear = Irradiance {
-            ghi: lerp(k0.clear.ghi, k1.clear.ghi),
-            dni: lerp(k0.clear.dni, k1.clear.dni),
-            dhi: lerp(k0.clear.dhi, k1.clear.dhi),
-        };
-        let cos_z = lerp(k0.cos_zenith, k1.cos_zenith);
+        let (clear, cos_z) = clear_sky_at(k0, k1, f);
         let dni_extra = k0.dni_extra;
         let (irr, kc) = match &mut self.sky {
             Sky::Clouds(c) => {
@@ -604,7 +585,7 @@ impl Model {
             Sky::Measured(series) => {
                 let ghi = series.value_at(t_ms as f64 * 0.001);
                 let kc = if clear.ghi > 1.0 { ghi / clear.ghi } else { 1.0 };
-                let zenith = lerp(k0.zenith_deg, k1.zenith_deg);
+                let zenith = lerp(k0.zenith_deg, k1.zenith_deg, f);
                 (sky::erbs(ghi, zenith, dni_extra), kc)
             }
         };
@@ -614,22 +595,14 @@ impl Model {
         let mut poa_weighted = 0.0;
         let mut first_cell = f64::NAN;
         let (c0, c1) = (self.cur & 1, (self.cur ^ 1) & 1);
+        let optics = (self.albedo, self.diffuse, self.derate);
         for array in &self.arrays {
-            let (a0, a1) = (&array.knots[c0], &array.knots[c1]);
-            let g = Geometry {
-                cos_aoi: lerp(a0.geometry.cos_aoi, a1.geometry.cos_aoi),
-                cos_zenith: cos_z,
-                projection_ratio: lerp(a0.geometry.projection_ratio, a1.geometry.projection_ratio),
-            };
-            let poa = array.plane.poa_with_inverse(&g, &irr, k0.inv_dni_extra, self.albedo, self.diffuse);
-            let global = poa.global();
-            let cell = air_c + global * lerp(a0.heat, a1.heat);
+            let knots = (&array.knots[c0], &array.knots[c1]);
+            let (poa, global, cell, per_irr) = array_at(array, knots, f, &irr, cos_z, air_c, k0.inv_dni_extra, optics);
             if first_cell.is_nan() {
                 first_cell = cell;
             }
             poa_weighted += global * array.nameplate_w;
-            // W of DC per (W/m²) of irradiance per W of nameplate.
-            let per_irr = 0.001 * (1.0 + array.gamma * (cell - 25.0)) * self.derate;
             if self.layout == Layout::String && !array.shaded_now {
                 // Every string sees the same irradiance: one product for the array.
                 dc_total += global * array.nameplate_w * per_irr;
@@ -670,6 +643,50 @@ impl Model {
         };
         (ac_total, sample)
     }
+}
+
+/// Linear interpolation from `a` (at the earlier knot) to `b`, at fraction `f`.
+#[inline(always)]
+fn lerp(a: f64, b: f64, f: f64) -> f64 {
+    a + (b - a) * f
+}
+
+/// The clear sky and cos(zenith) at fraction `f` between two knots.
+#[inline(always)]
+fn clear_sky_at(k0: &Knot, k1: &Knot, f: f64) -> (Irradiance, f64) {
+    let clear = Irradiance {
+        ghi: lerp(k0.clear.ghi, k1.clear.ghi, f),
+        dni: lerp(k0.clear.dni, k1.clear.dni, f),
+        dhi: lerp(k0.clear.dhi, k1.clear.dhi, f),
+    };
+    (clear, lerp(k0.cos_zenith, k1.cos_zenith, f))
+}
+
+/// One array under the sky `irr` at fraction `f` between its knots: plane-of-array
+/// irradiance, its global value, the cell temperature, and W of DC per (W/m²) of
+/// irradiance per W of nameplate. `optics` is (albedo, sky-diffuse model, derate).
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+fn array_at(
+    array: &ArrayModel,
+    (a0, a1): (&ArrayKnot, &ArrayKnot),
+    f: f64,
+    irr: &Irradiance,
+    cos_z: f64,
+    air_c: f64,
+    inv_dni_extra: f64,
+    (albedo, diffuse, derate): (f64, SkyDiffuse, f64),
+) -> (Poa, f64, f64, f64) {
+    let g = Geometry {
+        cos_aoi: lerp(a0.geometry.cos_aoi, a1.geometry.cos_aoi, f),
+        cos_zenith: cos_z,
+        projection_ratio: lerp(a0.geometry.projection_ratio, a1.geometry.projection_ratio, f),
+    };
+    let poa = array.plane.poa_with_inverse(&g, irr, inv_dni_extra, albedo, diffuse);
+    let global = poa.global();
+    let cell = air_c + global * lerp(a0.heat, a1.heat, f);
+    let per_irr = 0.001 * (1.0 + array.gamma * (cell - 25.0)) * derate;
+    (poa, global, cell, per_irr)
 }
 
 impl PvSystem {
