@@ -221,8 +221,11 @@ impl Battery {
             let out = -ac_w * self.inv_eta_d;
             (0.0, out, out + ac_w)
         };
-        self.stored_wh += (into - out) * dt * (1.0 / 3600.0);
-        self.stored_wh = clamp(self.stored_wh, 0.0, self.capacity_wh);
+        let stored = self.stored_wh + (into - out) * dt * (1.0 / 3600.0);
+        // The rooms keep the charge within its limits, so the clamp almost never acts: a
+        // branch keeps the min/max off the step-to-step dependency chain.
+        self.stored_wh =
+            if stored >= 0.0 && stored <= self.capacity_wh { stored } else { clamp(stored, 0.0, self.capacity_wh) };
         // Reported terminal values: I = P_dc / OCV, V = OCV + I·R. The OCV is
         // re-read from the curve only after the charge moves by 0.01 % of capacity
         // (under 1 mV on these curves), which keeps the division off most steps.

@@ -328,6 +328,10 @@ pub struct Plant {
     loads_switched_only: bool,
     /// The tank's thermostat call when `load_w` was last computed (`None`: never).
     heat_call: Option<bool>,
+    /// The relay commands the contacts were last worked out from.
+    relays_applied: Vec<bool>,
+    /// The contacts must be worked out again: a fault has started or ended since.
+    contacts_stale: bool,
     /// The battery flows were all zero last step.
     battery_flows_quiet: bool,
     /// The unserved and spilled flows were both zero last step.
@@ -557,6 +561,8 @@ impl Plant {
             wired,
             load_w: vec![0.0; n_loads],
             loads_switched_only,
+            relays_applied: Vec::new(),
+            contacts_stale: true,
             heat_call: None,
             battery_flows_quiet: false,
             island_flows_quiet: false,
@@ -634,6 +640,7 @@ impl Plant {
         }
         self.bus.set_faults(&self.faults.active);
         self.meter_faults = meter_faults(&self.faults.active);
+        self.contacts_stale = true;
     }
 
     /// Advances the physics by `dt_s` seconds with the current controls.
@@ -664,16 +671,22 @@ impl Plant {
 
         // Demand, with the relay module's outputs forced off while it reboots.
         let relays_down = self.faults.active.restarting[2];
-        let controls = &self.bus.controls;
-        let stuck = &self.faults.active.stuck;
-        let readings = &mut self.bus.readings;
+        // A contact follows its relay's command unless a fault holds it: it can change
+        // only when a command or a fault does, which is seldom, so most steps skip this.
         let mut contacts_changed = false;
-        for (((contact, &commanded), &wired), &stuck) in
-            readings.contacts.iter_mut().zip(&controls.relays).zip(&self.wired).zip(stuck)
-        {
-            let closed = stuck.unwrap_or(commanded && !(relays_down && wired));
-            contacts_changed |= closed != *contact;
-            *contact = closed;
+        if self.contacts_stale || self.bus.controls.relays != self.relays_applied {
+            let controls = &self.bus.controls;
+            let stuck = &self.faults.active.stuck;
+            let readings = &mut self.bus.readings;
+            for (((contact, &commanded), &wired), &stuck) in
+                readings.contacts.iter_mut().zip(&controls.relays).zip(&self.wired).zip(stuck)
+            {
+                let closed = stuck.unwrap_or(commanded && !(relays_down && wired));
+                contacts_changed |= closed != *contact;
+                *contact = closed;
+            }
+            self.relays_applied.clone_from(&controls.relays);
+            self.contacts_stale = false;
         }
         let house_w = match &mut self.house_replay {
             Some(recorded) => recorded(t).max(0.0),
