@@ -2,10 +2,14 @@
 //! battery + meter site at 1 s steps, with a stub PV source (the PV chain is benched
 //! separately), and the whole plant of the zero-export example with its modelled PV
 //! and mixed clouds, also with a battery added. Criterion reports "elements/s" = simulated seconds per second.
+//!
+//! `SPILLWAY_BENCH_ONCE=whole_plant|whole_plant_battery SPILLWAY_BENCH_DAYS=N` runs that
+//! plant once for N days without criterion, for counting its instructions under
+//! callgrind (`benches/count_instructions.sh`).
 
 use std::hint::black_box;
 
-use criterion::{Criterion, Throughput, criterion_group, criterion_main};
+use criterion::{Criterion, Throughput, criterion_group};
 use spillway_sim::plant::{Plant, PlantConfig};
 use spillway_sim::pv_output::{PvSample, PvSource};
 use spillway_sim::site::{SiteOptions, build, from_site_yaml};
@@ -75,23 +79,18 @@ fn bench(c: &mut Criterion) {
         })
     });
     // The whole plant: the example's roof, mixed weather, house, tank and pump.
-    let example = from_site_yaml(include_str!("../../config/zero-export-house.yaml"))
-        .expect("the example parses")
-        .expect("the example has a plant");
+    let without_battery = example(false);
     g.bench_function("year_at_1s_whole_plant", |b| {
         b.iter(|| {
             let options = SiteOptions { start_ms: START_MS, seed: 7, sky: None };
-            let mut p = build(&example, &options).expect("the example builds");
+            let mut p = build(&without_battery, &options).expect("the example builds");
             simulate(&mut p, year);
             black_box(p.flows().balance_error_wh())
         })
     });
     // The same with a home battery as well (the "whole plant" lists one): the
     // crude controller charges it from export and discharges it against import.
-    let mut with_battery = example.clone();
-    with_battery.battery = Some(
-        serde_saphyr::from_str("{ capacity: 10kWh, max_charge: 3kW, max_discharge: 3kW }").expect("battery parses"),
-    );
+    let with_battery = example(true);
     g.bench_function("year_at_1s_whole_plant_battery", |b| {
         b.iter(|| {
             let options = SiteOptions { start_ms: START_MS, seed: 7, sky: None };
@@ -103,5 +102,41 @@ fn bench(c: &mut Criterion) {
     g.finish();
 }
 
+/// The zero-export example's plant, with or without a 10 kWh home battery.
+fn example(battery: bool) -> PlantConfig {
+    let mut cfg = from_site_yaml(include_str!("../../config/zero-export-house.yaml"))
+        .expect("the example parses")
+        .expect("the example has a plant");
+    if battery {
+        cfg.battery = Some(
+            serde_saphyr::from_str("{ capacity: 10kWh, max_charge: 3kW, max_discharge: 3kW }").expect("battery parses"),
+        );
+    }
+    cfg
+}
+
+/// One run of a whole plant for `days`, timed once (for callgrind, not for timing).
+fn once(which: &str, days: u64) {
+    let cfg = match which {
+        "whole_plant" => example(false),
+        "whole_plant_battery" => example(true),
+        other => panic!("SPILLWAY_BENCH_ONCE: no plant {other:?} (whole_plant or whole_plant_battery)"),
+    };
+    let options = SiteOptions { start_ms: START_MS, seed: 7, sky: None };
+    let mut p = build(&cfg, &options).expect("the example builds");
+    let t = std::time::Instant::now();
+    simulate(&mut p, days * 86_400);
+    println!("{which}: {days} days at 1 s in {:.2} s", t.elapsed().as_secs_f64());
+}
+
 criterion_group!(benches, bench);
-criterion_main!(benches);
+
+fn main() {
+    if let Ok(which) = std::env::var("SPILLWAY_BENCH_ONCE") {
+        let days = std::env::var("SPILLWAY_BENCH_DAYS").ok().and_then(|d| d.parse().ok()).unwrap_or(365);
+        once(&which, days);
+        return;
+    }
+    benches();
+    Criterion::default().configure_from_args().final_summary();
+}
