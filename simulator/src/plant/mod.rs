@@ -86,6 +86,13 @@ pub(crate) fn clamp(x: f64, lo: f64, hi: f64) -> f64 {
     x
 }
 
+/// Whether two short flag lists differ: a plain loop, a few instructions for the usual
+/// one to four relays (`!=` on slices of bytes calls `bcmp`, a library call).
+#[inline]
+fn differ(a: &[bool], b: &[bool]) -> bool {
+    a.len() != b.len() || a.iter().zip(b).any(|(x, y)| x != y)
+}
+
 /// The meter's faults among those in force.
 fn meter_faults(active: &faults::Active) -> meter::MeterFaults {
     meter::MeterFaults {
@@ -674,7 +681,7 @@ impl Plant {
         // A contact follows its relay's command unless a fault holds it: it can change
         // only when a command or a fault does, which is seldom, so most steps skip this.
         let mut contacts_changed = false;
-        if self.contacts_stale || self.bus.controls.relays != self.relays_applied {
+        if self.contacts_stale || differ(&self.bus.controls.relays, &self.relays_applied) {
             let controls = &self.bus.controls;
             let stuck = &self.faults.active.stuck;
             let readings = &mut self.bus.readings;

@@ -36,11 +36,18 @@ impl Stream {
     #[inline]
     pub fn normal(&mut self) -> f64 {
         let r = self.0.random::<u64>();
-        let sum = (r & 0xFFFF) + ((r >> 16) & 0xFFFF) + ((r >> 32) & 0xFFFF) + (r >> 48);
+        // The four 16-bit fields summed in two rounds: first the pairs (1+0, 3+2) side by
+        // side in the two 32-bit halves, then the halves. The same sum as adding the four
+        // one by one, in fewer instructions (this runs once per meter report).
+        const LOW16_OF_EACH_HALF: u64 = 0x0000_FFFF_0000_FFFF;
+        let pairs = (r & LOW16_OF_EACH_HALF) + ((r >> 16) & LOW16_OF_EACH_HALF);
+        let sum = (pairs & 0xFFFF_FFFF) + (pairs >> 32);
         // Each term is uniform on [0, 65535]: mean 32767.5, variance (65536² − 1)/12.
         const MEAN: f64 = 4.0 * 32_767.5;
         const SD: f64 = 37_837.23; // sqrt(4 × (65536² − 1) / 12)
-        (sum as f64 - MEAN) / SD
+        // `sum` < 2¹⁸: as a 32-bit signed integer it converts in one instruction, to the
+        // same value.
+        (f64::from(sum as i32) - MEAN) / SD
     }
 }
 
