@@ -500,6 +500,10 @@ impl Model {
         let plain = !b.night && self.layout == Layout::String && matches!(self.arrays.as_slice(), [a] if !a.shaded_now);
         if plain {
             self.fill_plain(&mut b.ac_w, t_ms, dt_ms, dt_s, steps);
+        } else if b.night {
+            // What `produce` gives between two knots with the sun down: nothing, with the
+            // clouds left where they are.
+            b.ac_w.resize(steps, 0.0);
         } else {
             for i in 0..steps {
                 b.ac_w.push(self.produce(t_ms + i as i64 * dt_ms, dt_s).0);
