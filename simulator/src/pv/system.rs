@@ -499,7 +499,8 @@ impl Model {
         };
         let plain = !b.night && self.layout == Layout::String && matches!(self.arrays.as_slice(), [a] if !a.shaded_now);
         if plain {
-            self.fill_plain(&mut b.ac_w, t_ms, dt_ms, dt_s, steps);
+            b.ac_w.resize(steps, 0.0);
+            self.fill_plain(&mut b.ac_w, t_ms, dt_ms, dt_s);
         } else if b.night {
             // What `produce` gives between two knots with the sun down: nothing, with the
             // clouds left where they are.
@@ -520,7 +521,7 @@ impl Model {
     /// from the sample that is not needed and the cloud step inlined. Only the cloud
     /// index is carried from one step to the next, so the core overlaps its dependency
     /// chain with the rest of the step and with the steps around it.
-    fn fill_plain(&mut self, out: &mut Vec<f64>, t_ms: i64, dt_ms: i64, dt_s: f64, steps: usize) {
+    fn fill_plain(&mut self, out: &mut [f64], t_ms: i64, dt_ms: i64, dt_s: f64) {
         let Sky::Clouds(clouds) = &mut self.sky else {
             unreachable!("fill_plain runs under clouds only");
         };
@@ -530,7 +531,8 @@ impl Model {
         let (a0, a1) = (&array.knots[self.cur & 1], &array.knots[(self.cur ^ 1) & 1]);
         let optics = (self.albedo, self.diffuse, self.derate);
         let mut kc = self.last_kc;
-        for i in 0..steps {
+        // Written in place rather than pushed: no capacity check a step.
+        for (i, ac) in out.iter_mut().enumerate() {
             kc = clouds.step_inlined(day, dt_s);
             let f = (t_ms + i as i64 * dt_ms - k0.t_ms) as f64 * self.inv_span_ms;
             let air_c = lerp(k0.air_c, k1.air_c, f);
@@ -540,7 +542,7 @@ impl Model {
             // `produce` sums into 0.0 first; 0.0 + x differs from x only for x = −0,
             // which `at_least` turns into +0 either way.
             let dc = at_least(global * array.nameplate_w * per_irr, 0.0);
-            out.push(self.central.ac(dc));
+            *ac = self.central.ac(dc);
         }
         self.last_kc = kc;
     }
