@@ -409,7 +409,7 @@ impl Engine {
         self.update_mode(now, guard_ok);
         // The site is borrowed from `self.site`, and borrowed again after each call that
         // needs all of `self`: cloning the `Arc` for the tick took two atomic operations,
-        // which wait for every pending store (≈ 4 % of a simulated run).
+        // which wait for every pending store (≈ 5 % of a simulated run).
         let site = &*self.site;
 
         // Power each load draws now: its own meter if fresh, otherwise as commanded.
