@@ -78,27 +78,20 @@ fn bench(c: &mut Criterion) {
             black_box(p.flows().balance_error_wh())
         })
     });
-    // The whole plant: the example's roof, mixed weather, house, tank and pump.
-    let without_battery = example(false);
-    g.bench_function("year_at_1s_whole_plant", |b| {
-        b.iter(|| {
-            let options = SiteOptions { start_ms: START_MS, seed: 7, sky: None };
-            let mut p = build(&without_battery, &options).expect("the example builds");
-            simulate(&mut p, year);
-            black_box(p.flows().balance_error_wh())
-        })
-    });
-    // The same with a home battery as well (the "whole plant" lists one): the
-    // crude controller charges it from export and discharges it against import.
-    let with_battery = example(true);
-    g.bench_function("year_at_1s_whole_plant_battery", |b| {
-        b.iter(|| {
-            let options = SiteOptions { start_ms: START_MS, seed: 7, sky: None };
-            let mut p = build(&with_battery, &options).expect("the example with a battery builds");
-            simulate(&mut p, year);
-            black_box(p.flows().balance_error_wh())
-        })
-    });
+    // The whole plant: the example's roof, mixed weather, house, tank and pump; then the
+    // same with a home battery as well (the "whole plant" lists one), which the
+    // crude controller charges from export and discharges against import.
+    for (name, battery) in [("year_at_1s_whole_plant", false), ("year_at_1s_whole_plant_battery", true)] {
+        let cfg = example(battery);
+        g.bench_function(name, |b| {
+            b.iter(|| {
+                let options = SiteOptions { start_ms: START_MS, seed: 7, sky: None };
+                let mut p = build(&cfg, &options).expect("the example builds");
+                simulate(&mut p, year);
+                black_box(p.flows().balance_error_wh())
+            })
+        });
+    }
     g.finish();
 }
 

@@ -247,20 +247,24 @@ fn measured_pv_ac_is_replayed_under_the_limit() {
 fn the_plants_batched_ac_path_gives_the_samples_of_stepping_one_at_a_time() {
     // `step_ac` computes a knot interval's steps ahead in one loop; whatever the caller
     // does (steady 1 s steps, a jump in time, a change of step length, a switch to
-    // `step`, a limit), its powers must be bit-for-bit those of `step` alone.
+    // `step`, a limit, dusk, a night and dawn), its powers must be bit-for-bit those of
+    // `step` alone.
     let cfg = small_roof();
     let w = weather(WeatherKind::Mixed);
     let start = 1_744_700_000_000_i64; // 2025-04-15, morning in Munich
     let mut times: Vec<(i64, f64)> = Vec::new();
     let mut t = start;
-    for i in 0..20_000 {
+    for i in 0..25_000 {
         let dt = match i {
             5_000..=5_100 => 0.5,
             7_000..=7_010 => 7.0,
             _ => 1.0,
         };
-        if i == 9_000 {
-            t += 3_600_000; // a jump of an hour
+        match i {
+            9_000 => t += 3_600_000,         // a jump of an hour
+            15_000 => t = 1_744_738_800_000, // 17:40 UTC: through sunset into the night
+            19_000 => t = 1_744_774_200_000, // 03:30 UTC the next day: night, then dawn
+            _ => {}
         }
         times.push((t, dt));
         t += (dt * 1000.0) as i64;
