@@ -250,6 +250,53 @@ loads: []
     assert!(quick.warnings.iter().all(|w| w.code != "C0263"), "{:?}", quick.warnings);
 }
 
+/// `guard.margin` must leave export above zero (an error when it is not below the limit),
+/// should clear the tolerance (a warning), and means nothing without a non-zero limit (a
+/// warning); left out, it defaults to 50 W, or to the tolerance when that is wider.
+#[test]
+fn a_guard_margin_is_checked_against_the_export_limit_and_the_tolerance() {
+    let site = |header: &str| {
+        format!(
+            "
+site:
+  name: Margin House
+  timezone: Europe/Lisbon
+{header}
+devices:
+  meter: {{ modbus_tcp: 127.0.0.1:5020, unit: 1 }}
+points:
+  grid: {{ device: meter, register: 0, type: i16, unit: W }}
+loads: []
+"
+        )
+    };
+    let yaml = site("  export: 1.5kW\n  guard: { margin: 1.5kW }");
+    let Err(err) = spillway::config::load_str("m.yaml", &yaml) else {
+        panic!("a margin as wide as the limit is refused")
+    };
+    let shown = err.render(false);
+    assert!(shown.contains("[C0269] Error: the guard margin is not below the export limit"), "{shown}");
+
+    let yaml = site("  export: 1.5kW\n  guard: { tolerance: 40W, margin: 20W }");
+    let loaded = spillway::config::load_str("m.yaml", &yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let shown = spillway::diag::render("m.yaml", &yaml, &loaded.warnings, false);
+    assert!(shown.contains("[C0270] Warning: the guard margin is smaller than its tolerance"), "{shown}");
+    assert_eq!(loaded.site.guard.margin.0, 20.0);
+
+    let yaml = site("  export: forbidden\n  guard: { margin: 100W }");
+    let loaded = spillway::config::load_str("m.yaml", &yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let shown = spillway::diag::render("m.yaml", &yaml, &loaded.warnings, false);
+    assert!(shown.contains("[C0270] Warning: `guard.margin` applies only to a non-zero export limit"), "{shown}");
+
+    let defaults = |header: &str| {
+        let l = spillway::config::load_str("m.yaml", &site(header)).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        assert!(l.warnings.is_empty(), "{:?}", l.warnings);
+        l.site.guard.margin.0
+    };
+    assert_eq!(defaults("  export: 1.5kW"), 50.0);
+    assert_eq!(defaults("  export: 1.5kW\n  guard: { tolerance: 120W }"), 120.0);
+}
+
 /// An ordinal sign typed for the degree sign, and an unquoted rule with a comma in a
 /// flow mapping, each get advice that names the slip.
 #[test]

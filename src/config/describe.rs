@@ -30,9 +30,15 @@ pub fn describe(site: &Site) -> String {
         site.import_target,
         format_duration(site.tick)
     );
+    // The margin matters only under a non-zero limit (a no-export site is held at its
+    // import target).
+    let margin = match site.export_limit() {
+        Some(l) if l.0 > 0.0 => format!(", holds export {} under the limit", site.guard.margin),
+        _ => String::new(),
+    };
     let _ = writeln!(
         out,
-        "  export guard: tolerance {}, escalates to the safe limit after {}, releases at {}/s",
+        "  export guard: tolerance {}{margin}, escalates to the safe limit after {}, releases at {}/s",
         site.guard.tolerance,
         format_duration(site.guard.deadline),
         site.guard.release_rate

@@ -162,6 +162,10 @@ const DEFAULT_TIMEOUT: Duration = Duration::from_millis(500);
 pub const DEFAULT_STALE_AFTER: Duration = Duration::from_millis(2500);
 /// Default time the export guard allows itself before escalating to the safe limit.
 pub const DEFAULT_GUARD_DEADLINE: Duration = Duration::from_secs(2);
+/// How far under a non-zero export limit the guard holds export, by default: a few times
+/// the noise of a household meter's power reading (common practice, no published source),
+/// so noise alone does not carry a reading past the limit plus the tolerance.
+pub const DEFAULT_GUARD_MARGIN: Power = Power(50.0);
 
 impl Builder<'_, '_> {
     fn site(&mut self, tree: &Node) -> Option<Site> {
@@ -336,6 +340,10 @@ impl Builder<'_, '_> {
             Some(v) => Power(v?),
             None => default_target,
         };
+        let (guard, margin_span) = guard?;
+        if let Some(span) = margin_span {
+            self.check_guard_margin(&guard, export, span);
+        }
         let tick = tick?;
         if tick < Duration::from_millis(100) || tick > Duration::from_secs(60) {
             self.diags.error(
@@ -350,7 +358,7 @@ impl Builder<'_, '_> {
             timezone: timezone?,
             connection,
             import_target,
-            guard: guard?,
+            guard,
             failsafe: failsafe?,
             tick,
             spans: HeaderSpans {
@@ -359,6 +367,35 @@ impl Builder<'_, '_> {
                 import_target: import_target_node.map(|n| n.span.clone()),
             },
         })
+    }
+
+    /// A margin the user set: it must leave export above zero, and should clear the
+    /// tolerance, or meter noise alone reads as export past the limit.
+    fn check_guard_margin(&mut self, guard: &GuardSettings, export: ExportPolicy, span: Range<usize>) {
+        match export {
+            ExportPolicy::Limited(limit) if guard.margin.0 >= limit.0 => self.diags.error(
+                "C0269",
+                "the guard margin is not below the export limit",
+                span,
+                format!("export is held `margin` under the limit ({limit}); use a margin smaller than the limit"),
+            ),
+            ExportPolicy::Limited(_) if guard.margin.0 < guard.tolerance.0 => self.diags.push(
+                Diagnostic::warning("C0270", "the guard margin is smaller than its tolerance", span)
+                    .with_label("export is held closer to the limit than the meter's noise")
+                    .with_note(format!(
+                        "meter noise will read as export past the limit and set off the guard's escalation; a margin of at least the tolerance ({}) avoids it",
+                        guard.tolerance
+                    )),
+            ),
+            ExportPolicy::Limited(_) => {}
+            ExportPolicy::Allowed | ExportPolicy::Forbidden => self.diags.push(
+                Diagnostic::warning("C0270", "`guard.margin` applies only to a non-zero export limit", span)
+                    .with_label("ignored here")
+                    .with_note(
+                        "a no-export site is held at `import_target` (at least the tolerance) instead; with export allowed there is no limit to hold under",
+                    ),
+            ),
+        }
     }
 
     fn timezone(&mut self, node: &Node) -> Option<Tz> {
@@ -413,15 +450,18 @@ impl Builder<'_, '_> {
         Some(if limit == 0.0 { ExportPolicy::Forbidden } else { ExportPolicy::Limited(Power(limit)) })
     }
 
-    fn guard(&mut self, node: Option<&Node>) -> Option<GuardSettings> {
+    /// The guard settings, and the span of `margin` when it was given (its checks need
+    /// the export limit, which is read beside it).
+    fn guard(&mut self, node: Option<&Node>) -> Option<(GuardSettings, Option<Range<usize>>)> {
         let mut g = GuardSettings {
             tolerance: Power(10.0),
+            margin: DEFAULT_GUARD_MARGIN,
             deadline: DEFAULT_GUARD_DEADLINE,
             release_rate: Power(200.0),
             kp: 0.1,
             ki: 0.5,
         };
-        let Some(node) = node else { return Some(g) };
+        let Some(node) = node else { return Some((g, None)) };
         let mut m = MapReader::new(node, "the `guard` section", self.diags)?;
         let mut ok = true;
         if let Some(n) = m.get("tolerance") {
@@ -438,6 +478,25 @@ impl Builder<'_, '_> {
             )
             .map(|v| g.tolerance = Power(v))
             .is_some();
+        }
+        let margin_node = m.get("margin");
+        match margin_node {
+            Some(n) => {
+                ok &= values::quantity_in(
+                    n,
+                    Dimension::Power,
+                    (0.0, 10_000.0),
+                    "the guard margin",
+                    "0 W and 10 kW",
+                    "it is how far under a non-zero export limit export is held",
+                    self.diags,
+                )
+                .map(|v| g.margin = Power(v))
+                .is_some();
+            }
+            // A wide tolerance widens the default margin with it: the hold band then
+            // still ends at the limit.
+            None => g.margin = g.margin.max(g.tolerance),
         }
         if let Some(n) = m.get("deadline") {
             ok &= values::duration(n, "the guard deadline", self.diags).map(|v| g.deadline = v).is_some();
@@ -460,7 +519,7 @@ impl Builder<'_, '_> {
                 .is_some();
         }
         m.finish(self.diags);
-        ok.then_some(g)
+        ok.then_some((g, margin_node.map(|n| n.span.clone())))
     }
 
     fn failsafe(&mut self, node: Option<&Node>) -> Option<FailsafeSettings> {

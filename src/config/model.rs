@@ -143,6 +143,9 @@ pub struct OffGridSettings {
 pub struct GuardSettings {
     /// Export at or below this power (above the limit) is treated as measurement noise.
     pub tolerance: Power,
+    /// How far under a non-zero export limit the guard holds export once it curtails: far
+    /// enough that meter noise does not carry the reading past limit + tolerance.
+    pub margin: Power,
     /// If export persists this long after the guard acted, it escalates to the safe limit.
     pub deadline: Duration,
     /// How fast a curtailment is released once import returns (W per second).

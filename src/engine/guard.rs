@@ -148,8 +148,11 @@ impl Guard {
         // only a reading wholly after the last correction can show its effect.
         let fresh_reading = self.acted_at.is_none_or(|t| measured_at > t);
         let tolerance = site.guard.tolerance;
-        // Hold a no-export site at its small import; a limited one just under its limit.
-        let target = if export_limit.0 <= 0.0 { site.import_target.max(tolerance) } else { -export_limit + tolerance };
+        // Hold a no-export site at its small import; a limited one its margin under the
+        // limit. The margin keeps meter noise from reading as export past the limit: held
+        // within the tolerance of it, noise alone set off cuts and escalations.
+        let target =
+            if export_limit.0 <= 0.0 { site.import_target.max(tolerance) } else { -export_limit + site.guard.margin };
 
         // Escalation: export above limit + tolerance for longer than the deadline.
         if -grid > export_limit + tolerance {
