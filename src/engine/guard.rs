@@ -27,6 +27,11 @@ pub struct Guard {
     acted_at: Option<Timestamp>,
     /// Whether the last change raised the limit (a cut may then follow at once).
     last_raised: bool,
+    /// The guard's own changes of the limit since the grid reading in use was measured,
+    /// oldest first: when, the limit before (the rating for none), and whether it was a
+    /// raise. A reading older than cuts alone may still show export beyond what the cuts
+    /// removed; that much is cut at once, without waiting for a reading measured after.
+    changes: std::collections::VecDeque<(Timestamp, Power, bool)>,
     /// A raise whose effect the PV readings have not yet shown in full: the inverter
     /// ramps up to a raised limit (often over more than one PV poll), and a grid
     /// reading taken during the ramp shows only part of it. Another raise waits until
@@ -135,6 +140,7 @@ impl Guard {
             // silent, served again as it returns, must not count).
             self.acted_at = Some(now);
             self.limit = Some(inv.safe_limit);
+            self.changes.clear();
             self.last_raised = false;
             self.raise_pending = false;
             self.export_since = None;
@@ -211,7 +217,25 @@ impl Guard {
             }
             None => Power::ZERO,
         };
-        let expected = grid + delta_loads - pv_change;
+        // A reading measured before the guard's last cuts shows export the cuts have
+        // since removed: credit it with them. What it shows beyond that is new (a load
+        // ending, a cloud clearing) and is cut now; waiting for a reading measured after
+        // a cut (often a trim of a few watts) let such export stand until the deadline
+        // and escalate. The credit is the cuts' full size, so it errs towards cutting
+        // too little (the next reading corrects), never too much. Only when every change
+        // since the reading was a cut: a raise's ramp shows in the PV carry-forward and
+        // would be cut back as if it were new export. After a fail-safe no change is
+        // recorded, and the guard waits for a reading measured after it, as it must.
+        while self.changes.front().is_some_and(|(t, _, _)| *t < measured_at || now.since(*t) > PV_HISTORY_MAX) {
+            self.changes.pop_front();
+        }
+        let unseen_cut = match self.changes.front() {
+            Some((_, before, _)) if !fresh_reading && self.changes.iter().all(|(_, _, raised)| !raised) => {
+                Some((*before - self.limit.unwrap_or(inv.rated)).max(Power::ZERO))
+            }
+            _ => None,
+        };
+        let expected = grid + delta_loads - pv_change + unseen_cut.unwrap_or(Power::ZERO);
         // The release rate is per second of time since the limit last moved: a change
         // waits for a reading measured after the last one, so counting only this tick
         // would slow the release by the meter's latency. Capped, so a limit that sat
@@ -224,7 +248,11 @@ impl Guard {
             None => expected < -export_limit,
             Some(_) => expected < target - tolerance,
         };
-        let may_act = fresh_reading || (cut_needed && self.last_raised);
+        // On a reading older than a cut, only export past the limit itself counts: the
+        // hold band is for fresh readings, or every noisy reading would trim the limit
+        // again before the last trim could show, and the limit would drift down.
+        let breach = expected < -(export_limit + tolerance);
+        let may_act = fresh_reading || (cut_needed && self.last_raised) || (unseen_cut.is_some() && breach);
         if !may_act {
             return (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None });
         }
@@ -289,6 +317,7 @@ impl Guard {
                 _ => false,
             };
             self.raise_pending = self.last_raised && pv.is_some();
+            self.changes.push_back((now, before.unwrap_or(inv.rated), self.last_raised));
         }
         (self.limit, if self.limit.is_some() { LimitReason::ExportGuard } else { LimitReason::None })
     }

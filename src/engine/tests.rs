@@ -664,16 +664,18 @@ fn the_guard_escalates_to_the_safe_limit_when_export_outlasts_its_deadline() {
 
 /// A closed loop for a site whose export is limited to 1.5 kW: an array that could give
 /// 4 kW, a house at `house(tick)`, and a meter whose reading describes the site 1 s
-/// before it arrives with ±30 W of noise on it (a fixed pseudo-random sequence). The
-/// inverter obeys a limit at once; no load ever starts. Returns the true export, the
-/// limit and its reason at every tick.
+/// before it arrives with ±30 W of noise on it (a fixed pseudo-random sequence), its
+/// point declaring `latency`. The inverter obeys a limit at once; no load ever starts.
+/// Returns the true export, the limit and its reason at every tick.
 fn limited_export_loop(
     header: &str,
+    latency: &str,
     ticks: usize,
     house: impl Fn(usize) -> f64,
 ) -> Vec<(f64, Option<f64>, LimitReason)> {
     let loads = "  - name: tank\n    rated: 3kW\n    switch: { device: relays, coil: 0 }\n    start: surplus > 50kW\n";
-    let yaml = site(header, loads).replace("type: i32, unit: W }", "type: i32, unit: W, latency: 1s }");
+    let yaml =
+        site(header, loads).replace("type: i32, unit: W }", &format!("type: i32, unit: W, latency: {latency} }}"));
     let mut h = Harness::new(&yaml);
     let (grid_p, pv_p) = (h.point("grid"), h.point("pv"));
     let potential = 4000.0_f64;
@@ -704,7 +706,7 @@ fn limited_export_loop(
 /// itself crossed the limit plus the tolerance for seconds at a time.
 #[test]
 fn a_limited_site_is_held_its_margin_under_the_limit_clear_of_meter_noise() {
-    let run = limited_export_loop("  export: 1.5kW", 900, |_| 500.0);
+    let run = limited_export_loop("  export: 1.5kW", "1s", 900, |_| 500.0);
     let settled = &run[10..];
     let escalations = settled.iter().filter(|(_, _, r)| *r == LimitReason::Escalated).count();
     assert_eq!(escalations, 0, "noise alone escalated the guard");
@@ -717,13 +719,52 @@ fn a_limited_site_is_held_its_margin_under_the_limit_clear_of_meter_noise() {
 /// `guard.margin` moves the hold point; the limit itself still triggers the first cut.
 #[test]
 fn the_guard_margin_moves_where_a_limited_site_is_held() {
-    let run = limited_export_loop("  export: 1.5kW\n  guard: { margin: 300W }", 300, |_| 500.0);
+    let run = limited_export_loop("  export: 1.5kW\n  guard: { margin: 300W }", "1s", 300, |_| 500.0);
     let settled = &run[10..];
     let mean = settled.iter().map(|(e, _, _)| *e).sum::<f64>() / settled.len() as f64;
     assert!((1150.0..=1230.0).contains(&mean), "held about 300 W under the limit: mean export {mean:.0} W");
     // Under the limit the guard leaves the inverter alone.
-    let free = limited_export_loop("  export: 1.5kW", 60, |_| 3000.0);
+    let free = limited_export_loop("  export: 1.5kW", "1s", 60, |_| 3000.0);
     assert!(free.iter().all(|(_, l, _)| l.is_none()), "1 kW of export under a 1.5 kW limit is not curtailed");
+}
+
+/// A house load of 1.8 kW ends while the guard holds a limited site: the export it
+/// leaves must be cut on the first reading that shows it, whatever the guard did the
+/// tick before. A small trim of the limit (noise) used to make that reading look too
+/// old to act on (it was measured before the trim), so the export stood until the
+/// deadline and the guard escalated to the safe limit: on the battery/EV example, most
+/// of its escalations. Run with the load ending at 60 different moments.
+#[test]
+fn export_left_by_a_load_ending_is_cut_at_once_even_after_a_trim() {
+    for drop_at in 200..260 {
+        let run =
+            limited_export_loop("  export: 1.5kW", "1s", drop_at + 30, |t| if t < drop_at { 2300.0 } else { 500.0 });
+        let escalated = run.iter().position(|(_, _, r)| *r == LimitReason::Escalated);
+        assert_eq!(escalated, None, "load ends at {drop_at}: escalated at {escalated:?}");
+        // The export shows at the meter one tick later; the cut acts the tick after.
+        let after = &run[drop_at + 2..];
+        let worst = after.iter().map(|(e, _, _)| *e).fold(f64::MIN, f64::max);
+        assert!(worst <= 1510.0, "load ends at {drop_at}: export still {worst:.0} W two ticks on");
+    }
+}
+
+/// A reading older than a raise is not credited: its carry-forward counts the PV's rise
+/// to the raised limit as export, and a meter that answers sooner than its declared
+/// `latency` (here 2 s declared, 1 s true) already shows the raise. Credited like a cut,
+/// such a reading made the guard cut each release straight back: on the battery/EV
+/// example, 2 % of a month's PV. A house that draws 500 W more for 5 s in every 10 s
+/// makes the guard release and cut all along (the carry-forward of a reading from
+/// just before a release cuts some of it back already, which this leaves alone); the
+/// credit must not add to that.
+#[test]
+fn a_release_is_not_cut_back_by_a_reading_from_before_it() {
+    let run = limited_export_loop("  export: 1.5kW", "2s", 600, |t| if t % 10 < 5 { 1000.0 } else { 500.0 });
+    let pv: f64 =
+        run[20..].iter().map(|(_, l, _)| l.unwrap_or(4000.0).min(4000.0)).sum::<f64>() / (run.len() - 20) as f64;
+    let cuts = run[20..].windows(2).filter(|w| w[1].1.unwrap_or(4000.0) < w[0].1.unwrap_or(4000.0) - 100.0).count();
+    // Measured: 2,060 W and 60 cuts; 2,056 W and 59 before the credit existed; 2,007 W
+    // and 76 with raises credited like cuts.
+    assert!(pv >= 2040.0 && cuts <= 65, "releases cut back: mean PV {pv:.0} W, {cuts} cuts of over 100 W");
 }
 
 // ---------------------------------------------------------------- fail-safe
