@@ -78,6 +78,10 @@ pub fn compare(a_name: &str, a: &Report, b_name: &str, b: &Report) -> Comparison
         row("time over the export limit", "s", a.export.seconds_over_limit, b.export.seconds_over_limit, Lower),
         row("guard response p95", "ms", a.guard.response_ms.p95, b.guard.response_ms.p95, Lower),
     ];
+    // Off-grid, in an outage: diversion must not cost the house its supply.
+    if a.show_unserved || b.show_unserved {
+        rows.insert(5, row("unserved demand", "kWh", a.energy.unserved_kwh, b.energy.unserved_kwh, Lower));
+    }
     if let (Some(ca), Some(cb)) = (&a.cost, &b.cost) {
         rows.push(row("cost", &ca.currency, ca.total, cb.total, Lower));
         rows.push(row("savings against no diversion", &ca.currency, ca.savings, cb.savings, Higher));

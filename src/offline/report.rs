@@ -7,7 +7,7 @@ use std::fmt::Write as _;
 use serde::Serialize;
 
 use super::run::RunOutput;
-use crate::config::model::Site;
+use crate::config::model::{Connection, Site};
 use crate::config::tariff::Tariff;
 
 fn r1(v: f64) -> f64 {
@@ -62,6 +62,9 @@ pub struct EnergyReport {
     pub losses_kwh: f64,
     /// PV held back by the inverter's limit (not generated).
     pub curtailed_kwh: f64,
+    /// Demand the site could not serve: an island's low-voltage disconnect, an outage's
+    /// overload trip, or an outage without a battery.
+    pub unserved_kwh: f64,
     /// Relative error of PV + import = house + loads + battery in − out + export + losses.
     pub balance_error_pct: f64,
 }
@@ -170,6 +173,8 @@ pub struct BaselineReport {
     pub export_kwh: f64,
     /// Highest export, W.
     pub export_peak_w: f64,
+    /// Demand not served, kWh.
+    pub unserved_kwh: f64,
 }
 
 /// The whole report.
@@ -197,6 +202,10 @@ pub struct Report {
     pub baseline: BaselineReport,
     /// Writes the plant refused during the run (a restarting device).
     pub refused_writes: u64,
+    /// Whether the text report shows unserved demand: on an off-grid or backed-up site
+    /// (where none is worth saying), or wherever there was some.
+    #[serde(skip)]
+    pub show_unserved: bool,
     /// For replays: the recorded file and what was done with its rows.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub replay: Option<ReplayReport>,
@@ -248,6 +257,7 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
         battery_discharge_kwh: kwh(f.battery_discharge.wh),
         losses_kwh: kwh(f.losses.wh),
         curtailed_kwh: kwh(f.pv_curtailed.wh),
+        unserved_kwh: kwh(f.unserved.wh),
         balance_error_pct,
     };
     let self_consumption_pct = if f.pv.wh > 0.0 { r1((1.0 - f.grid_export.wh / f.pv.wh) * 100.0) } else { 0.0 };
@@ -323,8 +333,12 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
             import_kwh: kwh(baseline.flows.grid_import.wh),
             export_kwh: kwh(baseline.flows.grid_export.wh),
             export_peak_w: r1(baseline.export_peak_w),
+            unserved_kwh: kwh(baseline.flows.unserved.wh),
         },
         refused_writes: run.refused_writes,
+        show_unserved: !matches!(site.connection, Connection::Grid { backup: None, .. })
+            || run.flows.unserved.wh > 0.0
+            || baseline.flows.unserved.wh > 0.0,
         replay: None,
     }
 }
@@ -356,6 +370,13 @@ impl Report {
             "  house {:>7.1}   diverted {:>6.1}   battery in/out {:.1}/{:.1}   curtailed {:.1}",
             e.house_kwh, e.diverted_kwh, e.battery_charge_kwh, e.battery_discharge_kwh, e.curtailed_kwh
         );
+        if self.show_unserved {
+            let _ = writeln!(
+                o,
+                "  unserved {:.1} (demand the site could not meet; {:.1} without diversion)",
+                e.unserved_kwh, self.baseline.unserved_kwh
+            );
+        }
         let x = &self.export;
         let limit = x.limit_w.map_or("no limit".to_owned(), |l| format!("limit {l} W"));
         let _ = writeln!(
