@@ -84,7 +84,9 @@ impl<'a> RunOptions<'a> {
 pub struct LoadFigures {
     /// Energy drawn (the plant's own accounting), Wh.
     pub energy_wh: f64,
-    /// Part of it drawn while an obligation held the load on from the grid, Wh.
+    /// Grid energy it drew while an obligation held it on: each step its energy, up to the
+    /// site's import in that step (shared out in priority order), Wh. An obligation that
+    /// holds a load on in full sun draws little from the grid, and counts little.
     pub grid_topup_wh: f64,
     /// Time on, s.
     pub runtime_s: f64,
@@ -364,8 +366,12 @@ pub fn simulate_once(
             out.export_episodes_ms.push((now - t0) as f64);
         }
 
-        // Loads: run time, and grid top-up energy while an obligation holds them on.
+        // Loads: run time, and grid top-up energy while an obligation holds them on: what
+        // the site imported for it. Without the obligation the load would have been off,
+        // so the import falls by the load's power at most; the rest of what it drew was
+        // PV that would have been curtailed or exported.
         if let Some(d) = decisions {
+            let mut import_left = flows.grid_import.w * step_h;
             for (i, (ld, side)) in d.loads.iter().zip(&sides).enumerate() {
                 let e = match side {
                     PlantSide::Load(k) => flows.loads.get(*k).map_or(0.0, |f| f.wh),
@@ -379,7 +385,9 @@ pub fn simulate_once(
                     f.runtime_s += step_s;
                 }
                 if ld.reason.is_grid_topup() {
-                    f.grid_topup_wh += de;
+                    let from_grid = de.min(import_left).max(0.0);
+                    import_left -= from_grid;
+                    f.grid_topup_wh += from_grid;
                 }
             }
         }
