@@ -44,7 +44,9 @@ pub enum OfflineError {
     #[error("the simulated plant cannot be built: {0}")]
     Plant(#[from] spillway_sim::site::SiteError),
     /// A point or actuator of the site has no counterpart in the plant.
-    #[error("{point}: {why}")]
+    #[error(
+        "{point}: {why}\n  offline runs read and write the simulated devices at the addresses the site file names: a site file written for real devices runs offline once its points and actuators use the simulator's register map or its sim/ MQTT topics (README: \"The device bus\"); SunSpec points carry over as they are"
+    )]
     Binding {
         /// The point or actuator.
         point: String,
