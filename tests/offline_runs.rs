@@ -147,7 +147,7 @@ fn a_frozen_meter_in_an_offline_run_sends_the_site_to_fail_safe_after_frozen_aft
     assert!(added <= 63.0, "{added} s more over the limit");
 }
 
-fn run_day(loaded: &Loaded, plant: &spillway_sim::plant::PlantConfig) -> RunOutput {
+fn run_day(loaded: &Loaded, plant: &offline::PlantSection) -> RunOutput {
     let mut o = RunOptions::day(date("2026-06-21"));
     o.sky = Some(WeatherKind::Clear);
     offline::simulate_once(&Arc::new(loaded.site.clone()), loaded.tariff.as_ref(), plant, o).unwrap()
@@ -564,6 +564,85 @@ fn off_grid_dump_loads_do_not_leave_the_house_unserved() {
     };
     assert!(text("off-grid-cabin.yaml").contains("\n  unserved "), "{}", text("off-grid-cabin.yaml"));
     assert!(!text("zero-export-house.yaml").contains("unserved"));
+}
+
+/// A site file written for real devices runs offline through `simulation.bind`: the
+/// zero-export example with its sensors, relays and inverter-limit register moved to
+/// addresses the simulator does not have (as a real installation's would be), and the
+/// bind naming the simulator's quantities and controls instead, gives the same run as
+/// the example itself; without the bind it is refused, naming the point and the remedy.
+#[test]
+fn a_real_sites_file_runs_offline_through_simulation_bind() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let mut real = text.clone();
+    for (from, to) in [
+        ("pv_available: { device: inverter, register: 50000,", "pv_available: { device: inverter, register: 41000,"),
+        ("tank_temp: { device: sensors, register: 0,", "tank_temp: { device: sensors, register: 300,"),
+        ("switch: { device: relays, coil: 0 }", "switch: { device: relays, coil: 16 }"),
+        ("switch: { device: relays, coil: 1 }", "switch: { device: relays, coil: 17 }"),
+    ] {
+        assert!(real.contains(from), "the example changed: {from}");
+        real = real.replace(from, to);
+    }
+    let unbound = config::load_str("real.yaml", &real).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let err = offline::checked_plant(&unbound).expect_err("a point the plant does not have is refused").to_string();
+    assert!(err.contains("pv_available") && err.contains("register map") && err.contains("simulation.bind"), "{err}");
+
+    let bound = real.replace(
+        "simulation:\n",
+        "simulation:\n  bind:\n    points: { pv_available: inverter/available, tank_temp: tank/temperature }\n    loads: { water_heater: relay/tank, pool_pump: relay/pump }\n",
+    );
+    let run_of = |yaml: &str| {
+        let loaded = config::load_str("site.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        let plant = offline::checked_plant(&loaded).unwrap_or_else(|e| panic!("{e}"));
+        let site = Arc::new(loaded.site.clone());
+        let mut o = RunOptions::day(date("2026-06-15"));
+        o.days = 2;
+        o.seed = 7;
+        o.sky = Some(WeatherKind::Mixed);
+        offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_or_else(|e| panic!("{e}"))
+    };
+    let (a, b) = (run_of(&text), run_of(&bound));
+    assert!(a.flows.loads.iter().all(|l| l.wh > 100.0), "the example's loads ran: {:?}", a.flows.loads);
+    assert_eq!(a.flows, b.flows, "the bound site runs as the example does");
+    assert_eq!(a.loads, b.loads);
+
+    // The inverter limit bound too (the register a real inverter would take, here one the
+    // simulator lacks): the guard still holds the site to no export.
+    let limit = bound
+        .replace("limit: { device: inverter, sunspec: true }", "limit: { device: inverter, register: 42000 }")
+        .replace("  bind:\n", "  bind:\n    inverter_limit: inverter/limit\n");
+    let c = run_of(&limit);
+    assert!(c.flows.pv_curtailed.wh > 1000.0, "the limit reached the simulated inverter");
+    assert!(c.seconds_over_limit < 120.0, "{} s over the limit", c.seconds_over_limit);
+}
+
+/// Every mistake in `simulation.bind` is refused before a run, and says what to write.
+#[test]
+fn simulation_bind_mistakes_are_refused_with_the_remedy() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let with = |bind: &str| text.replace("simulation:\n", &format!("simulation:\n  bind:\n{bind}"));
+    for (bind, expected) in [
+        ("    points: { tank_tmp: tank/temperature }\n", "[C0502]"),
+        ("    loads: { heater: relay/tank }\n", "no load named `heater`"),
+        ("    points: { tank_temp: [1, 2] }\n", "[C0503]"),
+        ("    inverter_limit: relay/tank\n", "only be bound to `inverter/limit`"),
+        ("    colour: blue\n", "colour"),
+        ("    points: { tank_temp: tank/temprature }\n", "does not report"),
+        ("    loads: { water_heater: relay/heater }\n", "cannot be told to do"),
+        ("    loads: { water_heater: [relay/tank, relay/pump] }\n", "2 control(s) for 1 actuator(s)"),
+    ] {
+        let loaded = config::load_str("site.yaml", &with(bind)).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        let err = offline::checked_plant(&loaded).expect_err(bind).to_string();
+        assert!(err.contains(expected), "{bind}: {err}");
+    }
+    // `sim/` in front of a name is tolerated.
+    let ok = with("    loads: { water_heater: sim/relay/tank }\n");
+    let loaded = config::load_str("site.yaml", &ok).unwrap();
+    assert_eq!(
+        offline::checked_plant(&loaded).unwrap().bind.load("water_heater"),
+        Some(&[Some("relay/tank".to_owned())][..])
+    );
 }
 
 /// Every example carries expectations, and they pass (what an installer's CI would run).

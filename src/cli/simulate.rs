@@ -63,7 +63,7 @@ pub enum Format {
 pub struct Prepared {
     pub loaded: config::Loaded,
     pub site: Arc<spillway::config::model::Site>,
-    pub plant: spillway_sim::plant::PlantConfig,
+    pub plant: offline::PlantSection,
     pub from: NaiveDate,
     pub days: u32,
     pub seed: u64,

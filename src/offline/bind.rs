@@ -9,12 +9,17 @@
 //! site file is an error here, not a silent factor of ten. Writes go through the bus
 //! itself, only when a command changes (and periodically for the inverter's limit, as
 //! the live link does), so stuck relays, restarts and revert timers behave as on the wire.
+//!
+//! A site file written for real devices names `simulation.bind` ([`SimBind`]): the points
+//! and actuators it lists meet the plant by the simulator's own quantity and control
+//! names instead of by address (still through the bus, on the simulated device that
+//! holds them, so a device that stops answering stops them too).
 
 use spillway_sim::bus::probe::Probe;
 use spillway_sim::bus::{Bus, Table as BusTable};
 use spillway_sim::plant::Plant;
 
-use super::OfflineError;
+use super::{OfflineError, SimBind};
 use crate::actuators::modbus::LimitControl;
 use crate::actuators::{Level, load_levels, modbus::register_words};
 use crate::config::model::{Link, PointId, PointRead, Scale, Site, Table, Write};
@@ -39,6 +44,8 @@ struct BoundPoint {
 /// The inverter limit bound to the plant.
 #[derive(Debug, Clone)]
 enum BoundLimit {
+    /// The simulated inverter's own control (`simulation.bind`).
+    Sim,
     /// SunSpec 123/704 on this unit.
     SunSpec { unit: u8, control: LimitControl },
     /// A plain register (percent or watts).
@@ -50,6 +57,9 @@ enum BoundLimit {
 pub struct Binding {
     points: Vec<BoundPoint>,
     last: Vec<Option<Command>>,
+    /// Per load, the simulator controls its actuators drive (`simulation.bind`), else
+    /// `None`: its own addresses.
+    sim_controls: Vec<Option<Vec<Option<String>>>>,
     limit: Option<BoundLimit>,
     last_limit: Option<Option<f64>>,
     limit_written_ms: i64,
@@ -97,8 +107,9 @@ fn discover(bus: &Bus, unit: u8) -> Option<ModelMap> {
 }
 
 impl Binding {
-    /// Binds every point and actuator of `site` to `plant`, or says which one cannot be.
-    pub fn new(site: &Site, plant: &Plant) -> Result<Binding, OfflineError> {
+    /// Binds every point and actuator of `site` to `plant` (those `bind` names by the
+    /// simulator's names, the rest by address), or says which one cannot be.
+    pub fn new(site: &Site, plant: &Plant, bind: &SimBind) -> Result<Binding, OfflineError> {
         let bus = plant.bus();
         let mut maps: Vec<(u8, ModelMap)> = Vec::new();
         let mut map_of = |unit: u8| -> Option<ModelMap> {
@@ -114,51 +125,66 @@ impl Binding {
         for (i, p) in site.points.iter().enumerate() {
             let device = &site.devices[p.device.0];
             let fail = |why: String| OfflineError::Binding { point: p.name.clone(), why };
-            let (probe, unit, check) = match (&p.read, &device.link) {
-                (PointRead::Modbus(m), link) => {
-                    let unit =
-                        link.modbus_unit().ok_or_else(|| fail("a Modbus point on a non-Modbus device".into()))?;
-                    let probe = bus.probe(unit, bus_table(m.table), m.address).ok_or_else(|| {
+            let bound = bind.point(&p.name).map(|q| {
+                bus.probe_topic(&format!("sim/{q}")).map(|probe| (probe, Some(sim_unit(q)), None)).ok_or_else(|| {
+                    fail(format!(
+                        "`simulation.bind` names `{q}`, which the simulated plant does not report (its quantities are its MQTT state topics without `sim/`: meter/power, inverter/power, tank/temperature, battery/soc, …; see \"MQTT\" under \"The device bus\")"
+                    ))
+                })
+            });
+            let (probe, unit, check) = match (bound, &p.read, &device.link) {
+                (Some(b), _, _) => b?,
+                (None, read, link) => match (read, link) {
+                    (PointRead::Modbus(m), link) => {
+                        let unit =
+                            link.modbus_unit().ok_or_else(|| fail("a Modbus point on a non-Modbus device".into()))?;
+                        let probe = bus.probe(unit, bus_table(m.table), m.address).ok_or_else(|| {
                         fail(format!(
                             "the simulated plant has nothing at unit {unit} {} {} (see the register map in the README)",
                             bus_table(m.table),
                             m.address
                         ))
                     })?;
-                    (probe, Some(unit), Some((m.table, m.address, m.value_type, m.word_order, m.scale, Sentinel::None)))
-                }
-                (PointRead::SunSpec(s), link) => {
-                    let unit =
-                        link.modbus_unit().ok_or_else(|| fail("a SunSpec point on a non-Modbus device".into()))?;
-                    let map = map_of(unit)
-                        .ok_or_else(|| fail(format!("unit {unit} has no SunSpec map in the simulated plant")))?;
-                    let r = map.resolve(s.model, &s.point).map_err(fail)?;
-                    let probe = bus.probe(unit, BusTable::HoldingRegisters, r.address).ok_or_else(|| {
-                        fail(format!("the simulated plant does not report SunSpec {}.{}", s.model, s.point))
-                    })?;
-                    let scale = r
-                        .scale_factor
-                        .map_or(Scale::Factor(1.0), |a| Scale::Register { table: Table::HoldingRegister, address: a });
-                    let check = (
-                        Table::HoldingRegister,
-                        r.address,
-                        r.value_type,
-                        crate::config::model::WordOrder::HighFirst,
-                        scale,
-                        r.sentinel,
-                    );
-                    (probe, Some(unit), Some(check))
-                }
-                (PointRead::Mqtt(m), Link::Mqtt) => {
-                    let probe = bus.probe_topic(&m.topic).ok_or_else(|| {
-                        fail(format!(
-                            "the simulated plant publishes nothing on \"{}\" (its topics start with sim/)",
-                            m.topic
-                        ))
-                    })?;
-                    (probe, None, None)
-                }
-                (PointRead::Mqtt(_), _) => return Err(fail("an MQTT point on a Modbus device".into())),
+                        (
+                            probe,
+                            Some(unit),
+                            Some((m.table, m.address, m.value_type, m.word_order, m.scale, Sentinel::None)),
+                        )
+                    }
+                    (PointRead::SunSpec(s), link) => {
+                        let unit =
+                            link.modbus_unit().ok_or_else(|| fail("a SunSpec point on a non-Modbus device".into()))?;
+                        let map = map_of(unit)
+                            .ok_or_else(|| fail(format!("unit {unit} has no SunSpec map in the simulated plant")))?;
+                        let r = map.resolve(s.model, &s.point).map_err(fail)?;
+                        let probe = bus.probe(unit, BusTable::HoldingRegisters, r.address).ok_or_else(|| {
+                            fail(format!("the simulated plant does not report SunSpec {}.{}", s.model, s.point))
+                        })?;
+                        let scale = r.scale_factor.map_or(Scale::Factor(1.0), |a| Scale::Register {
+                            table: Table::HoldingRegister,
+                            address: a,
+                        });
+                        let check = (
+                            Table::HoldingRegister,
+                            r.address,
+                            r.value_type,
+                            crate::config::model::WordOrder::HighFirst,
+                            scale,
+                            r.sentinel,
+                        );
+                        (probe, Some(unit), Some(check))
+                    }
+                    (PointRead::Mqtt(m), Link::Mqtt) => {
+                        let probe = bus.probe_topic(&m.topic).ok_or_else(|| {
+                            fail(format!(
+                                "the simulated plant publishes nothing on \"{}\" (its topics start with sim/)",
+                                m.topic
+                            ))
+                        })?;
+                        (probe, None, None)
+                    }
+                    (PointRead::Mqtt(_), _) => return Err(fail("an MQTT point on a Modbus device".into())),
+                },
             };
             // The slow way once: decode the encoded registers with the site's own types and
             // scales, and compare with what the probe reads directly.
@@ -185,6 +211,7 @@ impl Binding {
         }
         let limit = match &site.inverter {
             None => None,
+            Some(_) if bind.inverter_limit => Some(BoundLimit::Sim),
             Some(ic) => match &ic.limit {
                 Write::SunSpecLimit { device } => {
                     let unit = unit_of(site, *device).ok_or_else(|| OfflineError::Binding {
@@ -218,9 +245,35 @@ impl Binding {
                 }
             },
         };
+        let mut sim_controls = Vec::with_capacity(site.loads.len());
+        for load in &site.loads {
+            let Some(controls) = bind.load(&load.name) else {
+                sim_controls.push(None);
+                continue;
+            };
+            let fail = |why: String| OfflineError::Binding { point: load.name.clone(), why };
+            let actuators = load_levels(load, Command::Off).len();
+            if controls.len() != actuators {
+                return Err(fail(format!(
+                    "`simulation.bind` gives {} control(s) for {actuators} actuator(s); list one per actuator in the load's order (switch or stage relays, else setpoint then enable), `none` for one the plant does not have",
+                    controls.len()
+                )));
+            }
+            for c in controls.iter().flatten() {
+                if !sim_control_exists(plant, c) {
+                    return Err(fail(format!(
+                        "`simulation.bind` names `{c}`, which the simulated plant cannot be told to do (its controls: relay/<channel> for {:?}, regulator/<name> for {:?}, ev/current, battery/power)",
+                        plant.channels(),
+                        plant.regulators()
+                    )));
+                }
+            }
+            sim_controls.push(Some(controls.to_vec()));
+        }
         Ok(Binding {
             points,
             last: vec![None; site.loads.len()],
+            sim_controls,
             limit,
             last_limit: None,
             limit_written_ms: i64::MIN / 2,
@@ -263,6 +316,19 @@ impl Binding {
                 continue;
             }
             self.last[i] = Some(d.command);
+            if let Some(controls) = &self.sim_controls[i] {
+                for ((_, level), control) in load_levels(load, d.command).into_iter().zip(controls) {
+                    let Some(control) = control else { continue };
+                    let payload = match level {
+                        Level::Switch(on) => (if on { "on" } else { "off" }).to_owned(),
+                        Level::Value(v) => crate::units::trim_number(v),
+                    };
+                    if plant.bus_mut().mqtt_command(&format!("sim/{control}/set"), &payload).is_err() {
+                        self.refused_writes += 1;
+                    }
+                }
+                continue;
+            }
             for (target, level) in load_levels(load, d.command) {
                 if !write_target(site, plant.bus_mut(), target, level) {
                     self.refused_writes += 1;
@@ -280,6 +346,10 @@ impl Binding {
         let rated = ic.rated.0.max(1.0);
         let pct = wanted.map_or(100.0, |w| (w / rated * 100.0).clamp(0.0, 100.0));
         let ok = match limit {
+            BoundLimit::Sim => {
+                let payload = wanted.map_or_else(|| "none".to_owned(), crate::units::trim_number);
+                plant.bus_mut().mqtt_command("sim/inverter/limit/set", &payload).is_ok()
+            }
             BoundLimit::SunSpec { unit, control } => {
                 let safe_pct = (ic.safe_limit.0 / rated * 100.0).clamp(0.0, 100.0);
                 control.ops(pct, safe_pct, ic.refresh).iter().all(|op| apply_op(plant.bus_mut(), *unit, op))
@@ -295,6 +365,33 @@ impl Binding {
         if !ok {
             self.refused_writes += 1;
         }
+    }
+}
+
+/// The simulated device that holds a quantity (its Modbus unit), so that a bound point
+/// stops with its device as an addressed one does.
+fn sim_unit(quantity: &str) -> u8 {
+    use spillway_sim::bus::{INVERTER_UNIT, METER_UNIT, RELAY_UNIT, SENSOR_UNIT};
+    match quantity.split('/').next() {
+        Some("meter") => METER_UNIT,
+        Some("inverter") => INVERTER_UNIT,
+        Some("relay") => RELAY_UNIT,
+        _ => SENSOR_UNIT,
+    }
+}
+
+/// Whether the plant has the control a `simulation.bind` entry names.
+fn sim_control_exists(plant: &Plant, control: &str) -> bool {
+    if let Some(ch) = control.strip_prefix("relay/") {
+        return plant.channels().iter().any(|c| c == ch);
+    }
+    if let Some(r) = control.strip_prefix("regulator/") {
+        return plant.regulators().iter().any(|x| x == r);
+    }
+    match control {
+        "ev/current" => plant.bus().probe_topic("sim/ev/current").is_some(),
+        "battery/power" => plant.bus().probe_topic("sim/battery/power").is_some(),
+        _ => false,
     }
 }
 

@@ -32,7 +32,6 @@ use std::time::Duration;
 
 use chrono::NaiveDate;
 use serde::Serialize;
-use spillway_sim::plant::PlantConfig;
 use spillway_sim::weather::WeatherKind;
 
 use super::OfflineError;
@@ -376,7 +375,7 @@ fn reasons(engine: &Engine, site: &Site) -> String {
 pub fn run(
     site: &Arc<Site>,
     loaded: &Loaded,
-    plant: &PlantConfig,
+    plant: &super::PlantSection,
     exp: &Expectations,
     step: Duration,
 ) -> Result<Vec<Verdict>, OfflineError> {

@@ -45,7 +45,7 @@ pub enum OfflineError {
     Plant(#[from] spillway_sim::site::SiteError),
     /// A point or actuator of the site has no counterpart in the plant.
     #[error(
-        "{point}: {why}\n  offline runs read and write the simulated devices at the addresses the site file names: a site file written for real devices runs offline once its points and actuators use the simulator's register map or its sim/ MQTT topics (README: \"The device bus\"); SunSpec points carry over as they are"
+        "{point}: {why}\n  offline runs read and write the simulated devices at the addresses the site file names: a site file written for real devices runs offline once `simulation.bind` names, for each point and actuator the simulator does not have at that address, the simulator's own quantity or control (README: \"simulation.bind\"); SunSpec points carry over as they are"
     )]
     Binding {
         /// The point or actuator.
@@ -78,8 +78,167 @@ pub enum OfflineError {
     Chart(String),
 }
 
-/// Reads the `plant:` section of a loaded site file.
-pub fn plant_section(loaded: &crate::config::Loaded) -> Result<spillway_sim::plant::PlantConfig, OfflineError> {
+/// Where an offline run finds a site's own points and actuators on the simulated plant
+/// (`simulation.bind`), for a site file written for real devices: each named point reads
+/// a quantity the simulator reports, each named load's actuators drive the simulator's
+/// controls, and the inverter limit goes to the simulated inverter. Everything not named
+/// is found at the address the site file gives, as without it.
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct SimBind {
+    /// Point name → the simulator's quantity: its MQTT state topic without `sim/`
+    /// (`meter/power`, `tank/temperature`).
+    pub points: Vec<(String, String)>,
+    /// Load name → one simulator control per actuator of the load, in the load's order
+    /// (`relay/tank`, `ev/current`; `None` for `none`: that actuator is not simulated).
+    pub loads: Vec<(String, Vec<Option<String>>)>,
+    /// The inverter limit is written to the simulated inverter (`inverter/limit`).
+    pub inverter_limit: bool,
+}
+
+impl SimBind {
+    /// The quantity bound to a point, if any.
+    pub fn point(&self, name: &str) -> Option<&str> {
+        self.points.iter().find(|(n, _)| n == name).map(|(_, q)| q.as_str())
+    }
+    /// The controls bound to a load's actuators, if any.
+    pub fn load(&self, name: &str) -> Option<&[Option<String>]> {
+        self.loads.iter().find(|(n, _)| n == name).map(|(_, c)| c.as_slice())
+    }
+}
+
+/// The `plant:` section and how the site's points and actuators meet it.
+#[derive(Debug, Clone)]
+pub struct PlantSection {
+    /// The simulated plant.
+    pub config: spillway_sim::plant::PlantConfig,
+    /// `simulation.bind` (empty: every point and actuator at its own address).
+    pub bind: SimBind,
+}
+
+impl std::ops::Deref for PlantSection {
+    type Target = spillway_sim::plant::PlantConfig;
+    fn deref(&self) -> &Self::Target {
+        &self.config
+    }
+}
+
+impl std::ops::DerefMut for PlantSection {
+    fn deref_mut(&mut self) -> &mut Self::Target {
+        &mut self.config
+    }
+}
+
+/// Reads the `plant:` section of a loaded site file, with `simulation.bind`.
+pub fn plant_section(loaded: &crate::config::Loaded) -> Result<PlantSection, OfflineError> {
+    let config = plant_config(loaded)?;
+    Ok(PlantSection { config, bind: sim_bind(loaded)? })
+}
+
+/// Reads `simulation.bind` (absent → empty), checking each name against the site.
+pub fn sim_bind(loaded: &crate::config::Loaded) -> Result<SimBind, OfflineError> {
+    use crate::config::yaml::{Diagnostics, MapReader, Value};
+    let mut out = SimBind::default();
+    let Value::Map(top) = &loaded.tree.value else { return Ok(out) };
+    let Some((_, sim)) = top.iter().find(|(k, _)| k.name == "simulation") else { return Ok(out) };
+    let Value::Map(entries) = &sim.value else { return Ok(out) };
+    let Some((_, node)) = entries.iter().find(|(k, _)| k.name == "bind") else { return Ok(out) };
+    let mut diags = Diagnostics::default();
+    let site = &loaded.site;
+    let text = |n: &crate::config::yaml::Node, diags: &mut Diagnostics| -> Option<String> {
+        match n.scalar_text() {
+            Some(t) if !t.trim().is_empty() => Some(t.trim().trim_start_matches("sim/").to_owned()),
+            _ => {
+                diags.error(
+                    "C0503",
+                    format!("expected the name of a simulated quantity or control, found {}", n.value.kind()),
+                    n.span.clone(),
+                    "such as meter/power, tank/temperature, relay/tank or ev/current",
+                );
+                None
+            }
+        }
+    };
+    if let Some(mut m) = MapReader::new(node, "`simulation.bind`", &mut diags) {
+        if let Some(n) = m.get("points") {
+            match &n.value {
+                Value::Map(points) => {
+                    for (k, v) in points {
+                        if site.point(&k.name).is_none() {
+                            diags.error(
+                                "C0502",
+                                format!("no point named `{}` in this site", k.name),
+                                k.span.clone(),
+                                "bind a point the site defines under `points:`",
+                            );
+                        } else if let Some(q) = text(v, &mut diags) {
+                            out.points.push((k.name.clone(), q));
+                        }
+                    }
+                }
+                other => diags.error(
+                    "C0503",
+                    format!("`points` must map point names to simulated quantities, found {}", other.kind()),
+                    n.span.clone(),
+                    "grid: meter/power",
+                ),
+            }
+        }
+        if let Some(n) = m.get("loads") {
+            match &n.value {
+                Value::Map(loads) => {
+                    for (k, v) in loads {
+                        if site.load(&k.name).is_none() {
+                            diags.error(
+                                "C0502",
+                                format!("no load named `{}` in this site", k.name),
+                                k.span.clone(),
+                                "bind a load the site defines under `loads:`",
+                            );
+                            continue;
+                        }
+                        let items: Vec<&crate::config::yaml::Node> = match &v.value {
+                            Value::Seq(list) => list.iter().collect(),
+                            _ => vec![v],
+                        };
+                        let controls: Vec<Option<String>> = items
+                            .into_iter()
+                            .filter_map(|i| text(i, &mut diags))
+                            .map(|t| (t != "none").then_some(t))
+                            .collect();
+                        out.loads.push((k.name.clone(), controls));
+                    }
+                }
+                other => diags.error(
+                    "C0503",
+                    format!("`loads` must map load names to simulated controls, found {}", other.kind()),
+                    n.span.clone(),
+                    "water_heater: relay/tank",
+                ),
+            }
+        }
+        if let Some(n) = m.get("inverter_limit") {
+            match text(n, &mut diags).as_deref() {
+                Some("inverter/limit") => out.inverter_limit = true,
+                Some(_) => diags.error(
+                    "C0503",
+                    "the inverter limit can only be bound to `inverter/limit`",
+                    n.span.clone(),
+                    "inverter_limit: inverter/limit",
+                ),
+                None => {}
+            }
+        }
+        m.finish(&mut diags);
+    }
+    if diags.has_errors() {
+        let text = crate::diag::render_short(&loaded.source.path, &loaded.source.text, &diags.list);
+        return Err(OfflineError::Options(text.trim_end().to_owned()));
+    }
+    Ok(out)
+}
+
+/// The `plant:` section alone.
+fn plant_config(loaded: &crate::config::Loaded) -> Result<spillway_sim::plant::PlantConfig, OfflineError> {
     let path = loaded.source.path.clone();
     match spillway_sim::site::from_site_yaml(&loaded.source.text) {
         Ok(Some(mut p)) => {
@@ -102,11 +261,11 @@ pub fn plant_section(loaded: &crate::config::Loaded) -> Result<spillway_sim::pla
 
 /// The `plant:` section, built once and bound to the site's points and actuators: what
 /// `check` reports and what the offline commands verify before spending time on runs.
-pub fn checked_plant(loaded: &crate::config::Loaded) -> Result<spillway_sim::plant::PlantConfig, OfflineError> {
+pub fn checked_plant(loaded: &crate::config::Loaded) -> Result<PlantSection, OfflineError> {
     let p = plant_section(loaded)?;
     let options = spillway_sim::site::SiteOptions { start_ms: 0, seed: 1, sky: None };
     let built = spillway_sim::site::build(&p, &options)?;
-    bind::Binding::new(&loaded.site, &built)?;
+    bind::Binding::new(&loaded.site, &built, &p.bind)?;
     Ok(p)
 }
 
@@ -148,6 +307,8 @@ pub fn simulation_defaults(loaded: &crate::config::Loaded) -> Result<SimulationD
         if let Some(n) = m.get("seed") {
             out.seed = crate::config::values::integer(n, 0, i64::MAX, "`seed`", &mut diags).map(|s| s as u64);
         }
+        // Read by `sim_bind`, with the plant.
+        let _ = m.get("bind");
         m.finish(&mut diags);
     }
     if diags.has_errors() {

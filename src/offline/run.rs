@@ -8,7 +8,7 @@ use std::sync::Arc;
 use std::time::Duration;
 
 use chrono::NaiveDate;
-use spillway_sim::plant::{Flows, Plant, PlantConfig};
+use spillway_sim::plant::{Flows, Plant};
 use spillway_sim::site::{self, SiteOptions};
 use spillway_sim::weather::WeatherKind;
 
@@ -173,7 +173,13 @@ enum PlantSide {
     None,
 }
 
-fn plant_side(site: &Site, plant: &Plant, ev_name: Option<&str>, load: &crate::config::model::Load) -> PlantSide {
+fn plant_side(
+    site: &Site,
+    plant: &Plant,
+    bind: &super::SimBind,
+    ev_name: Option<&str>,
+    load: &crate::config::model::Load,
+) -> PlantSide {
     let relay_unit = |w: &Write| match w {
         Write::Coil { device, address } | Write::Register { device, address, .. } => site
             .devices
@@ -189,6 +195,17 @@ fn plant_side(site: &Site, plant: &Plant, ev_name: Option<&str>, load: &crate::c
         let name = &plant.channels()[ch];
         by_name(name.split('.').next().unwrap_or(name))
     };
+    // A load bound by name (`simulation.bind`): its first control says which it is.
+    if let Some(first) = bind.load(&load.name).and_then(|c| c.iter().flatten().next()) {
+        return match first.as_str() {
+            "ev/current" => ev_name.map_or(PlantSide::None, by_name),
+            "battery/power" => PlantSide::Battery,
+            c => match c.strip_prefix("relay/").or_else(|| c.strip_prefix("regulator/")) {
+                Some(name) => by_name(name.split('.').next().unwrap_or(name)),
+                None => PlantSide::None,
+            },
+        };
+    }
     let first_write = match &load.kind {
         LoadKind::Switched { switch, .. } => Some(switch),
         LoadKind::Stepped { command, .. } => match command {
@@ -216,7 +233,7 @@ pub const MAX_DAYS: u32 = 3660;
 pub fn simulate_once(
     site: &Arc<Site>,
     tariff: Option<&Tariff>,
-    plant_cfg: &PlantConfig,
+    plant_cfg: &super::PlantSection,
     mut options: RunOptions<'_>,
 ) -> Result<RunOutput, OfflineError> {
     if options.days == 0 {
@@ -258,12 +275,13 @@ pub fn simulate_once(
         Some(rec) => rec.build_plant(plant_cfg, start_ms, options.seed)?,
         None => site::build(plant_cfg, &SiteOptions { start_ms, seed: options.seed, sky: options.sky })?,
     };
-    let mut binding = Binding::new(site, &plant)?;
+    let mut binding = Binding::new(site, &plant, &plant_cfg.bind)?;
     let mut engine = Engine::new(Arc::clone(site));
     let mut baseline = Baseline::new(site);
     let mut snapshot = Snapshot::empty(site);
     let ev_name = plant_cfg.ev.as_ref().map(|e| e.name.as_str());
-    let sides: Vec<PlantSide> = site.loads.iter().map(|l| plant_side(site, &plant, ev_name, l)).collect();
+    let sides: Vec<PlantSide> =
+        site.loads.iter().map(|l| plant_side(site, &plant, &plant_cfg.bind, ev_name, l)).collect();
 
     let step_ms = i64::try_from(options.step.as_millis()).unwrap_or(1000).max(1);
     let tick_ms = i64::try_from(site.tick.as_millis()).unwrap_or(1000).max(step_ms);
