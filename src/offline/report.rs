@@ -378,18 +378,25 @@ impl Report {
             );
         }
         let x = &self.export;
-        let limit = x.limit_w.map_or("no limit".to_owned(), |l| format!("limit {l} W"));
-        let _ = writeln!(
-            o,
-            "\nexport ({limit}): peak {:.0} W, {:.0} s over the limit + tolerance",
-            x.peak_w, x.seconds_over_limit
-        );
-        let g = &self.guard;
-        let _ = writeln!(
-            o,
-            "guard: {} episode(s), cleared in p50 {:.0} ms, p95 {:.0} ms, max {:.0} ms",
-            g.episodes, g.response_ms.p50, g.response_ms.p95, g.response_ms.max
-        );
+        match x.limit_w {
+            Some(l) => {
+                let _ = writeln!(
+                    o,
+                    "\nexport (limit {l} W): peak {:.0} W, {:.0} s over the limit + tolerance",
+                    x.peak_w, x.seconds_over_limit
+                );
+                let g = &self.guard;
+                let _ = writeln!(
+                    o,
+                    "guard: {} episode(s), cleared in p50 {:.0} ms, p95 {:.0} ms, max {:.0} ms",
+                    g.episodes, g.response_ms.p50, g.response_ms.p95, g.response_ms.max
+                );
+            }
+            // Nothing to hold export under: no guard to report on (JSON keeps the zeros).
+            None => {
+                let _ = writeln!(o, "\nexport (no limit): peak {:.0} W", x.peak_w);
+            }
+        }
         let _ = writeln!(o, "\nloads                 kWh   from grid   hours   switchings   max starts/h");
         for l in &self.loads {
             let _ = writeln!(
