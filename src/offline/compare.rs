@@ -75,9 +75,18 @@ pub fn compare(a_name: &str, a: &Report, b_name: &str, b: &Report) -> Comparison
         row("self-consumption", "%", a.self_consumption_pct, b.self_consumption_pct, Higher),
         row("PV curtailed", "kWh", a.energy.curtailed_kwh, b.energy.curtailed_kwh, Lower),
         row("export peak", "W", a.export.peak_w, b.export.peak_w, Lower),
-        row("time over the export limit", "s", a.export.seconds_over_limit, b.export.seconds_over_limit, Lower),
-        row("guard response p95", "ms", a.guard.response_ms.p95, b.guard.response_ms.p95, Lower),
     ];
+    // The guard's rows only where there is a limit to hold (A's plant and site; B's on it).
+    if a.export.limit_w.is_some() || b.export.limit_w.is_some() {
+        rows.push(row(
+            "time over the export limit",
+            "s",
+            a.export.seconds_over_limit,
+            b.export.seconds_over_limit,
+            Lower,
+        ));
+        rows.push(row("guard response p95", "ms", a.guard.response_ms.p95, b.guard.response_ms.p95, Lower));
+    }
     // Off-grid, in an outage: diversion must not cost the house its supply.
     if a.show_unserved || b.show_unserved {
         rows.insert(5, row("unserved demand", "kWh", a.energy.unserved_kwh, b.energy.unserved_kwh, Lower));
