@@ -221,8 +221,8 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
             write_text(site, setpoint),
             if *hold_min_from_grid { "holds its minimum from the grid" } else { "pauses below its minimum" }
         ),
-        LoadKind::Battery { max_charge, soc_max, soc_resume, soc, setpoint } => format!(
-            "battery charging up to {max_charge} until {} reaches {soc_max} (resumes below {soc_resume}), power to {}",
+        LoadKind::Battery { max_charge, min_charge, soc_max, soc_resume, soc, setpoint } => format!(
+            "battery charging from {min_charge} up to {max_charge} until {} reaches {soc_max} (resumes below {soc_resume}), power to {}",
             site.points[soc.0].name,
             write_text(site, setpoint)
         ),

@@ -166,6 +166,10 @@ pub const DEFAULT_GUARD_DEADLINE: Duration = Duration::from_secs(2);
 /// the noise of a household meter's power reading (common practice, no published source),
 /// so noise alone does not carry a reading past the limit plus the tolerance.
 pub const DEFAULT_GUARD_MARGIN: Power = Power(50.0);
+/// The least charge power a battery load starts at by default: below it the setpoint only
+/// follows meter noise around zero surplus (common practice: battery inverters do not
+/// regulate usefully at a few watts).
+pub const DEFAULT_MIN_CHARGE: Power = Power(50.0);
 
 impl Builder<'_, '_> {
     fn site(&mut self, tree: &Node) -> Option<Site> {
@@ -1732,6 +1736,9 @@ impl Builder<'_, '_> {
                 let max_charge = m
                     .require("max_charge", self.diags)
                     .and_then(|n| values::positive(n, Dimension::Power, "the maximum charge power", self.diags));
+                let min_charge = m.get("min_charge").map_or(Some(DEFAULT_MIN_CHARGE.0), |n| {
+                    values::quantity(n, Dimension::Power, "the minimum charge power", self.diags)
+                });
                 let soc = match m.get("soc") {
                     Some(n) => self.point_ref(n, ctx.points, Some(Dimension::Ratio), "the state of charge"),
                     None => match ctx.roles.battery_soc {
@@ -1770,8 +1777,19 @@ impl Builder<'_, '_> {
                     );
                     return None;
                 }
+                let (max_charge, min_charge) = (max_charge?, min_charge?);
+                if !(0.0..=max_charge).contains(&min_charge) {
+                    self.diags.error(
+                        "C0236",
+                        format!("{what}: the minimum charge power {} is outside 0 … max_charge", Power(min_charge)),
+                        m.span(),
+                        "min_charge must lie between 0 W and max_charge",
+                    );
+                    return None;
+                }
                 Some(LoadKind::Battery {
-                    max_charge: Power(max_charge?),
+                    max_charge: Power(max_charge),
+                    min_charge: Power(min_charge),
                     soc_max: Ratio(soc_max),
                     soc_resume: Ratio(soc_resume),
                     soc: soc?,

@@ -581,6 +581,9 @@ pub enum LoadKind {
     Battery {
         /// Largest charge power.
         max_charge: Power,
+        /// Least charge power worth starting at; once charging, it goes on down to half of
+        /// it (so meter noise around zero surplus does not toggle it every few seconds).
+        min_charge: Power,
         /// State of charge at which charging stops.
         soc_max: Ratio,
         /// State of charge below which charging may resume after reaching `soc_max`.

@@ -1071,10 +1071,16 @@ fn modulate(
                 (Command::Off, Power::ZERO, Reason::BelowMinimum { available: share, minimum: min_power })
             }
         }
-        LoadKind::Battery { .. } => {
+        LoadKind::Battery { min_charge, .. } => {
             let p = share;
+            // Start at the minimum, go on down to half of it: around zero surplus the
+            // share follows the meter's noise, and a setpoint of a few watts toggled the
+            // battery on and off every few seconds.
+            let floor = if is_on { *min_charge * 0.5 } else { *min_charge };
             if p.0 < 1.0 {
                 (Command::Charge(Power::ZERO), Power::ZERO, Reason::Following { power: Power::ZERO })
+            } else if p < floor {
+                (Command::Charge(Power::ZERO), Power::ZERO, Reason::BelowMinimum { available: p, minimum: *min_charge })
             } else {
                 (Command::Charge(p), p, Reason::Following { power: p })
             }
