@@ -206,6 +206,9 @@ pub struct Report {
     /// (where none is worth saying), or wherever there was some.
     #[serde(skip)]
     pub show_unserved: bool,
+    /// An off-grid site: the text report has no export to speak of.
+    #[serde(skip)]
+    pub off_grid: bool,
     /// For replays: the recorded file and what was done with its rows.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub replay: Option<ReplayReport>,
@@ -336,6 +339,7 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
             unserved_kwh: kwh(baseline.flows.unserved.wh),
         },
         refused_writes: run.refused_writes,
+        off_grid: matches!(site.connection, Connection::OffGrid(_)),
         show_unserved: !matches!(site.connection, Connection::Grid { backup: None, .. })
             || run.flows.unserved.wh > 0.0
             || baseline.flows.unserved.wh > 0.0,
@@ -392,6 +396,8 @@ impl Report {
                     g.episodes, g.response_ms.p50, g.response_ms.p95, g.response_ms.max
                 );
             }
+            // Off-grid there is no grid to export to (JSON keeps the zeros).
+            None if self.off_grid => {}
             // Nothing to hold export under: no guard to report on (JSON keeps the zeros).
             None => {
                 let _ = writeln!(o, "\nexport (no limit): peak {:.0} W", x.peak_w);
