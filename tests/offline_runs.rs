@@ -299,6 +299,27 @@ fn compare_says_where_b_does_not_fit_as_plant() {
     assert!(err.contains("B's loads car, home_battery have no namesake in A"), "{err}");
 }
 
+/// The text report and `compare` speak of the export guard only where export has a limit
+/// to hold, and of export not at all off-grid.
+#[test]
+fn the_guard_is_reported_only_where_export_is_limited() {
+    let text = |name: &str| {
+        let out = spillway(["simulate", example(name).to_str().unwrap(), "--days", "1", "--quiet"]);
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        String::from_utf8(out.stdout).unwrap()
+    };
+    let limited = text("battery-ev-limited-export.yaml");
+    assert!(limited.contains("\nexport (limit 1500 W)") && limited.contains("\nguard: "), "{limited}");
+    let allowed = text("pool-pump-mqtt.yaml");
+    assert!(allowed.contains("\nexport (no limit): peak") && !allowed.contains("\nguard: "), "{allowed}");
+    let island = text("off-grid-cabin.yaml");
+    assert!(!island.contains("\nexport") && !island.contains("\nguard: "), "{island}");
+    let a = example("pool-pump-mqtt.yaml");
+    let out = spillway(["compare", a.to_str().unwrap(), a.to_str().unwrap(), "--days", "1", "--quiet"]);
+    let shown = String::from_utf8_lossy(&out.stdout);
+    assert!(shown.contains("export peak") && !shown.contains("guard response"), "{shown}");
+}
+
 /// Runs that could only mislead are refused before they start: a step longer than a
 /// point's stale timeout (the whole run would be spent in fail-safe, PV at 0 W, and look
 /// like a result), and more days than the site file allows (which also overflowed dates).
