@@ -585,6 +585,9 @@ fn off_grid_dump_loads_do_not_leave_the_house_unserved() {
     };
     assert!(text("off-grid-cabin.yaml").contains("\n  unserved "), "{}", text("off-grid-cabin.yaml"));
     assert!(!text("zero-export-house.yaml").contains("unserved"));
+    let cabin = example("off-grid-cabin.yaml");
+    let out = spillway(["compare", cabin.to_str().unwrap(), cabin.to_str().unwrap(), "--days", "1", "--quiet"]);
+    assert!(String::from_utf8_lossy(&out.stdout).contains("unserved demand"), "compare gives unserved a row off-grid");
 }
 
 /// A site file written for real devices runs offline through `simulation.bind`: the
@@ -627,6 +630,17 @@ fn a_real_sites_file_runs_offline_through_simulation_bind() {
     assert!(a.flows.loads.iter().all(|l| l.wh > 100.0), "the example's loads ran: {:?}", a.flows.loads);
     assert_eq!(a.flows, b.flows, "the bound site runs as the example does");
     assert_eq!(a.loads, b.loads);
+    // A bound point is read through its simulated device: the sensors restarting for
+    // 20 min at noon silence the tank's temperature in both alike.
+    let fault = |yaml: &str| {
+        yaml.replace(
+            "  wiring: [tank, pump]",
+            "  faults: [{ kind: device_restart, device: sensors, start: 12h, duration: 20min }]\n  wiring: [tank, pump]",
+        )
+    };
+    let (fa, fb) = (run_of(&fault(&text)), run_of(&fault(&bound)));
+    assert_ne!(fa.flows, a.flows, "the fault changed nothing: the test has no teeth");
+    assert_eq!(fa.flows, fb.flows, "a bound point outlived its device's restart");
 
     // The inverter limit bound too (the register a real inverter would take, here one the
     // simulator lacks): the guard still holds the site to no export.

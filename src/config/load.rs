@@ -1780,7 +1780,7 @@ impl Builder<'_, '_> {
                 let (max_charge, min_charge) = (max_charge?, min_charge?);
                 if !(0.0..=max_charge).contains(&min_charge) {
                     self.diags.error(
-                        "C0236",
+                        "C0271",
                         format!("{what}: the minimum charge power {} is outside 0 … max_charge", Power(min_charge)),
                         m.span(),
                         "min_charge must lie between 0 W and max_charge",

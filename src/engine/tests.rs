@@ -429,6 +429,9 @@ fn a_battery_starts_at_its_minimum_charge_and_goes_on_down_to_half_of_it() {
         &loads.replace("max_charge: 3kW", "max_charge: 3kW\n    min_charge: 200W"),
     ));
     assert!(matches!(h2.site.loads[0].kind, LoadKind::Battery { min_charge, .. } if min_charge == Power(200.0)));
+    let wide = site("  export: allowed", &loads.replace("max_charge: 3kW", "max_charge: 3kW\n    min_charge: 4kW"));
+    let Err(e) = load_str("test.yaml", &wide) else { panic!("a minimum above max_charge is refused") };
+    assert!(e.render(false).contains("[C0271]"), "{}", e.render(false));
 }
 
 // ---------------------------------------------------------------- export guard

@@ -160,60 +160,23 @@ pub fn sim_bind(loaded: &crate::config::Loaded) -> Result<SimBind, OfflineError>
     };
     if let Some(mut m) = MapReader::new(node, "`simulation.bind`", &mut diags) {
         if let Some(n) = m.get("points") {
-            match &n.value {
-                Value::Map(points) => {
-                    for (k, v) in points {
-                        if site.point(&k.name).is_none() {
-                            diags.error(
-                                "C0502",
-                                format!("no point named `{}` in this site", k.name),
-                                k.span.clone(),
-                                "bind a point the site defines under `points:`",
-                            );
-                        } else if let Some(q) = text(v, &mut diags) {
-                            out.points.push((k.name.clone(), q));
-                        }
-                    }
+            for (name, v) in named_entries(n, "point", |x| site.point(x).is_some(), "grid: meter/power", &mut diags) {
+                if let Some(q) = text(v, &mut diags) {
+                    out.points.push((name.to_owned(), q));
                 }
-                other => diags.error(
-                    "C0503",
-                    format!("`points` must map point names to simulated quantities, found {}", other.kind()),
-                    n.span.clone(),
-                    "grid: meter/power",
-                ),
             }
         }
         if let Some(n) = m.get("loads") {
-            match &n.value {
-                Value::Map(loads) => {
-                    for (k, v) in loads {
-                        if site.load(&k.name).is_none() {
-                            diags.error(
-                                "C0502",
-                                format!("no load named `{}` in this site", k.name),
-                                k.span.clone(),
-                                "bind a load the site defines under `loads:`",
-                            );
-                            continue;
-                        }
-                        let items: Vec<&crate::config::yaml::Node> = match &v.value {
-                            Value::Seq(list) => list.iter().collect(),
-                            _ => vec![v],
-                        };
-                        let controls: Vec<Option<String>> = items
-                            .into_iter()
-                            .filter_map(|i| text(i, &mut diags))
-                            .map(|t| (t != "none").then_some(t))
-                            .collect();
-                        out.loads.push((k.name.clone(), controls));
-                    }
-                }
-                other => diags.error(
-                    "C0503",
-                    format!("`loads` must map load names to simulated controls, found {}", other.kind()),
-                    n.span.clone(),
-                    "water_heater: relay/tank",
-                ),
+            for (name, v) in
+                named_entries(n, "load", |x| site.load(x).is_some(), "water_heater: relay/tank", &mut diags)
+            {
+                let items: Vec<&crate::config::yaml::Node> = match &v.value {
+                    Value::Seq(list) => list.iter().collect(),
+                    _ => vec![v],
+                };
+                let controls =
+                    items.into_iter().filter_map(|i| text(i, &mut diags)).map(|t| (t != "none").then_some(t)).collect();
+                out.loads.push((name.to_owned(), controls));
             }
         }
         if let Some(n) = m.get("inverter_limit") {
@@ -235,6 +198,40 @@ pub fn sim_bind(loaded: &crate::config::Loaded) -> Result<SimBind, OfflineError>
         return Err(OfflineError::Options(text.trim_end().to_owned()));
     }
     Ok(out)
+}
+
+/// The entries of a `simulation.bind` map (`points` or `loads`) whose names the site
+/// defines; every other name, or a value that is not a map, is an error.
+fn named_entries<'n>(
+    node: &'n crate::config::yaml::Node,
+    what: &str,
+    known: impl Fn(&str) -> bool,
+    example: &str,
+    diags: &mut crate::config::yaml::Diagnostics,
+) -> Vec<(&'n str, &'n crate::config::yaml::Node)> {
+    let crate::config::yaml::Value::Map(entries) = &node.value else {
+        diags.error(
+            "C0503",
+            format!("this must map {what} names to the simulator's names, found {}", node.value.kind()),
+            node.span.clone(),
+            example,
+        );
+        return Vec::new();
+    };
+    let mut out = Vec::new();
+    for (k, v) in entries {
+        if known(&k.name) {
+            out.push((k.name.as_str(), v));
+        } else {
+            diags.error(
+                "C0502",
+                format!("no {what} named `{}` in this site", k.name),
+                k.span.clone(),
+                format!("bind a {what} the site defines under `{what}s:`"),
+            );
+        }
+    }
+    out
 }
 
 /// The `plant:` section alone.
