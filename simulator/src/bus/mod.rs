@@ -183,6 +183,8 @@ pub struct Layout {
     pub inverter_rating_w: f64,
     /// A battery is fitted.
     pub has_battery: bool,
+    /// The battery takes a power setpoint (it is not on its own self-consumption control).
+    pub battery_setpoint: bool,
     /// An EV charger is fitted.
     pub has_ev: bool,
     /// A tank is fitted.
@@ -598,7 +600,7 @@ impl Bus {
         for a in usize::from(address)..end {
             let ok = match a as u16 {
                 HR_EV_CURRENT => self.layout.has_ev,
-                1 | 2 => self.layout.has_battery,
+                1 | 2 => self.layout.battery_setpoint,
                 r => r >= HR_REGULATOR && usize::from(r - HR_REGULATOR) < self.layout.regulators.len(),
             };
             if !ok || a >= regs.len() {

@@ -137,7 +137,7 @@ impl Bus {
                 self.controls.ev_current_a = parse_number(topic, payload, "a current in A")?.max(0.0);
                 Ok(())
             }
-            "battery/power" if self.layout.has_battery => {
+            "battery/power" if self.layout.battery_setpoint => {
                 if relays_down {
                     return Err(down(RELAY_UNIT));
                 }

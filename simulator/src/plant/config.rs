@@ -438,6 +438,28 @@ pub struct BatteryConfig {
     /// Pack internal resistance in ohms (for the reported terminal voltage).
     #[serde(default = "d_resistance")]
     pub resistance_ohm: f64,
+    /// What sets the battery's power: a setpoint written to it, or its own
+    /// self-consumption control.
+    #[serde(default)]
+    pub control: BatteryControl,
+    /// Self-consumption control only: the time constant with which the battery inverter
+    /// follows the site's net power, after one step's measurement delay.
+    #[serde(default = "d_battery_response", deserialize_with = "quantity::duration")]
+    pub response: f64,
+}
+
+/// What sets a grid-tied battery's power.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum BatteryControl {
+    /// The setpoint written to it (Spillway's battery load, over the relay module's
+    /// registers or `sim/battery/power/set`); idle while nothing writes one.
+    #[default]
+    Setpoint,
+    /// Its own inverter charges from what would be exported and discharges to cover what
+    /// would be imported, holding the grid meter near zero within its limits and states
+    /// of charge; it takes no setpoint.
+    SelfConsumption,
 }
 
 fn d_eff() -> f64 {
@@ -457,6 +479,11 @@ fn d_nominal_v() -> f64 {
 }
 fn d_resistance() -> f64 {
     0.03
+}
+fn d_battery_response() -> f64 {
+    // Our own figure for a hybrid inverter following its own grid CT: a couple of
+    // seconds (common practice, no source).
+    2.0
 }
 
 /// EV charger and the car.

@@ -306,6 +306,18 @@ struct Grid {
     next_change_ms: i64,
 }
 
+/// A battery inverter's own self-consumption control: it measures the site's net power
+/// at its own current transformer and follows it with a first-order lag, one step late.
+#[derive(Debug, Clone, Copy)]
+struct OwnControl {
+    /// Time constant, s (0: follows the last step's net power at once).
+    response_s: f64,
+    /// Share of the gap closed in one step, for the current step length.
+    alpha: f64,
+    /// Power it will ask of the battery next step, W, charging positive.
+    command_w: f64,
+}
+
 /// The simulated site.
 pub struct Plant {
     tz: Tz,
@@ -315,6 +327,9 @@ pub struct Plant {
     house: House,
     tank: Option<Tank>,
     battery: Option<Battery>,
+    /// The battery's own self-consumption control, when it has one (else it follows the
+    /// setpoint written to it).
+    own_control: Option<OwnControl>,
     charger: Option<ChargeController>,
     ev: Option<Ev>,
     drives: Vec<Drive>,
@@ -368,6 +383,17 @@ impl Plant {
         }
         if cfg.off_grid.is_some() && cfg.battery.is_none() {
             return Err(invalid("off_grid", "an off-grid site needs a `battery`"));
+        }
+        if let Some(b) = &cfg.battery {
+            if b.control == config::BatteryControl::SelfConsumption && cfg.off_grid.is_some() {
+                return Err(invalid(
+                    "battery",
+                    "`control: self_consumption` is for a grid-tied battery; off-grid, the battery always balances the island (remove `control`)",
+                ));
+            }
+            if !(b.response >= 0.0 && b.response.is_finite()) {
+                return Err(invalid("battery", "`response` must be a duration ≥ 0 s"));
+            }
         }
         if !(cfg.meter.phases == 1 || cfg.meter.phases == 3) || !(cfg.meter.period > 0.0) {
             return Err(invalid("meter", "phases must be 1 or 3 and the period > 0"));
@@ -492,6 +518,11 @@ impl Plant {
         let faults = Faults::new(&cfg.faults, start_ms, |n| channels.iter().position(|c| c == n), channels.len())?;
 
         let battery = cfg.battery.as_ref().map(Battery::new).transpose()?;
+        let own_control = cfg
+            .battery
+            .as_ref()
+            .filter(|b| b.control == config::BatteryControl::SelfConsumption)
+            .map(|b| OwnControl { response_s: b.response, alpha: 1.0, command_w: 0.0 });
         let charger = cfg.off_grid.as_ref().map(ChargeController::new).transpose()?;
         let off_grid =
             cfg.off_grid.as_ref().map(|o| OffGrid { disconnect_pct: o.disconnect_soc, reconnect_pct: o.reconnect_soc });
@@ -538,6 +569,7 @@ impl Plant {
                 meter_phases: cfg.meter.phases,
                 inverter_rating_w: cfg.inverter.rating,
                 has_battery: battery.is_some(),
+                battery_setpoint: battery.is_some() && own_control.is_none(),
                 has_ev: ev.is_some(),
                 has_tank: tank.is_some(),
                 off_grid: off_grid.is_some(),
@@ -554,6 +586,7 @@ impl Plant {
             house: House::new(&cfg.house, Stream::new(seed, 1))?,
             tank,
             battery,
+            own_control,
             charger,
             ev,
             drives,
@@ -659,6 +692,9 @@ impl Plant {
             if let Some(b) = &mut self.battery {
                 b.prepare_step(1.0 / dt);
             }
+            if let Some(o) = &mut self.own_control {
+                o.alpha = if o.response_s > 0.0 { 1.0 - (-dt / o.response_s).exp() } else { 1.0 };
+            }
         }
         let (_, dt_ms, dt, dt_h, inv_dt) = self.step_len;
         let t = self.now_ms;
@@ -717,7 +753,13 @@ impl Plant {
         let controls = &self.bus.controls;
 
         // Supply.
-        let battery_cmd = if relays_down { 0.0 } else { controls.battery_w };
+        // A setpoint lives in the relay module, which forgets it while it reboots; a battery
+        // on its own control answers to nothing Spillway writes.
+        let battery_cmd = match &self.own_control {
+            Some(o) => o.command_w,
+            None if relays_down => 0.0,
+            None => controls.battery_w,
+        };
         let mut limit = controls.pv_limit_w;
         if self.faults.active.restarting[1] {
             limit = Some(0.0);
@@ -745,6 +787,13 @@ impl Plant {
             let cmd = if battery_cmd.is_finite() { battery_cmd } else { 0.0 };
             battery_ac = clamp(cmd, -discharge_room, charge_room);
             grid_w = demand + battery_ac - pv_w;
+        }
+        if let Some(o) = &mut self.own_control {
+            // What its CT shows with the battery taken out: the power that would be
+            // exported (positive) or imported (negative). Island steps leave it where the
+            // island put the battery, so it resumes from there when the grid returns.
+            let target = if island { battery_ac } else { pv_w - demand };
+            o.command_w += (target - o.command_w) * o.alpha;
         }
 
         // Physics.
