@@ -2277,6 +2277,25 @@ impl Builder<'_, '_> {
                             .with_note("add an `inverter:` section with a power-limit actuator, or the limit will be broken whenever the loads are full"),
                     );
                 }
+                // A battery that is read but not commanded runs its own control: it holds
+                // the meter at zero, the guard holds it at the import target, and the two
+                // fight (simulated: a zero-export house's battery drained by its own
+                // import target and never charged from the PV the guard held back).
+                if matches!(export, ExportPolicy::Forbidden | ExportPolicy::Limited(_))
+                    && inverter_written
+                    && site.roles.battery_power.is_some()
+                    && !site.loads.iter().any(|l| matches!(l.kind, LoadKind::Battery { .. }))
+                {
+                    self.diags.push(
+                        Diagnostic::warning(
+                            "C0272",
+                            "a battery on its own control and the export guard will fight",
+                            spans.export.clone().unwrap_or(site_span.clone()),
+                        )
+                        .with_label("export is limited here, and a `battery_power` point names a battery no load commands")
+                        .with_note("a self-consumption battery holds the meter at zero while the guard holds it at `import_target`: the battery pays the target while the PV is curtailed and cannot charge from PV the guard holds back. On a limited site, let Spillway command the battery as a load (`kind: battery`), or leave export limiting to the battery's own inverter"),
+                    );
+                }
                 // Grid codes bound how long export may outlast a fault: ENA EREC G100
                 // Issue 1 (Great Britain) allows 5 s for a lost meter or an export
                 // excursion. Slower settings may be right elsewhere: a warning, not an error.

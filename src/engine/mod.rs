@@ -118,8 +118,27 @@ pub struct Engine {
     /// Reused buffer: power of lower-priority loads that cannot be stopped, per load.
     reserved: Vec<Power>,
     guard_points: Vec<PointId>,
+    /// The power point (`battery_power`) of a battery that runs itself: its discharge
+    /// counts as import for the loads (see [`home_battery`]).
+    home_battery: Option<PointId>,
     decisions: Decisions,
     results: Vec<ObligationResult>,
+}
+
+/// The `battery_power` point of a battery that runs itself: on a grid-tied site where no
+/// load is a battery (a battery Spillway commands is a managed load instead), a battery
+/// that is read is one on its own control (a hybrid inverter in self-consumption mode).
+///
+/// Such a battery discharges to cover what the house would import, so the grid meter
+/// stays near zero while a diverted load runs on the battery. Counting its discharge as
+/// import keeps loads off the battery's store: the surplus and the proportional loads'
+/// controller see the import the battery hides. Its charging is not counted, so the
+/// battery fills first and loads get what it cannot take, which is what its own control
+/// does anyway. The export guard is left to the meter (see C0272 in the configuration).
+fn home_battery(site: &Site) -> Option<PointId> {
+    let grid_tied = matches!(site.connection, Connection::Grid { .. });
+    let battery_load = site.loads.iter().any(|l| matches!(l.kind, LoadKind::Battery { .. }));
+    site.roles.battery_power.filter(|_| grid_tied && !battery_load)
 }
 
 impl Engine {
@@ -180,6 +199,7 @@ impl Engine {
             jump_at: None,
             reserved: Vec::new(),
             guard_points,
+            home_battery: home_battery(&site),
             decisions,
             results: Vec::new(),
             site,
@@ -429,8 +449,14 @@ impl Engine {
         let grid_at = site.roles.grid.map_or(Timestamp::NEVER, |p| snapshot.get(p).at.minus(site.points[p.0].latency));
         let pv_at = site.roles.pv.map_or(now, |p| snapshot.get(p).at.minus(site.points[p.0].latency));
         let hidden = self.guard.hidden_headroom(site, &self.values, now);
+        // Import as far as the loads are concerned: what the meter shows plus what a home
+        // battery is discharging to hide (a stale battery reading adds nothing).
+        let grid_for_loads = match self.home_battery.map(|p| self.values[p.0]) {
+            Some(b) if b < 0.0 => grid.map(|g| g - Power(b)),
+            _ => grid,
+        };
         let base_surplus = match site.connection {
-            Connection::Grid { .. } => grid.map(|g| managed - g),
+            Connection::Grid { .. } => grid_for_loads.map(|g| managed - g),
             Connection::OffGrid(_) => self.off_grid_surplus(managed),
         };
         let site = &*self.site;
@@ -453,8 +479,8 @@ impl Engine {
         // Loads, highest priority first.
         let input_local = self.local;
         let pi_target = site.import_target;
-        let mut u_total = match grid {
-            Some(g) if self.mode == Mode::Normal || self.mode == Mode::Outage => {
+        let mut u_total = match (grid, grid_for_loads) {
+            (Some(real), Some(g)) if self.mode == Mode::Normal || self.mode == Mode::Outage => {
                 let modulating_now: Power = site
                     .loads
                     .iter()
@@ -467,7 +493,7 @@ impl Engine {
                 // Export beyond the limit: the loads take all they can at once (the guard
                 // curtails only the rest), rather than ramping while export persists.
                 match site.export_limit() {
-                    Some(limit) if -g > limit && self.jump_at.is_none_or(|t| grid_at > t) => {
+                    Some(limit) if -real > limit && self.jump_at.is_none_or(|t| grid_at > t) => {
                         let jump = (modulating_now + (pi_target - g)).min(cap).max(u);
                         self.pi.set_output(jump);
                         self.jump_at = Some(now);

@@ -246,12 +246,25 @@ impl Binding {
             },
         };
         let mut sim_controls = Vec::with_capacity(site.loads.len());
+        // A battery on its own control takes no setpoint: a load that would drive it is a
+        // mistake in the plant or the site (without any battery, such writes are refused
+        // as they are on the wire, and counted).
+        let layout = plant.bus().layout();
+        let takes_setpoint = layout.battery_setpoint || !layout.has_battery;
         for load in &site.loads {
+            let fail = |why: String| OfflineError::Binding { point: load.name.clone(), why };
             let Some(controls) = bind.load(&load.name) else {
+                let writes_setpoint =
+                    load_levels(load, Command::Off).iter().any(|(target, _)| writes_battery_setpoint(site, target));
+                if writes_setpoint && !takes_setpoint {
+                    return Err(fail(NO_BATTERY_SETPOINT.to_owned()));
+                }
                 sim_controls.push(None);
                 continue;
             };
-            let fail = |why: String| OfflineError::Binding { point: load.name.clone(), why };
+            if controls.iter().flatten().any(|c| c == "battery/power") && !takes_setpoint {
+                return Err(fail(NO_BATTERY_SETPOINT.to_owned()));
+            }
             let actuators = load_levels(load, Command::Off).len();
             if controls.len() != actuators {
                 return Err(fail(format!(
@@ -368,6 +381,22 @@ impl Binding {
     }
 }
 
+/// Why a load cannot drive a battery on its own control.
+const NO_BATTERY_SETPOINT: &str = "writes the simulated battery's power setpoint, but the plant's battery has `control: self_consumption`: it runs itself and takes no setpoint. Remove this load (read the battery's power as the point `battery_power` instead, and its discharge counts as import), or set `plant.battery.control: setpoint`";
+
+/// Whether a write lands on the simulated battery's power setpoint (relay-module holding
+/// registers 1–2, or its MQTT command topic).
+fn writes_battery_setpoint(site: &Site, target: &Write) -> bool {
+    use spillway_sim::bus::{HR_BATTERY_W, RELAY_UNIT};
+    match target {
+        Write::Register { device, address, .. } => {
+            unit_of(site, *device) == Some(RELAY_UNIT) && (HR_BATTERY_W..=HR_BATTERY_W + 1).contains(address)
+        }
+        Write::Mqtt { topic, .. } => topic == "sim/battery/power/set",
+        _ => false,
+    }
+}
+
 /// The simulated device that holds a quantity (its Modbus unit), so that a bound point
 /// stops with its device as an addressed one does.
 fn sim_unit(quantity: &str) -> u8 {
@@ -390,7 +419,7 @@ fn sim_control_exists(plant: &Plant, control: &str) -> bool {
     }
     match control {
         "ev/current" => plant.bus().probe_topic("sim/ev/current").is_some(),
-        "battery/power" => plant.bus().probe_topic("sim/battery/power").is_some(),
+        "battery/power" => plant.bus().layout().battery_setpoint,
         _ => false,
     }
 }
