@@ -141,3 +141,28 @@ proptest! {
         prop_assert!(f.losses.wh >= 0.0 && f.unserved.wh >= 0.0);
     }
 }
+
+#[test]
+fn the_inverters_own_export_limitation_holds_export_at_its_limit() {
+    // 3 kW of PV over a 500 W house: 2.5 kW would leave. Limited to 1 kW, 1 kW leaves and
+    // 1.5 kW stays in the array; limited to 0, nothing leaves and the house still runs on
+    // PV; with the limitation off, it all leaves again.
+    let house = "house: { standby: 500W, activity: 0W, fridge: null, appliances: [] }\nmeter: { noise: 0W }\n";
+    let mut p = plant_support::plant(house, plant_support::Constant(3000.0));
+    let export_of_a_step = |p: &mut spillway_sim::plant::Plant| {
+        let (i, e) = (p.flows().grid_import.wh, p.flows().grid_export.wh);
+        p.step(1.0);
+        ((p.flows().grid_export.wh - e) - (p.flows().grid_import.wh - i)) * 3600.0
+    };
+    p.set_export_limiter(Some(1000.0));
+    assert!((export_of_a_step(&mut p) - 1000.0).abs() < 1e-6);
+    p.set_export_limiter(Some(0.0));
+    assert!(export_of_a_step(&mut p).abs() < 1e-6);
+    assert!((p.flows().pv.w - 500.0).abs() < 1e-6, "the house runs on PV: {}", p.flows().pv.w);
+    p.set_export_limiter(None);
+    for _ in 0..60 {
+        export_of_a_step(&mut p);
+    }
+    assert!((export_of_a_step(&mut p) - 2500.0).abs() < 1e-6, "released at the inverter's ramp");
+    assert!(p.flows().balance_error_wh().abs() < 1e-6);
+}

@@ -2,8 +2,10 @@
 //! as it would run without Spillway. Water heaters (loads with a temperature point) sit
 //! on their own thermostats with the relay closed; loads with a daily run obligation run
 //! on a fixed timer from 10:00; chargers charge at full current whenever a car is
-//! plugged in; batteries, regulators and dump loads stay idle; the inverter is never
-//! curtailed.
+//! plugged in; batteries, regulators and dump loads stay idle. Where the site limits
+//! export and has a curtailable inverter, the inverter keeps to the limit with its own
+//! export limitation (`Plant::set_export_limiter`, set by the run), as it would have to
+//! without Spillway; elsewhere it is never curtailed.
 
 use std::time::Duration;
 

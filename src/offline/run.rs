@@ -275,6 +275,14 @@ pub fn simulate_once(
         Some(rec) => rec.build_plant(plant_cfg, start_ms, options.seed)?,
         None => site::build(plant_cfg, &SiteOptions { start_ms, seed: options.seed, sky: options.sky })?,
     };
+    // Without Spillway, a site whose export is limited and whose inverter can be
+    // curtailed would still have to keep to its limit: the baseline's inverter holds it
+    // with its own export limitation, rather than exporting what the site may not.
+    if options.controller == Controller::Baseline
+        && let (Some(allowed), Some(_)) = (site.export_limit(), &site.inverter)
+    {
+        plant.set_export_limiter(Some(allowed.0));
+    }
     let mut binding = Binding::new(site, &plant, &plant_cfg.bind)?;
     let mut engine = Engine::new(Arc::clone(site));
     let mut baseline = Baseline::new(site);

@@ -364,6 +364,8 @@ pub struct Plant {
     load_flows_quiet: bool,
     grid_available: bool,
     disconnected: bool,
+    /// The PV inverter's own export limitation (W of export it allows), if switched on.
+    export_limiter: Option<f64>,
     seed: u64,
     /// Last step length: (requested s, ms, s, h, 1/s), recomputed only when it changes.
     step_len: (f64, i64, f64, f64, f64),
@@ -610,6 +612,7 @@ impl Plant {
             load_flows_quiet: false,
             grid_available: cfg.off_grid.is_none(),
             disconnected: false,
+            export_limiter: None,
             seed,
             step_len: (f64::NAN, 0, 0.0, 0.0, 0.0),
             house_replay: None,
@@ -782,10 +785,17 @@ impl Plant {
             (pv_sample, pv_w, battery_ac, grid_w) = (s.pv, s.pv_w, s.battery_ac, 0.0);
             (served, spilled, limit) = (s.served, s.spilled, s.limit);
         } else {
-            pv_sample = self.pv.step_ac(t, dt, limit);
-            pv_w = pv_sample.ac_w.max(0.0);
             let cmd = if battery_cmd.is_finite() { battery_cmd } else { 0.0 };
             battery_ac = clamp(cmd, -discharge_room, charge_room);
+            if let Some(allowed) = self.export_limiter {
+                // Its own current transformer sees this step's demand and battery: the PV
+                // may cover them plus the allowed export, cut at once, released at the
+                // inverter's ramp.
+                let own = (demand + battery_ac + allowed).max(0.0);
+                limit = Some(limit.map_or(own, |l| l.min(own)));
+            }
+            pv_sample = self.pv.step_ac(t, dt, limit);
+            pv_w = pv_sample.ac_w.max(0.0);
             grid_w = demand + battery_ac - pv_w;
         }
         if let Some(o) = &mut self.own_control {
@@ -1098,6 +1108,14 @@ impl Plant {
     /// Hot water drawn from the tank so far, litres at tank temperature.
     pub fn hot_water_drawn_l(&self) -> Option<f64> {
         self.tank.as_ref().map(|t| t.drawn_l)
+    }
+
+    /// Switches the PV inverter's own export limitation on (`Some(W of export allowed)`)
+    /// or off: an inverter with its own current transformer at the grid connection,
+    /// holding export at the limit with no controller at all (a site without Spillway;
+    /// the offline baseline of a site whose export is limited). Off by default.
+    pub fn set_export_limiter(&mut self, allowed_w: Option<f64>) {
+        self.export_limiter = allowed_w.map(|w| w.max(0.0));
     }
 
     /// The battery's true stored energy, Wh.
