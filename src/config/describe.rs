@@ -59,6 +59,13 @@ pub fn describe(site: &Site) -> String {
             format_duration(inv.refresh)
         );
     }
+    if let Some(p) = site.self_run_battery() {
+        let _ = writeln!(
+            out,
+            "  battery: `{}` reads a battery on its own control (no load commands it): its discharge counts as import for the loads",
+            site.points[p.0].name
+        );
+    }
     if let Some(m) = &site.mqtt {
         let _ = writeln!(
             out,

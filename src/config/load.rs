@@ -2283,8 +2283,7 @@ impl Builder<'_, '_> {
                 // import target and never charged from the PV the guard held back).
                 if matches!(export, ExportPolicy::Forbidden | ExportPolicy::Limited(_))
                     && inverter_written
-                    && site.roles.battery_power.is_some()
-                    && !site.loads.iter().any(|l| matches!(l.kind, LoadKind::Battery { .. }))
+                    && site.self_run_battery().is_some()
                 {
                     self.diags.push(
                         Diagnostic::warning(

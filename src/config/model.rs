@@ -58,6 +58,16 @@ pub struct Site {
 }
 
 impl Site {
+    /// The `battery_power` point of a battery that runs itself: on a grid-tied site where
+    /// no load is a battery (a battery Spillway commands is a managed load instead), a
+    /// battery that is read is one on its own control (a hybrid inverter in
+    /// self-consumption mode). Its discharge counts as import for the loads.
+    pub fn self_run_battery(&self) -> Option<PointId> {
+        let grid_tied = matches!(self.connection, Connection::Grid { .. });
+        let battery_load = self.loads.iter().any(|l| matches!(l.kind, LoadKind::Battery { .. }));
+        self.roles.battery_power.filter(|_| grid_tied && !battery_load)
+    }
+
     /// The load called `name`.
     pub fn load(&self, name: &str) -> Option<(LoadId, &Load)> {
         self.loads.iter().enumerate().find(|(_, l)| l.name == name).map(|(i, l)| (LoadId(i), l))

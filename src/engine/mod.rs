@@ -118,27 +118,17 @@ pub struct Engine {
     /// Reused buffer: power of lower-priority loads that cannot be stopped, per load.
     reserved: Vec<Power>,
     guard_points: Vec<PointId>,
-    /// The power point (`battery_power`) of a battery that runs itself: its discharge
-    /// counts as import for the loads (see [`home_battery`]).
+    /// The power point (`battery_power`) of a battery that runs itself
+    /// ([`Site::self_run_battery`]). Such a battery discharges to cover what the house
+    /// would import, so the grid meter stays near zero while a diverted load runs on the
+    /// battery. Counting its discharge as import keeps loads off the battery's store: the
+    /// surplus and the proportional loads' controller see the import the battery hides.
+    /// Its charging is not counted, so the battery fills first and loads get what it
+    /// cannot take, which is what its own control does anyway. The export guard reads the
+    /// meter alone (the configuration warns, C0272, where the two would fight).
     home_battery: Option<PointId>,
     decisions: Decisions,
     results: Vec<ObligationResult>,
-}
-
-/// The `battery_power` point of a battery that runs itself: on a grid-tied site where no
-/// load is a battery (a battery Spillway commands is a managed load instead), a battery
-/// that is read is one on its own control (a hybrid inverter in self-consumption mode).
-///
-/// Such a battery discharges to cover what the house would import, so the grid meter
-/// stays near zero while a diverted load runs on the battery. Counting its discharge as
-/// import keeps loads off the battery's store: the surplus and the proportional loads'
-/// controller see the import the battery hides. Its charging is not counted, so the
-/// battery fills first and loads get what it cannot take, which is what its own control
-/// does anyway. The export guard is left to the meter (see C0272 in the configuration).
-fn home_battery(site: &Site) -> Option<PointId> {
-    let grid_tied = matches!(site.connection, Connection::Grid { .. });
-    let battery_load = site.loads.iter().any(|l| matches!(l.kind, LoadKind::Battery { .. }));
-    site.roles.battery_power.filter(|_| grid_tied && !battery_load)
 }
 
 impl Engine {
@@ -199,7 +189,7 @@ impl Engine {
             jump_at: None,
             reserved: Vec::new(),
             guard_points,
-            home_battery: home_battery(&site),
+            home_battery: site.self_run_battery(),
             decisions,
             results: Vec::new(),
             site,

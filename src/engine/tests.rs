@@ -154,6 +154,47 @@ fn surplus_is_export_plus_the_power_of_managed_loads_that_are_on() {
     assert!((d2.surplus.0 - 1500.0).abs() < 1e-6, "{} then {}", d.surplus, d2.surplus);
 }
 
+/// A battery no load commands runs itself: it holds the meter at zero by discharging,
+/// and the pump would run on it forever. Its discharge counts as import: the surplus
+/// drops by it, and the pump's `surplus < 500W` stop fires; its charging is not surplus.
+#[test]
+fn a_self_run_batterys_discharge_counts_as_import_and_its_charging_is_not_surplus() {
+    let loads = r#"
+  - name: pump
+    rated: 1kW
+    switch: { device: relays, coil: 1 }
+    start: surplus > 1.1kW for 20s
+    stop: surplus < 500W for 10s
+"#;
+    let yaml = site("  export: allowed", loads)
+        .replace("points:\n", "points:\n  battery_power: { device: meter, register: 50, type: i16, unit: W }\n");
+    let mut h = Harness::new(&yaml);
+    assert!(h.site.self_run_battery().is_some());
+    h.set("battery_power", 0.0);
+    h.set("grid", -1500.0);
+    h.run(secs(30));
+    assert_eq!(h.command("pump"), Command::On);
+    // A cloud: the battery covers the whole pump, the meter reads zero.
+    h.set("grid", 0.0);
+    h.set("battery_power", -1000.0);
+    let d = h.tick();
+    assert!(d.surplus.0.abs() < 1e-6, "the pump's own 1 kW is not surplus while the battery pays: {}", d.surplus);
+    h.run(secs(15));
+    assert_eq!(h.command("pump"), Command::Off, "{:?}", h.reason("pump"));
+    // Charging is the battery's own business: 2 kW into it at a zero meter is no surplus.
+    h.set("battery_power", 2000.0);
+    let d = h.run(secs(30));
+    assert!(d.surplus.0.abs() < 1e-6 && h.command("pump") == Command::Off, "{}", d.surplus);
+    // The same site with the battery as a Spillway load: its reading is that load's
+    // business, not import.
+    let commanded = yaml.replace(
+        "loads:\n",
+        "loads:\n  - name: store\n    kind: battery\n    max_charge: 3kW\n    soc: soc\n    setpoint: { device: relays, register: 1, type: i32 }\n",
+    );
+    let h = Harness::new(&commanded);
+    assert!(h.site.self_run_battery().is_none());
+}
+
 #[test]
 fn a_load_with_its_own_meter_counts_its_measured_power_not_its_rating() {
     let loads = r#"
