@@ -122,3 +122,28 @@ fn without_a_battery_an_outage_is_a_blackout() {
     assert!((p.flows().unserved.w - 800.0).abs() < 1e-6);
     assert!(p.readings().loads_disconnected);
 }
+
+#[test]
+fn a_self_consuming_battery_forms_the_island_and_picks_up_where_it_left_off() {
+    // Before the outage it covers the 800 W house on its own control; in the outage it
+    // supplies the island; back on the grid it goes on covering the house from the
+    // island's power, so the meter sees no step when the grid returns.
+    let yaml = BACKED_UP.replace("initial_soc: 50% }", "initial_soc: 50%, control: self_consumption }");
+    assert_ne!(yaml, BACKED_UP);
+    let mut p = plant(&yaml, Constant(0.0));
+    run(&mut p, 3600, 1.0);
+    assert!((p.readings().battery.unwrap().power_w + 800.0).abs() < 1e-6);
+    let import_before = p.flows().grid_import.wh;
+    run(&mut p, 3600, 1.0);
+    assert!(!p.readings().grid_available);
+    assert!((p.readings().battery.unwrap().power_w + 800.0).abs() < 1e-6);
+    assert_eq!(p.flows().unserved.wh, 0.0);
+    let before = p.flows().grid_import.wh;
+    run(&mut p, 2, 1.0);
+    assert!(p.readings().grid_available);
+    assert!((p.flows().grid_import.wh - before).abs() < 1e-9, "a step at the meter when the grid came back");
+    // Over the two hours, only the first seconds (the battery starting from rest)
+    // imported anything.
+    assert!(p.flows().grid_import.wh - import_before < 1e-9 && import_before < 1.0, "{import_before} Wh");
+    assert!(p.flows().balance_error_wh().abs() < 1e-6);
+}
