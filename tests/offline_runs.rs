@@ -899,3 +899,50 @@ fn a_battery_load_on_a_self_consuming_simulated_battery_is_refused() {
         "{err}"
     );
 }
+
+/// An inverter that limits its own export (its own current transformer) and a Spillway
+/// that cannot curtail: the meter never shows export, so without more the loads never
+/// see a surplus. With the inverter's available power read (`pv_available`), what it
+/// holds back is surplus a load may take: the zero-export example with its `inverter:`
+/// section removed and the simulated inverter limiting itself to 0 W, a mixed June week.
+#[test]
+fn loads_divert_what_a_self_limiting_inverter_holds_back() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let start = text.find("\ninverter:\n").unwrap() + 1;
+    let end = start + text[start..].find("\n\n").unwrap() + 1;
+    let seeing = format!("{}{}", &text[..start], &text[end..]).replacen(
+        "  pump: { rated: 1.1kW }\n",
+        "  pump: { rated: 1.1kW }\n  inverter: { export_limit: 0W }\n",
+        1,
+    );
+    let blind = seeing.replacen("  pv_available: { device: inverter, register: 50000, type: u32, unit: W }\n", "", 1);
+    assert!(seeing.contains("export_limit: 0W") && !seeing.contains("\ninverter:\n") && blind != seeing);
+    let run_of = |yaml: &str| {
+        let loaded = config::load_str("site.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        assert!(loaded.warnings.iter().any(|w| w.code == "C0254"), "Spillway cannot curtail here");
+        let plant = offline::checked_plant(&loaded).unwrap_or_else(|e| panic!("{e}"));
+        let site = Arc::new(loaded.site.clone());
+        let mut o = RunOptions::day(date("2026-06-15"));
+        o.days = 7;
+        o.seed = 7;
+        o.sky = Some(WeatherKind::Mixed);
+        offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_or_else(|e| panic!("{e}"))
+    };
+    let (with, without) = (run_of(&seeing), run_of(&blind));
+    let diverted = |o: &RunOutput| o.flows.loads.iter().map(|l| l.wh).sum::<f64>();
+    // The inverter holds the limit either way (its own limitation cuts at once).
+    for o in [&with, &without] {
+        assert!(o.flows.grid_export.wh < 1.0, "{} Wh exported", o.flows.grid_export.wh);
+    }
+    // Measured: diverted 108.2 against 78.6 kWh (without it, only the obligations start
+    // the loads, and the inverter then covers them), PV 169.5 against 121.3 kWh, import
+    // 64.9 against 83.4 kWh.
+    assert!(diverted(&with) > diverted(&without) + 20_000.0, "{} against {} Wh", diverted(&with), diverted(&without));
+    assert!(
+        with.flows.pv.wh > without.flows.pv.wh + 30_000.0,
+        "{} against {} Wh of PV",
+        with.flows.pv.wh,
+        without.flows.pv.wh
+    );
+    assert!(with.flows.grid_import.wh < without.flows.grid_import.wh - 10_000.0);
+}

@@ -2274,7 +2274,7 @@ impl Builder<'_, '_> {
                     self.diags.push(
                         Diagnostic::warning("C0254", "export is limited but the inverter cannot be curtailed", spans.export.clone().unwrap_or(site_span.clone()))
                             .with_label("only the loads can hold the limit")
-                            .with_note("add an `inverter:` section with a power-limit actuator, or the limit will be broken whenever the loads are full"),
+                            .with_note("add an `inverter:` section with a power-limit actuator, or the limit will be broken whenever the loads are full; if the inverter limits its own export instead, read what it could give as the point `pv_available`, or the loads will never see the surplus it holds back"),
                     );
                 }
                 // A battery that is read but not commanded runs its own control: it holds
@@ -2292,7 +2292,7 @@ impl Builder<'_, '_> {
                             spans.export.clone().unwrap_or(site_span.clone()),
                         )
                         .with_label("export is limited here, and a `battery_power` point names a battery no load commands")
-                        .with_note("a self-consumption battery holds the meter at zero while the guard holds it at `import_target`: the battery pays the target while the PV is curtailed and cannot charge from PV the guard holds back. On a limited site, let Spillway command the battery as a load (`kind: battery`), or leave export limiting to the battery's own inverter"),
+                        .with_note("a self-consumption battery holds the meter at zero while the guard holds it at `import_target`: the battery pays the target while the PV is curtailed and cannot charge from PV the guard holds back. On a limited site, let Spillway command the battery as a load (`kind: battery`), or, with a hybrid inverter that limits export itself and charges its battery first, leave export limiting to it (no `inverter:` section; read `pv_available`)"),
                     );
                 }
                 // Grid codes bound how long export may outlast a fault: ENA EREC G100

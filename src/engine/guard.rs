@@ -76,10 +76,19 @@ impl Guard {
     /// towards import, never export: the guard still holds the grid. Called once per
     /// tick, before [`Guard::decide`]: it also takes this tick's PV reading in.
     pub fn hidden_headroom(&mut self, site: &Site, values: &[f64], now: Timestamp) -> Power {
-        let Some(inv) = &site.inverter else {
-            return Power::ZERO;
-        };
         let value = |p: Option<crate::config::model::PointId>| p.map(|p| values[p.0]).filter(|v| v.is_finite());
+        let Some(inv) = &site.inverter else {
+            // Spillway cannot curtail, but an inverter may hold itself back (its own export
+            // limitation, with its own current transformer): what it reports it could give
+            // beyond what it gives is surplus a load may take, since that inverter
+            // releases it as the load starts. Grid-tied only: off-grid, the charge
+            // controller's throttling is already the float headroom.
+            let grid_tied = matches!(site.connection, crate::config::model::Connection::Grid { .. });
+            return match (value(site.roles.pv_available), value(site.roles.pv)) {
+                (Some(avail), Some(pv)) if grid_tied => Power((avail - pv).max(0.0)),
+                _ => Power::ZERO,
+            };
+        };
         let pv = value(site.roles.pv).map(Power);
         let margin = pinned_margin(inv.rated);
         if let Some(p) = pv {

@@ -195,6 +195,25 @@ fn a_self_run_batterys_discharge_counts_as_import_and_its_charging_is_not_surplu
     assert!(h.site.self_run_battery().is_none());
 }
 
+/// An inverter that limits its own export hides the surplus from the meter; where
+/// Spillway cannot curtail (no `inverter:` section) and reads `pv_available`, what the
+/// inverter holds back is surplus. Off-grid it is not (the float headroom stands for it).
+#[test]
+fn what_a_self_limiting_inverter_holds_back_is_surplus() {
+    let yaml = site("  export: forbidden", TWO_LOADS)
+        .replace("inverter:\n  rated: 5kW\n  limit: { device: inverter, register: 100 }\n", "")
+        .replace("points:\n", "points:\n  pv_available: { device: inverter, register: 12, type: u32, unit: W }\n");
+    let mut h = Harness::new(&yaml);
+    assert!(h.site.inverter.is_none());
+    h.set("grid", 0.0);
+    h.set("pv", 1000.0);
+    h.set("pv_available", 4500.0);
+    let d = h.tick();
+    assert!((d.surplus.0 - 3500.0).abs() < 1e-6, "{}", d.surplus);
+    h.run(secs(25));
+    assert_eq!(h.command("tank"), Command::On, "the tank starts on what the inverter holds back");
+}
+
 #[test]
 fn a_load_with_its_own_meter_counts_its_measured_power_not_its_rating() {
     let loads = r#"

@@ -281,7 +281,8 @@ pub fn simulate_once(
     if options.controller == Controller::Baseline
         && let (Some(allowed), Some(_)) = (site.export_limit(), &site.inverter)
     {
-        plant.set_export_limiter(Some(allowed.0));
+        let own = plant.export_limiter().map_or(allowed.0, |own| own.min(allowed.0));
+        plant.set_export_limiter(Some(own));
     }
     let mut binding = Binding::new(site, &plant, &plant_cfg.bind)?;
     let mut engine = Engine::new(Arc::clone(site));

@@ -657,6 +657,11 @@ pub struct InverterConfig {
     /// AC rating: SunSpec `WMax`, the 100 % of percentage limits.
     #[serde(default = "d_rating", deserialize_with = "quantity::power")]
     pub rating: f64,
+    /// The inverter's own export limitation: with its own current transformer at the
+    /// grid connection it holds export at this power (`0W`: no export), whatever any
+    /// controller does. None: it has none.
+    #[serde(default, deserialize_with = "quantity::opt_power")]
+    pub export_limit: Option<f64>,
 }
 
 fn d_rating() -> f64 {
@@ -665,7 +670,7 @@ fn d_rating() -> f64 {
 
 impl Default for InverterConfig {
     fn default() -> Self {
-        InverterConfig { rating: d_rating() }
+        InverterConfig { rating: d_rating(), export_limit: None }
     }
 }
 

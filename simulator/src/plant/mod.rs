@@ -612,7 +612,7 @@ impl Plant {
             load_flows_quiet: false,
             grid_available: cfg.off_grid.is_none(),
             disconnected: false,
-            export_limiter: None,
+            export_limiter: cfg.inverter.export_limit.map(|w| w.max(0.0)),
             seed,
             step_len: (f64::NAN, 0, 0.0, 0.0, 0.0),
             house_replay: None,
@@ -1113,9 +1113,15 @@ impl Plant {
     /// Switches the PV inverter's own export limitation on (`Some(W of export allowed)`)
     /// or off: an inverter with its own current transformer at the grid connection,
     /// holding export at the limit with no controller at all (a site without Spillway;
-    /// the offline baseline of a site whose export is limited). Off by default.
+    /// the offline baseline of a site whose export is limited). Off unless the plant's
+    /// `inverter.export_limit` sets it.
     pub fn set_export_limiter(&mut self, allowed_w: Option<f64>) {
         self.export_limiter = allowed_w.map(|w| w.max(0.0));
+    }
+
+    /// The PV inverter's own export limitation, W of export allowed (None: none).
+    pub fn export_limiter(&self) -> Option<f64> {
+        self.export_limiter
     }
 
     /// The battery's true stored energy, Wh.
