@@ -165,4 +165,9 @@ fn the_inverters_own_export_limitation_holds_export_at_its_limit() {
     }
     assert!((export_of_a_step(&mut p) - 2500.0).abs() < 1e-6, "released at the inverter's ramp");
     assert!(p.flows().balance_error_wh().abs() < 1e-6);
+    // The plant file switches it on with `inverter.export_limit`.
+    let mut p =
+        plant_support::plant(&format!("{house}inverter: {{ export_limit: 400W }}\n"), plant_support::Constant(3000.0));
+    assert_eq!(p.export_limiter(), Some(400.0));
+    assert!((export_of_a_step(&mut p) - 400.0).abs() < 1e-6);
 }
