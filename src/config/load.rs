@@ -272,6 +272,7 @@ impl Builder<'_, '_> {
             mqtt,
         };
         self.site_checks(&site, &header.spans, inverter_node);
+        self.import_rules_beside_a_self_run_battery(&site, &load_nodes, &load_names);
         Some(site)
     }
 
@@ -371,6 +372,43 @@ impl Builder<'_, '_> {
                 import_target: import_target_node.map(|n| n.span.clone()),
             },
         })
+    }
+
+    /// A battery that runs itself pays for a load before the meter shows import, so a rule
+    /// that waits for `import` never sees a load running on the battery; `surplus` does
+    /// (its discharge counts there).
+    fn import_rules_beside_a_self_run_battery(
+        &mut self,
+        site: &Site,
+        nodes: &[&Node],
+        names: &[(String, Range<usize>, u32, usize)],
+    ) {
+        let Some(battery) = site.self_run_battery() else { return };
+        let import = site.slots.site.import;
+        for load in &site.loads {
+            let Some(&(_, _, _, i)) = names.iter().find(|(n, _, _, _)| *n == load.name) else { continue };
+            let Value::Map(entries) = &nodes[i].value else { continue };
+            for (key, rule) in [("start", &load.start), ("stop", &load.stop)] {
+                let Some(rule) = rule else { continue };
+                if !rule.rule.slots().contains(&import) {
+                    continue;
+                }
+                let span =
+                    entries.iter().find(|(k, _)| k.name == key).map_or(nodes[i].span.clone(), |(_, n)| n.span.clone());
+                self.diags.push(
+                    Diagnostic::warning(
+                        "C0274",
+                        format!("load \"{}\": its {key} rule reads `import`, which a battery on its own control hides", load.name),
+                        span,
+                    )
+                    .with_label("the meter shows no import while the battery pays for this load")
+                    .with_note(format!(
+                        "`{}` reads a battery no load commands: it covers the load from its store before any import shows. `surplus` counts its discharge as import; write the rule in `surplus` (e.g. `surplus < 500W for 1min`)",
+                        site.points[battery.0].name
+                    )),
+                );
+            }
+        }
     }
 
     /// A margin the user set: it must leave export above zero, and should clear the

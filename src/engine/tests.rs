@@ -193,6 +193,19 @@ fn a_self_run_batterys_discharge_counts_as_import_and_its_charging_is_not_surplu
     );
     let h = Harness::new(&commanded);
     assert!(h.site.self_run_battery().is_none());
+    // A stop rule in `import` would never see the battery paying: check warns of it
+    // (C0274), once per rule that reads it, and not for rules in `surplus`.
+    let warned = |yaml: &str| {
+        let loaded = load_str("test.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        loaded.warnings.iter().filter(|w| w.code == "C0274").map(|w| w.message.clone()).collect::<Vec<_>>()
+    };
+    assert!(warned(&yaml).is_empty());
+    let import_rules = site("  export: allowed", TWO_LOADS)
+        .replace("points:\n", "points:\n  battery_power: { device: meter, register: 50, type: i16, unit: W }\n");
+    let w = warned(&import_rules);
+    assert_eq!(w.len(), 2, "{w:?}");
+    assert!(w[0].contains("\"tank\": its stop rule reads `import`"), "{w:?}");
+    assert!(warned(&site("  export: allowed", TWO_LOADS)).is_empty(), "no battery, no warning");
 }
 
 /// An inverter that limits its own export hides the surplus from the meter; where
