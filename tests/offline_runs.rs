@@ -38,6 +38,33 @@ fn date(s: &str) -> NaiveDate {
     NaiveDate::parse_from_str(s, "%Y-%m-%d").unwrap()
 }
 
+/// A site file's text with its `inverter:` section taken out (Spillway cannot curtail).
+fn without_inverter_section(text: &str) -> String {
+    let start = text.find("\ninverter:\n").expect("an inverter section") + 1;
+    let end = start + text[start..].find("\n\n").expect("a blank line after it") + 1;
+    format!("{}{}", &text[..start], &text[end..])
+}
+
+/// Loads a site file's text and runs its rules from 2026-06-15 for `days` in mixed
+/// weather, seed 7, through its checked plant (`simulation.bind` included), with a
+/// trace at `trace_every` over the whole run if asked.
+fn run_text(yaml: &str, days: u32, trace_every: Option<std::time::Duration>) -> (Loaded, RunOutput) {
+    let loaded = config::load_str("site.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let plant = offline::checked_plant(&loaded).unwrap_or_else(|e| panic!("{e}"));
+    let site = Arc::new(loaded.site.clone());
+    let from = date("2026-06-15");
+    let mut o = RunOptions::day(from);
+    o.days = days;
+    o.seed = 7;
+    o.sky = Some(WeatherKind::Mixed);
+    if let Some(every) = trace_every {
+        o.trace = Some((from, from + chrono::Days::new(u64::from(days) - 1)));
+        o.trace_every = every;
+    }
+    let out = offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_or_else(|e| panic!("{e}"));
+    (loaded, out)
+}
+
 fn examples() -> Vec<PathBuf> {
     let mut v: Vec<PathBuf> = std::fs::read_dir(Path::new(env!("CARGO_MANIFEST_DIR")).join("config"))
         .unwrap()
@@ -103,9 +130,7 @@ fn forbidden_export_stays_within_the_configured_tolerance_over_a_mixed_month() {
         // And the same rules without the inverter's limit to hold it export plenty: the
         // test has teeth.
         let text = std::fs::read_to_string(&path).unwrap();
-        let start = text.find("\ninverter:\n").expect("an inverter section") + 1;
-        let end = start + text[start..].find("\n\n").expect("a blank line after it");
-        let uncurtailed = config::load_str("site.yaml", &format!("{}{}", &text[..start], &text[end..]))
+        let uncurtailed = config::load_str("site.yaml", &without_inverter_section(&text))
             .unwrap_or_else(|e| panic!("{}", e.render(false)));
         assert!(uncurtailed.site.inverter.is_none());
         let loose = run(&uncurtailed, date("2026-04-01"), 3, Some(WeatherKind::Mixed), Controller::Spillway);
@@ -627,16 +652,7 @@ fn a_real_sites_file_runs_offline_through_simulation_bind() {
         "simulation:\n",
         "simulation:\n  bind:\n    points: { pv_available: inverter/available, tank_temp: tank/temperature }\n    loads: { water_heater: relay/tank, pool_pump: relay/pump }\n",
     );
-    let run_of = |yaml: &str| {
-        let loaded = config::load_str("site.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
-        let plant = offline::checked_plant(&loaded).unwrap_or_else(|e| panic!("{e}"));
-        let site = Arc::new(loaded.site.clone());
-        let mut o = RunOptions::day(date("2026-06-15"));
-        o.days = 2;
-        o.seed = 7;
-        o.sky = Some(WeatherKind::Mixed);
-        offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_or_else(|e| panic!("{e}"))
-    };
+    let run_of = |yaml: &str| run_text(yaml, 2, None).1;
     let (a, b) = (run_of(&text), run_of(&bound));
     assert!(a.flows.loads.iter().all(|l| l.wh > 100.0), "the example's loads ran: {:?}", a.flows.loads);
     assert_eq!(a.flows, b.flows, "the bound site runs as the example does");
@@ -840,17 +856,8 @@ fn loads_do_not_run_on_a_self_consuming_home_battery() {
     let c0272 = warned.warnings.iter().find(|d| d.code == "C0272").expect("C0272 warns of the fight");
     assert!(c0272.notes.iter().any(|n| n.contains("kind: battery")), "{c0272:?}");
     let drawn_on_battery = |yaml: &str| {
-        let loaded = config::load_str("site.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        let (loaded, out) = run_text(yaml, 7, Some(std::time::Duration::from_secs(1)));
         assert!(!loaded.warnings.iter().any(|d| d.code == "C0272"), "no fight where export is allowed");
-        let plant = offline::checked_plant(&loaded).unwrap_or_else(|e| panic!("{e}"));
-        let site = Arc::new(loaded.site.clone());
-        let mut o = RunOptions::day(date("2026-06-15"));
-        o.days = 7;
-        o.seed = 7;
-        o.sky = Some(WeatherKind::Mixed);
-        o.trace = Some((date("2026-06-15"), date("2026-06-21")));
-        o.trace_every = std::time::Duration::from_secs(1);
-        let out = offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_or_else(|e| panic!("{e}"));
         assert!(out.flows.balance_error_wh().abs() < 1e-3 * out.flows.pv.wh);
         let trace = out.trace.as_ref().unwrap();
         // Wh the managed loads drew in seconds when the battery was discharging, as far
@@ -908,9 +915,7 @@ fn a_battery_load_on_a_self_consuming_simulated_battery_is_refused() {
 #[test]
 fn loads_divert_what_a_self_limiting_inverter_holds_back() {
     let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
-    let start = text.find("\ninverter:\n").unwrap() + 1;
-    let end = start + text[start..].find("\n\n").unwrap() + 1;
-    let seeing = format!("{}{}", &text[..start], &text[end..]).replacen(
+    let seeing = without_inverter_section(&text).replacen(
         "  pump: { rated: 1.1kW }\n",
         "  pump: { rated: 1.1kW }\n  inverter: { export_limit: 0W }\n",
         1,
@@ -918,15 +923,9 @@ fn loads_divert_what_a_self_limiting_inverter_holds_back() {
     let blind = seeing.replacen("  pv_available: { device: inverter, register: 50000, type: u32, unit: W }\n", "", 1);
     assert!(seeing.contains("export_limit: 0W") && !seeing.contains("\ninverter:\n") && blind != seeing);
     let run_of = |yaml: &str| {
-        let loaded = config::load_str("site.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        let (loaded, out) = run_text(yaml, 7, None);
         assert!(loaded.warnings.iter().any(|w| w.code == "C0254"), "Spillway cannot curtail here");
-        let plant = offline::checked_plant(&loaded).unwrap_or_else(|e| panic!("{e}"));
-        let site = Arc::new(loaded.site.clone());
-        let mut o = RunOptions::day(date("2026-06-15"));
-        o.days = 7;
-        o.seed = 7;
-        o.sky = Some(WeatherKind::Mixed);
-        offline::simulate_once(&site, loaded.tariff.as_ref(), &plant, o).unwrap_or_else(|e| panic!("{e}"))
+        out
     };
     let (with, without) = (run_of(&seeing), run_of(&blind));
     let diverted = |o: &RunOutput| o.flows.loads.iter().map(|l| l.wh).sum::<f64>();

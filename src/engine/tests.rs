@@ -154,6 +154,11 @@ fn surplus_is_export_plus_the_power_of_managed_loads_that_are_on() {
     assert!((d2.surplus.0 - 1500.0).abs() < 1e-6, "{} then {}", d.surplus, d2.surplus);
 }
 
+/// The test site with a battery's power read (`battery_power`, charging +).
+fn with_battery_power(yaml: &str) -> String {
+    yaml.replace("points:\n", "points:\n  battery_power: { device: meter, register: 50, type: i16, unit: W }\n")
+}
+
 /// A battery no load commands runs itself: it holds the meter at zero by discharging,
 /// and the pump would run on it forever. Its discharge counts as import: the surplus
 /// drops by it, and the pump's `surplus < 500W` stop fires; its charging is not surplus.
@@ -166,8 +171,7 @@ fn a_self_run_batterys_discharge_counts_as_import_and_its_charging_is_not_surplu
     start: surplus > 1.1kW for 20s
     stop: surplus < 500W for 10s
 "#;
-    let yaml = site("  export: allowed", loads)
-        .replace("points:\n", "points:\n  battery_power: { device: meter, register: 50, type: i16, unit: W }\n");
+    let yaml = with_battery_power(&site("  export: allowed", loads));
     let mut h = Harness::new(&yaml);
     assert!(h.site.self_run_battery().is_some());
     h.set("battery_power", 0.0);
@@ -200,8 +204,7 @@ fn a_self_run_batterys_discharge_counts_as_import_and_its_charging_is_not_surplu
         loaded.warnings.iter().filter(|w| w.code == "C0274").map(|w| w.message.clone()).collect::<Vec<_>>()
     };
     assert!(warned(&yaml).is_empty());
-    let import_rules = site("  export: allowed", TWO_LOADS)
-        .replace("points:\n", "points:\n  battery_power: { device: meter, register: 50, type: i16, unit: W }\n");
+    let import_rules = with_battery_power(&site("  export: allowed", TWO_LOADS));
     let w = warned(&import_rules);
     assert_eq!(w.len(), 2, "{w:?}");
     assert!(w[0].contains("\"tank\": its stop rule reads `import`"), "{w:?}");
