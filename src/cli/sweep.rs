@@ -264,6 +264,14 @@ fn to_text(rep: &SweepReport) -> String {
     }
     if rep.array_cost_per_kwp.is_none() {
         let _ = writeln!(o, "\n(no payback: give `tariff.array_cost` per kWp in the site file)");
+    } else if rep.days % 365 != 0 && rep.points.iter().any(|p| p.payback_years.is_some()) {
+        // Savings follow the seasons: a summer month scaled to a year flatters the array,
+        // a winter month condemns it. Say so beside the figure an installer may quote.
+        let _ = writeln!(
+            o,
+            "\n(payback scales these {} days' savings to 365 days; savings follow the seasons, so quote a payback only from whole years, as the default runs)",
+            rep.days
+        );
     }
     o
 }
@@ -408,19 +416,32 @@ mod tests {
         }
     }
 
-    #[test]
-    fn the_chart_names_the_varied_setting_and_marks_each_value_run() {
-        let rep = SweepReport {
+    fn report(days: u32) -> SweepReport {
+        SweepReport {
             key: "plant.solar.arrays.0.strings.0.modules".into(),
             from: "2026-01-01".into(),
-            days: 365,
+            days,
             seed: 1,
             currency: Some("€".into()),
             array_cost_per_kwp: Some(850.0),
             no_pv_cost: Some(900.0),
             points: vec![point("4", 3000.0), point("6", 2600.0), point("8", 2300.0)],
-        };
-        let svg = chart_svg(&rep).unwrap();
+        }
+    }
+
+    #[test]
+    fn a_payback_from_less_than_a_year_says_it_was_scaled() {
+        let note = "payback scales these 30 days' savings to 365 days";
+        assert!(to_text(&report(30)).contains(note), "{}", to_text(&report(30)));
+        assert!(!to_text(&report(365)).contains("payback scales"), "a whole year needs no note");
+        let mut no_cost = report(30);
+        no_cost.array_cost_per_kwp = None;
+        assert!(!to_text(&no_cost).contains("payback scales"), "no payback, nothing to qualify");
+    }
+
+    #[test]
+    fn the_chart_names_the_varied_setting_and_marks_each_value_run() {
+        let svg = chart_svg(&report(365)).unwrap();
         // plotters writes each text on its own line between the tags.
         let axis_names = svg.lines().filter(|l| l.trim() == "modules").count();
         assert_eq!(axis_names, 2, "under both x axes");
