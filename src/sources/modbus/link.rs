@@ -13,8 +13,8 @@ use std::time::Duration;
 
 use tokio::sync::{mpsc, watch};
 use tokio::time::{Instant, sleep, sleep_until, timeout};
-use tokio_modbus::client::{Client, Context, Reader, Writer, rtu, tcp};
-use tokio_modbus::{ExceptionCode, Slave};
+use tokio_modbus::ExceptionCode;
+use tokio_modbus::client::{Client, Context, Reader, Writer};
 use tokio_util::sync::CancellationToken;
 use tracing::{debug, info, warn};
 
@@ -25,7 +25,7 @@ use super::{ModbusError, ModbusOptions};
 use crate::actuators::modbus::{LimitContext, LimitControl, WriteOp, WriteTracker};
 use crate::actuators::{DeviceCommands, targets_of};
 use crate::config::model::{
-    Device, DeviceId, Link, Parity, PointId, PointRead, Scale, Site, SunSpecRead, Table, WordOrder, Write,
+    Device, DeviceId, Link, PointId, PointRead, Scale, Site, SunSpecRead, Table, WordOrder, Write,
 };
 use crate::sources::{Backoff, Clock, Counter, LinkStats, Readback, SourceEvent, modbus::ExceptionName};
 
@@ -219,31 +219,7 @@ impl ModbusLink {
     }
 
     async fn connect(&self) -> io::Result<Context> {
-        match &self.dev().link {
-            Link::ModbusTcp { host, port, unit } => {
-                let addr = tokio::net::lookup_host((host.as_str(), *port))
-                    .await?
-                    .next()
-                    .ok_or_else(|| io::Error::other(format!("{host} has no address")))?;
-                let stream = tokio::net::TcpStream::connect(addr).await?;
-                // Request and response are small; do not let Nagle hold a write back.
-                stream.set_nodelay(true)?;
-                Ok(tcp::attach_slave(stream, Slave(*unit)))
-            }
-            Link::ModbusRtu { path, baud, parity, stop_bits, unit } => {
-                let builder = tokio_serial::new(path, *baud)
-                    .data_bits(tokio_serial::DataBits::Eight)
-                    .parity(match parity {
-                        Parity::None => tokio_serial::Parity::None,
-                        Parity::Even => tokio_serial::Parity::Even,
-                        Parity::Odd => tokio_serial::Parity::Odd,
-                    })
-                    .stop_bits(if *stop_bits == 2 { tokio_serial::StopBits::Two } else { tokio_serial::StopBits::One });
-                let port = tokio_serial::SerialStream::open(&builder).map_err(io::Error::from)?;
-                Ok(rtu::attach_slave(port, Slave(*unit)))
-            }
-            Link::Mqtt => Err(io::Error::other("not a Modbus device")),
-        }
+        super::connect(&self.dev().link).await
     }
 
     /// One connection's life. Returns why it ended.

@@ -8,11 +8,15 @@ pub mod probe;
 pub mod sunspec;
 
 use std::fmt;
+use std::io;
 use std::time::Duration;
+
+use tokio_modbus::client::Context;
 
 pub use link::ModbusLink;
 
 use super::BackoffPolicy;
+use crate::config::model::{Link, Parity};
 
 /// Tuning of a Modbus link.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -75,5 +79,35 @@ impl fmt::Display for ExceptionName {
             "Unknown" => write!(f, "exception 0x{:02X}", self.0),
             n => f.write_str(n),
         }
+    }
+}
+
+/// Opens a device's Modbus transport (TCP or RTU) for its unit; the callers bound the
+/// wait with their own connect timeout.
+async fn connect(link: &Link) -> io::Result<Context> {
+    match link {
+        Link::ModbusTcp { host, port, unit } => {
+            let addr = tokio::net::lookup_host((host.as_str(), *port))
+                .await?
+                .next()
+                .ok_or_else(|| io::Error::other(format!("{host} has no address")))?;
+            let stream = tokio::net::TcpStream::connect(addr).await?;
+            // Request and response are small; do not let Nagle hold a write back.
+            stream.set_nodelay(true)?;
+            Ok(tokio_modbus::client::tcp::attach_slave(stream, tokio_modbus::Slave(*unit)))
+        }
+        Link::ModbusRtu { path, baud, parity, stop_bits, unit } => {
+            let builder = tokio_serial::new(path, *baud)
+                .data_bits(tokio_serial::DataBits::Eight)
+                .parity(match parity {
+                    Parity::None => tokio_serial::Parity::None,
+                    Parity::Even => tokio_serial::Parity::Even,
+                    Parity::Odd => tokio_serial::Parity::Odd,
+                })
+                .stop_bits(if *stop_bits == 2 { tokio_serial::StopBits::Two } else { tokio_serial::StopBits::One });
+            let port = tokio_serial::SerialStream::open(&builder).map_err(io::Error::from)?;
+            Ok(tokio_modbus::client::rtu::attach_slave(port, tokio_modbus::Slave(*unit)))
+        }
+        Link::Mqtt => Err(io::Error::other("not a Modbus device")),
     }
 }

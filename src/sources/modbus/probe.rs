@@ -6,18 +6,17 @@
 //! It writes nothing. Every request runs under the device's timeout; a transport error
 //! ends the probe of that device (the points not yet read say so).
 
-use std::io;
 use std::time::Duration;
 
 use tokio::time::timeout;
-use tokio_modbus::client::{Context, Reader, rtu, tcp};
-use tokio_modbus::{ExceptionCode, Slave};
+use tokio_modbus::ExceptionCode;
+use tokio_modbus::client::{Context, Reader};
 
 use super::ExceptionName;
 use super::codec::Sentinel;
 use super::plan::{self, Decoded, PointSpec, ScaleSpec, Words};
 use super::sunspec::{self, ModelMap};
-use crate::config::model::{DeviceId, Link, Parity, PointId, PointRead, Scale, Site, Table, WordOrder};
+use crate::config::model::{DeviceId, Link, PointId, PointRead, Scale, Site, Table, WordOrder};
 
 /// One point as read.
 #[derive(Debug, Clone, PartialEq)]
@@ -65,7 +64,7 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
         Link::ModbusRtu { path, unit, .. } => format!("{path} unit {unit}"),
         Link::Mqtt => return Err(ProbeError::NotModbus(device.0)),
     };
-    let mut ctx = match timeout(connect_timeout, connect(&dev.link)).await {
+    let mut ctx = match timeout(connect_timeout, super::connect(&dev.link)).await {
         Ok(Ok(ctx)) => ctx,
         Ok(Err(e)) => return Err(ProbeError::Connect { target, reason: e.to_string() }),
         Err(_) => return Err(ProbeError::Connect { target, reason: "no connection within the timeout".to_owned() }),
@@ -129,33 +128,6 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
     // Best effort; the transport may already be gone.
     let _ = timeout(Duration::from_millis(100), tokio_modbus::client::Client::disconnect(&mut ctx)).await;
     Ok(DeviceProbe { models, points })
-}
-
-async fn connect(link: &Link) -> io::Result<Context> {
-    match link {
-        Link::ModbusTcp { host, port, unit } => {
-            let addr = tokio::net::lookup_host((host.as_str(), *port))
-                .await?
-                .next()
-                .ok_or_else(|| io::Error::other(format!("{host} has no address")))?;
-            let stream = tokio::net::TcpStream::connect(addr).await?;
-            stream.set_nodelay(true)?;
-            Ok(tcp::attach_slave(stream, Slave(*unit)))
-        }
-        Link::ModbusRtu { path, baud, parity, stop_bits, unit } => {
-            let builder = tokio_serial::new(path, *baud)
-                .data_bits(tokio_serial::DataBits::Eight)
-                .parity(match parity {
-                    Parity::None => tokio_serial::Parity::None,
-                    Parity::Even => tokio_serial::Parity::Even,
-                    Parity::Odd => tokio_serial::Parity::Odd,
-                })
-                .stop_bits(if *stop_bits == 2 { tokio_serial::StopBits::Two } else { tokio_serial::StopBits::One });
-            let port = tokio_serial::SerialStream::open(&builder).map_err(io::Error::from)?;
-            Ok(rtu::attach_slave(port, Slave(*unit)))
-        }
-        Link::Mqtt => Err(io::Error::other("not a Modbus device")),
-    }
 }
 
 struct Prober<'a> {
