@@ -95,13 +95,9 @@ fn discover(bus: &Bus, unit: u8) -> Option<ModelMap> {
             .read_registers(unit, BusTable::HoldingRegisters, a, 2)
             .or_else(|_| bus.read_registers(unit, BusTable::HoldingRegisters, a, 1))
             .ok()?;
-        let id = head.first().copied().unwrap_or(sunspec::END_ID);
-        if id == sunspec::END_ID {
-            break;
-        }
-        let len = head.get(1).copied().unwrap_or(0);
-        models.push((id, a, len));
-        addr = a.checked_add(2).and_then(|x| x.checked_add(len));
+        let Some((model, next)) = sunspec::chain_step(a, &head) else { break };
+        models.push(model);
+        addr = next;
     }
     Some(ModelMap { base, models })
 }

@@ -410,13 +410,9 @@ impl ModbusLink {
                     Err(_) => break,
                 },
             };
-            let id = head.first().copied().unwrap_or(sunspec::END_ID);
-            if id == sunspec::END_ID {
-                break;
-            }
-            let len = head.get(1).copied().unwrap_or(0);
-            models.push((id, a, len));
-            addr = a.checked_add(2).and_then(|x| x.checked_add(len));
+            let Some((model, next)) = sunspec::chain_step(a, &head) else { break };
+            models.push(model);
+            addr = next;
         }
         let map = ModelMap { base, models };
         info!(device = %self.dev().name, base, models = ?map.models.iter().map(|m| m.0).collect::<Vec<_>>(), "SunSpec map found");

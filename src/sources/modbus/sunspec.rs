@@ -22,6 +22,18 @@ pub const END_ID: u16 = 0xFFFF;
 /// Most models walked before giving up on a chain that never ends.
 pub const MAX_MODELS: usize = 64;
 
+/// One step along a device's model chain: `head` is what was read at `addr` (the
+/// model's `ID` and `L`). Gives the model as `(id, start, length)` and where the next
+/// header starts (`None` past the address space), or `None` at the end marker.
+pub fn chain_step(addr: u16, head: &[u16]) -> Option<((u16, u16, u16), Option<u16>)> {
+    let id = head.first().copied().unwrap_or(END_ID);
+    if id == END_ID {
+        return None;
+    }
+    let len = head.get(1).copied().unwrap_or(0);
+    Some(((id, addr, len), addr.checked_add(2).and_then(|x| x.checked_add(len))))
+}
+
 /// The device's model chain.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct ModelMap {
@@ -544,3 +556,20 @@ const M704: &[Def] = &[
     ("PFWAbsRvrt.PF", U16, Some("PF_SF")),
     ("PFWAbsRvrt.Ext", Enum16, None),
 ];
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// SunSpec Information Model Specification: each model is `ID`, `L` and `L`
+    /// registers; the chain ends with `ID` 0xFFFF.
+    #[test]
+    fn a_chain_step_reads_one_header_and_finds_the_next() {
+        assert_eq!(chain_step(40002, &[1, 66]), Some(((1, 40002, 66), Some(40070))));
+        assert_eq!(chain_step(40070, &[END_ID, 0]), None);
+        // A device that answers the end marker with its ID alone.
+        assert_eq!(chain_step(40070, &[END_ID]), None);
+        // A length that runs past the address space leaves no next header.
+        assert_eq!(chain_step(65530, &[101, 50]), Some(((101, 65530, 50), None)));
+    }
+}
