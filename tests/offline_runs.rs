@@ -945,3 +945,73 @@ fn loads_divert_what_a_self_limiting_inverter_holds_back() {
     );
     assert!(with.flows.grid_import.wh < without.flows.grid_import.wh - 10_000.0);
 }
+
+/// A car charged only from surplus leaves emptier than the baseline's, which charges it
+/// whenever it is plugged in; the report counts each departure's shortfall in both runs
+/// and says under the cost that the savings leave that energy out. The example's own
+/// overnight top-up closes most of the gap, and `compare` shows the two side by side.
+#[test]
+fn a_car_sent_away_short_is_counted_beside_the_savings() {
+    let example_path = example("battery-ev-limited-export.yaml");
+    let text = std::fs::read_to_string(&example_path).unwrap();
+    // The example without the car's overnight top-up: surplus only.
+    let start = text.find("    obligations:\n      # The commuter's car").expect("the car's obligation");
+    let end = text.find("        grid_window: 00:00..06:00\n").expect("its window")
+        + "        grid_window: 00:00..06:00\n".len();
+    let surplus_only = format!("{}{}", &text[..start], &text[end..]);
+    let dir = std::env::temp_dir().join(format!("spillway-ev-short-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let surplus_only_path = dir.join("surplus-only.yaml");
+    std::fs::write(&surplus_only_path, surplus_only).unwrap();
+
+    // Monday 7 to Thursday 10 December: two weekday cars leave at 07:15 (Tue, Wed).
+    let simulate = |path: &Path, report: &str| {
+        let out = spillway([
+            "simulate",
+            path.to_str().unwrap(),
+            "--days",
+            "3",
+            "--from",
+            "2026-12-07",
+            "--report",
+            report,
+            "--quiet",
+        ]);
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        String::from_utf8(out.stdout).unwrap()
+    };
+    let ev = |path: &Path| -> serde_json::Value {
+        let report: serde_json::Value = serde_json::from_str(&simulate(path, "json")).unwrap();
+        report["ev"].clone()
+    };
+    let short = ev(&surplus_only_path);
+    assert_eq!(short["departures"], 2, "{short}");
+    let (run, base) = (short["short_kwh"].as_f64().unwrap(), short["baseline_short_kwh"].as_f64().unwrap());
+    assert!(run > base + 10.0, "surplus alone leaves the weekday car short: {short}");
+    let text_report = simulate(&surplus_only_path, "text");
+    assert!(text_report.contains("EV: 2 departure(s)"), "{text_report}");
+    assert!(text_report.contains("the savings leave out buying that energy"), "{text_report}");
+
+    let topped_up = ev(&example_path);
+    assert!(topped_up["short_kwh"].as_f64().unwrap() < run / 2.0, "the overnight top-up: {topped_up} against {short}");
+
+    // A site without a simulated car has no `ev` to report.
+    let none: serde_json::Value = serde_json::from_str(&simulate(&example("zero-export-house.yaml"), "json")).unwrap();
+    assert!(none["ev"].is_null(), "{}", none["ev"]);
+
+    let out = spillway([
+        "compare",
+        example_path.to_str().unwrap(),
+        surplus_only_path.to_str().unwrap(),
+        "--days",
+        "3",
+        "--from",
+        "2026-12-07",
+        "--quiet",
+    ]);
+    let table = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let row = table.lines().find(|l| l.contains("EV short of its target")).unwrap_or_else(|| panic!("{table}"));
+    assert!(row.contains('◀'), "the better side is marked: {row}");
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -65,3 +65,32 @@ fn three_phases_triple_the_power() {
     run(&mut p, 10, 1.0);
     assert!((p.readings().ev.unwrap().power_w - 10.0 * 230.0 * 3.0).abs() < 1e-6);
 }
+
+#[test]
+fn a_car_that_leaves_below_its_target_is_counted_short() {
+    // Target 100 % (the default) of 40 kWh, arriving at 50 %: 20 kWh short if never
+    // charged; 6 A at 230 V for 2 h puts 2.76 kW·2 h·0.9 = 2.484 kWh into the car.
+    let mut p = ev_plant("");
+    assert_eq!(p.ev_departures(), Some((0, 0.0)));
+    run(&mut p, 23 * 3600 + 1, 1.0);
+    let (left, short_wh) = p.ev_departures().unwrap();
+    assert_eq!(left, 1);
+    assert!((short_wh - 20_000.0).abs() < 1e-6, "{short_wh}");
+
+    let mut p = ev_plant("");
+    run(&mut p, 20, 1.0);
+    p.controls_mut().ev_current_a = 6.0;
+    run(&mut p, 2 * 3600, 1.0);
+    p.controls_mut().ev_current_a = 0.0;
+    run(&mut p, 21 * 3600, 1.0);
+    let (left, short_wh) = p.ev_departures().unwrap();
+    assert_eq!(left, 1);
+    let expect = 20_000.0 - 6.0 * 230.0 * 2.0 * 0.9;
+    assert!((short_wh - expect).abs() < 1.0, "{short_wh} against {expect}");
+
+    // A car charged to its target leaves nothing short.
+    let mut p = ev_plant("");
+    p.controls_mut().ev_current_a = 16.0;
+    run(&mut p, 23 * 3600 + 1, 1.0);
+    assert_eq!(p.ev_departures(), Some((1, 0.0)));
+}

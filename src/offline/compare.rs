@@ -91,6 +91,10 @@ pub fn compare(a_name: &str, a: &Report, b_name: &str, b: &Report) -> Comparison
     if a.show_unserved || b.show_unserved {
         rows.insert(5, row("unserved demand", "kWh", a.energy.unserved_kwh, b.energy.unserved_kwh, Lower));
     }
+    // Savings bought by sending the car away emptier are no savings.
+    if let (Some(ea), Some(eb)) = (&a.ev, &b.ev) {
+        rows.push(row("EV short of its target when it left", "kWh", ea.short_kwh, eb.short_kwh, Lower));
+    }
     if let (Some(ca), Some(cb)) = (&a.cost, &b.cost) {
         rows.push(row("cost", &ca.currency, ca.total, cb.total, Lower));
         rows.push(row("savings against no diversion", &ca.currency, ca.savings, cb.savings, Higher));

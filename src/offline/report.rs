@@ -177,6 +177,17 @@ pub struct BaselineReport {
     pub unserved_kwh: f64,
 }
 
+/// The simulated EV's sessions: what the car lacked of its target when it left.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct EvReport {
+    /// Cars that left during the run (a car still plugged in at the end is not counted).
+    pub departures: u32,
+    /// What they lacked of their target SoC when they left, kWh (in the car).
+    pub short_kwh: f64,
+    /// The same in the no-diversion baseline, where the car charges whenever plugged in.
+    pub baseline_short_kwh: f64,
+}
+
 /// The whole report.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct Report {
@@ -200,6 +211,8 @@ pub struct Report {
     pub cost: Option<CostReport>,
     /// The baseline.
     pub baseline: BaselineReport,
+    /// The simulated EV's sessions (`null` without one).
+    pub ev: Option<EvReport>,
     /// Writes the plant refused during the run (a restarting device).
     pub refused_writes: u64,
     /// Whether the text report shows unserved demand: on an off-grid or backed-up site
@@ -338,6 +351,11 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
             export_peak_w: r1(baseline.export_peak_w),
             unserved_kwh: kwh(baseline.flows.unserved.wh),
         },
+        ev: run.ev_departures.map(|(departures, short_wh)| EvReport {
+            departures,
+            short_kwh: kwh(short_wh),
+            baseline_short_kwh: kwh(baseline.ev_departures.map_or(0.0, |(_, wh)| wh)),
+        }),
         refused_writes: run.refused_writes,
         off_grid: matches!(site.connection, Connection::OffGrid(_)),
         show_unserved: !matches!(site.connection, Connection::Grid { backup: None, .. })
@@ -427,12 +445,29 @@ impl Report {
                 );
             }
         }
+        if let Some(ev) = &self.ev {
+            let _ = writeln!(
+                o,
+                "\nEV: {} departure(s), {:.1} kWh short of the car's target when it left ({:.1} without diversion)",
+                ev.departures, ev.short_kwh, ev.baseline_short_kwh
+            );
+        }
         if let Some(c) = &self.cost {
             let _ = writeln!(
                 o,
                 "\ncost {}{:.2} against {}{:.2} without diversion: saves {}{:.2}",
                 c.currency, c.total, c.currency, c.baseline, c.currency, c.savings
             );
+            // The baseline charges the car whenever it is plugged in; rules that charge
+            // it only from surplus send it away emptier, and that energy is bought
+            // elsewhere. Say so beside the savings it flatters.
+            if let Some(ev) = self.ev.as_ref().filter(|ev| ev.short_kwh > ev.baseline_short_kwh + 0.05) {
+                let _ = writeln!(
+                    o,
+                    "note: the car left with {:.1} kWh less than without diversion; the savings leave out buying that energy",
+                    ev.short_kwh - ev.baseline_short_kwh
+                );
+            }
         }
         let b = &self.baseline;
         let _ = writeln!(

@@ -142,6 +142,9 @@ pub struct RunOutput {
     pub trace: Option<Trace>,
     /// Energy into managed loads, Wh.
     pub diverted_wh: f64,
+    /// With a simulated EV: cars that left during the run, and what they lacked of their
+    /// target SoC when they left, Wh.
+    pub ev_departures: Option<(u32, f64)>,
 }
 
 /// A time series for charts: one sample per `every`, averaged powers.
@@ -498,6 +501,7 @@ pub fn simulate_once(
     }
     out.diverted_wh = out.loads.iter().map(|l| l.energy_wh).sum();
     out.flows = plant.flows().clone();
+    out.ev_departures = plant.ev_departures();
     out.seconds = (end_ms - start_ms) as f64 / 1000.0;
     out.refused_writes = binding.refused_writes;
     out.trace = trace;

@@ -59,6 +59,11 @@ pub struct Ev {
     pub stored_wh: f64,
     /// Current drawn last step, A.
     pub current_a: f64,
+    /// Cars that have left (or been replaced by the next arrival).
+    pub departures: u32,
+    /// What those cars lacked of their target when they left, Wh (from the car's side
+    /// of the charger: what they would still have had to take in).
+    pub short_wh: f64,
 }
 
 impl Ev {
@@ -104,6 +109,8 @@ impl Ev {
             depart_ms: i64::MIN,
             stored_wh: 0.0,
             current_a: 0.0,
+            departures: 0,
+            short_wh: 0.0,
         })
     }
 
@@ -125,7 +132,7 @@ impl Ev {
     #[inline]
     pub fn update_sessions(&mut self, t_ms: i64) {
         if self.plugged && t_ms >= self.depart_ms {
-            self.plugged = false;
+            self.unplug();
         }
         while let Some(&(arrive, depart, soc)) = self.upcoming.first() {
             if arrive > t_ms {
@@ -134,11 +141,21 @@ impl Ev {
             self.upcoming.remove(0);
             if depart > t_ms {
                 // A car that arrives while another is still plugged replaces it.
+                if self.plugged {
+                    self.unplug();
+                }
                 self.plugged = true;
                 self.depart_ms = depart;
                 self.stored_wh = soc * self.capacity_wh;
             }
         }
+    }
+
+    /// The car leaves: what it lacks of its target is counted against the run.
+    fn unplug(&mut self) {
+        self.plugged = false;
+        self.departures += 1;
+        self.short_wh += (self.target_wh - self.stored_wh).max(0.0);
     }
 
     /// Power drawn at commanded current `cmd_a` for a step of `dt` s.

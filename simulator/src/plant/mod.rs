@@ -1060,6 +1060,12 @@ impl Plant {
         &self.flows
     }
 
+    /// With an EV: the cars that have left so far, and the energy they lacked of their
+    /// target SoC when they left, Wh. A car still plugged in is not counted yet.
+    pub fn ev_departures(&self) -> Option<(u32, f64)> {
+        self.ev.as_ref().map(|e| (e.departures, e.short_wh))
+    }
+
     /// The device bus (Modbus units and MQTT topics).
     pub fn bus(&self) -> &Bus {
         &self.bus
