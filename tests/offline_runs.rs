@@ -946,12 +946,15 @@ fn loads_divert_what_a_self_limiting_inverter_holds_back() {
     assert!(with.flows.grid_import.wh < without.flows.grid_import.wh - 10_000.0);
 }
 
-/// A car charged only from surplus leaves emptier than the baseline's, which charges it
-/// whenever it is plugged in; the report counts each departure's shortfall in both runs
-/// and says under the cost that the savings leave that energy out. The example's own
-/// overnight top-up closes most of the gap, and `compare` shows the two side by side.
+/// What the rules deliver less of than the baseline is counted beside the savings. A car
+/// charged only from surplus leaves emptier than the baseline's, which charges it
+/// whenever it is plugged in: the report counts each departure's shortfall in both runs
+/// and says under the cost that the savings leave that energy out (the example's own
+/// overnight top-up closes most of the gap; `compare` shows the two side by side). A
+/// tank heated from surplus gives colder showers than one on its thermostat: counted
+/// likewise.
 #[test]
-fn a_car_sent_away_short_is_counted_beside_the_savings() {
+fn what_the_rules_deliver_less_of_than_the_baseline_is_counted_beside_the_savings() {
     let example_path = example("battery-ev-limited-export.yaml");
     let text = std::fs::read_to_string(&example_path).unwrap();
     // The example without the car's overnight top-up: surplus only.
@@ -998,6 +1001,16 @@ fn a_car_sent_away_short_is_counted_beside_the_savings() {
     // A site without a simulated car has no `ev` to report.
     let none: serde_json::Value = serde_json::from_str(&simulate(&example("zero-export-house.yaml"), "json")).unwrap();
     assert!(none["ev"].is_null(), "{}", none["ev"]);
+    // Its tank, filled from surplus only to 60–65 °C, runs down under the evening and
+    // morning showers (a single well-mixed node: pessimistic against a stratified
+    // tank); the baseline's, on its own thermostat at 64–68 °C, never does.
+    let hw = &none["hot_water"];
+    assert!(hw["lukewarm_l"].as_f64().unwrap() > 0.0 && hw["short_kwh"].as_f64().unwrap() > 0.0, "{hw}");
+    assert_eq!(hw["baseline_lukewarm_l"], 0.0, "{hw}");
+    let text_report = simulate(&example("zero-export-house.yaml"), "text");
+    assert!(text_report.contains("hot water came out colder than asked for than without diversion"), "{text_report}");
+    let no_tank: serde_json::Value = serde_json::from_str(&simulate(&example("pool-pump-mqtt.yaml"), "json")).unwrap();
+    assert!(no_tank["hot_water"].is_null() && no_tank["ev"].is_null(), "{no_tank}");
 
     let out = spillway([
         "compare",

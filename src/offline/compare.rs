@@ -95,6 +95,9 @@ pub fn compare(a_name: &str, a: &Report, b_name: &str, b: &Report) -> Comparison
     if let (Some(ea), Some(eb)) = (&a.ev, &b.ev) {
         rows.push(row("EV short of its target when it left", "kWh", ea.short_kwh, eb.short_kwh, Lower));
     }
+    if let (Some(ha), Some(hb)) = (&a.hot_water, &b.hot_water) {
+        rows.push(row("hot water colder than asked for", "L", ha.lukewarm_l, hb.lukewarm_l, Lower));
+    }
     if let (Some(ca), Some(cb)) = (&a.cost, &b.cost) {
         rows.push(row("cost", &ca.currency, ca.total, cb.total, Lower));
         rows.push(row("savings against no diversion", &ca.currency, ca.savings, cb.savings, Higher));

@@ -188,6 +188,20 @@ pub struct EvReport {
     pub baseline_short_kwh: f64,
 }
 
+/// The simulated tank's draws: water that came out colder than the tap asked for.
+#[derive(Debug, Clone, Serialize, PartialEq)]
+pub struct HotWaterReport {
+    /// Litres at the tap that came out below their draw's temperature (the tank was
+    /// colder than the tap).
+    pub lukewarm_l: f64,
+    /// The heat those litres lacked, kWh.
+    pub short_kwh: f64,
+    /// The same in the no-diversion baseline (its tank on its own thermostat).
+    pub baseline_lukewarm_l: f64,
+    /// The baseline's heat lacked, kWh.
+    pub baseline_short_kwh: f64,
+}
+
 /// The whole report.
 #[derive(Debug, Clone, Serialize, PartialEq)]
 pub struct Report {
@@ -213,6 +227,8 @@ pub struct Report {
     pub baseline: BaselineReport,
     /// The simulated EV's sessions (`null` without one).
     pub ev: Option<EvReport>,
+    /// The simulated tank's draws (`null` without a tank).
+    pub hot_water: Option<HotWaterReport>,
     /// Writes the plant refused during the run (a restarting device).
     pub refused_writes: u64,
     /// Whether the text report shows unserved demand: on an off-grid or backed-up site
@@ -356,6 +372,15 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
             short_kwh: kwh(short_wh),
             baseline_short_kwh: kwh(baseline.ev_departures.map_or(0.0, |(_, wh)| wh)),
         }),
+        hot_water: run.hot_water_short.map(|(lukewarm_l, short_wh)| {
+            let (base_l, base_wh) = baseline.hot_water_short.unwrap_or_default();
+            HotWaterReport {
+                lukewarm_l: r1(lukewarm_l),
+                short_kwh: kwh(short_wh),
+                baseline_lukewarm_l: r1(base_l),
+                baseline_short_kwh: kwh(base_wh),
+            }
+        }),
         refused_writes: run.refused_writes,
         off_grid: matches!(site.connection, Connection::OffGrid(_)),
         show_unserved: !matches!(site.connection, Connection::Grid { backup: None, .. })
@@ -445,10 +470,20 @@ impl Report {
                 );
             }
         }
+        if self.ev.is_some() || self.hot_water.is_some() {
+            let _ = writeln!(o);
+        }
+        if let Some(hw) = &self.hot_water {
+            let _ = writeln!(
+                o,
+                "hot water: {:.0} L came out colder than asked for, {:.1} kWh short ({:.0} L, {:.1} kWh without diversion)",
+                hw.lukewarm_l, hw.short_kwh, hw.baseline_lukewarm_l, hw.baseline_short_kwh
+            );
+        }
         if let Some(ev) = &self.ev {
             let _ = writeln!(
                 o,
-                "\nEV: {} departure(s), {:.1} kWh short of the car's target when it left ({:.1} without diversion)",
+                "EV: {} departure(s), {:.1} kWh short of the car's target when it left ({:.1} without diversion)",
                 ev.departures, ev.short_kwh, ev.baseline_short_kwh
             );
         }
@@ -466,6 +501,15 @@ impl Report {
                     o,
                     "note: the car left with {:.1} kWh less than without diversion; the savings leave out buying that energy",
                     ev.short_kwh - ev.baseline_short_kwh
+                );
+            }
+            // Likewise a tank the rules let go cold: cheaper, and colder showers.
+            if let Some(hw) = self.hot_water.as_ref().filter(|hw| hw.short_kwh > hw.baseline_short_kwh + 0.05) {
+                let _ = writeln!(
+                    o,
+                    "note: {:.0} L more hot water came out colder than asked for than without diversion ({:.1} kWh of heat); the savings include it",
+                    hw.lukewarm_l - hw.baseline_lukewarm_l,
+                    hw.short_kwh - hw.baseline_short_kwh
                 );
             }
         }

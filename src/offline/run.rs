@@ -145,6 +145,9 @@ pub struct RunOutput {
     /// With a simulated EV: cars that left during the run, and what they lacked of their
     /// target SoC when they left, Wh.
     pub ev_departures: Option<(u32, f64)>,
+    /// With a simulated tank: litres that came out of the tap colder than asked for, and
+    /// the heat they lacked, Wh.
+    pub hot_water_short: Option<(f64, f64)>,
 }
 
 /// A time series for charts: one sample per `every`, averaged powers.
@@ -502,6 +505,7 @@ pub fn simulate_once(
     out.diverted_wh = out.loads.iter().map(|l| l.energy_wh).sum();
     out.flows = plant.flows().clone();
     out.ev_departures = plant.ev_departures();
+    out.hot_water_short = plant.hot_water_short();
     out.seconds = (end_ms - start_ms) as f64 / 1000.0;
     out.refused_writes = binding.refused_writes;
     out.trace = trace;

@@ -1116,6 +1116,12 @@ impl Plant {
         self.tank.as_ref().map(|t| t.drawn_l)
     }
 
+    /// With a tank: the litres that came out of the tap colder than their draw asked
+    /// for (the tank below the tap temperature), and the heat they lacked, Wh.
+    pub fn hot_water_short(&self) -> Option<(f64, f64)> {
+        self.tank.as_ref().map(|t| (t.lukewarm_l, t.short_wh))
+    }
+
     /// Switches the PV inverter's own export limitation on (`Some(W of export allowed)`)
     /// or off: an inverter with its own current transformer at the grid connection,
     /// holding export at the limit with no controller at all (a site without Spillway;

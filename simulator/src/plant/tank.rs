@@ -56,6 +56,11 @@ pub struct Tank {
     inv_ua: f64,
     /// Hot water drawn so far, litres at tank temperature.
     pub drawn_l: f64,
+    /// Water that came out of the tap colder than the draw asked for (the whole tank
+    /// below the tap temperature), litres at the tap.
+    pub lukewarm_l: f64,
+    /// The heat those litres lacked to reach their tap temperature, Wh.
+    pub short_wh: f64,
 }
 
 fn default_draws() -> Vec<DrawConfig> {
@@ -132,6 +137,8 @@ impl Tank {
             cached_k: 1.0,
             inv_ua: if cfg.ua > 0.0 { 1.0 / cfg.ua } else { 0.0 },
             drawn_l: 0.0,
+            lukewarm_l: 0.0,
+            short_wh: 0.0,
         })
     }
 
@@ -205,6 +212,12 @@ impl Tank {
                     1.0
                 };
                 let hot_l = (self.flow_lps * dt * hot_share).min(self.volume_l);
+                if self.temp_c < tap {
+                    // No mixing left to do: the tap gets the tank as it is, and the
+                    // person at it gets water short of what they asked for.
+                    self.lukewarm_l += hot_l;
+                    self.short_wh += hot_l * self.heat_capacity / self.volume_l * (tap - self.temp_c) / 3600.0;
+                }
                 self.temp_c -= hot_l / self.volume_l * (self.temp_c - self.cold);
                 self.drawn_l += hot_l;
             }
