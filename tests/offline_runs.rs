@@ -1026,5 +1026,6 @@ fn what_the_rules_deliver_less_of_than_the_baseline_is_counted_beside_the_saving
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
     let row = table.lines().find(|l| l.contains("EV short of its target")).unwrap_or_else(|| panic!("{table}"));
     assert!(row.contains('◀'), "the better side is marked: {row}");
+    assert!(table.contains("hot water colder than asked for"), "both have a tank: {table}");
     let _ = std::fs::remove_dir_all(&dir);
 }
