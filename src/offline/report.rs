@@ -507,7 +507,7 @@ impl Report {
             if let Some(hw) = self.hot_water.as_ref().filter(|hw| hw.short_kwh > hw.baseline_short_kwh + 0.05) {
                 let _ = writeln!(
                     o,
-                    "note: {:.0} L more hot water came out colder than asked for than without diversion ({:.1} kWh of heat); the savings include it",
+                    "note: hot water came out colder than asked for, {:.0} L more than without diversion and {:.1} kWh of heat short; the savings include that heat not bought",
                     hw.lukewarm_l - hw.baseline_lukewarm_l,
                     hw.short_kwh - hw.baseline_short_kwh
                 );
