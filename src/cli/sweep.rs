@@ -28,6 +28,11 @@ struct Point {
     savings_vs_no_diversion: Option<f64>,
     savings_vs_no_pv: Option<f64>,
     payback_years: Option<f64>,
+    /// With a simulated tank: litres that came out colder than asked for (the no-PV
+    /// reference's tank sits on its thermostat, so its savings include this shortfall).
+    hot_water_lukewarm_l: Option<f64>,
+    /// With a simulated EV: what the cars lacked of their target when they left, kWh.
+    ev_short_kwh: Option<f64>,
 }
 
 #[derive(Debug, Serialize)]
@@ -165,6 +170,8 @@ pub fn run(
                                 savings_vs_no_diversion: loaded.tariff.as_ref().map(|_| r(baseline.cost - run.cost, 2)),
                                 savings_vs_no_pv: None,
                                 payback_years: None,
+                                hot_water_lukewarm_l: run.hot_water_short.map(|(l, _)| r(l, 0)),
+                                ev_short_kwh: run.ev_departures.map(|(_, wh)| r(wh / 1000.0, 1)),
                             })
                         })();
                         if let Ok(mut g) = results.lock() {
@@ -229,9 +236,12 @@ fn to_text(rep: &SweepReport) -> String {
     if let Some(c) = rep.no_pv_cost {
         let _ = writeln!(o, "cost of the same house without PV or diversion: {cur}{c:.2}");
     }
+    // Padded to the width of their columns, or nothing where the site has no tank or car.
+    let lukewarm_head = if rep.points.iter().any(|p| p.hot_water_lukewarm_l.is_some()) { "  lukewarm L" } else { "" };
+    let ev_head = if rep.points.iter().any(|p| p.ev_short_kwh.is_some()) { "    EV short" } else { "" };
     let _ = writeln!(
         o,
-        "\n{:>10} {:>7} {:>9} {:>9} {:>8} {:>9} {:>7} {:>10} {:>11} {:>11} {:>8}",
+        "\n{:>10} {:>7} {:>9} {:>9} {:>8} {:>9} {:>7} {:>10} {:>11} {:>11} {:>8}{lukewarm_head}{ev_head}",
         "value",
         "kWp",
         "PV kWh",
@@ -245,8 +255,11 @@ fn to_text(rep: &SweepReport) -> String {
         "payback"
     );
     let money = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{cur}{v:.0}"));
+    // The service the runs fell short of, where the site has a tank or a car.
+    let lukewarm = rep.points.iter().any(|p| p.hot_water_lukewarm_l.is_some());
+    let ev = rep.points.iter().any(|p| p.ev_short_kwh.is_some());
     for p in &rep.points {
-        let _ = writeln!(
+        let _ = write!(
             o,
             "{:>10} {:>7.2} {:>9.0} {:>9.0} {:>8.0} {:>9.0} {:>7.1} {:>10} {:>11} {:>11} {:>8}",
             p.value,
@@ -260,6 +273,27 @@ fn to_text(rep: &SweepReport) -> String {
             money(p.savings_vs_no_diversion),
             money(p.savings_vs_no_pv),
             p.payback_years.map_or("-".to_owned(), |y| format!("{y:.1} y"))
+        );
+        if lukewarm {
+            let _ = write!(o, " {:>11}", p.hot_water_lukewarm_l.map_or("-".to_owned(), |l| format!("{l:.0}")));
+        }
+        if ev {
+            let _ = write!(o, " {:>11}", p.ev_short_kwh.map_or("-".to_owned(), |k| format!("{k:.0}")));
+        }
+        let _ = writeln!(o);
+    }
+    if lukewarm || ev {
+        let mut what = Vec::new();
+        if lukewarm {
+            what.push("lukewarm L: hot water that came out colder than asked for");
+        }
+        if ev {
+            what.push("EV short: what the car lacked of its target when it left, kWh");
+        }
+        let _ = writeln!(
+            o,
+            "\n({}. The no-PV reference heats on its thermostat and charges any car whenever it is plugged in: savings against it include these shortfalls)",
+            what.join("; ")
         );
     }
     if rep.array_cost_per_kwp.is_none() {
@@ -413,6 +447,8 @@ mod tests {
             savings_vs_no_diversion: Some(80.0),
             savings_vs_no_pv: Some(300.0),
             payback_years: Some(5.5),
+            hot_water_lukewarm_l: None,
+            ev_short_kwh: None,
         }
     }
 
@@ -427,6 +463,20 @@ mod tests {
             no_pv_cost: Some(900.0),
             points: vec![point("4", 3000.0), point("6", 2600.0), point("8", 2300.0)],
         }
+    }
+
+    #[test]
+    fn shortfalls_get_their_columns_only_where_the_site_has_a_tank_or_a_car() {
+        let plain = to_text(&report(365));
+        assert!(!plain.contains("lukewarm L") && !plain.contains("EV short"), "{plain}");
+        let mut rep = report(365);
+        for p in &mut rep.points {
+            p.hot_water_lukewarm_l = Some(120.0);
+        }
+        let text = to_text(&rep);
+        assert!(text.contains("lukewarm L") && !text.contains("EV short"), "{text}");
+        let row = text.lines().find(|l| l.trim_start().starts_with("4 ")).unwrap();
+        assert!(row.trim_end().ends_with("120"), "{row}");
     }
 
     #[test]
