@@ -83,30 +83,22 @@ fn a_tank_below_the_tap_temperature_delivers_lukewarm_water_and_counts_the_heat_
     // T(v) = 15 + 15·exp(−v/150)). The heat lacked is c·∫(40 − T(v))dv over 40 L
     // = c·(25·40 − 15·150·(1 − exp(−40/150))) = c·473.3 L·K (first-law balance of a
     // mixed tank; c as above).
-    let mut p = tank_plant(
-        "  volume: 150L
-  element: 3kW
-  ua: 0W/K
-  cold: 15°C
-  initial: 30°C
-  draws: [{ at: \"00:10\", volume: 40L, temperature: 40°C }]",
-    );
-    run(&mut p, 3600, 1.0);
+    // One 40 L draw at 40 °C from a 150 L tank starting at `initial` °C.
+    let drawn_from = |initial: f64| {
+        let mut p = tank_plant(&format!(
+            "  volume: 150L\n  element: 3kW\n  ua: 0W/K\n  cold: 15°C\n  initial: {initial}°C\n  draws: [{{ at: \"00:10\", volume: 40L, temperature: 40°C }}]"
+        ));
+        run(&mut p, 3600, 1.0);
+        p
+    };
+    let p = drawn_from(30.0);
     let (lukewarm_l, short_wh) = p.hot_water_short().unwrap();
     assert!((lukewarm_l - 40.0).abs() < 0.2, "{lukewarm_l}");
     let expected_wh = C_WATER * (25.0 * 40.0 - 15.0 * 150.0 * (1.0 - (-40.0f64 / 150.0).exp())) / 3600.0;
     assert!((short_wh - expected_wh).abs() / expected_wh < 0.005, "{short_wh} vs {expected_wh}");
 
     // The same draw from a tank hot enough to mix down to 40 °C lacks nothing.
-    let mut hot = tank_plant(
-        "  volume: 150L
-  element: 3kW
-  ua: 0W/K
-  cold: 15°C
-  initial: 60°C
-  draws: [{ at: \"00:10\", volume: 40L, temperature: 40°C }]",
-    );
-    run(&mut hot, 3600, 1.0);
+    let hot = drawn_from(60.0);
     assert_eq!(hot.hot_water_short(), Some((0.0, 0.0)));
 }
 
