@@ -811,8 +811,47 @@ fn expectations_that_would_be_ignored_in_part_are_refused() {
         )),
         ["C0609", "C0609"]
     );
+    assert_eq!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: warm }}\n")), ["C0610"]);
+    assert_eq!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: -5L }}\n")), ["C0610"]);
+    assert!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: 20 L }}\n")).is_empty());
     // The example's own expectations are fine.
     assert!(codes(&text[cut..]).is_empty());
+}
+
+/// `lukewarm_at_most` counts the day's hot water that came out colder than its draw
+/// asked for. The zero-export example's test days start with its tank at 48 °C, which
+/// the morning showers run below their 40 °C (a well-mixed tank: 150 L at 48 °C mixes
+/// down to 40 °C only for the first litres); a site without a tank fails the check with
+/// the remedy.
+#[test]
+fn a_lukewarm_check_counts_the_days_cold_showers() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let with = |limit: &str| {
+        text.replace(
+            "    - name: duties done\n      obligations_met: true",
+            &format!("    - name: duties done\n      obligations_met: true\n    - name: showers\n      lukewarm_at_most: {limit}"),
+        )
+    };
+    let verdicts = |yaml: &str| {
+        let loaded = config::load_str("site.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        let exp = expect::read(&loaded).unwrap_or_else(|_| panic!("expectations read"));
+        let plant = offline::checked_plant(&loaded).unwrap();
+        let site = Arc::new(loaded.site.clone());
+        let v = expect::run(&site, &loaded, &plant, &exp, std::time::Duration::from_secs(1)).unwrap();
+        v.into_iter().filter(|v| v.check == "showers").collect::<Vec<_>>()
+    };
+    let strict = verdicts(&with("0L"));
+    assert_eq!(strict.len(), 3);
+    for v in &strict {
+        assert!(!v.passed && v.detail.contains("came out colder than asked for"), "{v:?}");
+    }
+    assert!(verdicts(&with("200L")).iter().all(|v| v.passed));
+
+    let pool = std::fs::read_to_string(example("pool-pump-mqtt.yaml")).unwrap();
+    let cut = pool.find("  checks:\n").expect("the pool example has checks") + "  checks:\n".len();
+    let no_tank = format!("{}    - {{ name: showers, lukewarm_at_most: 20L }}\n{}", &pool[..cut], &pool[cut..]);
+    let v = verdicts(&no_tank);
+    assert!(v.iter().all(|v| !v.passed && v.detail.contains("add `plant.tank`")), "{v:?}");
 }
 
 /// A failing expectation makes `spillway test` exit 1 and name the failing moment.

@@ -23,6 +23,8 @@
 //!       obligations_met: true         # every obligation of every load met that day
 //!     - name: little export
 //!       export_over_limit: 2min       # at most this long above the export limit
+//!     - name: hot showers
+//!       lukewarm_at_most: 20L         # at most this much hot water colder than asked for
 //! ```
 
 use std::collections::VecDeque;
@@ -88,6 +90,8 @@ pub enum CheckKind {
     ObligationsMet,
     /// At most this long with export above the limit plus tolerance.
     ExportOverLimit(Duration),
+    /// At most this many litres of hot water colder than their draw asked for.
+    LukewarmAtMost(f64),
 }
 
 /// One check.
@@ -211,6 +215,24 @@ fn rule(node: &Node, site: &Site, text: &str, d: &mut Diagnostics) -> Option<Rul
     }
 }
 
+/// A volume of water in litres: `20L`, `20 L` or a bare number of litres.
+fn litres(node: &Node, d: &mut Diagnostics) -> Option<f64> {
+    let text = values::word(node, "`lukewarm_at_most`", d)?;
+    let number = text.trim().trim_end_matches(['L', 'l']).trim();
+    match number.parse::<f64>() {
+        Ok(v) if v.is_finite() && v >= 0.0 => Some(v),
+        _ => {
+            d.error(
+                "C0610",
+                format!("`lukewarm_at_most` takes a volume in litres, not `{text}`"),
+                node.span.clone(),
+                "e.g. `lukewarm_at_most: 20L` (0L: not a drop colder than asked for)",
+            );
+            None
+        }
+    }
+}
+
 fn read_check(node: &Node, site: &Site, text: &str, days: &[TestDay], d: &mut Diagnostics) -> Option<Check> {
     let mut m = MapReader::new(node, "a check", d)?;
     let name = m.require("name", d).and_then(|n| values::text(n, "the check's name", d)).map(str::to_owned);
@@ -223,14 +245,22 @@ fn read_check(node: &Node, site: &Site, text: &str, days: &[TestDay], d: &mut Di
     let per = m.get("per");
     let obligations = m.get("obligations_met");
     let export = m.get("export_over_limit");
+    let lukewarm = m.get("lukewarm_at_most");
     let days_node = m.get("days");
     let span = m.span();
     m.finish(d);
-    let kinds = [always.is_some(), at.is_some(), switchings.is_some(), obligations.is_some(), export.is_some()];
+    let kinds = [
+        always.is_some(),
+        at.is_some(),
+        switchings.is_some(),
+        obligations.is_some(),
+        export.is_some(),
+        lukewarm.is_some(),
+    ];
     if kinds.iter().filter(|k| **k).count() != 1 {
         d.error(
             "C0602",
-            "a check is exactly one of `always`, `at`, `switchings`, `obligations_met` or `export_over_limit`",
+            "a check is exactly one of `always`, `at`, `switchings`, `obligations_met`, `export_over_limit` or `lukewarm_at_most`",
             span,
             "what does this check ask?",
         );
@@ -302,6 +332,8 @@ fn read_check(node: &Node, site: &Site, text: &str, days: &[TestDay], d: &mut Di
             return None;
         }
         CheckKind::ObligationsMet
+    } else if let Some(n) = lukewarm {
+        CheckKind::LukewarmAtMost(litres(n, d)?)
     } else {
         CheckKind::ExportOverLimit(values::duration(export?, "`export_over_limit`", d)?)
     };
@@ -458,7 +490,7 @@ pub fn run(
                             }
                         }
                     }
-                    CheckKind::ObligationsMet | CheckKind::ExportOverLimit(_) => {}
+                    CheckKind::ObligationsMet | CheckKind::ExportOverLimit(_) | CheckKind::LukewarmAtMost(_) => {}
                 }
             }
         };
@@ -502,6 +534,17 @@ pub fn run(
                         ),
                     )
                 }
+                CheckKind::LukewarmAtMost(max) => match out.hot_water_short {
+                    Some((litres, short_wh)) => (
+                        litres <= *max,
+                        None,
+                        format!(
+                            "{litres:.0} L came out colder than asked for, {:.2} kWh short (allowed {max} L)",
+                            short_wh / 1000.0
+                        ),
+                    ),
+                    None => (false, None, "the plant has no tank: add `plant.tank`, or remove the check".to_owned()),
+                },
                 // A check time after the day's last tick (a long `--step`) is never
                 // reached: that is no pass.
                 CheckKind::At { seconds_of_day, .. } if w.failed.is_none() && !w.done_today => (
