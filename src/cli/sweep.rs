@@ -236,9 +236,12 @@ fn to_text(rep: &SweepReport) -> String {
     if let Some(c) = rep.no_pv_cost {
         let _ = writeln!(o, "cost of the same house without PV or diversion: {cur}{c:.2}");
     }
-    // Padded to the width of their columns, or nothing where the site has no tank or car.
-    let lukewarm_head = if rep.points.iter().any(|p| p.hot_water_lukewarm_l.is_some()) { "  lukewarm L" } else { "" };
-    let ev_head = if rep.points.iter().any(|p| p.ev_short_kwh.is_some()) { "    EV short" } else { "" };
+    // The service the runs fell short of, where the site has a tank or a car: headings
+    // padded to the width of their columns, or nothing.
+    let lukewarm = rep.points.iter().any(|p| p.hot_water_lukewarm_l.is_some());
+    let ev = rep.points.iter().any(|p| p.ev_short_kwh.is_some());
+    let lukewarm_head = if lukewarm { "  lukewarm L" } else { "" };
+    let ev_head = if ev { "    EV short" } else { "" };
     let _ = writeln!(
         o,
         "\n{:>10} {:>7} {:>9} {:>9} {:>8} {:>9} {:>7} {:>10} {:>11} {:>11} {:>8}{lukewarm_head}{ev_head}",
@@ -255,9 +258,6 @@ fn to_text(rep: &SweepReport) -> String {
         "payback"
     );
     let money = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{cur}{v:.0}"));
-    // The service the runs fell short of, where the site has a tank or a car.
-    let lukewarm = rep.points.iter().any(|p| p.hot_water_lukewarm_l.is_some());
-    let ev = rep.points.iter().any(|p| p.ev_short_kwh.is_some());
     for p in &rep.points {
         let _ = write!(
             o,
