@@ -25,6 +25,8 @@ const EXPORT: RGBColor = RGBColor(40, 150, 70);
 const BATTERY: RGBColor = RGBColor(110, 70, 170);
 const LIMIT: RGBColor = RGBColor(90, 90, 90);
 const TANK: RGBColor = RGBColor(220, 90, 40);
+/// Hot water that came out colder than asked for: a cold blue against the tank's orange.
+const LUKEWARM: RGBColor = RGBColor(30, 110, 200);
 const LOADS: [RGBColor; 6] = [
     RGBColor(60, 120, 200),
     RGBColor(80, 180, 200),
@@ -301,6 +303,22 @@ fn draw_flows(
             .map_err(err)?
             .label("tank °C")
             .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], TANK.stroke_width(2)));
+        // Where a draw got the tank colder than it asked for, a mark on the tank's line
+        // (a sample with less than half a litre of it is left unmarked).
+        let cold: Vec<(f64, f64)> = hours
+            .iter()
+            .zip(&trace.tank_c)
+            .zip(&trace.lukewarm_l)
+            .filter(|((_, t), l)| t.is_finite() && **l >= 0.5)
+            .map(|((h, t), _)| (*h, *t))
+            .collect();
+        if !cold.is_empty() {
+            chart
+                .draw_secondary_series(cold.iter().map(|&(h, t)| TriangleMarker::new((h, t), 4, LUKEWARM.filled())))
+                .map_err(err)?
+                .label("hot water colder than asked for")
+                .legend(|(x, y)| TriangleMarker::new((x + 7, y), 4, LUKEWARM.filled()));
+        }
     }
     chart
         .configure_series_labels()
@@ -526,11 +544,36 @@ mod tests {
             grid_w: vec![300.0, 300.0, -100.0, 0.0],
             battery_w: vec![0.0; 4],
             tank_c: vec![f64::NAN; 4],
+            lukewarm_l: vec![0.0; 4],
             loads: Vec::new(),
             limit_w: vec![2000.0; 4],
         };
         let svg = flows(site, &r, &trace).unwrap();
         // Two limit dots plus the legend's.
         assert_eq!(svg.matches("<circle").count(), 3, "{svg}");
+    }
+
+    #[test]
+    fn draws_colder_than_asked_for_are_marked_on_the_tank_line() {
+        let loaded = example();
+        let site = &loaded.site;
+        let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
+        let trace = |lukewarm_l: Vec<f64>| Trace {
+            t_ms: (0..4).map(|h| 1_781_481_600_000 + h * 3_600_000).collect(),
+            pv_w: vec![0.0; 4],
+            house_w: vec![300.0; 4],
+            grid_w: vec![300.0; 4],
+            battery_w: vec![0.0; 4],
+            tank_c: vec![45.0, 41.0, 38.0, 37.0],
+            lukewarm_l,
+            loads: Vec::new(),
+            limit_w: vec![f64::NAN; 4],
+        };
+        let label = "hot water colder than asked for";
+        assert!(!flows(site, &r, &trace(vec![0.0, 0.0, 0.2, 0.0])).unwrap().contains(label), "under half a litre");
+        let svg = flows(site, &r, &trace(vec![0.0, 0.0, 12.0, 6.0])).unwrap();
+        assert!(svg.contains(label), "{svg}");
+        // Two marks plus the legend's, in the marks' own colour (LUKEWARM).
+        assert_eq!(svg.matches("fill=\"#1E6EC8\"").count(), 3, "{svg}");
     }
 }

@@ -165,6 +165,9 @@ pub struct Trace {
     pub battery_w: Vec<f64>,
     /// Tank temperature, °C (NaN without a tank).
     pub tank_c: Vec<f64>,
+    /// Hot water that came out of the tap colder than its draw asked for during the
+    /// sample, litres (0 without a tank).
+    pub lukewarm_l: Vec<f64>,
     /// Per site load: its name and power, W.
     pub loads: Vec<(String, Vec<f64>)>,
     /// Inverter limit, W (NaN when none).
@@ -558,6 +561,10 @@ struct TraceAcc {
     tank: f64,
     loads: Vec<f64>,
     limit: f64,
+    /// The plant's lukewarm litres so far at the last step, and at the last sample
+    /// (`None` before the trace's first step).
+    lukewarm_now: f64,
+    lukewarm_before: Option<f64>,
 }
 
 impl TraceAcc {
@@ -571,6 +578,8 @@ impl TraceAcc {
             tank: 0.0,
             loads: vec![0.0; loads],
             limit: f64::NAN,
+            lukewarm_now: 0.0,
+            lukewarm_before: None,
         }
     }
 
@@ -581,6 +590,9 @@ impl TraceAcc {
         self.grid += f.grid_import.w - f.grid_export.w;
         self.battery += f.battery_charge.w - f.battery_discharge.w;
         self.tank += plant.tank_temp_c().unwrap_or(f64::NAN);
+        self.lukewarm_now = plant.hot_water_short().map_or(0.0, |(litres, _)| litres);
+        // The trace may start days into the run: count from its first step.
+        self.lukewarm_before.get_or_insert(self.lukewarm_now);
         for (acc, side) in self.loads.iter_mut().zip(sides) {
             *acc += match side {
                 PlantSide::Load(k) => f.loads.get(*k).map_or(0.0, |x| x.w),
@@ -602,11 +614,14 @@ impl TraceAcc {
         t.grid_w.push(self.grid / n);
         t.battery_w.push(self.battery / n);
         t.tank_c.push(self.tank / n);
+        t.lukewarm_l.push(self.lukewarm_now - self.lukewarm_before.unwrap_or(self.lukewarm_now));
         t.limit_w.push(self.limit);
         for ((_, series), acc) in t.loads.iter_mut().zip(&self.loads) {
             series.push(acc / n);
         }
         let loads = self.loads.len();
+        let lukewarm = self.lukewarm_now;
         *self = TraceAcc::new(loads);
+        (self.lukewarm_now, self.lukewarm_before) = (lukewarm, Some(lukewarm));
     }
 }
