@@ -234,7 +234,7 @@ pub struct PhaseConfig {
     pub cycle: f64,
 }
 
-/// Single-node water-heater tank.
+/// Water-heater tank: one well-mixed node, or `layers` stacked ones (stratified).
 #[derive(Debug, Clone, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct TankConfig {
@@ -274,8 +274,26 @@ pub struct TankConfig {
     /// Each draw starts up to this much earlier or later than scheduled (seeded).
     #[serde(default, deserialize_with = "quantity::duration")]
     pub jitter: f64,
+    /// Horizontal layers of equal volume: 1 is one well-mixed node; more keep hot water
+    /// at the top while cold inflow fills from the bottom (a stratified tank).
+    #[serde(default = "d_layers")]
+    pub layers: u32,
+    /// Height of the element (and the thermostat and cut-out beside it) above the
+    /// tank's bottom, as a share of its height (layered tanks only).
+    #[serde(default = "d_element_at", deserialize_with = "quantity::percent")]
+    pub element_at: f64,
+    /// Height of the temperature the plant reports (its sensor), as a share of the
+    /// tank's height; absent = beside the thermostat (layered tanks only).
+    #[serde(default, deserialize_with = "quantity::opt_percent")]
+    pub sensor_at: Option<f64>,
 }
 
+fn d_layers() -> u32 {
+    1
+}
+fn d_element_at() -> f64 {
+    10.0
+}
 fn d_tank_name() -> String {
     "tank".to_owned()
 }

@@ -1106,9 +1106,15 @@ impl Plant {
         self.load_names.iter().position(|c| c == name)
     }
 
-    /// The tank's true water temperature (physics, not the sensor), °C.
+    /// The tank's true water temperature (physics, not the sensor's reading, which a
+    /// fault may garble), °C: the whole tank's, or a layered tank's at its sensor.
     pub fn tank_temp_c(&self) -> Option<f64> {
         self.tank.as_ref().map(|t| t.temp_c)
+    }
+
+    /// The water-heater tank, for its layers' temperatures and mean.
+    pub fn tank(&self) -> Option<&Tank> {
+        self.tank.as_ref()
     }
 
     /// Hot water drawn from the tank so far, litres at tank temperature.

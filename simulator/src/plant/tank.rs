@@ -1,6 +1,13 @@
-//! Water-heater tank as a single well-mixed node (no stratification): element power in,
-//! standing loss UA·(T − T_ambient) out, hot-water draws replaced by cold inflow, a
-//! mechanical thermostat and a latching thermal cut-out.
+//! Water-heater tank: element power in, standing loss UA·(T − T_ambient) out, hot-water
+//! draws replaced by cold inflow, a mechanical thermostat and a latching thermal cut-out.
+//!
+//! By default the tank is one well-mixed node. With `layers` > 1 it is the multi-node
+//! (one-dimensional, fixed-inlet) model of a stratified tank (Duffie & Beckman, *Solar
+//! Engineering of Thermal Processes*, § 8.4): equal horizontal layers, hot water drawn
+//! from the top while cold water enters at the bottom and every layer takes the water of
+//! the one below (plug flow, which on a grid of N layers is the tanks-in-series model),
+//! the element heating its own layer, and any layer warmer than the one above it mixed
+//! with it at once (buoyancy), which keeps the profile stable and conserves energy.
 
 use super::PlantError;
 use super::calendar::{Day, parse_clock};
@@ -13,6 +20,8 @@ use super::noise::Stream;
 pub const WATER_C: f64 = 4186.0;
 /// Density of water taken as 1 kg per litre (`common practice`; 0.983 kg/L at 60 °C).
 pub const WATER_KG_PER_L: f64 = 1.0;
+/// The most layers a stratified tank may have.
+pub const MAX_LAYERS: u32 = 50;
 
 #[derive(Debug, Clone)]
 struct Draw {
@@ -38,8 +47,16 @@ pub struct Tank {
     jitter_s: f64,
     draws: Vec<Draw>,
     rng: Stream,
-    /// Water temperature, °C.
+    /// Water temperature the plant reports, °C: the whole node's, or with layers the
+    /// sensor's layer.
     pub temp_c: f64,
+    /// With layers: the layers' temperatures, top first, °C (empty: one node).
+    layers: Vec<f64>,
+    /// With layers: the element's (and thermostat's) layer, and the sensor's.
+    element_layer: usize,
+    sensor_layer: usize,
+    /// Scratch space of [`mix_inversions`].
+    blocks: Vec<(f64, usize)>,
     /// Thermostat contact closed (calls for heat).
     thermostat_closed: bool,
     /// Cut-out has tripped (stays open for the rest of the run).
@@ -96,6 +113,16 @@ impl Tank {
         if let Some((key, v, _, rule)) = checks.iter().find(|c| !c.2) {
             return Err(bad(format!("`{key}` must be {rule} (it is {v})")));
         }
+        if !(1..=MAX_LAYERS).contains(&cfg.layers) {
+            return Err(bad(format!("`layers` must be 1 to {MAX_LAYERS} (it is {})", cfg.layers)));
+        }
+        let heights = [("element_at", cfg.element_at), ("sensor_at", cfg.sensor_at.unwrap_or(cfg.element_at))];
+        if let Some((key, v)) = heights.iter().find(|(_, v)| !(0.0..=100.0).contains(v)) {
+            return Err(bad(format!("`{key}` must be 0 to 100 % of the tank's height (it is {v} %)")));
+        }
+        let n = cfg.layers as usize;
+        // Layers are counted from the top; a height is counted from the bottom.
+        let layer_at = |height_pct: f64| n - 1 - ((height_pct / 100.0 * n as f64) as usize).min(n - 1);
         let defaults;
         let list = match &cfg.draws {
             Some(l) => l,
@@ -128,6 +155,10 @@ impl Tank {
             draws,
             rng,
             temp_c: cfg.initial,
+            layers: if n > 1 { vec![cfg.initial; n] } else { Vec::new() },
+            element_layer: layer_at(cfg.element_at),
+            sensor_layer: layer_at(cfg.sensor_at.unwrap_or(cfg.element_at)),
+            blocks: Vec::with_capacity(n),
             thermostat_closed: cfg.initial < cfg.thermostat.setpoint,
             tripped: cfg.initial >= cfg.cutout,
             today: Vec::with_capacity(16),
@@ -171,6 +202,10 @@ impl Tank {
     /// Advances by `dt` seconds with `element_w` of heating at local second `sec`.
     #[inline]
     pub fn step(&mut self, element_w: f64, dt: f64, sec: u32) {
+        if !self.layers.is_empty() {
+            self.step_layers(element_w, dt, sec);
+            return;
+        }
         if sec >= self.draw_from {
             self.draw(dt, sec);
         }
@@ -224,5 +259,142 @@ impl Tank {
             break;
         }
         self.draw_from = self.today.get(self.next_draw).map_or(u32::MAX, |d| d.0);
+    }
+
+    /// [`Tank::step`] for a layered tank.
+    fn step_layers(&mut self, element_w: f64, dt: f64, sec: u32) {
+        let drew = sec >= self.draw_from;
+        if drew {
+            self.draw_layers(dt, sec);
+        }
+        // Each layer holds 1/N of the water and of the loss area, so each cools with the
+        // same time constant as the whole tank; the element's layer heats against it.
+        let n = self.layers.len() as f64;
+        if self.ua > 0.0 {
+            if dt != self.cached_dt {
+                self.cached_dt = dt;
+                self.cached_k = (-self.ua * dt / self.heat_capacity).exp();
+            }
+            let k = self.cached_k;
+            for t in &mut self.layers {
+                *t = self.ambient + (*t - self.ambient) * k;
+            }
+            let heated = &mut self.layers[self.element_layer];
+            // The element's share on top of the layer's own cooling (the update is linear).
+            *heated += element_w * n * self.inv_ua * (1.0 - k);
+        } else {
+            self.layers[self.element_layer] += element_w * dt * n / self.heat_capacity;
+        }
+        // Heating makes the element's layer warmer than the one above it; a draw with
+        // inflow warmer than a cold tank's bottom can too. Cooling alone keeps the order
+        // (every layer decays by the same factor).
+        if element_w > 0.0 || drew {
+            mix_inversions(&mut self.layers, &mut self.blocks);
+        }
+        let at_thermostat = self.layers[self.element_layer];
+        self.temp_c = self.layers[self.sensor_layer];
+        if at_thermostat >= self.setpoint {
+            self.thermostat_closed = false;
+        } else if at_thermostat <= self.setpoint - self.deadband {
+            self.thermostat_closed = true;
+        }
+        if at_thermostat >= self.cutout {
+            self.tripped = true;
+        }
+    }
+
+    /// [`Tank::draw`] for a layered tank: the tap mixes the top layer's water with cold;
+    /// the hot volume leaves the top and every layer takes the water of the one below,
+    /// the bottom one cold inflow.
+    fn draw_layers(&mut self, dt: f64, sec: u32) {
+        while let Some(&(start, end, tap)) = self.today.get(self.next_draw) {
+            if sec >= end {
+                self.next_draw += 1;
+                continue;
+            }
+            if sec >= start {
+                let top = self.layers[0];
+                let hot_share = if top > tap && top > self.cold {
+                    ((tap - self.cold) / (top - self.cold)).clamp(0.0, 1.0)
+                } else {
+                    1.0
+                };
+                let hot_l = (self.flow_lps * dt * hot_share).min(self.volume_l);
+                if top < tap {
+                    self.lukewarm_l += hot_l;
+                    self.short_wh += hot_l * self.heat_capacity / self.volume_l * (tap - top) / 3600.0;
+                }
+                self.shift_up(hot_l);
+                self.drawn_l += hot_l;
+            }
+            break;
+        }
+        self.draw_from = self.today.get(self.next_draw).map_or(u32::MAX, |d| d.0);
+    }
+
+    /// Moves `litres` up through the layers: out at the top, cold in at the bottom, in
+    /// steps of at most a fifth of a layer so the explicit update stays close to the
+    /// continuous tanks-in-series flow (and never overshoots).
+    fn shift_up(&mut self, litres: f64) {
+        let layer_l = self.volume_l / self.layers.len() as f64;
+        let parts = (litres / (0.2 * layer_l)).ceil().max(1.0);
+        let share = litres / parts / layer_l;
+        for _ in 0..parts as u32 {
+            let mut below = self.cold;
+            for t in self.layers.iter_mut().rev() {
+                let old = *t;
+                *t += share * (below - old);
+                below = old;
+            }
+        }
+    }
+
+    /// Horizontal layers the tank is modelled in (1: one well-mixed node).
+    pub fn layers(&self) -> usize {
+        self.layers.len().max(1)
+    }
+
+    /// The layers' temperatures, top first (one entry for a well-mixed tank), °C.
+    pub fn profile(&self) -> Vec<f64> {
+        if self.layers.is_empty() { vec![self.temp_c] } else { self.layers.clone() }
+    }
+
+    /// Mean water temperature, °C: the tank's heat content above 0 °C over m·c.
+    pub fn mean_c(&self) -> f64 {
+        if self.layers.is_empty() { self.temp_c } else { self.layers.iter().sum::<f64>() / self.layers.len() as f64 }
+    }
+}
+
+/// Mixes any layer warmer than the one above it with it, until the tank's temperature
+/// never rises with depth: warm water rises and mixes (buoyancy). Layers hold equal
+/// masses, so a mixed block takes their mean and the heat content is unchanged. This is
+/// the pool-adjacent-violators algorithm (a monotone fit by running block means).
+fn mix_inversions(layers: &mut [f64], blocks: &mut Vec<(f64, usize)>) {
+    if layers.windows(2).all(|w| w[0] >= w[1]) {
+        return;
+    }
+    // Blocks of equal temperature as (sum, count), from the bottom up: a block colder
+    // than the block under it is stable; a warmer one below merges with it.
+    blocks.clear();
+    for &t in layers.iter().rev() {
+        let mut block = (t, 1usize);
+        while let Some(&(sum, count)) = blocks.last() {
+            // The block below (pushed earlier) is warmer than this one above it: mix.
+            if sum / count as f64 > block.0 / block.1 as f64 {
+                blocks.pop();
+                block = (block.0 + sum, block.1 + count);
+            } else {
+                break;
+            }
+        }
+        blocks.push(block);
+    }
+    let mut i = layers.len();
+    for &(sum, count) in blocks.iter() {
+        let mean = sum / count as f64;
+        for t in &mut layers[i - count..i] {
+            *t = mean;
+        }
+        i -= count;
     }
 }
