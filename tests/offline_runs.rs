@@ -1046,8 +1046,22 @@ fn what_the_rules_deliver_less_of_than_the_baseline_is_counted_beside_the_saving
     let hw = &none["hot_water"];
     assert!(hw["lukewarm_l"].as_f64().unwrap() > 0.0 && hw["short_kwh"].as_f64().unwrap() > 0.0, "{hw}");
     assert_eq!(hw["baseline_lukewarm_l"], 0.0, "{hw}");
+    assert_eq!(hw["tank_layers"], 1, "{hw}");
     let text_report = simulate(&example("zero-export-house.yaml"), "text");
     assert!(text_report.contains("note: hot water came out colder than asked for, "), "{text_report}");
+    assert!(text_report.contains("`plant.tank.layers: 8` models its stratification"), "{text_report}");
+    // The same tank in layers keeps its hot water on top of the showers' cold inflow.
+    let zero_export = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let layered_path = dir.join("layered.yaml");
+    std::fs::write(&layered_path, zero_export.replace("    cutout: 85°C\n", "    cutout: 85°C\n    layers: 8\n"))
+        .unwrap();
+    let layered: serde_json::Value = serde_json::from_str(&simulate(&layered_path, "json")).unwrap();
+    let lw = &layered["hot_water"];
+    assert_eq!(lw["tank_layers"], 8, "{lw}");
+    assert!(
+        lw["lukewarm_l"].as_f64().unwrap() < hw["lukewarm_l"].as_f64().unwrap() / 2.0,
+        "layered {lw} against one node {hw}"
+    );
     let no_tank: serde_json::Value = serde_json::from_str(&simulate(&example("pool-pump-mqtt.yaml"), "json")).unwrap();
     assert!(no_tank["hot_water"].is_null() && no_tank["ev"].is_null(), "{no_tank}");
 

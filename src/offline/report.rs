@@ -200,6 +200,9 @@ pub struct HotWaterReport {
     pub baseline_lukewarm_l: f64,
     /// The baseline's heat lacked, kWh.
     pub baseline_short_kwh: f64,
+    /// The layers the simulated tank is modelled in (`plant.tank.layers`; 1: one
+    /// well-mixed node, which runs lukewarm sooner than a real, stratified tank).
+    pub tank_layers: usize,
 }
 
 /// The whole report.
@@ -379,6 +382,7 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
                 short_kwh: kwh(short_wh),
                 baseline_lukewarm_l: r1(base_l),
                 baseline_short_kwh: kwh(base_wh),
+                tank_layers: run.tank_layers.unwrap_or(1),
             }
         }),
         refused_writes: run.refused_writes,
@@ -507,9 +511,14 @@ impl Report {
             if let Some(hw) = self.hot_water.as_ref().filter(|hw| hw.short_kwh > hw.baseline_short_kwh + 0.05) {
                 let _ = writeln!(
                     o,
-                    "note: hot water came out colder than asked for, {:.0} L more than without diversion and {:.1} kWh of heat short; the savings include that heat not bought",
+                    "note: hot water came out colder than asked for, {:.0} L more than without diversion and {:.1} kWh of heat short; the savings include that heat not bought{}",
                     hw.lukewarm_l - hw.baseline_lukewarm_l,
-                    hw.short_kwh - hw.baseline_short_kwh
+                    hw.short_kwh - hw.baseline_short_kwh,
+                    if hw.tank_layers == 1 {
+                        " (the tank is simulated as one well-mixed node, which runs lukewarm sooner than a real one: `plant.tank.layers: 8` models its stratification)"
+                    } else {
+                        ""
+                    }
                 );
             }
         }

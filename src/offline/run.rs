@@ -148,6 +148,8 @@ pub struct RunOutput {
     /// With a simulated tank: litres that came out of the tap colder than asked for, and
     /// the heat they lacked, Wh.
     pub hot_water_short: Option<(f64, f64)>,
+    /// With a simulated tank: the layers it is modelled in (1: one well-mixed node).
+    pub tank_layers: Option<usize>,
 }
 
 /// A time series for charts: one sample per `every`, averaged powers.
@@ -509,6 +511,7 @@ pub fn simulate_once(
     out.flows = plant.flows().clone();
     out.ev_departures = plant.ev_departures();
     out.hot_water_short = plant.hot_water_short();
+    out.tank_layers = plant.tank().map(|t| t.layers());
     out.seconds = (end_ms - start_ms) as f64 / 1000.0;
     out.refused_writes = binding.refused_writes;
     out.trace = trace;
