@@ -50,13 +50,8 @@ pub struct Tank {
     /// Water temperature the plant reports, °C: the whole node's, or with layers the
     /// sensor's layer.
     pub temp_c: f64,
-    /// With layers: the layers' temperatures, top first, °C (empty: one node).
-    layers: Vec<f64>,
-    /// With layers: the element's (and thermostat's) layer, and the sensor's.
-    element_layer: usize,
-    sensor_layer: usize,
-    /// Scratch space of [`mix_inversions`].
-    blocks: Vec<(f64, usize)>,
+    /// A stratified tank's layers (`None`: one well-mixed node).
+    layered: Option<Layers>,
     /// Thermostat contact closed (calls for heat).
     thermostat_closed: bool,
     /// Cut-out has tripped (stays open for the rest of the run).
@@ -155,10 +150,14 @@ impl Tank {
             draws,
             rng,
             temp_c: cfg.initial,
-            layers: if n > 1 { vec![cfg.initial; n] } else { Vec::new() },
-            element_layer: layer_at(cfg.element_at),
-            sensor_layer: layer_at(cfg.sensor_at.unwrap_or(cfg.element_at)),
-            blocks: Vec::with_capacity(n),
+            layered: (n > 1).then(|| {
+                Layers::new(
+                    n,
+                    cfg.initial - cfg.ambient,
+                    layer_at(cfg.element_at),
+                    layer_at(cfg.sensor_at.unwrap_or(cfg.element_at)),
+                )
+            }),
             thermostat_closed: cfg.initial < cfg.thermostat.setpoint,
             tripped: cfg.initial >= cfg.cutout,
             today: Vec::with_capacity(16),
@@ -202,7 +201,7 @@ impl Tank {
     /// Advances by `dt` seconds with `element_w` of heating at local second `sec`.
     #[inline]
     pub fn step(&mut self, element_w: f64, dt: f64, sec: u32) {
-        if !self.layers.is_empty() {
+        if self.layered.is_some() {
             self.step_layers(element_w, dt, sec);
             return;
         }
@@ -262,37 +261,34 @@ impl Tank {
     }
 
     /// [`Tank::step`] for a layered tank.
+    #[inline]
     fn step_layers(&mut self, element_w: f64, dt: f64, sec: u32) {
-        let drew = sec >= self.draw_from;
-        if drew {
+        if sec >= self.draw_from {
             self.draw_layers(dt, sec);
         }
+        let Some(layers) = self.layered.as_mut() else { return };
         // Each layer holds 1/N of the water and of the loss area, so each cools with the
         // same time constant as the whole tank; the element's layer heats against it.
-        let n = self.layers.len() as f64;
         if self.ua > 0.0 {
             if dt != self.cached_dt {
                 self.cached_dt = dt;
                 self.cached_k = (-self.ua * dt / self.heat_capacity).exp();
             }
-            let k = self.cached_k;
-            for t in &mut self.layers {
-                *t = self.ambient + (*t - self.ambient) * k;
-            }
-            let heated = &mut self.layers[self.element_layer];
-            // The element's share on top of the layer's own cooling (the update is linear).
-            *heated += element_w * n * self.inv_ua * (1.0 - k);
-        } else {
-            self.layers[self.element_layer] += element_w * dt * n / self.heat_capacity;
+            layers.cool(self.cached_k);
         }
-        // Heating makes the element's layer warmer than the one above it; a draw with
-        // inflow warmer than a cold tank's bottom can too. Cooling alone keeps the order
-        // (every layer decays by the same factor).
-        if element_w > 0.0 || drew {
-            mix_inversions(&mut self.layers, &mut self.blocks);
+        if element_w > 0.0 {
+            let n = layers.dev.len() as f64;
+            // The element's share on top of its layer's own cooling (the update is
+            // linear): T_eq − T_a = P/(UA/N), approached by (1 − k) of the way.
+            let rise = if self.ua > 0.0 {
+                element_w * n * self.inv_ua * (1.0 - self.cached_k)
+            } else {
+                element_w * dt * n / self.heat_capacity
+            };
+            layers.heat(rise);
         }
-        let at_thermostat = self.layers[self.element_layer];
-        self.temp_c = self.layers[self.sensor_layer];
+        let at_thermostat = layers.temp_at(layers.element, self.ambient);
+        self.temp_c = layers.temp_at(layers.sensor, self.ambient);
         if at_thermostat >= self.setpoint {
             self.thermostat_closed = false;
         } else if at_thermostat <= self.setpoint - self.deadband {
@@ -307,13 +303,15 @@ impl Tank {
     /// the hot volume leaves the top and every layer takes the water of the one below,
     /// the bottom one cold inflow.
     fn draw_layers(&mut self, dt: f64, sec: u32) {
+        let Some(layers) = self.layered.as_mut() else { return };
         while let Some(&(start, end, tap)) = self.today.get(self.next_draw) {
             if sec >= end {
                 self.next_draw += 1;
                 continue;
             }
             if sec >= start {
-                let top = self.layers[0];
+                layers.settle();
+                let top = self.ambient + layers.dev[0];
                 let hot_share = if top > tap && top > self.cold {
                     ((tap - self.cold) / (top - self.cold)).clamp(0.0, 1.0)
                 } else {
@@ -324,7 +322,7 @@ impl Tank {
                     self.lukewarm_l += hot_l;
                     self.short_wh += hot_l * self.heat_capacity / self.volume_l * (tap - top) / 3600.0;
                 }
-                self.shift_up(hot_l);
+                layers.shift_up(hot_l / self.volume_l, self.cold - self.ambient);
                 self.drawn_l += hot_l;
             }
             break;
@@ -332,36 +330,131 @@ impl Tank {
         self.draw_from = self.today.get(self.next_draw).map_or(u32::MAX, |d| d.0);
     }
 
-    /// Moves `litres` up through the layers: out at the top, cold in at the bottom, in
-    /// steps of at most a fifth of a layer so the explicit update stays close to the
-    /// continuous tanks-in-series flow (and never overshoots).
-    fn shift_up(&mut self, litres: f64) {
-        let layer_l = self.volume_l / self.layers.len() as f64;
-        let parts = (litres / (0.2 * layer_l)).ceil().max(1.0);
-        let share = litres / parts / layer_l;
+    /// Horizontal layers the tank is modelled in (1: one well-mixed node).
+    pub fn layers(&self) -> usize {
+        self.layered.as_ref().map_or(1, |l| l.dev.len())
+    }
+
+    /// The layers' temperatures, top first (one entry for a well-mixed tank), °C.
+    pub fn profile(&self) -> Vec<f64> {
+        match &self.layered {
+            None => vec![self.temp_c],
+            Some(l) => (0..l.dev.len()).map(|i| l.temp_at(i, self.ambient)).collect(),
+        }
+    }
+
+    /// Mean water temperature, °C: the tank's heat content above 0 °C over m·c.
+    pub fn mean_c(&self) -> f64 {
+        let profile = self.profile();
+        profile.iter().sum::<f64>() / profile.len() as f64
+    }
+}
+
+/// The layers of a stratified tank, held so that a step costs the same however many
+/// layers there are: cooling scales every layer's difference from the ambient air by the
+/// same factor, so that factor is kept once (`scale`) rather than applied to each layer;
+/// and the water the element has mixed (its layer and those above it that heating has
+/// merged with it, all at one temperature) is kept as one value (`block`), so heating
+/// touches one number. Only a draw works layer by layer.
+#[derive(Debug)]
+struct Layers {
+    /// Each layer's difference from the ambient air, top first, K, times `scale` —
+    /// except the mixed block's entries, which `block` holds.
+    dev: Vec<f64>,
+    /// The common cooling factor of every layer.
+    scale: f64,
+    /// The element's (and thermostat's) layer, and the sensor's.
+    element: usize,
+    sensor: usize,
+    /// The mixed block runs from this layer down to the element's, at `block` (times
+    /// `scale`).
+    block_top: usize,
+    block: f64,
+    /// Scratch space of [`mix_inversions`].
+    blocks: Vec<(f64, usize)>,
+}
+
+impl Layers {
+    fn new(n: usize, dev: f64, element: usize, sensor: usize) -> Layers {
+        // A tank at one temperature: everything above the element is one block.
+        Layers {
+            dev: vec![dev; n],
+            scale: 1.0,
+            element,
+            sensor,
+            block_top: 0,
+            block: dev,
+            blocks: Vec::with_capacity(n),
+        }
+    }
+
+    /// Layer `i`'s temperature, °C.
+    #[inline]
+    fn temp_at(&self, i: usize, ambient: f64) -> f64 {
+        let dev = if (self.block_top..=self.element).contains(&i) { self.block } else { self.dev[i] };
+        ambient + self.scale * dev
+    }
+
+    /// Cools every layer towards the ambient air by the factor `k`.
+    #[inline]
+    fn cool(&mut self, k: f64) {
+        self.scale *= k;
+        // Keep the stored differences in range (a tank left unheated for weeks).
+        if self.scale < 1e-3 {
+            self.settle();
+        }
+    }
+
+    /// Raises the element's layer by `rise` K and mixes it with the water above it that
+    /// it is now warmer than (warm water rises): the block shares the heat, and takes in
+    /// each layer above that is colder than it.
+    #[inline]
+    fn heat(&mut self, rise: f64) {
+        let mut size = (self.element - self.block_top + 1) as f64;
+        self.block += rise / (size * self.scale);
+        while self.block_top > 0 && self.dev[self.block_top - 1] < self.block {
+            self.block_top -= 1;
+            self.block = (size * self.block + self.dev[self.block_top]) / (size + 1.0);
+            size += 1.0;
+        }
+    }
+
+    /// Writes the block and the cooling factor into every layer's entry.
+    fn settle(&mut self) {
+        let block = self.block;
+        self.dev[self.block_top..=self.element].fill(block);
+        for d in &mut self.dev {
+            *d *= self.scale;
+        }
+        self.block *= self.scale;
+        self.scale = 1.0;
+    }
+
+    /// Moves a share `fraction` of the tank's volume up through the layers: out at the
+    /// top, inflow `inflow_dev` K from the ambient in at the bottom, in steps of at most a
+    /// fifth of a layer so the explicit update stays close to the continuous
+    /// tanks-in-series flow (and never overshoots). Call [`Layers::settle`] first.
+    fn shift_up(&mut self, fraction: f64, inflow_dev: f64) {
+        let n = self.dev.len() as f64;
+        let layers_moved = fraction * n;
+        let parts = (layers_moved / 0.2).ceil().max(1.0);
+        let share = layers_moved / parts;
         for _ in 0..parts as u32 {
-            let mut below = self.cold;
-            for t in self.layers.iter_mut().rev() {
+            let mut below = inflow_dev;
+            for t in self.dev.iter_mut().rev() {
                 let old = *t;
                 *t += share * (below - old);
                 below = old;
             }
         }
-    }
-
-    /// Horizontal layers the tank is modelled in (1: one well-mixed node).
-    pub fn layers(&self) -> usize {
-        self.layers.len().max(1)
-    }
-
-    /// The layers' temperatures, top first (one entry for a well-mixed tank), °C.
-    pub fn profile(&self) -> Vec<f64> {
-        if self.layers.is_empty() { vec![self.temp_c] } else { self.layers.clone() }
-    }
-
-    /// Mean water temperature, °C: the tank's heat content above 0 °C over m·c.
-    pub fn mean_c(&self) -> f64 {
-        if self.layers.is_empty() { self.temp_c } else { self.layers.iter().sum::<f64>() / self.layers.len() as f64 }
+        // Inflow warmer than a cold tank's bottom rises through it.
+        mix_inversions(&mut self.dev, &mut self.blocks);
+        // The element's block is what the mixing left level with it.
+        self.block_top = self.element;
+        while self.block_top > 0 && self.dev[self.block_top - 1] == self.dev[self.element] {
+            self.block_top -= 1;
+        }
+        self.block = self.dev[self.element];
     }
 }
 
@@ -396,5 +489,82 @@ fn mix_inversions(layers: &mut [f64], blocks: &mut Vec<(f64, usize)>) {
             *t = mean;
         }
         i -= count;
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use proptest::prelude::*;
+
+    /// The same physics done the plain way: every layer cooled every step, the element's
+    /// layer heated, then any inversion mixed out.
+    fn reference(n: usize, dev: f64, element: usize, ops: &[(u8, f64)]) -> Vec<f64> {
+        let mut t = vec![dev; n];
+        let mut scratch = Vec::new();
+        for &(op, x) in ops {
+            match op {
+                0 => t.iter_mut().for_each(|d| *d *= x),
+                1 => {
+                    t[element] += x;
+                    mix_inversions(&mut t, &mut scratch);
+                }
+                _ => {
+                    // The same explicit steps as `shift_up`.
+                    let moved = x * n as f64;
+                    let parts = (moved / 0.2).ceil().max(1.0);
+                    for _ in 0..parts as u32 {
+                        let mut below = -10.0;
+                        for d in t.iter_mut().rev() {
+                            let old = *d;
+                            *d += moved / parts * (below - old);
+                            below = old;
+                        }
+                    }
+                    mix_inversions(&mut t, &mut scratch);
+                }
+            }
+        }
+        t
+    }
+
+    proptest! {
+        /// Keeping the cooling factor once and the element's mixed water as one value
+        /// gives the layers the plain computation gives, whatever the order of cooling,
+        /// heating and draws.
+        #[test]
+        fn held_layers_match_the_plain_computation(
+            n in 2usize..12,
+            element_share in 0.0f64..1.0,
+            ops in proptest::collection::vec((0u8..3, 0.0f64..1.0), 1..400),
+        ) {
+            let element = ((element_share * n as f64) as usize).min(n - 1);
+            // Cooling by up to 5 % a step (so the held factor is written back now and then),
+            // rises up to 2 K, draws up to a third of the tank.
+            let ops: Vec<(u8, f64)> = ops
+                .into_iter()
+                .map(|(op, x)| match op {
+                    0 => (0, 1.0 - x * 0.05),
+                    1 => (1, 2.0 * x),
+                    _ => (2, x / 3.0),
+                })
+                .collect();
+            let mut layers = Layers::new(n, 30.0, element, 0);
+            for &(op, x) in &ops {
+                match op {
+                    0 => layers.cool(x),
+                    1 => layers.heat(x),
+                    _ => {
+                        layers.settle();
+                        layers.shift_up(x, -10.0);
+                    }
+                }
+            }
+            let fast: Vec<f64> = (0..n).map(|i| layers.temp_at(i, 0.0)).collect();
+            let plain = reference(n, 30.0, element, &ops);
+            for (a, b) in fast.iter().zip(&plain) {
+                prop_assert!((a - b).abs() < 1e-9, "{fast:?} vs {plain:?}");
+            }
+        }
     }
 }
