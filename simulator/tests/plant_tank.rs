@@ -254,7 +254,11 @@ fn a_stratified_tank_gives_hot_showers_longer_than_a_mixed_one() {
 
 #[test]
 fn bad_layer_settings_are_refused_with_the_key() {
-    for (extra, key) in [("layers: 0", "`layers`"), ("layers: 8\n  element_at: 120%", "`element_at`")] {
+    for (extra, key) in [
+        ("layers: 0", "`layers`"),
+        ("layers: 8\n  element_at: 120%", "`element_at`"),
+        ("sensor_at: 80%", "set `layers`"),
+    ] {
         let yaml = format!("{QUIET}tank:\n  volume: 150L\n  element: 3kW\n  {extra}\nwiring: [tank]\n");
         let cfg = plant_support::config(&yaml);
         let err = spillway_sim::plant::Plant::new(&cfg, Box::new(Constant(0.0)), plant_support::MONDAY_UTC_MS, 1)

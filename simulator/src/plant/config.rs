@@ -279,9 +279,9 @@ pub struct TankConfig {
     #[serde(default = "d_layers")]
     pub layers: u32,
     /// Height of the element (and the thermostat and cut-out beside it) above the
-    /// tank's bottom, as a share of its height (layered tanks only).
-    #[serde(default = "d_element_at", deserialize_with = "quantity::percent")]
-    pub element_at: f64,
+    /// tank's bottom, as a share of its height (layered tanks only; absent = 10 %).
+    #[serde(default, deserialize_with = "quantity::opt_percent")]
+    pub element_at: Option<f64>,
     /// Height of the temperature the plant reports (its sensor), as a share of the
     /// tank's height; absent = beside the thermostat (layered tanks only).
     #[serde(default, deserialize_with = "quantity::opt_percent")]
@@ -290,9 +290,6 @@ pub struct TankConfig {
 
 fn d_layers() -> u32 {
     1
-}
-fn d_element_at() -> f64 {
-    10.0
 }
 fn d_tank_name() -> String {
     "tank".to_owned()

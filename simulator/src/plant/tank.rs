@@ -22,6 +22,9 @@ pub const WATER_C: f64 = 4186.0;
 pub const WATER_KG_PER_L: f64 = 1.0;
 /// The most layers a stratified tank may have.
 pub const MAX_LAYERS: u32 = 50;
+/// Height of the element above a layered tank's bottom when `element_at` is not given,
+/// % of the tank's height.
+pub const DEFAULT_ELEMENT_AT_PCT: f64 = 10.0;
 
 #[derive(Debug, Clone)]
 struct Draw {
@@ -111,7 +114,18 @@ impl Tank {
         if !(1..=MAX_LAYERS).contains(&cfg.layers) {
             return Err(bad(format!("`layers` must be 1 to {MAX_LAYERS} (it is {})", cfg.layers)));
         }
-        let heights = [("element_at", cfg.element_at), ("sensor_at", cfg.sensor_at.unwrap_or(cfg.element_at))];
+        if cfg.layers == 1
+            && let Some(key) = [("element_at", cfg.element_at), ("sensor_at", cfg.sensor_at)]
+                .iter()
+                .find_map(|(key, v)| v.map(|_| key))
+        {
+            return Err(bad(format!(
+                "`{key}` places something at a height, but a tank of one layer has one temperature throughout: set `layers` (e.g. 8) or leave `{key}` out"
+            )));
+        }
+        // The element sits low in most water heaters (`common practice`).
+        let element_at = cfg.element_at.unwrap_or(DEFAULT_ELEMENT_AT_PCT);
+        let heights = [("element_at", element_at), ("sensor_at", cfg.sensor_at.unwrap_or(element_at))];
         if let Some((key, v)) = heights.iter().find(|(_, v)| !(0.0..=100.0).contains(v)) {
             return Err(bad(format!("`{key}` must be 0 to 100 % of the tank's height (it is {v} %)")));
         }
@@ -154,8 +168,8 @@ impl Tank {
                 Layers::new(
                     n,
                     cfg.initial - cfg.ambient,
-                    layer_at(cfg.element_at),
-                    layer_at(cfg.sensor_at.unwrap_or(cfg.element_at)),
+                    layer_at(element_at),
+                    layer_at(cfg.sensor_at.unwrap_or(element_at)),
                 )
             }),
             thermostat_closed: cfg.initial < cfg.thermostat.setpoint,
