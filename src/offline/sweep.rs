@@ -164,7 +164,12 @@ fn nth_number(text: &str, n: usize) -> Option<Range<usize>> {
 pub fn substitute(text: &str, vary: &Vary, value: &str) -> Result<String, OfflineError> {
     let tree = yaml::parse(text).map_err(|d| OfflineError::Options(d.message.clone()))?;
     let node = find(&tree, &vary.path)
-        .ok_or_else(|| OfflineError::Options(format!("--vary: the site file has no `{}`", vary.path.join("."))))?;
+        .ok_or_else(|| {
+            OfflineError::Options(format!(
+                "--vary: the site file has no `{}`; a setting left at its default must be written into the file (at any value) before it can be varied",
+                vary.path.join(".")
+            ))
+        })?;
     let range = match vary.number {
         None => {
             if matches!(node.value, Value::Map(_) | Value::Seq(_)) {
@@ -221,5 +226,9 @@ mod tests {
         let temp = parse_vary("loads.tank.start#3=55°C..55°C:1°C").unwrap();
         assert!(substitute(text, &temp, "55°C").unwrap().contains("tank_temp < 55°C"));
         assert!(substitute(text, &parse_vary("loads.pump.min_on=1min..1min:1min").unwrap(), "1min").is_err());
+        // A setting at its default is not in the file: the error says to write it in.
+        let unwritten = parse_vary("loads.tank.min_off=1min..2min:1min").unwrap();
+        let err = substitute(text, &unwritten, "1min").unwrap_err().to_string();
+        assert!(err.contains("must be written into the file"), "{err}");
     }
 }
