@@ -511,15 +511,16 @@ impl Report {
             if let Some(hw) = self.hot_water.as_ref().filter(|hw| hw.short_kwh > hw.baseline_short_kwh + 0.05) {
                 let _ = writeln!(
                     o,
-                    "note: hot water came out colder than asked for, {:.0} L more than without diversion and {:.1} kWh of heat short; the savings include that heat not bought{}",
+                    "note: hot water came out colder than asked for, {:.0} L more than without diversion and {:.1} kWh of heat short; the savings include that heat not bought",
                     hw.lukewarm_l - hw.baseline_lukewarm_l,
                     hw.short_kwh - hw.baseline_short_kwh,
-                    if hw.tank_layers == 1 {
-                        " (the tank is simulated as one well-mixed node, which runs lukewarm sooner than a real one: `plant.tank.layers: 8` models its stratification)"
-                    } else {
-                        ""
-                    }
                 );
+                if hw.tank_layers == 1 {
+                    let _ = writeln!(
+                        o,
+                        "      the tank is simulated as one well-mixed node, which runs lukewarm sooner than a real one; `plant.tank.layers: 8` models its stratification"
+                    );
+                }
             }
         }
         let b = &self.baseline;
