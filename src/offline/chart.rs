@@ -296,18 +296,31 @@ fn draw_flows(
         .label("PV")
         .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], PV.stroke_width(3)));
     if has_tank {
+        // A layered tank's top, what the taps get, beside its sensor's reading (which may
+        // sit low, where the inflow chills it); for one node the two are the same line.
+        let top: &[f64] = if trace.tank_top_c.len() == trace.tank_c.len() { &trace.tank_top_c } else { &trace.tank_c };
+        let layered = top.iter().zip(&trace.tank_c).any(|(a, b)| (a - b).abs() > 0.05);
         let pts: Vec<(f64, f64)> =
             hours.iter().cloned().zip(trace.tank_c.iter().cloned()).filter(|(_, t)| t.is_finite()).collect();
         chart
             .draw_secondary_series(LineSeries::new(pts, ShapeStyle::from(&TANK).stroke_width(2)))
             .map_err(err)?
-            .label("tank °C")
+            .label(if layered { "tank °C (at its sensor)" } else { "tank °C" })
             .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], TANK.stroke_width(2)));
-        // Where a draw got the tank colder than it asked for, a mark on the tank's line
-        // (a sample with less than half a litre of it is left unmarked).
+        if layered {
+            let pts: Vec<(f64, f64)> =
+                hours.iter().cloned().zip(top.iter().cloned()).filter(|(_, t)| t.is_finite()).collect();
+            chart
+                .draw_secondary_series(DashedLineSeries::new(pts, 6, 4, ShapeStyle::from(&TANK).stroke_width(2)))
+                .map_err(err)?
+                .label("tank top °C (what the taps get)")
+                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 5, y)], TANK.stroke_width(2)));
+        }
+        // Where a draw got water colder than it asked for, a mark on the line of what the
+        // taps get (a sample with less than half a litre of it is left unmarked).
         let cold: Vec<(f64, f64)> = hours
             .iter()
-            .zip(&trace.tank_c)
+            .zip(top)
             .zip(&trace.lukewarm_l)
             .filter(|((_, t), l)| t.is_finite() && **l >= 0.5)
             .map(|((h, t), _)| (*h, *t))
@@ -544,6 +557,7 @@ mod tests {
             grid_w: vec![300.0, 300.0, -100.0, 0.0],
             battery_w: vec![0.0; 4],
             tank_c: vec![f64::NAN; 4],
+            tank_top_c: vec![f64::NAN; 4],
             lukewarm_l: vec![0.0; 4],
             loads: Vec::new(),
             limit_w: vec![2000.0; 4],
@@ -565,6 +579,7 @@ mod tests {
             grid_w: vec![300.0; 4],
             battery_w: vec![0.0; 4],
             tank_c: vec![45.0, 41.0, 38.0, 37.0],
+            tank_top_c: vec![45.0, 41.0, 38.0, 37.0],
             lukewarm_l,
             loads: Vec::new(),
             limit_w: vec![f64::NAN; 4],
@@ -575,5 +590,29 @@ mod tests {
         assert!(svg.contains(label), "{svg}");
         // Two marks plus the legend's, in the marks' own colour (LUKEWARM).
         assert_eq!(svg.matches("fill=\"#1E6EC8\"").count(), 3, "{svg}");
+        assert!(!svg.contains("tank top"), "one node: the top is the sensor's line");
+    }
+
+    #[test]
+    fn a_layered_tank_shows_its_top_beside_its_sensor() {
+        let loaded = example();
+        let site = &loaded.site;
+        let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
+        // After a shower the sensor low in the tank reads the inflow's chill; the top
+        // stays hot.
+        let trace = Trace {
+            t_ms: (0..4).map(|h| 1_781_481_600_000 + h * 3_600_000).collect(),
+            pv_w: vec![0.0; 4],
+            house_w: vec![300.0; 4],
+            grid_w: vec![300.0; 4],
+            battery_w: vec![0.0; 4],
+            tank_c: vec![60.0, 20.0, 19.0, 19.0],
+            tank_top_c: vec![60.0, 60.0, 59.5, 59.0],
+            lukewarm_l: vec![0.0; 4],
+            loads: Vec::new(),
+            limit_w: vec![f64::NAN; 4],
+        };
+        let svg = flows(site, &r, &trace).unwrap();
+        assert!(svg.contains("tank top °C (what the taps get)"), "{svg}");
     }
 }

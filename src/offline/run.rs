@@ -165,8 +165,11 @@ pub struct Trace {
     pub grid_w: Vec<f64>,
     /// Battery, W (charging positive).
     pub battery_w: Vec<f64>,
-    /// Tank temperature, °C (NaN without a tank).
+    /// Tank temperature at its sensor, °C (NaN without a tank).
     pub tank_c: Vec<f64>,
+    /// Temperature at the tank's top, what a tap gets, °C (NaN without a tank; the same
+    /// as `tank_c` for a one-node tank).
+    pub tank_top_c: Vec<f64>,
     /// Hot water that came out of the tap colder than its draw asked for during the
     /// sample, litres (0 without a tank).
     pub lukewarm_l: Vec<f64>,
@@ -562,6 +565,7 @@ struct TraceAcc {
     grid: f64,
     battery: f64,
     tank: f64,
+    tank_top: f64,
     loads: Vec<f64>,
     limit: f64,
     /// The plant's lukewarm litres so far at the last step, and at the last sample
@@ -579,6 +583,7 @@ impl TraceAcc {
             grid: 0.0,
             battery: 0.0,
             tank: 0.0,
+            tank_top: 0.0,
             loads: vec![0.0; loads],
             limit: f64::NAN,
             lukewarm_now: 0.0,
@@ -593,6 +598,7 @@ impl TraceAcc {
         self.grid += f.grid_import.w - f.grid_export.w;
         self.battery += f.battery_charge.w - f.battery_discharge.w;
         self.tank += plant.tank_temp_c().unwrap_or(f64::NAN);
+        self.tank_top += plant.tank().map_or(f64::NAN, |t| t.top_c());
         self.lukewarm_now = plant.hot_water_short().map_or(0.0, |(litres, _)| litres);
         // The trace may start days into the run: count from its first step.
         self.lukewarm_before.get_or_insert(self.lukewarm_now);
@@ -617,6 +623,7 @@ impl TraceAcc {
         t.grid_w.push(self.grid / n);
         t.battery_w.push(self.battery / n);
         t.tank_c.push(self.tank / n);
+        t.tank_top_c.push(self.tank_top / n);
         t.lukewarm_l.push(self.lukewarm_now - self.lukewarm_before.unwrap_or(self.lukewarm_now));
         t.limit_w.push(self.limit);
         for ((_, series), acc) in t.loads.iter_mut().zip(&self.loads) {

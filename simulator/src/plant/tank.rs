@@ -344,6 +344,12 @@ impl Tank {
         self.draw_from = self.today.get(self.next_draw).map_or(u32::MAX, |d| d.0);
     }
 
+    /// Temperature of the water a tap gets, °C: the top layer's (the whole node's for a
+    /// one-node tank).
+    pub fn top_c(&self) -> f64 {
+        self.layered.as_ref().map_or(self.temp_c, |l| l.temp_at(0, self.ambient))
+    }
+
     /// Horizontal layers the tank is modelled in (1: one well-mixed node).
     pub fn layers(&self) -> usize {
         self.layered.as_ref().map_or(1, |l| l.dev.len())
