@@ -15,15 +15,35 @@ const START_MS: i64 = 1_748_736_000_000; // 2025-06-01T00:00:00Z
 
 #[test]
 fn two_days_of_the_example_plant_with_a_battery_give_the_pinned_outputs() {
+    let text = two_days(|_| {});
+    expect_file!["pinned/plant_two_days.txt"].assert_eq(&text);
+}
+
+/// The same with the example's tank in 8 layers (a stratified tank), pinned on its own so
+/// that work on the layered path is checked as the one-node path is.
+#[test]
+fn two_days_with_a_layered_tank_give_the_pinned_outputs() {
+    let text = two_days(|cfg| {
+        if let Some(tank) = cfg.tank.as_mut() {
+            tank.layers = 8;
+        }
+    });
+    expect_file!["pinned/plant_two_days_layered_tank.txt"].assert_eq(&text);
+}
+
+/// Two days of the example plant with a battery added and `adjust` applied, summarised.
+fn two_days(adjust: impl FnOnce(&mut spillway_sim::plant::PlantConfig)) -> String {
     let mut cfg = from_site_yaml(include_str!("../../config/zero-export-house.yaml"))
         .expect("the example parses")
         .expect("the example has a plant");
+    adjust(&mut cfg);
     cfg.battery = Some(
         serde_saphyr::from_str("{ capacity: 10kWh, max_charge: 3kW, max_discharge: 3kW }").expect("battery parses"),
     );
     let options = SiteOptions { start_ms: START_MS, seed: 7, sky: None };
     let mut plant = build(&cfg, &options).expect("the example builds");
-    let (mut grid_sum, mut tank_sum, mut volts_sum, mut amps_sum, mut pv_sum) = (0.0, 0.0, 0.0, 0.0, 0.0);
+    let (mut tank_top_sum, mut grid_sum, mut tank_sum, mut volts_sum, mut amps_sum, mut pv_sum) =
+        (0.0, 0.0, 0.0, 0.0, 0.0, 0.0);
     let mut reports = 0u64;
     let mut last_update = i64::MIN;
     let mut switchings = 0u64;
@@ -53,6 +73,7 @@ fn two_days_of_the_example_plant_with_a_battery_give_the_pinned_outputs() {
             }
         }
         tank_sum += r.tank.map_or(0.0, |t| t.temp_c);
+        tank_top_sum += plant.tank().map_or(0.0, |t| t.top_c());
         if let Some(b) = r.battery {
             volts_sum += b.voltage_v;
             amps_sum += b.current_a;
@@ -68,6 +89,9 @@ fn two_days_of_the_example_plant_with_a_battery_give_the_pinned_outputs() {
     text += &format!("sum of grid readings, W·step: {}\n", g(grid_sum));
     text += &format!("sum of PV readings, W·step: {}\n", g(pv_sum));
     text += &format!("sum of tank temperatures, °C·step: {}\n", g(tank_sum));
+    if plant.tank().is_some_and(|t| t.layers() > 1) {
+        text += &format!("sum of tank top temperatures, °C·step: {}\n", g(tank_top_sum));
+    }
     text += &format!("sum of battery volts, amps: {} {}\n", g(volts_sum), g(amps_sum));
     for (name, flow) in [
         ("pv", f.pv),
@@ -87,5 +111,5 @@ fn two_days_of_the_example_plant_with_a_battery_give_the_pinned_outputs() {
         text += &format!("load {name} Wh: {}\n", g(flow.wh));
     }
     text += &format!("balance error Wh: {:.3e}\n", f.balance_error_wh());
-    expect_file!["pinned/plant_two_days.txt"].assert_eq(&text);
+    text
 }
