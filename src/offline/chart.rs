@@ -544,6 +544,23 @@ mod tests {
         assert!((36..=36 + 12).contains(&bars), "{bars} rectangles");
     }
 
+    /// Four samples an hour apart of a quiet night: no PV, 300 W of house from the grid,
+    /// no tank, no limit (tests set what they look at).
+    fn four_hours() -> Trace {
+        Trace {
+            t_ms: (0..4).map(|h| 1_781_481_600_000 + h * 3_600_000).collect(),
+            pv_w: vec![0.0; 4],
+            house_w: vec![300.0; 4],
+            grid_w: vec![300.0; 4],
+            battery_w: vec![0.0; 4],
+            tank_c: vec![f64::NAN; 4],
+            tank_top_c: vec![f64::NAN; 4],
+            lukewarm_l: vec![0.0; 4],
+            loads: Vec::new(),
+            limit_w: vec![f64::NAN; 4],
+        }
+    }
+
     #[test]
     fn the_inverter_limit_is_drawn_only_while_the_array_produces() {
         let loaded = example();
@@ -551,16 +568,10 @@ mod tests {
         let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
         // Four samples an hour apart: two at night, two in sunshine, all with a limit.
         let trace = Trace {
-            t_ms: (0..4).map(|h| 1_781_481_600_000 + h * 3_600_000).collect(),
             pv_w: vec![0.0, 0.0, 2500.0, 3000.0],
-            house_w: vec![300.0; 4],
             grid_w: vec![300.0, 300.0, -100.0, 0.0],
-            battery_w: vec![0.0; 4],
-            tank_c: vec![f64::NAN; 4],
-            tank_top_c: vec![f64::NAN; 4],
-            lukewarm_l: vec![0.0; 4],
-            loads: Vec::new(),
             limit_w: vec![2000.0; 4],
+            ..four_hours()
         };
         let svg = flows(site, &r, &trace).unwrap();
         // Two limit dots plus the legend's.
@@ -573,16 +584,10 @@ mod tests {
         let site = &loaded.site;
         let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
         let trace = |lukewarm_l: Vec<f64>| Trace {
-            t_ms: (0..4).map(|h| 1_781_481_600_000 + h * 3_600_000).collect(),
-            pv_w: vec![0.0; 4],
-            house_w: vec![300.0; 4],
-            grid_w: vec![300.0; 4],
-            battery_w: vec![0.0; 4],
             tank_c: vec![45.0, 41.0, 38.0, 37.0],
             tank_top_c: vec![45.0, 41.0, 38.0, 37.0],
             lukewarm_l,
-            loads: Vec::new(),
-            limit_w: vec![f64::NAN; 4],
+            ..four_hours()
         };
         let label = "hot water colder than asked for";
         assert!(!flows(site, &r, &trace(vec![0.0, 0.0, 0.2, 0.0])).unwrap().contains(label), "under half a litre");
@@ -600,18 +605,8 @@ mod tests {
         let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
         // After a shower the sensor low in the tank reads the inflow's chill; the top
         // stays hot.
-        let trace = Trace {
-            t_ms: (0..4).map(|h| 1_781_481_600_000 + h * 3_600_000).collect(),
-            pv_w: vec![0.0; 4],
-            house_w: vec![300.0; 4],
-            grid_w: vec![300.0; 4],
-            battery_w: vec![0.0; 4],
-            tank_c: vec![60.0, 20.0, 19.0, 19.0],
-            tank_top_c: vec![60.0, 60.0, 59.5, 59.0],
-            lukewarm_l: vec![0.0; 4],
-            loads: Vec::new(),
-            limit_w: vec![f64::NAN; 4],
-        };
+        let trace =
+            Trace { tank_c: vec![60.0, 20.0, 19.0, 19.0], tank_top_c: vec![60.0, 60.0, 59.5, 59.0], ..four_hours() };
         let svg = flows(site, &r, &trace).unwrap();
         assert!(svg.contains("tank top °C (what the taps get)"), "{svg}");
     }
