@@ -15,14 +15,27 @@ fn tank_plant(tank: &str) -> spillway_sim::plant::Plant {
     plant(&yaml, Constant(0.0))
 }
 
+/// A tank (its relay open) after its first hour, 1 s steps: a draw at 00:10 is done.
+fn after_an_hour(tank: &str) -> spillway_sim::plant::Plant {
+    let mut p = tank_plant(tank);
+    run(&mut p, 3600, 1.0);
+    p
+}
+
+/// A tank whose relay is closed: its thermostat and cut-out alone decide the element.
+fn heated_tank(tank: &str) -> spillway_sim::plant::Plant {
+    let mut p = tank_plant(tank);
+    let ch = p.channel("tank").unwrap();
+    p.controls_mut().relays[ch] = true;
+    p
+}
+
 #[test]
 fn heating_a_full_tank_takes_m_c_delta_t() {
     // 150 L (150 kg, water taken as 1 kg/L: common practice) from 20 to 60 °C.
-    let mut p = tank_plant(
+    let mut p = heated_tank(
         "  volume: 150L\n  element: 3kW\n  ua: 0W/K\n  initial: 20°C\n  draws: []\n  thermostat: { setpoint: 60°C, deadband: 5°C }\n  cutout: 90°C",
     );
-    let ch = p.channel("tank").unwrap();
-    p.controls_mut().relays[ch] = true;
     let mut seconds = 0;
     while p.readings().tank.unwrap().heating || seconds == 0 {
         p.step(1.0);
@@ -93,11 +106,9 @@ fn a_tank_below_the_tap_temperature_delivers_lukewarm_water_and_counts_the_heat_
     // mixed tank; c as above).
     // One 40 L draw at 40 °C from a 150 L tank starting at `initial` °C.
     let drawn_from = |initial: f64| {
-        let mut p = tank_plant(&format!(
+        after_an_hour(&format!(
             "  volume: 150L\n  element: 3kW\n  ua: 0W/K\n  cold: 15°C\n  initial: {initial}°C\n  draws: [{{ at: \"00:10\", volume: 40L, temperature: 40°C }}]"
-        ));
-        run(&mut p, 3600, 1.0);
-        p
+        ))
     };
     let p = drawn_from(30.0);
     let (lukewarm_l, short_wh) = p.hot_water_short().unwrap();
@@ -112,11 +123,9 @@ fn a_tank_below_the_tap_temperature_delivers_lukewarm_water_and_counts_the_heat_
 
 #[test]
 fn thermostat_holds_the_band_whatever_the_relay_says() {
-    let mut p = tank_plant(
+    let mut p = heated_tank(
         "  volume: 150L\n  element: 3kW\n  ua: 2W/K\n  initial: 40°C\n  thermostat: { setpoint: 60°C, deadband: 6°C }",
     );
-    let ch = p.channel("tank").unwrap();
-    p.controls_mut().relays[ch] = true;
     run(&mut p, 4 * 3600, 1.0);
     let (mut lo, mut hi, mut switches, mut was) = (f64::MAX, f64::MIN, 0, true);
     for _ in 0..(3 * 86_400) {
@@ -138,11 +147,9 @@ fn thermostat_holds_the_band_whatever_the_relay_says() {
 #[test]
 fn the_cut_out_trips_and_stays_open() {
     // A thermostat set above the cut-out (a failed thermostat) lets the cut-out act.
-    let mut p = tank_plant(
+    let mut p = heated_tank(
         "  volume: 100L\n  element: 3kW\n  ua: 0W/K\n  initial: 70°C\n  draws: []\n  thermostat: { setpoint: 99°C }\n  cutout: 85°C",
     );
-    let ch = p.channel("tank").unwrap();
-    p.controls_mut().relays[ch] = true;
     run(&mut p, 3 * 3600, 1.0);
     let r = p.readings().tank.unwrap();
     assert!(r.cutout_tripped);
@@ -201,11 +208,9 @@ fn a_layered_tank_keeps_its_heat_through_a_draw_and_through_heating() {
     // First law for a layered tank: heating from 20 to 60 °C (UA 0) takes m·c·ΔT of the
     // mean temperature, as for one node, and the top water is never colder than the
     // bottom water.
-    let mut p = tank_plant(
+    let mut p = heated_tank(
         "  volume: 150L\n  element: 3kW\n  ua: 0W/K\n  initial: 20°C\n  layers: 8\n  draws: []\n  thermostat: { setpoint: 60°C, deadband: 5°C }\n  cutout: 90°C",
     );
-    let ch = p.channel("tank").unwrap();
-    p.controls_mut().relays[ch] = true;
     run(&mut p, 4 * 3600, 1.0);
     let tank = p.tank().unwrap();
     let heat_wh = 150.0 * C_WATER * (tank.mean_c() - 20.0) / 3600.0;
@@ -221,11 +226,9 @@ fn water_below_the_element_is_not_heated() {
     // An element half-way up heats the water above it (warm water rises), not the water
     // under it: only half the tank reaches the setpoint (common practice: the volume
     // below a water heater's element stays at inflow temperature).
-    let mut p = tank_plant(
+    let mut p = heated_tank(
         "  volume: 200L\n  element: 3kW\n  ua: 0W/K\n  initial: 15°C\n  layers: 10\n  element_at: 55%\n  draws: []\n  thermostat: { setpoint: 60°C, deadband: 5°C }",
     );
-    let ch = p.channel("tank").unwrap();
-    p.controls_mut().relays[ch] = true;
     run(&mut p, 4 * 3600, 1.0);
     let profile = p.tank().unwrap().profile();
     assert!(profile[..5].iter().all(|t| (t - 60.0).abs() < 0.05), "{profile:?}");
@@ -241,10 +244,9 @@ fn a_stratified_tank_gives_hot_showers_longer_than_a_mixed_one() {
     // falls below 40 °C part-way through; layered, the top stays hot until the cold
     // front reaches it, so fewer litres come out lukewarm.
     let lukewarm = |layers: u32| {
-        let mut p = tank_plant(&format!(
+        let p = after_an_hour(&format!(
             "  volume: 150L\n  element: 3kW\n  ua: 0W/K\n  cold: 15°C\n  initial: 55°C\n  layers: {layers}\n  draws: [{{ at: \"00:10\", volume: 160L, temperature: 40°C }}]"
         ));
-        run(&mut p, 3600, 1.0);
         p.hot_water_short().unwrap().0
     };
     let (mixed, layered) = (lukewarm(1), lukewarm(10));
@@ -274,10 +276,9 @@ fn a_layered_tank_reports_the_temperature_at_its_sensor() {
     // After a 60 L draw from a 150 L tank at 60 °C, cold water fills the bottom: a sensor
     // near the top still reads hot, one beside a low element reads the inflow's chill.
     let after_draw = |sensor: &str| {
-        let mut p = tank_plant(&format!(
+        let p = after_an_hour(&format!(
             "  volume: 150L\n  element: 3kW\n  ua: 0W/K\n  cold: 15°C\n  initial: 60°C\n  layers: 10\n  {sensor}\n  draws: [{{ at: \"00:10\", volume: 60L, temperature: 95°C }}]"
         ));
-        run(&mut p, 3600, 1.0);
         (p.tank_temp_c().unwrap(), p.readings().tank.unwrap().temp_c)
     };
     let (top, top_reading) = after_draw("sensor_at: 90%");
