@@ -301,8 +301,12 @@ impl Tank {
             };
             layers.heat(rise);
         }
-        let at_thermostat = layers.temp_at(layers.element, self.ambient);
-        self.temp_c = layers.temp_at(layers.sensor, self.ambient);
+        // The element's layer is always the bottom of the mixed block (what
+        // `temp_at(element)` reads, without its range check); the sensor sits beside the
+        // thermostat unless placed elsewhere.
+        let at_thermostat = self.ambient + layers.scale * layers.block;
+        self.temp_c =
+            if layers.sensor == layers.element { at_thermostat } else { layers.temp_at(layers.sensor, self.ambient) };
         if at_thermostat >= self.setpoint {
             self.thermostat_closed = false;
         } else if at_thermostat <= self.setpoint - self.deadband {
