@@ -820,12 +820,16 @@ fn expectations_that_would_be_ignored_in_part_are_refused() {
 
 /// `lukewarm_at_most` counts the day's hot water that came out colder than its draw
 /// asked for. The zero-export example's test days start with its tank at 48 °C, which
-/// the morning showers run below their 40 °C (a well-mixed tank: 150 L at 48 °C mixes
-/// down to 40 °C only for the first litres); a site without a tank fails the check with
-/// the remedy.
+/// the morning showers run below their 40 °C once the tank is simulated as one
+/// well-mixed node (150 L at 48 °C mixes down to 40 °C only for the first litres; the
+/// example's own layered tank keeps its top hot); a site without a tank fails the check
+/// with the remedy.
 #[test]
 fn a_lukewarm_check_counts_the_days_cold_showers() {
-    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let text = std::fs::read_to_string(example("zero-export-house.yaml"))
+        .unwrap()
+        .replace("    layers: 8                # stratified: hot water stays on top of the cold inflow\n", "");
+    assert!(!text.contains("layers:"), "the one-node tank is the default");
     let with = |limit: &str| {
         text.replace(
             "    - name: duties done\n      obligations_met: true",
@@ -1040,28 +1044,32 @@ fn what_the_rules_deliver_less_of_than_the_baseline_is_counted_beside_the_saving
     // A site without a simulated car has no `ev` to report.
     let none: serde_json::Value = serde_json::from_str(&simulate(&example("zero-export-house.yaml"), "json")).unwrap();
     assert!(none["ev"].is_null(), "{}", none["ev"]);
-    // Its tank, filled from surplus only to 60–65 °C, runs down under the evening and
-    // morning showers (a single well-mixed node: pessimistic against a stratified
-    // tank); the baseline's, on its own thermostat at 64–68 °C, never does.
-    let hw = &none["hot_water"];
+    // The same tank simulated as one well-mixed node, filled from surplus only to
+    // 60–65 °C, runs down under the evening and morning showers (pessimistic against a
+    // stratified tank); the baseline's, on its own thermostat at 64–68 °C, never does.
+    const LAYERED: &str = "    layers: 8                # stratified: hot water stays on top of the cold inflow\n";
+    let zero_export = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    assert!(zero_export.contains(LAYERED), "the example's tank is layered");
+    let one_node_path = dir.join("one-node.yaml");
+    std::fs::write(&one_node_path, zero_export.replace(LAYERED, "    layers: 1\n")).unwrap();
+    let one_node: serde_json::Value = serde_json::from_str(&simulate(&one_node_path, "json")).unwrap();
+    let hw = &one_node["hot_water"];
     assert!(hw["lukewarm_l"].as_f64().unwrap() > 0.0 && hw["short_kwh"].as_f64().unwrap() > 0.0, "{hw}");
     assert_eq!(hw["baseline_lukewarm_l"], 0.0, "{hw}");
     assert_eq!(hw["tank_layers"], 1, "{hw}");
-    let text_report = simulate(&example("zero-export-house.yaml"), "text");
+    let text_report = simulate(&one_node_path, "text");
     assert!(text_report.contains("note: hot water came out colder than asked for, "), "{text_report}");
     assert!(text_report.contains("`plant.tank.layers: 8` models its stratification"), "{text_report}");
-    // The same tank in layers keeps its hot water on top of the showers' cold inflow.
-    let zero_export = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
-    let layered_path = dir.join("layered.yaml");
-    std::fs::write(&layered_path, zero_export.replace("    cutout: 85°C\n", "    cutout: 85°C\n    layers: 8\n"))
-        .unwrap();
-    let layered: serde_json::Value = serde_json::from_str(&simulate(&layered_path, "json")).unwrap();
-    let lw = &layered["hot_water"];
+    // The example's own tank, in layers, keeps its hot water on top of the showers' cold
+    // inflow, and its text report has no one-node note.
+    let lw = &none["hot_water"];
     assert_eq!(lw["tank_layers"], 8, "{lw}");
     assert!(
         lw["lukewarm_l"].as_f64().unwrap() < hw["lukewarm_l"].as_f64().unwrap() / 2.0,
         "layered {lw} against one node {hw}"
     );
+    let text_report = simulate(&example("zero-export-house.yaml"), "text");
+    assert!(!text_report.contains("models its stratification"), "{text_report}");
     let no_tank: serde_json::Value = serde_json::from_str(&simulate(&example("pool-pump-mqtt.yaml"), "json")).unwrap();
     assert!(no_tank["hot_water"].is_null() && no_tank["ev"].is_null(), "{no_tank}");
 

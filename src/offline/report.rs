@@ -478,9 +478,11 @@ impl Report {
             let _ = writeln!(o);
         }
         if let Some(hw) = &self.hot_water {
+            // Two decimals: a few lukewarm litres lack only hundredths of a kWh, which
+            // one decimal would print as a puzzling "0.0 kWh short".
             let _ = writeln!(
                 o,
-                "hot water: {:.0} L came out colder than asked for, {:.1} kWh short ({:.0} L, {:.1} kWh without diversion)",
+                "hot water: {:.0} L came out colder than asked for, {:.2} kWh short ({:.0} L, {:.2} kWh without diversion)",
                 hw.lukewarm_l, hw.short_kwh, hw.baseline_lukewarm_l, hw.baseline_short_kwh
             );
         }
