@@ -166,24 +166,77 @@ fn title(report: &Report, what: &str) -> String {
     }
 }
 
-/// Power flows over time.
+/// Width of a flows chart, and the height of its plot (the legend adds rows below).
+const FLOWS_SIZE: (u32, u32) = (1200, 640);
+/// The legend below a flows chart: entries per row, and each row's height.
+const LEGEND_COLUMNS: usize = 4;
+const LEGEND_ROW_PX: u32 = 22;
+
+/// Power flows over time, with the legend in rows below the plot, where it hides nothing.
 pub fn flows(site: &Site, report: &Report, trace: &Trace) -> Result<String, OfflineError> {
     let mut svg = String::new();
     {
-        let root = SVGBackend::with_string(&mut svg, (1200, 640)).into_drawing_area();
+        // The legend's rows are known only once the series are: at most one per series
+        // the chart can draw (the loads, house, export, grid, battery, limit, PV, two
+        // tank lines and the cold-water marks), so size for that and trim nothing.
+        let rows = (trace.loads.len() + 9).div_ceil(LEGEND_COLUMNS) as u32;
+        let (width, plot_h) = FLOWS_SIZE;
+        let root = SVGBackend::with_string(&mut svg, (width, plot_h + 8 + rows * LEGEND_ROW_PX)).into_drawing_area();
         root.fill(&WHITE).map_err(err)?;
-        draw_flows(&root, site, report, trace)?;
+        let (plot, strip) = root.split_vertically(plot_h);
+        let legend = draw_flows(&plot, site, report, trace)?;
+        draw_legend(&strip, &legend)?;
         root.present().map_err(err)?;
     }
     Ok(svg)
 }
 
+/// How a legend entry shows its series.
+enum Glyph {
+    /// A filled area.
+    Swatch(RGBAColor),
+    /// A line of this width.
+    Line(RGBColor, u32),
+    /// A dashed line.
+    Dashes(RGBColor),
+    /// Dots.
+    Dot(RGBColor),
+    /// Triangular marks.
+    Mark(RGBColor),
+}
+
+/// Draws `entries` in rows of [`LEGEND_COLUMNS`] across `area`, left to right.
+fn draw_legend(area: &DrawingArea<SVGBackend<'_>, Shift>, entries: &[(String, Glyph)]) -> Result<(), OfflineError> {
+    let (width, _) = area.dim_in_pixel();
+    let left = 70; // under the plot, past the power axis's labels
+    let column = (width as i32 - left - 70) / LEGEND_COLUMNS as i32;
+    let font = ("sans-serif", 13).into_font().color(&BLACK).pos(Pos::new(HPos::Left, VPos::Center));
+    for (i, (label, glyph)) in entries.iter().enumerate() {
+        let x = left + column * (i % LEGEND_COLUMNS) as i32;
+        let y = 4 + (LEGEND_ROW_PX as i32) * (i / LEGEND_COLUMNS) as i32 + LEGEND_ROW_PX as i32 / 2;
+        match glyph {
+            Glyph::Swatch(c) => area.draw(&Rectangle::new([(x, y - 5), (x + 14, y + 5)], c.filled())),
+            Glyph::Line(c, w) => area.draw(&PathElement::new(vec![(x, y), (x + 14, y)], c.stroke_width(*w))),
+            Glyph::Dashes(c) => area
+                .draw(&PathElement::new(vec![(x, y), (x + 5, y)], c.stroke_width(2)))
+                .and_then(|_| area.draw(&PathElement::new(vec![(x + 9, y), (x + 14, y)], c.stroke_width(2)))),
+            Glyph::Dot(c) => area.draw(&Circle::new((x + 7, y), 2, c.filled())),
+            Glyph::Mark(c) => area.draw(&TriangleMarker::new((x + 7, y), 4, c.filled())),
+        }
+        .map_err(err)?;
+        area.draw(&Text::new(label.clone(), (x + 20, y), font.clone())).map_err(err)?;
+    }
+    Ok(())
+}
+
+/// Draws the flows on `root` and returns the legend's entries, in drawing order.
 fn draw_flows(
     root: &DrawingArea<SVGBackend<'_>, Shift>,
     site: &Site,
     report: &Report,
     trace: &Trace,
-) -> Result<(), OfflineError> {
+) -> Result<Vec<(String, Glyph)>, OfflineError> {
+    let mut legend: Vec<(String, Glyph)> = Vec::new();
     if trace.t_ms.len() < 2 {
         return Err(err("the run is too short to chart"));
     }
@@ -252,28 +305,24 @@ fn draw_flows(
         let colour = *colour;
         chart
             .draw_series(AreaSeries::new(pts, 0.0, colour.mix(0.75)).border_style(colour.stroke_width(1)))
-            .map_err(err)?
-            .label(name.clone())
-            .legend(move |(x, y)| Rectangle::new([(x, y - 5), (x + 14, y + 5)], colour.filled()));
+            .map_err(err)?;
+        legend.push((name.clone(), Glyph::Swatch(colour.to_rgba())));
     }
     // Grid: import above zero in red, export below zero in green.
     let exported: Vec<(f64, f64)> = hours.iter().cloned().zip(grid.iter().map(|g| g.min(0.0))).collect();
     chart
         .draw_series(AreaSeries::new(exported, 0.0, EXPORT.mix(0.35)).border_style(EXPORT.stroke_width(1)))
-        .map_err(err)?
-        .label("export")
-        .legend(|(x, y)| Rectangle::new([(x, y - 5), (x + 14, y + 5)], EXPORT.mix(0.6).filled()));
+        .map_err(err)?;
+    legend.push(("export".to_owned(), Glyph::Swatch(EXPORT.mix(0.6))));
     chart
         .draw_series(LineSeries::new(hours.iter().cloned().zip(grid.iter().cloned()), GRID.stroke_width(1)))
-        .map_err(err)?
-        .label("grid (import +)")
-        .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], GRID.stroke_width(2)));
+        .map_err(err)?;
+    legend.push(("grid (import +)".to_owned(), Glyph::Line(GRID, 2)));
     if battery.iter().any(|b| b.abs() > 1e-3) {
         chart
             .draw_series(LineSeries::new(hours.iter().cloned().zip(battery.iter().cloned()), BATTERY.stroke_width(2)))
-            .map_err(err)?
-            .label("battery (charging +)")
-            .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], BATTERY.stroke_width(2)));
+            .map_err(err)?;
+        legend.push(("battery (charging +)".to_owned(), Glyph::Line(BATTERY, 2)));
     }
     if trace.limit_w.iter().any(|l| l.is_finite()) {
         // Only while the array produces: a limit held overnight says nothing.
@@ -284,17 +333,13 @@ fn draw_flows(
             .filter(|((_, l), pv)| l.is_finite() && **pv > PV_SHOWN_W)
             .map(|((h, l), _)| (*h, kw(*l)))
             .collect();
-        chart
-            .draw_series(segments.iter().map(|&(h, l)| Circle::new((h, l), 1, LIMIT.filled())))
-            .map_err(err)?
-            .label("inverter limit")
-            .legend(|(x, y)| Circle::new((x + 7, y), 2, LIMIT.filled()));
+        chart.draw_series(segments.iter().map(|&(h, l)| Circle::new((h, l), 1, LIMIT.filled()))).map_err(err)?;
+        legend.push(("inverter limit".to_owned(), Glyph::Dot(LIMIT)));
     }
     chart
         .draw_series(LineSeries::new(hours.iter().cloned().zip(pv.iter().cloned()), PV.stroke_width(3)))
-        .map_err(err)?
-        .label("PV")
-        .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], PV.stroke_width(3)));
+        .map_err(err)?;
+    legend.push(("PV".to_owned(), Glyph::Line(PV, 3)));
     if has_tank {
         // A layered tank's top, what the taps get, beside its sensor's reading (which may
         // sit low, where the inflow chills it); for one node the two are the same line.
@@ -302,19 +347,16 @@ fn draw_flows(
         let layered = top.iter().zip(&trace.tank_c).any(|(a, b)| (a - b).abs() > 0.05);
         let pts: Vec<(f64, f64)> =
             hours.iter().cloned().zip(trace.tank_c.iter().cloned()).filter(|(_, t)| t.is_finite()).collect();
-        chart
-            .draw_secondary_series(LineSeries::new(pts, ShapeStyle::from(&TANK).stroke_width(2)))
-            .map_err(err)?
-            .label(if layered { "tank °C (at its sensor)" } else { "tank °C" })
-            .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], TANK.stroke_width(2)));
+        chart.draw_secondary_series(LineSeries::new(pts, ShapeStyle::from(&TANK).stroke_width(2))).map_err(err)?;
+        let label = if layered { "tank °C (at its sensor)" } else { "tank °C" };
+        legend.push((label.to_owned(), Glyph::Line(TANK, 2)));
         if layered {
             let pts: Vec<(f64, f64)> =
                 hours.iter().cloned().zip(top.iter().cloned()).filter(|(_, t)| t.is_finite()).collect();
             chart
                 .draw_secondary_series(DashedLineSeries::new(pts, 6, 4, ShapeStyle::from(&TANK).stroke_width(2)))
-                .map_err(err)?
-                .label("tank top °C (what the taps get)")
-                .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 5, y)], TANK.stroke_width(2)));
+                .map_err(err)?;
+            legend.push(("tank top °C (what the taps get)".to_owned(), Glyph::Dashes(TANK)));
         }
         // Where a draw got water colder than it asked for, a mark on the line of what the
         // taps get (a sample with less than half a litre of it is left unmarked).
@@ -328,28 +370,23 @@ fn draw_flows(
         if !cold.is_empty() {
             chart
                 .draw_secondary_series(cold.iter().map(|&(h, t)| TriangleMarker::new((h, t), 4, LUKEWARM.filled())))
-                .map_err(err)?
-                .label("hot water colder than asked for")
-                .legend(|(x, y)| TriangleMarker::new((x + 7, y), 4, LUKEWARM.filled()));
+                .map_err(err)?;
+            legend.push(("hot water colder than asked for".to_owned(), Glyph::Mark(LUKEWARM)));
         }
     }
-    chart
-        .configure_series_labels()
-        .position(SeriesLabelPosition::UpperLeft)
-        .background_style(WHITE.mix(0.85))
-        .border_style(RGBColor(200, 200, 200))
-        .label_font(("sans-serif", 13))
-        .draw()
-        .map_err(err)?;
-    Ok(())
+    Ok(legend)
 }
 
 /// Monthly bars of import, export and diverted energy with the tariff's block thresholds.
 pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result<String, OfflineError> {
     let mut svg = String::new();
     {
-        let root = SVGBackend::with_string(&mut svg, (1200, 600)).into_drawing_area();
+        // At most five legend entries (four series and the block thresholds): two rows.
+        let (width, plot_h) = (1200, 600);
+        let root = SVGBackend::with_string(&mut svg, (width, plot_h + 8 + 2 * LEGEND_ROW_PX)).into_drawing_area();
         root.fill(&WHITE).map_err(err)?;
+        let (plot, strip) = root.split_vertically(plot_h);
+        let mut legend: Vec<(String, Glyph)> = Vec::new();
         let months = &report.months;
         let n = months.len();
         let thresholds = tariff.map(Tariff::block_thresholds).unwrap_or_default();
@@ -363,7 +400,7 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
         // long runs).
         let every = n.div_ceil(MAX_MONTH_LABELS).max(1);
         let centres: Vec<f64> = (0..n).step_by(every).map(|i| i as f64 + 0.5).collect();
-        let mut chart = ChartBuilder::on(&root)
+        let mut chart = ChartBuilder::on(&plot)
             .caption(title(report, "energy per month"), ("sans-serif", 22))
             .margin(14)
             .x_label_area_size(36)
@@ -397,11 +434,7 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
         for (((name, colour, get), shown), largest) in series.iter().zip(&shown).zip(&largest) {
             let c = *colour;
             if !shown {
-                chart
-                    .draw_series(std::iter::empty::<Rectangle<(f64, f64)>>())
-                    .map_err(err)?
-                    .label(format!("{name}: at most {largest:.1} kWh a month"))
-                    .legend(move |(x, y)| Rectangle::new([(x, y - 5), (x + 14, y + 5)], c.mix(0.3).filled()));
+                legend.push((format!("{name}: at most {largest:.1} kWh a month"), Glyph::Swatch(c.mix(0.3))));
                 continue;
             }
             let x_of = |i: usize| i as f64 + 0.1 + slot as f64 * width;
@@ -412,18 +445,15 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
                         .enumerate()
                         .map(|(i, m)| Rectangle::new([(x_of(i), 0.0), (x_of(i) + width * 0.9, get(m))], c.filled())),
                 )
-                .map_err(err)?
-                .label(*name)
-                .legend(move |(x, y)| Rectangle::new([(x, y - 5), (x + 14, y + 5)], c.filled()));
+                .map_err(err)?;
+            legend.push(((*name).to_owned(), Glyph::Swatch(c.to_rgba())));
             slot += 1;
         }
         // Block thresholds: one legend entry, and each line says where its block starts.
         for (k, t) in thresholds.iter().enumerate() {
-            let line =
-                chart.draw_series(LineSeries::new([(0.0, *t), (n as f64, *t)], LIMIT.stroke_width(1))).map_err(err)?;
+            chart.draw_series(LineSeries::new([(0.0, *t), (n as f64, *t)], LIMIT.stroke_width(1))).map_err(err)?;
             if k == 0 {
-                line.label("tariff block thresholds")
-                    .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], LIMIT.stroke_width(1)));
+                legend.push(("tariff block thresholds".to_owned(), Glyph::Line(LIMIT, 1)));
             }
             // Where the block starts, on a white patch so bars behind it do not hide it.
             let text = format!("block {} from {t:.0} kWh", k + 2);
@@ -435,14 +465,7 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
                 + Text::new(text, (3, -3), style);
             chart.draw_series(std::iter::once(tag)).map_err(err)?;
         }
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::UpperRight)
-            .background_style(WHITE.mix(0.85))
-            .border_style(RGBColor(200, 200, 200))
-            .label_font(("sans-serif", 13))
-            .draw()
-            .map_err(err)?;
+        draw_legend(&strip, &legend)?;
         root.present().map_err(err)?;
     }
     Ok(svg)
@@ -609,5 +632,38 @@ mod tests {
             Trace { tank_c: vec![60.0, 20.0, 19.0, 19.0], tank_top_c: vec![60.0, 60.0, 59.5, 59.0], ..four_hours() };
         let svg = flows(site, &r, &trace).unwrap();
         assert!(svg.contains("tank top °C (what the taps get)"), "{svg}");
+    }
+
+    /// The flows chart's legend lies below its plot, where it covers no data: every
+    /// label's text sits lower than the plot's height, in rows of four.
+    #[test]
+    fn the_legend_sits_below_the_plot() {
+        let loaded = example();
+        let site = &loaded.site;
+        let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
+        let trace = Trace {
+            pv_w: vec![0.0, 1500.0, 2500.0, 0.0],
+            limit_w: vec![2000.0; 4],
+            tank_c: vec![60.0, 20.0, 19.0, 19.0],
+            tank_top_c: vec![60.0, 60.0, 59.5, 59.0],
+            loads: vec![("water_heater".to_owned(), vec![0.0, 1000.0, 2000.0, 0.0])],
+            ..four_hours()
+        };
+        let svg = flows(site, &r, &trace).unwrap();
+        // The y of the <text> element that shows `label`.
+        let text_y = |label: &str| -> f64 {
+            let end = svg.find(&format!(">\n{label}\n</text>")).unwrap_or_else(|| panic!("no {label:?} in {svg}"));
+            let start = svg[..end].rfind("<text").unwrap();
+            let y = &svg[start..end][svg[start..end].find(" y=\"").unwrap() + 4..];
+            y[..y.find('"').unwrap()].parse().unwrap()
+        };
+        let labels =
+            ["water_heater", "house", "export", "grid (import +)", "inverter limit", "PV", "tank °C (at its sensor)"];
+        for label in labels {
+            assert!(text_y(label) > f64::from(FLOWS_SIZE.1), "{label} at y {}", text_y(label));
+        }
+        // Rows of four: the fifth entry starts the second row.
+        assert_eq!(text_y("grid (import +)"), text_y("water_heater"));
+        assert!(text_y("inverter limit") > text_y("water_heater") + 10.0);
     }
 }
