@@ -567,6 +567,14 @@ mod tests {
         assert!((36..=36 + 12).contains(&bars), "{bars} rectangles");
     }
 
+    /// The flows chart of `trace` for a day of the example site.
+    fn flows_svg(trace: &Trace) -> String {
+        let loaded = example();
+        let site = &loaded.site;
+        let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
+        flows(site, &r, trace).unwrap()
+    }
+
     /// Four samples an hour apart of a quiet night: no PV, 300 W of house from the grid,
     /// no tank, no limit (tests set what they look at).
     fn four_hours() -> Trace {
@@ -586,9 +594,6 @@ mod tests {
 
     #[test]
     fn the_inverter_limit_is_drawn_only_while_the_array_produces() {
-        let loaded = example();
-        let site = &loaded.site;
-        let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
         // Four samples an hour apart: two at night, two in sunshine, all with a limit.
         let trace = Trace {
             pv_w: vec![0.0, 0.0, 2500.0, 3000.0],
@@ -596,16 +601,13 @@ mod tests {
             limit_w: vec![2000.0; 4],
             ..four_hours()
         };
-        let svg = flows(site, &r, &trace).unwrap();
+        let svg = flows_svg(&trace);
         // Two limit dots plus the legend's.
         assert_eq!(svg.matches("<circle").count(), 3, "{svg}");
     }
 
     #[test]
     fn draws_colder_than_asked_for_are_marked_on_the_tank_line() {
-        let loaded = example();
-        let site = &loaded.site;
-        let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
         let trace = |lukewarm_l: Vec<f64>| Trace {
             tank_c: vec![45.0, 41.0, 38.0, 37.0],
             tank_top_c: vec![45.0, 41.0, 38.0, 37.0],
@@ -613,8 +615,8 @@ mod tests {
             ..four_hours()
         };
         let label = "hot water colder than asked for";
-        assert!(!flows(site, &r, &trace(vec![0.0, 0.0, 0.2, 0.0])).unwrap().contains(label), "under half a litre");
-        let svg = flows(site, &r, &trace(vec![0.0, 0.0, 12.0, 6.0])).unwrap();
+        assert!(!flows_svg(&trace(vec![0.0, 0.0, 0.2, 0.0])).contains(label), "under half a litre");
+        let svg = flows_svg(&trace(vec![0.0, 0.0, 12.0, 6.0]));
         assert!(svg.contains(label), "{svg}");
         // Two marks plus the legend's, in the marks' own colour (LUKEWARM).
         assert_eq!(svg.matches("fill=\"#1E6EC8\"").count(), 3, "{svg}");
@@ -623,14 +625,11 @@ mod tests {
 
     #[test]
     fn a_layered_tank_shows_its_top_beside_its_sensor() {
-        let loaded = example();
-        let site = &loaded.site;
-        let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
         // After a shower the sensor low in the tank reads the inflow's chill; the top
         // stays hot.
         let trace =
             Trace { tank_c: vec![60.0, 20.0, 19.0, 19.0], tank_top_c: vec![60.0, 60.0, 59.5, 59.0], ..four_hours() };
-        let svg = flows(site, &r, &trace).unwrap();
+        let svg = flows_svg(&trace);
         assert!(svg.contains("tank top °C (what the taps get)"), "{svg}");
     }
 
@@ -638,9 +637,6 @@ mod tests {
     /// label's text sits lower than the plot's height, in rows of four.
     #[test]
     fn the_legend_sits_below_the_plot() {
-        let loaded = example();
-        let site = &loaded.site;
-        let r = report::build(site, None, info(site, 1), &RunOutput::default(), &RunOutput::default());
         let trace = Trace {
             pv_w: vec![0.0, 1500.0, 2500.0, 0.0],
             limit_w: vec![2000.0; 4],
@@ -649,7 +645,7 @@ mod tests {
             loads: vec![("water_heater".to_owned(), vec![0.0, 1000.0, 2000.0, 0.0])],
             ..four_hours()
         };
-        let svg = flows(site, &r, &trace).unwrap();
+        let svg = flows_svg(&trace);
         // The y of the <text> element that shows `label`.
         let text_y = |label: &str| -> f64 {
             let end = svg.find(&format!(">\n{label}\n</text>")).unwrap_or_else(|| panic!("no {label:?} in {svg}"));
