@@ -450,18 +450,26 @@ impl Report {
                 let _ = writeln!(o, "\nexport (no limit): peak {:.0} W", x.peak_w);
             }
         }
-        let _ = writeln!(o, "\nloads                 kWh   from grid   hours   switchings   max starts/h");
+        // Name columns widen for long names, so the figures stay in their columns.
+        let width = |names: &mut dyn Iterator<Item = &String>, least: usize| {
+            names.map(|n| n.chars().count()).max().unwrap_or(0).max(least)
+        };
+        let w = width(&mut self.loads.iter().map(|l| &l.name), 16);
+        let pad = " ".repeat(w - 16);
+        let _ = writeln!(o, "\nloads{pad}                 kWh   from grid   hours   switchings   max starts/h");
         for l in &self.loads {
             let _ = writeln!(
                 o,
-                "  {:<16} {:>8.1} {:>11.1} {:>7.1} {:>12} {:>14}",
+                "  {:<w$} {:>8.1} {:>11.1} {:>7.1} {:>12} {:>14}",
                 l.name, l.energy_kwh, l.grid_topup_kwh, l.runtime_h, l.switchings, l.max_starts_per_hour
             );
         }
         if !self.obligations.is_empty() {
-            let _ = writeln!(o, "\nobligations                                   met   missed");
+            let w = width(&mut self.obligations.iter().map(|ob| &ob.name), 42);
+            let pad = " ".repeat(w - 42);
+            let _ = writeln!(o, "\nobligations{pad}                                   met   missed");
             for ob in &self.obligations {
-                let _ = writeln!(o, "  {:<42} {:>5} {:>8}", ob.name, ob.days_met, ob.days_missed);
+                let _ = writeln!(o, "  {:<w$} {:>5} {:>8}", ob.name, ob.days_met, ob.days_missed);
             }
         }
         if self.months.len() > 1 || self.cost.is_some() {
