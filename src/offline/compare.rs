@@ -26,10 +26,10 @@ pub struct Row {
     pub label: String,
     /// Unit of the values.
     pub unit: String,
-    /// Value for the first file.
-    pub a: f64,
-    /// Value for the second file.
-    pub b: f64,
+    /// Value for the first file (`None`: it has no such load or obligation).
+    pub a: Option<f64>,
+    /// Value for the second file (likewise).
+    pub b: Option<f64>,
     /// Which is better.
     pub better: Better,
 }
@@ -62,7 +62,12 @@ fn row(label: impl Into<String>, unit: &str, a: f64, b: f64, goal: Goal) -> Row 
             _ => Better::B,
         }
     };
-    Row { label: label.into(), unit: unit.to_owned(), a, b, better }
+    Row { label: label.into(), unit: unit.to_owned(), a: Some(a), b: Some(b), better }
+}
+
+/// A row of a load or obligation that only one of the files has: shown, not compared.
+fn one_sided(label: impl Into<String>, unit: &str, a: Option<f64>, b: Option<f64>) -> Row {
+    Row { label: label.into(), unit: unit.to_owned(), a, b, better: Better::Same }
 }
 
 /// Compares two reports of runs on the same plant, weather and seed.
@@ -102,27 +107,39 @@ pub fn compare(a_name: &str, a: &Report, b_name: &str, b: &Report) -> Comparison
         rows.push(row("cost", &ca.currency, ca.total, cb.total, Lower));
         rows.push(row("savings against no diversion", &ca.currency, ca.savings, cb.savings, Higher));
     }
-    for la in &a.loads {
-        let Some(lb) = b.loads.iter().find(|l| l.name == la.name) else { continue };
-        rows.push(row(format!("{}: energy", la.name), "kWh", la.energy_kwh, lb.energy_kwh, Higher));
-        rows.push(row(format!("{}: from the grid", la.name), "kWh", la.grid_topup_kwh, lb.grid_topup_kwh, Lower));
-        rows.push(row(
-            format!("{}: switchings", la.name),
-            "",
-            f64::from(la.switchings),
-            f64::from(lb.switchings),
-            Lower,
-        ));
+    // Loads and obligations by name: those of A in its order, then those only B has. One
+    // that only one file has keeps its rows, with nothing on the other side, so a rule set
+    // that adds or drops a duty shows it rather than losing it.
+    let names = |ours: Vec<&String>, theirs: Vec<&String>| -> Vec<String> {
+        let mut all: Vec<String> = ours.iter().map(|n| (*n).clone()).collect();
+        all.extend(theirs.iter().filter(|n| !ours.contains(n)).map(|n| (*n).clone()));
+        all
+    };
+    type LoadFigure = fn(&super::report::LoadReport) -> f64;
+    let load_figures: [(&str, &str, LoadFigure, Goal); 3] = [
+        ("energy", "kWh", |l| l.energy_kwh, Higher),
+        ("from the grid", "kWh", |l| l.grid_topup_kwh, Lower),
+        ("switchings", "", |l| f64::from(l.switchings), Lower),
+    ];
+    for name in names(a.loads.iter().map(|l| &l.name).collect(), b.loads.iter().map(|l| &l.name).collect()) {
+        let (la, lb) = (a.loads.iter().find(|l| l.name == name), b.loads.iter().find(|l| l.name == name));
+        for (what, unit, get, goal) in load_figures {
+            let label = format!("{name}: {what}");
+            rows.push(match (la, lb) {
+                (Some(la), Some(lb)) => row(label, unit, get(la), get(lb), goal),
+                _ => one_sided(label, unit, la.map(get), lb.map(get)),
+            });
+        }
     }
-    for oa in &a.obligations {
-        let Some(ob) = b.obligations.iter().find(|o| o.name == oa.name) else { continue };
-        rows.push(row(
-            format!("{}: days missed", oa.name),
-            "",
-            f64::from(oa.days_missed),
-            f64::from(ob.days_missed),
-            Lower,
-        ));
+    let obligation_names =
+        names(a.obligations.iter().map(|o| &o.name).collect(), b.obligations.iter().map(|o| &o.name).collect());
+    for name in obligation_names {
+        let missed = |r: &Report| r.obligations.iter().find(|o| o.name == name).map(|o| f64::from(o.days_missed));
+        let label = format!("{name}: days missed");
+        rows.push(match (missed(a), missed(b)) {
+            (Some(ma), Some(mb)) => row(label, "", ma, mb, Lower),
+            (ma, mb) => one_sided(label, "", ma, mb),
+        });
     }
     Comparison { a: a_name.to_owned(), b: b_name.to_owned(), rows }
 }
@@ -141,8 +158,9 @@ impl Comparison {
         let _ = writeln!(o, "{:<width$}  {:>14}  {:>14}", "", "A", "B");
         for r in &self.rows {
             // One number of decimals per row, so the two sides line up and read alike.
-            let whole = r.a.fract() == 0.0 && r.b.fract() == 0.0;
-            let fmt = |v: f64| {
+            let whole = [r.a, r.b].iter().flatten().all(|v| v.fract() == 0.0);
+            let fmt = |v: Option<f64>| {
+                let Some(v) = v else { return "—".to_owned() };
                 let text = if whole { format!("{v:.0}") } else { format!("{v:.2}") };
                 if r.unit.is_empty() { text } else { format!("{text} {}", r.unit) }
             };
@@ -184,5 +202,20 @@ mod tests {
         let text = c.to_text();
         assert!(text.contains("2893.60 W") && text.contains("1723.00 W"), "{text}");
         assert!(text.contains(" 4◀") && text.contains(" 6 "), "{text}");
+    }
+
+    #[test]
+    fn a_row_only_one_side_has_is_shown_without_a_mark() {
+        let c = Comparison {
+            a: "a.yaml".into(),
+            b: "b.yaml".into(),
+            rows: vec![one_sided("tank: reach 55 °C by 16:00: days missed", "", None, Some(2.0))],
+        };
+        let text = c.to_text();
+        let line = text.lines().find(|l| l.starts_with("tank:")).unwrap();
+        assert!(line.contains("—") && line.trim_end().ends_with('2') && !line.contains('◀'), "{text}");
+        assert!(text.contains("better in 0 row(s) for A, 0 for B"), "{text}");
+        let json: serde_json::Value = serde_json::from_str(&c.to_json()).unwrap();
+        assert!(json["rows"][0]["a"].is_null() && json["rows"][0]["better"] == "same", "{json}");
     }
 }
