@@ -87,6 +87,8 @@ fn the_demo_binary_prints_frames_and_its_safe_ending() {
     assert!(ok, "{out}");
     assert!(out.contains("Spillway demo · Rosemead · export forbidden"), "{out}");
     assert!(out.contains("water_heater") && out.contains("pool_pump"), "{out}");
+    // The example's tank is layered: its sensor and its top are both shown.
+    assert!(out.contains(" °C at its sensor, ") && out.contains(" °C at the top (what the taps get)"), "{out}");
     assert!(out.contains("safe states written: relays tank open, pump open · inverter limit 0 W"), "{out}");
     assert!(out.contains("stopped after"), "{out}");
 }

@@ -148,8 +148,12 @@ pub fn render(f: &Frame) -> String {
         None => "no limit control".to_owned(),
     };
     line(format!("  controller: mode {} · surplus {} · inverter limit {limit}", s.mode, kw(s.surplus_w)));
-    if let Some(t) = f.plant.tank_c {
-        line(format!("  tank {t:.1} °C"));
+    match (f.plant.tank_c, f.plant.tank_top_c) {
+        (Some(t), Some(top)) => {
+            line(format!("  tank {t:.1} °C at its sensor, {top:.1} °C at the top (what the taps get)"))
+        }
+        (Some(t), None) => line(format!("  tank {t:.1} °C")),
+        _ => {}
     }
     line(String::new());
     line(format!("  {:<2} {:<14} {:<9} {:>9}  why", "#", "load", "command", "power"));

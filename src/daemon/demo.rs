@@ -113,8 +113,11 @@ pub struct PlantView {
     pub relays: Vec<(String, bool)>,
     /// The inverter's power limit as the plant applies it, W.
     pub limit_w: Option<f64>,
-    /// Tank temperature, °C.
+    /// Tank temperature at its sensor, °C.
     pub tank_c: Option<f64>,
+    /// A layered tank's top temperature (what the taps get), °C; `None` for one node,
+    /// whose sensor reads the whole tank.
+    pub tank_top_c: Option<f64>,
 }
 
 fn plant_view(server: &spillway_sim::serve::ServerHandle) -> PlantView {
@@ -130,6 +133,7 @@ fn plant_view(server: &spillway_sim::serve::ServerHandle) -> PlantView {
             relays: p.channels().iter().cloned().zip(controls.relays.iter().copied()).collect(),
             limit_w: controls.pv_limit_w,
             tank_c: p.tank_temp_c(),
+            tank_top_c: p.tank().filter(|t| t.layers() > 1).map(|t| t.top_c()),
         }
     })
 }
