@@ -1104,3 +1104,33 @@ fn what_the_rules_deliver_less_of_than_the_baseline_is_counted_beside_the_saving
     assert!(duty.trim_end().ends_with('—') && !duty.contains('◀'), "{duty}");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// Mistakes in the `plant:` section are named in the site file's words, not the YAML
+/// reader's ("invalid u64", "untagged enum", "use Option<String>"), with their line.
+#[test]
+fn plant_section_mistakes_are_named_in_the_files_words() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let message = |from: &str, to: &str| -> String {
+        assert!(text.contains(from), "{from:?} is in the example");
+        let yaml = text.replacen(from, to, 1);
+        let loaded = config::load_str("site.yaml", &yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        match offline::checked_plant(&loaded) {
+            Ok(_) => panic!("{to:?} was accepted"),
+            Err(e) => e.to_string(),
+        }
+    };
+    let cases = [
+        ("    volume: 150L", "    volume: []", "expected a volume such as 150L, found a list"),
+        ("    volume: 150L", "    volume: ~", "expected a volume such as 150L, found nothing"),
+        ("    element: 3kW", "    element: { a: 1 }", "expected a power such as 3kW or 800W, found a map"),
+        ("  seed: 7", "  seed: seven", "expected a whole number of 0 or more"),
+        ("  house: { standby: 70W, activity: 480W }", "  house: 5", "expected a map of `key: value` entries"),
+    ];
+    for (from, to, says) in cases {
+        let m = message(from, to);
+        assert!(m.contains(says) && m.contains("line "), "{to:?}: {m}");
+        for jargon in ["u64", "untagged", "Option<", "mapping start", "sequence start"] {
+            assert!(!m.contains(jargon), "{to:?}: {m}");
+        }
+    }
+}

@@ -5,7 +5,7 @@
 //! number (already in the base unit named by the helper) or a string with a unit.
 //! (The controller crate has its own unit types; the simulator stays independent of it.)
 
-use serde::{Deserialize, Deserializer, de};
+use serde::{Deserializer, de};
 
 /// Unit symbols by dimension, with their factor to the base unit.
 const TABLE: &[(&str, Kind, f64)] = &[
@@ -108,15 +108,62 @@ pub fn parse(text: &str, kind: Kind) -> Result<f64, String> {
     }
 }
 
-#[derive(Deserialize)]
-#[serde(untagged)]
-enum NumberOrText {
+/// A value as written in the plant section: a plain number, or a text with a unit.
+pub(crate) enum NumberOrText {
     Number(f64),
     Text(String),
 }
 
+impl NumberOrText {
+    /// Reads one. A list, a map or nothing is refused in plain words naming `expected`
+    /// (e.g. "a power such as 3kW or 800W"), and so is a number that is not finite
+    /// (`.nan`, `.inf`), which no quantity of a plant can be.
+    pub(crate) fn read<'de, D: Deserializer<'de>>(d: D, expected: &'static str) -> Result<Self, D::Error> {
+        struct Reader(&'static str);
+        impl Reader {
+            fn refuse<E: de::Error>(&self, found: &str) -> E {
+                E::custom(format!("expected {}, found {found}", self.0))
+            }
+        }
+        impl<'de> de::Visitor<'de> for Reader {
+            type Value = NumberOrText;
+            fn expecting(&self, f: &mut std::fmt::Formatter) -> std::fmt::Result {
+                f.write_str(self.0)
+            }
+            fn visit_f64<E: de::Error>(self, v: f64) -> Result<NumberOrText, E> {
+                if v.is_finite() { Ok(NumberOrText::Number(v)) } else { Err(self.refuse(&format!("`{v}`"))) }
+            }
+            fn visit_i64<E: de::Error>(self, v: i64) -> Result<NumberOrText, E> {
+                Ok(NumberOrText::Number(v as f64))
+            }
+            fn visit_u64<E: de::Error>(self, v: u64) -> Result<NumberOrText, E> {
+                Ok(NumberOrText::Number(v as f64))
+            }
+            fn visit_str<E: de::Error>(self, v: &str) -> Result<NumberOrText, E> {
+                Ok(NumberOrText::Text(v.to_owned()))
+            }
+            fn visit_bool<E: de::Error>(self, v: bool) -> Result<NumberOrText, E> {
+                Err(self.refuse(&format!("`{v}`")))
+            }
+            fn visit_unit<E: de::Error>(self) -> Result<NumberOrText, E> {
+                Err(self.refuse("nothing"))
+            }
+            fn visit_none<E: de::Error>(self) -> Result<NumberOrText, E> {
+                Err(self.refuse("nothing"))
+            }
+            fn visit_seq<A: de::SeqAccess<'de>>(self, _: A) -> Result<NumberOrText, A::Error> {
+                Err(self.refuse("a list"))
+            }
+            fn visit_map<A: de::MapAccess<'de>>(self, _: A) -> Result<NumberOrText, A::Error> {
+                Err(self.refuse("a map"))
+            }
+        }
+        d.deserialize_any(Reader(expected))
+    }
+}
+
 fn deserialize_kind<'de, D: Deserializer<'de>>(d: D, kind: Kind) -> Result<f64, D::Error> {
-    match NumberOrText::deserialize(d)? {
+    match NumberOrText::read(d, kind.describe())? {
         NumberOrText::Number(v) => Ok(v),
         NumberOrText::Text(t) => parse(&t, kind).map_err(de::Error::custom),
     }

@@ -63,12 +63,65 @@ pub fn build(cfg: &PlantConfig, options: &SiteOptions) -> Result<Plant, SiteErro
 }
 
 /// Parses a `plant:` section given on its own (a plant file for `spillway-sim`).
-pub fn from_yaml(text: &str) -> Result<PlantConfig, serde_saphyr::Error> {
-    PlantConfig::from_yaml(text)
+pub fn from_yaml(text: &str) -> Result<PlantConfig, PlantYamlError> {
+    PlantConfig::from_yaml(text).map_err(PlantYamlError::from)
+}
+
+/// A plant description that does not parse: the YAML reader's message, with its line and
+/// column, in the words of the file (see [`plain_words`]).
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct PlantYamlError(String);
+
+impl From<serde_saphyr::Error> for PlantYamlError {
+    fn from(e: serde_saphyr::Error) -> Self {
+        PlantYamlError(plain_words(&e.to_string()))
+    }
+}
+
+/// The YAML reader's messages in the words of the site file: it speaks of Rust types
+/// ("invalid u64", "use Option<String>") and parser states ("expected sequence start"),
+/// which say nothing to the person who wrote the file.
+pub fn plain_words(message: &str) -> String {
+    const PLAIN: &[(&str, &str)] = &[
+        ("invalid u64", "expected a whole number of 0 or more"),
+        ("invalid u32", "expected a whole number of 0 or more"),
+        ("invalid u16", "expected a whole number of 0 or more"),
+        ("invalid u8", "expected a whole number of 0 or more"),
+        ("invalid usize", "expected a whole number of 0 or more"),
+        ("invalid i64", "expected a whole number"),
+        ("invalid i32", "expected a whole number"),
+        ("invalid f64", "expected a number"),
+        ("invalid bool", "expected true or false"),
+        ("cannot deserialize null into string; use Option<String>", "expected a text, found nothing"),
+        ("expected sequence start", "expected a list (items on lines starting `- `, or `[a, b]`)"),
+        ("expected mapping start", "expected a map of `key: value` entries (or `{ key: value }`)"),
+    ];
+    // The message may repeat under its caret: every occurrence, whole phrases only
+    // ("invalid u64" must not rewrite "invalid u64s").
+    let mut out = message.to_owned();
+    for (jargon, plain) in PLAIN {
+        let mut from = 0;
+        while let Some(at) = out[from..].find(jargon).map(|i| i + from) {
+            let end = at + jargon.len();
+            if out[end..].starts_with(|c: char| c.is_alphanumeric()) {
+                from = end;
+            } else {
+                out.replace_range(at..end, plain);
+                from = at + plain.len();
+            }
+        }
+    }
+    let untagged = "data did not match any variant of untagged enum";
+    while let Some(at) = out.find(untagged) {
+        let end = out[at..].find('\n').map_or(out.len(), |i| i + at);
+        out.replace_range(at..end, "the value has the wrong shape here (see the README's plant keys)");
+    }
+    out
 }
 
 /// Reads the `plant:` section out of a whole site file (the other sections are ignored).
-pub fn from_site_yaml(text: &str) -> Result<Option<PlantConfig>, serde_saphyr::Error> {
+pub fn from_site_yaml(text: &str) -> Result<Option<PlantConfig>, PlantYamlError> {
     #[derive(serde::Deserialize)]
     struct SiteFile {
         #[serde(default)]
@@ -76,4 +129,30 @@ pub fn from_site_yaml(text: &str) -> Result<Option<PlantConfig>, serde_saphyr::E
     }
     let file: SiteFile = serde_saphyr::from_str(text)?;
     Ok(file.plant)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A plant file's mistakes read in the file's words: what was expected, what was
+    /// found, and where; never a Rust type or a parser state.
+    #[test]
+    fn plant_file_mistakes_are_named_in_plain_words() {
+        let cases = [
+            ("seed: seven\n", "expected a whole number of 0 or more"),
+            ("tank: { volume: [], element: 3kW }\n", "expected a volume such as 150L, found a list"),
+            ("tank: { volume: 150L, element: ~ }\n", "expected a power such as 3kW or 800W, found nothing"),
+            ("tank: 5\n", "expected a map of `key: value` entries"),
+            ("loads: { name: heater }\n", "expected a list (items on lines starting `- `, or `[a, b]`)"),
+        ];
+        for (yaml, says) in cases {
+            let m = from_yaml(yaml).err().unwrap_or_else(|| panic!("{yaml:?} was accepted")).to_string();
+            assert!(m.contains(says) && m.contains("line 1"), "{yaml:?}: {m}");
+            for jargon in ["u64", "untagged", "Option<", "mapping start", "sequence start"] {
+                assert!(!m.contains(jargon), "{yaml:?}: {m}");
+            }
+        }
+        assert_eq!(plain_words("invalid u64s"), "invalid u64s", "whole phrases only");
+    }
 }

@@ -710,15 +710,11 @@ impl When {
 
 impl<'de> Deserialize<'de> for When {
     fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
-        #[derive(Deserialize)]
-        #[serde(untagged)]
-        enum Raw {
-            Number(f64),
-            Text(String),
-        }
-        match Raw::deserialize(d)? {
-            Raw::Number(s) => Ok(When::After(s)),
-            Raw::Text(t) => {
+        use quantity::NumberOrText;
+        let expected = "a duration after the start such as 36h, or an RFC 3339 time such as 2025-01-15T10:00:00+02:00";
+        match NumberOrText::read(d, expected)? {
+            NumberOrText::Number(s) => Ok(When::After(s)),
+            NumberOrText::Text(t) => {
                 if let Ok(at) = chrono::DateTime::parse_from_rfc3339(t.trim()) {
                     return Ok(When::At(at.timestamp_millis()));
                 }

@@ -451,12 +451,7 @@ pub(super) fn parse_clock(text: &str) -> Option<f64> {
     Some(f64::from(h * 3600 + m * 60))
 }
 
-#[derive(Deserialize)]
-#[serde(untagged)]
-enum NumberOrText {
-    Number(f64),
-    Text(String),
-}
+use crate::quantity::NumberOrText;
 
 /// Splits `text` into a number and the unit after it.
 fn number_and_unit(text: &str) -> Option<(f64, &str)> {
@@ -471,7 +466,7 @@ fn number_and_unit(text: &str) -> Option<(f64, &str)> {
 
 /// A temperature coefficient: `-0.4%/K` or a plain number per kelvin.
 fn per_kelvin<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
-    match NumberOrText::deserialize(d)? {
+    match NumberOrText::read(d, "a temperature coefficient such as -0.4%/K")? {
         NumberOrText::Number(v) => Ok(v),
         NumberOrText::Text(t) => match number_and_unit(&t) {
             Some((v, "%/K" | "%/°C")) => Ok(v / 100.0),
@@ -483,7 +478,7 @@ fn per_kelvin<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
 
 /// A fraction: `96%` or `0.96`.
 fn fraction<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
-    match NumberOrText::deserialize(d)? {
+    match NumberOrText::read(d, "a fraction such as 96%")? {
         NumberOrText::Number(v) => Ok(v),
         NumberOrText::Text(t) => match number_and_unit(&t) {
             Some((v, "%")) => Ok(v / 100.0),
@@ -495,7 +490,7 @@ fn fraction<'de, D: Deserializer<'de>>(d: D) -> Result<f64, D::Error> {
 
 /// A ramp: `10%/s`, `400W/s`, `2kW/s` or a plain number in W/s.
 fn ramp<'de, D: Deserializer<'de>>(d: D) -> Result<Option<Ramp>, D::Error> {
-    let r = match NumberOrText::deserialize(d)? {
+    let r = match NumberOrText::read(d, "a ramp such as 10%/s or 400W/s (0 = instant)")? {
         NumberOrText::Number(v) => Ramp::WattsPerSecond(v),
         NumberOrText::Text(t) => match number_and_unit(&t) {
             Some((v, "%/s")) => Ramp::FractionPerSecond(v / 100.0),
