@@ -485,14 +485,20 @@ impl Report {
         if self.ev.is_some() || self.hot_water.is_some() {
             let _ = writeln!(o);
         }
-        if let Some(hw) = &self.hot_water {
-            // Two decimals: a few lukewarm litres lack only hundredths of a kWh, which
-            // one decimal would print as a puzzling "0.0 kWh short".
-            let _ = writeln!(
-                o,
-                "hot water: {:.0} L came out colder than asked for, {:.2} kWh short ({:.0} L, {:.2} kWh without diversion)",
-                hw.lukewarm_l, hw.short_kwh, hw.baseline_lukewarm_l, hw.baseline_short_kwh
-            );
+        match &self.hot_water {
+            Some(hw) if hw.lukewarm_l == 0.0 && hw.baseline_lukewarm_l == 0.0 => {
+                let _ = writeln!(o, "hot water: every draw came out as hot as asked for, also without diversion");
+            }
+            Some(hw) => {
+                // Two decimals: a few lukewarm litres lack only hundredths of a kWh,
+                // which one decimal would print as a puzzling "0.0 kWh short".
+                let _ = writeln!(
+                    o,
+                    "hot water: {:.0} L came out colder than asked for, {:.2} kWh short ({:.0} L, {:.2} kWh without diversion)",
+                    hw.lukewarm_l, hw.short_kwh, hw.baseline_lukewarm_l, hw.baseline_short_kwh
+                );
+            }
+            None => {}
         }
         if let Some(ev) = &self.ev {
             let _ = writeln!(
