@@ -176,9 +176,9 @@ const LEGEND_ROW_PX: u32 = 22;
 pub fn flows(site: &Site, report: &Report, trace: &Trace) -> Result<String, OfflineError> {
     let mut svg = String::new();
     {
-        // The legend's rows are known only once the series are: at most one per series
-        // the chart can draw (the loads, house, export, grid, battery, limit, PV, two
-        // tank lines and the cold-water marks), so size for that and trim nothing.
+        // The canvas is sized before the series are drawn, so for the most legend
+        // entries the chart can have: the loads, house, export, grid, battery, limit,
+        // PV, two tank lines and the cold-water marks (fewer leave a little white below).
         let rows = (trace.loads.len() + 9).div_ceil(LEGEND_COLUMNS) as u32;
         let (width, plot_h) = FLOWS_SIZE;
         let root = SVGBackend::with_string(&mut svg, (width, plot_h + 8 + rows * LEGEND_ROW_PX)).into_drawing_area();
