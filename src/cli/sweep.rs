@@ -312,17 +312,22 @@ fn to_text(rep: &SweepReport) -> String {
 
 fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
     use plotters::prelude::*;
+    use spillway::offline::chart::{Glyph, LEGEND_ROW_PX, draw_legend};
     let mut svg = String::new();
     {
-        let root = SVGBackend::with_string(&mut svg, (1100, 720)).into_drawing_area();
+        // Two panels, each with its legend in a row below it, where it covers no line.
+        let strip = LEGEND_ROW_PX + 8;
+        let root = SVGBackend::with_string(&mut svg, (1100, 720 + 2 * strip)).into_drawing_area();
         root.fill(&WHITE).map_err(|e| anyhow::anyhow!("{e}"))?;
-        let (top, bottom) = root.split_vertically(400);
+        let (top, bottom) = root.split_vertically(400 + strip);
+        let (top, top_legend) = top.split_vertically(400);
+        let (bottom, bottom_legend) = bottom.split_vertically(320);
+        let mut legend: Vec<(String, Glyph)> = Vec::new();
         let n = rep.points.len();
         let xs: Vec<f64> = (0..n).map(|i| i as f64).collect();
         let labels: Vec<String> = rep.points.iter().map(|p| p.value.clone()).collect();
-        // Headroom above the data for the legend in the upper left.
         let energy_max =
-            rep.points.iter().flat_map(|p| [p.import_kwh, p.export_kwh, p.diverted_kwh]).fold(1.0, f64::max) * 1.35;
+            rep.points.iter().flat_map(|p| [p.import_kwh, p.export_kwh, p.diverted_kwh]).fold(1.0, f64::max) * 1.15;
         let mut c = ChartBuilder::on(&top)
             .caption(format!("sweep of {} — energy per run ({} days)", rep.key, rep.days), ("sans-serif", 20))
             .margin(12)
@@ -351,16 +356,11 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
                 LineSeries::new(xs.iter().cloned().zip(rep.points.iter().map(get)), colour.stroke_width(3))
                     .point_size(4),
             )
-            .map_err(|e| anyhow::anyhow!("{e}"))?
-            .label(name)
-            .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], colour.stroke_width(3)));
-        }
-        c.configure_series_labels()
-            .position(SeriesLabelPosition::UpperLeft)
-            .background_style(WHITE.mix(0.85))
-            .border_style(RGBColor(200, 200, 200))
-            .draw()
             .map_err(|e| anyhow::anyhow!("{e}"))?;
+            legend.push((name.to_owned(), Glyph::Line(colour, 3)));
+        }
+        draw_legend(&top_legend, &legend)?;
+        legend.clear();
         let money_max = rep
             .points
             .iter()
@@ -394,9 +394,8 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
             )
             .point_size(4),
         )
-        .map_err(|e| anyhow::anyhow!("{e}"))?
-        .label("savings against no PV")
-        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], gold.stroke_width(3)));
+        .map_err(|e| anyhow::anyhow!("{e}"))?;
+        legend.push(("savings against no PV".to_owned(), Glyph::Line(gold, 3)));
         b.draw_series(
             LineSeries::new(
                 xs.iter().cloned().zip(rep.points.iter().map(|p| p.savings_vs_no_diversion.unwrap_or(0.0))),
@@ -404,9 +403,8 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
             )
             .point_size(4),
         )
-        .map_err(|e| anyhow::anyhow!("{e}"))?
-        .label("savings from diversion")
-        .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], RGBColor(60, 120, 200).stroke_width(2)));
+        .map_err(|e| anyhow::anyhow!("{e}"))?;
+        legend.push(("savings from diversion".to_owned(), Glyph::Line(RGBColor(60, 120, 200), 2)));
         b.draw_secondary_series(
             LineSeries::new(
                 xs.iter()
@@ -417,14 +415,9 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
             )
             .point_size(4),
         )
-        .map_err(|e| anyhow::anyhow!("{e}"))?
-        .label("payback (years, right axis)")
-        .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 14, y)], violet.stroke_width(2)));
-        b.configure_series_labels()
-            .background_style(WHITE.mix(0.85))
-            .border_style(RGBColor(200, 200, 200))
-            .draw()
-            .map_err(|e| anyhow::anyhow!("{e}"))?;
+        .map_err(|e| anyhow::anyhow!("{e}"))?;
+        legend.push(("payback (years, right axis)".to_owned(), Glyph::Line(violet, 2)));
+        draw_legend(&bottom_legend, &legend)?;
         root.present().map_err(|e| anyhow::anyhow!("{e}"))?;
     }
     Ok(svg)
@@ -497,5 +490,12 @@ mod tests {
         assert_eq!(axis_names, 2, "under both x axes");
         // A dot per value on each of the six lines.
         assert!(svg.matches("<circle").count() >= 6 * 3, "{} circles", svg.matches("<circle").count());
+        // Each panel's legend sits below it: the energy legend under the first panel's
+        // axis name, the savings legend under the second's.
+        let at = |text: &str| svg.find(&format!("\n{text}\n")).unwrap_or_else(|| panic!("no {text:?}"));
+        let first_axis = svg.find("\nmodules\n").unwrap();
+        let second_axis = svg.rfind("\nmodules\n").unwrap();
+        assert!(first_axis < at("import") && at("diverted") < at("savings per run and simple payback of the array"));
+        assert!(second_axis < at("savings against no PV") && second_axis < at("payback (years, right axis)"));
     }
 }

@@ -168,9 +168,11 @@ fn title(report: &Report, what: &str) -> String {
 
 /// Width of a flows chart, and the height of its plot (the legend adds rows below).
 const FLOWS_SIZE: (u32, u32) = (1200, 640);
-/// The legend below a flows chart: entries per row, and each row's height.
+/// Legends sit in rows below their plot (the flows and monthly charts here, the sweep's
+/// panels in `spillway sweep`): entries per row, and each row's height in pixels.
 const LEGEND_COLUMNS: usize = 4;
-const LEGEND_ROW_PX: u32 = 22;
+/// See [`LEGEND_COLUMNS`].
+pub const LEGEND_ROW_PX: u32 = 22;
 
 /// Power flows over time, with the legend in rows below the plot, where it hides nothing.
 pub fn flows(site: &Site, report: &Report, trace: &Trace) -> Result<String, OfflineError> {
@@ -192,7 +194,7 @@ pub fn flows(site: &Site, report: &Report, trace: &Trace) -> Result<String, Offl
 }
 
 /// How a legend entry shows its series.
-enum Glyph {
+pub enum Glyph {
     /// A filled area.
     Swatch(RGBAColor),
     /// A line of this width.
@@ -206,7 +208,7 @@ enum Glyph {
 }
 
 /// Draws `entries` in rows of [`LEGEND_COLUMNS`] across `area`, left to right.
-fn draw_legend(area: &DrawingArea<SVGBackend<'_>, Shift>, entries: &[(String, Glyph)]) -> Result<(), OfflineError> {
+pub fn draw_legend(area: &DrawingArea<SVGBackend<'_>, Shift>, entries: &[(String, Glyph)]) -> Result<(), OfflineError> {
     let (width, _) = area.dim_in_pixel();
     let left = 70; // under the plot, past the power axis's labels
     let column = (width as i32 - left - 70) / LEGEND_COLUMNS as i32;
