@@ -60,6 +60,9 @@ fn spillway_check_exits_zero_on_examples_and_one_on_broken_files() {
             if dir == "config" {
                 assert!(out.status.success(), "{}: {stderr}", path.display());
                 assert!(stdout.contains("loads, in priority order"), "{stdout}");
+                // The simulated tank's model is named: the examples' tanks are layered.
+                let has_tank = std::fs::read_to_string(&path).unwrap().contains("\n  tank:\n");
+                assert_eq!(stdout.contains(" L in 8 layers, every point"), has_tank, "{}: {stdout}", path.display());
             } else {
                 assert_eq!(out.status.code(), Some(1), "{}: {stdout}{stderr}", path.display());
                 let name = path.file_name().unwrap().to_string_lossy().into_owned();

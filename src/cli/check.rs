@@ -28,7 +28,15 @@ pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
         match offline::checked_plant(&loaded) {
             Ok(p) => {
                 let kwp = p.solar.as_ref().map_or(0.0, |s| s.nameplate_w() / 1000.0);
-                extra.push(format!("plant: {kwp:.2} kWp, every point and actuator found on the simulated devices"));
+                // The tank model moves the hot-water figures most, so name it.
+                let tank = match &p.tank {
+                    Some(t) if t.layers > 1 => format!(", tank {:.0} L in {} layers", t.volume, t.layers),
+                    Some(t) => format!(", tank {:.0} L as one well-mixed node", t.volume),
+                    None => String::new(),
+                };
+                extra.push(format!(
+                    "plant: {kwp:.2} kWp{tank}, every point and actuator found on the simulated devices"
+                ));
             }
             Err(e) => {
                 eprintln!("{}: plant: {e:#}", loaded.source.path);
