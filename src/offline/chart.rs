@@ -176,21 +176,37 @@ pub const LEGEND_ROW_PX: u32 = 22;
 
 /// Power flows over time, with the legend in rows below the plot, where it hides nothing.
 pub fn flows(site: &Site, report: &Report, trace: &Trace) -> Result<String, OfflineError> {
+    // The canvas is sized before the series are drawn, and which series there are (a
+    // battery, a limit, a layered tank, cold showers) is decided while drawing them. So
+    // draw once with room for every entry the chart can have, and again with the rows
+    // the legend turned out to need unless that first drawing already fits.
+    let most = (trace.loads.len() + 9).div_ceil(LEGEND_COLUMNS);
+    let (svg, entries) = flows_with_legend_rows(site, report, trace, most)?;
+    let rows = entries.div_ceil(LEGEND_COLUMNS);
+    if rows == most { Ok(svg) } else { Ok(flows_with_legend_rows(site, report, trace, rows)?.0) }
+}
+
+/// The flows chart with `rows` rows of legend below the plot, and the legend's count.
+fn flows_with_legend_rows(
+    site: &Site,
+    report: &Report,
+    trace: &Trace,
+    rows: usize,
+) -> Result<(String, usize), OfflineError> {
     let mut svg = String::new();
+    let entries;
     {
-        // The canvas is sized before the series are drawn, so for the most legend
-        // entries the chart can have: the loads, house, export, grid, battery, limit,
-        // PV, two tank lines and the cold-water marks (fewer leave a little white below).
-        let rows = (trace.loads.len() + 9).div_ceil(LEGEND_COLUMNS) as u32;
         let (width, plot_h) = FLOWS_SIZE;
-        let root = SVGBackend::with_string(&mut svg, (width, plot_h + 8 + rows * LEGEND_ROW_PX)).into_drawing_area();
+        let height = plot_h + 8 + rows as u32 * LEGEND_ROW_PX;
+        let root = SVGBackend::with_string(&mut svg, (width, height)).into_drawing_area();
         root.fill(&WHITE).map_err(err)?;
         let (plot, strip) = root.split_vertically(plot_h);
         let legend = draw_flows(&plot, site, report, trace)?;
         draw_legend(&strip, &legend)?;
+        entries = legend.len();
         root.present().map_err(err)?;
     }
-    Ok(svg)
+    Ok((svg, entries))
 }
 
 /// How a legend entry shows its series.
@@ -663,5 +679,17 @@ mod tests {
         // Rows of four: the fifth entry starts the second row.
         assert_eq!(text_y("grid (import +)"), text_y("water_heater"));
         assert!(text_y("inverter limit") > text_y("water_heater") + 10.0);
+        // Eight entries (the heater, house, export, grid, limit, PV and the tank's two
+        // lines) need two rows, and the canvas has just those below the plot.
+        let height = |svg: &str| -> u32 {
+            let h = &svg[svg.find("height=\"").unwrap() + 8..];
+            h[..h.find('"').unwrap()].parse().unwrap()
+        };
+        assert_eq!(height(&svg), FLOWS_SIZE.1 + 8 + 2 * LEGEND_ROW_PX);
+        assert_eq!(
+            height(&flows_svg(&four_hours())),
+            FLOWS_SIZE.1 + 8 + LEGEND_ROW_PX,
+            "house, export, grid, PV: one row"
+        );
     }
 }
