@@ -116,8 +116,8 @@ pub(crate) enum NumberOrText {
 
 impl NumberOrText {
     /// Reads one. A list, a map or nothing is refused in plain words naming `expected`
-    /// (e.g. "a power such as 3kW or 800W"), and so is a number that is not finite
-    /// (`.nan`, `.inf`), which no quantity of a plant can be.
+    /// (e.g. "a power such as 3kW or 800W"). (`.nan` and `.inf` never get here: the YAML
+    /// reader refuses non-finite numbers.)
     pub(crate) fn read<'de, D: Deserializer<'de>>(d: D, expected: &'static str) -> Result<Self, D::Error> {
         struct Reader(&'static str);
         impl Reader {
@@ -131,7 +131,7 @@ impl NumberOrText {
                 f.write_str(self.0)
             }
             fn visit_f64<E: de::Error>(self, v: f64) -> Result<NumberOrText, E> {
-                if v.is_finite() { Ok(NumberOrText::Number(v)) } else { Err(self.refuse(&format!("`{v}`"))) }
+                Ok(NumberOrText::Number(v))
             }
             fn visit_i64<E: de::Error>(self, v: i64) -> Result<NumberOrText, E> {
                 Ok(NumberOrText::Number(v as f64))

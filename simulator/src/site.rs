@@ -143,6 +143,8 @@ mod tests {
             ("seed: seven\n", "expected a whole number of 0 or more"),
             ("tank: { volume: [], element: 3kW }\n", "expected a volume such as 150L, found a list"),
             ("tank: { volume: 150L, element: ~ }\n", "expected a power such as 3kW or 800W, found nothing"),
+            ("tank: { volume: true, element: 3kW }\n", "expected a volume such as 150L, found `true`"),
+            ("tank: { volume: 150L, element: { kW: 3 } }\n", "expected a power such as 3kW or 800W, found a map"),
             ("tank: 5\n", "expected a map of `key: value` entries"),
             ("loads: { name: heater }\n", "expected a list (items on lines starting `- `, or `[a, b]`)"),
         ];

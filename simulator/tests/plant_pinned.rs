@@ -16,11 +16,7 @@ const START_MS: i64 = 1_748_736_000_000; // 2025-06-01T00:00:00Z
 #[test]
 fn two_days_of_the_example_plant_with_a_battery_give_the_pinned_outputs() {
     // The one-node tank (the example's tank is layered): its path stays pinned too.
-    let text = two_days(|cfg| {
-        if let Some(tank) = cfg.tank.as_mut() {
-            tank.layers = 1;
-        }
-    });
+    let text = two_days(1);
     expect_file!["pinned/plant_two_days.txt"].assert_eq(&text);
 }
 
@@ -28,20 +24,19 @@ fn two_days_of_the_example_plant_with_a_battery_give_the_pinned_outputs() {
 /// on its own so that work on the layered path is checked as the one-node path is.
 #[test]
 fn two_days_with_a_layered_tank_give_the_pinned_outputs() {
-    let text = two_days(|cfg| {
-        if let Some(tank) = cfg.tank.as_mut() {
-            tank.layers = 8;
-        }
-    });
+    let text = two_days(8);
     expect_file!["pinned/plant_two_days_layered_tank.txt"].assert_eq(&text);
 }
 
-/// Two days of the example plant with a battery added and `adjust` applied, summarised.
-fn two_days(adjust: impl FnOnce(&mut spillway_sim::plant::PlantConfig)) -> String {
+/// Two days of the example plant with a battery added and its tank in `layers` layers,
+/// summarised.
+fn two_days(layers: u32) -> String {
     let mut cfg = from_site_yaml(include_str!("../../config/zero-export-house.yaml"))
         .expect("the example parses")
         .expect("the example has a plant");
-    adjust(&mut cfg);
+    if let Some(tank) = cfg.tank.as_mut() {
+        tank.layers = layers;
+    }
     cfg.battery = Some(
         serde_saphyr::from_str("{ capacity: 10kWh, max_charge: 3kW, max_discharge: 3kW }").expect("battery parses"),
     );
