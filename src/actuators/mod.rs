@@ -152,9 +152,11 @@ pub fn load_levels(load: &Load, command: Command) -> Vec<(&Write, Level)> {
                 v.push((e, Level::Switch(amps > 0.0)));
             }
         }
-        LoadKind::Battery { setpoint, max_charge, .. } => {
+        LoadKind::Battery { setpoint, max_charge, discharge, .. } => {
+            // Negative (a discharge) only for a battery allowed to discharge, and no further.
+            let floor = discharge.map_or(0.0, |d| -d.max.0);
             let w = match command {
-                Command::Charge(p) => p.0.max(0.0),
+                Command::Charge(p) => p.0.max(floor),
                 Command::On => max_charge.0,
                 _ => 0.0,
             };

@@ -228,11 +228,22 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
             write_text(site, setpoint),
             if *hold_min_from_grid { "holds its minimum from the grid" } else { "pauses below its minimum" }
         ),
-        LoadKind::Battery { max_charge, min_charge, soc_max, soc_resume, soc, setpoint } => format!(
-            "battery charging from {min_charge} up to {max_charge} until {} reaches {soc_max} (resumes below {soc_resume}), power to {}",
-            site.points[soc.0].name,
-            write_text(site, setpoint)
-        ),
+        LoadKind::Battery { max_charge, min_charge, soc_max, soc_resume, soc, setpoint, discharge } => {
+            let discharge = match discharge {
+                None => "; never discharged by Spillway".to_string(),
+                Some(d) => format!(
+                    "; discharges up to {} to cover the house's own import{}, down to {}",
+                    d.max,
+                    d.window.map(|w| format!(" in {}..{}", w.start.format("%H:%M"), w.end.format("%H:%M"))).unwrap_or_default(),
+                    d.soc_min
+                ),
+            };
+            format!(
+                "battery charging from {min_charge} up to {max_charge} until {} reaches {soc_max} (resumes below {soc_resume}){discharge}, power to {}",
+                site.points[soc.0].name,
+                write_text(site, setpoint)
+            )
+        }
     }
 }
 

@@ -1815,6 +1815,10 @@ impl Builder<'_, '_> {
                     );
                     return None;
                 }
+                let discharge = match m.get("discharge") {
+                    Some(n) => Some(self.discharge(n, what, soc_resume)?),
+                    None => None,
+                };
                 let (max_charge, min_charge) = (max_charge?, min_charge?);
                 if !(0.0..=max_charge).contains(&min_charge) {
                     self.diags.error(
@@ -1832,9 +1836,48 @@ impl Builder<'_, '_> {
                     soc_resume: Ratio(soc_resume),
                     soc: soc?,
                     setpoint: setpoint?,
+                    discharge,
                 })
             }
         }
+    }
+
+    /// A battery's `discharge:` mapping: `{ max: 3kW, soc_min: 20%, window: "16:00..23:00" }`.
+    fn discharge(&mut self, node: &Node, what: &str, soc_resume: f64) -> Option<Discharge> {
+        let mut m = MapReader::new(node, format!("{what}: discharge"), self.diags)?;
+        let max = m
+            .require("max", self.diags)
+            .and_then(|n| values::positive(n, Dimension::Power, "the maximum discharge power", self.diags));
+        let soc_min_node = m.get("soc_min");
+        let soc_min = soc_min_node.map_or(Some(20.0), |n| {
+            values::quantity(n, Dimension::Ratio, "the lowest state of charge", self.diags)
+        });
+        let window = match m.get("window") {
+            Some(n) => Some(values::window(n, "the discharge window", self.diags)),
+            None => None,
+        };
+        let span = m.span();
+        m.finish(self.diags);
+        let window = match window {
+            Some(w) => Some(w?),
+            None => None,
+        };
+        let (max, soc_min) = (max?, soc_min?);
+        // Charging resumes below `soc_resume` and discharging stops at `soc_min`: with the
+        // floor at or above the resume level the two would hand the battery back and forth.
+        if !(0.0..100.0).contains(&soc_min) || soc_min + Discharge::RESUME_BAND_PCT > soc_resume {
+            self.diags.error(
+                "C0273",
+                format!("{what}: discharging stops at {soc_min} % but charging resumes at {soc_resume} %"),
+                soc_min_node.map_or(span, |n| n.span.clone()),
+                format!(
+                    "soc_min must lie within 0–100 % and at least {} points below soc_resume",
+                    Discharge::RESUME_BAND_PCT
+                ),
+            );
+            return None;
+        }
+        Some(Discharge { max: Power(max), soc_min: Ratio(soc_min), window })
     }
 
     fn stages(&mut self, node: &Node, what: &str) -> Option<Vec<Power>> {

@@ -602,7 +602,27 @@ pub enum LoadKind {
         soc: PointId,
         /// Where the charge power is written (W).
         setpoint: Write,
+        /// Whether, and how far, it may discharge to cover the house's own import.
+        discharge: Option<Discharge>,
     },
+}
+
+/// A commanded battery's discharge: it covers what the house itself imports (never
+/// what a managed load draws), down to a floor of charge, inside an optional window.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Discharge {
+    /// Largest discharge power.
+    pub max: Power,
+    /// State of charge at which discharging stops; it resumes 5 points above it.
+    pub soc_min: Ratio,
+    /// Time of day it may discharge (all day if absent).
+    pub window: Option<Window>,
+}
+
+impl Discharge {
+    /// The band above `soc_min` a discharge stopped by it waits out before resuming, so a
+    /// battery resting at its floor does not flick between charge and discharge.
+    pub const RESUME_BAND_PCT: f64 = 5.0;
 }
 
 impl LoadKind {

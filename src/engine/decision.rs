@@ -62,6 +62,7 @@ impl fmt::Display for Command {
             Command::Stage(n) => write!(f, "stage {n}"),
             Command::Setpoint(r) => write!(f, "{r}"),
             Command::Current(a) => write!(f, "{a}"),
+            Command::Charge(p) if p.0 < 0.0 => write!(f, "discharge {}", -*p),
             Command::Charge(p) => write!(f, "charge {p}"),
         }
     }
@@ -136,6 +137,11 @@ pub enum Reason {
     },
     /// A battery at its upper state-of-charge limit.
     Full,
+    /// A battery discharging to cover the house's own import.
+    CoveringHouse {
+        /// The discharge.
+        power: Power,
+    },
 }
 
 impl Reason {
@@ -160,6 +166,7 @@ impl Reason {
             Reason::Following { .. } => "following_surplus",
             Reason::BelowMinimum { .. } => "below_minimum",
             Reason::Full => "full",
+            Reason::CoveringHouse { .. } => "covering_house",
         }
     }
 
@@ -266,6 +273,7 @@ impl fmt::Display for Reason {
                 write!(f, "paused: {available} available, needs {minimum}")
             }
             Reason::Full => f.write_str("off: at its upper state of charge"),
+            Reason::CoveringHouse { power } => write!(f, "discharging {power} to cover the house's own import"),
         }
     }
 }

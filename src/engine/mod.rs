@@ -15,6 +15,7 @@
 mod clock;
 mod counters;
 mod decision;
+mod discharge;
 mod guard;
 mod modulation;
 mod obligations;
@@ -82,6 +83,8 @@ struct LoadState {
     switched_because: Option<String>,
     /// Batteries: reached the upper state of charge, waiting for the resume level.
     full: bool,
+    /// Batteries allowed to discharge: their cover of the house's own import.
+    cover: Option<discharge::Cover>,
     /// Settling after recovery: whether this load has used its one switching.
     settled: bool,
     override_: Option<Override>,
@@ -111,6 +114,8 @@ pub struct Engine {
     recovered_at: Option<Timestamp>,
     outage_since: Option<Timestamp>,
     float: bool,
+    /// Whether any battery may discharge to cover the house (most sites: none).
+    covers: bool,
     /// Whether the site has ever left the initial fail-safe.
     ever_normal: bool,
     /// When the modulating loads last jumped to absorb export (once per grid reading).
@@ -154,6 +159,8 @@ impl Engine {
                 stage_changed_at: Timestamp::NEVER,
                 switched_because: None,
                 full: false,
+                cover: matches!(l.kind, LoadKind::Battery { discharge: Some(_), .. })
+                    .then(discharge::Cover::default),
                 settled: true,
                 override_: None,
                 deps: load_deps(&site, l, &guard_points),
@@ -185,6 +192,7 @@ impl Engine {
             recovered_at: None,
             outage_since: None,
             float: false,
+            covers: site.loads.iter().any(|l| matches!(l.kind, LoadKind::Battery { discharge: Some(_), .. })),
             ever_normal: false,
             jump_at: None,
             reserved: Vec::new(),
@@ -422,7 +430,9 @@ impl Engine {
         // which wait for every pending store (≈ 5 % of a simulated run).
         let site = &*self.site;
 
-        // Power each load draws now: its own meter if fresh, otherwise as commanded.
+        // Power each load draws now: its own meter if fresh, otherwise as commanded. A
+        // battery covering the house counts negative: its discharge is import as far as
+        // the other loads' surplus goes.
         let mut managed = Power::ZERO;
         for (l, s) in site.loads.iter().zip(self.loads.iter_mut()) {
             s.power = match l.power.map(|p| self.values[p.0]) {
@@ -431,6 +441,8 @@ impl Engine {
             };
             managed += s.power;
         }
+        let covering = self.covers && self.loads.iter().any(|s| s.cover.as_ref().is_some_and(|c| c.power > Power::ZERO));
+        let diverted = if covering { self.loads.iter().map(|s| s.power.max(Power::ZERO)).sum() } else { managed };
 
         // Site flows.
         let grid = site.roles.grid.map(|p| self.values[p.0]).filter(|v| v.is_finite()).map(Power);
@@ -453,7 +465,7 @@ impl Engine {
         let site_surplus = base_surplus.map(|s| s + hidden);
         if let Some(g) = grid {
             let dt = dt.min(MAX_INTEGRATION_GAP);
-            self.counters.integrate(g, managed, dt);
+            self.counters.integrate(g, diverted, dt);
         }
         for (l, s) in site.loads.iter().zip(self.loads.iter_mut()) {
             let _ = l;
@@ -461,7 +473,7 @@ impl Engine {
             if s.command.is_on() {
                 s.runtime_today += dt;
             }
-            s.energy_today += s.power.over(dt);
+            s.energy_today += s.power.max(Power::ZERO).over(dt);
         }
         self.write_derived(now, grid, site_surplus);
         let site = &*self.site;
@@ -511,7 +523,7 @@ impl Engine {
             let surplus_i = site_surplus.map(|s| s - used - reserved[i]);
             self.values[site.slots.site.surplus.0 as usize] = surplus_i.map_or(f64::NAN, |p| p.0);
             let input = EvalInput { values: &self.values, now, local: input_local };
-            let (command, reason, headroom) = decide(
+            let (mut command, mut reason, headroom) = decide(
                 site,
                 i,
                 &mut self.loads[i],
@@ -523,12 +535,21 @@ impl Engine {
                 self.recovered_at,
                 self.outage_since,
             );
+            if let Some(cover) = &mut self.loads[i].cover {
+                let reading = grid.map(|g| (g, grid_at));
+                let leave = site.import_target.max(discharge::MARGIN);
+                (command, reason) =
+                    cover_house(&site.loads[i].kind, cover, command, reason, self.mode, reading, leave, &input);
+            }
             absorbable += headroom;
             let st = &mut self.loads[i];
             let was_on = st.command.is_on();
             // A switching is a change of state a relay or contactor sees: on/off or a
-            // stage. A modulating load moving its setpoint is following, not switching.
-            let switched = command.is_on() != was_on
+            // stage. A modulating load moving its setpoint is following, not switching,
+            // and a battery has no relay at all: its charge starting and stopping (and
+            // turning into a discharge) is its setpoint following the surplus.
+            let relay_less = matches!(site.loads[i].kind, LoadKind::Battery { .. });
+            let switched = (command.is_on() != was_on && !relay_less)
                 || matches!((command, st.command), (Command::Stage(a), Command::Stage(b)) if a != b);
             if switched {
                 switchings.push(Switching { load: LoadId(i), from: st.command, to: command, reason });
@@ -564,6 +585,10 @@ impl Engine {
             new_power += p;
         }
         self.reserved = reserved;
+        if self.covers {
+            self.record_cover(now);
+        }
+        let site = &*self.site;
         // Export guard on the power the loads will draw after this tick's commands.
         let delta_loads = new_power - managed;
         let (limit, limit_reason) = self.guard.decide(
@@ -590,6 +615,28 @@ impl Engine {
         d.grid = grid;
         d.switchings = switchings;
         &self.decisions
+    }
+
+    /// Records, for each battery covering the house, this tick's discharge and what the
+    /// other managed loads are to draw: measured where they have a fresh meter, else as
+    /// now commanded (a late grid reading is matched with them, see [`discharge`]).
+    fn record_cover(&mut self, now: Timestamp) {
+        let site = &*self.site;
+        let drawn: Vec<Power> = site
+            .loads
+            .iter()
+            .zip(&self.loads)
+            .map(|(l, s)| match l.power.map(|p| self.values[p.0]) {
+                Some(v) if v.is_finite() => Power(v.max(0.0)),
+                _ => s.command.power(&l.kind).max(Power::ZERO),
+            })
+            .collect();
+        let total: Power = drawn.iter().copied().sum();
+        for (s, own) in self.loads.iter_mut().zip(&drawn) {
+            if let Some(cover) = &mut s.cover {
+                cover.record(now, total - *own);
+            }
+        }
     }
 
     fn calendar(&mut self, now: Timestamp) {
@@ -1108,6 +1155,35 @@ fn modulate(
         *u_total = (*u_total - (drawn - share)).max(Power::ZERO);
     }
     (command, reason, (max - drawn).max(Power::ZERO))
+}
+
+/// A battery allowed to discharge that is not charging covers the house's own import
+/// (see [`discharge`]), in normal operation only: a safe state, an override, an inhibit
+/// rule, a lost signal or an outage keep the decision as it was.
+#[allow(clippy::too_many_arguments)]
+fn cover_house(
+    kind: &LoadKind,
+    cover: &mut discharge::Cover,
+    command: Command,
+    reason: Reason,
+    mode: Mode,
+    reading: Option<(Power, Timestamp)>,
+    leave: Power,
+    input: &EvalInput<'_>,
+) -> (Command, Reason) {
+    let LoadKind::Battery { discharge: Some(d), soc, .. } = kind else {
+        return (command, reason);
+    };
+    let idle = matches!(
+        reason,
+        Reason::Waiting | Reason::Stopped | Reason::BelowMinimum { .. } | Reason::Following { .. } | Reason::Full
+    );
+    if mode != Mode::Normal || !idle || command.power(kind) > Power::ZERO {
+        cover.stop();
+        return (command, reason);
+    }
+    let p = cover.update(d, input.values[soc.0], reading, leave, input.local.seconds_of_day);
+    if p > Power::ZERO { (Command::Charge(-p), Reason::CoveringHouse { power: p }) } else { (command, reason) }
 }
 
 /// Rounds down to the resolution `step` (rounding down never over-absorbs into import).

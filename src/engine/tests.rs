@@ -468,6 +468,98 @@ fn a_battery_stops_charging_at_its_upper_soc_and_resumes_below_the_resume_level(
     assert!(matches!(h.command("battery"), Command::Charge(p) if p.0 > 0.0));
 }
 
+/// A battery allowed to discharge covers the house's own import in the evening, counts
+/// that discharge as import for the other loads (a heater waiting for surplus stays
+/// off), never pays for a load a person switched on, and stops when the meter goes
+/// silent. The grid here reads the previous tick's commands (one reading late).
+#[test]
+fn a_battery_allowed_to_discharge_covers_the_house_and_nothing_else() {
+    let loads = r#"
+  - name: heater
+    priority: 1
+    rated: 3kW
+    switch: { device: relays, coil: 0 }
+    start: surplus > 1kW for 20s
+    stop: import > 300W for 10s
+  - name: battery
+    priority: 2
+    kind: battery
+    max_charge: 3kW
+    soc: soc
+    setpoint: { device: relays, register: 400, type: i32 }
+    discharge: { max: 2.5kW, soc_min: 20% }
+"#;
+    let mut h = Harness::new(&site("  export: forbidden", loads).replace("rated: 5kW", "rated: 5kW\n  safe_limit: 0W"));
+    h.set("soc", 60.0);
+    let house = 800.0;
+    let (heater, battery) = (h.load("heater"), h.load("battery"));
+    let mut grid = Vec::new();
+    let step = |h: &mut Harness, seconds: usize, grid: &mut Vec<f64>| {
+        for _ in 0..seconds {
+            let d = h.engine.decisions().clone();
+            let drawn: f64 = d.loads.iter().zip(&h.site.loads).map(|(l, site_l)| l.command.power(&site_l.kind).0).sum();
+            let g = house + drawn;
+            h.set("grid", g);
+            grid.push(g);
+            h.tick();
+        }
+    };
+    step(&mut h, 60, &mut grid);
+    let Command::Charge(p) = h.command("battery") else { panic!("{:?}", h.command("battery")) };
+    assert!((p.0 + (house - 50.0)).abs() < 20.0, "covers all but the import target: {p:?}");
+    assert!(matches!(h.reason("battery"), Reason::CoveringHouse { .. }));
+    assert!(grid[10..].iter().all(|g| *g > 0.0), "never exports: {grid:?}");
+    assert_eq!(h.command("heater"), Command::Off, "the discharge is not surplus");
+
+    // A person switches the heater on: the battery does not pay for it.
+    h.engine.set_override(LoadId(heater), Command::On, h.now.plus(secs(3600)));
+    grid.clear();
+    step(&mut h, 30, &mut grid);
+    let last = *grid.last().unwrap();
+    assert!((last - (3000.0 + 50.0)).abs() < 25.0, "the heater stays on the grid: {last}");
+
+    // The meter goes silent: fail-safe, and the battery stops discharging.
+    h.engine.set_override(LoadId(heater), Command::Off, h.now.plus(secs(1)));
+    h.silence("grid");
+    h.run(secs(30));
+    assert_eq!(h.engine.decisions().loads[battery].command.power(&h.site.loads[battery].kind), Power::ZERO);
+    assert_eq!(h.engine.decisions().mode, Mode::Failsafe);
+}
+
+/// The `discharge:` keys: a floor that would meet the charging's resume level is
+/// refused, an unknown key is named, and the setpoint written is never a deeper
+/// discharge than `max` (nor any discharge for a battery without the key).
+#[test]
+fn a_batterys_discharge_keys_are_checked_and_its_setpoint_bounded() {
+    let loads = r#"
+  - name: battery
+    kind: battery
+    max_charge: 3kW
+    soc: soc
+    soc_max: 95%
+    setpoint: { device: relays, register: 400, type: i32 }
+    discharge: { max: 2kW, soc_min: 20%, window: "16:00..07:00" }
+"#;
+    let h = Harness::new(&site("  export: allowed", loads));
+    let described = crate::config::describe::describe(&h.site);
+    assert!(described.contains("discharges up to 2 kW to cover the house's own import in 16:00..07:00, down to 20 %"), "{described}");
+    let levels = |site: &Site, p: f64| match crate::actuators::load_levels(&site.loads[0], Command::Charge(Power(p)))[..] {
+        [(_, crate::actuators::Level::Value(v))] => v,
+        ref other => panic!("{other:?}"),
+    };
+    assert_eq!(levels(&h.site, -5000.0), -2000.0);
+    assert_eq!(levels(&h.site, -800.0), -800.0);
+    let without = Harness::new(&site("  export: allowed", &loads.replace("    discharge: { max: 2kW, soc_min: 20%, window: \"16:00..07:00\" }\n", "")));
+    assert_eq!(levels(&without.site, -800.0), 0.0, "no discharge without the key");
+
+    let high = site("  export: allowed", &loads.replace("soc_min: 20%", "soc_min: 91%"));
+    let Err(e) = load_str("test.yaml", &high) else { panic!("a floor at the resume level is refused") };
+    assert!(e.render(false).contains("[C0273]"), "{}", e.render(false));
+    let typo = site("  export: allowed", &loads.replace("soc_min: 20%", "soc_low: 20%"));
+    let Err(e) = load_str("test.yaml", &typo) else { panic!("an unknown key is refused") };
+    assert!(e.render(false).contains("unknown key \"soc_low\""), "{}", e.render(false));
+}
+
 /// Around zero surplus the PI's share follows the meter's noise; a battery that charged
 /// at any share of 1 W or more toggled on and off every few seconds at dawn and dusk
 /// (42 starts in an hour on the battery/EV example). It now starts at `min_charge`

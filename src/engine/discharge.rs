@@ -1,0 +1,187 @@
+//! A commanded battery covering the house's own import while it is not charging.
+//!
+//! The battery may pay for what the house itself draws from the grid in the evening,
+//! never for a managed load: a water heater kept on by "surplus" the battery pays for
+//! would drain it into hot water. So the discharge it is given is what the grid reading
+//! shows, plus what the battery was giving when that reading was taken, less what the
+//! managed loads were drawing then — each looked up at the instant the (delayed)
+//! reading describes, so a late reading is not answered twice.
+//!
+//! It comes down at once when the house needs less (a discharge that overshoots
+//! exports, which a no-export site must not do), and goes up by half the gap per
+//! reading, which settles within a few readings without overshooting on a meter that
+//! reports a second or two late.
+
+use std::collections::VecDeque;
+
+use crate::config::model::Discharge;
+use crate::units::{Power, Timestamp};
+
+/// Grid import the battery leaves uncovered, at least: the meter's noise around zero
+/// then reads as import, not export (`common practice`: self-consumption batteries aim
+/// a few tens of watts above zero). The site's `import_target` applies when higher.
+pub const MARGIN: Power = Power(30.0);
+
+/// The share of the gap to the wanted discharge closed per new reading, going up.
+const RISE_GAIN: f64 = 0.5;
+
+/// A discharge below this is not worth commanding (W).
+const LEAST: Power = Power(20.0);
+
+/// Commands older than the one in effect at the last reading are dropped; this caps the
+/// history when readings stop coming (the grid point then goes stale, and the battery
+/// stops discharging anyway).
+const HISTORY_CAP: usize = 64;
+
+/// One battery's cover of the house.
+#[derive(Debug, Clone, Default)]
+pub struct Cover {
+    /// The discharge commanded now (never negative).
+    pub power: Power,
+    /// The measuring instant of the grid reading last acted on.
+    reading_at: Option<Timestamp>,
+    /// Stopped at its lowest state of charge; waits for `soc_min` plus the resume band.
+    empty: bool,
+    /// What was commanded when: the instant, the discharge, and what the other managed
+    /// loads were to draw.
+    history: VecDeque<(Timestamp, Power, Power)>,
+}
+
+impl Cover {
+    /// Not covering (fail-safe, charging, a lost signal, outside its window…).
+    pub fn stop(&mut self) {
+        self.power = Power::ZERO;
+    }
+
+    /// The discharge to command this tick, given the state of charge (%), the fresh grid
+    /// reading with its measuring instant, the import to leave on the grid, and the
+    /// local time of day.
+    pub fn update(
+        &mut self,
+        d: &Discharge,
+        soc_pct: f64,
+        reading: Option<(Power, Timestamp)>,
+        leave: Power,
+        seconds_of_day: u32,
+    ) -> Power {
+        if soc_pct <= d.soc_min.0 {
+            self.empty = true;
+        } else if soc_pct >= d.soc_min.0 + Discharge::RESUME_BAND_PCT {
+            self.empty = false;
+        }
+        let in_window = d.window.is_none_or(|w| w.contains(seconds_of_day));
+        let Some((grid, at)) = reading.filter(|_| in_window && !self.empty) else {
+            self.stop();
+            return self.power;
+        };
+        if self.reading_at.is_some_and(|last| at <= last) {
+            return self.power;
+        }
+        self.reading_at = Some(at);
+        let (given, others) = self.in_effect(at);
+        let house = grid + given - others;
+        let want = (house - leave).clamp(Power::ZERO, d.max);
+        self.power = if want <= self.power { want } else { self.power + (want - self.power) * RISE_GAIN };
+        if self.power < LEAST {
+            self.power = Power::ZERO;
+        }
+        self.power
+    }
+
+    /// Records this tick's command and what the other managed loads were to draw.
+    pub fn record(&mut self, now: Timestamp, others: Power) {
+        self.history.push_back((now, self.power, others));
+        // Keep the entry in effect at the last reading and everything after it.
+        let last = self.reading_at.unwrap_or(Timestamp::NEVER);
+        while self.history.len() > 1 && (self.history[1].0 <= last || self.history.len() > HISTORY_CAP) {
+            self.history.pop_front();
+        }
+    }
+
+    /// The discharge and the other loads' power in effect at `at`: the last command
+    /// given at or before it (the earliest one known, if none).
+    fn in_effect(&self, at: Timestamp) -> (Power, Power) {
+        let entry = self.history.iter().rev().find(|(t, _, _)| *t <= at).or(self.history.front());
+        entry.map_or((Power::ZERO, Power::ZERO), |&(_, d, o)| (d, o))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn discharge(max: f64, soc_min: f64) -> Discharge {
+        Discharge { max: Power(max), soc_min: crate::units::Ratio(soc_min), window: None }
+    }
+
+    /// A house drawing `house` W; the meter reports each second what the grid was one
+    /// reading earlier (a late meter), with the loads' `others` W on top.
+    fn run(house: f64, others: f64, ticks: i64) -> Vec<f64> {
+        let d = discharge(5000.0, 20.0);
+        let mut c = Cover::default();
+        let mut grid_then = house + others;
+        let mut seen = Vec::new();
+        for s in 0..ticks {
+            let now = Timestamp(s * 1000);
+            let reading_at = Timestamp((s - 1) * 1000);
+            let p = c.update(&d, 60.0, Some((Power(grid_then), reading_at)), MARGIN, 43_200);
+            c.record(now, Power(others));
+            grid_then = house + others - p.0;
+            seen.push(grid_then);
+        }
+        seen
+    }
+
+    #[test]
+    fn covers_the_house_and_leaves_the_margin_without_exporting() {
+        let grid = run(800.0, 0.0, 30);
+        assert!(grid.iter().all(|g| *g >= 0.0), "never exports: {grid:?}");
+        let last = *grid.last().unwrap();
+        assert!((last - MARGIN.0).abs() < 2.0, "settles at the margin: {last}");
+    }
+
+    #[test]
+    fn never_pays_for_a_managed_load() {
+        // A 3.6 kW heater on and the house importing 500 W beside it: the battery covers
+        // the 500 W, not the heater.
+        let grid = run(500.0, 3600.0, 30);
+        let last = *grid.last().unwrap();
+        assert!((last - (3600.0 + MARGIN.0)).abs() < 2.0, "the heater stays on the grid: {last}");
+    }
+
+    #[test]
+    fn stops_at_its_floor_and_waits_for_the_resume_band() {
+        let d = discharge(3000.0, 20.0);
+        let mut c = Cover::default();
+        let reading = |s: i64| Some((Power(1000.0), Timestamp(s * 1000)));
+        assert!(c.update(&d, 21.0, reading(1), MARGIN, 0).0 > 0.0);
+        assert_eq!(c.update(&d, 20.0, reading(2), MARGIN, 0), Power::ZERO);
+        assert_eq!(c.update(&d, 24.0, reading(3), MARGIN, 0), Power::ZERO, "inside the band");
+        assert!(c.update(&d, 25.0, reading(4), MARGIN, 0).0 > 0.0, "resumes 5 points above");
+    }
+
+    #[test]
+    fn a_reading_is_answered_once_and_export_is_cut_at_once() {
+        let d = discharge(3000.0, 20.0);
+        let mut c = Cover::default();
+        let p1 = c.update(&d, 60.0, Some((Power(1000.0), Timestamp(0))), MARGIN, 0);
+        c.record(Timestamp(500), Power::ZERO);
+        assert_eq!(c.update(&d, 60.0, Some((Power(1000.0), Timestamp(0))), MARGIN, 0), p1, "the same reading again");
+        // The next reading shows export while the battery gave p1: down to what the
+        // house needs at once.
+        let p2 = c.update(&d, 60.0, Some((Power(-200.0), Timestamp(1000))), MARGIN, 0);
+        assert_eq!(p2, (p1 - Power(200.0) - MARGIN).max(Power::ZERO));
+    }
+
+    #[test]
+    fn keeps_to_its_window() {
+        let window = crate::config::model::Window {
+            start: chrono::NaiveTime::from_hms_opt(16, 0, 0).unwrap(),
+            end: chrono::NaiveTime::from_hms_opt(23, 0, 0).unwrap(),
+        };
+        let d = Discharge { window: Some(window), ..discharge(3000.0, 20.0) };
+        let mut c = Cover::default();
+        assert_eq!(c.update(&d, 60.0, Some((Power(900.0), Timestamp(0))), MARGIN, 15 * 3600), Power::ZERO);
+        assert!(c.update(&d, 60.0, Some((Power(900.0), Timestamp(1000))), MARGIN, 17 * 3600).0 > 0.0);
+    }
+}
