@@ -234,7 +234,9 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
                 Some(d) => format!(
                     "; discharges up to {} to cover the house's own import{}, down to {}",
                     d.max,
-                    d.window.map(|w| format!(" in {}..{}", w.start.format("%H:%M"), w.end.format("%H:%M"))).unwrap_or_default(),
+                    d.window
+                        .map(|w| format!(" in {}..{}", w.start.format("%H:%M"), w.end.format("%H:%M")))
+                        .unwrap_or_default(),
                     d.soc_min
                 ),
             };

@@ -1849,9 +1849,8 @@ impl Builder<'_, '_> {
             .require("max", self.diags)
             .and_then(|n| values::positive(n, Dimension::Power, "the maximum discharge power", self.diags));
         let soc_min_node = m.get("soc_min");
-        let soc_min = soc_min_node.map_or(Some(20.0), |n| {
-            values::quantity(n, Dimension::Ratio, "the lowest state of charge", self.diags)
-        });
+        let soc_min = soc_min_node
+            .map_or(Some(20.0), |n| values::quantity(n, Dimension::Ratio, "the lowest state of charge", self.diags));
         let window = match m.get("window") {
             Some(n) => Some(values::window(n, "the discharge window", self.diags)),
             None => None,
@@ -2464,6 +2463,20 @@ impl Builder<'_, '_> {
                             .with_label("grid: off")
                             .with_note("define points `battery_voltage` and `battery_current` (or `battery_power`), charging positive; `battery_soc` is used when present"),
                     );
+                }
+                // Covering the house is measured at the grid meter, which an island lacks.
+                for l in &site.loads {
+                    if matches!(l.kind, LoadKind::Battery { discharge: Some(_), .. }) {
+                        self.diags.push(
+                            Diagnostic::warning(
+                                "C0275",
+                                format!("load \"{}\": `discharge` does nothing off-grid", l.name),
+                                site_span.clone(),
+                            )
+                            .with_label("grid: off")
+                            .with_note("off-grid, the battery forms the island and covers the house by itself; remove `discharge`"),
+                        );
+                    }
                 }
             }
         }

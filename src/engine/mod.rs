@@ -159,8 +159,7 @@ impl Engine {
                 stage_changed_at: Timestamp::NEVER,
                 switched_because: None,
                 full: false,
-                cover: matches!(l.kind, LoadKind::Battery { discharge: Some(_), .. })
-                    .then(discharge::Cover::default),
+                cover: matches!(l.kind, LoadKind::Battery { discharge: Some(_), .. }).then(discharge::Cover::default),
                 settled: true,
                 override_: None,
                 deps: load_deps(&site, l, &guard_points),
@@ -441,7 +440,8 @@ impl Engine {
             };
             managed += s.power;
         }
-        let covering = self.covers && self.loads.iter().any(|s| s.cover.as_ref().is_some_and(|c| c.power > Power::ZERO));
+        let covering =
+            self.covers && self.loads.iter().any(|s| s.cover.as_ref().is_some_and(|c| c.power > Power::ZERO));
         let diverted = if covering { self.loads.iter().map(|s| s.power.max(Power::ZERO)).sum() } else { managed };
 
         // Site flows.

@@ -542,19 +542,39 @@ fn a_batterys_discharge_keys_are_checked_and_its_setpoint_bounded() {
 "#;
     let h = Harness::new(&site("  export: allowed", loads));
     let described = crate::config::describe::describe(&h.site);
-    assert!(described.contains("discharges up to 2 kW to cover the house's own import in 16:00..07:00, down to 20 %"), "{described}");
-    let levels = |site: &Site, p: f64| match crate::actuators::load_levels(&site.loads[0], Command::Charge(Power(p)))[..] {
+    assert!(
+        described.contains("discharges up to 2 kW to cover the house's own import in 16:00..07:00, down to 20 %"),
+        "{described}"
+    );
+    let levels = |site: &Site, p: f64| match crate::actuators::load_levels(&site.loads[0], Command::Charge(Power(p)))[..]
+    {
         [(_, crate::actuators::Level::Value(v))] => v,
         ref other => panic!("{other:?}"),
     };
     assert_eq!(levels(&h.site, -5000.0), -2000.0);
     assert_eq!(levels(&h.site, -800.0), -800.0);
-    let without = Harness::new(&site("  export: allowed", &loads.replace("    discharge: { max: 2kW, soc_min: 20%, window: \"16:00..07:00\" }\n", "")));
+    let without = Harness::new(&site(
+        "  export: allowed",
+        &loads.replace("    discharge: { max: 2kW, soc_min: 20%, window: \"16:00..07:00\" }\n", ""),
+    ));
     assert_eq!(levels(&without.site, -800.0), 0.0, "no discharge without the key");
 
     let high = site("  export: allowed", &loads.replace("soc_min: 20%", "soc_min: 91%"));
     let Err(e) = load_str("test.yaml", &high) else { panic!("a floor at the resume level is refused") };
     assert!(e.render(false).contains("[C0273]"), "{}", e.render(false));
+    let island = format!(
+        "site:\n  name: Cabin\n  timezone: America/Denver\n  grid: off\n  off_grid: {{ float_voltage: 54.4V }}\n{DEVICES}\n  battery_voltage: {{ device: meter, register: 50, scale: 0.01, unit: V }}\n  battery_current: {{ device: meter, register: 51, type: i16, scale: 0.1, unit: A }}\nloads:\n{loads}"
+    );
+    let loaded = load_str(
+        "test.yaml",
+        &island.replace("inverter:\n  rated: 5kW\n  limit: { device: inverter, register: 100 }\n", ""),
+    )
+    .unwrap_or_else(|e| panic!("{}", e.render(false)));
+    assert!(
+        loaded.warnings.iter().any(|w| w.code == "C0275"),
+        "off-grid, `discharge` does nothing: {:?}",
+        loaded.warnings
+    );
     let typo = site("  export: allowed", &loads.replace("soc_min: 20%", "soc_low: 20%"));
     let Err(e) = load_str("test.yaml", &typo) else { panic!("an unknown key is refused") };
     assert!(e.render(false).contains("unknown key \"soc_low\""), "{}", e.render(false));
