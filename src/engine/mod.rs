@@ -84,7 +84,8 @@ struct LoadState {
     /// Batteries: reached the upper state of charge, waiting for the resume level.
     full: bool,
     /// Batteries allowed to discharge: their cover of the house's own import.
-    cover: Option<discharge::Cover>,
+    /// (Boxed: most loads have none, and the tick walks these states.)
+    cover: Option<Box<discharge::Cover>>,
     /// Settling after recovery: whether this load has used its one switching.
     settled: bool,
     override_: Option<Override>,
@@ -159,7 +160,7 @@ impl Engine {
                 stage_changed_at: Timestamp::NEVER,
                 switched_because: None,
                 full: false,
-                cover: matches!(l.kind, LoadKind::Battery { discharge: Some(_), .. }).then(discharge::Cover::default),
+                cover: matches!(l.kind, LoadKind::Battery { discharge: Some(_), .. }).then(Box::default),
                 settled: true,
                 override_: None,
                 deps: load_deps(&site, l, &guard_points),
@@ -523,7 +524,7 @@ impl Engine {
             let surplus_i = site_surplus.map(|s| s - used - reserved[i]);
             self.values[site.slots.site.surplus.0 as usize] = surplus_i.map_or(f64::NAN, |p| p.0);
             let input = EvalInput { values: &self.values, now, local: input_local };
-            let (mut command, mut reason, headroom) = decide(
+            let (command, reason, headroom) = decide(
                 site,
                 i,
                 &mut self.loads[i],
@@ -535,12 +536,6 @@ impl Engine {
                 self.recovered_at,
                 self.outage_since,
             );
-            if let Some(cover) = &mut self.loads[i].cover {
-                let reading = grid.map(|g| (g, grid_at));
-                let leave = site.import_target.max(discharge::MARGIN);
-                (command, reason) =
-                    cover_house(&site.loads[i].kind, cover, command, reason, self.mode, reading, leave, &input);
-            }
             absorbable += headroom;
             let st = &mut self.loads[i];
             let was_on = st.command.is_on();
@@ -548,8 +543,7 @@ impl Engine {
             // stage. A modulating load moving its setpoint is following, not switching,
             // and a battery has no relay at all: its charge starting and stopping (and
             // turning into a discharge) is its setpoint following the surplus.
-            let relay_less = matches!(site.loads[i].kind, LoadKind::Battery { .. });
-            let switched = (command.is_on() != was_on && !relay_less)
+            let switched = (command.is_on() != was_on && !matches!(site.loads[i].kind, LoadKind::Battery { .. }))
                 || matches!((command, st.command), (Command::Stage(a), Command::Stage(b)) if a != b);
             if switched {
                 switchings.push(Switching { load: LoadId(i), from: st.command, to: command, reason });
@@ -586,6 +580,7 @@ impl Engine {
         }
         self.reserved = reserved;
         if self.covers {
+            new_power += self.cover_house(grid.map(|g| (g, grid_at)));
             self.record_cover(now);
         }
         let site = &*self.site;
@@ -617,24 +612,65 @@ impl Engine {
         &self.decisions
     }
 
+    /// Batteries allowed to discharge that are not charging cover the house's own import
+    /// (see [`discharge`]), in normal operation only: a safe state, an override, an
+    /// inhibit rule, a lost signal or an outage keep the decision as it was. Runs after
+    /// the loads are decided (a discharge is not surplus for anyone this tick) and
+    /// returns the power it adds to the loads' total: the discharges, negative.
+    fn cover_house(&mut self, reading: Option<(Power, Timestamp)>) -> Power {
+        let site = &*self.site;
+        let leave = site.import_target.max(discharge::MARGIN);
+        let mut added = Power::ZERO;
+        for (l, st) in site.loads.iter().zip(self.loads.iter_mut()) {
+            let (Some(cover), LoadKind::Battery { discharge: Some(d), soc, .. }) = (&mut st.cover, &l.kind) else {
+                continue;
+            };
+            // Not charging, and held off charging at most by its own limits.
+            let idle = matches!(
+                st.reason,
+                Reason::Waiting
+                    | Reason::Stopped
+                    | Reason::BelowMinimum { .. }
+                    | Reason::Following { .. }
+                    | Reason::Full
+                    | Reason::MinOff { .. }
+                    | Reason::StartsCapped { .. }
+            );
+            if self.mode != Mode::Normal || !idle || st.command.power(&l.kind) > Power::ZERO {
+                cover.stop();
+                // A decision that kept the last command (a `hold` safe state, settling)
+                // must not keep a discharge nobody is steering any more.
+                if matches!(st.command, Command::Charge(p) if p < Power::ZERO) {
+                    added -= st.command.power(&l.kind);
+                    st.command = Command::Off;
+                }
+                continue;
+            }
+            let p = cover.update(d, self.values[soc.0], reading, leave, self.local.seconds_of_day);
+            if p > Power::ZERO {
+                added -= st.command.power(&l.kind) + p;
+                st.command = Command::Charge(-p);
+                st.reason = Reason::CoveringHouse { power: p };
+            }
+        }
+        added
+    }
+
     /// Records, for each battery covering the house, this tick's discharge and what the
     /// other managed loads are to draw: measured where they have a fresh meter, else as
     /// now commanded (a late grid reading is matched with them, see [`discharge`]).
     fn record_cover(&mut self, now: Timestamp) {
         let site = &*self.site;
-        let drawn: Vec<Power> = site
-            .loads
-            .iter()
-            .zip(&self.loads)
-            .map(|(l, s)| match l.power.map(|p| self.values[p.0]) {
-                Some(v) if v.is_finite() => Power(v.max(0.0)),
-                _ => s.command.power(&l.kind).max(Power::ZERO),
-            })
-            .collect();
-        let total: Power = drawn.iter().copied().sum();
-        for (s, own) in self.loads.iter_mut().zip(&drawn) {
+        let values = &self.values;
+        let drawn = |l: &crate::config::model::Load, s: &LoadState| match l.power.map(|p| values[p.0]) {
+            Some(v) if v.is_finite() => Power(v.max(0.0)),
+            _ => s.command.power(&l.kind).max(Power::ZERO),
+        };
+        let total: Power = site.loads.iter().zip(&self.loads).map(|(l, s)| drawn(l, s)).sum();
+        for (l, s) in site.loads.iter().zip(self.loads.iter_mut()) {
+            let own = drawn(l, s);
             if let Some(cover) = &mut s.cover {
-                cover.record(now, total - *own);
+                cover.record(now, total - own);
             }
         }
     }
@@ -1155,35 +1191,6 @@ fn modulate(
         *u_total = (*u_total - (drawn - share)).max(Power::ZERO);
     }
     (command, reason, (max - drawn).max(Power::ZERO))
-}
-
-/// A battery allowed to discharge that is not charging covers the house's own import
-/// (see [`discharge`]), in normal operation only: a safe state, an override, an inhibit
-/// rule, a lost signal or an outage keep the decision as it was.
-#[allow(clippy::too_many_arguments)]
-fn cover_house(
-    kind: &LoadKind,
-    cover: &mut discharge::Cover,
-    command: Command,
-    reason: Reason,
-    mode: Mode,
-    reading: Option<(Power, Timestamp)>,
-    leave: Power,
-    input: &EvalInput<'_>,
-) -> (Command, Reason) {
-    let LoadKind::Battery { discharge: Some(d), soc, .. } = kind else {
-        return (command, reason);
-    };
-    let idle = matches!(
-        reason,
-        Reason::Waiting | Reason::Stopped | Reason::BelowMinimum { .. } | Reason::Following { .. } | Reason::Full
-    );
-    if mode != Mode::Normal || !idle || command.power(kind) > Power::ZERO {
-        cover.stop();
-        return (command, reason);
-    }
-    let p = cover.update(d, input.values[soc.0], reading, leave, input.local.seconds_of_day);
-    if p > Power::ZERO { (Command::Charge(-p), Reason::CoveringHouse { power: p }) } else { (command, reason) }
 }
 
 /// Rounds down to the resolution `step` (rounding down never over-absorbs into import).
