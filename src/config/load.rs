@@ -1819,6 +1819,23 @@ impl Builder<'_, '_> {
                     Some(n) => Some(self.discharge(n, what, soc_resume)?),
                     None => None,
                 };
+                // A discharge is a negative setpoint: an unsigned register would write
+                // it as 0, and the battery would never discharge, without a word.
+                if discharge.is_some()
+                    && let Some(Write::Register { value_type, .. }) = &setpoint
+                    && matches!(value_type, ValueType::U16 | ValueType::U32 | ValueType::U64 | ValueType::Bool)
+                {
+                    self.diags.error(
+                        "C0276",
+                        format!(
+                            "{what}: `discharge` needs a signed setpoint register, not {}",
+                            format!("{value_type:?}").to_lowercase()
+                        ),
+                        m.span(),
+                        "a discharge is written as a negative power: give the setpoint `type: i16` or `type: i32` (or `f32`)",
+                    );
+                    return None;
+                }
                 let (max_charge, min_charge) = (max_charge?, min_charge?);
                 if !(0.0..=max_charge).contains(&min_charge) {
                     self.diags.error(

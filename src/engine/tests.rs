@@ -576,6 +576,9 @@ fn a_batterys_discharge_keys_are_checked_and_its_setpoint_bounded() {
         "off-grid, `discharge` does nothing: {:?}",
         loaded.warnings
     );
+    let unsigned = site("  export: allowed", &loads.replace("register: 400, type: i32", "register: 400"));
+    let Err(e) = load_str("test.yaml", &unsigned) else { panic!("an unsigned setpoint cannot discharge") };
+    assert!(e.render(false).contains("[C0276]") && e.render(false).contains("not u16"), "{}", e.render(false));
     let typo = site("  export: allowed", &loads.replace("soc_min: 20%", "soc_low: 20%"));
     let Err(e) = load_str("test.yaml", &typo) else { panic!("an unknown key is refused") };
     assert!(e.render(false).contains("unknown key \"soc_low\""), "{}", e.render(false));
