@@ -147,6 +147,32 @@ async fn a_silent_meter_curtails_and_opens_the_relays_within_the_timeout() {
     sim.handle.stop().await;
 }
 
+/// The battery/EV example over the wire, after sunset (19:30 in Adelaide, no PV): the
+/// daemon writes a negative setpoint to the simulated battery (an `i32` holding
+/// register), the battery discharges, and the meter settles just above zero, where the
+/// cover leaves it. On a silent meter the setpoint goes back to 0.
+#[tokio::test(start_paused = true)]
+async fn a_commanded_battery_covers_the_house_over_the_wire() {
+    let sim = Sim::start_site(include_str!("../config/battery-ev-limited-export.yaml"), 0.0).await;
+    let daemon = daemon_for(&sim, &sim.site_yaml()).await;
+    sim_until("the battery told to discharge", Duration::from_secs(60), || sim.handle.controls().battery_w < -100.0)
+        .await;
+    tokio::time::sleep(Duration::from_secs(30)).await;
+    let given = -sim.handle.controls().battery_w;
+    let meter = sim.meter_w();
+    println!("simulator: after sunset the battery gives {given:.0} W and the meter reads {meter:.0} W");
+    assert!((-20.0..200.0).contains(&meter), "the house covered, a little import left: {meter:.0} W");
+    let s = daemon.status().borrow().clone();
+    assert_eq!(load(&s, "home_battery").reason, "covering_house");
+    assert!(load(&s, "home_battery").power_w < -100.0);
+
+    sim.handle.inject_spec("meter-silent+30s").unwrap();
+    sim_until("the discharge stopped", Duration::from_secs(10), || sim.handle.controls().battery_w == 0.0).await;
+    daemon.shutdown();
+    daemon.wait().await;
+    sim.handle.stop().await;
+}
+
 /// `spillway failsafe-test` against the simulator: the "cable pulled" is the
 /// simulator's silent meter; the test times the way to the safe state and the return.
 #[tokio::test(start_paused = true)]

@@ -44,18 +44,25 @@ pub const START_MS: i64 = 1_782_036_000_000;
 pub struct Sim {
     pub handle: ServerHandle,
     pub pv: StepPv,
+    /// The site file whose plant is served.
+    site: &'static str,
 }
 
 impl Sim {
     /// Serves the example plant on 127.0.0.1:0 with a 100 ms step.
     pub async fn start(pv_w: f64) -> Sim {
-        let cfg = from_site_yaml(SITE).unwrap().expect("the example has a plant section");
+        Sim::start_site(SITE, pv_w).await
+    }
+
+    /// Serves the plant of another site file (devices at 127.0.0.1:5020 in it).
+    pub async fn start_site(site: &'static str, pv_w: f64) -> Sim {
+        let cfg = from_site_yaml(site).unwrap().expect("the site has a plant section");
         let pv = StepPv::default();
         pv.set(pv_w);
         let plant = Plant::new(&cfg, Box::new(pv.clone()), START_MS, cfg.seed.unwrap_or(7)).unwrap();
         let options = ServeOptions { step: Some(Duration::from_millis(100)), ..ServeOptions::default() };
         let handle = Server::start(plant, options).await.unwrap();
-        Sim { handle, pv }
+        Sim { handle, pv, site }
     }
 
     pub fn addr(&self) -> SocketAddr {
@@ -64,7 +71,7 @@ impl Sim {
 
     /// The example site pointed at this simulator; `edit` may change its text.
     pub fn site_yaml(&self) -> String {
-        SITE.replace("127.0.0.1:5020", &self.addr().to_string())
+        self.site.replace("127.0.0.1:5020", &self.addr().to_string())
     }
 
     /// Writes [`Sim::site_yaml`] to `NAME.yaml` in a fresh temporary directory named by
