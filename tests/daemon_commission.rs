@@ -9,7 +9,7 @@ mod support;
 
 use std::time::Duration;
 
-use daemon_support::{LOADS, Plant};
+use daemon_support::{BATTERY_REGISTER, LOADS, Plant};
 use tokio::process::Command;
 use tokio_modbus::ExceptionCode;
 
@@ -119,6 +119,69 @@ async fn step_test_switches_the_load_measures_the_step_and_switches_it_off() {
     assert_eq!(code, 1);
     assert!(err.contains("device \"meter\" does not answer"), "{err}");
     let _ = std::fs::remove_dir_all(path.parent().unwrap());
+}
+
+/// A battery stepped both ways: charging, and with `--discharge` the other way, which
+/// proves the setpoint's sign. A battery inverter that takes + as discharging is caught
+/// (the step goes the wrong way, exit 1, and the message says what to change); a
+/// discharge on a load that may not, or beyond its `discharge.max`, is a bad flag.
+#[tokio::test]
+async fn step_test_steps_a_battery_both_ways_and_catches_a_reversed_sign() {
+    let plant = Plant::start(0.0).await;
+    let dir = std::env::temp_dir().join(format!("spillway-commission-battery-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("bench.yaml");
+    let battery = format!(
+        "{LOADS}
+  - name: battery
+    priority: 3
+    kind: battery
+    max_charge: 2kW
+    soc: soc
+    setpoint: {{ device: relays, register: {BATTERY_REGISTER}, type: i32 }}
+    discharge: {{ max: 1kW }}
+"
+    );
+    let yaml = plant
+        .site_yaml(&battery, "")
+        .replace("\ninverter:", "\n  soc: { device: relays, register: 60, unit: \"%\" }\ninverter:");
+    std::fs::write(&path, yaml).unwrap();
+    let site = path.display().to_string();
+    let step = |extra: &'static [&'static str]| {
+        let site = site.clone();
+        async move {
+            let mut args =
+                vec!["step-test", site.as_str(), "--load", "battery", "--hold", "3s", "--settle", "2s", "--yes"];
+            args.extend_from_slice(extra);
+            spillway(&args).await
+        }
+    };
+
+    let (code, out, err) = step(&[]).await;
+    println!("{out}");
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert!(out.contains("battery: CHARGE 2 kW") && out.contains("battery: 0 W"), "{out}");
+    assert!(out.contains("step +2000 W against 2 kW asked: the setpoint drives this battery, + charging"), "{out}");
+    let (code, out, err) = step(&["--discharge", "300W"]).await;
+    println!("{out}");
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert!(out.contains("told to DISCHARGE 300 W") && out.contains("step -300 W against -300 W asked"), "{out}");
+    assert_eq!(plant.devices.holding(3, BATTERY_REGISTER + 1), Some(0), "back to 0 W");
+
+    plant.reverse_battery();
+    let (code, out, _) = step(&["--discharge", "300W"]).await;
+    println!("{out}");
+    assert_eq!(code, 1, "{out}");
+    assert!(out.contains("step +300 W against -300 W asked: the battery went the other way"), "{out}");
+
+    let (code, _, err) = step(&["--discharge", "2kW"]).await;
+    assert_eq!(code, 2);
+    assert!(err.contains("at most 1 kW"), "{err}");
+    let (code, _, err) =
+        spillway(&["step-test", &site, "--load", "water_heater", "--discharge", "300W", "--yes"]).await;
+    assert_eq!(code, 2);
+    assert!(err.contains("--discharge is for a battery load"), "{err}");
+    let _ = std::fs::remove_dir_all(&dir);
 }
 
 /// `failsafe-test` as an installer runs it: the meter's link is "unplugged" when the

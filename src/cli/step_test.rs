@@ -1,6 +1,8 @@
-//! `spillway step-test SITE.yaml --load NAME [--hold 10s] [--yes]`: switch one load on,
-//! watch the grid meter, switch it off — proof that the relay feeds the right load.
-//! Exit 0 when the step looks like the load's rated power, 1 otherwise.
+//! `spillway step-test SITE.yaml --load NAME [--hold 10s] [--discharge 500W] [--yes]`:
+//! switch one load on, watch the grid meter, switch it off — proof that the relay feeds
+//! the right load. For a battery, `--discharge` steps it the other way, which proves
+//! the setpoint's sign as well. Exit 0 when the step looks like the load's power, 1
+//! otherwise.
 
 use std::io::{BufRead, IsTerminal, Write};
 use std::path::PathBuf;
@@ -8,6 +10,7 @@ use std::process::ExitCode;
 use std::sync::Arc;
 use std::time::Duration;
 
+use spillway::config::model::LoadKind;
 use spillway::daemon::commission::{self, StepOptions, StepPhase};
 use spillway::engine::Command;
 use spillway::units::{Power, format_duration};
@@ -28,9 +31,21 @@ pub struct StepTestArgs {
     /// How long the meter is watched before switching on and after switching off.
     #[arg(long, value_name = "DURATION", default_value = "5s", value_parser = super::parse_duration)]
     pub settle: Duration,
+    /// A battery allowed to discharge: discharge this much during the hold instead of
+    /// charging (keep it below what the house draws, or it is exported).
+    #[arg(long, value_name = "POWER", value_parser = parse_power)]
+    pub discharge: Option<Power>,
     /// Do not ask for confirmation.
     #[arg(long)]
     pub yes: bool,
+}
+
+fn parse_power(text: &str) -> Result<Power, String> {
+    match spillway::units::parse_quantity(text) {
+        Ok(q) if q.dimension == spillway::units::Dimension::Power && q.value > 0.0 => Ok(Power(q.value)),
+        Ok(_) => Err(format!("\"{text}\" is not a positive power (e.g. 500W)")),
+        Err(e) => Err(e.to_string()),
+    }
 }
 
 fn w(v: Option<f64>) -> String {
@@ -50,15 +65,42 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         // A bad flag value: an error that stops the command.
         return Ok(ExitCode::from(2));
     };
+    let command = match (args.discharge, &load.kind) {
+        (None, _) => Command::On,
+        (Some(p), LoadKind::Battery { discharge: Some(d), .. }) if p <= d.max => Command::Charge(-p),
+        (Some(_), LoadKind::Battery { discharge: Some(d), .. }) => {
+            eprintln!("error: \"{}\" may discharge at most {} (its `discharge.max`)", load.name, d.max);
+            return Ok(ExitCode::from(2));
+        }
+        (Some(_), _) => {
+            eprintln!("error: --discharge is for a battery load with `discharge:`; \"{}\" is not one", load.name);
+            return Ok(ExitCode::from(2));
+        }
+    };
     let targets: Vec<String> =
-        spillway::actuators::load_levels(load, Command::On).iter().map(|(t, _)| describe_target(&site, t)).collect();
+        spillway::actuators::load_levels(load, command).iter().map(|(t, _)| describe_target(&site, t)).collect();
+    let is_battery = matches!(load.kind, LoadKind::Battery { .. });
+    let what = match command {
+        Command::Charge(p) if p < Power::ZERO => format!("told to DISCHARGE {}", -p),
+        _ if is_battery => format!("told to CHARGE {}", command.power(&load.kind)),
+        _ => format!("switched ON ({})", command.power(&load.kind)),
+    };
+    let (on_word, off_word) = match command {
+        Command::Charge(p) if p < Power::ZERO => (format!("DISCHARGE {}", -p), "0 W"),
+        _ if is_battery => (format!("CHARGE {}", command.power(&load.kind)), "0 W"),
+        _ => ("ON".to_owned(), "OFF"),
+    };
     println!(
-        "step test: {} ({}) will be switched ON for {} through {}, then OFF.",
+        "step test: {} will be {what} for {} through {}, then {off_word}.",
         load.name,
-        Command::On.power(&load.kind),
         format_duration(args.hold),
         targets.join(", ")
     );
+    if command != Command::On {
+        println!(
+            "  a discharge larger than the house draws now is exported: keep --discharge small on a site that may not export"
+        );
+    }
     if !args.yes {
         if !std::io::stdin().is_terminal() {
             eprintln!("error: no terminal to confirm on: run with --yes once the load is safe to switch");
@@ -73,12 +115,12 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
             return Ok(ExitCode::from(1));
         }
     }
-    let options = StepOptions { hold: args.hold, settle: args.settle, ..StepOptions::default() };
+    let options = StepOptions { hold: args.hold, settle: args.settle, command, ..StepOptions::default() };
     let mut last = None;
     let result = commission::step_test(Arc::clone(&site), id, options, |phase| match phase {
         StepPhase::Baseline => println!("devices answer; watching the meter for {}", format_duration(options.settle)),
-        StepPhase::On => println!("{}: ON", load_name(&site, id)),
-        StepPhase::Off => println!("{}: OFF", load_name(&site, id)),
+        StepPhase::On => println!("{}: {on_word}", load_name(&site, id)),
+        StepPhase::Off => println!("{}: {off_word}", load_name(&site, id)),
         StepPhase::Grid(g) => {
             // One line per sample would scroll; show the reading in place on a terminal.
             if std::io::stdout().is_terminal() {
@@ -111,9 +153,25 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         println!("the load's own meter read {} while on", w(Some(p)));
     }
     match r.step() {
+        Some(step) if r.plausible() && is_battery => {
+            println!(
+                "step {:+.0} W against {} asked: the setpoint drives this battery, + charging",
+                step,
+                Power(r.rated)
+            );
+            Ok(ExitCode::SUCCESS)
+        }
         Some(step) if r.plausible() => {
             println!("step {:+.0} W against {} rated: the relay switches this load", step, Power(r.rated));
             Ok(ExitCode::SUCCESS)
+        }
+        Some(step) if r.reversed() && is_battery => {
+            println!(
+                "step {:+.0} W against {} asked: the battery went the other way. Spillway writes + for charging and − for discharging; this setpoint takes the opposite sign: set the battery inverter (or its gateway) to take + as charging before letting Spillway drive it",
+                step,
+                Power(r.rated)
+            );
+            Ok(ExitCode::from(1))
         }
         Some(step) => {
             println!(

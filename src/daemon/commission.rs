@@ -143,6 +143,9 @@ pub struct StepOptions {
     pub settle: Duration,
     /// How long to wait for the devices to answer at the start.
     pub connect_timeout: Duration,
+    /// What the load is told during the hold: `On` (full power), or for a battery that
+    /// may discharge, `Charge` with a negative power.
+    pub command: Command,
 }
 
 impl Default for StepOptions {
@@ -151,6 +154,7 @@ impl Default for StepOptions {
             hold: Duration::from_secs(10),
             settle: Duration::from_secs(5),
             connect_timeout: Duration::from_secs(10),
+            command: Command::On,
         }
     }
 }
@@ -167,7 +171,7 @@ pub struct StepResult {
     pub grid_after: Option<f64>,
     /// The load's power point during the hold, if configured.
     pub load_power_on: Option<f64>,
-    /// What the load should draw when on.
+    /// What the load should draw during the hold (negative: a battery discharging).
     pub rated: f64,
     /// Samples of the grid point in each phase.
     pub samples: [usize; 3],
@@ -187,10 +191,22 @@ impl StepResult {
     }
 
     /// Whether the step looks like the load: at least half and at most one and a half
-    /// times its rated power (`common practice` for a wiring check: a wrong relay shows
-    /// no step or another load's).
+    /// times its rated power, in the same direction (`common practice` for a wiring
+    /// check: a wrong relay shows no step or another load's).
     pub fn plausible(&self) -> bool {
-        self.step().is_some_and(|s| s >= 0.5 * self.rated && s <= 1.5 * self.rated)
+        self.ratio().is_some_and(|r| (0.5..=1.5).contains(&r))
+    }
+
+    /// Whether the step looks like the load's power the other way round: a battery
+    /// that discharged when told to charge, or charged when told to discharge (a
+    /// setpoint whose sign convention is the opposite of Spillway's, + charging).
+    pub fn reversed(&self) -> bool {
+        self.ratio().is_some_and(|r| (-1.5..=-0.5).contains(&r))
+    }
+
+    fn ratio(&self) -> Option<f64> {
+        (self.rated != 0.0).then_some(())?;
+        Some(self.step()? / self.rated)
     }
 }
 
@@ -242,12 +258,12 @@ pub fn step_test(
     rt.block_on(async move {
         let site = Arc::new(commissioning_site(&site, "step-test"));
         let l = &site.loads[load.0];
-        let rated = Command::On.power(&l.kind).0;
+        let rated = options.command.power(&l.kind).0;
         let cancel = CancellationToken::new();
         let tracker = TaskTracker::new();
         let (tx, mut rx) = mpsc::channel(1024);
         // The devices the load's targets live on; everything else is only read.
-        let on_writes = writes_for(&site, load, Command::On);
+        let on_writes = writes_for(&site, load, options.command);
         let off_writes = writes_for(&site, load, Command::Off);
         let mut senders = Vec::new();
         let mut needed: Vec<DeviceId> = on_writes.iter().map(|w| w.target.device()).collect();

@@ -29,6 +29,9 @@ pub const HEATER_W: f64 = 3000.0;
 pub const PUMP_W: f64 = 1100.0;
 /// The household's own draw.
 pub const HOUSE_W: f64 = 400.0;
+/// The bench battery's power setpoint: relay unit holding registers 40–41, int32 W,
+/// followed within a plant step (+ charges, unless [`Plant::reverse_battery`]).
+pub const BATTERY_REGISTER: u16 = 40;
 /// Inverter rating.
 pub const RATED_W: f64 = 5000.0;
 
@@ -42,12 +45,16 @@ pub struct Step {
     pub limit: f64,
     pub heater: bool,
     pub pump: bool,
+    /// What the battery took from the AC side (W, negative when discharging).
+    pub battery: f64,
 }
 
 #[derive(Debug, Default)]
 struct PlantState {
     pv_available: f64,
     history: Vec<Step>,
+    /// −1 for a battery inverter that takes + as discharging.
+    battery_sign: f64,
 }
 
 /// The plant and its two servers.
@@ -68,7 +75,8 @@ impl Plant {
         devices.set_holding(2, 10, &[RATED_W as u16]); // power limit, W
         devices.set_holding(2, 20, &[0]); // PV available before the limit, W
         devices.add_coils(3, 0, 2);
-        let state = Arc::new(Mutex::new(PlantState { pv_available, history: Vec::new() }));
+        devices.set_holding(3, BATTERY_REGISTER, &[0, 0]);
+        let state = Arc::new(Mutex::new(PlantState { pv_available, history: Vec::new(), battery_sign: 1.0 }));
         let stop = CancellationToken::new();
         let plant = Plant { meter: Arc::new(meter), devices: Arc::new(devices), state, stop };
         plant.spawn_loop();
@@ -89,15 +97,21 @@ impl Plant {
                 let limit = devices.holding(2, 10).map_or(RATED_W, f64::from);
                 let heater = devices.coil(3, 0).unwrap_or(false);
                 let pump = devices.coil(3, 1).unwrap_or(false);
+                let words = (devices.holding(3, BATTERY_REGISTER), devices.holding(3, BATTERY_REGISTER + 1));
+                let setpoint = match words {
+                    (Some(hi), Some(lo)) => f64::from(((u32::from(hi) << 16) | u32::from(lo)) as i32),
+                    _ => 0.0,
+                };
                 let mut s = state.lock().unwrap();
+                let battery = (setpoint * s.battery_sign).clamp(-3000.0, 3000.0);
                 let pv = s.pv_available.min(limit).max(0.0);
-                let load = HOUSE_W + if heater { HEATER_W } else { 0.0 } + if pump { PUMP_W } else { 0.0 };
+                let load = HOUSE_W + if heater { HEATER_W } else { 0.0 } + if pump { PUMP_W } else { 0.0 } + battery;
                 let grid = load - pv;
                 meter.set_holding(1, 0, &[(grid.round() as i16) as u16]);
                 devices.set_holding(2, 0, &[pv.round() as u16]);
                 devices.set_holding(2, 20, &[s.pv_available.round() as u16]);
                 let pv_available = s.pv_available;
-                s.history.push(Step { at: Instant::now(), pv_available, pv, grid, limit, heater, pump });
+                s.history.push(Step { at: Instant::now(), pv_available, pv, grid, limit, heater, pump, battery });
             }
         });
     }
@@ -105,6 +119,12 @@ impl Plant {
     /// Changes the PV the roof could give.
     pub fn set_pv(&self, watts: f64) {
         self.state.lock().unwrap().pv_available = watts;
+    }
+
+    /// Makes the bench battery take + as discharging (a sign convention the other way
+    /// round from Spillway's).
+    pub fn reverse_battery(&self) {
+        self.state.lock().unwrap().battery_sign = -1.0;
     }
 
     /// Every step so far.
