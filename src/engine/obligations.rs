@@ -69,7 +69,11 @@ fn time_left_in(window: &crate::config::model::Window, sod: u32) -> Option<u32> 
         return None;
     }
     let end = seconds(window.end);
-    Some(if end > sod { end - sod } else { 86_400 - sod + end })
+    // Only today's part: the run time counts per local day and starts again at
+    // midnight, so a window over midnight (22:00..06:00) gives today its morning and
+    // its evening. Counting the next morning in the evening's time left postponed the
+    // evening's start until midnight, which then reset what was missing.
+    Some(if end > sod { end - sod } else { 86_400 - sod })
 }
 
 impl ObligationState {
@@ -181,6 +185,22 @@ mod tests {
         assert!(!s.demand(&ob, &at(20 * 3600, 5.0, None)).force_on);
         assert!(!s.end_of_day(&ob, Duration::from_secs(4 * 3600), Timestamp(0)));
         assert!(s.end_of_day(&ob, Duration::from_secs(5 * 3600), Timestamp(0)));
+    }
+
+    /// A window over midnight: today's morning part first, then the rest in the evening
+    /// before the day's run time starts again at midnight.
+    #[test]
+    fn daily_run_in_a_window_over_midnight_uses_both_of_todays_parts() {
+        let ob = Obligation::RunDaily {
+            duration: Duration::from_secs(8 * 3600),
+            grid_window: Some(Window { start: t(22, 0), end: t(6, 0) }),
+        };
+        let mut s = ObligationState::default();
+        assert!(s.demand(&ob, &at(0, 0.0, None)).force_on, "8 h missing, 6 h of morning left");
+        assert!(!s.demand(&ob, &at(12 * 3600, 6.0, None)).force_on, "outside the window");
+        assert!(!s.demand(&ob, &at(21 * 3600, 6.0, None)).force_on);
+        assert!(s.demand(&ob, &at(22 * 3600, 6.0, None)).force_on, "2 h missing, 2 h left before midnight");
+        assert!(!s.demand(&ob, &at(22 * 3600, 8.0, None)).force_on, "done");
     }
 
     #[test]
