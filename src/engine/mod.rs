@@ -636,22 +636,22 @@ impl Engine {
                     | Reason::MinOff { .. }
                     | Reason::StartsCapped { .. }
             );
-            if self.mode != Mode::Normal || !idle || st.command.power(&l.kind) > Power::ZERO {
+            let before = st.command.power(&l.kind);
+            let p = if self.mode != Mode::Normal || !idle || before > Power::ZERO {
                 cover.stop();
-                // A decision that kept the last command (a `hold` safe state, settling)
-                // must not keep a discharge nobody is steering any more.
-                if matches!(st.command, Command::Charge(p) if p < Power::ZERO) {
-                    added -= st.command.power(&l.kind);
-                    st.command = Command::Off;
-                }
-                continue;
-            }
-            let p = cover.update(d, self.values[soc.0], reading, leave, self.local.seconds_of_day);
+                Power::ZERO
+            } else {
+                cover.update(d, self.values[soc.0], reading, leave, self.local.seconds_of_day)
+            };
             if p > Power::ZERO {
-                added -= st.command.power(&l.kind) + p;
                 st.command = Command::Charge(-p);
                 st.reason = Reason::CoveringHouse { power: p };
+            } else if before < Power::ZERO {
+                // A decision that kept the last command (a `hold` safe state, settling, a
+                // minimum off-time) must not keep a discharge nobody is steering any more.
+                st.command = Command::Off;
             }
+            added += st.command.power(&l.kind) - before;
         }
         added
     }

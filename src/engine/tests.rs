@@ -527,6 +527,35 @@ fn a_battery_allowed_to_discharge_covers_the_house_and_nothing_else() {
     assert_eq!(h.engine.decisions().mode, Mode::Failsafe);
 }
 
+/// A decision that keeps the last command (here the minimum off-time after charging
+/// stopped) never keeps a discharge once the cover ends: at its floor the battery is
+/// told 0 W, not the last discharge again.
+#[test]
+fn a_kept_command_does_not_keep_a_discharge_at_the_floor() {
+    let loads = r#"
+  - name: battery
+    kind: battery
+    max_charge: 3kW
+    soc: soc
+    setpoint: { device: relays, register: 400, type: i32 }
+    discharge: { max: 2kW, soc_min: 20% }
+    min_off: 5min
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads));
+    h.set("soc", 50.0);
+    h.set("grid", -1000.0);
+    h.run(secs(20));
+    assert!(h.command("battery").is_on(), "charging: {:?}", h.command("battery"));
+    // The sun goes: charging stops, and while the minimum off-time holds, the battery
+    // covers the house.
+    h.set("grid", 700.0);
+    h.run(secs(10));
+    assert!(matches!(h.reason("battery"), Reason::CoveringHouse { .. }), "{:?}", h.reason("battery"));
+    h.set("soc", 19.0);
+    h.tick();
+    assert_eq!(h.command("battery").power(&h.site.loads[0].kind), Power::ZERO, "{:?}", h.reason("battery"));
+}
+
 /// The `discharge:` keys: a floor that would meet the charging's resume level is
 /// refused, an unknown key is named, and the setpoint written is never a deeper
 /// discharge than `max` (nor any discharge for a battery without the key).
