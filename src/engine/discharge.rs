@@ -173,6 +173,57 @@ mod tests {
         assert_eq!(p2, (p1 - Power(200.0) - MARGIN).max(Power::ZERO));
     }
 
+    proptest::proptest! {
+        #![proptest_config(proptest::prelude::ProptestConfig { cases: 64, ..proptest::prelude::ProptestConfig::default() })]
+
+        /// Whatever the house does (steps of 50 W to 6 kW held 1–40 s, a managed 2 kW
+        /// load switching, a meter one or two readings late): the battery gives more
+        /// than the house itself draws only in the ticks before a change of the house
+        /// can show in a reading (then it is cut at once), never later and never while
+        /// the house holds still; and once it holds still, it settles at the margin.
+        #[test]
+        fn the_cover_follows_any_house_without_lingering_export(
+            steps in proptest::collection::vec((50.0f64..6000.0, 1usize..40, proptest::bool::ANY), 1..30),
+            delay in 1usize..=2,
+        ) {
+            let d = discharge(5000.0, 20.0);
+            let mut c = Cover::default();
+            let mut given: Vec<f64> = Vec::new();
+            let mut houses: Vec<f64> = Vec::new();
+            let mut others_then: Vec<f64> = Vec::new();
+            let mut t = 0i64;
+            let mut since_change = 0usize;
+            let mut previous_house = f64::NAN;
+            for (house, hold, load_on) in steps.iter().copied().chain(std::iter::once((800.0, 40, false))) {
+                let others = if load_on { 2000.0 } else { 0.0 };
+                for _ in 0..hold {
+                    // The reading now describes the instant `delay` ticks ago.
+                    let k = given.len();
+                    let reading = (k >= delay).then(|| {
+                        let j = k - delay;
+                        (Power(houses[j] + others_then[j] - given[j]), Timestamp(j as i64 * 1000))
+                    });
+                    let p = c.update(&d, 60.0, reading, MARGIN, 43_200);
+                    c.record(Timestamp(t), Power(others));
+                    given.push(p.0);
+                    houses.push(house);
+                    others_then.push(others);
+                    since_change = if house == previous_house { since_change + 1 } else { 0 };
+                    previous_house = house;
+                    proptest::prop_assert!(
+                        p.0 <= house + 1e-6 || since_change < delay,
+                        "gave {} W to a {} W house {} ticks after it changed", p.0, house, since_change
+                    );
+                    proptest::prop_assert!(p.0 <= d.max.0 + 1e-9);
+                    t += 1000;
+                }
+            }
+            // The last 40 s hold 800 W with no managed load: settled at the margin.
+            let last = *given.last().unwrap();
+            proptest::prop_assert!((800.0 - last - MARGIN.0).abs() < 1.0, "settled at {} W", last);
+        }
+    }
+
     #[test]
     fn keeps_to_its_window() {
         let window = crate::config::model::Window {
