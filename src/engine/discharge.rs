@@ -3,9 +3,9 @@
 //! The battery may pay for what the house itself draws from the grid in the evening,
 //! never for a managed load: a water heater kept on by "surplus" the battery pays for
 //! would drain it into hot water. So the discharge it is given is what the grid reading
-//! shows, plus what the battery was giving when that reading was taken, less what the
-//! managed loads were drawing then — each looked up at the instant the (delayed)
-//! reading describes, so a late reading is not answered twice.
+//! shows, plus what the battery was giving (less what it was charging) when that
+//! reading was taken, less what the managed loads were drawing then — each looked up at
+//! the instant the (delayed) reading describes, so a late reading is not answered twice.
 //!
 //! It comes down at once when the house needs less (a discharge that overshoots
 //! exports, which a no-export site must not do), and goes up by half the gap per
@@ -42,8 +42,8 @@ pub struct Cover {
     reading_at: Option<Timestamp>,
     /// Stopped at its lowest state of charge; waits for `soc_min` plus the resume band.
     empty: bool,
-    /// What was commanded when: the instant, the discharge, and what the other managed
-    /// loads were to draw.
+    /// What was commanded when: the instant, the battery's discharge (negative while
+    /// it charged), and what the other managed loads were to draw.
     history: VecDeque<(Timestamp, Power, Power)>,
 }
 
@@ -88,9 +88,11 @@ impl Cover {
         self.power
     }
 
-    /// Records this tick's command and what the other managed loads were to draw.
-    pub fn record(&mut self, now: Timestamp, others: Power) {
-        self.history.push_back((now, self.power, others));
+    /// Records this tick's command: what the battery is to charge (zero while it
+    /// discharges) and what the other managed loads are to draw. A reading taken while
+    /// it charged shows that charge as import the house did not cause.
+    pub fn record(&mut self, now: Timestamp, charging: Power, others: Power) {
+        self.history.push_back((now, self.power - charging, others));
         // Keep the entry in effect at the last reading and everything after it.
         let last = self.reading_at.unwrap_or(Timestamp::NEVER);
         while self.history.len() > 1 && (self.history[1].0 <= last || self.history.len() > HISTORY_CAP) {
@@ -98,8 +100,9 @@ impl Cover {
         }
     }
 
-    /// The discharge and the other loads' power in effect at `at`: the last command
-    /// given at or before it (the earliest one known, if none).
+    /// The battery's discharge (negative: charge) and the other loads' power in effect
+    /// at `at`: the last command given at or before it (the earliest one known, if
+    /// none).
     fn in_effect(&self, at: Timestamp) -> (Power, Power) {
         let entry = self.history.iter().rev().find(|(t, _, _)| *t <= at).or(self.history.front());
         entry.map_or((Power::ZERO, Power::ZERO), |&(_, d, o)| (d, o))
@@ -125,7 +128,7 @@ mod tests {
             let now = Timestamp(s * 1000);
             let reading_at = Timestamp((s - 1) * 1000);
             let p = c.update(&d, 60.0, Some((Power(grid_then), reading_at)), MARGIN, 43_200);
-            c.record(now, Power(others));
+            c.record(now, Power::ZERO, Power(others));
             grid_then = house + others - p.0;
             seen.push(grid_then);
         }
@@ -165,7 +168,7 @@ mod tests {
         let d = discharge(3000.0, 20.0);
         let mut c = Cover::default();
         let p1 = c.update(&d, 60.0, Some((Power(1000.0), Timestamp(0))), MARGIN, 0);
-        c.record(Timestamp(500), Power::ZERO);
+        c.record(Timestamp(500), Power::ZERO, Power::ZERO);
         assert_eq!(c.update(&d, 60.0, Some((Power(1000.0), Timestamp(0))), MARGIN, 0), p1, "the same reading again");
         // The next reading shows export while the battery gave p1: down to what the
         // house needs at once.
@@ -204,7 +207,7 @@ mod tests {
                         (Power(houses[j] + others_then[j] - given[j]), Timestamp(j as i64 * 1000))
                     });
                     let p = c.update(&d, 60.0, reading, MARGIN, 43_200);
-                    c.record(Timestamp(t), Power(others));
+                    c.record(Timestamp(t), Power::ZERO, Power(others));
                     given.push(p.0);
                     houses.push(house);
                     others_then.push(others);
@@ -222,6 +225,21 @@ mod tests {
             let last = *given.last().unwrap();
             proptest::prop_assert!((800.0 - last - MARGIN.0).abs() < 1.0, "settled at {} W", last);
         }
+    }
+
+    #[test]
+    fn a_reading_taken_while_it_charged_does_not_count_the_charge_as_the_houses() {
+        // Charging 500 W, the meter showed 300 W of import: the house alone was
+        // exporting 200 W, so when the charge stops there is nothing to cover.
+        let d = discharge(3000.0, 20.0);
+        let mut c = Cover::default();
+        c.record(Timestamp(0), Power(500.0), Power::ZERO);
+        assert_eq!(c.update(&d, 60.0, Some((Power(300.0), Timestamp(0))), MARGIN, 0), Power::ZERO);
+        // Charging 500 W with 900 W of import: the house imported 400 W.
+        let mut c = Cover::default();
+        c.record(Timestamp(0), Power(500.0), Power::ZERO);
+        let p = c.update(&d, 60.0, Some((Power(900.0), Timestamp(0))), MARGIN, 0);
+        assert_eq!(p, (Power(400.0) - MARGIN) * RISE_GAIN);
     }
 
     #[test]

@@ -670,7 +670,7 @@ impl Engine {
         for (l, s) in site.loads.iter().zip(self.loads.iter_mut()) {
             let own = drawn(l, s);
             if let Some(cover) = &mut s.cover {
-                cover.record(now, total - own);
+                cover.record(now, own, total - own);
             }
         }
     }
