@@ -80,15 +80,16 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
     let targets: Vec<String> =
         spillway::actuators::load_levels(load, command).iter().map(|(t, _)| describe_target(&site, t)).collect();
     let is_battery = matches!(load.kind, LoadKind::Battery { .. });
-    let what = match command {
-        Command::Charge(p) if p < Power::ZERO => format!("told to DISCHARGE {}", -p),
-        _ if is_battery => format!("told to CHARGE {}", command.power(&load.kind)),
-        _ => format!("switched ON ({})", command.power(&load.kind)),
-    };
-    let (on_word, off_word) = match command {
-        Command::Charge(p) if p < Power::ZERO => (format!("DISCHARGE {}", -p), "0 W"),
-        _ if is_battery => (format!("CHARGE {}", command.power(&load.kind)), "0 W"),
-        _ => ("ON".to_owned(), "OFF"),
+    // What the hold is called: a battery is told a power, any other load switched on.
+    let (what, on_word, off_word) = match command {
+        Command::Charge(p) if p < Power::ZERO => {
+            (format!("told to DISCHARGE {}", -p), format!("DISCHARGE {}", -p), "0 W")
+        }
+        _ if is_battery => {
+            let p = command.power(&load.kind);
+            (format!("told to CHARGE {p}"), format!("CHARGE {p}"), "0 W")
+        }
+        _ => (format!("switched ON ({})", command.power(&load.kind)), "ON".to_owned(), "OFF"),
     };
     println!(
         "step test: {} will be {what} for {} through {}, then {off_word}.",
