@@ -351,3 +351,58 @@ loads:
     let ok = spillway::config::load_str("ok.yaml", &yaml.replace("reach: 80°C", "reach: 60°C")).unwrap();
     assert!(ok.warnings.iter().all(|w| w.code != "C0264"), "{:?}", ok.warnings);
 }
+
+/// `reach: 80%` needs a state of charge to read, and a battery's own limit must let it
+/// get there.
+#[test]
+fn a_state_of_charge_obligation_needs_a_soc_point_and_a_reachable_target() {
+    let yaml = "
+site: { name: Carport, timezone: Europe/Lisbon }
+devices:
+  box: { modbus_tcp: 127.0.0.1:5020, unit: 4 }
+points:
+  car_soc: { device: box, register: 31, scale: 0.1, unit: \"%\" }
+  store_soc: { device: box, register: 10, scale: 0.1, unit: \"%\" }
+loads:
+  - name: car
+    kind: charger
+    min_current: 6A
+    max_current: 16A
+    setpoint: { device: box, register: 0, scale: 0.1 }
+    soc: car_soc
+    obligations:
+      - { reach: 80%, by: \"07:00\", grid_window: \"00:00..06:00\" }
+  - name: store
+    kind: battery
+    max_charge: 3kW
+    soc: store_soc
+    soc_max: 90%
+    setpoint: { device: box, register: 1, type: i32 }
+    obligations:
+      - { reach: 85%, by: \"18:00\", grid_window: \"13:00..18:00\" }
+";
+    let loaded = spillway::config::load_str("soc.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let described = spillway::config::describe::describe(&loaded.site);
+    assert!(described.contains("obligation: reach 80 % by 07:00 on car_soc (grid allowed 00:00–06:00)"), "{described}");
+    assert!(described.contains("the car's state of charge on car_soc"), "{described}");
+    let refused = |yaml: &str| match spillway::config::load_str("soc.yaml", yaml) {
+        Ok(_) => panic!("accepted:\n{yaml}"),
+        Err(e) => e.render(false),
+    };
+    // Above the battery's own limit.
+    let shown = refused(&yaml.replace("reach: 85%", "reach: 95%"));
+    assert!(shown.contains("[C0278]") && shown.contains("above the battery's `soc_max`"), "{shown}");
+    // A charger without `soc`.
+    let shown = refused(&yaml.replace("    soc: car_soc\n", ""));
+    assert!(shown.contains("[C0279]") && shown.contains("add `soc: <point>` to the charger"), "{shown}");
+    // A heater has no state of charge.
+    let heater = yaml.replace(
+        "loads:\n",
+        "loads:\n  - name: heater\n    rated: 2kW\n    switch: { device: box, coil: 0 }\n    obligations:\n      - { reach: 80%, by: \"17:00\" }\n",
+    );
+    let shown = refused(&heater);
+    assert!(shown.contains("[C0279]") && shown.contains("a heater's is a temperature"), "{shown}");
+    // Out of range.
+    let shown = refused(&yaml.replace("reach: 80%", "reach: 120%"));
+    assert!(shown.contains("[C0277]"), "{shown}");
+}

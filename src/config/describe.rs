@@ -196,10 +196,12 @@ pub fn describe(site: &Site) -> String {
                 };
                 format!(" (grid allowed {}–{end})", w.start.format("%H:%M"))
             });
-            let temp = match (ob, l.temperature) {
-                (Obligation::RunDaily { .. }, _) | (_, None) => String::new(),
-                (_, Some(t)) => format!(" on {}", site.points[t.0].name),
+            let point = match ob {
+                Obligation::RunDaily { .. } => None,
+                Obligation::ChargeBy { .. } => l.kind.soc_point(),
+                Obligation::ReachBy { .. } | Obligation::Cycle { .. } => l.temperature,
             };
+            let temp = point.map_or_else(String::new, |p| format!(" on {}", site.points[p.0].name));
             let _ = writeln!(out, "     obligation: {}{temp}{window}", ob.describe());
         }
     }
@@ -222,11 +224,12 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
         LoadKind::Proportional { rated, min, step, setpoint, .. } => {
             format!("proportional up to {rated} (min {min}, step {step}), setpoint to {}", write_text(site, setpoint))
         }
-        LoadKind::Charger { watts_per_amp, min, max, step, setpoint, hold_min_from_grid, .. } => format!(
-            "charger {min}–{max} in steps of {step} ({} W per A), current to {}; {}",
+        LoadKind::Charger { watts_per_amp, min, max, step, setpoint, hold_min_from_grid, soc, .. } => format!(
+            "charger {min}–{max} in steps of {step} ({} W per A), current to {}; {}{}",
             trim_number(*watts_per_amp),
             write_text(site, setpoint),
-            if *hold_min_from_grid { "holds its minimum from the grid" } else { "pauses below its minimum" }
+            if *hold_min_from_grid { "holds its minimum from the grid" } else { "pauses below its minimum" },
+            soc.map_or_else(String::new, |p| format!("; the car's state of charge on {}", site.points[p.0].name))
         ),
         LoadKind::Battery { max_charge, min_charge, soc_max, soc_resume, soc, setpoint, discharge } => {
             let discharge = match discharge {

@@ -1515,8 +1515,9 @@ impl Builder<'_, '_> {
             }
             _ => (start, stop),
         };
-        let obligations =
-            obligations_node.map(|n| self.obligations(n, temperature_given, &what)).unwrap_or(Some(Vec::new()));
+        let obligations = obligations_node
+            .map(|n| self.obligations(n, temperature_given, kind.as_ref(), &what))
+            .unwrap_or(Some(Vec::new()));
         // A temperature target the inhibit rule forbids can never be met: the load is
         // forced off before the water gets there (within the 1 K the target allows).
         if let (Some(obs), Some(inh), Some(t), Some(n)) = (&obligations, &inhibit, temperature, obligations_node)
@@ -1525,7 +1526,7 @@ impl Builder<'_, '_> {
             for ob in obs {
                 let target = match ob {
                     Obligation::ReachBy { target, .. } | Obligation::Cycle { target, .. } => target.0,
-                    Obligation::RunDaily { .. } => continue,
+                    Obligation::RunDaily { .. } | Obligation::ChargeBy { .. } => continue,
                 };
                 let reached = format!("{} >= {}°C", point.name, units::trim_number(target - 1.0));
                 let blocked =
@@ -1750,6 +1751,12 @@ impl Builder<'_, '_> {
                 let below = m
                     .get("below_min")
                     .map_or(Some("pause"), |n| values::choice(n, &["pause", "hold"], "`below_min`", self.diags));
+                let soc = match m.get("soc") {
+                    Some(n) => {
+                        Some(self.point_ref(n, ctx.points, Some(Dimension::Ratio), "the car's state of charge")?)
+                    }
+                    None => None,
+                };
                 let (min, max) = (min?, max?);
                 if min > max {
                     self.diags.error(
@@ -1768,6 +1775,7 @@ impl Builder<'_, '_> {
                     setpoint: setpoint?,
                     enable,
                     hold_min_from_grid: below? == "hold",
+                    soc,
                 })
             }
             _ => {
@@ -2215,7 +2223,13 @@ impl Builder<'_, '_> {
         })
     }
 
-    fn obligations(&mut self, node: &Node, has_temperature: bool, what: &str) -> Option<Vec<Obligation>> {
+    fn obligations(
+        &mut self,
+        node: &Node,
+        has_temperature: bool,
+        kind: Option<&LoadKind>,
+        what: &str,
+    ) -> Option<Vec<Obligation>> {
         let Value::Seq(items) = &node.value else {
             self.diags.error("C0246", "`obligations` is a list", node.span.clone(), "expected `- run: 6h` style items");
             return None;
@@ -2223,7 +2237,7 @@ impl Builder<'_, '_> {
         let mut out = Vec::new();
         let mut ok = true;
         for item in items {
-            match self.obligation(item, has_temperature, what) {
+            match self.obligation(item, has_temperature, kind, what) {
                 Some(o) => out.push(o),
                 None => ok = false,
             }
@@ -2231,7 +2245,13 @@ impl Builder<'_, '_> {
         ok.then_some(out)
     }
 
-    fn obligation(&mut self, node: &Node, has_temperature: bool, what: &str) -> Option<Obligation> {
+    fn obligation(
+        &mut self,
+        node: &Node,
+        has_temperature: bool,
+        kind: Option<&LoadKind>,
+        what: &str,
+    ) -> Option<Obligation> {
         let mut m = MapReader::new(node, "an obligation", self.diags)?;
         let run = m.get("run");
         let reach = m.get("reach");
@@ -2298,8 +2318,15 @@ impl Builder<'_, '_> {
             return Some(Obligation::RunDaily { duration: d, grid_window });
         }
         if let Some(n) = reach {
-            needs_temp(self, n);
-            let target = values::quantity(n, Dimension::Temperature, "the target temperature", self.diags)?;
+            // `reach: 80%` is a state of charge, anything else a temperature.
+            let is_soc = matches!(&n.value, Value::Str(t)
+                if units::parse_quantity(t).is_ok_and(|q| q.dimension == Dimension::Ratio));
+            let target = if is_soc {
+                self.soc_target(n, kind, what)
+            } else {
+                needs_temp(self, n);
+                values::quantity(n, Dimension::Temperature, "the target temperature", self.diags)
+            };
             let Some(by_node) = by else {
                 self.diags.error(
                     "C0251",
@@ -2310,7 +2337,12 @@ impl Builder<'_, '_> {
                 return None;
             };
             let by = values::time_of_day(by_node, "`by`", self.diags)?;
-            return Some(Obligation::ReachBy { target: Temperature(target), by, grid_window });
+            let target = target?;
+            return Some(if is_soc {
+                Obligation::ChargeBy { soc: Ratio(target), by, grid_window }
+            } else {
+                Obligation::ReachBy { target: Temperature(target), by, grid_window }
+            });
         }
         let n = cycle?;
         needs_temp(self, n);
@@ -2346,6 +2378,62 @@ impl Builder<'_, '_> {
             );
         }
         Some(Obligation::Cycle { target: Temperature(target), hold, every, grid_window })
+    }
+
+    /// The target of a `reach: N%` obligation: a state of charge the load can read
+    /// (a battery's `soc`, a charger's `soc`) and, for a battery, one its own limit
+    /// lets it reach.
+    fn soc_target(&mut self, n: &Node, kind: Option<&LoadKind>, what: &str) -> Option<f64> {
+        let target = values::quantity(n, Dimension::Ratio, "the target state of charge", self.diags)?;
+        if !(0.0..=100.0).contains(&target) || target == 0.0 {
+            self.diags.error(
+                "C0277",
+                "a state of charge to reach lies above 0 and at most 100 %",
+                n.span.clone(),
+                "out of range",
+            );
+            return None;
+        }
+        match kind {
+            // The kind had an error of its own, already reported.
+            None => None,
+            Some(LoadKind::Battery { soc_max, .. }) if target > soc_max.0 => {
+                self.diags.push(
+                    Diagnostic::error(
+                        "C0278",
+                        format!(
+                            "{what}: the obligation asks for {} %, above the battery's `soc_max` of {soc_max}",
+                            units::trim_number(target)
+                        ),
+                        n.span.clone(),
+                    )
+                    .with_label("can never be met")
+                    .with_note("charging stops at `soc_max`: lower the target or raise `soc_max`"),
+                );
+                None
+            }
+            Some(k) if k.soc_point().is_some() => Some(target),
+            Some(k) => {
+                let note = match k {
+                    LoadKind::Charger { .. } => {
+                        "add `soc: <point>` to the charger: the car's state of charge, as the charger or the car reports it"
+                    }
+                    _ => {
+                        "a state-of-charge target suits a `battery` or a `charger` with a `soc` point; a heater's is a temperature (`reach: 60°C`)"
+                    }
+                };
+                self.diags.push(
+                    Diagnostic::error(
+                        "C0279",
+                        format!("{what} has a state-of-charge obligation but no state-of-charge point"),
+                        n.span.clone(),
+                    )
+                    .with_label("nothing to read it on")
+                    .with_note(note),
+                );
+                None
+            }
+        }
     }
 
     fn site_checks(&mut self, site: &Site, spans: &HeaderSpans, inverter_node: Option<&Node>) {

@@ -586,6 +586,9 @@ pub enum LoadKind {
         /// Whether the charger may hold its minimum current on grid power when the
         /// surplus falls below it (rather than pausing).
         hold_min_from_grid: bool,
+        /// The car's state of charge, where the charger (or the car) reports it: what a
+        /// `reach: 80%` obligation watches.
+        soc: Option<PointId>,
     },
     /// A battery charged with a power setpoint within state-of-charge limits.
     Battery {
@@ -633,6 +636,15 @@ impl LoadKind {
             LoadKind::Stepped { stages, .. } => stages.last().copied().unwrap_or_default(),
             LoadKind::Charger { watts_per_amp, max, .. } => Power(watts_per_amp * max.0),
             LoadKind::Battery { max_charge, .. } => *max_charge,
+        }
+    }
+    /// The state-of-charge point a `reach: N%` obligation watches: a battery's `soc`,
+    /// a charger's car SoC where it has one.
+    pub fn soc_point(&self) -> Option<PointId> {
+        match self {
+            LoadKind::Battery { soc, .. } => Some(*soc),
+            LoadKind::Charger { soc, .. } => *soc,
+            _ => None,
         }
     }
     /// True for loads whose power the engine sets continuously.
@@ -714,6 +726,16 @@ pub enum Obligation {
         /// When grid power may be used.
         grid_window: Option<Window>,
     },
+    /// Reach a state of charge by a time of day (a car charged for the morning, a
+    /// battery charged for the evening peak), on the load's `soc` point.
+    ChargeBy {
+        /// Target state of charge, %.
+        soc: Ratio,
+        /// Deadline (local time).
+        by: NaiveTime,
+        /// When grid power may be used.
+        grid_window: Option<Window>,
+    },
     /// Hold a high temperature periodically (anti-Legionella cycle).
     Cycle {
         /// Temperature to reach.
@@ -737,6 +759,9 @@ impl Obligation {
             Obligation::ReachBy { target, by, .. } => {
                 format!("reach {target} by {}", by.format("%H:%M"))
             }
+            Obligation::ChargeBy { soc, by, .. } => {
+                format!("reach {soc} by {}", by.format("%H:%M"))
+            }
             Obligation::Cycle { target, hold, every, .. } => format!(
                 "hold {target} for {} every {}",
                 crate::units::format_duration(*hold),
@@ -749,6 +774,7 @@ impl Obligation {
         match self {
             Obligation::RunDaily { grid_window, .. }
             | Obligation::ReachBy { grid_window, .. }
+            | Obligation::ChargeBy { grid_window, .. }
             | Obligation::Cycle { grid_window, .. } => *grid_window,
         }
     }

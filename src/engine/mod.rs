@@ -851,12 +851,15 @@ fn load_deps(site: &Site, load: &crate::config::model::Load, guard_points: &[Poi
             }
         }
     }
-    if !load.obligations.is_empty()
-        && let Some(t) = load.temperature
-        && load.obligations.iter().any(|o| !matches!(o, crate::config::model::Obligation::RunDaily { .. }))
+    use crate::config::model::Obligation;
+    if let Some(t) = load.temperature
+        && load.obligations.iter().any(|o| matches!(o, Obligation::ReachBy { .. } | Obligation::Cycle { .. }))
     {
         deps.push(t);
     }
+    // A charger's car SoC is not a dependency: many chargers read nothing while the car
+    // is away, and a silent SoC only keeps its `reach: N%` duty from forcing a top-up
+    // (and the day from counting as met); surplus charging goes on.
     if let LoadKind::Battery { soc, .. } = &load.kind {
         deps.push(*soc);
     }
@@ -970,8 +973,14 @@ fn decide(
     }
     // 4. Obligations that must be met from the grid now.
     let temperature = l.temperature.map(|p| input.values[p.0]).filter(|v| v.is_finite()).map(Temperature);
-    let situation =
-        Situation { now, seconds_of_day: input.local.seconds_of_day, runtime_today: st.runtime_today, temperature };
+    let soc = l.kind.soc_point().map(|p| input.values[p.0]).filter(|v| v.is_finite());
+    let situation = Situation {
+        now,
+        seconds_of_day: input.local.seconds_of_day,
+        runtime_today: st.runtime_today,
+        temperature,
+        soc,
+    };
     let mut forced = None;
     for (j, (ob, os)) in l.obligations.iter().zip(st.obligations.iter_mut()).enumerate() {
         if os.demand(ob, &situation).force_on && forced.is_none() {

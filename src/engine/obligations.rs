@@ -1,5 +1,5 @@
-//! Daily and periodic duties of a load: run N hours a day, reach a temperature by a
-//! time, hold a high temperature every so often. Met from surplus where the rules
+//! Daily and periodic duties of a load: run N hours a day, reach a temperature or a
+//! state of charge by a time, hold a high temperature every so often. Met from surplus where the rules
 //! manage it; forced on from the grid inside the permitted window where they did not;
 //! reported as met or missed at the end of each local day.
 
@@ -11,9 +11,9 @@ use crate::units::{Temperature, Timestamp};
 /// Progress of one obligation.
 #[derive(Debug, Clone, Default)]
 pub struct ObligationState {
-    /// ReachBy: the target was seen at the deadline today.
+    /// ReachBy, ChargeBy: the target was seen at the deadline today.
     pub met_today: bool,
-    /// ReachBy: currently heating from the grid (hysteresis).
+    /// ReachBy, ChargeBy: currently heating or charging from the grid (hysteresis).
     pub forcing: bool,
     /// Cycle: since when the temperature has been at or above the target.
     pub hot_since: Option<Timestamp>,
@@ -40,6 +40,12 @@ pub struct ObligationResult {
 /// "not worth reheating" and "missed" (`common practice`: thermostat deadbands are 1–3 K).
 const RESTART_BELOW: f64 = 1.0;
 const MET_TOLERANCE: f64 = RESTART_BELOW;
+/// The same for a state of charge, in percentage points: a battery management system
+/// reports SoC in whole or tenth percents and a car's charge limit stops within a
+/// point of it (`common practice`), so a car that stopped at 79.6 % of an 80 % target
+/// has met it, and a battery does not restart a grid charge for a 0.2 % sag.
+const SOC_RESTART_BELOW: f64 = 1.0;
+const SOC_MET_TOLERANCE: f64 = SOC_RESTART_BELOW;
 
 /// What an obligation asks of its load this tick.
 pub struct Demand {
@@ -57,6 +63,8 @@ pub struct Situation {
     pub runtime_today: Duration,
     /// The load's temperature point, if fresh.
     pub temperature: Option<Temperature>,
+    /// The load's state of charge (%), if it has one and it is fresh.
+    pub soc: Option<f64>,
 }
 
 fn seconds(t: chrono::NaiveTime) -> u32 {
@@ -76,7 +84,57 @@ fn time_left_in(window: &crate::config::model::Window, sod: u32) -> Option<u32> 
     Some(if end > sod { end - sod } else { 86_400 - sod })
 }
 
+/// How close to a target counts as there, and how far below it a grid top-up restarts.
+#[derive(Clone, Copy)]
+struct Band {
+    met_within: f64,
+    restart_below: f64,
+}
+
+impl Band {
+    const TEMPERATURE: Band = Band { met_within: MET_TOLERANCE, restart_below: RESTART_BELOW };
+    const SOC: Band = Band { met_within: SOC_MET_TOLERANCE, restart_below: SOC_RESTART_BELOW };
+}
+
 impl ObligationState {
+    /// A level (a temperature, a state of charge) to reach by a deadline: judged in the
+    /// last minute before it; topped up from the grid inside the window while below it,
+    /// with hysteresis. Returns whether to force the load on.
+    fn reach(
+        &mut self,
+        level: Option<f64>,
+        target: f64,
+        by: &chrono::NaiveTime,
+        grid_window: Option<&crate::config::model::Window>,
+        sod: u32,
+        band: Band,
+    ) -> bool {
+        let deadline = seconds(*by);
+        if let Some(v) = level
+            && sod <= deadline
+            && v >= target - band.met_within
+            && sod + 60 >= deadline
+        {
+            // Judged in the last minute before the deadline.
+            self.met_today = true;
+        }
+        let in_window = grid_window.is_some_and(|w| w.contains(sod)) && sod < deadline;
+        match (in_window, level) {
+            (true, Some(v)) => {
+                if v >= target {
+                    self.forcing = false;
+                } else if v < target - band.restart_below || self.forcing {
+                    self.forcing = true;
+                }
+                self.forcing
+            }
+            _ => {
+                self.forcing = false;
+                false
+            }
+        }
+    }
+
     /// What the obligation demands now. Called once per tick, before the rules.
     pub fn demand(&mut self, ob: &Obligation, s: &Situation) -> Demand {
         match ob {
@@ -91,33 +149,18 @@ impl ObligationState {
                 };
                 Demand { force_on }
             }
-            Obligation::ReachBy { target, by, grid_window } => {
-                let sod = s.seconds_of_day;
-                let deadline = seconds(*by);
-                if let Some(t) = s.temperature
-                    && sod <= deadline
-                    && t.0 >= target.0 - MET_TOLERANCE
-                    && sod + 60 >= deadline
-                {
-                    // Judged in the last minute before the deadline.
-                    self.met_today = true;
-                }
-                let in_window = grid_window.is_some_and(|w| w.contains(sod)) && sod < deadline;
-                let force_on = match (in_window, s.temperature) {
-                    (true, Some(t)) => {
-                        if t.0 >= target.0 {
-                            self.forcing = false;
-                        } else if t.0 < target.0 - RESTART_BELOW || self.forcing {
-                            self.forcing = true;
-                        }
-                        self.forcing
-                    }
-                    _ => {
-                        self.forcing = false;
-                        false
-                    }
-                };
-                Demand { force_on }
+            Obligation::ReachBy { target, by, grid_window } => Demand {
+                force_on: self.reach(
+                    s.temperature.map(|t| t.0),
+                    target.0,
+                    by,
+                    grid_window.as_ref(),
+                    s.seconds_of_day,
+                    Band::TEMPERATURE,
+                ),
+            },
+            Obligation::ChargeBy { soc, by, grid_window } => {
+                Demand { force_on: self.reach(s.soc, soc.0, by, grid_window.as_ref(), s.seconds_of_day, Band::SOC) }
             }
             Obligation::Cycle { target, hold, every, grid_window } => {
                 match s.temperature {
@@ -140,7 +183,7 @@ impl ObligationState {
     pub fn end_of_day(&mut self, ob: &Obligation, runtime_today: Duration, now: Timestamp) -> bool {
         let met = match ob {
             Obligation::RunDaily { duration, .. } => runtime_today >= *duration,
-            Obligation::ReachBy { .. } => self.met_today,
+            Obligation::ReachBy { .. } | Obligation::ChargeBy { .. } => self.met_today,
             Obligation::Cycle { every, .. } => {
                 // Met as long as the cycle is not overdue by more than a day.
                 self.last_cycle.is_some_and(|last| now.since(last) <= *every + Duration::from_secs(86_400))
@@ -168,6 +211,7 @@ mod tests {
             seconds_of_day: sod,
             runtime_today: Duration::from_secs_f64(runtime_h * 3600.0),
             temperature: temp.map(Temperature),
+            soc: None,
         }
     }
 

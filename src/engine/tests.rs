@@ -1239,6 +1239,98 @@ fn a_reach_by_obligation_heats_from_the_grid_in_its_window_until_the_target() {
     assert_eq!(h.command("tank"), Command::Off, "{:?}", h.reason("tank"));
 }
 
+/// `reach: 80%` on a battery: charged from the grid at full power inside the window
+/// while below the target, released at it, judged at the deadline.
+#[test]
+fn a_state_of_charge_obligation_charges_a_battery_from_the_grid_until_the_target() {
+    let loads = r#"
+  - name: battery
+    kind: battery
+    max_charge: 3kW
+    soc: soc
+    setpoint: { device: relays, register: 400, type: i32 }
+    discharge: { max: 2kW, soc_min: 20% }
+    obligations:
+      - reach: 80%
+        by: "18:00"
+        grid_window: 14:00..18:00
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads)).at_local(13, 0);
+    h.set("grid", 400.0);
+    h.set("soc", 50.0);
+    h.run(secs(1800));
+    assert!(
+        matches!(h.command("battery"), Command::Charge(p) if p.0 < 0.0),
+        "before the window it covers the house: {:?}",
+        h.command("battery")
+    );
+    h.run(secs(3600));
+    assert_eq!(h.command("battery"), Command::Charge(Power(3000.0)), "in the window: full charge from the grid");
+    assert!(matches!(h.reason("battery"), Reason::Obligation { .. }));
+    h.set("soc", 79.5);
+    h.tick();
+    assert_eq!(h.command("battery"), Command::Charge(Power(3000.0)), "a top-up runs to the target itself");
+    h.set("soc", 80.0);
+    h.tick();
+    assert!(!matches!(h.reason("battery"), Reason::Obligation { .. }), "{:?}", h.reason("battery"));
+    // A sag of less than a point does not restart it; a larger one does.
+    h.set("soc", 79.4);
+    h.run(secs(10));
+    assert!(!matches!(h.reason("battery"), Reason::Obligation { .. }), "{:?}", h.reason("battery"));
+    h.set("soc", 78.9);
+    h.run(secs(10));
+    assert!(matches!(h.reason("battery"), Reason::Obligation { .. }), "{:?}", h.reason("battery"));
+    h.set("soc", 80.2);
+    // Past the deadline and midnight (it is 14:30 now) the day is judged met.
+    h.run(secs(11 * 3600));
+    let results = h.engine.take_obligation_results();
+    assert_eq!(results.len(), 1);
+    assert!(results[0].met);
+    // A day that ends below the target is missed.
+    h.set("soc", 60.0);
+    h.run(secs(24 * 3600));
+    let results = h.engine.take_obligation_results();
+    assert_eq!(results.len(), 1);
+    assert!(!results[0].met);
+}
+
+/// `reach: 80%` on a charger reads the car's SoC; a silent SoC (the car away, a charger
+/// that reports nothing then) stops only the top-up, never surplus charging.
+#[test]
+fn a_chargers_state_of_charge_obligation_reads_the_car_and_a_silent_soc_stops_only_the_top_up() {
+    let loads = r#"
+  - name: car
+    kind: charger
+    min_current: 6A
+    max_current: 16A
+    soc: soc
+    setpoint: { device: relays, register: 0, scale: 0.1 }
+    start: surplus > 1.5kW for 10s
+    stop: surplus < 1kW for 10s
+    obligations:
+      - { reach: 80%, by: "07:00", grid_window: "00:00..06:00" }
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads)).at_local(0, 0);
+    h.set("grid", 300.0);
+    h.set("soc", 55.0);
+    h.run(secs(60));
+    assert_eq!(h.command("car"), Command::Current(Current(16.0)), "{:?}", h.reason("car"));
+    assert!(matches!(h.reason("car"), Reason::Obligation { .. }));
+    h.set("soc", 80.0);
+    h.tick();
+    assert_eq!(h.command("car"), Command::Off, "{:?}", h.reason("car"));
+    // The car's SoC goes silent: no top-up, and no fail-safe either.
+    h.set("soc", f64::NAN);
+    h.run(secs(60));
+    assert_eq!(h.command("car"), Command::Off);
+    assert!(!matches!(h.reason("car"), Reason::SignalLost { .. }), "{:?}", h.reason("car"));
+    // At 12:00 a surplus charges it as the rules say.
+    h.run(secs(12 * 3600));
+    h.set("grid", -3000.0);
+    h.run(secs(30));
+    assert!(matches!(h.command("car"), Command::Current(a) if a.0 >= 6.0), "{:?}", h.reason("car"));
+}
+
 /// A grid top-up keeps to the load's anti-chatter limits. Here an inhibit rule trips on
 /// the very import the top-up causes: without `min_off` and the starts cap applying to
 /// the top-up, the relay would switch on and off every tick through the window.

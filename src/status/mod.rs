@@ -263,6 +263,7 @@ pub fn build(
             let implied = command.map_or(Power::ZERO, |c| c.power(&l.kind)).0;
             let (runtime, energy) = engine.load_today(id);
             let temperature = fresh(l.temperature);
+            let soc = fresh(l.kind.soc_point());
             let last_cycles = persisted.loads.get(i).map(|p| p.last_cycle_ms.as_slice()).unwrap_or(&[]);
             LoadStatus {
                 name: l.name.clone(),
@@ -283,7 +284,7 @@ pub fn build(
                     .obligations
                     .iter()
                     .enumerate()
-                    .map(|(k, ob)| obligation(ob, runtime, temperature, last_cycles.get(k).copied().flatten()))
+                    .map(|(k, ob)| obligation(ob, runtime, temperature, soc, last_cycles.get(k).copied().flatten()))
                     .collect(),
                 switchings: totals.load_switchings.get(i).copied().unwrap_or(0),
             }
@@ -388,6 +389,7 @@ fn obligation(
     ob: &Obligation,
     runtime: Duration,
     temperature: Option<f64>,
+    soc: Option<f64>,
     last_cycle_ms: Option<i64>,
 ) -> ObligationStatus {
     let what = ob.describe();
@@ -407,6 +409,14 @@ fn obligation(
                 fraction: Some(if target.0 > 0.0 { (t / target.0).clamp(0.0, 1.0) } else { 1.0 }),
             },
             None => ObligationStatus { what, progress: "temperature unknown".to_owned(), fraction: None },
+        },
+        Obligation::ChargeBy { soc: target, .. } => match soc {
+            Some(v) => ObligationStatus {
+                what,
+                progress: format!("{} % of {target}", trim_number((v * 10.0).round() / 10.0)),
+                fraction: Some(if target.0 > 0.0 { (v / target.0).clamp(0.0, 1.0) } else { 1.0 }),
+            },
+            None => ObligationStatus { what, progress: "state of charge unknown".to_owned(), fraction: None },
         },
         Obligation::Cycle { .. } => ObligationStatus {
             what,
