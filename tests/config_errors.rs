@@ -361,7 +361,7 @@ site: { name: Carport, timezone: Europe/Lisbon }
 devices:
   box: { modbus_tcp: 127.0.0.1:5020, unit: 4 }
 points:
-  car_soc: { device: box, register: 31, scale: 0.1, unit: \"%\" }
+  car_soc: { device: box, register: 31, scale: 0.1, unit: \"%\", missing: 0xFFFF }
   store_soc: { device: box, register: 10, scale: 0.1, unit: \"%\" }
 loads:
   - name: car
@@ -405,4 +405,20 @@ loads:
     // Out of range.
     let shown = refused(&yaml.replace("reach: 80%", "reach: 120%"));
     assert!(shown.contains("[C0277]"), "{shown}");
+    // `missing:` is the raw value a device shows for "no reading".
+    use spillway::config::model::{ModbusRead, PointRead};
+    let raw = |site: &spillway::config::model::Site, name: &str| {
+        let p = site.points.iter().find(|p| p.name == name).unwrap();
+        match &p.read {
+            PointRead::Modbus(ModbusRead { missing, .. }) => *missing,
+            other => panic!("{other:?}"),
+        }
+    };
+    assert_eq!(raw(&loaded.site, "car_soc"), Some(0xFFFF));
+    assert_eq!(raw(&loaded.site, "store_soc"), None);
+    let signed = yaml.replace("register: 10, scale: 0.1,", "register: 10, type: i16, missing: -32768, scale: 0.1,");
+    let signed = spillway::config::load_str("soc.yaml", &signed).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    assert_eq!(raw(&signed.site, "store_soc"), Some(0x8000));
+    let shown = refused(&yaml.replace("missing: 0xFFFF", "missing: 0x10000"));
+    assert!(shown.contains("[C0280]") && shown.contains("does not fit the point's 16-bit registers"), "{shown}");
 }

@@ -165,9 +165,49 @@ async fn a_commanded_battery_covers_the_house_over_the_wire() {
     let s = daemon.status().borrow().clone();
     assert_eq!(load(&s, "home_battery").reason, "covering_house");
     assert!(load(&s, "home_battery").power_w < -100.0);
+    // The car's `reach: 80%` duty reads the charger's SoC register, which shows 0xFFFF
+    // (`missing:`) while no car is plugged in.
+    let ev = sim.handle.readings().ev.expect("the example has a charger");
+    let duty = &load(&s, "car").obligations[0];
+    println!("simulator: car plugged {}, SoC {:.1} %; the duty: {}", ev.plugged, ev.soc_pct, duty.progress);
+    if ev.plugged {
+        assert!(duty.progress.ends_with("% of 80 %"), "{}", duty.progress);
+        let shown: f64 = duty.progress.split(' ').next().unwrap().parse().unwrap();
+        assert!((shown - ev.soc_pct).abs() < 0.5, "{} against {:.1} %", duty.progress, ev.soc_pct);
+    } else {
+        assert_eq!(duty.progress, "state of charge unknown");
+    }
 
     sim.handle.inject_spec("meter-silent+30s").unwrap();
     sim_until("the discharge stopped", Duration::from_secs(10), || sim.handle.controls().battery_w == 0.0).await;
+    daemon.shutdown();
+    daemon.wait().await;
+    sim.handle.stop().await;
+}
+
+/// The battery/EV example over the wire from 23:58 on a Monday in Adelaide: the car came
+/// home that evening, below its 80 %, so at midnight its `reach: 80%` duty, reading the
+/// charger's SoC register, has the daemon write the full 16 A for the night window.
+#[tokio::test(start_paused = true)]
+async fn a_cars_state_of_charge_duty_charges_it_overnight_over_the_wire() {
+    // 2026-06-22 23:58 ACST (UTC+9:30) = 14:28 UTC.
+    let start = 1_782_138_480_000;
+    let sim = Sim::start_site_at(include_str!("../config/battery-ev-limited-export.yaml"), 0.0, start).await;
+    sim_until("the car plugged in", Duration::from_secs(5), || sim.handle.readings().ev.is_some_and(|e| e.plugged))
+        .await;
+    let ev = sim.handle.readings().ev.expect("the example has a charger");
+    assert!(ev.soc_pct < 79.0, "the weekday car is home and short: {ev:?}");
+    let daemon = daemon_for(&sim, &sim.site_yaml()).await;
+    sim_until("the charger told 16 A", Duration::from_secs(180), || sim.handle.controls().ev_current_a >= 16.0).await;
+    let s = daemon.status().borrow().clone();
+    let car = load(&s, "car");
+    let duty = &car.obligations[0];
+    let soc = sim.handle.readings().ev.unwrap().soc_pct;
+    println!("simulator: car at {soc:.1} %, the duty: {}, the car's reason: {}", duty.progress, car.reason);
+    assert_eq!(car.reason, "obligation");
+    assert!(duty.progress.ends_with("% of 80 %"), "{}", duty.progress);
+    let shown: f64 = duty.progress.split(' ').next().unwrap().parse().unwrap();
+    assert!((shown - soc).abs() < 0.5, "{} against {soc:.1} %", duty.progress);
     daemon.shutdown();
     daemon.wait().await;
     sim.handle.stop().await;

@@ -124,7 +124,8 @@ pub fn describe(site: &Site) -> String {
                 } else {
                     format!(" {:?}", m.value_type).to_lowercase()
                 };
-                format!("{table} {}{ty}{scale}", m.address)
+                let missing = m.missing.map_or_else(String::new, |raw| format!(" ({raw:#06X} = no reading)"));
+                format!("{table} {}{ty}{scale}{missing}", m.address)
             }
             PointRead::SunSpec(s) => format!("SunSpec {}.{}{}", s.model, s.point, factor_note(p.unit_factor)),
             PointRead::Mqtt(m) => match &m.payload {

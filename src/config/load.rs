@@ -955,6 +955,25 @@ impl Builder<'_, '_> {
         (points, info)
     }
 
+    /// The raw value of `missing:` as the register bits of `ty`: `0xFFFF` or `65535`,
+    /// and for a signed type its negative too (`-32768` is `0x8000` in an `i16`).
+    fn missing_value(&mut self, n: &Node, ty: ValueType, what: &str) -> Option<u64> {
+        let width = 16 * u32::from(ty.registers());
+        let v = values::integer(n, i64::MIN, i64::MAX, "the missing value", self.diags)?;
+        let fits = if width >= 64 { true } else { v < (1i64 << width) && v >= -(1i64 << (width - 1)) };
+        if !fits {
+            self.diags.error(
+                "C0280",
+                format!("{what}: `missing: {v}` does not fit the point's {width}-bit registers"),
+                n.span.clone(),
+                "give the raw register value that means no reading, e.g. 0xFFFF",
+            );
+            return None;
+        }
+        let mask = if width >= 64 { u64::MAX } else { (1u64 << width) - 1 };
+        Some((v as u64) & mask)
+    }
+
     fn point(&mut self, name: &str, node: &Node, devices: &[Device], stale_default: Duration) -> Option<Point> {
         let what = format!("point \"{name}\"");
         let mut m = MapReader::new(node, &what, self.diags)?;
@@ -975,6 +994,7 @@ impl Builder<'_, '_> {
         let stale = m.get("stale_after");
         let latency_node = m.get("latency");
         let frozen_node = m.get("frozen_after");
+        let missing_node = m.get("missing");
         let span = m.span();
         m.finish(self.diags);
 
@@ -1053,9 +1073,18 @@ impl Builder<'_, '_> {
         // Keys that belong to another kind of source would be ignored without a word;
         // an ignored `scale: -1` on a grid meter reverses the sign the guard relies on.
         let misplaced: &[(&str, Option<&Node>)] = if topic.is_some() {
-            &[("table", table), ("type", type_node), ("word_order", order_node)]
+            &[("table", table), ("type", type_node), ("word_order", order_node), ("missing", missing_node)]
         } else if sunspec.is_some() {
-            &[("table", table), ("type", type_node), ("word_order", order_node), ("json", json), ("qos", qos)]
+            &[
+                ("table", table),
+                ("type", type_node),
+                ("word_order", order_node),
+                ("json", json),
+                ("qos", qos),
+                ("missing", missing_node),
+            ]
+        } else if bit {
+            &[("json", json), ("qos", qos), ("missing", missing_node)]
         } else {
             &[("json", json), ("qos", qos)]
         };
@@ -1196,6 +1225,10 @@ impl Builder<'_, '_> {
                 None => Scale::Factor(1.0),
                 Some(s) => self.scale(s)?,
             };
+            let missing = match missing_node {
+                Some(n) => Some(self.missing_value(n, value_type, &what)?),
+                None => None,
+            };
             let end = u32::from(address) + u32::from(value_type.registers()) - 1;
             if end > 65535 {
                 self.diags.error(
@@ -1206,7 +1239,7 @@ impl Builder<'_, '_> {
                 );
                 return None;
             }
-            PointRead::Modbus(ModbusRead { table, address, value_type, word_order, scale })
+            PointRead::Modbus(ModbusRead { table, address, value_type, word_order, scale, missing })
         };
         let poll = match poll {
             Some(n) => values::duration_at_least(n, "the poll period", MIN_POLL, POLL_WHY, self.diags)?,

@@ -395,6 +395,9 @@ pub struct ModbusRead {
     pub word_order: WordOrder,
     /// Raw value to configured unit.
     pub scale: Scale,
+    /// A raw value (the register bits) that means "no reading": a charger that shows
+    /// 0xFFFF for the SoC of a car it does not have.
+    pub missing: Option<u64>,
 }
 
 /// A point named by SunSpec model and point name (`103.W`, `203.W`).

@@ -67,6 +67,8 @@ struct LoadState {
     reason: Reason,
     /// When the load last went from off to on or back.
     changed_at: Timestamp,
+    /// When its command last changed at all (a setpoint included).
+    command_at: Timestamp,
     starts: VecDeque<Timestamp>,
     runtime_today: Duration,
     energy_today: Energy,
@@ -148,6 +150,7 @@ impl Engine {
                 command: Command::Off,
                 reason: Reason::Waiting,
                 changed_at: Timestamp::NEVER,
+                command_at: Timestamp::NEVER,
                 starts: VecDeque::new(),
                 runtime_today: Duration::ZERO,
                 energy_today: Energy::ZERO,
@@ -570,13 +573,16 @@ impl Engine {
                 // A new state of the load: its opposite rule starts afresh.
                 reset_rule_states(site, i, st);
             }
+            if command != st.command {
+                st.command_at = now;
+            }
             st.command = command;
             st.reason = reason;
             let p = command.power(&site.loads[i].kind);
             if command.is_on() {
                 used += p;
             }
-            new_power += p;
+            new_power += expected_draw(site, i, st, p, &self.values, snapshot);
         }
         self.reserved = reserved;
         if self.covers {
@@ -651,6 +657,9 @@ impl Engine {
                 // minimum off-time) must not keep a discharge nobody is steering any more.
                 st.command = Command::Off;
             }
+            if st.command.power(&l.kind) != before {
+                st.command_at = self.last_now.unwrap_or(Timestamp::NEVER);
+            }
             added += st.command.power(&l.kind) - before;
         }
         added
@@ -688,8 +697,9 @@ impl Engine {
         self.counters.roll_over(new_month);
         for (i, (l, s)) in self.site.loads.iter().zip(self.loads.iter_mut()).enumerate() {
             for (j, (ob, st)) in l.obligations.iter().zip(s.obligations.iter_mut()).enumerate() {
-                let met = st.end_of_day(ob, s.runtime_today, now);
-                self.results.push(ObligationResult { load: LoadId(i), index: j, day: previous.day, met });
+                if let Some(met) = st.end_of_day(ob, s.runtime_today, now) {
+                    self.results.push(ObligationResult { load: LoadId(i), index: j, day: previous.day, met });
+                }
             }
             s.runtime_today = Duration::ZERO;
             s.energy_today = Energy::ZERO;
@@ -866,6 +876,37 @@ fn load_deps(site: &Site, load: &crate::config::model::Load, guard_points: &[Poi
     deps.sort();
     deps.dedup();
     deps
+}
+
+/// How long a load's own meter may take to show a new command: a charger ramps to a
+/// new current within seconds (IEC 61851-1 gives the car 5 s to follow a change of the
+/// pilot signal, `from memory`), a relay and a heater at once.
+const DRAW_SETTLES: Duration = Duration::from_secs(5);
+
+/// What the grid will see load `i` draw under its new command `commanded`, for the
+/// export guard. A load with its own fresh meter that has read it since the command
+/// settled already shows what it does with it: a charger commanded on with no car or a
+/// full one, a heater whose thermostat has cut, draw nothing. Counting their command
+/// told the guard 3.7 kW were coming, and it let that much PV out as export, for as
+/// long as the command stood.
+fn expected_draw(
+    site: &Site,
+    i: usize,
+    st: &LoadState,
+    commanded: Power,
+    values: &[f64],
+    snapshot: &Snapshot,
+) -> Power {
+    let Some(p) = site.loads[i].power else {
+        return commanded;
+    };
+    let measured = values[p.0];
+    let taken = snapshot.get(p).at.minus(site.points[p.0].latency);
+    if measured.is_finite() && st.command_at != Timestamp::NEVER && taken >= st.command_at.plus(DRAW_SETTLES) {
+        Power(measured.max(0.0))
+    } else {
+        commanded
+    }
 }
 
 fn truth(

@@ -13,6 +13,8 @@ use crate::units::{Temperature, Timestamp};
 pub struct ObligationState {
     /// ReachBy, ChargeBy: the target was seen at the deadline today.
     pub met_today: bool,
+    /// ReachBy, ChargeBy: the level was read at all in the minute before the deadline.
+    pub judged_today: bool,
     /// ReachBy, ChargeBy: currently heating or charging from the grid (hysteresis).
     pub forcing: bool,
     /// Cycle: since when the temperature has been at or above the target.
@@ -112,11 +114,13 @@ impl ObligationState {
         let deadline = seconds(*by);
         if let Some(v) = level
             && sod <= deadline
-            && v >= target - band.met_within
             && sod + 60 >= deadline
         {
             // Judged in the last minute before the deadline.
-            self.met_today = true;
+            self.judged_today = true;
+            if v >= target - band.met_within {
+                self.met_today = true;
+            }
         }
         let in_window = grid_window.is_some_and(|w| w.contains(sod)) && sod < deadline;
         match (in_window, level) {
@@ -179,19 +183,28 @@ impl ObligationState {
         }
     }
 
-    /// Judges the day that just ended and resets the daily part of the state.
-    pub fn end_of_day(&mut self, ob: &Obligation, runtime_today: Duration, now: Timestamp) -> bool {
+    /// Judges the day that just ended and resets the daily part of the state. `None`
+    /// for a state of charge that could not be read at its deadline: a car that was not
+    /// there (a charger knows a car's SoC only while it is plugged in) owed nothing. A
+    /// tank sensor that is silent at the deadline, by contrast, is a day missed.
+    pub fn end_of_day(&mut self, ob: &Obligation, runtime_today: Duration, now: Timestamp) -> Option<bool> {
         let met = match ob {
             Obligation::RunDaily { duration, .. } => runtime_today >= *duration,
-            Obligation::ReachBy { .. } | Obligation::ChargeBy { .. } => self.met_today,
+            Obligation::ReachBy { .. } => self.met_today,
+            Obligation::ChargeBy { .. } if !self.judged_today => {
+                self.forcing = false;
+                return None;
+            }
+            Obligation::ChargeBy { .. } => self.met_today,
             Obligation::Cycle { every, .. } => {
                 // Met as long as the cycle is not overdue by more than a day.
                 self.last_cycle.is_some_and(|last| now.since(last) <= *every + Duration::from_secs(86_400))
             }
         };
         self.met_today = false;
+        self.judged_today = false;
         self.forcing = false;
-        met
+        Some(met)
     }
 }
 
@@ -227,8 +240,8 @@ mod tests {
         assert!(s.demand(&ob, &at(18 * 3600 - 30, 2.0, None)).force_on);
         // Done: no forcing.
         assert!(!s.demand(&ob, &at(20 * 3600, 5.0, None)).force_on);
-        assert!(!s.end_of_day(&ob, Duration::from_secs(4 * 3600), Timestamp(0)));
-        assert!(s.end_of_day(&ob, Duration::from_secs(5 * 3600), Timestamp(0)));
+        assert_eq!(s.end_of_day(&ob, Duration::from_secs(4 * 3600), Timestamp(0)), Some(false));
+        assert_eq!(s.end_of_day(&ob, Duration::from_secs(5 * 3600), Timestamp(0)), Some(true));
     }
 
     /// A window over midnight: today's morning part first, then the rest in the evening
@@ -261,7 +274,7 @@ mod tests {
         assert!(!s.demand(&ob, &at(16 * 3600 + 60, 0.0, Some(59.5))).force_on, "within the restart deadband");
         assert!(s.demand(&ob, &at(16 * 3600 + 120, 0.0, Some(58.8))).force_on, "below the deadband");
         let _ = s.demand(&ob, &at(17 * 3600 - 30, 0.0, Some(59.1)));
-        assert!(s.end_of_day(&ob, Duration::ZERO, Timestamp(0)));
+        assert_eq!(s.end_of_day(&ob, Duration::ZERO, Timestamp(0)), Some(true));
     }
 
     #[test]

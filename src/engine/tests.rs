@@ -686,6 +686,46 @@ fn curtailment_is_released_gradually_once_import_returns() {
     assert!(second.0 > first.0 && second.0 - first.0 <= 200.0 + 1e-9, "{first} → {second}: at most the release rate");
 }
 
+/// A charger held on (here by its duty) with no car to charge draws nothing, and its own
+/// meter says so. The guard once counted its command as power about to be drawn, raised
+/// the inverter's limit by 3.7 kW, and exported that for as long as the command stood.
+#[test]
+fn a_load_commanded_on_that_draws_nothing_does_not_open_the_inverter_into_export() {
+    let loads = r#"
+  - name: car
+    kind: charger
+    min_current: 6A
+    max_current: 16A
+    power: pump_power
+    setpoint: { device: relays, register: 0, scale: 0.1 }
+    obligations:
+      - { run: 3h, grid_window: "11:00..14:00" }
+"#;
+    let mut h = Harness::new(&site(
+        "  export: forbidden
+  import_target: 40W",
+        loads,
+    ))
+    .at_local(11, 0);
+    let (house, available) = (500.0, 4000.0);
+    h.set("pump_power", 0.0); // the car is away
+    let mut limit: Option<f64> = None;
+    let mut over = 0;
+    for second in 0..300 {
+        let pv = limit.map_or(available, |l| l.min(available));
+        let grid = house - pv;
+        h.set("pv", pv);
+        h.set("grid", grid);
+        let d = h.tick();
+        assert!(second < 2 || matches!(d.loads[0].reason, Reason::Obligation { .. }), "{:?}", d.loads[0]);
+        limit = d.inverter_limit.map(|p| p.0);
+        if grid < -100.0 {
+            over += 1;
+        }
+    }
+    assert!(over <= 8, "{over} s of export above 100 W (the limit ended at {limit:?})");
+}
+
 /// A slow release with the widest tolerance: each second's step is smaller than half
 /// the tolerance, which once kept every release from being written, so the limit never
 /// climbed back and the array stayed curtailed all day.
@@ -1329,6 +1369,16 @@ fn a_chargers_state_of_charge_obligation_reads_the_car_and_a_silent_soc_stops_on
     h.set("grid", -3000.0);
     h.run(secs(30));
     assert!(matches!(h.command("car"), Command::Current(a) if a.0 >= 6.0), "{:?}", h.reason("car"));
+    // No SoC at 07:00 (the car was away): the day is neither met nor missed.
+    h.run(secs(12 * 3600));
+    assert!(h.engine.take_obligation_results().is_empty());
+    // The next day the car is home at 07:00, short of its target: missed.
+    h.set("grid", 300.0);
+    h.set("soc", 70.0);
+    h.run(secs(24 * 3600));
+    let results = h.engine.take_obligation_results();
+    assert_eq!(results.len(), 1);
+    assert!(!results[0].met);
 }
 
 /// A grid top-up keeps to the load's anti-chatter limits. Here an inhibit rule trips on

@@ -144,7 +144,7 @@ impl Binding {
                         (
                             probe,
                             Some(unit),
-                            Some((m.table, m.address, m.value_type, m.word_order, m.scale, Sentinel::None)),
+                            Some((m.table, m.address, m.value_type, m.word_order, m.scale, Sentinel::of(m))),
                         )
                     }
                     (PointRead::SunSpec(s), link) => {

@@ -56,10 +56,15 @@ impl Sim {
 
     /// Serves the plant of another site file (devices at 127.0.0.1:5020 in it).
     pub async fn start_site(site: &'static str, pv_w: f64) -> Sim {
+        Sim::start_site_at(site, pv_w, START_MS).await
+    }
+
+    /// The same, from another instant (ms since the epoch, UTC).
+    pub async fn start_site_at(site: &'static str, pv_w: f64, start_ms: i64) -> Sim {
         let cfg = from_site_yaml(site).unwrap().expect("the site has a plant section");
         let pv = StepPv::default();
         pv.set(pv_w);
-        let plant = Plant::new(&cfg, Box::new(pv.clone()), START_MS, cfg.seed.unwrap_or(7)).unwrap();
+        let plant = Plant::new(&cfg, Box::new(pv.clone()), start_ms, cfg.seed.unwrap_or(7)).unwrap();
         let options = ServeOptions { step: Some(Duration::from_millis(100)), ..ServeOptions::default() };
         let handle = Server::start(plant, options).await.unwrap();
         Sim { handle, pv, site }

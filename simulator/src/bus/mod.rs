@@ -682,7 +682,8 @@ impl Bus {
         match &r.ev {
             Some(e) => {
                 regs[30] = flag(e.plugged);
-                regs[31] = u16_sf(e.soc_pct, -1);
+                // A charger knows a car's SoC only while the car is plugged in.
+                regs[31] = if e.plugged { u16_sf(e.soc_pct, -1) } else { 0xFFFF };
                 regs[32] = u16_sf(e.current_a, -1);
                 regs[33] = u16_sf(e.power_w, 0);
             }

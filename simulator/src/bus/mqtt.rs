@@ -82,7 +82,10 @@ impl Bus {
             put("loads/disconnected".into(), on_off(r.loads_disconnected));
             if let Some(e) = &r.ev {
                 put("ev/plugged".into(), on_off(e.plugged));
-                put("ev/soc".into(), num(e.soc_pct));
+                if e.plugged {
+                    // A charger knows a car's SoC only while the car is plugged in.
+                    put("ev/soc".into(), num(e.soc_pct));
+                }
                 put("ev/current".into(), num(e.current_a));
                 put("ev/power".into(), num(e.power_w));
             }

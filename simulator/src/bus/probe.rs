@@ -114,7 +114,8 @@ impl Probe {
             Probe::LoadsDisconnected => flag(r.loads_disconnected),
             Probe::GridAvailable => flag(r.grid_available),
             Probe::EvPlugged => flag(r.ev?.plugged),
-            Probe::EvSoc => r.ev?.soc_pct,
+            // A charger knows a car's SoC only while the car is plugged in.
+            Probe::EvSoc => r.ev.filter(|e| e.plugged)?.soc_pct,
             Probe::EvCurrent => r.ev?.current_a,
             Probe::EvPower => r.ev?.power_w,
             Probe::LoadPower(k) => *r.loads_w.get(k)?,

@@ -25,6 +25,15 @@ pub enum Sentinel {
     U64Max,
     /// `float32`: NaN (0x7FC00000).
     F32Nan,
+    /// A value the site file names (`missing:` on a register point).
+    Raw(u64),
+}
+
+impl Sentinel {
+    /// The sentinel of a plain Modbus point: the one its `missing:` names, else none.
+    pub fn of(read: &crate::config::model::ModbusRead) -> Sentinel {
+        read.missing.map_or(Sentinel::None, Sentinel::Raw)
+    }
 }
 
 /// The SunSpec scale-factor sentinel (`sunssf` 0x8000).
@@ -53,6 +62,7 @@ pub fn decode(words: &[u16], ty: ValueType, order: WordOrder, sentinel: Sentinel
         Sentinel::I32Min => bits == 0x8000_0000,
         Sentinel::U64Max => bits == u64::MAX,
         Sentinel::F32Nan => f32::from_bits(bits as u32).is_nan(),
+        Sentinel::Raw(raw) => bits == raw,
     };
     if missing {
         return None;
@@ -129,5 +139,16 @@ mod tests {
         assert_eq!(apply_sunssf(1234.0, i16::MIN), None);
         assert_eq!(apply_sunssf(1.0, 11), None);
         assert_eq!(encode(70000.0, ValueType::U16, WordOrder::HighFirst), vec![0xFFFF]);
+    }
+
+    /// A site's own `missing:` value: only those bits mean "no reading".
+    #[test]
+    fn a_named_missing_value_is_no_reading() {
+        let raw = Sentinel::Raw(0xFFFF);
+        assert_eq!(decode(&[0xFFFF], ValueType::U16, WordOrder::HighFirst, raw), None);
+        assert_eq!(decode(&[0xFFFE], ValueType::U16, WordOrder::HighFirst, raw), Some(65534.0));
+        let wide = Sentinel::Raw(0x0001_0002);
+        assert_eq!(decode(&[2, 1], ValueType::U32, WordOrder::LowFirst, wide), None);
+        assert_eq!(decode(&[1, 2], ValueType::U32, WordOrder::LowFirst, wide), Some(131_073.0));
     }
 }

@@ -187,7 +187,7 @@ impl ModbusLink {
                         Scale::Factor(f) => ScaleSpec::Factor(f),
                         Scale::Register { table, address } => ScaleSpec::Register { table, address },
                     },
-                    sentinel: Sentinel::None,
+                    sentinel: Sentinel::of(m),
                     unit_factor: p.unit_factor,
                     boolean: p.boolean,
                     poll: p.poll,

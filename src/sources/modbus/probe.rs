@@ -92,7 +92,7 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
                     Scale::Factor(f) => ScaleSpec::Factor(f),
                     Scale::Register { table, address } => ScaleSpec::Register { table, address },
                 },
-                sentinel: Sentinel::None,
+                sentinel: Sentinel::of(m),
                 unit_factor: pt.unit_factor,
                 boolean: pt.boolean,
                 poll: pt.poll,
