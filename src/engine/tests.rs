@@ -1323,15 +1323,18 @@ fn a_state_of_charge_obligation_charges_a_battery_from_the_grid_until_the_target
     h.set("soc", 80.2);
     // Past the deadline and midnight (it is 14:30 now) the day is judged met.
     h.run(secs(11 * 3600));
-    let results = h.engine.take_obligation_results();
-    assert_eq!(results.len(), 1);
-    assert!(results[0].met);
+    assert!(one_verdict(&mut h));
     // A day that ends below the target is missed.
     h.set("soc", 60.0);
     h.run(secs(24 * 3600));
+    assert!(!one_verdict(&mut h));
+}
+
+/// The one obligation verdict given since the last call: met or not.
+fn one_verdict(h: &mut Harness) -> bool {
     let results = h.engine.take_obligation_results();
-    assert_eq!(results.len(), 1);
-    assert!(!results[0].met);
+    assert_eq!(results.len(), 1, "{results:?}");
+    results[0].met
 }
 
 /// `reach: 80%` on a charger reads the car's SoC; a silent SoC (the car away, a charger
@@ -1376,9 +1379,7 @@ fn a_chargers_state_of_charge_obligation_reads_the_car_and_a_silent_soc_stops_on
     h.set("grid", 300.0);
     h.set("soc", 70.0);
     h.run(secs(24 * 3600));
-    let results = h.engine.take_obligation_results();
-    assert_eq!(results.len(), 1);
-    assert!(!results[0].met);
+    assert!(!one_verdict(&mut h));
 }
 
 /// A grid top-up keeps to the load's anti-chatter limits. Here an inhibit rule trips on
