@@ -225,14 +225,17 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
         LoadKind::Proportional { rated, min, step, setpoint, .. } => {
             format!("proportional up to {rated} (min {min}, step {step}), setpoint to {}", write_text(site, setpoint))
         }
-        LoadKind::Charger { watts_per_amp, min, max, step, setpoint, hold_min_from_grid, soc, .. } => format!(
-            "charger {min}–{max} in steps of {step} ({} W per A), current to {}; {}{}",
+        LoadKind::Charger {
+            watts_per_amp, min, max, step, setpoint, hold_min_from_grid, soc, car_capacity, ..
+        } => format!(
+            "charger {min}–{max} in steps of {step} ({} W per A), current to {}; {}{}{}",
             trim_number(*watts_per_amp),
             write_text(site, setpoint),
             if *hold_min_from_grid { "holds its minimum from the grid" } else { "pauses below its minimum" },
-            soc.map_or_else(String::new, |p| format!("; the car's state of charge on {}", site.points[p.0].name))
+            soc.map_or_else(String::new, |p| format!("; the car's state of charge on {}", site.points[p.0].name)),
+            car_capacity.map_or_else(String::new, |c| format!(" (a car of {c})"))
         ),
-        LoadKind::Battery { max_charge, min_charge, soc_max, soc_resume, soc, setpoint, discharge } => {
+        LoadKind::Battery { max_charge, min_charge, soc_max, soc_resume, soc, setpoint, discharge, capacity } => {
             let discharge = match discharge {
                 None => "; never discharged by Spillway".to_string(),
                 Some(d) => format!(
@@ -245,7 +248,8 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
                 ),
             };
             format!(
-                "battery charging from {min_charge} up to {max_charge} until {} reaches {soc_max} (resumes below {soc_resume}){discharge}, power to {}",
+                "battery{} charging from {min_charge} up to {max_charge} until {} reaches {soc_max} (resumes below {soc_resume}){discharge}, power to {}",
+                capacity.map_or_else(String::new, |c| format!(" of {c}")),
                 site.points[soc.0].name,
                 write_text(site, setpoint)
             )

@@ -17,7 +17,7 @@ use super::values::{self, is_name};
 use super::yaml::{self, Diagnostics, MapReader, Node, Value};
 use crate::diag::{self, Diagnostic, did_you_mean};
 use crate::rules::{self, Scope, Slot, Type};
-use crate::units::{self, Current, Dimension, Power, Ratio, Temperature, Voltage};
+use crate::units::{self, Current, Dimension, Energy, Power, Ratio, Temperature, Voltage};
 
 /// The text of a site file and the name it is shown under.
 #[derive(Debug, Clone)]
@@ -1790,6 +1790,10 @@ impl Builder<'_, '_> {
                     }
                     None => None,
                 };
+                let car_capacity = match m.get("car_capacity") {
+                    Some(n) => Some(Energy(values::positive(n, Dimension::Energy, "the car's capacity", self.diags)?)),
+                    None => None,
+                };
                 let (min, max) = (min?, max?);
                 if min > max {
                     self.diags.error(
@@ -1809,6 +1813,7 @@ impl Builder<'_, '_> {
                     enable,
                     hold_min_from_grid: below? == "hold",
                     soc,
+                    car_capacity,
                 })
             }
             _ => {
@@ -1832,6 +1837,11 @@ impl Builder<'_, '_> {
                             None
                         }
                     },
+                };
+                let capacity = match m.get("capacity") {
+                    Some(n) => values::positive(n, Dimension::Energy, "the battery's capacity", self.diags)
+                        .map(|e| Some(Energy(e))),
+                    None => Some(None),
                 };
                 let soc_max_node = m.get("soc_max");
                 let soc_max = soc_max_node.map_or(Some(100.0), |n| {
@@ -1893,6 +1903,7 @@ impl Builder<'_, '_> {
                     soc_max: Ratio(soc_max),
                     soc_resume: Ratio(soc_resume),
                     soc: soc?,
+                    capacity: capacity?,
                     setpoint: setpoint?,
                     discharge,
                 })
@@ -2372,7 +2383,12 @@ impl Builder<'_, '_> {
             let by = values::time_of_day(by_node, "`by`", self.diags)?;
             let target = target?;
             return Some(if is_soc {
-                Obligation::ChargeBy { soc: Ratio(target), by, grid_window }
+                // Time per percentage point at the load's full power, where its capacity
+                // is known.
+                let pace = kind
+                    .and_then(|k| Some((k.capacity()?, k.max_power())))
+                    .and_then(|(c, p)| (p.0 > 0.0).then(|| Duration::from_secs_f64(c.0 / 100.0 / p.0 * 3600.0)));
+                Obligation::ChargeBy { soc: Ratio(target), by, grid_window, pace }
             } else {
                 Obligation::ReachBy { target: Temperature(target), by, grid_window }
             });

@@ -10,7 +10,7 @@ use chrono::NaiveTime;
 use chrono_tz::Tz;
 
 use crate::rules::{Rule, Slot};
-use crate::units::{Current, Dimension, Power, Ratio, Temperature, Voltage};
+use crate::units::{Current, Dimension, Energy, Power, Ratio, Temperature, Voltage};
 
 /// Index of a device in [`Site::devices`].
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
@@ -592,6 +592,9 @@ pub enum LoadKind {
         /// The car's state of charge, where the charger (or the car) reports it: what a
         /// `reach: 80%` obligation watches.
         soc: Option<PointId>,
+        /// The car's usable battery capacity, if given: lets a `reach: N%` top-up start
+        /// just late enough.
+        car_capacity: Option<Energy>,
     },
     /// A battery charged with a power setpoint within state-of-charge limits.
     Battery {
@@ -606,6 +609,8 @@ pub enum LoadKind {
         soc_resume: Ratio,
         /// The state-of-charge point.
         soc: PointId,
+        /// Usable capacity, if given: lets a `reach: N%` top-up start just late enough.
+        capacity: Option<Energy>,
         /// Where the charge power is written (W).
         setpoint: Write,
         /// Whether, and how far, it may discharge to cover the house's own import.
@@ -639,6 +644,14 @@ impl LoadKind {
             LoadKind::Stepped { stages, .. } => stages.last().copied().unwrap_or_default(),
             LoadKind::Charger { watts_per_amp, max, .. } => Power(watts_per_amp * max.0),
             LoadKind::Battery { max_charge, .. } => *max_charge,
+        }
+    }
+    /// The usable capacity behind the state of charge, where the site file gives it.
+    pub fn capacity(&self) -> Option<Energy> {
+        match self {
+            LoadKind::Battery { capacity, .. } => *capacity,
+            LoadKind::Charger { car_capacity, .. } => *car_capacity,
+            _ => None,
         }
     }
     /// The state-of-charge point a `reach: N%` obligation watches: a battery's `soc`,
@@ -738,6 +751,10 @@ pub enum Obligation {
         by: NaiveTime,
         /// When grid power may be used.
         grid_window: Option<Window>,
+        /// How long the load takes to add one percentage point at full power, where its
+        /// capacity is known: the top-up then starts just late enough. Without it, it
+        /// starts when the window opens.
+        pace: Option<Duration>,
     },
     /// Hold a high temperature periodically (anti-Legionella cycle).
     Cycle {
