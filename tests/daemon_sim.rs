@@ -186,8 +186,9 @@ async fn a_commanded_battery_covers_the_house_over_the_wire() {
 }
 
 /// The battery/EV example over the wire from 23:58 on a Monday in Adelaide: the car came
-/// home that evening, below its 80 %, so at midnight its `reach: 80%` duty, reading the
-/// charger's SoC register, has the daemon write the full 16 A for the night window.
+/// home that evening, below its 80 %, so in the night window its `reach: 80%` duty,
+/// reading the charger's SoC register, has the daemon write the full 16 A, starting just
+/// late enough for the car's `car_capacity`.
 #[tokio::test(start_paused = true)]
 async fn a_cars_state_of_charge_duty_charges_it_overnight_over_the_wire() {
     // 2026-06-22 23:58 ACST (UTC+9:30) = 14:28 UTC.
@@ -198,7 +199,18 @@ async fn a_cars_state_of_charge_duty_charges_it_overnight_over_the_wire() {
     let ev = sim.handle.readings().ev.expect("the example has a charger");
     assert!(ev.soc_pct < 79.0, "the weekday car is home and short: {ev:?}");
     let daemon = daemon_for(&sim, &sim.site_yaml()).await;
-    sim_until("the charger told 16 A", Duration::from_secs(180), || sim.handle.controls().ev_current_a >= 16.0).await;
+    // With `car_capacity` the top-up starts just late enough, not at midnight: the
+    // points missing × 9.46 min a point × 1.25, plus 10 min, before 06:00.
+    let late_start_s = (80.0 - ev.soc_pct) * 567.4 * 1.25 + 600.0;
+    let due = 2.0 * 60.0 + (6.0 * 3600.0 - late_start_s);
+    assert!(due > 180.0, "the example's car is not due at midnight: {due:.0} s after the start");
+    tokio::time::sleep(Duration::from_secs(180)).await;
+    assert_eq!(sim.handle.controls().ev_current_a, 0.0, "00:01: the top-up waits");
+    let begun = Instant::now();
+    sim_until("the charger told 16 A", Duration::from_secs(1800), || sim.handle.controls().ev_current_a >= 16.0).await;
+    let at = 180.0 + begun.elapsed().as_secs_f64();
+    println!("simulator: the top-up began {at:.0} s after 23:58 (due {due:.0} s)");
+    assert!((at - due).abs() < 120.0, "began {at:.0} s after the start, due at {due:.0} s");
     let s = daemon.status().borrow().clone();
     let car = load(&s, "car");
     let duty = &car.obligations[0];

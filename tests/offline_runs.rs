@@ -1038,10 +1038,10 @@ fn loads_divert_what_a_self_limiting_inverter_holds_back() {
 fn what_the_rules_deliver_less_of_than_the_baseline_is_counted_beside_the_savings() {
     let example_path = example("battery-ev-limited-export.yaml");
     let text = std::fs::read_to_string(&example_path).unwrap();
-    // The example without the car's overnight top-up: surplus only.
-    let start = text.find("    obligations:\n      # The commuter's car").expect("the car's obligation");
-    let end = text.find("        grid_window: 00:00..06:00\n").expect("its window")
-        + "        grid_window: 00:00..06:00\n".len();
+    // The example without the car's top-ups (overnight and weekend): surplus only.
+    let start = text.find("    obligations:\n      # The commuter's car").expect("the car's obligations");
+    let end = text.find("        grid_window: 10:00..16:00\n").expect("the last one's window")
+        + "        grid_window: 10:00..16:00\n".len();
     let surplus_only = format!("{}{}", &text[..start], &text[end..]);
     let dir = std::env::temp_dir().join(format!("spillway-ev-short-{}", std::process::id()));
     std::fs::create_dir_all(&dir).unwrap();
