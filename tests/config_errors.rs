@@ -434,4 +434,12 @@ loads:
     assert_eq!(raw(&signed.site, "store_soc"), Some(0x8000));
     let shown = refused(&yaml.replace("missing: 0xFFFF", "missing: 0x10000"));
     assert!(shown.contains("[C0280]") && shown.contains("does not fit the point's 16-bit registers"), "{shown}");
+    // Hex without its 0x is text to YAML: say so, and nothing else.
+    let shown = refused(&yaml.replace("missing: 0xFFFF", "missing: ffff"));
+    assert!(shown.contains("[C0280]") && shown.contains("write it as 0xFFFF"), "{shown}");
+    assert!(!shown.contains("unknown key"), "a broken point leaves no key of its load unread: {shown}");
+    // A bare number on a charger with a SoC and no temperature is a SoC without its %.
+    let shown = refused(&yaml.replace("reach: 80%", "reach: 80"));
+    assert!(shown.contains("the target state of charge needs a unit") && shown.contains("write 80%"), "{shown}");
+    assert!(!shown.contains("[C0248]"), "{shown}");
 }

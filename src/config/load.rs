@@ -959,6 +959,16 @@ impl Builder<'_, '_> {
     /// and for a signed type its negative too (`-32768` is `0x8000` in an `i16`).
     fn missing_value(&mut self, n: &Node, ty: ValueType, what: &str) -> Option<u64> {
         let width = 16 * u32::from(ty.registers());
+        if let Value::Str(t) = &n.value
+            && u64::from_str_radix(t.trim_start_matches("0x"), 16).is_ok()
+        {
+            self.diags.push(
+                Diagnostic::error("C0280", format!("{what}: `missing: {t}` is text"), n.span.clone())
+                    .with_label("a hexadecimal number?")
+                    .with_note(format!("write it as 0x{}, or in decimal", t.trim_start_matches("0x").to_uppercase())),
+            );
+            return None;
+        }
         let v = values::integer(n, i64::MIN, i64::MAX, "the missing value", self.diags)?;
         let fits = if width >= 64 { true } else { v < (1i64 << width) && v >= -(1i64 << (width - 1)) };
         if !fits {
@@ -1784,14 +1794,20 @@ impl Builder<'_, '_> {
                 let below = m
                     .get("below_min")
                     .map_or(Some("pause"), |n| values::choice(n, &["pause", "hold"], "`below_min`", self.diags));
-                let soc = match m.get("soc") {
-                    Some(n) => {
-                        Some(self.point_ref(n, ctx.points, Some(Dimension::Ratio), "the car's state of charge")?)
-                    }
+                // Both read before either may return: a key left unread is reported as
+                // unknown, on top of the error that stopped here.
+                let soc = m
+                    .get("soc")
+                    .map(|n| self.point_ref(n, ctx.points, Some(Dimension::Ratio), "the car's state of charge"));
+                let car_capacity = m
+                    .get("car_capacity")
+                    .map(|n| values::positive(n, Dimension::Energy, "the car's capacity", self.diags).map(Energy));
+                let soc = match soc {
+                    Some(p) => Some(p?),
                     None => None,
                 };
-                let car_capacity = match m.get("car_capacity") {
-                    Some(n) => Some(Energy(values::positive(n, Dimension::Energy, "the car's capacity", self.diags)?)),
+                let car_capacity = match car_capacity {
+                    Some(c) => Some(c?),
                     None => None,
                 };
                 let (min, max) = (min?, max?);
@@ -2362,9 +2378,14 @@ impl Builder<'_, '_> {
             return Some(Obligation::RunDaily { duration: d, grid_window });
         }
         if let Some(n) = reach {
-            // `reach: 80%` is a state of charge, anything else a temperature.
-            let is_soc = matches!(&n.value, Value::Str(t)
-                if units::parse_quantity(t).is_ok_and(|q| q.dimension == Dimension::Ratio));
+            // `reach: 80%` is a state of charge, anything else a temperature; a bare
+            // number on a load that has a state of charge and no temperature is taken
+            // for a state of charge missing its `%` (so the error says so).
+            let is_soc = match &n.value {
+                Value::Str(t) => units::parse_quantity(t).is_ok_and(|q| q.dimension == Dimension::Ratio),
+                Value::Int(_) | Value::Float(_) => !has_temperature && kind.is_some_and(|k| k.soc_point().is_some()),
+                _ => false,
+            };
             let target = if is_soc {
                 self.soc_target(n, kind, what)
             } else {
