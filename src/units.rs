@@ -27,6 +27,8 @@ pub enum Dimension {
     Current,
     /// Seconds.
     Duration,
+    /// Litres (a tank's volume).
+    Volume,
     /// A plain number with no unit.
     Scalar,
 }
@@ -42,6 +44,7 @@ impl Dimension {
             Dimension::Voltage => "V",
             Dimension::Current => "A",
             Dimension::Duration => "s",
+            Dimension::Volume => "L",
             Dimension::Scalar => "",
         }
     }
@@ -56,6 +59,7 @@ impl Dimension {
             Dimension::Voltage => "a voltage",
             Dimension::Current => "a current",
             Dimension::Duration => "a duration",
+            Dimension::Volume => "a volume",
             Dimension::Scalar => "a plain number",
         }
     }
@@ -70,6 +74,7 @@ impl Dimension {
             Dimension::Voltage => "V",
             Dimension::Current => "A",
             Dimension::Duration => "ms, s, min, h or d",
+            Dimension::Volume => "L",
             Dimension::Scalar => "no unit",
         }
     }
@@ -105,6 +110,7 @@ const UNITS: &[UnitDef] = &[
     UnitDef { symbol: "min", dimension: Dimension::Duration, factor: 60.0 },
     UnitDef { symbol: "h", dimension: Dimension::Duration, factor: 3600.0 },
     UnitDef { symbol: "d", dimension: Dimension::Duration, factor: 86400.0 },
+    UnitDef { symbol: "L", dimension: Dimension::Volume, factor: 1.0 },
 ];
 
 /// Looks a unit symbol up: its dimension and the factor that turns it into the base unit.

@@ -443,3 +443,43 @@ loads:
     assert!(shown.contains("the target state of charge needs a unit") && shown.contains("write 80%"), "{shown}");
     assert!(!shown.contains("[C0248]"), "{shown}");
 }
+
+/// A tank's `volume` gives its temperature duty a pace (m·c / P per kelvin); without a
+/// `temperature` it has nothing to serve and is refused.
+#[test]
+fn a_tanks_volume_paces_its_temperature_duty_and_needs_a_temperature() {
+    let yaml = "
+site: { name: Hot House, timezone: Europe/Lisbon }
+devices:
+  sensors: { modbus_tcp: 127.0.0.1:5020, unit: 4 }
+points:
+  tank_temp: { device: sensors, register: 1, scale: 0.1, unit: °C }
+loads:
+  - name: heater
+    rated: 3.6kW
+    switch: { device: sensors, coil: 0 }
+    temperature: tank_temp
+    volume: 250L
+    obligations:
+      - { reach: 55°C, by: \"16:00\", grid_window: \"13:00..16:00\" }
+";
+    let loaded = spillway::config::load_str("hot.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    use spillway::config::model::Obligation;
+    // 250 kg × 4186 J/(kg·K) (specific heat of water, CRC Handbook; from memory) / 3600 W.
+    match &loaded.site.loads[0].obligations[0] {
+        Obligation::ReachBy { pace: Some(p), .. } => assert!((p.as_secs_f64() - 290.69).abs() < 0.01, "{p:?}"),
+        other => panic!("{other:?}"),
+    }
+    let described = spillway::config::describe::describe(&loaded.site);
+    assert!(described.contains("heats a tank of 250 L"), "{described}");
+    let shown = match spillway::config::load_str("hot.yaml", &yaml.replace("    temperature: tank_temp\n", "")) {
+        Ok(_) => panic!("accepted"),
+        Err(e) => e.render(false),
+    };
+    assert!(shown.contains("[C0281]") && shown.contains("has a `volume` but no `temperature`"), "{shown}");
+    let shown = match spillway::config::load_str("hot.yaml", &yaml.replace("250L", "250kg")) {
+        Ok(_) => panic!("accepted"),
+        Err(e) => e.render(false),
+    };
+    assert!(shown.contains("the tank's volume"), "{shown}");
+}

@@ -187,6 +187,9 @@ pub fn describe(site: &Site) -> String {
         if let Some(p) = l.power {
             let _ = writeln!(out, "     metered by {}", site.points[p.0].name);
         }
+        if let Some(v) = l.volume {
+            let _ = writeln!(out, "     heats a tank of {} L", trim_number(v));
+        }
         for ob in &l.obligations {
             let window = ob.grid_window().map_or(" (from surplus only)".to_owned(), |w| {
                 // A window ends at midnight as 24:00, the way it was written.

@@ -19,6 +19,19 @@ use crate::diag::{self, Diagnostic, did_you_mean};
 use crate::rules::{self, Scope, Slot, Type};
 use crate::units::{self, Current, Dimension, Energy, Power, Ratio, Temperature, Voltage};
 
+/// Specific heat of water, J/(kg·K): 4.186 kJ/(kg·K) near 15 °C (CRC Handbook of
+/// Chemistry and Physics; from memory), as the simulator's tank uses.
+const WATER_J_PER_KG_K: f64 = 4186.0;
+
+/// What a load's obligations may read: its temperature, its kind (a state of charge,
+/// its power), a tank's volume.
+#[derive(Clone, Copy)]
+struct DutyCtx<'k> {
+    has_temperature: bool,
+    kind: Option<&'k LoadKind>,
+    volume: Option<f64>,
+}
+
 /// The text of a site file and the name it is shown under.
 #[derive(Debug, Clone)]
 pub struct SourceFile {
@@ -1511,6 +1524,18 @@ impl Builder<'_, '_> {
         let temperature_node = m.get("temperature");
         let temperature = temperature_node
             .and_then(|n| self.point_ref(n, ctx.points, Some(Dimension::Temperature), "the load's temperature"));
+        let volume = match m.get("volume") {
+            Some(n) if temperature_node.is_none() => {
+                self.diags.push(
+                    Diagnostic::error("C0281", format!("{what} has a `volume` but no `temperature`"), n.span.clone())
+                        .with_label("the volume of what?")
+                        .with_note("`volume` is a tank's, for its temperature duties: add `temperature: <point>`, or remove it"),
+                );
+                None
+            }
+            Some(n) => values::positive(n, Dimension::Volume, "the tank's volume", self.diags),
+            None => None,
+        };
         // A `temperature` that names a missing or wrong point has its own error; the
         // obligations need not add that there is none.
         let temperature_given = temperature_node.is_some();
@@ -1559,7 +1584,10 @@ impl Builder<'_, '_> {
             _ => (start, stop),
         };
         let obligations = obligations_node
-            .map(|n| self.obligations(n, temperature_given, kind.as_ref(), &what))
+            .map(|n| {
+                let ctx = DutyCtx { has_temperature: temperature_given, kind: kind.as_ref(), volume };
+                self.obligations(n, &ctx, &what)
+            })
             .unwrap_or(Some(Vec::new()));
         // A temperature target the inhibit rule forbids can never be met: the load is
         // forced off before the water gets there (within the 1 K the target allows).
@@ -1680,6 +1708,7 @@ impl Builder<'_, '_> {
             kind,
             power,
             temperature,
+            volume,
             start,
             stop,
             inhibit,
@@ -2283,13 +2312,7 @@ impl Builder<'_, '_> {
         })
     }
 
-    fn obligations(
-        &mut self,
-        node: &Node,
-        has_temperature: bool,
-        kind: Option<&LoadKind>,
-        what: &str,
-    ) -> Option<Vec<Obligation>> {
+    fn obligations(&mut self, node: &Node, ctx: &DutyCtx<'_>, what: &str) -> Option<Vec<Obligation>> {
         let Value::Seq(items) = &node.value else {
             self.diags.error("C0246", "`obligations` is a list", node.span.clone(), "expected `- run: 6h` style items");
             return None;
@@ -2297,7 +2320,7 @@ impl Builder<'_, '_> {
         let mut out = Vec::new();
         let mut ok = true;
         for item in items {
-            match self.obligation(item, has_temperature, kind, what) {
+            match self.obligation(item, ctx, what) {
                 Some(o) => out.push(o),
                 None => ok = false,
             }
@@ -2305,13 +2328,8 @@ impl Builder<'_, '_> {
         ok.then_some(out)
     }
 
-    fn obligation(
-        &mut self,
-        node: &Node,
-        has_temperature: bool,
-        kind: Option<&LoadKind>,
-        what: &str,
-    ) -> Option<Obligation> {
+    fn obligation(&mut self, node: &Node, ctx: &DutyCtx<'_>, what: &str) -> Option<Obligation> {
+        let DutyCtx { has_temperature, kind, volume } = *ctx;
         let mut m = MapReader::new(node, "an obligation", self.diags)?;
         let run = m.get("run");
         let reach = m.get("reach");
@@ -2411,7 +2429,13 @@ impl Builder<'_, '_> {
                     .and_then(|(c, p)| (p.0 > 0.0).then(|| Duration::from_secs_f64(c.0 / 100.0 / p.0 * 3600.0)));
                 Obligation::ChargeBy { soc: Ratio(target), by, grid_window, pace }
             } else {
-                Obligation::ReachBy { target: Temperature(target), by, grid_window }
+                // Time per kelvin at the load's full power: m·c / P, c of water 4.186
+                // kJ/(kg·K) (CRC Handbook of Chemistry and Physics, near 15 °C; from
+                // memory), a litre taken as a kilogram.
+                let pace = volume.zip(kind.map(LoadKind::max_power)).and_then(|(litres, p)| {
+                    (p.0 > 0.0).then(|| Duration::from_secs_f64(litres * WATER_J_PER_KG_K / p.0))
+                });
+                Obligation::ReachBy { target: Temperature(target), by, grid_window, pace }
             });
         }
         let n = cycle?;

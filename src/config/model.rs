@@ -512,6 +512,9 @@ pub struct Load {
     pub power: Option<PointId>,
     /// The temperature its obligations watch (a tank's sensor).
     pub temperature: Option<PointId>,
+    /// The tank's volume, litres, if given: lets a temperature `reach` top-up start
+    /// just late enough.
+    pub volume: Option<f64>,
     /// Condition to start (switched/stepped) or to enable (proportional).
     pub start: Option<RuleText>,
     /// Condition to stop.
@@ -741,6 +744,9 @@ pub enum Obligation {
         by: NaiveTime,
         /// When grid power may be used.
         grid_window: Option<Window>,
+        /// How long the load takes to heat the tank by one kelvin at full power, where
+        /// its volume is known: the top-up then starts just late enough.
+        pace: Option<Duration>,
     },
     /// Reach a state of charge by a time of day (a car charged for the morning, a
     /// battery charged for the evening peak), on the load's `soc` point.

@@ -86,10 +86,11 @@ fn time_left_in(window: &crate::config::model::Window, sod: u32) -> Option<u32> 
     Some(if end > sod { end - sod } else { 86_400 - sod })
 }
 
-/// A state-of-charge top-up that knows its pace starts when the time left is this many
-/// times what the missing points take at full power, plus the slack below: charging
-/// loses 10–15 % between the meter and the cells, and a battery or a car tapers its
-/// current near full (`from memory`), so the bare arithmetic would arrive late.
+/// A top-up that knows its pace starts when the time left is this many times what the
+/// missing points (or kelvins) take at full power, plus the slack below: charging loses
+/// 10–15 % between the meter and the cells, a battery or a car tapers its current near
+/// full, and a tank loses heat while it heats (`from memory`), so the bare arithmetic
+/// would arrive late.
 const LATE_START_MARGIN: f64 = 1.25;
 const LATE_START_SLACK: Duration = Duration::from_secs(10 * 60);
 
@@ -99,7 +100,8 @@ struct Goal<'a> {
     by: chrono::NaiveTime,
     grid_window: Option<&'a crate::config::model::Window>,
     band: Band,
-    /// Time per point at full power, where known (state of charge only).
+    /// Time per point (a state of charge) or per kelvin (a tank) at full power, where
+    /// known.
     pace: Option<Duration>,
 }
 
@@ -170,13 +172,13 @@ impl ObligationState {
                 };
                 Demand { force_on }
             }
-            Obligation::ReachBy { target, by, grid_window } => {
+            Obligation::ReachBy { target, by, grid_window, pace } => {
                 let goal = Goal {
                     target: target.0,
                     by: *by,
                     grid_window: grid_window.as_ref(),
                     band: Band::TEMPERATURE,
-                    pace: None,
+                    pace: *pace,
                 };
                 Demand { force_on: self.reach(s.temperature.map(|t| t.0), goal, s.seconds_of_day) }
             }
@@ -313,12 +315,31 @@ mod tests {
         assert!(ObligationState::default().demand(&bare, &at_soc(10 * 3600, 55.0)).force_on);
     }
 
+    /// A 250 L tank with a 3.6 kW element heats 1 K in 250 × 4186 / 3600 = 290.7 s. From
+    /// 45 °C to 55 °C by 16:00: 48.4 min, 70.6 with the margin and the slack, so the
+    /// top-up starts at 14:49 rather than when the window opens at 13:00.
+    #[test]
+    fn a_tank_top_up_with_a_known_volume_starts_just_late_enough() {
+        let ob = Obligation::ReachBy {
+            target: Temperature(55.0),
+            by: t(16, 0),
+            grid_window: Some(Window { start: t(13, 0), end: t(16, 0) }),
+            pace: Some(Duration::from_secs_f64(250.0 * 4186.0 / 3600.0)),
+        };
+        let mut s = ObligationState::default();
+        assert!(!s.demand(&ob, &at(13 * 3600, 0.0, Some(45.0))).force_on, "13:00: time enough");
+        assert!(!s.demand(&ob, &at(14 * 3600 + 48 * 60, 0.0, Some(45.0))).force_on, "14:48");
+        assert!(s.demand(&ob, &at(14 * 3600 + 50 * 60, 0.0, Some(45.0))).force_on, "14:50: it must start");
+        assert!(!s.demand(&ob, &at(15 * 3600 + 40 * 60, 0.0, Some(55.0))).force_on, "there");
+    }
+
     #[test]
     fn reach_by_heats_in_the_window_with_hysteresis_and_judges_at_the_deadline() {
         let ob = Obligation::ReachBy {
             target: Temperature(60.0),
             by: t(17, 0),
             grid_window: Some(Window { start: t(15, 0), end: t(17, 0) }),
+            pace: None,
         };
         let mut s = ObligationState::default();
         assert!(!s.demand(&ob, &at(14 * 3600, 0.0, Some(50.0))).force_on, "before the window");

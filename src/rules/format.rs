@@ -134,6 +134,7 @@ pub(crate) fn unit_suggestion(value: f64, dimension: Dimension) -> Option<String
             format!("write {}s or {}min", n(value), n(value / 60.0))
         }
         Dimension::Duration => format!("write {}s", n(value)),
+        Dimension::Volume => format!("write {}L", n(value)),
         Dimension::Scalar => return None,
     })
 }
@@ -148,6 +149,7 @@ pub(crate) fn example_threshold(dimension: Dimension) -> &'static str {
         Dimension::Voltage => "51V",
         Dimension::Current => "10A",
         Dimension::Duration => "1h",
+        Dimension::Volume => "200L",
         Dimension::Scalar => "1",
     }
 }
