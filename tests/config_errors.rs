@@ -398,10 +398,6 @@ loads:
     let with_capacity = spillway::config::load_str("soc.yaml", &with_capacity).unwrap();
     let described = spillway::config::describe::describe(&with_capacity.site);
     assert!(described.contains("battery of 10 kWh charging from"), "{described}");
-    let refused = |yaml: &str| match spillway::config::load_str("soc.yaml", yaml) {
-        Ok(_) => panic!("accepted:\n{yaml}"),
-        Err(e) => e.render(false),
-    };
     // Above the battery's own limit.
     let shown = refused(&yaml.replace("reach: 85%", "reach: 95%"));
     assert!(shown.contains("[C0278]") && shown.contains("above the battery's `soc_max`"), "{shown}");
@@ -472,14 +468,16 @@ loads:
     }
     let described = spillway::config::describe::describe(&loaded.site);
     assert!(described.contains("heats a tank of 250 L"), "{described}");
-    let shown = match spillway::config::load_str("hot.yaml", &yaml.replace("    temperature: tank_temp\n", "")) {
-        Ok(_) => panic!("accepted"),
-        Err(e) => e.render(false),
-    };
+    let shown = refused(&yaml.replace("    temperature: tank_temp\n", ""));
     assert!(shown.contains("[C0281]") && shown.contains("has a `volume` but no `temperature`"), "{shown}");
-    let shown = match spillway::config::load_str("hot.yaml", &yaml.replace("250L", "250kg")) {
-        Ok(_) => panic!("accepted"),
-        Err(e) => e.render(false),
-    };
+    let shown = refused(&yaml.replace("250L", "250kg"));
     assert!(shown.contains("the tank's volume"), "{shown}");
+}
+
+/// The rendered errors of a site file that must be refused.
+fn refused(yaml: &str) -> String {
+    match spillway::config::load_str("site.yaml", yaml) {
+        Ok(_) => panic!("accepted:\n{yaml}"),
+        Err(e) => e.render(false),
+    }
 }
