@@ -94,3 +94,31 @@ fn a_car_that_leaves_below_its_target_is_counted_short() {
     run(&mut p, 23 * 3600 + 1, 1.0);
     assert_eq!(p.ev_departures(), Some((1, 0.0)));
 }
+
+#[test]
+fn with_carry_over_a_car_that_left_short_comes_back_that_much_emptier() {
+    let yaml = format!(
+        "{QUIET}ev:\n  capacity: 40kWh\n  efficiency: 90%\n  carry_shortfall: true\n  sessions: [{{ arrive: \"00:00:10\", depart: \"23:00\", soc: 50% }}]\n"
+    );
+    let mut p = plant(&yaml, Constant(0.0));
+    // Day 1: 2 h at 6 A put 2.484 kWh into the car, which leaves 17.516 kWh short of 40.
+    run(&mut p, 20, 1.0);
+    p.controls_mut().ev_current_a = 6.0;
+    run(&mut p, 2 * 3600, 1.0);
+    p.controls_mut().ev_current_a = 0.0;
+    run(&mut p, 23 * 3600, 1.0);
+    let short_1 = 20_000.0 - 6.0 * 230.0 * 2.0 * 0.9;
+    let (left, short_wh) = p.ev_departures().unwrap();
+    assert_eq!(left, 1);
+    assert!((short_wh - short_1).abs() < 1.0, "{short_wh}");
+    // Day 2: it arrives at 50 % of 40 kWh less what it lacked, 2.484 kWh (6.21 %).
+    run(&mut p, 3600, 1.0);
+    let r = p.readings().ev.unwrap();
+    assert!(r.plugged);
+    let expect_pct = 100.0 * (20_000.0 - short_1) / 40_000.0;
+    assert!((r.soc_pct - expect_pct).abs() < 0.01, "{} against {expect_pct}", r.soc_pct);
+    // Without carry-over it would have come back at 50 %.
+    let mut p = plant(&yaml.replace("  carry_shortfall: true\n", ""), Constant(0.0));
+    run(&mut p, 25 * 3600, 1.0);
+    assert!((p.readings().ev.unwrap().soc_pct - 50.0).abs() < 1e-9);
+}

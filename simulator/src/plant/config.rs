@@ -535,6 +535,10 @@ pub struct EvConfig {
     /// When the car is plugged in; absent = a built-in commuter pattern.
     #[serde(default)]
     pub sessions: Option<Vec<SessionConfig>>,
+    /// A car that left short of `target_soc` comes back that much emptier (its next
+    /// session's SoC less what it lacked); off, every session starts at its own SoC.
+    #[serde(default)]
+    pub carry_shortfall: bool,
 }
 
 fn d_ev_name() -> String {

@@ -64,6 +64,10 @@ pub struct Ev {
     /// What those cars lacked of their target when they left, Wh (from the car's side
     /// of the charger: what they would still have had to take in).
     pub short_wh: f64,
+    /// Whether a car comes back emptier by what it lacked when it left.
+    carry_shortfall: bool,
+    /// What the last car lacked when it left, Wh, to take off its next arrival.
+    owed_wh: f64,
 }
 
 impl Ev {
@@ -111,6 +115,8 @@ impl Ev {
             current_a: 0.0,
             departures: 0,
             short_wh: 0.0,
+            carry_shortfall: cfg.carry_shortfall,
+            owed_wh: 0.0,
         })
     }
 
@@ -146,7 +152,8 @@ impl Ev {
                 }
                 self.plugged = true;
                 self.depart_ms = depart;
-                self.stored_wh = soc * self.capacity_wh;
+                self.stored_wh = (soc * self.capacity_wh - self.owed_wh).max(0.0);
+                self.owed_wh = 0.0;
             }
         }
     }
@@ -155,7 +162,11 @@ impl Ev {
     fn unplug(&mut self) {
         self.plugged = false;
         self.departures += 1;
-        self.short_wh += (self.target_wh - self.stored_wh).max(0.0);
+        let short = (self.target_wh - self.stored_wh).max(0.0);
+        self.short_wh += short;
+        if self.carry_shortfall {
+            self.owed_wh = short;
+        }
     }
 
     /// Power drawn at commanded current `cmd_a` for a step of `dt` s.
