@@ -31,7 +31,7 @@ pub use decision::{Command, Decisions, LimitReason, LoadDecision, Mode, Reason, 
 pub use obligations::ObligationResult;
 pub use snapshot::{Quality, Sample, Snapshot};
 
-use crate::config::model::{Connection, LoadId, LoadKind, PointId, SafeState, Site};
+use crate::config::model::{Connection, LoadId, LoadKind, Obligation, PointId, SafeState, Site};
 use crate::rules::{EvalInput, LocalClock, RuleState, Slot, Truth};
 use crate::units::{Current, Energy, Power, Ratio, Temperature, Timestamp};
 use guard::Guard;
@@ -643,7 +643,15 @@ impl Engine {
                     | Reason::StartsCapped { .. }
             );
             let before = st.command.power(&l.kind);
-            let p = if self.mode != Mode::Normal || !idle || before > Power::ZERO {
+            // Inside a `reach: N%` duty's grid window, before its deadline, the charge is
+            // being kept for the deadline: covering the house would give away what the
+            // grid then has to put back, a point at a time.
+            let sod = self.local.seconds_of_day;
+            let keeping = l.obligations.iter().any(|o| {
+                matches!(o, Obligation::ChargeBy { grid_window: Some(w), by, .. }
+                    if w.contains(sod) && sod < chrono::Timelike::num_seconds_from_midnight(by))
+            });
+            let p = if self.mode != Mode::Normal || !idle || before > Power::ZERO || keeping {
                 cover.stop();
                 Power::ZERO
             } else {
@@ -861,7 +869,7 @@ fn load_deps(site: &Site, load: &crate::config::model::Load, guard_points: &[Poi
             }
         }
     }
-    use crate::config::model::Obligation;
+
     if let Some(t) = load.temperature
         && load.obligations.iter().any(|o| matches!(o, Obligation::ReachBy { .. } | Obligation::Cycle { .. }))
     {

@@ -1337,6 +1337,40 @@ fn one_verdict(h: &mut Harness) -> bool {
     results[0].met
 }
 
+/// A battery that may discharge keeps its charge inside a `reach: N%` duty's window:
+/// covering the house there would give away what the grid then puts back. With its
+/// `capacity` the top-up waits (30 points × 2 min × 1.25 + 10 min: from 16:35), and
+/// until then the battery neither charges nor discharges.
+#[test]
+fn a_battery_keeps_its_charge_for_its_duty_inside_the_window() {
+    let loads = r#"
+  - name: battery
+    kind: battery
+    max_charge: 3kW
+    capacity: 10kWh
+    soc: soc
+    setpoint: { device: relays, register: 400, type: i32 }
+    discharge: { max: 2kW, soc_min: 20% }
+    obligations:
+      - { reach: 80%, by: "18:00", grid_window: "14:00..18:00" }
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads)).at_local(13, 0);
+    h.set("grid", 400.0);
+    h.set("soc", 50.0);
+    h.run(secs(1800));
+    assert!(matches!(h.command("battery"), Command::Charge(p) if p.0 < 0.0), "13:30: covering the house");
+    h.run(secs(3600));
+    let idle = |c: Command| c == Command::Off || c == Command::Charge(Power::ZERO);
+    assert!(idle(h.command("battery")), "14:30: kept for the duty, {:?}", h.command("battery"));
+    h.run(secs(2 * 3600 + 4 * 60));
+    assert!(idle(h.command("battery")), "16:34: not yet, {:?}", h.command("battery"));
+    h.run(secs(120));
+    assert_eq!(h.command("battery"), Command::Charge(Power(3000.0)), "16:36: the top-up");
+    h.set("soc", 80.5);
+    h.run(secs(3600 + 1800));
+    assert!(matches!(h.command("battery"), Command::Charge(p) if p.0 < 0.0), "after 18:00 it covers again");
+}
+
 /// `reach: 80%` on a charger reads the car's SoC; a silent SoC (the car away, a charger
 /// that reports nothing then) stops only the top-up, never surplus charging.
 #[test]
