@@ -142,6 +142,12 @@ pub enum Reason {
         /// The discharge.
         power: Power,
     },
+    /// A battery that would cover the house, keeping its charge instead for its own
+    /// `reach: N%` duty, inside the duty's grid window before the deadline.
+    KeepingForDuty {
+        /// Index into the load's obligations.
+        index: usize,
+    },
 }
 
 impl Reason {
@@ -167,6 +173,7 @@ impl Reason {
             Reason::BelowMinimum { .. } => "below_minimum",
             Reason::Full => "full",
             Reason::CoveringHouse { .. } => "covering_house",
+            Reason::KeepingForDuty { .. } => "keeping_for_duty",
         }
     }
 
@@ -274,6 +281,9 @@ impl fmt::Display for Reason {
             }
             Reason::Full => f.write_str("off: at its upper state of charge"),
             Reason::CoveringHouse { power } => write!(f, "discharging {power} to cover the house's own import"),
+            Reason::KeepingForDuty { index } => {
+                write!(f, "not discharging: keeping its charge for obligation #{}", index + 1)
+            }
         }
     }
 }

@@ -333,6 +333,12 @@ impl Engine {
                     l.obligations.get(index).map_or(String::new(), |o| o.describe())
                 )
             }
+            Reason::KeepingForDuty { index } => {
+                format!(
+                    "not discharging: keeping its charge for \"{}\"",
+                    l.obligations.get(index).map_or(String::new(), |o| o.describe())
+                )
+            }
             other => other.to_string(),
         };
         let detail = match state.reason {
@@ -647,11 +653,18 @@ impl Engine {
             // being kept for the deadline: covering the house would give away what the
             // grid then has to put back, a point at a time.
             let sod = self.local.seconds_of_day;
-            let keeping = l.obligations.iter().any(|o| {
+            let keeping = l.obligations.iter().position(|o| {
                 matches!(o, Obligation::ChargeBy { grid_window: Some(w), by, .. }
                     if w.contains(sod) && sod < chrono::Timelike::num_seconds_from_midnight(by))
             });
-            let p = if self.mode != Mode::Normal || !idle || before > Power::ZERO || keeping {
+            let p = if self.mode != Mode::Normal || !idle || before > Power::ZERO || keeping.is_some() {
+                if let Some(index) = keeping
+                    && self.mode == Mode::Normal
+                    && idle
+                    && before <= Power::ZERO
+                {
+                    st.reason = Reason::KeepingForDuty { index };
+                }
                 cover.stop();
                 Power::ZERO
             } else {

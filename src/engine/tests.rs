@@ -1362,6 +1362,9 @@ fn a_battery_keeps_its_charge_for_its_duty_inside_the_window() {
     h.run(secs(3600));
     let idle = |c: Command| c == Command::Off || c == Command::Charge(Power::ZERO);
     assert!(idle(h.command("battery")), "14:30: kept for the duty, {:?}", h.command("battery"));
+    assert_eq!(h.reason("battery"), Reason::KeepingForDuty { index: 0 });
+    let why = h.engine.explain(LoadId(0));
+    assert!(why.contains("keeping its charge for \"reach 80 % by 18:00\""), "{why}");
     h.run(secs(2 * 3600 + 4 * 60));
     assert!(idle(h.command("battery")), "16:34: not yet, {:?}", h.command("battery"));
     h.run(secs(120));
