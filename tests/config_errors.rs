@@ -411,6 +411,12 @@ loads:
     );
     let shown = refused(&heater);
     assert!(shown.contains("[C0279]") && shown.contains("a heater's is a temperature"), "{shown}");
+    // A window wholly after the deadline is never used: a warning.
+    let late = yaml.replace("grid_window: \"00:00..06:00\"", "grid_window: \"18:00..23:00\"");
+    let late = spillway::config::load_str("soc.yaml", &late).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let shown = spillway::diag::render("soc.yaml", yaml, &late.warnings, false);
+    assert!(shown.contains("[C0282]") && shown.contains("has no time before the deadline 07:00"), "{shown}");
+    assert!(loaded.warnings.iter().all(|w| w.code != "C0282"), "{:?}", loaded.warnings);
     // Out of range.
     let shown = refused(&yaml.replace("reach: 80%", "reach: 120%"));
     assert!(shown.contains("[C0277]"), "{shown}");

@@ -2420,6 +2420,27 @@ impl Builder<'_, '_> {
                 return None;
             };
             let by = values::time_of_day(by_node, "`by`", self.diags)?;
+            // The top-up runs only in the part of the window before the deadline (the day
+            // is judged there); a window wholly after it never runs.
+            let deadline = chrono::Timelike::num_seconds_from_midnight(&by);
+            if let (Some(w), Some(wn)) = (grid_window, window_node)
+                && !(0..deadline).step_by(60).any(|sod| w.contains(sod))
+            {
+                self.diags.push(
+                    Diagnostic::warning(
+                        "C0282",
+                        format!(
+                            "{what}: the grid window {}..{} has no time before the deadline {}",
+                            w.start.format("%H:%M"),
+                            w.end.format("%H:%M"),
+                            by.format("%H:%M")
+                        ),
+                        wn.span.clone(),
+                    )
+                    .with_label("never used")
+                    .with_note("a top-up runs from local midnight up to `by`: put the window before it"),
+                );
+            }
             let target = target?;
             return Some(if is_soc {
                 // Time per percentage point at the load's full power, where its capacity
