@@ -1095,6 +1095,20 @@ fn what_the_rules_deliver_less_of_than_the_baseline_is_counted_beside_the_saving
     );
     let topped_up = ev(&example_path);
     assert!(topped_up["short_kwh"].as_f64().unwrap() < run / 2.0, "the overnight top-up: {topped_up} against {short}");
+    // Monday to Wednesday: the car is away on Monday morning (nobody came home on
+    // Sunday evening) and at 16:00 on every weekday, so its SoC duties leave those days
+    // unjudged; the text report gives them a column.
+    let report: serde_json::Value = serde_json::from_str(&simulate(&example_path, "json")).unwrap();
+    let duty = |name: &str| {
+        let o = report["obligations"].as_array().unwrap().iter().find(|o| o["name"] == name).cloned();
+        o.unwrap_or_else(|| panic!("{name}: {}", report["obligations"]))
+    };
+    let morning = duty("car: reach 80 % by 07:00");
+    assert_eq!((&morning["days_met"], &morning["days_not_judged"]), (&2.into(), &1.into()), "{morning}");
+    let afternoon = duty("car: reach 80 % by 16:00");
+    assert_eq!(afternoon["days_not_judged"], 3, "{afternoon}");
+    assert_eq!(duty("water_heater: reach 55 °C by 16:00")["days_not_judged"], 0);
+    assert!(example_text.contains("   met   missed   not judged"), "{example_text}");
 
     // A site without a simulated car has no `ev` to report.
     let none: serde_json::Value = serde_json::from_str(&simulate(&example("zero-export-house.yaml"), "json")).unwrap();

@@ -109,6 +109,9 @@ pub struct ObligationReport {
     pub days_met: u32,
     /// Days it was missed.
     pub days_missed: u32,
+    /// Days it was neither: a `reach: N%` duty whose state of charge could not be read
+    /// at its deadline (the car away).
+    pub days_not_judged: u32,
 }
 
 /// One load's figures.
@@ -306,7 +309,12 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
                 .obligations
                 .iter()
                 .zip(&fig.obligations)
-                .map(|(o, (met, missed))| ObligationReport { name: o.describe(), days_met: *met, days_missed: *missed })
+                .map(|(o, (met, missed))| ObligationReport {
+                    name: o.describe(),
+                    days_met: *met,
+                    days_missed: *missed,
+                    days_not_judged: info.days.saturating_sub(met + missed),
+                })
                 .collect();
             for o in &obligations {
                 all_obligations.push(ObligationReport { name: format!("{}: {}", l.name, o.name), ..o.clone() });
@@ -467,9 +475,14 @@ impl Report {
         if !self.obligations.is_empty() {
             let w = width(&mut self.obligations.iter().map(|ob| &ob.name), 42);
             let pad = " ".repeat(w - 42);
-            let _ = writeln!(o, "\nobligations{pad}                                   met   missed");
+            // A third column only where a day went unjudged (a car away at a SoC duty's
+            // deadline), so that the usual table stays as it was.
+            let unjudged = self.obligations.iter().any(|ob| ob.days_not_judged > 0);
+            let head = if unjudged { "   met   missed   not judged" } else { "   met   missed" };
+            let _ = writeln!(o, "\nobligations{pad}                                {head}");
             for ob in &self.obligations {
-                let _ = writeln!(o, "  {:<w$} {:>5} {:>8}", ob.name, ob.days_met, ob.days_missed);
+                let _ = write!(o, "  {:<w$} {:>5} {:>8}", ob.name, ob.days_met, ob.days_missed);
+                let _ = if unjudged { writeln!(o, " {:>12}", ob.days_not_judged) } else { writeln!(o) };
             }
         }
         if self.months.len() > 1 || self.cost.is_some() {
