@@ -91,6 +91,13 @@ fn a_broken_point_is_one_error_not_one_per_use() {
 }
 
 #[test]
+fn a_device_defined_wrongly_is_one_error_and_a_hold_spelt_otherwise_is_named() {
+    // The device's own error says how a transport is written; its uses stay quiet (it is
+    // defined, only wrongly); `held 30s` is answered with `for 30s`.
+    check("first-site-file");
+}
+
+#[test]
 fn every_error_of_a_file_is_reported_in_one_run() {
     let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/test_data/broken");
     let text = std::fs::read_to_string(dir.join("wrong-units.yaml")).unwrap();

@@ -118,7 +118,8 @@ pub fn load_str(path: &str, text: &str) -> Result<Loaded, LoadError> {
         }
     };
     let mut diags = Diagnostics::default();
-    let mut builder = Builder { text, diags: &mut diags, tariff: None, broken_points: Vec::new() };
+    let mut builder =
+        Builder { text, diags: &mut diags, tariff: None, broken_points: Vec::new(), broken_devices: Vec::new() };
     let site = builder.site(&tree);
     let tariff = builder.tariff.take();
     // File order reads best: a user fixes top to bottom.
@@ -141,6 +142,9 @@ struct Builder<'t, 'd> {
     /// Points whose definition has an error already reported: what refers to them
     /// (rules, loads, site roles) says nothing more, so one typo gives one error.
     broken_points: Vec<String>,
+    /// Devices whose definition has an error already reported, for the same reason: a
+    /// device with a mistyped key is still defined, and "no device called" would mislead.
+    broken_devices: Vec<String>,
 }
 
 /// Raw facts about a point gathered before the model is assembled.
@@ -811,10 +815,12 @@ impl Builder<'_, '_> {
                     key.span.clone(),
                     "use lowercase letters, digits and _",
                 );
+                self.broken_devices.push(key.name.clone());
                 continue;
             }
-            if let Some(d) = self.device(&key.name, dnode, have_mqtt) {
-                devices.push(d);
+            match self.device(&key.name, dnode, have_mqtt) {
+                Some(d) => devices.push(d),
+                None => self.broken_devices.push(key.name.clone()),
             }
         }
         devices
@@ -844,18 +850,19 @@ impl Builder<'_, '_> {
         m.finish(self.diags);
         let given = [tcp.is_some(), rtu.is_some(), mqtt.is_some()].iter().filter(|b| **b).count();
         if given != 1 {
-            self.diags.push(
-                Diagnostic::error(
-                    "C0210",
-                    format!("{what} needs exactly one of `modbus_tcp`, `modbus_rtu` or `mqtt`"),
-                    span,
-                )
-                .with_label(if given == 0 {
-                    "no transport given"
-                } else {
-                    "more than one transport given"
-                }),
+            let d = Diagnostic::error(
+                "C0210",
+                format!("{what} needs exactly one of `modbus_tcp`, `modbus_rtu` or `mqtt`"),
+                span,
             );
+            self.diags.push(if given == 0 {
+                // The transport and its address are one key: say so with the shapes.
+                d.with_label("no transport given").with_note(
+                    "give one, with its address as the value: `modbus_tcp: 192.168.1.50:502`, `modbus_rtu: { port: /dev/ttyUSB0, baud: 9600 }` or `mqtt: true`",
+                )
+            } else {
+                d.with_label("more than one transport given")
+            });
             return None;
         }
         let unit = match unit {
@@ -1413,6 +1420,8 @@ impl Builder<'_, '_> {
         let name = values::text(node, "the device", self.diags)?;
         match devices.iter().position(|d| d.name == name) {
             Some(i) => Some((DeviceId(i), &devices[i])),
+            // Its own error is already reported.
+            None if self.broken_devices.iter().any(|b| b == name) => None,
             None => {
                 let mut d = Diagnostic::error("C0226", format!("no device called \"{name}\""), node.span.clone())
                     .with_label("unknown device");

@@ -113,14 +113,29 @@ pub(crate) fn parse(text: &str, tokens: &[Token]) -> PResult {
             Tok::RParen => error("R0106", "unmatched `)`", t.span.clone())
                 .label("no `(` opens this")
                 .secondary(expr.span.clone(), "the rule so far"),
-            _ => error(
-                "R0108",
-                format!("expected `and`, `or` or the end of the rule, found {}", p.describe(t)),
-                t.span.clone(),
-            )
-            .label("unexpected here")
-            .secondary(expr.span.clone(), "this is a complete condition")
-            .note("join conditions with `and` or `or`"),
+            _ => {
+                let d = error(
+                    "R0108",
+                    format!("expected `and`, `or` or the end of the rule, found {}", p.describe(t)),
+                    t.span.clone(),
+                )
+                .label("unexpected here")
+                .secondary(expr.span.clone(), "this is a complete condition");
+                // `surplus > 3kW held 30s`, `… during 30s`: a word of the writer's own for
+                // a hold. Say how ours is spelt rather than only to join conditions.
+                let next = p.tokens.get(p.pos + 1).map(|n| &n.tok);
+                match (&t.tok, next) {
+                    (Tok::Name(word), Some(Tok::Number { dimension: Dimension::Duration, .. })) => {
+                        let duration = &p.text[p.tokens[p.pos + 1].span.clone()];
+                        let condition = &p.text[expr.span.clone()];
+                        let condition = if condition.chars().count() <= 40 { condition } else { "CONDITION" };
+                        d.note(format!(
+                            "to require a condition for a time, write `for`: `{condition} for {duration}` (not `{word}`)"
+                        ))
+                    }
+                    _ => d.note("join conditions with `and` or `or`"),
+                }
+            }
         };
         return fail(d);
     }

@@ -25,6 +25,7 @@ const CASES: &[(&str, &str)] = &[
     ("R0106_unclosed_parenthesis", "(surplus > 3kW and tank.on"),
     ("R0107_chained_comparison", "1kW < surplus < 3kW"),
     ("R0108_missing_operator", "surplus > 3kW tank.on"),
+    ("R0108_hold_spelt_otherwise", "surplus > 3.2kW held 30s and tank.on"),
     ("R0109_empty_rule", ""),
     ("R0110_uppercase_name", "Surplus > 3kW"),
     ("R0111_incomplete_attribute", "tank. > 1kW"),
