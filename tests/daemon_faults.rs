@@ -60,6 +60,37 @@ async fn a_silent_meter_sends_the_loads_to_safe_states_and_curtails_within_the_t
     daemon.wait().await;
 }
 
+#[tokio::test(start_paused = true)]
+async fn a_site_whose_meter_never_answers_says_why_it_stays_in_fail_safe() {
+    // Silent from the start there is no change of mode to report: the daemon says, once,
+    // after 10 s, which signal it is still waiting for.
+    let plant = Plant::start(4200.0).await;
+    plant.meter.set_silent(true);
+    let daemon = start(&plant.site_yaml(LOADS, ""), options(T0)).await;
+    let s = status_until(&daemon, Duration::from_secs(15), "the wait reported", |s| {
+        s.recent.iter().any(|e| e.text.starts_with("still in fail-safe since start"))
+    })
+    .await;
+    assert_eq!(s.mode, "failsafe");
+    let said: Vec<_> = s.recent.iter().filter(|e| e.text.starts_with("still in fail-safe")).collect();
+    assert_eq!(said.len(), 1, "{said:?}");
+    assert!(said[0].text.contains("\"grid\""), "names the signal: {}", said[0].text);
+    tokio::time::sleep(Duration::from_secs(30)).await;
+    let s = daemon.status().borrow().clone();
+    assert_eq!(s.recent.iter().filter(|e| e.text.starts_with("still in fail-safe")).count(), 1, "said once");
+
+    // A site whose meter answers never says it.
+    let plant = Plant::start(4200.0).await;
+    let daemon2 = start(&plant.site_yaml(LOADS, ""), options(T0)).await;
+    settle(&plant, &daemon2).await;
+    let s = daemon2.status().borrow().clone();
+    assert!(!s.recent.iter().any(|e| e.text.starts_with("still in fail-safe")), "{:?}", s.recent);
+    for d in [daemon, daemon2] {
+        d.shutdown();
+        d.wait().await;
+    }
+}
+
 /// Load switchings (not limit changes) in the status's recent events after `from`
 /// (RFC 3339 strings of one format compare in time order).
 fn load_switchings(s: &spillway::status::Status, from: &str) -> Vec<String> {

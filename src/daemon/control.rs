@@ -76,6 +76,10 @@ pub(super) struct Control {
     repeats: HashMap<String, (Instant, u64)>,
     last_limit: (Option<Power>, LimitReason),
     was_normal: bool,
+    /// The first tick, and whether the site has been told that it is still waiting for
+    /// its guard signals' first fresh readings (silent otherwise: it starts in fail-safe).
+    first_tick: Option<crate::units::Timestamp>,
+    start_wait_warned: bool,
     recent: VecDeque<RecentEvent>,
     summary: Summary,
     /// Counters since start, for the status document and `/metrics`.
@@ -109,6 +113,8 @@ impl Control {
             repeats: HashMap::new(),
             last_limit: (None, LimitReason::None),
             was_normal: false,
+            first_tick: None,
+            start_wait_warned: false,
             recent: VecDeque::with_capacity(RECENT),
             summary: Summary::default(),
             totals: Totals { load_switchings: vec![0; site.loads.len()], ..Totals::default() },
@@ -218,6 +224,23 @@ impl Control {
         }
         if log_mode(&mut self.was_normal, d.mode, &self.engine) {
             self.totals.failsafe_entries += 1;
+        }
+        let first = *self.first_tick.get_or_insert(d.now);
+        if d.mode == Mode::Failsafe
+            && !self.was_normal
+            && !self.start_wait_warned
+            && d.now.0 - first.0 >= START_WAIT_WARN_MS
+        {
+            // A site that never had its readings stays in fail-safe without a change of
+            // mode to log; an installer watching the start needs to hear why nothing runs.
+            self.start_wait_warned = true;
+            let lost = self.engine.lost_guard_signals().join(", ");
+            push_recent(&mut self.recent, d.now, format!("still in fail-safe since start: {lost}"));
+            warn!(
+                lost = %lost,
+                waited_s = (d.now.0 - first.0) / 1000,
+                "no fresh readings since start: loads stay in their safe states and the inverter at its safe limit until they come; check the device links logged above"
+            );
         }
         trace!(
             mode = mode_word(d.mode),
@@ -522,6 +545,9 @@ fn log_limit(last: &mut (Option<Power>, LimitReason), d: &Decisions) -> Option<S
         None
     }
 }
+
+/// How long after start a site still waiting for its guard signals says so.
+const START_WAIT_WARN_MS: i64 = 10_000;
 
 /// Logs a change of mode; returns whether the site just went into fail-safe.
 fn log_mode(was_normal: &mut bool, mode: Mode, engine: &Engine) -> bool {

@@ -26,7 +26,7 @@ pub use run::{Controller, RunOptions, RunOutput, Trace, simulate_once};
 pub enum OfflineError {
     /// The site file has no `plant:` section.
     #[error(
-        "{path} has no `plant:` section: offline runs need a simulated plant (see the README, \"The plant section\")"
+        "{path} has no `plant:` section: offline runs need a simulated plant; copy the `plant:` of an example in config/ and adjust its array, house and loads (README, \"The `plant:` section, key by key\"), and if this file's points and actuators are a real site's addresses, add `simulation.bind` (README, \"`simulation`\")"
     )]
     NoPlant {
         /// The site file.
