@@ -94,3 +94,87 @@ async fn sigterm_against_the_simulator_leaves_its_relays_open_and_its_limit_safe
     sim.handle.stop().await;
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// The systemd unit shipped in `config/systemd/`: its `ExecStart` command line, run as
+/// the unit runs it (paths moved to a temporary directory), controls the test plant;
+/// its `KillSignal` stops it with the safe states written and the state file where
+/// `StateDirectory` keeps it, within `TimeoutStopSec`; and a site file that does not
+/// check exits with a status the unit does not restart on.
+#[cfg(unix)]
+#[tokio::test]
+async fn the_shipped_systemd_unit_runs_and_stops_the_controller() {
+    let unit_path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("config/systemd/spillway.service");
+    let unit = std::fs::read_to_string(&unit_path).unwrap();
+    let key = |k: &str| -> Vec<String> {
+        unit.lines().filter_map(|l| l.trim().strip_prefix(&format!("{k}=")).map(str::to_owned)).collect()
+    };
+    let one = |k: &str| key(k).pop().unwrap_or_else(|| panic!("the unit sets {k}"));
+    let state_dir = format!("/var/lib/{}", one("StateDirectory"));
+    assert_eq!(one("KillSignal"), "SIGTERM");
+    assert_eq!(one("Restart"), "on-failure");
+    let no_restart: Vec<i32> = one("RestartPreventExitStatus").split_whitespace().map(|c| c.parse().unwrap()).collect();
+    let stop_within = Duration::from_secs(one("TimeoutStopSec").parse().unwrap());
+
+    let plant = Plant::start(4200.0).await;
+    let dir = std::env::temp_dir().join(format!("spillway-unit-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    // Named unlike the state file, so that a state file beside it would not pass.
+    let site = dir.join("house.yaml");
+    std::fs::write(&site, plant.site_yaml(LOADS, "").replace("for 5s", "for 1s")).unwrap();
+    let exec = one("ExecStart");
+    let mut words = exec.split_whitespace();
+    assert_eq!(words.next(), Some("/usr/local/bin/spillway"));
+    let args: Vec<String> = words
+        .map(|w| match w {
+            "/etc/spillway/site.yaml" => site.display().to_string(),
+            w if w.starts_with(&format!("{state_dir}/")) => dir.join(&w[state_dir.len() + 1..]).display().to_string(),
+            w => {
+                assert!(!w.starts_with('/'), "a path the test does not map: {w}");
+                w.to_owned()
+            }
+        })
+        .collect();
+    let env: Vec<(String, String)> = key("Environment")
+        .iter()
+        .map(|e| e.split_once('=').map(|(k, v)| (k.to_owned(), v.to_owned())).unwrap())
+        .collect();
+
+    let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(&args)
+        .envs(env.clone())
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let pid = child.id().unwrap();
+    let mut stderr = child.stderr.take().unwrap();
+    let log = tokio::spawn(async move {
+        let mut s = String::new();
+        let _ = stderr.read_to_string(&mut s).await;
+        s
+    });
+    plant_until(&plant, Duration::from_secs(30), "a load switched on under the unit's command line", |s| {
+        s.heater || s.pump
+    })
+    .await;
+    assert!(std::process::Command::new("kill").args(["-TERM", &pid.to_string()]).status().unwrap().success());
+    let exit = tokio::time::timeout(stop_within, child.wait()).await.expect("stops within TimeoutStopSec").unwrap();
+    let log = log.await.unwrap();
+    assert!(exit.success(), "exit status {exit:?}\n{log}");
+    assert_eq!(plant.devices.coil(3, 0), Some(false), "heater relay open\n{log}");
+    assert_eq!(plant.devices.holding(2, 10), Some(0), "inverter at its safe limit\n{log}");
+    assert!(dir.join("site.state.json").exists(), "counters saved in the state directory\n{log}");
+    assert!(!dir.join("house.state.json").exists(), "not beside the site file");
+
+    // A site file that does not check: the exit status is one the unit does not restart on.
+    std::fs::write(&site, "site: { name: Broken }\n").unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway")).args(&args).envs(env).output().unwrap();
+    let code = out.status.code().unwrap();
+    assert!(
+        no_restart.contains(&code),
+        "exit {code} is restarted by the unit\n{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let _ = std::fs::remove_dir_all(&dir);
+}
