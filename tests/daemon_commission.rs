@@ -193,6 +193,44 @@ async fn failsafe_test_times_the_safe_state_and_writes_a_record() {
     let plant = Plant::start(4500.0).await;
     let (path, site) = write_site(&plant, "failsafe");
     let record = path.with_file_name("record.md");
+    // A record in a folder that does not exist is refused before anything is switched.
+    let nowhere = path.with_file_name("no-such-folder").join("record.md").display().to_string();
+    let (code, _, err) = spillway(&[
+        "step-test",
+        &site,
+        "--load",
+        "water_heater",
+        "--hold",
+        "3s",
+        "--settle",
+        "2s",
+        "--yes",
+        "--record",
+        &nowhere,
+    ])
+    .await;
+    assert_eq!(code, 2, "{err}");
+    assert!(err.contains("cannot write the record"), "{err}");
+    assert!(plant.history().iter().all(|s| !s.heater), "nothing was switched");
+    // The installer's order: a step test of each load, then the fail-safe test, all
+    // appended to one record.
+    let record_arg = record.display().to_string();
+    let (code, out, err) = spillway(&[
+        "step-test",
+        &site,
+        "--load",
+        "water_heater",
+        "--hold",
+        "3s",
+        "--settle",
+        "2s",
+        "--yes",
+        "--record",
+        &record_arg,
+    ])
+    .await;
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert!(out.contains("result appended to the record"), "{out}");
     let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))
         .args(["failsafe-test", &site, "--yes", "--watch", "3s", "--wait", "30s", "--record"])
         .arg(&record)
@@ -225,7 +263,18 @@ async fn failsafe_test_times_the_safe_state_and_writes_a_record() {
     assert!(secs <= 5.0, "{safe}");
     assert!(out.lines().any(|l| l.contains(" off ") && l.contains("+")), "a load that was on was switched off: {out}");
     let text = std::fs::read_to_string(&record).unwrap();
-    assert!(text.starts_with("# Fail-safe test: Bench") && text.contains("**PASS**") && text.contains("Signature"));
+    println!("{text}");
+    // The step test's section came first (below); the fail-safe test's follows it.
+    assert!(text.starts_with("# Commissioning record: Bench"), "{text}");
+    assert_eq!(text.matches("## The site as Spillway reads it").count(), 1, "{text}");
+    let step_at = text.find("## Step test: water_heater").expect("the step test's section");
+    let failsafe_at = text.find("## Fail-safe test").expect("the fail-safe test's section");
+    assert!(step_at < failsafe_at, "{text}");
+    assert_eq!(text.matches("- result: **PASS**").count(), 2, "{text}");
+    assert_eq!(text.matches("Signature").count(), 2, "{text}");
+    assert!(text[failsafe_at..].contains("time to the safe state:"), "{text}");
+    let hashes: Vec<&str> = text.lines().filter_map(|l| l.split("SHA-256").nth(1)).collect();
+    assert_eq!(hashes.len(), 3, "the header and each section name the site file's hash: {text}");
 
     // A site whose export is allowed has no fail-safe to test: refused before starting.
     let allowed = std::fs::read_to_string(&path).unwrap().replace("export: forbidden", "export: allowed");

@@ -33,7 +33,8 @@ pub struct FailsafeTestArgs {
     /// How long the grid is watched for export once the rules are back in charge.
     #[arg(long, value_name = "DURATION", default_value = "1min", value_parser = super::parse_duration)]
     pub watch: Duration,
-    /// Also write the result as a Markdown record to this file.
+    /// Append the result to this commissioning record (Markdown; started with the site
+    /// as Spillway reads it when new).
     #[arg(long, value_name = "FILE")]
     pub record: Option<PathBuf>,
     /// Do not ask for confirmation.
@@ -48,6 +49,14 @@ pub fn run(args: FailsafeTestArgs, format: LogFormat) -> anyhow::Result<ExitCode
     };
     super::run::print_banner(&loaded.site, format);
     logging::init(format, "warn");
+    // A record that cannot be written is found now, not after the test.
+    if let Some(path) = &args.record
+        && let Err(e) = super::record::writable(path)
+    {
+        eprintln!("error: cannot write the record {}: {e}", path.display());
+        return Ok(ExitCode::from(2));
+    }
+    let site_text = loaded.source.text.clone();
     let site = Arc::new(loaded.site);
     let Some(grid) = site.roles.grid.map(|p| site.points[p.0].name.clone()) else {
         eprintln!("error: the site has no grid meter (point `grid`): there is nothing for this test to disconnect");
@@ -126,12 +135,13 @@ pub fn run(args: FailsafeTestArgs, format: LogFormat) -> anyhow::Result<ExitCode
     let text = describe(&site, &grid, &report);
     print!("{text}");
     if let Some(path) = &args.record {
-        let record = record(&site, &args.site, &text, &report);
-        if let Err(e) = std::fs::write(path, record) {
+        let section =
+            super::record::Section { title: "Fail-safe test".to_owned(), text: &text, passed: report.passed() };
+        if let Err(e) = super::record::append(path, &site, &args.site, &site_text, &section) {
             eprintln!("error: cannot write the record {}: {e}", path.display());
             return Ok(ExitCode::from(2));
         }
-        println!("record written to {}", path.display());
+        println!("result appended to the record {}", path.display());
     }
     Ok(if report.passed() { ExitCode::SUCCESS } else { ExitCode::from(1) })
 }
@@ -183,20 +193,6 @@ pub fn describe(site: &Site, grid: &str, r: &FailsafeReport) -> String {
         }
     }
     let _ = writeln!(out, "result: {}", if r.passed() { "PASS" } else { "FAIL" });
-    out
-}
-
-/// A Markdown record for the commissioning file.
-fn record(site: &Site, path: &std::path::Path, text: &str, r: &FailsafeReport) -> String {
-    let mut out = String::new();
-    let _ = writeln!(out, "# Fail-safe test: {}\n", site.name);
-    let _ = writeln!(out, "- site file: `{}`", path.display());
-    let _ = writeln!(out, "- Spillway {}", env!("CARGO_PKG_VERSION"));
-    let _ = writeln!(out, "- export: {}", spillway::status::export_policy(site));
-    let _ = writeln!(out, "- test started at the last reading: {}", r.last_reading);
-    let _ = writeln!(out, "- result: **{}**\n", if r.passed() { "PASS" } else { "FAIL" });
-    let _ = writeln!(out, "```text\n{text}```\n");
-    let _ = writeln!(out, "Tested by: ____________________  Date: __________  Signature: ____________________");
     out
 }
 

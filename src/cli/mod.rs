@@ -7,6 +7,7 @@ mod demo;
 mod failsafe_test;
 mod logging;
 mod read;
+mod record;
 mod replay;
 mod run;
 mod simulate;

@@ -1,9 +1,10 @@
-//! `spillway step-test SITE.yaml --load NAME [--hold 10s] [--discharge 500W] [--yes]`:
+//! `spillway step-test SITE.yaml --load NAME [--hold 10s] [--discharge 500W] [--record FILE] [--yes]`:
 //! switch one load on, watch the grid meter, switch it off — proof that the relay feeds
 //! the right load. For a battery, `--discharge` steps it the other way, which proves
 //! the setpoint's sign as well. Exit 0 when the step looks like the load's power, 1
 //! otherwise.
 
+use std::fmt::Write as _;
 use std::io::{BufRead, IsTerminal, Write};
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -35,6 +36,10 @@ pub struct StepTestArgs {
     /// charging (keep it below what the house draws, or it is exported).
     #[arg(long, value_name = "POWER", value_parser = parse_power)]
     pub discharge: Option<Power>,
+    /// Append the result to this commissioning record (Markdown; started with the site
+    /// as Spillway reads it when new).
+    #[arg(long, value_name = "FILE")]
+    pub record: Option<PathBuf>,
     /// Do not ask for confirmation.
     #[arg(long)]
     pub yes: bool,
@@ -58,6 +63,14 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         Err(code) => return Ok(code),
     };
     logging::init(format, "warn");
+    // A record that cannot be written is found before anything is switched.
+    if let Some(path) = &args.record
+        && let Err(e) = super::record::writable(path)
+    {
+        eprintln!("error: cannot write the record {}: {e}", path.display());
+        return Ok(ExitCode::from(2));
+    }
+    let site_text = loaded.source.text.clone();
     let site = Arc::new(loaded.site);
     let Some((id, load)) = site.load(&args.load) else {
         let names: Vec<&str> = site.loads.iter().map(|l| l.name.as_str()).collect();
@@ -141,7 +154,17 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
             return Ok(ExitCode::from(1));
         }
     };
-    println!(
+    // What the terminal shows from here on is also the record's text.
+    let mut text = String::new();
+    let _ = writeln!(
+        text,
+        "step test of {} through {}: {what} for {}",
+        load.name,
+        targets.join(", "),
+        format_duration(args.hold)
+    );
+    let _ = writeln!(
+        text,
         "grid before {}, while on {}, after {} ({} / {} / {} readings)",
         w(r.grid_before),
         w(r.grid_on),
@@ -151,44 +174,59 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         r.samples[2]
     );
     if let Some(p) = r.load_power_on {
-        println!("the load's own meter read {} while on", w(Some(p)));
+        let _ = writeln!(text, "the load's own meter read {} while on", w(Some(p)));
     }
-    match r.step() {
+    let passed = match r.step() {
         Some(step) if r.plausible() && is_battery => {
-            println!(
+            let _ = writeln!(
+                text,
                 "step {:+.0} W against {} asked: the setpoint drives this battery, + charging",
                 step,
                 Power(r.rated)
             );
-            Ok(ExitCode::SUCCESS)
+            true
         }
         Some(step) if r.plausible() => {
-            println!("step {:+.0} W against {} rated: the relay switches this load", step, Power(r.rated));
-            Ok(ExitCode::SUCCESS)
+            let _ =
+                writeln!(text, "step {:+.0} W against {} rated: the relay switches this load", step, Power(r.rated));
+            true
         }
         Some(step) if r.reversed() && is_battery => {
-            println!(
+            let _ = writeln!(
+                text,
                 "step {:+.0} W against {} asked: the battery went the other way. Spillway writes + for charging and − for discharging; this setpoint takes the opposite sign: set the battery inverter (or its gateway) to take + as charging before letting Spillway drive it",
                 step,
                 Power(r.rated)
             );
-            Ok(ExitCode::from(1))
+            false
         }
         Some(step) => {
-            println!(
+            let _ = writeln!(
+                text,
                 "step {:+.0} W against {} rated: check that {} feeds {} (and that the load was not already hot or off by its own thermostat)",
                 step,
                 Power(r.rated),
                 targets.join(", "),
                 load_name(&site, id)
             );
-            Ok(ExitCode::from(1))
+            false
         }
         None => {
-            println!("no grid readings: the step could not be measured");
-            Ok(ExitCode::from(1))
+            let _ = writeln!(text, "no grid readings: the step could not be measured");
+            false
         }
+    };
+    let _ = writeln!(text, "result: {}", if passed { "PASS" } else { "FAIL" });
+    print!("{text}");
+    if let Some(path) = &args.record {
+        let section = super::record::Section { title: format!("Step test: {}", load.name), text: &text, passed };
+        if let Err(e) = super::record::append(path, &site, &args.site, &site_text, &section) {
+            eprintln!("error: cannot write the record {}: {e}", path.display());
+            return Ok(ExitCode::from(2));
+        }
+        println!("result appended to the record {}", path.display());
     }
+    Ok(if passed { ExitCode::SUCCESS } else { ExitCode::from(1) })
 }
 
 fn load_name(site: &spillway::config::model::Site, id: spillway::config::model::LoadId) -> &str {
