@@ -89,7 +89,9 @@ struct MqttPlant {
 
 impl MqttPlant {
     async fn start(port: u16, prefix: &str) -> MqttPlant {
-        let mut o = ClientOptions::new(format!("plant-{}", std::process::id()), "127.0.0.1", port);
+        // Unique per plant: tests share the broker on 1883, and a second client with the
+        // same id would take the first one's session over.
+        let mut o = ClientOptions::new(format!("plant-{}", prefix.replace('/', "-")), "127.0.0.1", port);
         o.set_keep_alive(Duration::from_secs(5));
         let (client, mut eventloop) = AsyncClient::new(o, 256);
         let state = Arc::new(Mutex::new(PlantState::default()));
@@ -290,7 +292,7 @@ where
     // The retained site state says the controller stopped, with no stale numbers.
     let site_topic = format!("{prefix}/ctl/state/site");
     let last = seen.iter().rev().find(|(t, _, _)| *t == site_topic).map(|x| x.1.clone()).unwrap_or_default();
-    assert!(last.contains("\"mode\":\"stopped\"") && last.contains("\"grid\":null"), "{last}");
+    assert!(last.contains("\"mode\":\"stopped\"") && last.contains("\"grid\":null"), "{last}\n{}", logs.text());
     // And the log says so.
     assert!(logs.text().contains("safe states sent to the broker at shutdown"), "{}", logs.text());
 }
@@ -324,6 +326,53 @@ async fn through_the_in_process_broker_with_a_restart() {
     let broker = Broker::start().await;
     let b = broker.clone();
     scenario("inproc", broker.addr.port(), Some(|| async move { b.restart().await })).await;
+}
+
+/// Stops the daemon while readings pour in (one every millisecond): its last publications
+/// (the site state `stopped`, `offline`) still reach the broker. The link used to leave
+/// without them when a reading arrived after the controller had stopped listening.
+async fn last_words_while_readings_pour_in(label: &str, port: u16) {
+    for round in 0..5 {
+        let prefix = unique_prefix(&format!("{label}-flood-{round}"));
+        let plant = MqttPlant::start(port, &prefix).await;
+        let (c, topic) = (plant.client.clone(), format!("{prefix}/dev/meter"));
+        let flood = tokio::spawn(async move {
+            let mut every = tokio::time::interval(Duration::from_millis(1));
+            loop {
+                every.tick().await;
+                let _ = c.try_publish(&topic, QoS::AtMostOnce, false, format!("{HOUSE_W:.0}"));
+            }
+        });
+        let daemon = Daemon::start(support::site(&site_yaml(port, &prefix)), Options::default()).await.unwrap();
+        until(&daemon, "rules in charge", |s| s.mode == "normal").await;
+        let site_topic = format!("{prefix}/ctl/state/site");
+        let deadline = Instant::now() + Duration::from_secs(5);
+        while !plant.seen_since(0).iter().any(|(t, _, _)| *t == site_topic) {
+            assert!(Instant::now() < deadline, "no site state before the stop");
+            tokio::time::sleep(Duration::from_millis(20)).await;
+        }
+        daemon.shutdown();
+        daemon.wait().await;
+        tokio::time::sleep(Duration::from_millis(300)).await;
+        flood.abort();
+        let seen = plant.seen_since(0);
+        let last = seen.iter().rev().find(|(t, _, _)| *t == site_topic).map(|x| x.1.clone()).unwrap_or_default();
+        assert!(last.contains("\"mode\":\"stopped\""), "[{label}] round {round}: the last site state is {last}");
+    }
+}
+
+#[tokio::test]
+async fn the_last_words_reach_the_in_process_broker_while_readings_pour_in() {
+    let broker = Broker::start().await;
+    last_words_while_readings_pour_in("inproc", broker.addr.port()).await;
+}
+
+#[tokio::test]
+async fn the_last_words_reach_the_broker_on_1883_while_readings_pour_in() {
+    if std::net::TcpStream::connect_timeout(&"127.0.0.1:1883".parse().unwrap(), Duration::from_secs(1)).is_err() {
+        return skip("no MQTT broker answers on 127.0.0.1:1883");
+    }
+    last_words_while_readings_pour_in("1883", 1883).await;
 }
 
 struct Mosquitto {

@@ -232,9 +232,17 @@ impl MqttLink {
                         }
                     }
                 }
+                // Once stopping, readings have no one to go to: the control task may
+                // already be gone. Leaving here would drop the last publications still
+                // queued (the safe states, `offline`), so keep polling to flush them.
+                Ok(Event::Incoming(Packet::Publish(p))) if deadline.is_some() => {
+                    debug!(topic = %p.topic, "message ignored: stopping");
+                }
                 Ok(Event::Incoming(Packet::Publish(p))) => {
                     if self.incoming(&p, events, clock).await.is_err() {
-                        return;
+                        // The control task is gone, so the daemon is stopping: flush
+                        // within the grace, as after a cancel.
+                        deadline = Some(Instant::now() + self.options.shutdown_grace);
                     }
                 }
                 Ok(Event::Outgoing(Outgoing::Disconnect)) if deadline.is_some() => {
