@@ -439,16 +439,24 @@ impl Report {
         let x = &self.export;
         match x.limit_w {
             Some(l) => {
+                let hours = if x.seconds_over_limit >= 3600.0 {
+                    format!(" ({:.1} h)", x.seconds_over_limit / 3600.0)
+                } else {
+                    String::new()
+                };
                 let _ = writeln!(
                     o,
-                    "\nexport (limit {l} W): peak {:.0} W, {:.0} s over the limit + tolerance",
+                    "\nexport (limit {l} W): peak {:.0} W, {:.0} s{hours} over the limit + tolerance",
                     x.peak_w, x.seconds_over_limit
                 );
                 let g = &self.guard;
                 let _ = writeln!(
                     o,
-                    "guard: {} episode(s), cleared in p50 {:.0} ms, p95 {:.0} ms, max {:.0} ms",
-                    g.episodes, g.response_ms.p50, g.response_ms.p95, g.response_ms.max
+                    "guard: {} episode(s), cleared in p50 {}, p95 {}, max {}",
+                    g.episodes,
+                    response(g.response_ms.p50),
+                    response(g.response_ms.p95),
+                    response(g.response_ms.max)
                 );
             }
             // Off-grid there is no grid to export to (JSON keeps the zeros).
@@ -574,5 +582,30 @@ impl Report {
             let _ = writeln!(o, "note: the plant refused {} write(s) (a device restarting)", self.refused_writes);
         }
         o
+    }
+}
+
+/// A guard response time for the text report: milliseconds up to 10 s, then seconds,
+/// minutes or hours (a site with nothing to curtail clears export only when the sun or
+/// the house does, after minutes or hours; JSON keeps milliseconds).
+fn response(ms: f64) -> String {
+    let s = (ms / 1000.0).round() as i64;
+    match s {
+        _ if ms < 10_000.0 => format!("{ms:.0} ms"),
+        ..600 => format!("{:.1} s", ms / 1000.0),
+        ..3600 => format!("{} min {} s", s / 60, s % 60),
+        _ => format!("{} h {} min", s / 3600, s % 3600 / 60),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn guard_response_times_read_as_durations_beyond_ten_seconds() {
+        assert_eq!(super::response(1000.0), "1000 ms");
+        assert_eq!(super::response(9999.0), "9999 ms");
+        assert_eq!(super::response(11_000.0), "11.0 s");
+        assert_eq!(super::response(1_654_000.0), "27 min 34 s");
+        assert_eq!(super::response(11_953_000.0), "3 h 19 min");
     }
 }
