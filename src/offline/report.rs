@@ -590,11 +590,14 @@ impl Report {
 /// the house does, after minutes or hours; JSON keeps milliseconds).
 fn response(ms: f64) -> String {
     let s = (ms / 1000.0).round() as i64;
-    match s {
-        _ if ms < 10_000.0 => format!("{ms:.0} ms"),
-        ..600 => format!("{:.1} s", ms / 1000.0),
-        ..3600 => format!("{} min {} s", s / 60, s % 60),
-        _ => format!("{} h {} min", s / 3600, s % 3600 / 60),
+    if ms < 10_000.0 {
+        format!("{ms:.0} ms")
+    } else if s < 600 {
+        format!("{:.1} s", ms / 1000.0)
+    } else if s < 3600 {
+        format!("{} min {} s", s / 60, s % 60)
+    } else {
+        format!("{} h {} min", s / 3600, s % 3600 / 60)
     }
 }
 
