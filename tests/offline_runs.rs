@@ -324,7 +324,7 @@ fn a_measured_weather_series_reports_its_bad_rows_and_its_coverage() {
 }
 
 /// `compare` runs B's rules on A's plant: where B does not fit it (another time zone,
-/// loads without a namesake, which get no row), it says so.
+/// loads without a namesake, whose rows show one side only), it says so.
 #[test]
 fn compare_says_where_b_does_not_fit_as_plant() {
     let (a, b) = (example("zero-export-house.yaml"), example("battery-ev-limited-export.yaml"));
@@ -333,6 +333,10 @@ fn compare_says_where_b_does_not_fit_as_plant() {
     assert!(out.status.success(), "{err}");
     assert!(err.contains("warning: B's time zone is Australia/Adelaide"), "{err}");
     assert!(err.contains("B's loads car, home_battery have no namesake in A"), "{err}");
+    let shown = String::from_utf8_lossy(&out.stdout);
+    let car = shown.lines().find(|l| l.starts_with("car: energy")).unwrap_or_default();
+    assert!(car.contains('—') && car.trim_end().ends_with("kWh"), "the warning's loads keep B's side: {shown}");
+    assert!(err.contains("their rows show B's side only"), "{err}");
 }
 
 /// The text report and `compare` speak of the export guard only where export has a limit

@@ -10,7 +10,7 @@ use spillway::offline::{self, Controller, RunOptions, compare, report};
 use super::simulate::{Format, Prepared, Progress, RunArgs, prepare};
 
 /// Where B's site does not match A's (whose plant both run on): another time zone, and
-/// loads of either side with no namesake on the other (they get no row in the table).
+/// loads of either side with no namesake on the other (their rows have one side only).
 fn mismatches(a: &Prepared, b: &Prepared) -> Vec<String> {
     let mut out = Vec::new();
     if a.site.timezone != b.site.timezone {
@@ -24,10 +24,16 @@ fn mismatches(a: &Prepared, b: &Prepared) -> Vec<String> {
     let only_b: Vec<&str> = lb.iter().filter(|n| !la.contains(n)).map(String::as_str).collect();
     let only_a: Vec<&str> = la.iter().filter(|n| !lb.contains(n)).map(String::as_str).collect();
     if !only_b.is_empty() {
-        out.push(format!("B's loads {} have no namesake in A: they get no row in the table", only_b.join(", ")));
+        out.push(format!(
+            "B's loads {} have no namesake in A: on A's plant they may find nothing to drive (their rows show B's side only)",
+            only_b.join(", ")
+        ));
     }
     if !only_a.is_empty() {
-        out.push(format!("A's loads {} have no namesake in B: they get no row in the table", only_a.join(", ")));
+        out.push(format!(
+            "A's loads {} have no namesake in B: B's rules never run them (their rows show A's side only)",
+            only_a.join(", ")
+        ));
     }
     out
 }

@@ -157,12 +157,21 @@ impl Comparison {
         let _ = writeln!(o, "A = {}\nB = {}\n", self.a, self.b);
         let _ = writeln!(o, "{:<width$}  {:>14}  {:>14}", "", "A", "B");
         for r in &self.rows {
-            // One number of decimals per row, so the two sides line up and read alike.
+            // One number of decimals and one unit per row, so the two sides line up and
+            // read alike: watts and times whole (a tenth of a watt is noise), a response
+            // time of minutes in seconds rather than six-digit milliseconds (JSON keeps
+            // the row's own unit).
             let whole = [r.a, r.b].iter().flatten().all(|v| v.fract() == 0.0);
+            let largest = [r.a, r.b].iter().flatten().fold(0.0_f64, |m, v| m.max(v.abs()));
+            let (scale, unit, decimals) = match r.unit.as_str() {
+                "ms" if largest >= 10_000.0 => (0.001, "s", 1),
+                "W" | "ms" | "s" => (1.0, r.unit.as_str(), 0),
+                u => (1.0, u, if whole { 0 } else { 2 }),
+            };
             let fmt = |v: Option<f64>| {
                 let Some(v) = v else { return "—".to_owned() };
-                let text = if whole { format!("{v:.0}") } else { format!("{v:.2}") };
-                if r.unit.is_empty() { text } else { format!("{text} {}", r.unit) }
+                let text = format!("{:.decimals$}", v * scale);
+                if unit.is_empty() { text } else { format!("{text} {unit}") }
             };
             let (ma, mb) = match r.better {
                 Better::A => ("◀", " "),
@@ -195,12 +204,16 @@ mod tests {
             a: "a.yaml".into(),
             b: "b.yaml".into(),
             rows: vec![
+                row("import", "kWh", 28.4, 31.0, Goal::Lower),
                 row("export peak", "W", 2893.6, 1723.0, Goal::Lower),
+                row("guard response p95", "ms", 1_654_000.0, 543_000.0, Goal::Lower),
                 row("switchings", "", 4.0, 6.0, Goal::Lower),
             ],
         };
         let text = c.to_text();
-        assert!(text.contains("2893.60 W") && text.contains("1723.00 W"), "{text}");
+        assert!(text.contains("28.40 kWh") && text.contains("31.00 kWh"), "{text}");
+        assert!(text.contains("2894 W") && text.contains("1723 W"), "watts whole: {text}");
+        assert!(text.contains("1654.0 s") && text.contains("543.0 s"), "minutes of response in seconds: {text}");
         assert!(text.contains(" 4◀") && text.contains(" 6 "), "{text}");
     }
 
