@@ -1852,3 +1852,62 @@ fn a_reading_under_a_passing_cloud_does_not_hold_the_loads_back_afterwards() {
     assert!(export_s <= 1, "{export_s} s of export");
     assert_eq!(h.command("tank"), Command::On);
 }
+
+// ---------------------------------------------------------------- the wall clock stepping
+
+/// A controller on a board without a real-time clock starts on a guessed time and sees
+/// it stepped when NTP answers; an operator may set the clock by hand. The grid point's
+/// own freshness check and the guard must survive a step either way. A step back also
+/// freezes every timer that started before it (a load already on keeps to `min_on` for
+/// the length of the step): that is measured here, not hidden (README, limits).
+fn clock_step_run(step_s: i64, cloud: bool) -> (usize, usize) {
+    let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
+    // A plant: 6 kW of PV behind the inverter's limit, a 500 W house; at tick 400 either
+    // the tank's thermostat cuts (export appears) or a cloud leaves 1 kW (import).
+    let (mut export_ticks, mut import_ticks) = (0, 0);
+    for i in 0..900 {
+        if i == 300 {
+            h.now = Timestamp(h.now.0 + step_s * 1000);
+        }
+        let d = h.engine.decisions().clone();
+        let available = if cloud && i >= 400 { 1000.0 } else { 6000.0 };
+        let pv = d.inverter_limit.map_or(available, |p| p.0.min(available));
+        let tank = if d.loads[0].command.is_on() && (cloud || i < 400) { 3000.0 } else { 0.0 };
+        let pump = if d.loads[1].command.is_on() { 1000.0 } else { 0.0 };
+        let grid = 500.0 + tank + pump - pv;
+        h.set("pv", pv);
+        h.set("grid", grid);
+        h.tick();
+        if i >= 300 {
+            export_ticks += usize::from(grid < -100.0);
+            import_ticks += usize::from(grid > 1000.0);
+        }
+    }
+    (export_ticks, import_ticks)
+}
+
+#[test]
+fn a_step_of_the_wall_clock_either_way_leaves_the_export_guard_working() {
+    let (steady, _) = clock_step_run(0, false);
+    for step_s in [-3600, -5, 5, 3600] {
+        let (export, _) = clock_step_run(step_s, false);
+        assert_eq!(export, steady, "a {step_s} s step: seconds of export above 100 W after the thermostat cut");
+    }
+    assert!(steady <= 2, "{steady}");
+}
+
+#[test]
+fn a_step_back_of_the_wall_clock_holds_loads_already_on_for_its_length() {
+    let (_, steady) = clock_step_run(0, true);
+    let (_, small) = clock_step_run(-5, true);
+    let (_, forward) = clock_step_run(3600, true);
+    let (_, back) = clock_step_run(-3600, true);
+    println!(
+        "import above 1 kW in the 10 min after a cloud: {steady} s steady, {small} s after a 5 s step back, {forward} s after an hour forward, {back} s after an hour back"
+    );
+    assert_eq!(small, steady, "a step of seconds changes nothing");
+    assert_eq!(forward, steady, "a step forward changes nothing");
+    assert!(steady <= 15, "{steady}");
+    // Known limit (README): the loads' `min_on` counts from before the step.
+    assert!(back >= 480, "{back}");
+}
