@@ -178,3 +178,52 @@ async fn the_shipped_systemd_unit_runs_and_stops_the_controller() {
     );
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// One controller per site: while `spillway run` drives the test plant, a second `run`
+/// and a `step-test` on the same site file are refused before they connect to anything
+/// (exit 2, saying what holds the site); once it has stopped, the step test runs.
+#[cfg(unix)]
+#[tokio::test]
+async fn a_second_controller_on_the_same_site_file_is_refused() {
+    let plant = Plant::start(4200.0).await;
+    let dir = std::env::temp_dir().join(format!("spillway-one-controller-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let site = dir.join("house.yaml");
+    std::fs::write(&site, plant.site_yaml(LOADS, "").replace("for 5s", "for 1s")).unwrap();
+    let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .arg("run")
+        .arg(&site)
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let pid = child.id().unwrap();
+    plant_until(&plant, Duration::from_secs(30), "the first controller switched a load on", |s| s.heater || s.pump)
+        .await;
+    let _before = plant.history().len();
+
+    let second = |args: &[&str]| {
+        let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway")).args(args).output().unwrap();
+        (out.status.code(), String::from_utf8_lossy(&out.stderr).into_owned())
+    };
+    let site_arg = site.display().to_string();
+    let (code, err) = second(&["run", &site_arg]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(
+        err.contains("another Spillway command is driving this site") && err.contains("`run` does not start"),
+        "{err}"
+    );
+    let (code, err) =
+        second(&["step-test", &site_arg, "--load", "water_heater", "--hold", "1s", "--settle", "1s", "--yes"]);
+    assert_eq!(code, Some(2), "{err}");
+    assert!(err.contains("`step-test` does not start"), "{err}");
+    assert!(std::process::Command::new("kill").args(["-TERM", &pid.to_string()]).status().unwrap().success());
+    let exit = tokio::time::timeout(Duration::from_secs(20), child.wait()).await.expect("the child exits").unwrap();
+    assert!(exit.success());
+    // Released with its holder: a step test now gets past the lock.
+    let (_, err) =
+        second(&["step-test", &site_arg, "--load", "water_heater", "--hold", "1s", "--settle", "1s", "--yes"]);
+    assert!(!err.contains("another Spillway command"), "{err}");
+    let _ = std::fs::remove_dir_all(&dir);
+}

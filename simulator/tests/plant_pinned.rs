@@ -50,7 +50,7 @@ fn two_days(layers: u32) -> String {
     let mut last_contacts = plant.readings().contacts.clone();
     let mut step = 0u64;
     while plant.now_ms() < START_MS + 2 * 86_400_000 {
-        if step % 60 == 0 {
+        if step.is_multiple_of(60) {
             let grid = plant.readings().grid.map_or(0.0, |g| g.power_w);
             let c = plant.controls_mut();
             c.relays[0] = grid < -500.0 || (c.relays[0] && grid < 300.0);

@@ -47,6 +47,15 @@ pub fn run(args: FailsafeTestArgs, format: LogFormat) -> anyhow::Result<ExitCode
         Ok(l) => l,
         Err(code) => return Ok(code),
     };
+    // Held for the whole test: the service (or another test) must not drive the site
+    // meanwhile.
+    let _lock = match super::lock::lock_or_explain(&args.site, "failsafe-test") {
+        Ok(lock) => lock,
+        Err(message) => {
+            eprintln!("error: {message}");
+            return Ok(ExitCode::from(2));
+        }
+    };
     super::run::print_banner(&loaded.site, format);
     logging::init(format, "warn");
     // A record that cannot be written is found now, not after the test.

@@ -5,6 +5,7 @@ mod check;
 mod compare;
 mod demo;
 mod failsafe_test;
+mod lock;
 mod logging;
 mod read;
 mod record;

@@ -84,6 +84,14 @@ pub fn run(args: RunArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         Ok(l) => l,
         Err(code) => return Ok(code),
     };
+    // Held until the daemon has stopped: one controller per site.
+    let _lock = match super::lock::lock_or_explain(&args.site, "run") {
+        Ok(lock) => lock,
+        Err(message) => {
+            eprintln!("error: {message}");
+            return Ok(ExitCode::from(2));
+        }
+    };
     logging::init(format, "info");
     print_banner(&loaded.site, format);
     let state = args.state.unwrap_or_else(|| state_file::default_path(&args.site));

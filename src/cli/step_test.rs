@@ -62,6 +62,15 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         Ok(l) => l,
         Err(code) => return Ok(code),
     };
+    // Held for the whole test: the service (or another test) must not drive the site
+    // meanwhile.
+    let _lock = match super::lock::lock_or_explain(&args.site, "step-test") {
+        Ok(lock) => lock,
+        Err(message) => {
+            eprintln!("error: {message}");
+            return Ok(ExitCode::from(2));
+        }
+    };
     logging::init(format, "warn");
     // A record that cannot be written is found before anything is switched.
     if let Some(path) = &args.record

@@ -298,7 +298,7 @@ fn to_text(rep: &SweepReport) -> String {
     }
     if rep.array_cost_per_kwp.is_none() {
         let _ = writeln!(o, "\n(no payback: give `tariff.array_cost` per kWp in the site file)");
-    } else if rep.days % 365 != 0 && rep.points.iter().any(|p| p.payback_years.is_some()) {
+    } else if !rep.days.is_multiple_of(365) && rep.points.iter().any(|p| p.payback_years.is_some()) {
         // Savings follow the seasons: a summer month scaled to a year flatters the array,
         // a winter month condemns it. Say so beside the figure an installer may quote.
         let _ = writeln!(

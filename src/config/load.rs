@@ -1147,23 +1147,23 @@ impl Builder<'_, '_> {
         // A topic's or a SunSpec point's `scale` is a plain factor on top of the unit
         // (e.g. -1 for a meter that counts export as positive).
         let mut unit_factor = unit_factor;
-        if topic.is_some() || sunspec.is_some() {
-            if let Some(n) = scale_node {
-                match self.scale(n)? {
-                    Scale::Factor(f) => unit_factor *= f,
-                    Scale::Register { .. } => {
-                        self.diags.error(
-                            "C0261",
-                            format!("{what}: {kind} takes a plain `scale` factor, not a register"),
-                            n.span.clone(),
-                            if sunspec.is_some() {
-                                "the SunSpec scale factor is found automatically"
-                            } else {
-                                "an MQTT payload has no registers"
-                            },
-                        );
-                        return None;
-                    }
+        if (topic.is_some() || sunspec.is_some())
+            && let Some(n) = scale_node
+        {
+            match self.scale(n)? {
+                Scale::Factor(f) => unit_factor *= f,
+                Scale::Register { .. } => {
+                    self.diags.error(
+                        "C0261",
+                        format!("{what}: {kind} takes a plain `scale` factor, not a register"),
+                        n.span.clone(),
+                        if sunspec.is_some() {
+                            "the SunSpec scale factor is found automatically"
+                        } else {
+                            "an MQTT payload has no registers"
+                        },
+                    );
+                    return None;
                 }
             }
         }

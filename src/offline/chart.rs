@@ -119,9 +119,9 @@ fn time_axis(tz: chrono_tz::Tz, t0_ms: i64, span_h: f64) -> TimeAxis {
         let local = crate::units::Timestamp(t).to_utc().with_timezone(&tz);
         let h = (t - t0_ms) as f64 / 3_600_000.0;
         if t >= t0_ms && local.minute() == 0 {
-            if local.hour() % bold_every == 0 {
+            if local.hour().is_multiple_of(bold_every) {
                 bold.push(h);
-            } else if local.hour() % light_every == 0 {
+            } else if local.hour().is_multiple_of(light_every) {
                 light.push(h);
             }
         }

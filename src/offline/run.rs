@@ -259,13 +259,13 @@ pub fn simulate_once(
     if options.step.is_zero() || options.step > Duration::from_secs(60) {
         return Err(OfflineError::Options("--step must be between 1ms and 60s".into()));
     }
-    if options.step.subsec_nanos() % 1_000_000 != 0 {
+    if !options.step.subsec_nanos().is_multiple_of(1_000_000) {
         return Err(OfflineError::Options(format!(
             "--step must be a whole number of milliseconds, not {:?}",
             options.step
         )));
     }
-    if options.trace.is_some() && options.trace_every.as_millis() % options.step.as_millis() != 0 {
+    if options.trace.is_some() && !options.trace_every.as_millis().is_multiple_of(options.step.as_millis()) {
         return Err(OfflineError::Options(format!(
             "with --chart, the step must divide the chart's averaging interval ({}): use e.g. 1s, 2s or 5s",
             crate::units::format_duration(options.trace_every)

@@ -34,7 +34,7 @@ impl SimClock {
         }
         let step = step.unwrap_or_else(|| SimClock::default_step(speed));
         let step_ms = i64::try_from(step.as_millis()).unwrap_or(i64::MAX);
-        if !(1..=3_600_000).contains(&step_ms) || step.subsec_nanos() % 1_000_000 != 0 {
+        if !(1..=3_600_000).contains(&step_ms) || !step.subsec_nanos().is_multiple_of(1_000_000) {
             return Err(ServeError::Options(format!("step {step:?} must be whole milliseconds between 1 ms and 1 h")));
         }
         Ok(SimClock { speed, step_ms })

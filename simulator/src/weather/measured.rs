@@ -67,10 +67,10 @@ fn parse_time(text: &str, tz: Tz) -> Result<f64, String> {
     if let Ok(t) = DateTime::parse_from_rfc3339(text) {
         return Ok(t.timestamp_millis() as f64 / 1000.0);
     }
-    if let Ok(s) = text.parse::<f64>() {
-        if s.is_finite() {
-            return Ok(s);
-        }
+    if let Ok(s) = text.parse::<f64>()
+        && s.is_finite()
+    {
+        return Ok(s);
     }
     let naive = ["%Y-%m-%d %H:%M:%S", "%Y-%m-%dT%H:%M:%S", "%Y-%m-%d %H:%M", "%Y-%m-%dT%H:%M"]
         .iter()

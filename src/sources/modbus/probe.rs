@@ -179,11 +179,11 @@ impl Prober<'_> {
     async fn discover(&mut self) -> Result<Option<ModelMap>, String> {
         let mut base = None;
         for b in sunspec::BASES {
-            if let Ok(w) = self.read(Table::HoldingRegister, b, 2).await? {
-                if w == sunspec::MARKER {
-                    base = Some(b);
-                    break;
-                }
+            if let Ok(w) = self.read(Table::HoldingRegister, b, 2).await?
+                && w == sunspec::MARKER
+            {
+                base = Some(b);
+                break;
             }
         }
         let Some(base) = base else {
