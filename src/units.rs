@@ -367,6 +367,11 @@ impl Timestamp {
     pub fn since(self, earlier: Timestamp) -> Duration {
         Duration::from_millis(u64::try_from(self.0.saturating_sub(earlier.0)).unwrap_or(0))
     }
+    /// This instant moved by `ms` (either way), except [`Timestamp::NEVER`], which stays
+    /// never: for re-basing stored instants when the wall clock is set back.
+    pub fn shifted(self, ms: i64) -> Timestamp {
+        if self == Timestamp::NEVER { self } else { Timestamp(self.0.saturating_add(ms)) }
+    }
     /// This instant moved forward by `d`.
     pub fn plus(self, d: Duration) -> Timestamp {
         Timestamp(self.0.saturating_add(i64::try_from(d.as_millis()).unwrap_or(i64::MAX)))

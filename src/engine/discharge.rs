@@ -48,6 +48,12 @@ pub struct Cover {
 }
 
 impl Cover {
+    /// Moves every instant remembered by `ms` (the wall clock was set back).
+    pub fn shift_time(&mut self, ms: i64) {
+        self.reading_at = self.reading_at.map(|t| t.shifted(ms));
+        self.history.iter_mut().for_each(|h| h.0 = h.0.shifted(ms));
+    }
+
     /// Not covering (fail-safe, charging, a lost signal, outside its window…).
     pub fn stop(&mut self) {
         self.power = Power::ZERO;

@@ -47,6 +47,21 @@ pub struct Guard {
     ceiling: Option<(Timestamp, Power)>,
 }
 
+impl Guard {
+    /// Moves every instant the guard remembers by `ms` (the wall clock was set back by
+    /// that much): its timers keep their lengths, and its history stays comparable with
+    /// readings stamped by the clock as it now is.
+    pub fn shift_time(&mut self, ms: i64) {
+        let shift = |t: &mut Timestamp| *t = t.shifted(ms);
+        self.export_since.iter_mut().for_each(shift);
+        self.acted_at.iter_mut().for_each(shift);
+        self.settled_at.iter_mut().for_each(shift);
+        self.changes.iter_mut().for_each(|c| shift(&mut c.0));
+        self.pv_history.iter_mut().for_each(|p| shift(&mut p.0));
+        self.ceiling.iter_mut().for_each(|c| shift(&mut c.0));
+    }
+}
+
 /// How long a PV reading taken below the limit stands for what the array can give. The
 /// sun moves, so the memory is short; our choice, not a standard.
 pub const CEILING_MEMORY: Duration = Duration::from_secs(15 * 60);

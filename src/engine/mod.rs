@@ -414,8 +414,42 @@ impl Engine {
         }
     }
 
+    /// The wall clock was set back by `-ms` (NTP correcting a board without a real-time
+    /// clock, a person setting it): every instant the engine remembers moves with it, so
+    /// a minimum on-time, a start cap, a hold of the guard or an override keeps its
+    /// length instead of waiting out the step. (The rules' own timers and windows start
+    /// afresh on a step back; readings stamped before it look stale until re-read.)
+    fn shift_time(&mut self, ms: i64) {
+        let shift = |t: &mut Timestamp| *t = t.shifted(ms);
+        self.last_now.iter_mut().for_each(shift);
+        self.recovered_at.iter_mut().for_each(shift);
+        self.outage_since.iter_mut().for_each(shift);
+        self.jump_at.iter_mut().for_each(shift);
+        self.guard.shift_time(ms);
+        for s in &mut self.loads {
+            shift(&mut s.changed_at);
+            shift(&mut s.command_at);
+            shift(&mut s.stage_changed_at);
+            s.starts.iter_mut().for_each(shift);
+            s.stage_trend.iter_mut().for_each(|t| shift(&mut t.1));
+            s.override_.iter_mut().for_each(|o| shift(&mut o.until));
+            for o in &mut s.obligations {
+                o.hot_since.iter_mut().for_each(shift);
+                o.last_cycle.iter_mut().for_each(shift);
+            }
+            if let Some(c) = s.cover.as_mut() {
+                c.shift_time(ms);
+            }
+        }
+    }
+
     /// One tick: decide every load and the inverter limit for `now`.
     pub fn step(&mut self, now: Timestamp, snapshot: &Snapshot) -> &Decisions {
+        if let Some(prev) = self.last_now
+            && now < prev
+        {
+            self.shift_time(now.0 - prev.0);
+        }
         let dt = match self.last_now {
             Some(prev) if now > prev => now.since(prev),
             _ => Duration::ZERO,
