@@ -57,6 +57,15 @@ async fn read_prints_every_point_raw_and_decoded_and_names_the_failures() {
     assert!(line("pv ").contains("1800 W") || line("pv ").contains("1.8 kW"), "{out}");
     assert!(line("tank_temp").contains("[0xFFCC]") && line("tank_temp").contains("-5.2 °C"), "{out}");
 
+    // The same readings into the commissioning record.
+    let record = path.with_file_name("record.md");
+    let record_arg = record.display().to_string();
+    let (code, out, err) = spillway(&["read", &site, "--record", &record_arg]).await;
+    assert_eq!(code, 0, "{out}\n{err}");
+    let text = std::fs::read_to_string(&record).unwrap();
+    assert!(text.starts_with("# Commissioning record: Bench") && text.contains("## Readings ("), "{text}");
+    assert!(text.contains("-5.2 °C") && text.contains("- result: **PASS**"), "{text}");
+
     // One device: only its points. A refused register: named with its exception.
     plant.devices.with(|s| {
         s.exceptions.insert((4, 5), ExceptionCode::IllegalDataAddress);

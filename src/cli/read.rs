@@ -1,6 +1,7 @@
-//! `spillway read SITE.yaml [--device NAME]`: every point read once, raw and decoded,
+//! `spillway read SITE.yaml [--device NAME] [--record FILE]`: every point read once, raw and decoded,
 //! for an installer checking the wiring. Exit 0 when everything answered, 1 otherwise.
 
+use std::fmt::Write as _;
 use std::path::PathBuf;
 use std::process::ExitCode;
 use std::time::Duration;
@@ -23,6 +24,10 @@ pub struct ReadArgs {
     /// How long to listen for MQTT points.
     #[arg(long, value_name = "DURATION", default_value = "5s", value_parser = super::parse_duration)]
     pub listen: Duration,
+    /// Append the readings to this commissioning record (Markdown; started with the site
+    /// as Spillway reads it when new).
+    #[arg(long, value_name = "FILE")]
+    pub record: Option<PathBuf>,
 }
 
 fn value_text(site: &Site, point: PointId, v: f64) -> String {
@@ -60,6 +65,13 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         Err(code) => return Ok(code),
     };
     logging::init(format, "warn");
+    if let Some(path) = &args.record
+        && let Err(e) = super::record::writable(path)
+    {
+        eprintln!("error: cannot write the record {}: {e}", path.display());
+        return Ok(ExitCode::from(2));
+    }
+    let site_text = loaded.source.text.clone();
     let site = loaded.site;
     let only = match &args.device {
         Some(name) => match site.device(name) {
@@ -76,12 +88,14 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
     let (devices, mqtt) = commission::read(&site, only, args.listen, Duration::from_secs(3))?;
     let width = site.points.iter().map(|p| p.name.len()).max().unwrap_or(4).max(5);
     let mut problems = 0usize;
+    // Printed at the end, and the record's text.
+    let mut out = String::new();
     for d in &devices {
         let dev = &site.devices[d.device.0];
         match &d.result {
             Err(e) => {
                 problems += 1;
-                println!("{}: {e}", dev.name);
+                let _ = writeln!(out, "{}: {e}", dev.name);
             }
             Ok(probe) => {
                 let models = if probe.models.is_empty() {
@@ -90,12 +104,12 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
                     let m: Vec<String> = probe.models.iter().map(|(id, at)| format!("{id}@{at}")).collect();
                     format!("  SunSpec models {}", m.join(" "))
                 };
-                println!("{}{models}", dev.name);
+                let _ = writeln!(out, "{}{models}", dev.name);
                 if let Some(note) = limit_note(&site, d.device, &probe.models) {
-                    println!("  {note}");
+                    let _ = writeln!(out, "  {note}");
                 }
                 if probe.points.is_empty() {
-                    println!("  (no points configured)");
+                    let _ = writeln!(out, "  (no points configured)");
                 }
                 for r in &probe.points {
                     let name = &site.points[r.point.0].name;
@@ -107,16 +121,21 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
                             format!("error: {e}")
                         }
                     };
-                    println!("  {name:<width$}  {:<18}  {:<24}  {shown}", r.origin, format!("[{}]", raw.join(" ")));
+                    let _ = writeln!(
+                        out,
+                        "  {name:<width$}  {:<18}  {:<24}  {shown}",
+                        r.origin,
+                        format!("[{}]", raw.join(" "))
+                    );
                 }
             }
         }
     }
     if let Some(m) = mqtt {
-        println!("mqtt (listened {})", spillway::units::format_duration(args.listen));
+        let _ = writeln!(out, "mqtt (listened {})", spillway::units::format_duration(args.listen));
         if let Some(e) = &m.error {
             problems += 1;
-            println!("  error: {e}");
+            let _ = writeln!(out, "  error: {e}");
         }
         for (point, v) in &m.samples {
             let p = &site.points[point.0];
@@ -131,11 +150,27 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
                     "nothing received".to_owned()
                 }
             };
-            println!("  {:<width$}  {topic:<40}  {shown}", p.name);
+            let _ = writeln!(out, "  {:<width$}  {topic:<40}  {shown}", p.name);
         }
         for (topic, detail) in &m.malformed {
-            println!("  malformed on {topic}: {detail}");
+            let _ = writeln!(out, "  malformed on {topic}: {detail}");
         }
+    }
+    print!("{out}");
+    if let Some(path) = &args.record {
+        let title = match &args.device {
+            Some(name) => format!("Readings: {name}"),
+            None => "Readings".to_owned(),
+        };
+        if problems > 0 {
+            let _ = writeln!(out, "{problems} problem(s)");
+        }
+        let section = super::record::Section { title, text: &out, passed: problems == 0 };
+        if let Err(e) = super::record::append(path, &site, &args.site, &site_text, &section) {
+            eprintln!("error: cannot write the record {}: {e}", path.display());
+            return Ok(ExitCode::from(2));
+        }
+        println!("readings appended to the record {}", path.display());
     }
     if problems > 0 {
         eprintln!("{problems} problem(s): see above");
