@@ -190,26 +190,44 @@ impl MqttLink {
     ) {
         let mut backoff = Backoff::new(self.options.backoff, &self.settings.client_id);
         let mut deadline: Option<Instant> = None;
+        let mut disconnect_sent = false;
         let mut up: Option<bool> = None;
         loop {
-            let polled = tokio::select! {
-                biased;
-                // Cancel-safe: starts the shutdown grace; the poll below is dropped once.
-                () = cancel.cancelled(), if deadline.is_none() => {
-                    deadline = Some(Instant::now() + self.options.shutdown_grace);
-                    continue;
+            // One poll of the event loop, kept alive across the cancel: a poll is not
+            // cancel-safe (it may hold a request it has taken from the queue but not yet
+            // written), and dropping one at the cancel lost a queued publication now and
+            // then (the site's `stopped` state, between two that arrived). Only the end
+            // of the grace drops it.
+            let polled = {
+                let poll = eventloop.poll();
+                tokio::pin!(poll);
+                loop {
+                    tokio::select! {
+                        biased;
+                        // Cancel-safe: a token; starts the shutdown grace.
+                        () = cancel.cancelled(), if deadline.is_none() => {
+                            deadline = Some(Instant::now() + self.options.shutdown_grace);
+                        }
+                        // Cancel-safe: a sleep.
+                        () = sleep_until(deadline.unwrap_or_else(Instant::now)), if deadline.is_some() => {
+                            break None;
+                        }
+                        // Polled by reference: another branch winning does not drop it.
+                        r = &mut poll => break Some(r),
+                    }
                 }
-                // Cancel-safe: a sleep.
-                () = sleep_until(deadline.unwrap_or_else(Instant::now)), if deadline.is_some() => {
-                    warn!(
-                        broker = %self.broker(),
-                        "the broker connection did not flush within the shutdown grace: the last publications (safe states, offline) may not have reached it"
-                    );
+            };
+            let Some(polled) = polled else {
+                if disconnect_sent {
+                    // Everything was written; the broker was just slow to hang up.
+                    debug!(broker = %self.broker(), "the broker had not closed the connection by the end of the grace");
                     break;
                 }
-                // Not cancel-safe (a request may be half written); only the two
-                // shutdown branches above ever drop it.
-                r = eventloop.poll() => r,
+                warn!(
+                    broker = %self.broker(),
+                    "the broker connection did not flush within the shutdown grace: the last publications (safe states, offline) may not have reached it"
+                );
+                break;
             };
             match polled {
                 Ok(Event::Incoming(Packet::ConnAck(ack))) => {
@@ -246,9 +264,15 @@ impl MqttLink {
                     }
                 }
                 Ok(Event::Outgoing(Outgoing::Disconnect)) if deadline.is_some() => {
-                    // Give the DISCONNECT a moment on the wire, then leave.
-                    let _ = tokio::time::timeout(Duration::from_millis(50), eventloop.poll()).await;
-                    break;
+                    // Do not close the socket ourselves: wait for the broker to close it
+                    // once it has read the DISCONNECT (an error on the next poll), or for
+                    // the grace to end. A broker still working through the last
+                    // publications (the safe states, `offline`) fails to send their
+                    // acknowledgements into a closed socket and drops the connection
+                    // with the rest unread: Mosquitto 2.0 then logs "disconnected due to
+                    // out of memory", lost the site's `stopped` state now and then in
+                    // the tests, and published the last will instead of our `offline`.
+                    disconnect_sent = true;
                 }
                 Ok(_) => {}
                 Err(e) => {
@@ -462,6 +486,7 @@ impl MqttLink {
                 }
             };
             if due && self.queue(client, &topic, &s.payload, true, qos(self.settings.qos)) {
+                debug!(topic, key = %s.key, "mqtt state");
                 sent.insert(topic, (s.payload.clone(), now, s.key.clone()));
             }
         }
