@@ -55,6 +55,12 @@ async fn sigterm_writes_the_safe_states_before_the_process_exits() {
     assert!(log.contains("SAFETY") && log.contains("licensed electrician"), "the banner\n{log}");
     assert!(log.contains("SIGTERM received") && log.contains("safe states handed to the links"), "{log}");
     assert!(log.contains("safe state written at shutdown device=relays"), "the relay module says it took them\n{log}");
+    // The last line sums the run up for whoever watched it.
+    let last = log.lines().rev().find(|l| l.contains(" stopped ")).unwrap_or_default();
+    assert!(
+        last.contains("failsafe_entries=") && last.contains("export_over_limit_s=") && last.contains("import_kwh="),
+        "{last}"
+    );
     let state = dir.join("bench.state.json");
     assert!(state.exists(), "counters saved next to the site file");
     let _ = std::fs::remove_dir_all(&dir);

@@ -101,6 +101,10 @@ pub fn run(args: RunArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
     info!(
         ticks = summary.ticks,
         switchings = summary.switchings,
+        failsafe_entries = summary.failsafe_entries,
+        export_over_limit_s = summary.export_over_limit_s.round(),
+        import_kwh = (summary.import_wh / 10.0).round() / 100.0,
+        export_kwh = (summary.export_wh / 10.0).round() / 100.0,
         exceptions = summary.exceptions,
         malformed = summary.malformed,
         "stopped"

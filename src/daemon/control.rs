@@ -40,7 +40,7 @@ pub(super) enum Request {
 }
 
 /// What the control task counted, returned when the daemon has stopped.
-#[derive(Debug, Clone, Default, PartialEq, Eq)]
+#[derive(Debug, Clone, Default, PartialEq)]
 pub struct Summary {
     /// Engine ticks.
     pub ticks: u64,
@@ -56,6 +56,14 @@ pub struct Summary {
     pub overrides: u64,
     /// Saves of the state file that succeeded.
     pub saves: u64,
+    /// Times the site went into fail-safe after having been out of it.
+    pub failsafe_entries: u64,
+    /// Seconds the grid reading showed export above the limit plus the guard's
+    /// tolerance (0 where export is allowed).
+    pub export_over_limit_s: f64,
+    /// Imported and exported while running, by the engine's counters, Wh.
+    pub import_wh: f64,
+    pub export_wh: f64,
     /// Why the engine failed, if a tick panicked: the daemon then stopped with safe
     /// states instead of running on without a controller.
     pub engine_failed: Option<String>,
@@ -175,6 +183,11 @@ impl Control {
         }
         self.shut_down().await;
         cancel.cancel();
+        // What an installer watching a commissioning run wants at the end.
+        self.summary.failsafe_entries = self.totals.failsafe_entries;
+        self.summary.export_over_limit_s = self.totals.export_over_limit_s;
+        self.summary.import_wh = self.totals.import_wh;
+        self.summary.export_wh = self.totals.export_wh;
         self.summary
     }
 
