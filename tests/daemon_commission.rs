@@ -202,42 +202,22 @@ async fn failsafe_test_times_the_safe_state_and_writes_a_record() {
     let plant = Plant::start(4500.0).await;
     let (path, site) = write_site(&plant, "failsafe");
     let record = path.with_file_name("record.md");
+    let step_recorded = |record: String| {
+        let site = site.clone();
+        async move {
+            let args = ["step-test", &site, "--load", "water_heater", "--hold", "3s", "--settle", "2s", "--yes"];
+            spillway(&[&args[..], &["--record", &record]].concat()).await
+        }
+    };
     // A record in a folder that does not exist is refused before anything is switched.
     let nowhere = path.with_file_name("no-such-folder").join("record.md").display().to_string();
-    let (code, _, err) = spillway(&[
-        "step-test",
-        &site,
-        "--load",
-        "water_heater",
-        "--hold",
-        "3s",
-        "--settle",
-        "2s",
-        "--yes",
-        "--record",
-        &nowhere,
-    ])
-    .await;
+    let (code, _, err) = step_recorded(nowhere).await;
     assert_eq!(code, 2, "{err}");
     assert!(err.contains("cannot write the record"), "{err}");
     assert!(plant.history().iter().all(|s| !s.heater), "nothing was switched");
     // The installer's order: a step test of each load, then the fail-safe test, all
     // appended to one record.
-    let record_arg = record.display().to_string();
-    let (code, out, err) = spillway(&[
-        "step-test",
-        &site,
-        "--load",
-        "water_heater",
-        "--hold",
-        "3s",
-        "--settle",
-        "2s",
-        "--yes",
-        "--record",
-        &record_arg,
-    ])
-    .await;
+    let (code, out, err) = step_recorded(record.display().to_string()).await;
     assert_eq!(code, 0, "{out}\n{err}");
     assert!(out.contains("result appended to the record"), "{out}");
     let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))

@@ -12,6 +12,30 @@ use std::time::Duration;
 use daemon_support::{LOADS, Plant, plant_until};
 use tokio::io::AsyncReadExt;
 
+/// Starts `spillway ARGS` as a child with its stderr collected; returns the child, its
+/// process id and the log (complete once the child has exited).
+fn spawn_logged(
+    args: &[std::ffi::OsString],
+    env: &[(String, String)],
+) -> (tokio::process::Child, u32, tokio::task::JoinHandle<String>) {
+    let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(args)
+        .envs(env.iter().cloned())
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let pid = child.id().unwrap();
+    let mut stderr = child.stderr.take().unwrap();
+    let log = tokio::spawn(async move {
+        let mut s = String::new();
+        let _ = stderr.read_to_string(&mut s).await;
+        s
+    });
+    (child, pid, log)
+}
+
 #[cfg(unix)]
 #[tokio::test]
 async fn sigterm_writes_the_safe_states_before_the_process_exits() {
@@ -26,22 +50,8 @@ async fn sigterm_writes_the_safe_states_before_the_process_exits() {
     let site = dir.join("bench.yaml");
     std::fs::write(&site, yaml).unwrap();
 
-    let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
-        .arg("run")
-        .arg(&site)
-        .env("RUST_LOG", "info")
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped())
-        .kill_on_drop(true)
-        .spawn()
-        .unwrap();
-    let pid = child.id().unwrap();
-    let mut stderr = child.stderr.take().unwrap();
-    let log = tokio::spawn(async move {
-        let mut s = String::new();
-        let _ = stderr.read_to_string(&mut s).await;
-        s
-    });
+    let (mut child, pid, log) =
+        spawn_logged(&["run".into(), site.clone().into()], &[("RUST_LOG".to_owned(), "info".to_owned())]);
 
     plant_until(&plant, Duration::from_secs(30), "a load switched on by the child", |s| s.heater || s.pump).await;
     let status = std::process::Command::new("kill").args(["-TERM", &pid.to_string()]).status().unwrap();
@@ -145,21 +155,8 @@ async fn the_shipped_systemd_unit_runs_and_stops_the_controller() {
         .map(|e| e.split_once('=').map(|(k, v)| (k.to_owned(), v.to_owned())).unwrap())
         .collect();
 
-    let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
-        .args(&args)
-        .envs(env.clone())
-        .stdout(Stdio::null())
-        .stderr(Stdio::piped())
-        .kill_on_drop(true)
-        .spawn()
-        .unwrap();
-    let pid = child.id().unwrap();
-    let mut stderr = child.stderr.take().unwrap();
-    let log = tokio::spawn(async move {
-        let mut s = String::new();
-        let _ = stderr.read_to_string(&mut s).await;
-        s
-    });
+    let os_args: Vec<std::ffi::OsString> = args.iter().map(Into::into).collect();
+    let (mut child, pid, log) = spawn_logged(&os_args, &env);
     plant_until(&plant, Duration::from_secs(30), "a load switched on under the unit's command line", |s| {
         s.heater || s.pump
     })

@@ -225,15 +225,7 @@ mod tests {
     }
 
     fn site() -> Site {
-        let yaml = "site: { name: T, timezone: Europe/Lisbon, export: forbidden }
-devices:
-  meter: { modbus_tcp: 127.0.0.1:5020, unit: 1 }
-points:
-  grid: { device: meter, register: 0, type: i16, unit: W }
-inverter: { rated: 5kW, limit: { device: meter, register: 10 } }
-loads: []
-";
-        spillway::config::load_str("t.yaml", yaml).map(|l| l.site).unwrap_or_else(|e| panic!("{}", e.render(false)))
+        crate::cli::test_site("T").0
     }
 
     #[test]

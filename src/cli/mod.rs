@@ -172,3 +172,21 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
         Verb::FailsafeTest(args) => failsafe_test::run(args, cli.log_format),
     }
 }
+
+/// A small no-export site for the commands' own tests: its file text, and the site.
+#[cfg(test)]
+pub(crate) fn test_site(name: &str) -> (spillway::config::model::Site, String) {
+    let yaml = format!(
+        "site: {{ name: {name}, timezone: Europe/Lisbon, export: forbidden }}
+devices:
+  meter: {{ modbus_tcp: 127.0.0.1:5020, unit: 1 }}
+points:
+  grid: {{ device: meter, register: 0, type: i16, unit: W }}
+inverter: {{ rated: 5kW, limit: {{ device: meter, register: 10 }} }}
+loads: []
+"
+    );
+    let site =
+        spillway::config::load_str("t.yaml", &yaml).map(|l| l.site).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    (site, yaml)
+}

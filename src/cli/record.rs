@@ -89,28 +89,13 @@ mod tests {
         assert_eq!(sha256_hex(b""), "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855");
     }
 
-    fn site() -> (Site, String) {
-        let yaml = "site: { name: Quince Cottage, timezone: Europe/Lisbon, export: forbidden }
-devices:
-  meter: { modbus_tcp: 127.0.0.1:5020, unit: 1 }
-points:
-  grid: { device: meter, register: 0, type: i16, unit: W }
-inverter: { rated: 5kW, limit: { device: meter, register: 10 } }
-loads: []
-";
-        let site = spillway::config::load_str("t.yaml", yaml)
-            .map(|l| l.site)
-            .unwrap_or_else(|e| panic!("{}", e.render(false)));
-        (site, yaml.to_owned())
-    }
-
     #[test]
     fn a_new_record_starts_with_the_site_and_later_tests_append() {
         let dir = std::env::temp_dir().join(format!("spillway-record-{}", std::process::id()));
         std::fs::create_dir_all(&dir).unwrap();
         let path = dir.join("commissioning.md");
         let _ = std::fs::remove_file(&path);
-        let (site, text) = site();
+        let (site, text) = crate::cli::test_site("Quince Cottage");
         let step = Section { title: "Step test: water_heater".into(), text: "step +2980 W\n", passed: true };
         append(&path, &site, Path::new("site.yaml"), &text, &step).unwrap();
         let failsafe = Section { title: "Fail-safe test".into(), text: "result: FAIL", passed: false };
