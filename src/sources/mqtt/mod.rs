@@ -194,10 +194,9 @@ impl MqttLink {
         let mut up: Option<bool> = None;
         loop {
             // One poll of the event loop, kept alive across the cancel: a poll is not
-            // cancel-safe (it may hold a request it has taken from the queue but not yet
-            // written), and dropping one at the cancel lost a queued publication now and
-            // then (the site's `stopped` state, between two that arrived). Only the end
-            // of the grace drops it.
+            // cancel-safe (it may hold a request taken from the queue but not yet
+            // written, or be part-way through a flush). Only the end of the grace drops
+            // it.
             let polled = {
                 let poll = eventloop.poll();
                 tokio::pin!(poll);
