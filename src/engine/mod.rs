@@ -419,6 +419,9 @@ impl Engine {
     /// a minimum on-time, a start cap, a hold of the guard or an override keeps its
     /// length instead of waiting out the step. (The rules' own timers and windows start
     /// afresh on a step back; readings stamped before it look stale until re-read.)
+    /// Cold and out of line: it runs once in a blue moon, and the tick stays as it was.
+    #[cold]
+    #[inline(never)]
     fn shift_time(&mut self, ms: i64) {
         let shift = |t: &mut Timestamp| *t = t.shifted(ms);
         self.last_now.iter_mut().for_each(shift);
@@ -445,13 +448,13 @@ impl Engine {
 
     /// One tick: decide every load and the inverter limit for `now`.
     pub fn step(&mut self, now: Timestamp, snapshot: &Snapshot) -> &Decisions {
-        if let Some(prev) = self.last_now
-            && now < prev
-        {
-            self.shift_time(now.0 - prev.0);
-        }
         let dt = match self.last_now {
             Some(prev) if now > prev => now.since(prev),
+            // The wall clock was set back.
+            Some(prev) if now < prev => {
+                self.shift_time(now.0 - prev.0);
+                Duration::ZERO
+            }
             _ => Duration::ZERO,
         };
         self.last_now = Some(now);
