@@ -494,3 +494,33 @@ fn refused(yaml: &str) -> String {
         Err(e) => e.render(false),
     }
 }
+
+#[test]
+fn a_command_at_qos_0_is_warned_about() {
+    // Its safe state at shutdown goes once and may be lost; QoS 1 (the default) is quiet.
+    let yaml = |qos: &str| {
+        format!(
+            "
+site: {{ name: Plug House, timezone: Europe/Dublin, export: allowed }}
+mqtt: {{ broker: 127.0.0.1:1883 }}
+devices:
+  home: {{ mqtt: true }}
+points:
+  grid: {{ device: home, topic: home/meter, unit: W }}
+loads:
+  - name: pump
+    priority: 1
+    rated: 750W
+    switch: {{ device: home, topic: home/plug/set{qos} }}
+    start: surplus > 800W for 1min
+    stop: import > 200W for 1min
+"
+        )
+    };
+    let loaded =
+        spillway::config::load_str("plug.yaml", &yaml(", qos: 0")).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let codes: Vec<&str> = loaded.warnings.iter().map(|w| w.code).collect();
+    assert_eq!(codes, ["C0283"], "{}", spillway::diag::render("plug.yaml", &yaml(", qos: 0"), &loaded.warnings, false));
+    let quiet = spillway::config::load_str("plug.yaml", &yaml("")).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    assert!(quiet.warnings.is_empty());
+}

@@ -2177,7 +2177,19 @@ impl Builder<'_, '_> {
             });
             let retain = retain.map_or(Some(false), |n| values::boolean(n, "`retain`", self.diags));
             let qos = match qos {
-                Some(q) => self.qos(q)?,
+                Some(q) => {
+                    let level = self.qos(q)?;
+                    if level == Qos::AtMostOnce {
+                        // Commands are repeated while running, so a lost one is sent again;
+                        // the safe state at shutdown is sent once.
+                        self.diags.push(
+                            Diagnostic::warning("C0283", "a command at QoS 0 may be lost on the way", q.span.clone())
+                                .with_label("at most once")
+                                .with_note("commands are repeated while Spillway runs, but the safe state it sends when it stops goes once: use QoS 1 (the default) for a relay or a setpoint"),
+                        );
+                    }
+                    level
+                }
                 None => Qos::AtLeastOnce,
             };
             let value = value?;
