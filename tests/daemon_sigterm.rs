@@ -84,17 +84,8 @@ async fn sigterm_writes_the_safe_states_before_the_process_exits() {
 async fn sigterm_against_the_simulator_leaves_its_relays_open_and_its_limit_safe() {
     let sim = daemon_support::sim::Sim::start(4200.0).await;
     let (dir, site) = sim.write_site("sigterm-sim", "house");
-    let mut child = tokio::process::Command::new(env!("CARGO_BIN_EXE_spillway"))
-        .arg("run")
-        .arg(&site)
-        .arg("--state")
-        .arg(dir.join("house.state.json"))
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .kill_on_drop(true)
-        .spawn()
-        .unwrap();
-    let pid = child.id().unwrap();
+    let args = ["run".into(), site.clone().into_os_string(), "--state".into(), dir.join("house.state.json").into()];
+    let (mut child, pid, log) = spawn_logged(&args, &[]);
     let deadline = std::time::Instant::now() + Duration::from_secs(30);
     while !sim.limit_w().is_some_and(|l| l > 0.0 && l < 4000.0) {
         assert!(std::time::Instant::now() < deadline, "the child never curtailed: {:?}", sim.limit_w());
@@ -103,7 +94,7 @@ async fn sigterm_against_the_simulator_leaves_its_relays_open_and_its_limit_safe
     let status = std::process::Command::new("kill").args(["-TERM", &pid.to_string()]).status().unwrap();
     assert!(status.success());
     let exit = tokio::time::timeout(Duration::from_secs(20), child.wait()).await.expect("the child exits").unwrap();
-    assert!(exit.success(), "{exit:?}");
+    assert!(exit.success(), "{exit:?}\n{}", log.await.unwrap());
     assert_eq!(sim.relays(), vec![false, false]);
     assert_eq!(sim.limit_w(), Some(0.0), "the site's safe limit is 0 W");
     assert!(dir.join("house.state.json").exists());
