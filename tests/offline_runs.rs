@@ -1199,3 +1199,24 @@ fn plant_section_mistakes_are_named_in_the_files_words() {
         }
     }
 }
+
+/// A real site's file without a `plant:` cannot be simulated: the error says where to
+/// take a plant from and how a real site's addresses meet it, and nothing runs.
+#[test]
+fn simulating_a_site_without_a_plant_says_where_to_get_one() {
+    let dir = std::env::temp_dir().join(format!("spillway-no-plant-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let cut = text.find("\nplant:").unwrap();
+    let end = text[cut + 1..].find("\n\n").map_or(text.len(), |e| cut + 1 + e);
+    let site = dir.join("roof.yaml");
+    std::fs::write(&site, format!("{}{}", &text[..cut], &text[end..])).unwrap();
+    let out = spillway(["simulate", site.to_str().unwrap(), "--days", "1", "--quiet"]);
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(
+        err.contains("has no `plant:` section") && err.contains("config/") && err.contains("simulation.bind"),
+        "{err}"
+    );
+    let _ = std::fs::remove_dir_all(&dir);
+}
