@@ -1213,7 +1213,7 @@ fn simulating_a_site_without_a_plant_says_where_to_get_one() {
     std::fs::write(&site, format!("{}{}", &text[..cut], &text[end..])).unwrap();
     let out = spillway(["simulate", site.to_str().unwrap(), "--days", "1", "--quiet"]);
     let err = String::from_utf8_lossy(&out.stderr);
-    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert_eq!(out.status.code(), Some(1), "a problem of the file: {err}");
     assert!(
         err.contains("has no `plant:` section") && err.contains("config/") && err.contains("simulation.bind"),
         "{err}"
