@@ -1220,3 +1220,43 @@ fn simulating_a_site_without_a_plant_says_where_to_get_one() {
     );
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// The README's quick start gives exactly two set-up commands: the main job on the demo
+/// site (the first command of issue 4: a week of the zero-export house with a chart) and
+/// the test command that `.ci/run` runs. The first is run here as written, its chart
+/// sent to a temporary directory.
+#[test]
+fn the_readmes_two_quick_start_commands_are_the_simulated_week_and_the_tests() {
+    let root = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let readme = std::fs::read_to_string(root.join("README.md")).unwrap();
+    let section = readme.split("## Quick start").nth(1).expect("a Quick start section");
+    let block = section.split("```sh").nth(1).and_then(|b| b.split("```").next()).expect("a sh block");
+    let commands: Vec<&str> = block.lines().map(str::trim).filter(|l| !l.is_empty() && !l.starts_with('#')).collect();
+    assert_eq!(commands.len(), 2, "exactly two set-up commands: {commands:?}");
+    let ci = std::fs::read_to_string(root.join(".ci/run")).unwrap();
+    assert!(
+        ci.lines().any(|l| l.trim() == commands[1]),
+        "`.ci/run` must run the README's test command `{}`",
+        commands[1]
+    );
+
+    let words: Vec<&str> = commands[0].split_whitespace().collect();
+    assert_eq!(words[..4], ["cargo", "run", "--release", "--"], "{}", commands[0]);
+    let mut args: Vec<String> = words[4..].iter().map(|w| w.to_string()).collect();
+    assert_eq!(args[0], "simulate");
+    assert!(root.join(&args[1]).is_file(), "{} names a file that is not there", args[1]);
+    args[1] = root.join(&args[1]).display().to_string();
+    let dir = std::env::temp_dir().join(format!("spillway-quick-start-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let chart_flag = args.iter().position(|a| a == "--chart").expect("the first command draws a chart");
+    let chart = dir.join(&args[chart_flag + 1]);
+    args[chart_flag + 1] = chart.display().to_string();
+
+    let out = spillway(&args);
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success(), "{}\n{}", stdout, String::from_utf8_lossy(&out.stderr));
+    assert!(stdout.contains("(7 day(s))") && stdout.contains("without diversion"), "{stdout}");
+    let svg = std::fs::read_to_string(&chart).unwrap();
+    assert!(svg.starts_with("<svg") || svg.contains("<svg"), "not an SVG");
+    std::fs::remove_dir_all(&dir).ok();
+}
