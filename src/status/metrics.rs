@@ -141,7 +141,12 @@ fn site(r: &mut Registry, s: &Status) {
     );
     watts(r, "grid", "grid power at the meter, import positive (absent while the meter is stale)", s.grid_w);
     watts(r, "pv", "PV inverter output (absent without a fresh PV reading)", s.pv_w);
-    watts(r, "house", "the rest of the household: PV + grid − managed loads (absent unless both are fresh)", s.house_w);
+    watts(
+        r,
+        "house",
+        "the rest of the household: PV + grid − managed loads − a self-run battery's charging (absent unless all are fresh)",
+        s.house_w,
+    );
     watts(
         r,
         "surplus",

@@ -35,8 +35,8 @@ pub struct Status {
     pub grid_w: Option<f64>,
     /// PV power; `null` when the site has no PV point or it is stale.
     pub pv_w: Option<f64>,
-    /// The rest of the household (PV + grid − managed loads); `null` unless both PV and
-    /// grid are fresh.
+    /// The rest of the household (PV + grid − managed loads − a self-run battery's
+    /// charging); `null` unless PV, grid and that battery's reading are fresh.
     pub house_w: Option<f64>,
     /// Surplus the engine saw: export plus what the managed loads draw plus the
     /// headroom hidden by curtailment.
@@ -233,6 +233,16 @@ pub fn starting(engine: &Engine, snapshot: &Snapshot) -> Status {
     s
 }
 
+/// The rest of the household, W: PV + grid − managed loads − what a battery on its own
+/// control charges (its discharge adds). `None` unless every term is fresh: a battery
+/// whose reading is lost leaves the house unknown, not off by the battery's power.
+/// `battery` is `None` on a site without such a battery, `Some(None)` when its reading
+/// is not fresh.
+pub fn house_power(pv: Option<f64>, grid: Option<f64>, managed: f64, battery: Option<Option<f64>>) -> Option<f64> {
+    let battery = battery.unwrap_or(Some(0.0))?;
+    Some((pv? + grid? - managed - battery).max(0.0).round())
+}
+
 /// The document after a tick.
 pub fn build(
     engine: &Engine,
@@ -293,10 +303,7 @@ pub fn build(
     let counters = engine.counters();
     let pv = fresh(site.roles.pv);
     let managed: f64 = loads.iter().map(|l: &LoadStatus| l.power_w).sum();
-    let house = match (pv, d.grid) {
-        (Some(pv), Some(grid)) => Some((pv + grid.0 - managed).max(0.0).round()),
-        _ => None,
-    };
+    let house = house_power(pv, d.grid.map(|g| g.0), managed, site.self_run_battery().map(|b| fresh(Some(b))));
     Status {
         site: site.name.clone(),
         time: Some(now.to_string()),
@@ -426,5 +433,26 @@ fn obligation(
             },
             fraction: None,
         },
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::house_power;
+
+    #[test]
+    fn the_house_is_what_pv_and_grid_feed_less_the_managed_loads_and_a_charging_battery() {
+        // 3 kW of PV, 200 W exported, a 1 kW tank on: the house draws 1.8 kW.
+        assert_eq!(house_power(Some(3000.0), Some(-200.0), 1000.0, None), Some(1800.0));
+        // The same with a self-run battery charging 1.5 kW: the house is 300 W.
+        assert_eq!(house_power(Some(3000.0), Some(-200.0), 1000.0, Some(Some(1500.0))), Some(300.0));
+        // At night the battery discharges 600 W and the meter reads 50 W of import.
+        assert_eq!(house_power(Some(0.0), Some(50.0), 0.0, Some(Some(-600.0))), Some(650.0));
+        // Any term unknown leaves the house unknown, the battery's included.
+        assert_eq!(house_power(Some(3000.0), Some(-200.0), 1000.0, Some(None)), None);
+        assert_eq!(house_power(None, Some(-200.0), 0.0, None), None);
+        assert_eq!(house_power(Some(3000.0), None, 0.0, None), None);
+        // Readings taken at different moments can disagree by a little: never below zero.
+        assert_eq!(house_power(Some(100.0), Some(-150.0), 0.0, None), Some(0.0));
     }
 }
