@@ -21,6 +21,7 @@ pub mod commission;
 mod control;
 pub mod demo;
 pub mod failsafe_test;
+pub mod replay_log;
 pub mod state_file;
 
 use std::net::SocketAddr;
@@ -46,6 +47,7 @@ use crate::units::format_duration;
 
 pub use control::Summary;
 use control::{Control, Request};
+use replay_log::{ReplayLog, ReplayLogError, ReplayLogOptions};
 use state_file::StateFileError;
 
 /// How to run.
@@ -66,6 +68,8 @@ pub struct Options {
     pub mqtt: MqttOptions,
     /// Actuator re-assertion.
     pub actuators: ActuatorOptions,
+    /// Append the site's PV and household power to a CSV for `spillway replay`.
+    pub replay_log: Option<ReplayLogOptions>,
     /// A fail point for tests of the failure path: the engine panics on this tick
     /// (counted from 1). Never set on a site.
     #[doc(hidden)]
@@ -86,6 +90,7 @@ impl Default for Options {
             modbus: ModbusOptions::default(),
             mqtt: MqttOptions::default(),
             actuators: ActuatorOptions::default(),
+            replay_log: None,
             fail_at_tick: None,
             fail_link_after: None,
         }
@@ -121,6 +126,9 @@ pub enum DaemonError {
     /// The state file exists but cannot be read, or cannot be written.
     #[error("{0}")]
     State(#[from] StateFileError),
+    /// The replay log cannot be kept in the file given.
+    #[error("{0}")]
+    ReplayLog(#[from] ReplayLogError),
 }
 
 /// A running daemon.
@@ -144,6 +152,7 @@ impl Daemon {
             restore(&mut engine, path, &options.clock)?;
             state_file::write_at_start(path, &site.name, &engine.persisted(), options.clock.now())?;
         }
+        let replay_log = options.replay_log.as_ref().map(|o| ReplayLog::start(&site, o)).transpose()?;
         let http = match options.http {
             Some(addr) => {
                 let listener = TcpListener::bind(addr).await.map_err(|source| DaemonError::Http { addr, source })?;
@@ -233,7 +242,7 @@ impl Daemon {
             });
         }
 
-        let control = Control::new(engine, snapshot, dispatcher, status_tx, &options);
+        let control = Control::new(engine, snapshot, dispatcher, status_tx, replay_log, &options);
         // The control task normally cancels the links itself after its shutdown; if it
         // dies some other way, this stops them too, so the process cannot hang on with
         // links and a status page but no controller.

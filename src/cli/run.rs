@@ -24,6 +24,15 @@ pub struct RunArgs {
     /// port binds that port on loopback, an address binds where it says.
     #[arg(long, value_name = "ADDR", num_args = 0..=1, default_missing_value = "127.0.0.1:8080", value_parser = parse_http)]
     pub http: Option<SocketAddr>,
+    /// Append the site's PV and household power (without the managed loads), averaged
+    /// per interval, to this CSV: the recording `spillway replay` reads, to try other
+    /// rules on the site's own days. Created with its header if absent; appended to if
+    /// it is this site's log.
+    #[arg(long, value_name = "FILE")]
+    pub replay_log: Option<PathBuf>,
+    /// The interval each replay-log row averages (10s to 15min).
+    #[arg(long, value_name = "DURATION", default_value = "1min", value_parser = super::parse_duration, requires = "replay_log")]
+    pub replay_log_every: std::time::Duration,
 }
 
 /// `8080` → `127.0.0.1:8080`; `0.0.0.0:8080` as given.
@@ -96,7 +105,17 @@ pub fn run(args: RunArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
     print_banner(&loaded.site, format);
     let state = args.state.unwrap_or_else(|| state_file::default_path(&args.site));
     info!(site = %loaded.site.name, state = %state.display(), "site loaded");
-    let options = daemon::Options { state_file: Some(state), http: args.http, ..daemon::Options::default() };
+    let replay_log =
+        args.replay_log.map(|path| daemon::replay_log::ReplayLogOptions { path, every: args.replay_log_every });
+    if let Some(o) = &replay_log
+        && let Err(e) = daemon::replay_log::check(&loaded.site, o)
+    {
+        // Before any device is touched, like every other problem of the command line.
+        eprintln!("error: {e}");
+        return Ok(ExitCode::from(2));
+    }
+    let options =
+        daemon::Options { state_file: Some(state), http: args.http, replay_log, ..daemon::Options::default() };
     let summary = daemon::run(Arc::new(loaded.site), options, |_| {})?;
     info!(
         ticks = summary.ticks,
@@ -109,5 +128,15 @@ pub fn run(args: RunArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         malformed = summary.malformed,
         "stopped"
     );
+    if let Some(w) = summary.replay_log {
+        info!(
+            rows = w.rows,
+            written_late = w.late,
+            dropped = w.dropped,
+            unwritten = w.unwritten,
+            curtailed_rows = w.curtailed,
+            "replay log closed"
+        );
+    }
     Ok(ExitCode::SUCCESS)
 }

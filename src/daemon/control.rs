@@ -13,6 +13,7 @@ use tokio::time::{Instant, MissedTickBehavior, interval, interval_at};
 use tokio_util::sync::CancellationToken;
 use tracing::{debug, error, info, trace, warn};
 
+use super::replay_log::{ReplayLog, Written};
 use super::{Options, state_file};
 use crate::actuators::Dispatcher;
 use crate::actuators::mqtt::{limit_word, mode_word};
@@ -64,6 +65,8 @@ pub struct Summary {
     /// Imported and exported while running, by the engine's counters, Wh.
     pub import_wh: f64,
     pub export_wh: f64,
+    /// What the replay log wrote, when one was kept.
+    pub replay_log: Option<Written>,
     /// Why the engine failed, if a tick panicked: the daemon then stopped with safe
     /// states instead of running on without a controller.
     pub engine_failed: Option<String>,
@@ -95,6 +98,8 @@ pub(super) struct Control {
     /// The engine's daily counters at the last tick and when it was, to add their
     /// growth to `totals` (they restart at midnight).
     last_counters: Option<(SiteCounters, crate::units::Timestamp)>,
+    /// The PV and household series for `spillway replay`, when asked for.
+    replay_log: Option<ReplayLog>,
 }
 
 impl Control {
@@ -103,6 +108,7 @@ impl Control {
         snapshot: Snapshot,
         dispatcher: Dispatcher,
         status: watch::Sender<Arc<Status>>,
+        replay_log: Option<ReplayLog>,
         options: &Options,
     ) -> Control {
         let site = Arc::clone(engine.site());
@@ -127,6 +133,7 @@ impl Control {
             summary: Summary::default(),
             totals: Totals { load_switchings: vec![0; site.loads.len()], ..Totals::default() },
             last_counters: None,
+            replay_log,
             site,
         }
     }
@@ -188,6 +195,10 @@ impl Control {
         self.summary.export_over_limit_s = self.totals.export_over_limit_s;
         self.summary.import_wh = self.totals.import_wh;
         self.summary.export_wh = self.totals.export_wh;
+        if let Some(log) = self.replay_log.take() {
+            // Joining the writer thread waits on the disk: not on the runtime's thread.
+            self.summary.replay_log = tokio::task::spawn_blocking(move || log.finish()).await.ok();
+        }
         self.summary
     }
 
@@ -277,6 +288,16 @@ impl Control {
         self.count(now);
         self.recent.make_contiguous();
         let doc = status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0, &self.totals);
+        if let Some(log) = &mut self.replay_log {
+            let d = self.engine.decisions();
+            let available = self.site.roles.pv_available.and_then(|id| {
+                let p = self.site.points.get(id.0)?;
+                let s = self.snapshot.get(id);
+                (s.quality(d.now, p) == crate::engine::Quality::Fresh).then_some(s.value)
+            });
+            let curtailed = d.limit_reason != LimitReason::None;
+            log.sample(d.now, doc.pv_w, doc.house_w, available, curtailed);
+        }
         self.status.send_replace(Arc::new(doc));
     }
 
