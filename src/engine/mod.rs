@@ -748,7 +748,10 @@ impl Engine {
             self.day = Some(day);
             return;
         };
-        if previous.day == day.day {
+        // A date earlier than the day in progress is the wall clock set back across
+        // midnight (NTP correcting a guessed time): the day in progress goes on, and
+        // is judged once, when the clock passes its end.
+        if day.day <= previous.day {
             return;
         }
         let new_month = (previous.year, previous.month) != (day.year, day.month);

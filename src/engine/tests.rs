@@ -1906,6 +1906,46 @@ fn a_step_of_the_wall_clock_either_way_does_not_hold_loads_on_through_a_cloud() 
     }
 }
 
+/// A clock set back across midnight (NTP correcting a guessed time just after it) is not
+/// a new day: the day that began at the first midnight goes on, its run time and energy
+/// are kept, and the day before is judged once, not again when midnight comes round a
+/// second time.
+#[test]
+fn a_step_back_across_midnight_does_not_start_or_judge_a_day_twice() {
+    let loads = r#"
+  - name: pump
+    rated: 1kW
+    switch: { device: relays, coil: 1 }
+    start: surplus > 1.1kW for 1min
+    stop: import > 300W for 1min
+    obligations:
+      - run: 1h
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads)).at_local(23, 50);
+    h.set("grid", 200.0);
+    // Past midnight: the day before is judged (missed: the pump never ran).
+    h.run(secs(11 * 60));
+    let results = h.engine.take_obligation_results();
+    assert_eq!(results.len(), 1, "{results:?}");
+    assert!(!results[0].met);
+    // Some export for the pump: run time of the new day.
+    h.set("grid", -1500.0);
+    h.run(secs(5 * 60));
+    assert!(h.command("pump").is_on());
+    let runtime = h.engine.persisted();
+    // The clock is set back ten minutes, to before midnight, and runs on past it again.
+    h.now = Timestamp(h.now.0 - 10 * 60 * 1000);
+    h.run(secs(2 * 60));
+    let during = h.engine.persisted();
+    h.run(secs(15 * 60));
+    assert!(h.engine.take_obligation_results().is_empty(), "judged again");
+    let after = h.engine.persisted();
+    assert_eq!(during.day, runtime.day, "the day the clock went back into is not a new day");
+    assert_eq!(after.day, runtime.day);
+    let (before_s, after_s) = (runtime.loads[0].runtime_today_s, after.loads[0].runtime_today_s);
+    assert!(after_s >= before_s + 16.0 * 60.0, "run time kept and grown: {before_s} → {after_s} s");
+}
+
 #[test]
 fn a_step_back_keeps_an_override_and_a_minimum_on_time_at_their_lengths() {
     let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
