@@ -1260,3 +1260,69 @@ fn the_readmes_two_quick_start_commands_are_the_simulated_week_and_the_tests() {
     assert!(svg.starts_with("<svg") || svg.contains("<svg"), "not an SVG");
     std::fs::remove_dir_all(&dir).ok();
 }
+
+/// `compare --recorded`: two rule sets on the site's own recording. A's side is the
+/// replay of A, figure for figure; B (a tank that waits for more surplus) runs
+/// differently on the same recorded sun; the recording's bad row is named as under
+/// `replay`.
+#[test]
+fn compare_on_a_recording_runs_both_rule_sets_on_it_and_matches_the_replay() {
+    let a = example("zero-export-house.yaml");
+    let csv = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/test_data/replay/rosemead-may-12.csv");
+    let text = std::fs::read_to_string(&a).unwrap();
+    let from = "start: surplus > 3.1kW for 30s";
+    assert!(text.contains(from), "the example's tank start rule");
+    let dir = std::env::temp_dir().join(format!("spillway-compare-recorded-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let b = dir.join("later-tank.yaml");
+    std::fs::write(&b, text.replacen(from, "start: surplus > 4.5kW for 30s", 1)).unwrap();
+
+    let out = spillway([
+        "compare",
+        a.to_str().unwrap(),
+        b.to_str().unwrap(),
+        "--recorded",
+        csv.to_str().unwrap(),
+        "--quiet",
+        "--report",
+        "json",
+    ]);
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    assert!(out.status.success(), "{stderr}");
+    assert!(stderr.contains("rosemead-may-12.csv:401: rejected"), "{stderr}");
+    let cmp: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let row = |label: &str| {
+        cmp["rows"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .find(|r| r["label"] == label)
+            .unwrap_or_else(|| panic!("no row {label}: {cmp}"))
+            .clone()
+    };
+    let replay = spillway(["replay", a.to_str().unwrap(), csv.to_str().unwrap(), "--quiet", "--report", "json"]);
+    assert!(replay.status.success(), "{}", String::from_utf8_lossy(&replay.stderr));
+    let replay: serde_json::Value = serde_json::from_slice(&replay.stdout).unwrap();
+    for (label, key) in [("import", "import_kwh"), ("diverted into loads", "diverted_kwh")] {
+        let a_side = row(label)["a"].as_f64().unwrap();
+        let replayed = replay["energy"][key].as_f64().unwrap();
+        assert!((a_side - replayed).abs() < 1e-9, "{label}: compare's A {a_side} against the replay's {replayed}");
+    }
+    // B's other threshold shows on the same recorded day.
+    let tank = row("water_heater: energy");
+    assert_ne!(tank["a"], tank["b"], "{cmp}");
+
+    // A measured weather file and a recording cannot both stand for the sun.
+    let out = spillway([
+        "compare",
+        a.to_str().unwrap(),
+        b.to_str().unwrap(),
+        "--recorded",
+        csv.to_str().unwrap(),
+        "--weather",
+        "clear",
+    ]);
+    assert_eq!(out.status.code(), Some(2), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(String::from_utf8_lossy(&out.stderr).contains("--weather does not apply with --recorded"));
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -1,13 +1,15 @@
 //! `spillway compare A.yaml B.yaml`: two rule sets on the same plant (A's `plant:`
-//! section), weather and seed, side by side.
+//! section), weather and seed, side by side; with `--recorded FILE.csv`, on a recorded
+//! PV and household series in place of the modelled ones.
 
 use std::path::Path;
 use std::process::ExitCode;
 
 use anyhow::Context as _;
-use spillway::offline::{self, Controller, RunOptions, compare, report};
+use spillway::offline::{self, Controller, RunOptions, compare, replay::Recorded, report};
 
-use super::simulate::{Format, Prepared, Progress, RunArgs, prepare};
+use super::replay::load_recording;
+use super::simulate::{Format, Prepared, Progress, RunArgs, prepare_for};
 
 /// Where B's site does not match A's (whose plant both run on): another time zone, and
 /// loads of either side with no namesake on the other (their rows have one side only).
@@ -38,19 +40,37 @@ fn mismatches(a: &Prepared, b: &Prepared) -> Vec<String> {
     out
 }
 
-fn options<'a>(p: &Prepared, args: &RunArgs, controller: Controller) -> RunOptions<'a> {
+fn options<'a>(p: &Prepared, args: &RunArgs, controller: Controller, recorded: Option<&'a Recorded>) -> RunOptions<'a> {
     let mut o = RunOptions::day(p.from);
     o.days = p.days;
     o.seed = p.seed;
     o.sky = p.sky;
     o.step = args.step;
     o.controller = controller;
+    o.recorded = recorded;
     o
 }
 
-pub fn run(a_path: &Path, b_path: &Path, args: &RunArgs, format: Format) -> anyhow::Result<ExitCode> {
-    let Some(a) = prepare(a_path, args)? else { return Ok(ExitCode::from(1)) };
-    let Some(mut b) = prepare(b_path, args)? else { return Ok(ExitCode::from(1)) };
+pub fn run(
+    a_path: &Path,
+    b_path: &Path,
+    recorded: Option<&Path>,
+    args: &RunArgs,
+    format: Format,
+) -> anyhow::Result<ExitCode> {
+    // As for `replay`: accepted silently, it would look as if it changed something.
+    anyhow::ensure!(
+        recorded.is_none() || args.weather.is_none(),
+        "--weather does not apply with --recorded: the recording replaces the modelled PV and household load"
+    );
+    let uses_weather = recorded.is_none();
+    let Some(mut a) = prepare_for(a_path, args, uses_weather)? else { return Ok(ExitCode::from(1)) };
+    let Some(mut b) = prepare_for(b_path, args, uses_weather)? else { return Ok(ExitCode::from(1)) };
+    let recording = match recorded {
+        Some(csv) => Some(load_recording(csv, &mut a, args)?.recorded),
+        None => None,
+    };
+    let recording = recording.as_ref();
     // Same plant, dates, seed and weather for both: A's. B's rules must fit that plant;
     // say where they do not, since the table can only set like against like.
     for w in mismatches(&a, &b) {
@@ -61,23 +81,29 @@ pub fn run(a_path: &Path, b_path: &Path, args: &RunArgs, format: Format) -> anyh
     b.days = a.days;
     b.seed = a.seed;
     b.sky = a.sky;
+    b.weather_label = a.weather_label.clone();
     let progress = Progress::new(args.quiet, "comparing");
     let (ra, rb, base) = std::thread::scope(|s| {
         let hb = s.spawn(|| {
-            offline::simulate_once(&b.site, b.loaded.tariff.as_ref(), &b.plant, options(&b, args, Controller::Spillway))
+            offline::simulate_once(
+                &b.site,
+                b.loaded.tariff.as_ref(),
+                &b.plant,
+                options(&b, args, Controller::Spillway, recording),
+            )
         });
         let ra = offline::simulate_once(
             &a.site,
             a.loaded.tariff.as_ref(),
             &a.plant,
-            options(&a, args, Controller::Spillway),
+            options(&a, args, Controller::Spillway, recording),
         );
         progress.update(0.5);
         let base = offline::simulate_once(
             &a.site,
             a.loaded.tariff.as_ref(),
             &a.plant,
-            options(&a, args, Controller::Baseline),
+            options(&a, args, Controller::Baseline, recording),
         );
         (ra, hb.join(), base)
     });

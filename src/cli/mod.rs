@@ -116,6 +116,10 @@ pub enum Verb {
         a: PathBuf,
         /// The second site file.
         b: PathBuf,
+        /// Run both on a recorded PV and household series (the CSV `replay` reads, e.g.
+        /// the site's own `run --replay-log`) in place of the modelled ones.
+        #[arg(long, value_name = "FILE.csv")]
+        recorded: Option<PathBuf>,
         #[command(flatten)]
         run: simulate::RunArgs,
         /// Output format.
@@ -157,7 +161,7 @@ pub fn run(cli: Cli) -> anyhow::Result<ExitCode> {
     match cli.command {
         Verb::Check { site, quiet } => check::run(&site, quiet),
         Verb::Simulate { site, run, report, chart } => simulate::run(&site, &run, report, chart.as_deref()),
-        Verb::Compare { a, b, run, report } => compare::run(&a, &b, &run, report),
+        Verb::Compare { a, b, recorded, run, report } => compare::run(&a, &b, recorded.as_deref(), &run, report),
         Verb::Test { site, step, report } => test::run(&site, step, report),
         Verb::Sweep { site, vary, run, report, chart, jobs } => {
             sweep::run(&site, &vary, run, report, chart.as_deref(), jobs)

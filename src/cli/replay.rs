@@ -7,7 +7,7 @@ use std::process::ExitCode;
 use anyhow::Context as _;
 use spillway::offline::{self, Controller, RunOptions, replay::Recorded, report};
 
-use super::simulate::{Format, Progress, RunArgs, prepare_for};
+use super::simulate::{Format, Prepared, Progress, RunArgs, prepare_for};
 
 pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Option<&Path>) -> anyhow::Result<ExitCode> {
     // Accepted silently, it would look as if it changed something.
@@ -19,41 +19,8 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
     if let Some(file) = chart {
         super::simulate::check_writable(file)?;
     }
-    let recorded = Recorded::from_csv(csv, p.site.timezone)?;
+    let Recording { recorded, notices, coverage } = load_recording(csv, &mut p, args)?;
     let rejected = recorded.rejected();
-    for n in &recorded.notices {
-        eprintln!("{}:{}: {}{}", csv.display(), n.line, if n.rejected { "rejected: " } else { "note: " }, n.message);
-    }
-    if rejected > 0 {
-        eprintln!("{}: {rejected} row(s) rejected, {} used", csv.display(), recorded.t_ms.len());
-    }
-    // The recording decides what the command line does not: the first day unless
-    // --from, the number of days unless --days or --to.
-    let (first, last) = recorded.span_ms();
-    let tz = p.site.timezone;
-    let day = |ms: i64| spillway::units::Timestamp(ms).to_utc().with_timezone(&tz).date_naive();
-    let recorded_days = ((day(last) - day(first)).num_days() + 1).max(1) as u32;
-    if args.from.is_none() {
-        p.from = day(first);
-    }
-    if args.days.is_none() && args.to.is_none() {
-        p.days = recorded_days;
-    }
-    let mut notices: Vec<String> = recorded.notices.iter().map(|n| format!("line {}: {}", n.line, n.message)).collect();
-    let coverage = coverage(&recorded, tz, p.from, p.days);
-    // An hour is noise (a recording rarely starts exactly at midnight); more is called out,
-    // since the report counts those hours as if they had been measured.
-    for (hours, what) in [
-        (coverage.outside_h, "lie outside the recording: its first and last values are held there, not measured"),
-        (coverage.bridged_h, "fall in gaps of over 15 min between rows: interpolated there, not measured"),
-    ] {
-        if hours > 1.0 {
-            let note = format!("{hours:.1} h of the run {what}");
-            eprintln!("{}: warning: {note}", csv.display());
-            notices.push(note);
-        }
-    }
-    p.weather_label = format!("recorded ({})", csv.display());
     let progress = Progress::new(args.quiet, "replaying");
     let options = |controller: Controller| {
         let mut o = RunOptions::day(p.from);
@@ -105,12 +72,63 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
     Ok(ExitCode::SUCCESS)
 }
 
+/// A recording loaded for a run (`replay`, `compare --recorded`).
+pub(super) struct Recording {
+    /// The rows.
+    pub recorded: Recorded,
+    /// Its rejected rows and bridged gaps, and warnings about hours it does not measure.
+    pub notices: Vec<String>,
+    /// What it covers of the run.
+    pub coverage: Coverage,
+}
+
+/// Reads `csv` in `p`'s time zone, prints its rejected rows and gaps (each with its line
+/// number) and a warning for more than an hour of the run it does not measure, and
+/// lets it decide what the command line does not: the first day unless `--from`, the
+/// number of days unless `--days` or `--to`. Sets `p`'s weather label.
+pub(super) fn load_recording(csv: &Path, p: &mut Prepared, args: &RunArgs) -> anyhow::Result<Recording> {
+    let recorded = Recorded::from_csv(csv, p.site.timezone)?;
+    let rejected = recorded.rejected();
+    for n in &recorded.notices {
+        eprintln!("{}:{}: {}{}", csv.display(), n.line, if n.rejected { "rejected: " } else { "note: " }, n.message);
+    }
+    if rejected > 0 {
+        eprintln!("{}: {rejected} row(s) rejected, {} used", csv.display(), recorded.t_ms.len());
+    }
+    let (first, last) = recorded.span_ms();
+    let tz = p.site.timezone;
+    let day = |ms: i64| spillway::units::Timestamp(ms).to_utc().with_timezone(&tz).date_naive();
+    let recorded_days = ((day(last) - day(first)).num_days() + 1).max(1) as u32;
+    if args.from.is_none() {
+        p.from = day(first);
+    }
+    if args.days.is_none() && args.to.is_none() {
+        p.days = recorded_days;
+    }
+    let mut notices: Vec<String> = recorded.notices.iter().map(|n| format!("line {}: {}", n.line, n.message)).collect();
+    let coverage = coverage(&recorded, tz, p.from, p.days);
+    // An hour is noise (a recording rarely starts exactly at midnight); more is called out,
+    // since the report counts those hours as if they had been measured.
+    for (hours, what) in [
+        (coverage.outside_h, "lie outside the recording: its first and last values are held there, not measured"),
+        (coverage.bridged_h, "fall in gaps of over 15 min between rows: interpolated there, not measured"),
+    ] {
+        if hours > 1.0 {
+            let note = format!("{hours:.1} h of the run {what}");
+            eprintln!("{}: warning: {note}", csv.display());
+            notices.push(note);
+        }
+    }
+    p.weather_label = format!("recorded ({})", csv.display());
+    Ok(Recording { recorded, notices, coverage })
+}
+
 /// How much of a run the recording does not measure.
-struct Coverage {
+pub(super) struct Coverage {
     /// Hours before the first row or after the last.
-    outside_h: f64,
+    pub outside_h: f64,
     /// Hours inside gaps of over 15 minutes between rows.
-    bridged_h: f64,
+    pub bridged_h: f64,
 }
 
 /// What the recording covers of the run's local days `[from, from + days)`.
