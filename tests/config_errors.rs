@@ -524,3 +524,210 @@ loads:
     let quiet = spillway::config::load_str("plug.yaml", &yaml("")).unwrap_or_else(|e| panic!("{}", e.render(false)));
     assert!(quiet.warnings.is_empty());
 }
+
+/// The codes of every diagnostic a site file gives, errors and warnings, in file order;
+/// empty when it loads without a word.
+fn codes(yaml: &str) -> Vec<&'static str> {
+    match spillway::config::load_str("site.yaml", yaml) {
+        Ok(loaded) => loaded.warnings.iter().map(|w| w.code).collect(),
+        Err(spillway::config::LoadError::Invalid { diagnostics, .. }) => diagnostics.iter().map(|d| d.code).collect(),
+        Err(e) => panic!("{e}"),
+    }
+}
+
+/// A small grid-tied site with one relay device and one temperature point, for the
+/// tests below that change one thing in it.
+const RELAY_HOUSE: &str = "
+site: { name: Relay House, timezone: Europe/Lisbon }
+devices:
+  relays: { modbus_tcp: 127.0.0.1:5020, unit: 3 }
+points:
+  tank_temp: { device: relays, register: 1, unit: °C }
+loads:
+  - name: heater
+    rated: 3kW
+    switch: { device: relays, coil: 0 }
+    start: surplus > 3.2kW for 1min
+    stop: import > 250W for 1min
+";
+
+/// The expectations of `RELAY_HOUSE` with `expect` appended: the codes they give.
+fn expect_codes(expect: &str) -> Vec<&'static str> {
+    let yaml = format!("{RELAY_HOUSE}{expect}");
+    let loaded = spillway::config::load_str("site.yaml", &yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    match spillway::offline::expect::read(&loaded) {
+        Ok(exp) => {
+            assert!(!exp.days.is_empty(), "read without error but without its day: {exp:?}");
+            Vec::new()
+        }
+        Err(diags) => diags.iter().map(|d| d.code).collect(),
+    }
+}
+
+/// A test day whose `date` is empty or a list used to vanish without a word: `check`
+/// said "ok" over no day at all, and a check naming the day was told there was no such
+/// day. Now the date is reported, and the check that names the day says nothing more.
+#[test]
+fn a_test_day_without_a_date_is_reported_not_dropped() {
+    let expect = |date: &str| {
+        format!(
+            "expect:\n  days:\n    - name: june\n      date: {date}\n  checks:\n    - {{ name: calm, switchings: heater, days: [june] }}\n"
+        )
+    };
+    assert_eq!(expect_codes(&expect("2026-06-21")), Vec::<&str>::new());
+    assert_eq!(expect_codes(&expect("")), ["C0101"]);
+    assert_eq!(expect_codes(&expect("[2026-06-21]")), ["C0101"]);
+    assert_eq!(expect_codes(&expect("{ day: 21 }")), ["C0101"]);
+    // A date that is there but wrong is C0601, as before, and no C0606 either.
+    assert_eq!(expect_codes(&expect("21/06/2026")), ["C0601"]);
+    // A day nobody defined is still C0606.
+    assert_eq!(expect_codes(&expect("2026-06-21").replace("[june]", "[july]")), ["C0606"]);
+    // The message says what is wrong with the date.
+    let yaml = format!("{RELAY_HOUSE}{}", expect(""));
+    let loaded = spillway::config::load_str("site.yaml", &yaml).unwrap();
+    let diags = spillway::offline::expect::read(&loaded).unwrap_err();
+    let shown = spillway::diag::render("site.yaml", &yaml, &diags, false);
+    assert!(shown.contains("the day's date must be a single value, found nothing"), "{shown}");
+}
+
+/// `backup` settings were read only on a grid-connected site: on an off-grid one they
+/// were ignored without a word.
+#[test]
+fn a_backup_section_on_an_off_grid_site_is_refused() {
+    let yaml = "
+site:
+  name: Far Cabin
+  timezone: Europe/Lisbon
+  grid: off
+  off_grid: { float_voltage: 54.4V }
+  backup: { shed_interval: 30s }
+devices:
+  shunt: { modbus_tcp: 127.0.0.1:5020, unit: 1 }
+points:
+  battery_voltage: { device: shunt, register: 0, unit: V }
+  battery_current: { device: shunt, register: 1, type: i16, unit: A }
+loads: []
+";
+    assert_eq!(codes(yaml), ["C0204"]);
+    let shown = refused(yaml);
+    assert!(shown.contains("`backup` settings need `grid: backup`"), "{shown}");
+    assert!(shown.contains("this site is off-grid"), "{shown}");
+    assert_eq!(codes(&yaml.replace("  backup: { shed_interval: 30s }\n", "")), Vec::<&str>::new());
+}
+
+/// A stepped load whose `stages` is missing or not a list is one error: its `switch`
+/// or `stage_register` used to be reported as unknown keys on top.
+#[test]
+fn a_stepped_load_with_broken_stages_does_not_disown_its_other_keys() {
+    let stepped = |stages: &str, command: &str| {
+        RELAY_HOUSE.replace(
+            "    rated: 3kW\n    switch: { device: relays, coil: 0 }\n",
+            &format!("    kind: stepped\n{stages}{command}"),
+        )
+    };
+    let relays = "    switch: [{ device: relays, coil: 0 }, { device: relays, coil: 1 }]\n";
+    let register = "    stage_register: { device: relays, register: 7 }\n";
+    assert_eq!(codes(&stepped("    stages: [1kW, 2kW]\n", relays)), Vec::<&str>::new());
+    assert_eq!(codes(&stepped("", relays)), ["C0004"]);
+    assert_eq!(codes(&stepped("", register)), ["C0004"]);
+    assert_eq!(codes(&stepped("    stages: 3kW\n", relays)), ["C0237"]);
+    assert_eq!(codes(&stepped("    stages: [2kW, 1kW]\n", register)), ["C0237"]);
+    // A key no stepped load has is still unknown.
+    assert_eq!(codes(&stepped("", &format!("{relays}    rated: 3kW\n"))), ["C0004", "C0005"]);
+}
+
+/// A battery whose own settings stop the reading early (charging resumes above where
+/// it stops) keeps its `discharge` a known key.
+#[test]
+fn a_battery_with_broken_levels_does_not_disown_its_discharge() {
+    let yaml = "
+site: { name: Store House, timezone: Europe/Lisbon }
+devices:
+  box: { modbus_tcp: 127.0.0.1:5020, unit: 4 }
+points:
+  store_soc: { device: box, register: 10, scale: 0.1, unit: \"%\" }
+loads:
+  - name: store
+    kind: battery
+    max_charge: 3kW
+    soc: store_soc
+    soc_max: 90%
+    soc_resume: 95%
+    setpoint: { device: box, register: 1, type: i32 }
+    discharge: { max: 2kW, soc_min: 20% }
+";
+    assert_eq!(codes(yaml), ["C0236"]);
+}
+
+/// An unknown `kind` is one error: which kind was meant cannot be known, so the keys of
+/// every kind are accepted; only a key no load has is reported.
+#[test]
+fn an_unknown_load_kind_does_not_make_its_keys_unknown() {
+    let kind = |k: &str| RELAY_HOUSE.replace("    rated: 3kW\n", &format!("    kind: {k}\n    rated: 3kW\n"));
+    assert_eq!(codes(&kind("switched")), Vec::<&str>::new());
+    assert_eq!(codes(&kind("switchd")), ["C0104"]);
+    assert_eq!(codes(&kind("heater")), ["C0104"]);
+    assert_eq!(codes(&kind("[switched]")), ["C0104"]);
+    // Keys of another kind than the one most like it: still no more errors.
+    let other =
+        kind("stepd").replace("    rated: 3kW\n", "    rated: 3kW\n    stages: [1kW, 2kW]\n    max_charge: 3kW\n");
+    assert_eq!(codes(&other), ["C0104"]);
+    // A key no kind has is a mistake of its own.
+    let typo = kind("stepd").replace("    rated: 3kW\n", "    ratd: 3kW\n");
+    let shown = refused(&typo);
+    assert_eq!(codes(&typo), ["C0104", "C0005"], "{shown}");
+    assert!(shown.contains("did you mean \"rated\"?"), "{shown}");
+}
+
+/// A point whose name is refused is defined, only wrongly: what refers to it says
+/// nothing more (a load's `temperature`, `power`, a rule), as for a refused device.
+#[test]
+fn a_refused_point_name_is_one_error_not_one_per_use() {
+    let named = |name: &str| {
+        RELAY_HOUSE
+            .replace("  tank_temp: {", &format!("  {name}: {{"))
+            .replace("    start:", &format!("    temperature: {name}\n    start:"))
+    };
+    assert_eq!(codes(&named("tank_temp")), Vec::<&str>::new());
+    assert_eq!(codes(&named("Tank_Temp")), ["C0105"]);
+    assert_eq!(codes(&named("tank-temp")), ["C0105"]);
+    assert_eq!(codes(&named("for")), ["C0105"]);
+    // A name Spillway computes itself.
+    let power = RELAY_HOUSE
+        .replace(
+            "  tank_temp: { device: relays, register: 1, unit: °C }",
+            "  surplus: { device: relays, register: 1, unit: W }",
+        )
+        .replace("    start:", "    power: surplus\n    start:");
+    assert_eq!(codes(&power), ["C0214"]);
+    // A rule that names it.
+    let rule = RELAY_HOUSE
+        .replace("  tank_temp: {", "  tank.temp: {")
+        .replace("stop: import > 250W for 1min", "stop: import > 250W for 1min or tank.temp > 80°C");
+    assert_eq!(codes(&rule), ["C0105"], "{}", refused(&rule));
+}
+
+/// `mqtt: false` on a device says it is not an MQTT device: it is no transport, so a
+/// Modbus device may carry it; `mqtt` is true or false.
+#[test]
+fn mqtt_false_on_a_device_is_no_transport() {
+    let device =
+        |d: &str| RELAY_HOUSE.replace("  relays: { modbus_tcp: 127.0.0.1:5020, unit: 3 }", &format!("  relays: {d}"));
+    assert_eq!(codes(&device("{ modbus_tcp: 127.0.0.1:5020, unit: 3, mqtt: false }")), Vec::<&str>::new());
+    let alone = device("{ mqtt: false }");
+    assert_eq!(codes(&alone), ["C0210"]);
+    let shown = refused(&alone);
+    assert!(shown.contains("`mqtt: false` is no transport"), "{shown}");
+    assert_eq!(codes(&device("{ modbus_tcp: 127.0.0.1:5020, unit: 3, mqtt: broker }")), ["C0102"]);
+    // `mqtt: true` with Modbus is still two transports.
+    assert_eq!(codes(&device("{ modbus_tcp: 127.0.0.1:5020, unit: 3, mqtt: true }")), ["C0210"]);
+}
+
+/// The note on a refused name describes what is accepted: a leading `_` is fine.
+#[test]
+fn the_note_on_an_unusable_name_says_what_is_accepted() {
+    assert_eq!(codes(&RELAY_HOUSE.replace("name: heater", "name: _heater")), Vec::<&str>::new());
+    let shown = refused(&RELAY_HOUSE.replace("name: heater", "name: Heater"));
+    assert!(shown.contains("start with a lowercase letter or _"), "{shown}");
+    assert!(!shown.contains("start with a letter and"), "{shown}");
+}

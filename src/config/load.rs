@@ -139,8 +139,9 @@ struct Builder<'t, 'd> {
     text: &'t str,
     diags: &'d mut Diagnostics,
     tariff: Option<super::tariff::Tariff>,
-    /// Points whose definition has an error already reported: what refers to them
-    /// (rules, loads, site roles) says nothing more, so one typo gives one error.
+    /// Points whose definition has an error already reported, a refused name included:
+    /// what refers to them (rules, loads, site roles) says nothing more, so one typo
+    /// gives one error.
     broken_points: Vec<String>,
     /// Devices whose definition has an error already reported, for the same reason: a
     /// device with a mistyped key is still defined, and "no device called" would mislead.
@@ -327,6 +328,15 @@ impl Builder<'_, '_> {
                         "an off-grid site has no export policy",
                         n.span.clone(),
                         "remove `export` or set `grid: tied`",
+                    );
+                }
+                // An island has no grid to lose: backup settings would be ignored.
+                if let Some(n) = backup_node {
+                    self.diags.error(
+                        "C0204",
+                        "`backup` settings need `grid: backup`",
+                        n.span.clone(),
+                        "this site is off-grid",
                     );
                 }
                 Connection::OffGrid(self.off_grid(off_grid_node)?)
@@ -831,7 +841,10 @@ impl Builder<'_, '_> {
         let mut m = MapReader::new(node, &what, self.diags)?;
         let tcp = m.get("modbus_tcp");
         let rtu = m.get("modbus_rtu");
-        let mqtt = m.get("mqtt");
+        // `mqtt: true` is the MQTT transport (its address is the site's broker);
+        // `mqtt: false` says the device is not one, so it is no transport at all.
+        let mqtt_node = m.get("mqtt");
+        let mqtt = mqtt_node.map_or(Some(false), |n| values::boolean(n, "`mqtt` on a device", self.diags));
         let unit = m.get("unit").map(|n| values::integer(n, 0, 255, "the Modbus unit id", self.diags).map(|u| u as u8));
         let poll = m.get("poll").map_or(Some(DEFAULT_POLL), |n| {
             values::duration_at_least(n, "the poll period", MIN_POLL, POLL_WHY, self.diags)
@@ -848,7 +861,8 @@ impl Builder<'_, '_> {
         let sunspec = m.get("sunspec").map_or(Some(false), |n| values::boolean(n, "`sunspec`", self.diags));
         let span = m.span();
         m.finish(self.diags);
-        let given = [tcp.is_some(), rtu.is_some(), mqtt.is_some()].iter().filter(|b| **b).count();
+        let mqtt = mqtt?;
+        let given = [tcp.is_some(), rtu.is_some(), mqtt].iter().filter(|b| **b).count();
         if given != 1 {
             let d = Diagnostic::error(
                 "C0210",
@@ -857,7 +871,7 @@ impl Builder<'_, '_> {
             );
             self.diags.push(if given == 0 {
                 // The transport and its address are one key: say so with the shapes.
-                d.with_label("no transport given").with_note(
+                d.with_label(if mqtt_node.is_some() { "`mqtt: false` is no transport" } else { "no transport given" }).with_note(
                     "give one, with its address as the value: `modbus_tcp: 192.168.1.50:502`, `modbus_rtu: { port: /dev/ttyUSB0, baud: 9600 }` or `mqtt: true`",
                 )
             } else {
@@ -938,6 +952,8 @@ impl Builder<'_, '_> {
             return (points, info);
         };
         for (key, pnode) in m.into_named_entries() {
+            // A refused name is still a point the file defines: it joins the broken
+            // points, so what refers to it (a load's `temperature`, a rule) adds nothing.
             if !is_name(&key.name) {
                 self.diags.error(
                     "C0105",
@@ -945,6 +961,7 @@ impl Builder<'_, '_> {
                     key.span.clone(),
                     "use lowercase letters, digits and _",
                 );
+                self.broken_points.push(key.name.clone());
                 continue;
             }
             if crate::rules::is_reserved_word(&key.name) {
@@ -953,6 +970,7 @@ impl Builder<'_, '_> {
                         .with_label("a rule could never name it")
                         .with_note("`and`, `or`, `not`, `for`, `in`, `true`, `false` and the weekdays `mon` … `sun` are taken: pick another name"),
                 );
+                self.broken_points.push(key.name.clone());
                 continue;
             }
             if SITE_SIGNALS.iter().any(|(n, _, _)| *n == key.name) || key.name == "clock" || key.name == "weekday" {
@@ -962,6 +980,7 @@ impl Builder<'_, '_> {
                     key.span.clone(),
                     "choose another name",
                 );
+                self.broken_points.push(key.name.clone());
                 continue;
             }
             match self.point(&key.name, pnode, devices, stale_default) {
@@ -1516,16 +1535,27 @@ impl Builder<'_, '_> {
         let mut m = MapReader::new(node, &what, self.diags)?;
         m.allow(&["name", "priority"]);
         let kind_word = m.get("kind").map_or(Some("switched"), |n| {
-            values::choice(
-                n,
-                &["switched", "stepped", "proportional", "charger", "battery"],
-                "the load kind",
-                self.diags,
-            )
+            let kinds: Vec<&'static str> = KIND_KEYS.iter().map(|(k, _)| *k).collect();
+            values::choice(n, &kinds, "the load kind", self.diags)
         });
         let kind = match kind_word {
-            Some(k) => self.load_kind(k, &mut m, &what, ctx),
-            None => None,
+            Some(k) => {
+                let kind = self.load_kind(k, &mut m, &what, ctx);
+                // Reading a kind stops at its first error: the keys it did not reach are
+                // its own, not unknown ones (one mistake, one error).
+                if kind.is_none() {
+                    m.allow(kind_keys(k));
+                }
+                kind
+            }
+            // Which kind was meant cannot be known: the keys of every kind are accepted,
+            // and only a key no load has is reported.
+            None => {
+                for (_, keys) in KIND_KEYS {
+                    m.allow(keys);
+                }
+                None
+            }
         };
         let power = m
             .get("power")
@@ -1730,6 +1760,7 @@ impl Builder<'_, '_> {
         })
     }
 
+    /// Reads the keys of `kind`; those are listed in [`KIND_KEYS`] too.
     fn load_kind(&mut self, kind: &str, m: &mut MapReader<'_>, what: &str, ctx: &LoadCtx<'_>) -> Option<LoadKind> {
         match kind {
             "switched" => {
@@ -2722,6 +2753,36 @@ impl Builder<'_, '_> {
             }
         }
     }
+}
+
+/// The keys each kind of load reads (in `Builder::load_kind`), beside the keys every
+/// load has. A load whose kind fails to read, or whose `kind` is unknown, accepts them
+/// without calling them unknown: its own error says what is wrong.
+const KIND_KEYS: &[(&str, &[&str])] = &[
+    ("switched", &["rated", "switch"]),
+    ("stepped", &["stages", "switch", "stage_register"]),
+    ("proportional", &["rated", "setpoint", "min", "step", "enable"]),
+    (
+        "charger",
+        &[
+            "voltage",
+            "phases",
+            "min_current",
+            "max_current",
+            "step",
+            "setpoint",
+            "enable",
+            "below_min",
+            "soc",
+            "car_capacity",
+        ],
+    ),
+    ("battery", &["max_charge", "min_charge", "soc", "capacity", "soc_max", "soc_resume", "setpoint", "discharge"]),
+];
+
+/// The keys of one kind of load (none for a word that is no kind).
+fn kind_keys(kind: &str) -> &'static [&'static str] {
+    KIND_KEYS.iter().find(|(k, _)| *k == kind).map_or(&[], |(_, keys)| keys)
 }
 
 #[derive(Clone, Copy, PartialEq, Eq)]

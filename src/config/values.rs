@@ -343,7 +343,9 @@ pub fn name<'n>(node: &'n Node, what: &str, diags: &mut Diagnostics) -> Option<&
         diags.push(
             Diagnostic::error("C0105", format!("{what} \"{s}\" is not a usable name"), node.span.clone())
                 .with_label("use lowercase letters, digits and _")
-                .with_note("names appear in rules, so they start with a letter and contain only a-z, 0-9 and _"),
+                .with_note(
+                    "names appear in rules, so they start with a lowercase letter or _ and contain only a-z, 0-9 and _",
+                ),
         );
         None
     }

@@ -136,18 +136,22 @@ pub fn read(loaded: &Loaded) -> Result<Expectations, Vec<Diagnostic>> {
                 d.error("C0608", format!("{what} is a list"), n.span.clone(), format!("one item per line: {example}"));
             }
         }
+        // Every day that has a name, read or not: a check naming a day whose own error is
+        // already reported is no news ("no test day called" would mislead).
+        let mut day_names: Vec<String> = Vec::new();
         if let Some(Value::Seq(items)) = days.map(|n| &n.value) {
             for item in items {
-                if let Some(day) = read_day(item, &mut d)
-                    && unique(out.days.iter().map(|o| &o.name), &day.name, "test days", item, &mut d)
-                {
-                    out.days.push(day);
+                let (name, day) = read_day(item, &mut d);
+                let Some(name) = name else { continue };
+                if unique(day_names.iter(), &name, "test days", item, &mut d) {
+                    day_names.push(name);
+                    out.days.extend(day);
                 }
             }
         }
         if let Some(Value::Seq(items)) = checks.map(|n| &n.value) {
             for item in items {
-                if let Some(c) = read_check(item, &loaded.site, text, &out.days, &mut d)
+                if let Some(c) = read_check(item, &loaded.site, text, &day_names, &mut d)
                     && unique(out.checks.iter().map(|o| &o.name), &c.name, "checks", item, &mut d)
                 {
                     out.checks.push(c);
@@ -173,11 +177,15 @@ fn unique<'a>(
     true
 }
 
-fn read_day(node: &Node, d: &mut Diagnostics) -> Option<TestDay> {
-    let mut m = MapReader::new(node, "a test day", d)?;
+/// A test day's name (when it has one) and the day (when all of it reads): a day with a
+/// bad value is still named, so what refers to it does not report it missing.
+fn read_day(node: &Node, d: &mut Diagnostics) -> (Option<String>, Option<TestDay>) {
+    let Some(mut m) = MapReader::new(node, "a test day", d) else { return (None, None) };
     let name = m.require("name", d).and_then(|n| values::text(n, "the day's name", d)).map(str::to_owned);
     let date = m.require("date", d).and_then(|n| {
-        let t = n.scalar_text()?;
+        // An empty date, or a list, is reported like any value of the wrong shape: a day
+        // without its date is not run, and must not vanish in silence.
+        let t = values::word(n, "the day's date", d)?;
         let parsed = NaiveDate::parse_from_str(&t, "%Y-%m-%d").ok();
         if parsed.is_none() {
             d.error("C0601", "`date` must be YYYY-MM-DD", n.span.clone(), "e.g. 2026-06-21");
@@ -197,7 +205,11 @@ fn read_day(node: &Node, d: &mut Diagnostics) -> Option<TestDay> {
     };
     let seed = m.get("seed").map_or(Some(1), |n| values::integer(n, 0, i64::MAX, "the seed", d).map(|s| s as u64));
     m.finish(d);
-    Some(TestDay { name: name?, date: date?, sky: sky?, seed: seed? })
+    let day = match (&name, date, sky, seed) {
+        (Some(name), Some(date), Some(sky), Some(seed)) => Some(TestDay { name: name.clone(), date, sky, seed }),
+        _ => None,
+    };
+    (name, day)
 }
 
 fn rule(node: &Node, site: &Site, text: &str, d: &mut Diagnostics) -> Option<Rule> {
@@ -233,7 +245,8 @@ fn litres(node: &Node, d: &mut Diagnostics) -> Option<f64> {
     }
 }
 
-fn read_check(node: &Node, site: &Site, text: &str, days: &[TestDay], d: &mut Diagnostics) -> Option<Check> {
+/// `days` are the names of every test day, those with an error of their own included.
+fn read_check(node: &Node, site: &Site, text: &str, days: &[String], d: &mut Diagnostics) -> Option<Check> {
     let mut m = MapReader::new(node, "a check", d)?;
     let name = m.require("name", d).and_then(|n| values::text(n, "the check's name", d)).map(str::to_owned);
     let always = m.get("always");
@@ -349,7 +362,7 @@ fn read_check(node: &Node, site: &Site, text: &str, days: &[TestDay], d: &mut Di
             Value::Seq(items) => {
                 for i in items {
                     let Some(t) = values::text(i, "a day's name", d) else { continue };
-                    if !days.iter().any(|day| day.name == t) {
+                    if !days.iter().any(|day| day == t) {
                         d.error(
                             "C0606",
                             format!("no test day called \"{t}\""),
