@@ -35,6 +35,14 @@ async fn the_replay_log_holds_the_household_without_its_managed_loads_and_replay
     })
     .await;
     tokio::time::sleep(Duration::from_secs(180)).await;
+    // The status page shows the log at work (the writer thread runs on real time: give
+    // it a moment for the rows just handed over).
+    std::thread::sleep(Duration::from_millis(200));
+    tokio::time::sleep(Duration::from_secs(1)).await;
+    let shown = daemon.status().borrow().replay_log.clone().expect("the status shows the replay log");
+    assert_eq!(shown.file, path.display().to_string());
+    assert!(shown.rows_written >= 9, "{shown:?}");
+    assert_eq!((shown.rows_waiting, shown.error.as_deref()), (0, None));
     daemon.shutdown();
     let summary = daemon.wait().await;
 

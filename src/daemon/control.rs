@@ -298,6 +298,8 @@ impl Control {
             let curtailed = d.limit_reason != LimitReason::None;
             log.sample(d.now, doc.pv_w, doc.house_w, available, curtailed);
         }
+        let mut doc = doc;
+        doc.replay_log = self.replay_log.as_ref().map(ReplayLog::status);
         self.status.send_replace(Arc::new(doc));
     }
 
@@ -509,7 +511,9 @@ impl Control {
             self.recent.as_slices().0,
             &self.totals,
         ));
-        self.status.send_replace(Arc::new(with_safe(doc, &safe, &self.site)));
+        let mut doc = with_safe(doc, &safe, &self.site);
+        doc.replay_log = self.replay_log.as_ref().map(ReplayLog::status);
+        self.status.send_replace(Arc::new(doc));
         match self.persist().await {
             Some(true) => info!(saves = self.summary.saves, "counters saved: stopping the links"),
             Some(false) => error!(

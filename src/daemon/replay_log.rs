@@ -26,7 +26,8 @@ use std::collections::VecDeque;
 use std::fs::{File, OpenOptions};
 use std::io::{self, Read, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
-use std::sync::mpsc;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::{Arc, Mutex, mpsc};
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
@@ -34,6 +35,7 @@ use chrono::{DateTime, SecondsFormat};
 use tracing::{error, info, warn};
 
 use crate::config::model::{Connection, Site};
+use crate::status::ReplayLogStatus;
 use crate::units::{Timestamp, format_duration};
 
 /// How often a row is written unless `--replay-log-every` says otherwise.
@@ -155,6 +157,23 @@ pub struct Written {
     pub curtailed: u64,
 }
 
+/// What the writer thread shows the control task while it runs (for the status page).
+#[derive(Debug, Default)]
+struct Progress {
+    rows_written: AtomicU64,
+    rows_waiting: AtomicU64,
+    /// The last write's error while writing fails.
+    error: Mutex<Option<String>>,
+}
+
+impl Progress {
+    fn set_error(&self, error: Option<String>) {
+        if let Ok(mut e) = self.error.lock() {
+            *e = error;
+        }
+    }
+}
+
 /// One interval's sums.
 #[derive(Debug, Clone, Copy)]
 struct Bucket {
@@ -178,6 +197,8 @@ pub(crate) struct ReplayLog {
     curtailed: u64,
     rows: Option<mpsc::Sender<String>>,
     writer: Option<JoinHandle<Written>>,
+    file: String,
+    progress: Arc<Progress>,
 }
 
 impl ReplayLog {
@@ -187,9 +208,11 @@ impl ReplayLog {
         let (tx, rx) = mpsc::channel::<String>();
         let path = options.path.clone();
         let head = header(site);
+        let progress = Arc::new(Progress::default());
+        let shown = Arc::clone(&progress);
         let writer = std::thread::Builder::new()
             .name("replay-log".to_owned())
-            .spawn(move || write_rows(&path, &rx, MAX_PENDING, |rows| append(&path, head, rows)))
+            .spawn(move || write_rows(&path, &rx, MAX_PENDING, &shown, |rows| append(&path, head, rows)))
             .map_err(|source| ReplayLogError::File { path: options.path.clone(), source })?;
         if site.roles.pv_available.is_none() && site.inverter.is_some() {
             warn!(
@@ -205,7 +228,19 @@ impl ReplayLog {
             curtailed: 0,
             rows: Some(tx),
             writer: Some(writer),
+            file: options.path.display().to_string(),
+            progress,
         })
+    }
+
+    /// How the writing goes, for the status document.
+    pub(crate) fn status(&self) -> ReplayLogStatus {
+        ReplayLogStatus {
+            file: self.file.clone(),
+            rows_written: self.progress.rows_written.load(Ordering::Relaxed),
+            rows_waiting: self.progress.rows_waiting.load(Ordering::Relaxed),
+            error: self.progress.error.lock().ok().and_then(|e| e.clone()),
+        }
     }
 
     /// One tick: the PV and household power (`None` when unknown), what the array could
@@ -301,6 +336,7 @@ fn write_rows(
     path: &Path,
     rows: &mpsc::Receiver<String>,
     max_pending: usize,
+    progress: &Progress,
     mut append: impl FnMut(&VecDeque<String>) -> io::Result<()>,
 ) -> Written {
     let mut pending: VecDeque<String> = VecDeque::new();
@@ -312,17 +348,24 @@ fn write_rows(
             written.rows += n;
             if failing.take().is_some() {
                 written.late += n - 1;
+                progress.set_error(None);
                 info!(file = %path.display(), rows = n, "replay log: writing again; the rows kept meanwhile are written");
             }
             pending.clear();
+            progress.rows_written.store(written.rows, Ordering::Relaxed);
+            progress.rows_waiting.store(0, Ordering::Relaxed);
         }
         Err(e) => match &mut failing {
             None => {
                 failing = Some((Instant::now(), 1));
+                progress.set_error(Some(e.to_string()));
+                progress.rows_waiting.store(pending.len() as u64, Ordering::Relaxed);
                 warn!(file = %path.display(), error = %e, "replay log: cannot write; rows are kept (up to a week of them) and tried again with the next");
             }
             Some((since, failures)) => {
                 *failures += 1;
+                progress.set_error(Some(e.to_string()));
+                progress.rows_waiting.store(pending.len() as u64, Ordering::Relaxed);
                 if since.elapsed() >= REPEAT_WARNING {
                     *since = Instant::now();
                     warn!(file = %path.display(), error = %e, waiting = pending.len(), "replay log: still cannot write");
@@ -504,7 +547,8 @@ points:
         // The disk fails for the first four attempts; at most four rows wait.
         let mut calls = 0;
         let mut file: Vec<String> = Vec::new();
-        let written = write_rows(Path::new("test.csv"), &rx, 4, |rows| {
+        let progress = Progress::default();
+        let written = write_rows(Path::new("test.csv"), &rx, 4, &progress, |rows| {
             calls += 1;
             if calls <= 4 {
                 return Err(io::Error::other("disk full"));
@@ -516,6 +560,9 @@ points:
         // four are written, three of them late; row 5 goes in on its own.
         assert_eq!(file, ["row 1", "row 2", "row 3", "row 4", "row 5"]);
         assert_eq!(written, Written { rows: 5, late: 3, dropped: 1, unwritten: 0, curtailed: 0 });
+        assert_eq!(progress.rows_written.load(Ordering::Relaxed), 5);
+        assert_eq!(progress.rows_waiting.load(Ordering::Relaxed), 0);
+        assert_eq!(*progress.error.lock().unwrap(), None, "writing works again");
     }
 
     #[test]
@@ -523,7 +570,10 @@ points:
         let (tx, rx) = mpsc::channel();
         tx.send("row".to_owned()).unwrap();
         drop(tx);
-        let written = write_rows(Path::new("test.csv"), &rx, 4, |_| Err(io::Error::other("disk full")));
+        let progress = Progress::default();
+        let written = write_rows(Path::new("test.csv"), &rx, 4, &progress, |_| Err(io::Error::other("disk full")));
         assert_eq!(written, Written { rows: 0, late: 0, dropped: 0, unwritten: 1, curtailed: 0 });
+        assert_eq!(progress.rows_waiting.load(Ordering::Relaxed), 1);
+        assert_eq!(progress.error.lock().unwrap().as_deref(), Some("disk full"));
     }
 }

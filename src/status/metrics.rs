@@ -193,6 +193,18 @@ fn site(r: &mut Registry, s: &Status) {
         counter(t.failsafe_entries as f64),
     );
     r.register("ticks", "engine ticks since start", counter(t.ticks as f64));
+    if let Some(log) = &s.replay_log {
+        r.register(
+            "replay_log_rows_written",
+            "rows appended to the replay log since start",
+            counter(log.rows_written as f64),
+        );
+        r.register(
+            "replay_log_rows_waiting",
+            "replay-log rows kept in memory because the file cannot be written (0 while it can)",
+            gauge(log.rows_waiting as f64),
+        );
+    }
 }
 
 fn loads(r: &mut Registry, s: &Status) {
@@ -286,6 +298,19 @@ mod tests {
         assert!(!text.contains("spillway_grid_watts{"), "unknown grid power is left out:\n{text}");
         assert!(text.contains("spillway_surplus_watts{"), "{text}");
         assert!(text.ends_with("# EOF\n"));
+        assert!(!text.contains("replay_log"), "no replay log, no replay-log metrics:\n{text}");
+        let logging = Status {
+            replay_log: Some(super::super::ReplayLogStatus {
+                file: "site.csv".to_owned(),
+                rows_written: 12,
+                rows_waiting: 3,
+                error: Some("disk full".to_owned()),
+            }),
+            ..status.clone()
+        };
+        let text = render(&logging).unwrap();
+        assert!(text.contains("spillway_replay_log_rows_written_total{site=") && text.contains("} 12"), "{text}");
+        assert!(text.contains("spillway_replay_log_rows_waiting{site="), "{text}");
         for line in text.lines() {
             assert!(line.starts_with('#') || line.starts_with("spillway_"), "{line}");
         }

@@ -59,6 +59,21 @@ pub struct Status {
     pub recent: Vec<RecentEvent>,
     /// Counters since the daemon started.
     pub totals: Totals,
+    /// The replay log (`run --replay-log`), when one is kept.
+    pub replay_log: Option<ReplayLogStatus>,
+}
+
+/// How the replay log is doing.
+#[derive(Debug, Clone, Default, PartialEq, Serialize)]
+pub struct ReplayLogStatus {
+    /// The CSV file.
+    pub file: String,
+    /// Rows appended since the daemon started.
+    pub rows_written: u64,
+    /// Rows waiting in memory because the file cannot be written (0 while it can).
+    pub rows_waiting: u64,
+    /// Why the last write failed, while writing fails; `null` while it works.
+    pub error: Option<String>,
 }
 
 /// Counters since the daemon started (from zero at every start): what `/metrics`
@@ -339,6 +354,7 @@ pub fn build(
         }),
         recent: recent.to_vec(),
         totals: Totals { load_switchings: Vec::new(), ..totals.clone() },
+        replay_log: None,
     }
 }
 
