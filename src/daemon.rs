@@ -152,6 +152,9 @@ impl Daemon {
             restore(&mut engine, path, &options.clock)?;
             state_file::write_at_start(path, &site.name, &engine.persisted(), options.clock.now())?;
         }
+        // The inverter may sit at its safe limit (a stop, a fail-safe or a reversion left
+        // it there): the limit is given back from it gently, never in one write.
+        engine.start_from_safe_limit();
         let replay_log = options.replay_log.as_ref().map(|o| ReplayLog::start(&site, o)).transpose()?;
         let http = match options.http {
             Some(addr) => {

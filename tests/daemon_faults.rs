@@ -46,6 +46,8 @@ async fn a_silent_meter_sends_the_loads_to_safe_states_and_curtails_within_the_t
     assert_eq!(load(&s, "water_heater").reason, "failsafe");
     assert_eq!(s.inverter.as_ref().unwrap().reason, "failsafe");
     assert_eq!(s.devices[0].up, Some(false), "the meter is reported down");
+    // A meter lost after it answered is a lost signal, not a wait for the first readings.
+    assert!(!s.recent.iter().any(|e| e.text.starts_with("still in fail-safe since start")), "{:?}", s.recent);
 
     // The meter answers again: the daemon resumes, calmly.
     let before = daemon.status().borrow().recent.len();

@@ -91,6 +91,9 @@ pub(super) struct Control {
     /// its guard signals' first fresh readings (silent otherwise: it starts in fail-safe).
     first_tick: Option<crate::units::Timestamp>,
     start_wait_warned: bool,
+    /// Whether the site has had its guard signals at least once since start: a later
+    /// fail-safe is a lost signal, logged as such, not a wait for the first readings.
+    ever_fresh: bool,
     recent: VecDeque<RecentEvent>,
     summary: Summary,
     /// Counters since start, for the status document and `/metrics`.
@@ -129,6 +132,7 @@ impl Control {
             was_normal: false,
             first_tick: None,
             start_wait_warned: false,
+            ever_fresh: false,
             recent: VecDeque::with_capacity(RECENT),
             summary: Summary::default(),
             totals: Totals { load_switchings: vec![0; site.loads.len()], ..Totals::default() },
@@ -250,8 +254,9 @@ impl Control {
             self.totals.failsafe_entries += 1;
         }
         let first = *self.first_tick.get_or_insert(d.now);
+        self.ever_fresh |= d.mode != Mode::Failsafe;
         if d.mode == Mode::Failsafe
-            && !self.was_normal
+            && !self.ever_fresh
             && !self.start_wait_warned
             && d.now.0 - first.0 >= START_WAIT_WARN_MS
         {

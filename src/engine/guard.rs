@@ -75,6 +75,12 @@ const RELEASE_WINDOW_MAX: Duration = Duration::from_secs(5);
 const PV_HISTORY_MAX: Duration = Duration::from_secs(10 * 60);
 
 impl Guard {
+    /// Takes `limit` as the limit in force, before any tick (see
+    /// [`super::Engine::start_from_safe_limit`]).
+    pub fn assume(&mut self, limit: Power) {
+        self.limit = Some(limit);
+    }
+
     /// Whether a limit is in force.
     pub fn curtailing(&self) -> bool {
         self.limit.is_some()

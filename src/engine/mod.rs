@@ -446,6 +446,21 @@ impl Engine {
         }
     }
 
+    /// Starts the export guard from the inverter's safe limit instead of from "no
+    /// limit". A live inverter's limit is not known at start, and a stop, a fail-safe or
+    /// a SunSpec model 704 reversion leaves it at its safe limit: a limit the engine took
+    /// for absent would be given back in one write, and a no-export site would export
+    /// until the guard cut again (2–5 s, measured against `spillway-sim serve` on most
+    /// restarts, whenever the first readings came before the first tick). From the safe
+    /// limit it is given back gently, as after a fail-safe. The daemon calls this before
+    /// its first tick; offline runs start with the plant's inverter unlimited and do not.
+    /// Nothing changes on a site without an inverter limit or an export limit.
+    pub fn start_from_safe_limit(&mut self) {
+        if let (Some(inv), Some(_)) = (&self.site.inverter, self.site.export_limit()) {
+            self.guard.assume(inv.safe_limit);
+        }
+    }
+
     /// One tick: decide every load and the inverter limit for `now`.
     pub fn step(&mut self, now: Timestamp, snapshot: &Snapshot) -> &Decisions {
         let dt = match self.last_now {

@@ -1853,6 +1853,55 @@ fn a_reading_under_a_passing_cloud_does_not_hold_the_loads_back_afterwards() {
     assert_eq!(h.command("tank"), Command::On);
 }
 
+// ---------------------------------------------------------------- a restart
+
+/// A restart with the inverter at its safe limit (0 W, where the last stop left it) and
+/// the first readings in before the first tick: the engine must not take the limit for
+/// absent, or its first write gives the whole array back at once and a no-export site
+/// exports until the guard cuts again (2–5 s, seen against `spillway-sim serve`).
+/// Started from the safe limit, it gives the limit back gently; loads that do not want
+/// the surplus leave the inverter curtailed, and the meter never shows export.
+fn restart_run(from_safe_limit: bool) -> (Option<Power>, usize) {
+    let quiet = r#"
+  - name: tank
+    rated: 3kW
+    switch: { device: relays, coil: 0 }
+    start: surplus > 9kW for 20s
+"#;
+    let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", quiet));
+    if from_safe_limit {
+        h.engine.start_from_safe_limit();
+    }
+    let (mut device_limit, mut export_ticks, mut first) = (Some(0.0_f64), 0, None);
+    for i in 0..120 {
+        // The plant: 4.5 kW of sun, a 500 W house, an inverter that follows its limit
+        // at once (a limit of "none" is the whole array).
+        let pv = device_limit.map_or(4500.0, |l| l.min(4500.0));
+        let grid = 500.0 - pv;
+        h.set("pv", pv);
+        h.set("grid", grid);
+        let d = h.tick();
+        if i == 0 {
+            first = Some(d.inverter_limit);
+        }
+        device_limit = d.inverter_limit.map(|p| p.0);
+        export_ticks += usize::from(grid < -50.0);
+    }
+    (first.flatten(), export_ticks)
+}
+
+#[test]
+fn a_restart_gives_the_inverter_back_gently_from_its_safe_limit() {
+    // The hazard, as it was: no limit on the first tick, and export follows.
+    let (first, export) = restart_run(false);
+    assert_eq!(first, None);
+    assert!(export >= 1, "{export}");
+    // Started from the safe limit: held on the first tick, never any export.
+    let (first, export) = restart_run(true);
+    assert_eq!(first, Some(Power(0.0)));
+    assert_eq!(export, 0, "ticks with export above 50 W");
+}
+
 // ---------------------------------------------------------------- the wall clock stepping
 
 /// A controller on a board without a real-time clock starts on a guessed time and sees
