@@ -65,6 +65,22 @@ async fn read_prints_every_point_raw_and_decoded_and_names_the_failures() {
     let text = std::fs::read_to_string(&record).unwrap();
     assert!(text.starts_with("# Commissioning record: Bench") && text.contains("## Readings ("), "{text}");
     assert!(text.contains("-5.2 °C") && text.contains("- result: **PASS**"), "{text}");
+    assert!(!out.contains("sign looks reversed"), "export with the sun out is no sign of anything: {out}");
+
+    // At night (no PV) a meter read the wrong way round shows the house's import as
+    // export: a note says so, without failing the read.
+    plant.set_pv(0.0);
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    let right = std::fs::read_to_string(&path).unwrap();
+    let grid = "grid: { device: meter, register: 0, type: i16, unit: W }";
+    assert!(right.contains(grid), "{right}");
+    std::fs::write(&path, right.replace(grid, "grid: { device: meter, register: 0, type: i16, unit: W, scale: -1 }"))
+        .unwrap();
+    let (code, out, err) = spillway(&["read", &site]).await;
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert!(out.contains("note: the grid reads -400 W (export) while the PV gives 0 W"), "{out}");
+    assert!(out.contains("the meter's sign looks reversed"), "{out}");
+    std::fs::write(&path, right).unwrap();
 
     // One device: only its points. A refused register: named with its exception.
     plant.devices.with(|s| {
@@ -115,6 +131,21 @@ async fn step_test_switches_the_load_measures_the_step_and_switches_it_off() {
     println!("{out}");
     assert_eq!(code, 1, "{out}");
     assert!(out.contains("step +1100 W against 3 kW rated: check that relays coil 1 feeds water_heater"), "{out}");
+
+    // A meter read the wrong way round (export positive): the step goes the other way,
+    // and the message names the sign, not the wiring.
+    let right = std::fs::read_to_string(&path).unwrap().replace("coil: 1 }", "coil: 0 }");
+    let grid = "grid: { device: meter, register: 0, type: i16, unit: W }";
+    assert!(right.contains(grid), "{right}");
+    std::fs::write(&path, right.replace(grid, "grid: { device: meter, register: 0, type: i16, unit: W, scale: -1 }"))
+        .unwrap();
+    let (code, out, _) =
+        spillway(&["step-test", &site, "--load", "water_heater", "--hold", "3s", "--settle", "2s", "--yes"]).await;
+    println!("{out}");
+    assert_eq!(code, 1, "{out}");
+    assert!(out.contains("step -3000 W against 3 kW rated: the grid reading fell"), "{out}");
+    assert!(out.contains("the meter's sign looks reversed") && out.contains("`scale: -1`"), "{out}");
+    std::fs::write(&path, std::fs::read_to_string(&path).unwrap().replace(", scale: -1 }", " }")).unwrap();
 
     // Without --yes and no terminal to ask on, nothing is switched.
     let (code, _, err) = spillway(&["step-test", &site, "--load", "water_heater"]).await;

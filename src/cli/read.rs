@@ -9,7 +9,7 @@ use std::time::Duration;
 use spillway::actuators::modbus::limit_model_note;
 use spillway::config::model::{DeviceId, PointId, Site, Write};
 use spillway::daemon::commission;
-use spillway::units::trim_number;
+use spillway::units::{Power, trim_number};
 
 use super::logging::{self, LogFormat};
 
@@ -131,7 +131,7 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
             }
         }
     }
-    if let Some(m) = mqtt {
+    if let Some(m) = &mqtt {
         let _ = writeln!(out, "mqtt (listened {})", spillway::units::format_duration(args.listen));
         if let Some(e) = &m.error {
             problems += 1;
@@ -155,6 +155,33 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         for (topic, detail) in &m.malformed {
             let _ = writeln!(out, "  malformed on {topic}: {detail}");
         }
+    }
+    // Export while the PV gives nothing is what a meter read the wrong way round shows
+    // (import must be positive); a battery could also do it, so it is a note, not a
+    // problem.
+    let mut read: Vec<(PointId, f64)> = Vec::new();
+    for d in &devices {
+        if let Ok(probe) = &d.result {
+            read.extend(probe.points.iter().filter_map(|r| r.value.as_ref().ok().map(|v| (r.point, *v))));
+        }
+    }
+    if let Some(m) = &mqtt {
+        read.extend(m.samples.iter().filter_map(|(p, v)| v.map(|v| (*p, v))));
+    }
+    let role = |id: Option<PointId>| id.and_then(|id| read.iter().find(|(p, _)| *p == id).map(|(_, v)| *v));
+    let battery = site.roles.battery_power.is_some()
+        || site.loads.iter().any(|l| matches!(l.kind, spillway::config::model::LoadKind::Battery { .. }));
+    if let (Some(grid), Some(pv)) = (role(site.roles.grid), role(site.roles.pv))
+        && grid < -100.0
+        && pv < 50.0
+        && !battery
+    {
+        let _ = writeln!(
+            out,
+            "note: the grid reads {} (export) while the PV gives {}: with nothing else to export, the meter's sign looks reversed (import must be positive; `scale: -1` on the `grid` point turns it round). `spillway step-test` tells for sure",
+            Power(grid.round()),
+            Power(pv.round())
+        );
     }
     print!("{out}");
     if let Some(path) = &args.record {

@@ -209,6 +209,15 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
             );
             false
         }
+        Some(step) if r.reversed() => {
+            let _ = writeln!(
+                text,
+                "step {:+.0} W against {} rated: the grid reading fell by about the load's power as it came on, so the meter's sign looks reversed (Spillway takes import as positive). If the meter counts export as positive, add `scale: -1` to the `grid` point (or set the meter so), check with `spillway read` that the grid shows import while the PV gives nothing, and run this test again. Do not run the site until it passes: with the sign reversed the guard takes export for import",
+                step,
+                Power(r.rated)
+            );
+            false
+        }
         Some(step) => {
             let _ = writeln!(
                 text,
