@@ -156,6 +156,7 @@ impl Comparison {
         let width = self.rows.iter().map(|r| r.label.chars().count()).max().unwrap_or(10).max(10);
         let _ = writeln!(o, "A = {}\nB = {}\n", self.a, self.b);
         let _ = writeln!(o, "{:<width$}  {:>14}  {:>14}", "", "A", "B");
+        let (mut wins_a, mut wins_b) = (0, 0);
         for r in &self.rows {
             // One number of decimals and one unit per row, so the two sides line up and
             // read alike: watts and times whole (a tenth of a watt is noise), a response
@@ -173,15 +174,19 @@ impl Comparison {
                 let text = format!("{:.decimals$}", v * scale);
                 if unit.is_empty() { text } else { format!("{text} {unit}") }
             };
-            let (ma, mb) = match r.better {
+            // Two values that print alike are not told apart here (2.797 and 2.799 kWh
+            // both read 2.80): a mark between them would point at nothing a reader can
+            // see. The JSON keeps the comparison of the values themselves.
+            let better = if fmt(r.a) == fmt(r.b) { Better::Same } else { r.better };
+            let (ma, mb) = match better {
                 Better::A => ("◀", " "),
                 Better::B => (" ", "◀"),
                 Better::Same => (" ", " "),
             };
+            wins_a += usize::from(better == Better::A);
+            wins_b += usize::from(better == Better::B);
             let _ = writeln!(o, "{:<width$}  {:>14}{ma} {:>14}{mb}", r.label, fmt(r.a), fmt(r.b));
         }
-        let wins_a = self.rows.iter().filter(|r| r.better == Better::A).count();
-        let wins_b = self.rows.iter().filter(|r| r.better == Better::B).count();
         let _ = writeln!(o, "\nbetter in {wins_a} row(s) for A, {wins_b} for B (◀ marks the better value)");
         o
     }
@@ -215,6 +220,28 @@ mod tests {
         assert!(text.contains("2894 W") && text.contains("1723 W"), "watts whole: {text}");
         assert!(text.contains("1654.0 s") && text.contains("543.0 s"), "minutes of response in seconds: {text}");
         assert!(text.contains(" 4◀") && text.contains(" 6 "), "{text}");
+    }
+
+    #[test]
+    fn values_that_print_alike_get_no_mark_in_the_text() {
+        let c = Comparison {
+            a: "a.yaml".into(),
+            b: "b.yaml".into(),
+            rows: vec![
+                row("import", "kWh", 2.797, 2.799, Goal::Lower),
+                row("export peak", "W", 1200.2, 1199.9, Goal::Lower),
+                row("cost", "€", 1.21, 1.20, Goal::Lower),
+            ],
+        };
+        let text = c.to_text();
+        let line = |label: &str| text.lines().find(|l| l.starts_with(label)).unwrap().to_owned();
+        assert!(line("import").contains("2.80 kWh") && !line("import").contains('◀'), "{text}");
+        assert!(!line("export peak").contains('◀'), "{text}");
+        assert!(line("cost").ends_with("1.20 €◀"), "{text}");
+        assert!(text.contains("better in 0 row(s) for A, 1 for B"), "{text}");
+        // The JSON compares the values themselves.
+        let json: serde_json::Value = serde_json::from_str(&c.to_json()).unwrap();
+        assert_eq!(json["rows"][0]["better"], "a", "{json}");
     }
 
     #[test]
