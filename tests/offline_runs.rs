@@ -702,6 +702,13 @@ fn simulation_bind_mistakes_are_refused_with_the_remedy() {
         let err = offline::checked_plant(&loaded).expect_err(bind).to_string();
         assert!(err.contains(expected), "{bind}: {err}");
     }
+    // A mistyped unit id shows here first (the simulated plant answers only at its
+    // own): the error says which units it serves.
+    let meter = "meter:    { modbus_tcp: 127.0.0.1:5020, unit: 1, sunspec: true }";
+    assert!(text.contains(meter));
+    let loaded = config::load_str("site.yaml", &text.replace(meter, &meter.replace("unit: 1", "unit: 7"))).unwrap();
+    let err = offline::checked_plant(&loaded).expect_err("unit 7").to_string();
+    assert!(err.contains("(it serves SunSpec on units 1 and 2): check the device's `unit`"), "{err}");
     // `sim/` in front of a name is tolerated.
     let ok = with("    loads: { water_heater: sim/relay/tank }\n");
     let loaded = config::load_str("site.yaml", &ok).unwrap();

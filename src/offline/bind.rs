@@ -102,6 +102,20 @@ fn discover(bus: &Bus, unit: u8) -> Option<ModelMap> {
     Some(ModelMap { base, models })
 }
 
+/// Why a SunSpec point or limit on `unit` cannot be bound, with the units that do have
+/// a map: a mistyped `unit` in a site file shows here first.
+fn no_sunspec_map(bus: &Bus, unit: u8) -> String {
+    let units: Vec<String> = (1..=32).filter(|u| discover(bus, *u).is_some()).map(|u| u.to_string()).collect();
+    let serves = match units.as_slice() {
+        [] => "no unit".to_owned(),
+        [one] => format!("unit {one}"),
+        [rest @ .., last] => format!("units {} and {last}", rest.join(", ")),
+    };
+    format!(
+        "unit {unit} has no SunSpec map in the simulated plant (it serves SunSpec on {serves}): check the device's `unit`"
+    )
+}
+
 impl Binding {
     /// Binds every point and actuator of `site` to `plant` (those `bind` names by the
     /// simulator's names, the rest by address), or says which one cannot be.
@@ -150,8 +164,7 @@ impl Binding {
                     (PointRead::SunSpec(s), link) => {
                         let unit =
                             link.modbus_unit().ok_or_else(|| fail("a SunSpec point on a non-Modbus device".into()))?;
-                        let map = map_of(unit)
-                            .ok_or_else(|| fail(format!("unit {unit} has no SunSpec map in the simulated plant")))?;
+                        let map = map_of(unit).ok_or_else(|| fail(no_sunspec_map(bus, unit)))?;
                         let r = map.resolve(s.model, &s.point).map_err(fail)?;
                         let probe = bus.probe(unit, BusTable::HoldingRegisters, r.address).ok_or_else(|| {
                             fail(format!("the simulated plant does not report SunSpec {}.{}", s.model, s.point))
@@ -216,7 +229,7 @@ impl Binding {
                     })?;
                     let map = map_of(unit).ok_or_else(|| OfflineError::Binding {
                         point: "inverter limit".into(),
-                        why: format!("unit {unit} has no SunSpec map in the simulated plant"),
+                        why: no_sunspec_map(bus, unit),
                     })?;
                     let (control, sf_at) = LimitControl::locate(&map).ok_or_else(|| OfflineError::Binding {
                         point: "inverter limit".into(),
