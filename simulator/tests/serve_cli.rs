@@ -44,6 +44,49 @@ async fn serves_a_site_file_until_terminated() {
     assert_eq!(rest.last().map(String::as_str), Some("spillway-sim: stopped (terminated)"), "{rest:?}");
 }
 
+/// A fault typed at the terminal starts at once: the meter goes silent for the fail-safe
+/// test the installer is running against the simulator; a typo is answered, not fatal.
+#[tokio::test]
+async fn a_fault_typed_on_standard_input_starts_at_once() {
+    use std::io::Write as _;
+    use tokio_modbus::client::Reader as _;
+    let mut child = sim()
+        .args(["serve", "--site", &site("zero-export-house.yaml"), "--modbus", "127.0.0.1:0"])
+        .args(["--start", "2026-06-21T12:00:00", "--status-every", "0"])
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let mut out = BufReader::new(child.stdout.take().unwrap());
+    let mut first = String::new();
+    out.read_line(&mut first).unwrap();
+    let addr = first.split_whitespace().nth(4).unwrap_or_default().to_owned();
+    let mut meter = connect(addr.parse().unwrap(), METER_UNIT).await;
+    assert_eq!(holding(&mut meter, SUNSPEC_BASE, 2).await, SUNSPEC_BASE_MARKER);
+
+    let mut stdin = child.stdin.take().unwrap();
+    writeln!(stdin, "relay-stuck:sauna").unwrap();
+    writeln!(stdin, "meter-silent+10min").unwrap();
+    let mut said = Vec::new();
+    for _ in 0..2 {
+        let mut line = String::new();
+        out.read_line(&mut line).unwrap();
+        said.push(line.trim_end().to_owned());
+    }
+    assert!(said[0].contains("no relay channel \"sauna\""), "{said:?}");
+    assert_eq!(said[1], "spillway-sim: fault injected now: meter-silent+10min", "{said:?}");
+    let answer =
+        tokio::time::timeout(std::time::Duration::from_millis(1500), meter.read_holding_registers(SUNSPEC_BASE, 2))
+            .await;
+    assert!(!matches!(answer, Ok(Ok(Ok(_)))), "the silent meter answered: {answer:?}");
+
+    drop(stdin);
+    let killed = Command::new("kill").args(["-TERM", &child.id().to_string()]).status().unwrap();
+    assert!(killed.success());
+    assert!(child.wait().unwrap().success());
+}
+
 #[test]
 fn stops_by_itself_after_the_run_time() {
     let out = sim()

@@ -1,6 +1,7 @@
 //! `spillway-sim serve`: a plant served live over Modbus TCP (and MQTT) until Ctrl-C,
 //! with a status line every few seconds.
 
+use std::io::IsTerminal as _;
 use std::net::SocketAddr;
 use std::path::PathBuf;
 use std::time::Duration;
@@ -198,6 +199,12 @@ async fn serve_until_stopped(plant: Plant, mut options: ServeOptions, args: &Arg
     for spec in &args.faults {
         println!("spillway-sim: fault scheduled: {spec}");
     }
+    // Faults typed at the terminal, one spec a line, start when typed: what a person
+    // running a fail-safe test against the simulator needs ("disconnect the meter now").
+    let mut typed = typed_faults();
+    if std::io::stdin().is_terminal() {
+        println!("spillway-sim: type a fault and Enter to inject it now (e.g. meter-silent+30s)");
+    }
     let every = (args.status_every > 0.0).then(|| Duration::from_secs_f64(args.status_every));
     let mut ticker = tokio::time::interval(every.unwrap_or(Duration::from_secs(3600)));
     ticker.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Skip);
@@ -208,12 +215,34 @@ async fn serve_until_stopped(plant: Plant, mut options: ServeOptions, args: &Arg
             why = signals.recv() => break why,
             () = wait_until(&handle, until) => break "the --run-for time is up",
             _ = ticker.tick() => if every.is_some() { println!("{}", status(&handle, tz)) },
+            Some(spec) = typed.recv() => match handle.inject_spec(&spec) {
+                Ok(()) => println!("spillway-sim: fault injected now: {spec}"),
+                Err(e) => println!("spillway-sim: {e}"),
+            },
         }
     };
     println!("{}", status(&handle, tz));
     handle.stop().await;
     println!("spillway-sim: stopped ({reason})");
     Ok(())
+}
+
+/// Lines typed on standard input, trimmed and not empty. Read on a thread of its own,
+/// left to end with the process: tokio's own stdin read cannot be cancelled and would
+/// hold the runtime's shutdown until Enter was pressed. The channel closes at the end
+/// of input (a pipe, `/dev/null`), and the loop then stops listening to it.
+fn typed_faults() -> tokio::sync::mpsc::UnboundedReceiver<String> {
+    let (tx, rx) = tokio::sync::mpsc::unbounded_channel();
+    let _ = std::thread::Builder::new().name("typed-faults".to_owned()).spawn(move || {
+        for line in std::io::stdin().lines() {
+            let Ok(line) = line else { break };
+            let spec = line.trim();
+            if !spec.is_empty() && tx.send(spec.to_owned()).is_err() {
+                break;
+            }
+        }
+    });
+    rx
 }
 
 async fn wait_until(handle: &ServerHandle, until: Option<i64>) {
