@@ -147,6 +147,17 @@ async fn step_test_switches_the_load_measures_the_step_and_switches_it_off() {
     assert!(out.contains("the meter's sign looks reversed") && out.contains("`scale: -1`"), "{out}");
     std::fs::write(&path, std::fs::read_to_string(&path).unwrap().replace(", scale: -1 }", " }")).unwrap();
 
+    // In the sun, with no controller to hold the limit, the site exports around the
+    // test: it passes, and says so.
+    plant.set_pv(4500.0);
+    tokio::time::sleep(Duration::from_millis(300)).await;
+    let (code, out, _) =
+        spillway(&["step-test", &site, "--load", "water_heater", "--hold", "3s", "--settle", "2s", "--yes"]).await;
+    println!("{out}");
+    assert_eq!(code, 0, "{out}");
+    assert!(out.contains("note: the site exported up to 4.1 kW around the test (export limit 0 W)"), "{out}");
+    plant.set_pv(0.0);
+
     // Without --yes and no terminal to ask on, nothing is switched.
     let (code, _, err) = spillway(&["step-test", &site, "--load", "water_heater"]).await;
     assert_eq!(code, 1);

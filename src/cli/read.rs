@@ -111,6 +111,7 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
                 if probe.points.is_empty() {
                     let _ = writeln!(out, "  (no points configured)");
                 }
+                let origin_width = probe.points.iter().map(|r| r.origin.chars().count()).max().unwrap_or(0).max(18);
                 for r in &probe.points {
                     let name = &site.points[r.point.0].name;
                     let raw: Vec<String> = r.raw.iter().map(|w| format!("0x{w:04X}")).collect();
@@ -123,7 +124,7 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
                     };
                     let _ = writeln!(
                         out,
-                        "  {name:<width$}  {:<18}  {:<24}  {shown}",
+                        "  {name:<width$}  {:<origin_width$}  {:<24}  {shown}",
                         r.origin,
                         format!("[{}]", raw.join(" "))
                     );

@@ -185,6 +185,18 @@ pub fn run(args: StepTestArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
     if let Some(p) = r.load_power_on {
         let _ = writeln!(text, "the load's own meter read {} while on", w(Some(p)));
     }
+    // No controller runs during a step test (it holds the site's lock): on a site whose
+    // export is limited, nothing holds the limit meanwhile, and an installer should know.
+    let exported = [r.grid_before, r.grid_after].into_iter().flatten().fold(0.0_f64, |m, g| m.max(-g));
+    if let Some(limit) = site.export_limit()
+        && exported > limit.0 + site.guard.tolerance.0
+    {
+        let _ = writeln!(
+            text,
+            "note: the site exported up to {} around the test (export limit {limit}): no controller runs during a step test, so nothing holds the limit meanwhile; keep the tests short, or make them when the sun is low",
+            Power(exported.round())
+        );
+    }
     let passed = match r.step() {
         Some(step) if r.plausible() && is_battery => {
             let _ = writeln!(

@@ -23,7 +23,8 @@ use crate::config::model::{DeviceId, Link, PointId, PointRead, Scale, Site, Tabl
 pub struct PointReading {
     /// Which point.
     pub point: PointId,
-    /// Where it was read: `holding 40087 ×2`, `coil 3`.
+    /// Where it was read: `holding 40087 ×2`, `coil 3`, `holding 40084 ×1 + scale 40085`
+    /// (a scale factor read from its own register, whose word ends `raw`).
     pub origin: String,
     /// The words read (bits as 0/1), the scale-factor register last when there is one.
     pub raw: Vec<u16>,
@@ -208,7 +209,7 @@ impl Prober<'_> {
 
     async fn read_point(&mut self, spec: &PointSpec) -> PointReading {
         let count = spec.value_type.registers();
-        let origin = match spec.table {
+        let mut origin = match spec.table {
             Table::Coil => format!("coil {}", spec.address),
             Table::DiscreteInput => format!("discrete {}", spec.address),
             Table::HoldingRegister => format!("holding {} ×{count}", spec.address),
@@ -228,6 +229,8 @@ impl Prober<'_> {
         let mut words = Words::default();
         words.insert(spec.table, spec.address, &raw);
         if let ScaleSpec::Register { table, address } = spec.scale {
+            // The raw words then end with the scale factor's: say where it came from.
+            origin.push_str(&format!(" + scale {address}"));
             match self.read(table, address, 1).await {
                 Ok(Ok(w)) => {
                     words.insert(table, address, &w);
