@@ -91,6 +91,14 @@ async fn read_prints_every_point_raw_and_decoded_and_names_the_failures() {
     assert!(!out.contains("grid"), "{out}");
     assert!(line_of(&out, "tank_temp").contains("exception IllegalDataAddress"), "{out}");
 
+    // A device that takes the connection and says nothing (a wrong unit id behind a
+    // gateway, often): the unit id is the first thing named.
+    plant.meter.set_silent(true);
+    let (code, out, _) = spillway(&["read", &site, "--device", "meter"]).await;
+    assert_eq!(code, 1, "{out}");
+    assert!(out.contains("no answer within 500 ms: check the device's `unit` id"), "{out}");
+    plant.meter.set_silent(false);
+
     // A device that does not answer at all.
     drop(plant);
     tokio::time::sleep(Duration::from_millis(200)).await;

@@ -169,7 +169,12 @@ impl Prober<'_> {
                 Err(why)
             }
             Err(_) => {
-                let why = format!("no answer within {}", crate::units::format_duration(self.limit));
+                // Connected, and silent: a gateway asked for a unit id it does not have
+                // often says nothing at all, so that is the first thing to check.
+                let why = format!(
+                    "no answer within {}: check the device's `unit` id (a gateway often stays silent for a unit it does not have), then its wiring and `timeout`",
+                    crate::units::format_duration(self.limit)
+                );
                 self.dead = Some(why.clone());
                 Err(why)
             }
