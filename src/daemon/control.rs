@@ -301,7 +301,7 @@ impl Control {
                 (s.quality(d.now, p) == crate::engine::Quality::Fresh).then_some(s.value)
             });
             let curtailed = d.limit_reason != LimitReason::None;
-            log.sample(d.now, doc.pv_w, doc.house_w, available, curtailed);
+            log.sample(d.now, doc.pv_w, doc.house_w, available, curtailed, !d.switchings.is_empty());
         }
         let mut doc = doc;
         doc.replay_log = self.replay_log.as_ref().map(ReplayLog::status);

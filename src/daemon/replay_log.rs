@@ -197,6 +197,10 @@ pub(crate) struct ReplayLog {
     curtailed: u64,
     rows: Option<mpsc::Sender<String>>,
     writer: Option<JoinHandle<Written>>,
+    /// How long after a load switched the grid reading may not show it yet (the grid
+    /// point's latency and one poll), and until when ticks are left out for that.
+    settle_ms: i64,
+    quiet_until: i64,
     file: String,
     progress: Arc<Progress>,
 }
@@ -228,6 +232,12 @@ impl ReplayLog {
             curtailed: 0,
             rows: Some(tx),
             writer: Some(writer),
+            settle_ms: site
+                .roles
+                .grid
+                .and_then(|g| site.points.get(g.0))
+                .map_or(0, |p| i64::try_from((p.latency + p.poll).as_millis()).unwrap_or(i64::MAX)),
+            quiet_until: i64::MIN,
             file: options.path.display().to_string(),
             progress,
         })
@@ -244,7 +254,13 @@ impl ReplayLog {
     }
 
     /// One tick: the PV and household power (`None` when unknown), what the array could
-    /// give where the site reads it, and whether the inverter was held back.
+    /// give where the site reads it, whether the inverter was held back, and whether a
+    /// load switched in this tick.
+    ///
+    /// The household is PV + grid − the managed loads, each load counted from its
+    /// command; the grid reading shows a switching only a latency and a poll later. The
+    /// ticks in between would put the load's whole power into the household's (or take
+    /// it out), so they are left out of the interval's mean.
     pub(crate) fn sample(
         &mut self,
         now: Timestamp,
@@ -252,10 +268,17 @@ impl ReplayLog {
         house: Option<f64>,
         available: Option<f64>,
         curtailed: bool,
+        switched: bool,
     ) {
         let index = now.0.div_euclid(self.every_ms);
         if self.bucket.is_some_and(|b| b.index != index) {
             self.close_bucket();
+        }
+        if switched {
+            self.quiet_until = now.0.saturating_add(self.settle_ms);
+        }
+        if now.0 <= self.quiet_until {
+            return;
         }
         let (Some(pv), Some(house)) = (pv, house) else { return };
         let b = self.bucket.get_or_insert(Bucket {
@@ -461,13 +484,13 @@ points:
         // of 300 W (one tick unknown), then 40 s with the meter stale, then 5 s of 2 kW.
         for i in 0..20 {
             let house = if i == 3 { None } else { Some(300.0) };
-            log.sample(Timestamp(T0 + i * 1000 + 400), Some(1000.0 + 10.0 * i as f64), house, None, false);
+            log.sample(Timestamp(T0 + i * 1000 + 400), Some(1000.0 + 10.0 * i as f64), house, None, false, false);
         }
         for i in 20..60 {
-            log.sample(Timestamp(T0 + i * 1000 + 400), None, None, None, false);
+            log.sample(Timestamp(T0 + i * 1000 + 400), None, None, None, false, false);
         }
         for i in 60..65 {
-            log.sample(Timestamp(T0 + i * 1000 + 400), Some(2000.0), Some(500.0), None, true);
+            log.sample(Timestamp(T0 + i * 1000 + 400), Some(2000.0), Some(500.0), None, true, false);
         }
         let written = log.finish();
         let text = std::fs::read_to_string(&path).unwrap();
@@ -485,12 +508,30 @@ points:
     }
 
     #[test]
+    fn ticks_right_after_a_switching_are_left_out_until_the_meter_can_show_it() {
+        let path = temp("switching");
+        let _ = std::fs::remove_file(&path);
+        let site = grid_site();
+        let mut log = ReplayLog::start(&site, &options(&path, 10)).unwrap();
+        // A 3 kW load comes on at tick 3: the engine counts it at once, the meter a poll
+        // (1 s, the grid point's default) later, so the house reads 0 W for two ticks.
+        for i in 0..10 {
+            let house = if (3..5).contains(&i) { 0.0 } else { 300.0 };
+            log.sample(Timestamp(T0 + i * 1000), Some(3500.0), Some(house), None, false, i == 3);
+        }
+        log.finish();
+        let text = std::fs::read_to_string(&path).unwrap();
+        assert!(text.ends_with(",3500,300\n"), "{text}");
+        std::fs::remove_dir_all(path.parent().unwrap()).ok();
+    }
+
+    #[test]
     fn a_log_is_appended_to_with_its_header_once_and_an_unfinished_line_stays_alone() {
         let path = temp("append");
         std::fs::write(&path, "time,pv_w,house_w\n2026-06-21T08:59:55Z,990,300\n2026-06-21T09:0").unwrap();
         let site = grid_site();
         let mut log = ReplayLog::start(&site, &options(&path, 10)).unwrap();
-        log.sample(Timestamp(T0 + 5000), Some(1000.0), Some(310.0), None, false);
+        log.sample(Timestamp(T0 + 5000), Some(1000.0), Some(310.0), None, false, false);
         log.finish();
         let text = std::fs::read_to_string(&path).unwrap();
         assert_eq!(
