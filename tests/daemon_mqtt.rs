@@ -75,6 +75,8 @@ struct PlantState {
     on_at: Option<Instant>,
     /// Every (topic, payload, retain) seen under the controller's prefix.
     seen: Vec<(String, String, bool)>,
+    /// Every payload seen on the heater's command topic.
+    heater_commands: Vec<String>,
     connects: usize,
 }
 
@@ -108,6 +110,7 @@ impl MqttPlant {
                         let payload = String::from_utf8_lossy(&p.payload).into_owned();
                         let mut s = st.lock().unwrap();
                         if p.topic.ends_with("/dev/heater/set") {
+                            s.heater_commands.push(payload.clone());
                             let on = payload == "ON";
                             if on && !s.heater && s.export_at.is_some() && s.on_at.is_none() {
                                 s.on_at = Some(Instant::now());
@@ -402,6 +405,39 @@ async fn last_words_while_readings_pour_in(label: &str, port: u16) {
             tail.join("\n"),
             lines.iter().rev().take(30).rev().copied().collect::<Vec<_>>().join("\n")
         );
+    }
+}
+
+/// A plug switched on by its own button while the controller holds it off: the stop
+/// still sends its safe state (OFF), although the controller's command never changed.
+#[tokio::test]
+async fn the_stop_sends_every_safe_state_even_one_the_command_already_had() {
+    let broker = Broker::start().await;
+    let port = broker.addr.port();
+    let prefix = unique_prefix("button");
+    let plant = MqttPlant::start(port, &prefix).await;
+    let daemon = Daemon::start(support::site(&site_yaml(port, &prefix)), Options::default()).await.unwrap();
+    until(&daemon, "rules in charge", |s| s.mode == "normal").await;
+    tokio::time::sleep(Duration::from_secs(1)).await;
+    assert!(!heater(&daemon.status().borrow()).on, "no sun: the heater is held off");
+    // The button: the plug closes without a command.
+    let before = {
+        let mut s = plant.state.lock().unwrap();
+        s.heater = true;
+        s.heater_commands.len()
+    };
+    daemon.shutdown();
+    daemon.wait().await;
+    let deadline = Instant::now() + Duration::from_secs(5);
+    loop {
+        let s = plant.state.lock().unwrap();
+        if s.heater_commands[before..].iter().any(|p| p == "OFF") {
+            assert!(!s.heater, "the plug is off again");
+            break;
+        }
+        assert!(Instant::now() < deadline, "no OFF at the stop: {:?}", &s.heater_commands[before..]);
+        drop(s);
+        tokio::time::sleep(Duration::from_millis(20)).await;
     }
 }
 

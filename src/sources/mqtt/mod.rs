@@ -381,6 +381,14 @@ impl MqttLink {
                     let has_commands = current.commands.commanded && !current.commands.writes.is_empty();
                     if connected {
                         let queued_before = self.stats.counts().writes;
+                        // Every safe state goes out at the stop, also where the command
+                        // did not change: a plug switched on by its own button while the
+                        // controller held it off would otherwise stay on.
+                        for w in &current.commands.writes {
+                            if let Some((topic, ..)) = command_payload(&w.target, w.level) {
+                                sent.remove(topic);
+                            }
+                        }
                         self.publish_due(&client, &current, &mut sent);
                         let _ = client.try_publish(status_topic(&self.settings), QoS::AtLeastOnce, true, "offline");
                         if has_commands {
