@@ -430,13 +430,15 @@ async fn the_stop_sends_every_safe_state_even_one_the_command_already_had() {
     daemon.wait().await;
     let deadline = Instant::now() + Duration::from_secs(5);
     loop {
-        let s = plant.state.lock().unwrap();
-        if s.heater_commands[before..].iter().any(|p| p == "OFF") {
-            assert!(!s.heater, "the plug is off again");
+        let (sent, on) = {
+            let s = plant.state.lock().unwrap();
+            (s.heater_commands[before..].to_vec(), s.heater)
+        };
+        if sent.iter().any(|p| p == "OFF") {
+            assert!(!on, "the plug is off again");
             break;
         }
-        assert!(Instant::now() < deadline, "no OFF at the stop: {:?}", &s.heater_commands[before..]);
-        drop(s);
+        assert!(Instant::now() < deadline, "no OFF at the stop: {sent:?}");
         tokio::time::sleep(Duration::from_millis(20)).await;
     }
 }
