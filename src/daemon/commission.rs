@@ -82,6 +82,10 @@ fn commissioning_site(site: &Site, role: &str) -> Site {
     if let Some(m) = &mut s.mqtt {
         m.client_id = format!("{}-{role}-{}", m.client_id, std::process::id());
         m.topic_prefix = format!("{}/{role}", m.topic_prefix);
+        // Discovery documents are retained and shared by name with the running
+        // controller's: a commissioning link publishing its own would point every
+        // entity at its topics, unavailable once it exits.
+        m.discovery = None;
     }
     s
 }
@@ -459,4 +463,32 @@ async fn watch_grid(
         }
     }
     Means { grid: (gn > 0).then(|| g / gn as f64), load: (pn > 0).then(|| p / pn as f64), n: gn }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::commissioning_site;
+
+    /// `read` and `step-test` beside a running controller: their MQTT link has its own
+    /// client id and prefix, and publishes no discovery documents, which are retained
+    /// under the same names as the controller's and would point its entities at a link
+    /// that is gone a few seconds later.
+    #[test]
+    fn a_commissioning_link_keeps_out_of_the_controllers_way() {
+        let yaml = "
+site: { name: T, timezone: UTC, export: allowed }
+mqtt: { broker: 127.0.0.1:1883, topic_prefix: spillway/t, client_id: ctl, discovery: true }
+devices:
+  home: { mqtt: true }
+points:
+  grid: { device: home, topic: home/meter, unit: W }
+";
+        let site = crate::config::load_str("t.yaml", yaml).map_err(|e| e.render(false)).unwrap().site;
+        assert!(site.mqtt.as_ref().unwrap().discovery.is_some());
+        let read = commissioning_site(&site, "read");
+        let m = read.mqtt.unwrap();
+        assert!(m.discovery.is_none());
+        assert_eq!(m.topic_prefix, "spillway/t/read");
+        assert!(m.client_id.starts_with("ctl-read-"), "{}", m.client_id);
+    }
 }
