@@ -443,6 +443,29 @@ async fn the_stop_sends_every_safe_state_even_one_the_command_already_had() {
     }
 }
 
+/// A reading no house can have (`1e9` W on the meter's topic) is dropped as malformed:
+/// taken in, it stood in the day's counters for good (277.8 kWh from one sample) and in
+/// every `avg` window for minutes.
+#[tokio::test]
+async fn an_absurd_power_reading_is_dropped_as_malformed() {
+    let broker = Broker::start().await;
+    let port = broker.addr.port();
+    let prefix = unique_prefix("absurd");
+    let plant = MqttPlant::start(port, &prefix).await;
+    let daemon = Daemon::start(support::site(&site_yaml(port, &prefix)), Options::default()).await.unwrap();
+    until(&daemon, "rules in charge", |s| s.mode == "normal").await;
+    for _ in 0..5 {
+        plant.publish("dev/meter", "1e9").await;
+        plant.publish("dev/meter", "-1e9").await;
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    let s = until(&daemon, "the readings counted as malformed", |s| s.devices[0].malformed >= 10).await;
+    assert!(s.grid_w.is_some_and(|g| g.abs() < 10_000.0), "{:?}", s.grid_w);
+    assert!(s.totals.import_wh < 100.0 && s.totals.export_wh < 100.0, "{:?}", s.totals);
+    daemon.shutdown();
+    daemon.wait().await;
+}
+
 #[tokio::test]
 async fn the_last_words_reach_the_in_process_broker_while_readings_pour_in() {
     let broker = Broker::start().await;

@@ -103,6 +103,17 @@ pub(super) struct Control {
     last_counters: Option<(SiteCounters, crate::units::Timestamp)>,
     /// The PV and household series for `spillway replay`, when asked for.
     replay_log: Option<ReplayLog>,
+    /// The largest power reading taken as real, W (see [`power_bound`]).
+    power_bound: f64,
+}
+
+/// The largest power a reading of this site may show: ten times its largest rating
+/// (the inverter, a load, all loads together), and at least 100 kW, so that a house on
+/// a large three-phase supply is never cut short.
+fn power_bound(site: &Site) -> f64 {
+    let inverter = site.inverter.as_ref().map_or(0.0, |i| i.rated.0);
+    let loads: f64 = site.loads.iter().map(|l| l.kind.max_power().0).sum();
+    (10.0 * inverter.max(loads)).max(100_000.0)
 }
 
 impl Control {
@@ -138,6 +149,7 @@ impl Control {
             totals: Totals { load_switchings: vec![0; site.loads.len()], ..Totals::default() },
             last_counters: None,
             replay_log,
+            power_bound: power_bound(&site),
             site,
         }
     }
@@ -337,6 +349,23 @@ impl Control {
             SourceEvent::Sample { point, value, at } => {
                 self.summary.samples += 1;
                 trace!(point = point.0, value, "sample");
+                if let Some(p) = self.site.points.get(point.0)
+                    && p.dimension == crate::units::Dimension::Power
+                    && value.abs() > self.power_bound
+                {
+                    // A reading no site of this size can have (a full-scale register,
+                    // `1e9` on a topic): one such sample would stand in the counters
+                    // for good and in every `avg` window for minutes, and could start a
+                    // load on grid power. Dropped as malformed; the point ages to
+                    // stale if nothing better comes.
+                    let detail = format!(
+                        "{} is beyond what this site can draw or give ({} at most, ten times its largest rating): dropped",
+                        Power(value),
+                        Power(self.power_bound)
+                    );
+                    self.event(SourceEvent::Malformed { device: Some(p.device), origin: p.name.clone(), detail });
+                    return;
+                }
                 self.snapshot.set(point, value, at);
             }
             SourceEvent::DeviceUp { device } => {
