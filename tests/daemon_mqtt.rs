@@ -441,6 +441,14 @@ async fn the_stop_sends_every_safe_state_even_one_the_command_already_had() {
         assert!(Instant::now() < deadline, "no OFF at the stop: {sent:?}");
         tokio::time::sleep(Duration::from_millis(20)).await;
     }
+    // The retained state says why the heater is off: the stop, not a lost signal.
+    let topic = format!("{prefix}/ctl/state/water_heater");
+    let last = || plant.seen_since(0).iter().rev().find(|(t, _, _)| *t == topic).map(|x| x.1.clone());
+    while !last().is_some_and(|p| p.contains("\"reason\":\"shutdown\"")) {
+        assert!(Instant::now() < deadline, "the last state of the heater: {:?}", last());
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+    assert!(last().unwrap().contains("controller stopping: safe state"));
 }
 
 /// A reading no house can have (`1e9` W on the meter's topic) is dropped as malformed:

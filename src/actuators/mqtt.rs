@@ -83,6 +83,17 @@ pub fn state_topics(site: &Site, decisions: &Decisions) -> Vec<StateTopic> {
 /// The site state at shutdown: mode `stopped`, no live numbers (they would be stale
 /// the moment the controller is gone), the safe limit dispatched.
 pub fn mark_stopped(state: &mut [StateTopic], safe: &Decisions) {
+    // Each load's safe state is there because the controller stopped, not because a
+    // signal was lost: said so, as the status page says it (the retained document is
+    // what a dashboard shows until the next start).
+    for s in state.iter_mut().filter(|s| s.suffix.starts_with("state/") && s.suffix != "state/site") {
+        if let Ok(mut doc) = serde_json::from_str::<serde_json::Value>(&s.payload) {
+            doc["reason"] = json!("shutdown");
+            doc["why"] = json!("controller stopping: safe state");
+            s.payload = doc.to_string();
+            s.key = format!("{}|shutdown", doc["command"].as_str().unwrap_or_default());
+        }
+    }
     if let Some(site) = state.iter_mut().find(|s| s.suffix == "state/site") {
         let limit = safe.inverter_limit.map(|p| p.0.round());
         site.payload = json!({
