@@ -496,7 +496,7 @@ fn refused(yaml: &str) -> String {
 }
 
 #[test]
-fn a_command_at_qos_0_is_warned_about() {
+fn a_command_at_qos_0_or_retained_is_warned_about() {
     // Its safe state at shutdown goes once and may be lost; QoS 1 (the default) is quiet.
     let yaml = |qos: &str| {
         format!(
@@ -523,6 +523,15 @@ loads:
     assert_eq!(codes, ["C0283"], "{}", spillway::diag::render("plug.yaml", &yaml(", qos: 0"), &loaded.warnings, false));
     let quiet = spillway::config::load_str("plug.yaml", &yaml("")).unwrap_or_else(|e| panic!("{}", e.render(false)));
     assert!(quiet.warnings.is_empty());
+    // A retained command outlives the controller: a plug that reconnects after a crash
+    // would take the last ON the broker kept.
+    let retained = spillway::config::load_str("plug.yaml", &yaml(", retain: true"))
+        .unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let codes: Vec<&str> = retained.warnings.iter().map(|w| w.code).collect();
+    assert_eq!(codes, ["C0284"]);
+    let fine = spillway::config::load_str("plug.yaml", &yaml(", retain: false"))
+        .unwrap_or_else(|e| panic!("{}", e.render(false)));
+    assert!(fine.warnings.is_empty());
 }
 
 /// The codes of every diagnostic a site file gives, errors and warnings, in file order;

@@ -53,7 +53,7 @@ pub fn state_topics(site: &Site, decisions: &Decisions) -> Vec<StateTopic> {
             "command": command,
             "on": d.command.is_on(),
             "reason": d.reason.code(),
-            "why": d.reason.to_string(),
+            "why": why(site, d.reason),
             "power": power.round(),
         });
         out.push(StateTopic {
@@ -78,6 +78,18 @@ pub fn state_topics(site: &Site, decisions: &Decisions) -> Vec<StateTopic> {
         key: format!("{mode}|{limit_reason}|{}", limit.is_some()),
     });
     out
+}
+
+/// The reason as a sentence, a lost signal by its point's name (the reason itself
+/// knows only the point's index).
+fn why(site: &Site, reason: crate::engine::Reason) -> String {
+    match reason {
+        crate::engine::Reason::SignalLost { point } => match site.points.get(point) {
+            Some(p) => format!("safe state: point \"{}\" is stale, missing or frozen", p.name),
+            None => reason.to_string(),
+        },
+        _ => reason.to_string(),
+    }
 }
 
 /// The site state at shutdown: mode `stopped`, no live numbers (they would be stale
@@ -125,5 +137,47 @@ pub fn limit_word(reason: LimitReason) -> &'static str {
         LimitReason::ExportGuard => "export_guard",
         LimitReason::Escalated => "escalated",
         LimitReason::Failsafe => "failsafe",
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::engine::{Command, LimitReason, LoadDecision, Mode, Reason};
+    use crate::units::{Power, Timestamp};
+
+    /// A lost signal is named in the retained state a dashboard shows, not numbered.
+    #[test]
+    fn a_lost_signal_is_named_by_its_point() {
+        let yaml = "
+site: { name: T, timezone: UTC, export: allowed }
+mqtt: { broker: 127.0.0.1:1883 }
+devices:
+  home: { mqtt: true }
+points:
+  grid: { device: home, topic: home/meter, unit: W }
+  pump_power: { device: home, topic: home/pump, unit: W }
+loads:
+  - name: pump
+    rated: 750W
+    switch: { device: home, topic: home/pump/set }
+    power: pump_power
+";
+        let site = crate::config::load_str("t.yaml", yaml).map_err(|e| e.render(false)).unwrap().site;
+        let point = site.point("pump_power").unwrap().0.0;
+        let d = Decisions {
+            now: Timestamp(0),
+            loads: vec![LoadDecision { command: Command::Off, reason: Reason::SignalLost { point } }],
+            inverter_limit: None,
+            limit_reason: LimitReason::None,
+            mode: Mode::Normal,
+            surplus: Power::ZERO,
+            grid: None,
+            switchings: Vec::new(),
+        };
+        let state = state_topics(&site, &d);
+        let doc: serde_json::Value = serde_json::from_str(&state[0].payload).unwrap();
+        assert_eq!(doc["why"], "safe state: point \"pump_power\" is stale, missing or frozen", "{doc}");
+        assert_eq!(doc["reason"], "signal_lost");
     }
 }

@@ -2206,7 +2206,19 @@ impl Builder<'_, '_> {
             let value = payload.map_or(Some("{value}".to_owned()), |n| {
                 values::text(n, "the payload template", self.diags).map(str::to_owned)
             });
-            let retain = retain.map_or(Some(false), |n| values::boolean(n, "`retain`", self.diags));
+            let retain = retain.map_or(Some(false), |n| {
+                let r = values::boolean(n, "`retain`", self.diags);
+                if r == Some(true) {
+                    // A retained command outlives the controller: a device that
+                    // reconnects while no controller runs takes the last one it finds.
+                    self.diags.push(
+                        Diagnostic::warning("C0284", "a retained command outlives the controller", n.span.clone())
+                            .with_label("retained")
+                            .with_note("a device that reconnects after a crash, with no controller running, takes the last command the broker kept (ON, say) and switches on; Spillway repeats its commands anyway, so leave `retain` out unless the device needs it"),
+                    );
+                }
+                r
+            });
             let qos = match qos {
                 Some(q) => {
                     let level = self.qos(q)?;
