@@ -77,6 +77,11 @@ async fn a_site_whose_meter_never_answers_says_why_it_stays_in_fail_safe() {
     let said: Vec<_> = s.recent.iter().filter(|e| e.text.starts_with("still in fail-safe")).collect();
     assert_eq!(said.len(), 1, "{said:?}");
     assert!(said[0].text.contains("\"grid\""), "names the signal: {}", said[0].text);
+    // The points that never had a reading are named too (on a site that may export, this
+    // is the only word about a mistyped topic).
+    let never: Vec<_> = s.recent.iter().filter(|e| e.text.starts_with("no reading at all since start")).collect();
+    assert_eq!(never.len(), 1, "{:?}", s.recent);
+    assert!(never[0].text.contains("\"grid\"") && !never[0].text.contains("\"pv\""), "{}", never[0].text);
     tokio::time::sleep(Duration::from_secs(30)).await;
     let s = daemon.status().borrow().clone();
     assert_eq!(s.recent.iter().filter(|e| e.text.starts_with("still in fail-safe")).count(), 1, "said once");
@@ -87,6 +92,7 @@ async fn a_site_whose_meter_never_answers_says_why_it_stays_in_fail_safe() {
     settle(&plant, &daemon2).await;
     let s = daemon2.status().borrow().clone();
     assert!(!s.recent.iter().any(|e| e.text.starts_with("still in fail-safe")), "{:?}", s.recent);
+    assert!(!s.recent.iter().any(|e| e.text.starts_with("no reading at all")), "{:?}", s.recent);
     for d in [daemon, daemon2] {
         d.shutdown();
         d.wait().await;

@@ -91,6 +91,8 @@ pub(super) struct Control {
     /// its guard signals' first fresh readings (silent otherwise: it starts in fail-safe).
     first_tick: Option<crate::units::Timestamp>,
     start_wait_warned: bool,
+    /// Whether the points that never had a reading have been named (once, after 10 s).
+    never_read_checked: bool,
     /// Whether the site has had its guard signals at least once since start: a later
     /// fail-safe is a lost signal, logged as such, not a wait for the first readings.
     ever_fresh: bool,
@@ -143,6 +145,7 @@ impl Control {
             was_normal: false,
             first_tick: None,
             start_wait_warned: false,
+            never_read_checked: false,
             ever_fresh: false,
             recent: VecDeque::with_capacity(RECENT),
             summary: Summary::default(),
@@ -282,6 +285,31 @@ impl Control {
                 waited_s = (d.now.0 - first.0) / 1000,
                 "no fresh readings since start: loads stay in their safe states and the inverter at its safe limit until they come; check the device links logged above"
             );
+        }
+        if !self.never_read_checked && d.now.0 - first.0 >= START_WAIT_WARN_MS {
+            // A mistyped topic or register leaves its point without a single reading,
+            // which no change of mode shows where the point guards nothing (a site that
+            // may export has no guard signals): name them once.
+            self.never_read_checked = true;
+            let never: Vec<String> = self
+                .site
+                .points
+                .iter()
+                .enumerate()
+                .filter(|(i, _)| {
+                    self.snapshot.get(crate::config::model::PointId(*i)).at == crate::units::Timestamp::NEVER
+                })
+                .map(|(_, p)| format!("\"{}\"", p.name))
+                .collect();
+            if !never.is_empty() {
+                let list = never.join(", ");
+                push_recent(&mut self.recent, d.now, format!("no reading at all since start: {list}"));
+                warn!(
+                    points = %list,
+                    waited_s = (d.now.0 - first.0) / 1000,
+                    "no reading at all since start from these points: check their topics or addresses (and the device links logged above); rules read them as unknown"
+                );
+            }
         }
         trace!(
             mode = mode_word(d.mode),
