@@ -281,9 +281,18 @@ fn draw_flows(
 
     let axis = time_axis(tz, t0, span_h);
     let day_labels = axis.day_labels;
+    // A day's label ("Tue 07 Jul") needs about 90 px; the plot is about 1,100 px wide.
+    // Every day keeps its gridline, but over a month only every few days is named, or
+    // the labels run into each other.
+    let days = (span_h / 24.0).ceil().max(1.0);
+    let label_every = (days * 90.0 / 1100.0).ceil().max(1.0) as i64;
     let label_hour = |h: &f64| {
         let t = crate::units::Timestamp(t0 + (*h * 3_600_000.0).round() as i64).to_utc().with_timezone(&tz);
-        if day_labels { t.format("%a %d %b").to_string() } else { t.format("%H:%M").to_string() }
+        if !day_labels {
+            return t.format("%H:%M").to_string();
+        }
+        let day = (*h / 24.0).round() as i64;
+        if day % label_every == 0 { t.format("%a %d %b").to_string() } else { String::new() }
     };
 
     let mut chart = ChartBuilder::on(root)
@@ -608,6 +617,38 @@ mod tests {
             loads: Vec::new(),
             limit_w: vec![f64::NAN; 4],
         }
+    }
+
+    #[test]
+    fn a_months_day_labels_do_not_run_into_each_other() {
+        // 30 days, a sample every 3 h: every day keeps its gridline, but a label of about
+        // 90 px needs that much room, so only every third day is named.
+        let n = 30 * 8;
+        let trace = Trace {
+            t_ms: (0..n).map(|i| 1_781_481_600_000 + i as i64 * 3 * 3_600_000).collect(),
+            pv_w: vec![0.0; n],
+            house_w: vec![300.0; n],
+            grid_w: vec![300.0; n],
+            battery_w: vec![0.0; n],
+            tank_c: vec![f64::NAN; n],
+            tank_top_c: vec![f64::NAN; n],
+            lukewarm_l: vec![0.0; n],
+            loads: Vec::new(),
+            limit_w: vec![f64::NAN; n],
+        };
+        let svg = flows_svg(&trace);
+        let xs: Vec<f64> = svg
+            .split("<text x=\"")
+            .skip(1)
+            .filter_map(|t| {
+                let x: f64 = t.split('"').next()?.parse().ok()?;
+                let label = t.split('>').nth(1)?.split('<').next()?.trim();
+                let b = label.as_bytes();
+                (b.len() == 10 && b[3] == b' ' && b[6] == b' ').then_some(x)
+            })
+            .collect();
+        assert!(xs.len() >= 8 && xs.len() <= 11, "{} day labels", xs.len());
+        assert!(xs.windows(2).all(|w| w[1] - w[0] >= 90.0), "{xs:?}");
     }
 
     #[test]
