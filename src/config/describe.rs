@@ -93,6 +93,11 @@ pub fn describe(site: &Site) -> String {
             Link::ModbusRtu { path, baud, unit, .. } => format!("Modbus RTU {path} {baud} Bd unit {unit}"),
             Link::Mqtt => "MQTT".to_owned(),
         };
+        if matches!(d.link, Link::Mqtt) {
+            // Published, not polled: poll and timeout mean nothing here.
+            let _ = writeln!(out, "  {:<12} {link} (readings as published)", d.name);
+            continue;
+        }
         let _ = writeln!(
             out,
             "  {:<12} {link}{}, poll {}, timeout {}",

@@ -122,11 +122,15 @@ pub fn documents(site: &Site, mqtt: &MqttSettings, d: &Discovery) -> Vec<Discove
 
     let state = format!("{}/state/site", mqtt.topic_prefix);
     let id = |what: &str| format!("spillway_{slug}_{what}");
-    for (what, name, field) in [
+    let sensors = [
         ("grid", "grid power (import positive)", "grid"),
         ("surplus", "surplus", "surplus"),
         ("inverter_limit", "inverter limit", "inverter_limit"),
-    ] {
+    ];
+    // A site without limit control has no inverter limit to show: an entity that is
+    // always unknown is noise on a dashboard.
+    for (what, name, field) in sensors.into_iter().filter(|(w, _, _)| *w != "inverter_limit" || site.inverter.is_some())
+    {
         let mut doc = base(&id(what), name.to_owned());
         extend(
             &mut doc,
@@ -199,7 +203,10 @@ loads:
         let mqtt = s.mqtt.as_ref().unwrap();
         let d = mqtt.discovery.as_ref().unwrap();
         let docs = documents(&s, mqtt, d);
-        assert_eq!(docs.len(), 2 * 6 + 4, "six entities per load, four for the site");
+        // Six entities per load; for the site grid, surplus and mode, and no inverter
+        // limit on a site that has no inverter to limit.
+        assert_eq!(docs.len(), 2 * 6 + 3, "six entities per load, three for the site");
+        assert!(!docs.iter().any(|d| d.topic.contains("inverter_limit")));
         let mut ids = std::collections::HashSet::new();
         for doc in &docs {
             let parts: Vec<&str> = doc.topic.split('/').collect();

@@ -352,7 +352,9 @@ impl MqttLink {
 
     async fn malformed(&self, events: &mpsc::Sender<SourceEvent>, topic: &str, detail: String) -> Result<(), ()> {
         self.stats.count(Counter::Malformed);
-        warn!(topic, %detail, "malformed mqtt payload ignored");
+        // The control task logs it, a minute apart per topic: a device that publishes
+        // garbage every second must not flood the log from here.
+        debug!(topic, %detail, "malformed mqtt payload ignored");
         let device = self.devices.first().copied();
         send(events, SourceEvent::Malformed { device, origin: topic.to_owned(), detail }).await
     }
