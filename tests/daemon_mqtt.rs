@@ -164,6 +164,22 @@ impl MqttPlant {
     fn seen_count(&self) -> usize {
         self.state.lock().unwrap().seen.len()
     }
+
+    /// Clears every retained topic the controller left under this plant's prefix (an
+    /// empty retained payload deletes one): a shared broker such as the one on 1883
+    /// would otherwise keep every run's status and state documents for good.
+    async fn clear_retained(&self) {
+        // Every topic seen: a broker forwards a live publication with its retain flag
+        // cleared (MQTT 3.1.1), so the flag cannot tell which were kept, and an empty
+        // payload on a topic that holds nothing changes nothing.
+        let topics: std::collections::BTreeSet<String> =
+            self.state.lock().unwrap().seen.iter().map(|(t, _, _)| t.clone()).collect();
+        for t in topics {
+            let _ = self.client.publish(t, QoS::AtLeastOnce, true, Vec::new()).await;
+        }
+        // Let the event loop hand them to the broker before the plant goes.
+        tokio::time::sleep(Duration::from_millis(200)).await;
+    }
 }
 
 impl Drop for MqttPlant {
@@ -317,6 +333,7 @@ where
     );
     // And the log says so.
     assert!(logs.text().contains("safe states sent to the broker at shutdown"), "{}", logs.text());
+    plant.clear_retained().await;
 }
 
 /// With the broker gone at shutdown, the safe states cannot be sent: the log says so in
@@ -405,6 +422,7 @@ async fn last_words_while_readings_pour_in(label: &str, port: u16) {
             tail.join("\n"),
             lines.iter().rev().take(30).rev().copied().collect::<Vec<_>>().join("\n")
         );
+        plant.clear_retained().await;
     }
 }
 
