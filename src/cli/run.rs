@@ -107,13 +107,6 @@ pub fn run(args: RunArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
     info!(site = %loaded.site.name, state = %state.display(), "site loaded");
     let replay_log =
         args.replay_log.map(|path| daemon::replay_log::ReplayLogOptions { path, every: args.replay_log_every });
-    if let Some(o) = &replay_log
-        && let Err(e) = daemon::replay_log::check(&loaded.site, o)
-    {
-        // Before any device is touched, like every other problem of the command line.
-        eprintln!("error: {e}");
-        return Ok(ExitCode::from(2));
-    }
     let options =
         daemon::Options { state_file: Some(state), http: args.http, replay_log, ..daemon::Options::default() };
     let summary = daemon::run(Arc::new(loaded.site), options, |_| {})?;
