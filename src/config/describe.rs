@@ -305,5 +305,8 @@ mod tests {
         let text = super::describe(&site);
         assert!(text.contains("topic meter/feed_in × -1000 (sign reversed); power"), "{text}");
         assert!(text.contains("topic pv/power; power"), "{text}");
+        // An MQTT device is not polled: no poll period or timeout is shown for it.
+        let home = text.lines().find(|l| l.trim_start().starts_with("home ")).unwrap_or_default();
+        assert!(home.contains("MQTT (readings as published)") && !home.contains("poll"), "{text}");
     }
 }
