@@ -315,6 +315,13 @@ impl MqttLink {
     /// A message from the broker: a signal, an override, or noise.
     async fn incoming(&self, p: &Publish, events: &mpsc::Sender<SourceEvent>, clock: &Clock) -> Result<(), ()> {
         let now = clock.now();
+        if p.payload.is_empty() {
+            // How a retained message is deleted: the broker passes the empty payload on
+            // to whoever is subscribed (MQTT 3.1.1, section 3.3.1.3). Someone clearing a
+            // retained override or reading is not a device sending garbage.
+            debug!(topic = %p.topic, "empty payload ignored (a retained message being cleared)");
+            return Ok(());
+        }
         if let Some(name) = p.topic.strip_prefix(&self.settings.topic_prefix).and_then(|t| t.strip_prefix("/override/"))
         {
             if p.retain {

@@ -138,10 +138,8 @@ pub fn parse_override(load: &Load, payload: &[u8], now: Timestamp) -> Result<Ove
     let duration = match duration {
         None => DEFAULT_OVERRIDE,
         Some(d) => {
-            let q = parse_quantity(&d).map_err(|e| format!("\"for\": {e}"))?;
-            if q.dimension != Dimension::Duration || q.value <= 0.0 {
-                return Err(format!("\"{d}\" is not a duration such as 30min or 2h"));
-            }
+            let q = parse_quantity(&d).ok().filter(|q| q.dimension == Dimension::Duration && q.value > 0.0);
+            let Some(q) = q else { return Err(not_a_duration(&d)) };
             // `try_`: a payload is untrusted input, and a duration too large for the
             // type must be refused, not panic the link.
             match Duration::try_from_secs_f64(q.value) {
@@ -158,6 +156,20 @@ pub fn parse_override(load: &Load, payload: &[u8], now: Timestamp) -> Result<Ove
         }
     };
     Ok(OverrideAction::Set { command, until: now.plus(duration) })
+}
+
+/// Why an override's duration was refused, in the words of the payload's own form
+/// (`on 30mins` has no "for" to blame) and with the one slip people make most.
+fn not_a_duration(text: &str) -> String {
+    let t = text.trim();
+    let unit = t.trim_start_matches(|c: char| c.is_ascii_digit() || c == '.').trim();
+    let hint = match unit {
+        "m" | "mins" | "minute" | "minutes" => " (minutes are written min)",
+        "hr" | "hrs" | "hour" | "hours" => " (hours are written h)",
+        "sec" | "secs" | "second" | "seconds" => " (seconds are written s)",
+        _ => "",
+    };
+    format!("\"{t}\" is not a duration{hint}: write a number and ms, s, min, h or d, such as 30min or 2h")
 }
 
 /// The command "on" means for a kind of load, with an optional level or stage.
@@ -225,5 +237,32 @@ mod tests {
         assert!(parse_value(br#"{"t":null}"#, &j("/t")).is_err());
         assert!(parse_value(br#"{"t":1}"#, &j("/u")).is_err());
         assert!(parse_value(b"{", &j("/u")).is_err());
+    }
+
+    #[test]
+    fn a_mistyped_duration_says_how_to_write_it_in_either_form() {
+        let yaml = "site: { name: Test, timezone: UTC }
+devices:
+  relays: { modbus_tcp: 127.0.0.1:5020, unit: 1 }
+loads:
+  - { name: pump, rated: 1kW, switch: { device: relays, coil: 0 } }
+";
+        let site = match crate::config::load_str("t.yaml", yaml) {
+            Ok(l) => l.site,
+            Err(e) => panic!("{}", e.render(false)),
+        };
+        let load = site.load("pump").unwrap().1;
+        let now = Timestamp(1_781_481_600_000);
+        let err = |payload: &str| parse_override(load, payload.as_bytes(), now).unwrap_err();
+        assert_eq!(
+            err("on 5m"),
+            "\"5m\" is not a duration (minutes are written min): write a number and ms, s, min, h or d, such as 30min or 2h"
+        );
+        // The plain form has no "for" key, so the message does not name one.
+        assert!(!err("on 30mins").contains("\"for\""), "{}", err("on 30mins"));
+        assert!(err("on 30mins").contains("minutes are written min"));
+        assert!(err(r#"{"command":"on","for":"2 hours"}"#).contains("hours are written h"));
+        assert!(err("on -5min").starts_with("\"-5min\" is not a duration"));
+        assert!(parse_override(load, b"on 5min", now).is_ok());
     }
 }
