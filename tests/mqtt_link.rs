@@ -255,6 +255,7 @@ async fn an_unclean_drop_leaves_the_last_will_offline() {
 
 #[tokio::test(start_paused = true)]
 async fn a_broker_restart_is_followed_by_reconnect_resubscribe_and_republish() {
+    let (logs, _guard) = support::Logs::capture();
     let broker = Broker::start().await;
     let mut b = Bench::start(broker, "").await;
     b.dispatcher.apply(&decisions(&[Command::On, Command::Setpoint(Ratio(40.0))]));
@@ -270,6 +271,9 @@ async fn a_broker_restart_is_followed_by_reconnect_resubscribe_and_republish() {
     })
     .await;
     assert!(down.starts_with("mqtt: "), "{down}");
+    // It had a connection, and lost it.
+    assert!(logs.text().contains("mqtt connection lost"), "{}", logs.text());
+    assert!(!logs.text().contains("cannot connect to the mqtt broker"), "{}", logs.text());
     let t = tokio::time::Instant::now();
     wait_for(&mut b.events, Duration::from_secs(35), |e| matches!(e, SourceEvent::DeviceUp { .. }).then_some(())).await;
     // The first retry waits the backoff (0.25–0.5 s), not zero.
@@ -284,6 +288,28 @@ async fn a_broker_restart_is_followed_by_reconnect_resubscribe_and_republish() {
     assert_eq!(b.sample("grid").await, -5.0);
     b.cancel.cancel();
     b.task.await.unwrap();
+}
+
+/// A broker that was never reached (a wrong port, a broker not started) is not a lost
+/// connection: the warning sends the reader to the site file and the broker's service.
+#[tokio::test(start_paused = true)]
+async fn a_broker_never_reached_is_reported_as_such_not_as_a_lost_connection() {
+    let (logs, _guard) = support::Logs::capture();
+    // A loopback port with nothing listening on it.
+    let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+    let site = site(&yaml(port, ""));
+    let link = MqttLink::new(site.clone(), MqttOptions::default()).unwrap();
+    let dispatcher = Dispatcher::new(site, ActuatorOptions::default());
+    let (tx, mut events) = mpsc::channel(1024);
+    let cancel = CancellationToken::new();
+    let task = tokio::spawn(link.run(dispatcher.mqtt(), tx, Clock::anchored(T0), cancel.clone()));
+    wait_for(&mut events, Duration::from_secs(5), |e| matches!(e, SourceEvent::BrokerDown { .. }).then_some(())).await;
+    let text = logs.text();
+    assert!(text.contains("cannot connect to the mqtt broker: check mqtt.broker (host:port)"), "{text}");
+    assert!(text.contains(&format!("127.0.0.1:{port}")), "{text}");
+    assert!(!text.contains("connection lost"), "{text}");
+    cancel.cancel();
+    task.await.unwrap();
 }
 
 #[tokio::test(start_paused = true)]

@@ -283,8 +283,19 @@ impl MqttLink {
                     let delay = backoff.next_delay();
                     let reason = e.to_string();
                     if up != Some(false) {
+                        if up.is_none() {
+                            // Never connected: nothing was lost, and the likely cause is
+                            // in the site file or the broker's service, not the network.
+                            warn!(
+                                broker = %self.broker(),
+                                %reason,
+                                retry_in_ms = delay.as_millis() as u64,
+                                "cannot connect to the mqtt broker: check mqtt.broker (host:port), the login, and that the broker is running"
+                            );
+                        } else {
+                            warn!(broker = %self.broker(), %reason, retry_in_ms = delay.as_millis() as u64, "mqtt connection lost");
+                        }
                         up = Some(false);
-                        warn!(broker = %self.broker(), %reason, retry_in_ms = delay.as_millis() as u64, "mqtt connection lost");
                         if events.send(SourceEvent::BrokerDown { reason: reason.clone() }).await.is_err() {
                             return;
                         }
