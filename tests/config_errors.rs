@@ -740,3 +740,44 @@ fn the_note_on_an_unusable_name_says_what_is_accepted() {
     assert!(shown.contains("start with a lowercase letter or _"), "{shown}");
     assert!(!shown.contains("start with a letter and"), "{shown}");
 }
+
+/// A grid meter read through an unsigned register (`u16` is the default) can never read
+/// negative: export would never show and the export guard would be blind (`common
+/// practice`: meters publish import/export power as one signed register, i16 or i32).
+/// Refused on `grid`; a battery's two-way flows are warned about.
+#[test]
+fn a_two_way_power_in_an_unsigned_register_is_caught() {
+    let yaml = |grid: &str, battery: &str| {
+        format!(
+            "
+site: {{ name: Test, timezone: UTC, export: allowed }}
+devices:
+  meter: {{ modbus_tcp: 127.0.0.1:5020, unit: 1 }}
+points:
+  grid: {{ device: meter, register: 10, unit: W{grid} }}
+  battery_power: {{ device: meter, register: 20, unit: W{battery} }}
+loads:
+  - name: heater
+    rated: 2kW
+    switch: {{ device: meter, coil: 0 }}
+    start: surplus > 2kW
+    stop: surplus < 500W for 1min
+"
+        )
+    };
+    assert_eq!(codes(&yaml("", ", type: i16")), ["C0285"]);
+    let err = match spillway::config::load_str("site.yaml", &yaml("", ", type: i16")) {
+        Ok(_) => panic!("an unsigned grid point loaded"),
+        Err(e) => e.render(false),
+    };
+    assert!(err.contains("can never show export") && err.contains("type: i16"), "{err}");
+    let flipped = match spillway::config::load_str("site.yaml", &yaml(", type: u32, scale: -1", ", type: i32")) {
+        Ok(_) => panic!("an unsigned grid point loaded"),
+        Err(e) => e.render(false),
+    };
+    assert!(flipped.contains("`u32`") && flipped.contains("can never show import"), "{flipped}");
+    // A battery's flow: warned, not refused.
+    assert_eq!(codes(&yaml(", type: i32", "")), ["C0285"]);
+    assert!(spillway::config::load_str("site.yaml", &yaml(", type: i32", "")).is_ok());
+    assert!(codes(&yaml(", type: i16", ", type: f32")).is_empty());
+}

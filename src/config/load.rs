@@ -1278,6 +1278,38 @@ impl Builder<'_, '_> {
                 Some(n) => Some(self.missing_value(n, value_type, &what)?),
                 None => None,
             };
+            // Power at the grid connection and a battery's flow run both ways; an
+            // unsigned register reads one way only. On `grid` that blinds the export
+            // guard (export never shows, or import never does) and hides the surplus.
+            let two_way = matches!(name, "grid" | "battery_power" | "battery_current");
+            if two_way && matches!(value_type, ValueType::U16 | ValueType::U32 | ValueType::U64) {
+                let negative_scale = matches!(scale, Scale::Factor(f) if f < 0.0);
+                let never = if name == "grid" {
+                    if negative_scale { "import" } else { "export" }
+                } else if negative_scale {
+                    "charging"
+                } else {
+                    "discharging"
+                };
+                let type_name = format!("{value_type:?}").to_lowercase();
+                let message =
+                    format!("{what} is read as `{type_name}`, which has no negative values: it can never show {never}");
+                let at = type_node.map_or_else(|| span.clone(), |t| t.span.clone());
+                let d = if name == "grid" {
+                    Diagnostic::error("C0285", message, at)
+                } else {
+                    Diagnostic::warning("C0285", message, at)
+                }
+                .with_label(if type_node.is_some() { "unsigned" } else { "no `type`: u16, unsigned" })
+                .with_note(format!(
+                    "{name} flows both ways (the sign says which): give it the register's signed type, `type: i16`, `i32` or `f32`, as the device's register map gives it{}",
+                    if name == "grid" { "; read unsigned, the export guard could not see export" } else { "" }
+                ));
+                self.diags.push(d);
+                if name == "grid" {
+                    return None;
+                }
+            }
             let end = u32::from(address) + u32::from(value_type.registers()) - 1;
             if end > 65535 {
                 self.diags.error(
