@@ -718,6 +718,42 @@ fn simulation_bind_mistakes_are_refused_with_the_remedy() {
     );
 }
 
+/// A relay module wired otherwise than the site's loads expect is refused before a run:
+/// a coil left out of `plant.wiring` (every write to it refused: the load never draws,
+/// yet its commanded hours counted as met), or two channels swapped (the heater's relay
+/// driving the pump: a report of the wrong loads).
+#[test]
+fn plant_wiring_that_does_not_match_the_loads_is_refused_with_the_remedy() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let wiring = "  wiring: [tank, pump]";
+    assert!(text.contains(wiring), "the example changed");
+    let err_of = |w: &str| {
+        let loaded =
+            config::load_str("site.yaml", &text.replace(wiring, w)).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        offline::checked_plant(&loaded).expect_err(w).to_string()
+    };
+    let unwired = err_of("  wiring: [tank]");
+    assert!(
+        unwired.contains("pool_pump")
+            && unwired
+                .contains("switches coil 1 of the simulated relay module, but plant.wiring wires 1 coil(s): [tank]")
+            && unwired.contains(
+                "add the plant channel it drives as item 1 of plant.wiring (the plant's channels: tank, pump)"
+            ),
+        "{unwired}"
+    );
+    let swapped = err_of("  wiring: [pump, tank]");
+    assert!(
+        swapped.contains("water_heater")
+            && swapped.contains("wires to the plant's \"pump\" (1.1 kW), but the load is rated 3 kW")
+            && swapped.contains("check the order of plant.wiring"),
+        "{swapped}"
+    );
+    // The example as written binds.
+    let loaded = config::load_str("site.yaml", &text).unwrap();
+    assert!(offline::checked_plant(&loaded).is_ok());
+}
+
 /// Every example carries expectations, and they pass (what an installer's CI would run).
 #[test]
 fn every_example_passes_its_own_expectations() {

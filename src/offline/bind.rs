@@ -80,6 +80,67 @@ fn unit_of(site: &Site, device: crate::config::model::DeviceId) -> Option<u8> {
     site.devices.get(device.0).and_then(|d| d.link.modbus_unit())
 }
 
+/// A load switched by coils of the simulated relay module must find each coil wired to
+/// a plant channel of about its own power. Otherwise every write to an unwired coil is
+/// refused (the load never draws, yet its run hours count), or a load drives the wrong
+/// appliance (swapped `wiring`), and the report is wrong without a word.
+fn check_relay_wiring(site: &Site, plant: &Plant, load: &crate::config::model::Load) -> Result<(), String> {
+    use crate::config::model::{LoadKind, StageCommand};
+    let wiring = &plant.bus().layout().wiring;
+    let channels = plant.channels();
+    // Each relay of the load with the power it adds when it closes.
+    let relays: Vec<(&Write, f64)> = match &load.kind {
+        LoadKind::Switched { rated, switch } => vec![(switch, rated.0)],
+        LoadKind::Stepped { stages, command: StageCommand::Relays(relays) } => relays
+            .iter()
+            .zip(stages.iter().scan(0.0, |below, s| {
+                let step = s.0 - *below;
+                *below = s.0;
+                Some(step)
+            }))
+            .collect(),
+        _ => Vec::new(),
+    };
+    let wired_list = || {
+        if wiring.is_empty() {
+            "plant.wiring is empty".to_owned()
+        } else {
+            let names: Vec<&str> = wiring.iter().map(|&ch| channels[ch].as_str()).collect();
+            format!("plant.wiring wires {} coil(s): [{}]", names.len(), names.join(", "))
+        }
+    };
+    for (write, rated_w) in relays {
+        let Write::Coil { device, address } = write else { continue };
+        if unit_of(site, *device) != Some(spillway_sim::bus::RELAY_UNIT) {
+            continue;
+        }
+        let Some(&ch) = wiring.get(usize::from(*address)) else {
+            return Err(format!(
+                "switches coil {address} of the simulated relay module, but {}: add the plant channel it drives as item {address} of plant.wiring (the plant's channels: {})",
+                wired_list(),
+                channels.join(", ")
+            ));
+        };
+        // Half to twice: a rating rounded, or an element derated, passes; a heater wired
+        // where the pump belongs does not (`common practice`: a nameplate is within a
+        // few per cent of what the appliance draws).
+        if let Some(plant_w) = plant.channel_rated_w(ch)
+            && rated_w > 0.0
+            && plant_w > 0.0
+            && !(0.5..=2.0).contains(&(plant_w / rated_w))
+        {
+            return Err(format!(
+                "switches coil {address}, which {} wires to the plant's \"{}\" ({}), but the load is rated {}: check the order of plant.wiring (coil i drives item i) or the load's `rated`",
+                if wiring.len() > 1 { "plant.wiring" } else { "the plant" },
+                channels[ch],
+                crate::units::Power(plant_w),
+                crate::units::Power(rated_w)
+            ));
+        }
+    }
+    Ok(())
+}
+
 /// Walks a unit's SunSpec model chain on the bus.
 fn discover(bus: &Bus, unit: u8) -> Option<ModelMap> {
     let base = sunspec::BASES
@@ -268,6 +329,7 @@ impl Binding {
                 if writes_setpoint && !takes_setpoint {
                     return Err(fail(NO_BATTERY_SETPOINT.to_owned()));
                 }
+                check_relay_wiring(site, plant, load).map_err(fail)?;
                 sim_controls.push(None);
                 continue;
             };

@@ -579,7 +579,11 @@ impl Report {
             let _ = writeln!(o);
         }
         if self.refused_writes > 0 {
-            let _ = writeln!(o, "note: the plant refused {} write(s) (a device restarting)", self.refused_writes);
+            let _ = writeln!(
+                o,
+                "note: the plant refused {} write(s) (a device restarting, or an address its devices do not take)",
+                self.refused_writes
+            );
         }
         o
     }

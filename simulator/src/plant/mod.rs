@@ -1091,6 +1091,18 @@ impl Plant {
         &self.load_names
     }
 
+    /// The power a relay channel switches when it closes, W: a tank's element, a
+    /// switched load's rating, one stage of a stepped load. `None` for no such channel.
+    pub fn channel_rated_w(&self, channel: usize) -> Option<f64> {
+        self.drives.iter().find_map(|d| match d {
+            Drive::Tank { channel: c, rated } | Drive::Switched { channel: c, rated } => {
+                (*c == channel).then_some(*rated)
+            }
+            Drive::Stepped { first, stages } => channel.checked_sub(*first).and_then(|k| stages.get(k)).copied(),
+            Drive::Regulated { .. } | Drive::Ev => None,
+        })
+    }
+
     /// Index of a relay channel by name.
     pub fn channel(&self, name: &str) -> Option<usize> {
         self.channels().iter().position(|c| c == name)
