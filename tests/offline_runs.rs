@@ -754,6 +754,21 @@ fn plant_wiring_that_does_not_match_the_loads_is_refused_with_the_remedy() {
     assert!(offline::checked_plant(&loaded).is_ok());
 }
 
+/// A plant that keeps its household's hours in another time zone than the site's rules
+/// is refused: the draws and the rules' windows would be an hour or more apart.
+#[test]
+fn a_plant_in_another_time_zone_than_its_site_is_refused() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let zone = "timezone: Europe/Lisbon }";
+    assert!(text.contains(zone), "the example changed");
+    let loaded = config::load_str("site.yaml", &text.replace(zone, "timezone: Europe/Madrid }")).unwrap();
+    let err = offline::checked_plant(&loaded).expect_err("two zones").to_string();
+    assert!(
+        err.contains("the plant's time zone (Europe/Madrid, plant.location.timezone) is not the site's (Europe/Lisbon, site.timezone)"),
+        "{err}"
+    );
+}
+
 /// Every example carries expectations, and they pass (what an installer's CI would run).
 #[test]
 fn every_example_passes_its_own_expectations() {
