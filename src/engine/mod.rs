@@ -644,7 +644,7 @@ impl Engine {
         }
         self.reserved = reserved;
         if self.covers {
-            new_power += self.cover_house(grid.map(|g| (g, grid_at)));
+            new_power += self.cover_house(grid.map(|g| (g, grid_at)), hidden);
             self.record_cover(now);
         }
         let site = &*self.site;
@@ -681,9 +681,17 @@ impl Engine {
     /// inhibit rule, a lost signal or an outage keep the decision as it was. Runs after
     /// the loads are decided (a discharge is not surplus for anyone this tick) and
     /// returns the power it adds to the loads' total: the discharges, negative.
-    fn cover_house(&mut self, reading: Option<(Power, Timestamp)>) -> Power {
+    ///
+    /// `held_back` is the PV the inverter is being held back from (the guard's hidden
+    /// headroom): import the array could cover is not the house's to be paid by the
+    /// battery. Without it, a discharge on a curtailed site only displaced PV: the guard
+    /// cut the inverter by what the battery gave, the meter still read the import
+    /// target, and every reading of noise above it raised the discharge, until the
+    /// battery was emptying at noon under a curtailed array and each of its steps
+    /// exported for a reading or two.
+    fn cover_house(&mut self, reading: Option<(Power, Timestamp)>, held_back: Power) -> Power {
         let site = &*self.site;
-        let leave = site.import_target.max(discharge::MARGIN);
+        let leave = site.import_target.max(discharge::MARGIN) + held_back;
         let mut added = Power::ZERO;
         for (l, st) in site.loads.iter().zip(self.loads.iter_mut()) {
             let (Some(cover), LoadKind::Battery { discharge: Some(d), soc, .. }) = (&mut st.cover, &l.kind) else {
