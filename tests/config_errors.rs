@@ -781,3 +781,10 @@ loads:
     assert!(spillway::config::load_str("site.yaml", &yaml(", type: i32", "")).is_ok());
     assert!(codes(&yaml(", type: i16", ", type: f32")).is_empty());
 }
+
+/// A tariff with a flat price and blocks, bounds that fall, a time-of-use window on
+/// blocks and a day set that does not exist: every mistake at once, not the first of them.
+#[test]
+fn every_mistake_of_a_tariff_is_reported_in_one_run() {
+    check("tariff-mistakes");
+}
