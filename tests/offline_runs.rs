@@ -822,7 +822,18 @@ fn expectations_that_would_be_ignored_in_part_are_refused() {
         )),
         ["C0609", "C0609"]
     );
-    assert_eq!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: warm }}\n")), ["C0610"]);
+    // Litres are a quantity like any other: a bare number needs its unit (0 excepted),
+    // as `export_over_limit` and `grace` do.
+    let check = |v: &str| codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: {v} }}\n"));
+    assert_eq!(check("warm"), ["C0302"]);
+    assert_eq!(check("5"), ["C0303"]);
+    assert_eq!(check("2kWh"), ["C0304"]);
+    assert!(check("0").is_empty());
+    assert_eq!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, export_over_limit: 5 }}\n")), ["C0303"]);
+    assert_eq!(
+        codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, always: export <= 10W, grace: 5 }}\n")),
+        ["C0303"]
+    );
     assert_eq!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: -5L }}\n")), ["C0610"]);
     assert!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: 20 L }}\n")).is_empty());
     // The example's own expectations are fine.

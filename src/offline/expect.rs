@@ -227,22 +227,20 @@ fn rule(node: &Node, site: &Site, text: &str, d: &mut Diagnostics) -> Option<Rul
     }
 }
 
-/// A volume of water in litres: `20L`, `20 L` or a bare number of litres.
+/// A volume of water in litres (`20L`, `20 L`; a bare number only for 0), read like every
+/// other quantity of the site file, so a bare `5` is refused as `rated: 1100` is.
 fn litres(node: &Node, d: &mut Diagnostics) -> Option<f64> {
-    let text = values::word(node, "`lukewarm_at_most`", d)?;
-    let number = text.trim().trim_end_matches(['L', 'l']).trim();
-    match number.parse::<f64>() {
-        Ok(v) if v.is_finite() && v >= 0.0 => Some(v),
-        _ => {
-            d.error(
-                "C0610",
-                format!("`lukewarm_at_most` takes a volume in litres, not `{text}`"),
-                node.span.clone(),
-                "e.g. `lukewarm_at_most: 20L` (0L: not a drop colder than asked for)",
-            );
-            None
-        }
+    let v = values::quantity(node, crate::units::Dimension::Volume, "`lukewarm_at_most`", d)?;
+    if v < 0.0 || v.is_nan() {
+        d.error(
+            "C0610",
+            "`lukewarm_at_most` cannot be negative",
+            node.span.clone(),
+            "e.g. `lukewarm_at_most: 20L` (0L: not a drop colder than asked for)",
+        );
+        return None;
     }
+    Some(v)
 }
 
 /// `days` are the names of every test day, those with an error of their own included.
