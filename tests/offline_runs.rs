@@ -897,6 +897,11 @@ fn a_failing_expectation_exits_one_with_the_moment_and_the_reason() {
     assert_eq!(out.status.code(), Some(1), "{stdout}");
     assert!(stdout.contains("FAIL") && stdout.contains("17:05"), "{stdout}");
     assert!(stdout.contains("water_heater:"), "the engine's reason is shown: {stdout}");
+    // The inverter's reason in the words of the status page and its JSON, not a Rust name.
+    let json = spillway(["test", file.to_str().unwrap(), "--report", "json"]);
+    let json = String::from_utf8_lossy(&json.stdout);
+    assert!(json.contains("inverter limited to") && json.contains("(export_guard)"), "{json}");
+    assert!(!json.contains("ExportGuard"), "{json}");
     let _ = std::fs::remove_dir_all(&dir);
 }
 

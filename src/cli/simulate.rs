@@ -120,7 +120,17 @@ pub fn prepare_for(path: &Path, args: &RunArgs, uses_weather: bool) -> anyhow::R
     anyhow::ensure!(days <= max, "a run lasts at most {max} days (ten years), not {days}");
     let seed = args.seed.or(defaults.seed).or(plant.seed).unwrap_or(1);
     let (sky, weather_label) = match args.weather.as_deref() {
-        None => (None, format!("{:?}", plant.weather.sky).to_lowercase()),
+        // The words `--weather` and the plant's `weather.sky` take, not the Rust names.
+        None => (
+            None,
+            match plant.weather.sky {
+                WeatherKind::Clear => "clear",
+                WeatherKind::Mixed => "mixed",
+                WeatherKind::Overcast => "overcast",
+                WeatherKind::Varied => "varied",
+            }
+            .to_owned(),
+        ),
         Some("clear") => (Some(WeatherKind::Clear), "clear".to_owned()),
         Some("mixed") => (Some(WeatherKind::Mixed), "mixed".to_owned()),
         Some("overcast") => (Some(WeatherKind::Overcast), "overcast".to_owned()),

@@ -409,7 +409,7 @@ fn reasons(engine: &Engine, site: &Site) -> String {
     }
     let d = engine.decisions();
     if let Some(l) = d.inverter_limit {
-        let _ = write!(s, "; inverter limited to {l} ({:?})", d.limit_reason);
+        let _ = write!(s, "; inverter limited to {l} ({})", d.limit_reason);
     }
     s
 }
