@@ -1349,3 +1349,43 @@ fn compare_on_a_recording_runs_both_rule_sets_on_it_and_matches_the_replay() {
     assert!(String::from_utf8_lossy(&out.stderr).contains("--weather does not apply with --recorded"));
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// The text report's months are rounded to the cent, and its total is their sum, as on a
+/// bill: a reader adding up the months must get the printed total (three months of
+/// 10.006, 20.006 and 30.006 used to print 10.01 + 20.01 + 30.01 under a total of 60.02).
+#[test]
+fn the_printed_months_add_up_to_the_printed_total() {
+    let loaded = load(&example("zero-export-house.yaml"));
+    let tariff = loaded.tariff.as_ref().expect("the example has a tariff");
+    let months = |costs: [f64; 3]| RunOutput {
+        months: (0..3)
+            .map(|i| offline::run::MonthFigures {
+                year: 2026,
+                month: i + 1,
+                cost: costs[i as usize],
+                ..Default::default()
+            })
+            .collect(),
+        cost: costs.iter().sum(),
+        ..Default::default()
+    };
+    let run = months([10.006, 20.006, 30.006]);
+    let baseline = months([20.004, 20.004, 20.004]);
+    let info = offline::report::RunInfo {
+        site: "s".into(),
+        from: "2026-01-01".into(),
+        to: "2026-03-31".into(),
+        days: 90,
+        seed: 1,
+        weather: "clear".into(),
+        step_s: 1.0,
+    };
+    let report = offline::report::build(&loaded.site, Some(tariff), info, &run, &baseline);
+    let cost = report.cost.as_ref().unwrap();
+    assert_eq!((cost.total, cost.baseline, cost.savings), (60.03, 60.0, -0.03));
+    let printed: f64 = report.months.iter().map(|m| m.cost).sum();
+    assert!((printed - cost.total).abs() < 1e-9, "{printed} against {}", cost.total);
+    let text = report.to_text();
+    let c = &tariff.currency;
+    assert!(text.contains(&format!("cost {c}60.03 against {c}60.00 without diversion: saves {c}-0.03")), "{text}");
+}

@@ -349,11 +349,15 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
             }
         })
         .collect();
-    let cost = tariff.map(|t| CostReport {
-        currency: t.currency.clone(),
-        total: r2(run.cost),
-        baseline: r2(baseline.cost),
-        savings: r2(baseline.cost - run.cost),
+    // As on a bill: each month is rounded to the cent and the total is the sum of the
+    // rounded months, so the printed months add up to the printed total (and the savings
+    // to the difference of the two printed totals).
+    let billed = |r: &RunOutput| {
+        if r.months.is_empty() { r2(r.cost) } else { r2(r.months.iter().map(|m| r2(m.cost)).sum()) }
+    };
+    let cost = tariff.map(|t| {
+        let (total, base) = (billed(run), billed(baseline));
+        CostReport { currency: t.currency.clone(), total, baseline: base, savings: r2(base - total) }
     });
     Report {
         run: info,
