@@ -1389,3 +1389,33 @@ fn the_printed_months_add_up_to_the_printed_total() {
     let c = &tariff.currency;
     assert!(text.contains(&format!("cost {c}60.03 against {c}60.00 without diversion: saves {c}-0.03")), "{text}");
 }
+
+/// A date written right that names a day the calendar lacks is told so, in the site file
+/// and on the command line, not that it must be written as it was ("must be YYYY-MM-DD")
+/// nor that some input is "out of range".
+#[test]
+fn a_date_that_does_not_exist_is_named_as_such() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let cut = text.find("expect:").expect("the example has expectations");
+    let site = format!(
+        "{}expect:\n  days:\n    - {{ name: d, weather: clear, date: 2026-02-30 }}\n  checks:\n    - {{ name: a, obligations_met: true }}\n",
+        &text[..cut]
+    );
+    let loaded = config::load_str("x.yaml", &site).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let diags = expect::read(&loaded).unwrap_err();
+    assert_eq!(diags.len(), 1, "{diags:?}");
+    assert_eq!((diags[0].code, diags[0].message.as_str()), ("C0601", "there is no date 2026-02-30"));
+    let shown = spillway::diag::render("x.yaml", &site, &diags, false);
+    assert!(shown.contains("February 2026 has 28 days"), "{shown}");
+
+    let path = example("zero-export-house.yaml");
+    for flags in [["--from", "2026-02-30", "--days", "1"], ["--from", "2026-02-01", "--to", "2026-02-29"]] {
+        let out = spillway(["simulate", path.to_str().unwrap()].into_iter().chain(flags));
+        let stderr = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{stderr}");
+        assert!(stderr.contains("no such date: February 2026 has"), "{stderr}");
+        assert!(!stderr.contains("out of range"), "{stderr}");
+    }
+    let out = spillway(["simulate", path.to_str().unwrap(), "--from", "21/06/2026"]);
+    assert!(String::from_utf8_lossy(&out.stderr).contains("not a date in the form YYYY-MM-DD"));
+}

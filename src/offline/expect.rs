@@ -186,11 +186,17 @@ fn read_day(node: &Node, d: &mut Diagnostics) -> (Option<String>, Option<TestDay
         // An empty date, or a list, is reported like any value of the wrong shape: a day
         // without its date is not run, and must not vanish in silence.
         let t = values::word(n, "the day's date", d)?;
-        let parsed = NaiveDate::parse_from_str(&t, "%Y-%m-%d").ok();
-        if parsed.is_none() {
-            d.error("C0601", "`date` must be YYYY-MM-DD", n.span.clone(), "e.g. 2026-06-21");
+        match values::parse_date(&t) {
+            Ok(date) => Some(date),
+            Err(values::DateError::NotADate) => {
+                d.error("C0601", "`date` must be YYYY-MM-DD", n.span.clone(), "e.g. 2026-06-21");
+                None
+            }
+            Err(values::DateError::NoSuchDay(why)) => {
+                d.error("C0601", format!("there is no date {}", t.trim()), n.span.clone(), why);
+                None
+            }
         }
-        parsed
     });
     let sky = match m.get("weather") {
         None => Some(None),
