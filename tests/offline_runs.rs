@@ -493,6 +493,12 @@ fn a_replay_reports_its_bad_row_and_gap_and_still_reports() {
     );
     let notices = json["replay"]["notices"].as_array().unwrap();
     assert!(notices.iter().any(|n| n.as_str().unwrap().contains("outside the recording")), "{notices:?}");
+    // A text report says it once, in the report, not also on stderr for the same terminal.
+    let text = spillway(["replay", site.to_str().unwrap(), csv.to_str().unwrap(), "--quiet", "--days", "3"]);
+    assert!(text.status.success(), "{}", String::from_utf8_lossy(&text.stderr));
+    let all = format!("{}{}", String::from_utf8_lossy(&text.stderr), String::from_utf8_lossy(&text.stdout));
+    assert_eq!(all.matches("outside the recording").count(), 1, "{all}");
+    assert!(all.contains("warning: 48.0 h of the run lie outside the recording"), "{all}");
     // `--from` alone moves the first day and keeps the recording's number of days.
     let moved = replay(&["--from", "2026-05-13"]);
     let json: serde_json::Value = serde_json::from_slice(&moved.stdout).unwrap();
