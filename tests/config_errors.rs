@@ -797,3 +797,10 @@ fn a_no_export_site_with_an_import_target_near_zero_is_warned_about() {
     assert!(!codes(&yaml(", import_target: 50W")).contains(&"C0286"));
     assert!(!codes(&yaml("")).contains(&"C0286"), "the default (50 W) is fine");
 }
+
+/// A tariff with a flat price and blocks, bounds that fall, a time-of-use window on
+/// blocks and a day set that does not exist: every mistake at once, not the first of them.
+#[test]
+fn every_mistake_of_a_tariff_is_reported_in_one_run() {
+    check("tariff-mistakes");
+}

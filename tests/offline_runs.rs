@@ -493,6 +493,12 @@ fn a_replay_reports_its_bad_row_and_gap_and_still_reports() {
     );
     let notices = json["replay"]["notices"].as_array().unwrap();
     assert!(notices.iter().any(|n| n.as_str().unwrap().contains("outside the recording")), "{notices:?}");
+    // A text report says it once, in the report, not also on stderr for the same terminal.
+    let text = spillway(["replay", site.to_str().unwrap(), csv.to_str().unwrap(), "--quiet", "--days", "3"]);
+    assert!(text.status.success(), "{}", String::from_utf8_lossy(&text.stderr));
+    let all = format!("{}{}", String::from_utf8_lossy(&text.stderr), String::from_utf8_lossy(&text.stdout));
+    assert_eq!(all.matches("outside the recording").count(), 1, "{all}");
+    assert!(all.contains("warning: 48.0 h of the run lie outside the recording"), "{all}");
     // `--from` alone moves the first day and keeps the recording's number of days.
     let moved = replay(&["--from", "2026-05-13"]);
     let json: serde_json::Value = serde_json::from_slice(&moved.stdout).unwrap();
@@ -873,7 +879,18 @@ fn expectations_that_would_be_ignored_in_part_are_refused() {
         )),
         ["C0609", "C0609"]
     );
-    assert_eq!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: warm }}\n")), ["C0610"]);
+    // Litres are a quantity like any other: a bare number needs its unit (0 excepted),
+    // as `export_over_limit` and `grace` do.
+    let check = |v: &str| codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: {v} }}\n"));
+    assert_eq!(check("warm"), ["C0302"]);
+    assert_eq!(check("5"), ["C0303"]);
+    assert_eq!(check("2kWh"), ["C0304"]);
+    assert!(check("0").is_empty());
+    assert_eq!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, export_over_limit: 5 }}\n")), ["C0303"]);
+    assert_eq!(
+        codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, always: export <= 10W, grace: 5 }}\n")),
+        ["C0303"]
+    );
     assert_eq!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: -5L }}\n")), ["C0610"]);
     assert!(codes(&format!("expect:\n{day}  checks:\n    - {{ name: a, lukewarm_at_most: 20 L }}\n")).is_empty());
     // The example's own expectations are fine.
@@ -937,6 +954,11 @@ fn a_failing_expectation_exits_one_with_the_moment_and_the_reason() {
     assert_eq!(out.status.code(), Some(1), "{stdout}");
     assert!(stdout.contains("FAIL") && stdout.contains("17:05"), "{stdout}");
     assert!(stdout.contains("water_heater:"), "the engine's reason is shown: {stdout}");
+    // The inverter's reason in the words of the status page and its JSON, not a Rust name.
+    let json = spillway(["test", file.to_str().unwrap(), "--report", "json"]);
+    let json = String::from_utf8_lossy(&json.stdout);
+    assert!(json.contains("inverter limited to") && json.contains("(export_guard)"), "{json}");
+    assert!(!json.contains("ExportGuard"), "{json}");
     let _ = std::fs::remove_dir_all(&dir);
 }
 
@@ -1383,4 +1405,74 @@ fn compare_on_a_recording_runs_both_rule_sets_on_it_and_matches_the_replay() {
     assert_eq!(out.status.code(), Some(2), "{}", String::from_utf8_lossy(&out.stderr));
     assert!(String::from_utf8_lossy(&out.stderr).contains("--weather does not apply with --recorded"));
     let _ = std::fs::remove_dir_all(&dir);
+}
+
+/// The text report's months are rounded to the cent, and its total is their sum, as on a
+/// bill: a reader adding up the months must get the printed total (three months of
+/// 10.006, 20.006 and 30.006 used to print 10.01 + 20.01 + 30.01 under a total of 60.02).
+#[test]
+fn the_printed_months_add_up_to_the_printed_total() {
+    let loaded = load(&example("zero-export-house.yaml"));
+    let tariff = loaded.tariff.as_ref().expect("the example has a tariff");
+    let months = |costs: [f64; 3]| RunOutput {
+        months: (0..3)
+            .map(|i| offline::run::MonthFigures {
+                year: 2026,
+                month: i + 1,
+                cost: costs[i as usize],
+                ..Default::default()
+            })
+            .collect(),
+        cost: costs.iter().sum(),
+        ..Default::default()
+    };
+    let run = months([10.006, 20.006, 30.006]);
+    let baseline = months([20.004, 20.004, 20.004]);
+    let info = offline::report::RunInfo {
+        site: "s".into(),
+        from: "2026-01-01".into(),
+        to: "2026-03-31".into(),
+        days: 90,
+        seed: 1,
+        weather: "clear".into(),
+        step_s: 1.0,
+    };
+    let report = offline::report::build(&loaded.site, Some(tariff), info, &run, &baseline);
+    let cost = report.cost.as_ref().unwrap();
+    assert_eq!((cost.total, cost.baseline, cost.savings), (60.03, 60.0, -0.03));
+    let printed: f64 = report.months.iter().map(|m| m.cost).sum();
+    assert!((printed - cost.total).abs() < 1e-9, "{printed} against {}", cost.total);
+    let text = report.to_text();
+    let c = &tariff.currency;
+    assert!(text.contains(&format!("cost {c}60.03 against {c}60.00 without diversion: saves {c}-0.03")), "{text}");
+}
+
+/// A date written right that names a day the calendar lacks is told so, in the site file
+/// and on the command line, not that it must be written as it was ("must be YYYY-MM-DD")
+/// nor that some input is "out of range".
+#[test]
+fn a_date_that_does_not_exist_is_named_as_such() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let cut = text.find("expect:").expect("the example has expectations");
+    let site = format!(
+        "{}expect:\n  days:\n    - {{ name: d, weather: clear, date: 2026-02-30 }}\n  checks:\n    - {{ name: a, obligations_met: true }}\n",
+        &text[..cut]
+    );
+    let loaded = config::load_str("x.yaml", &site).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let diags = expect::read(&loaded).unwrap_err();
+    assert_eq!(diags.len(), 1, "{diags:?}");
+    assert_eq!((diags[0].code, diags[0].message.as_str()), ("C0601", "there is no date 2026-02-30"));
+    let shown = spillway::diag::render("x.yaml", &site, &diags, false);
+    assert!(shown.contains("February 2026 has 28 days"), "{shown}");
+
+    let path = example("zero-export-house.yaml");
+    for flags in [["--from", "2026-02-30", "--days", "1"], ["--from", "2026-02-01", "--to", "2026-02-29"]] {
+        let out = spillway(["simulate", path.to_str().unwrap()].into_iter().chain(flags));
+        let stderr = String::from_utf8_lossy(&out.stderr);
+        assert_eq!(out.status.code(), Some(2), "{stderr}");
+        assert!(stderr.contains("no such date: February 2026 has"), "{stderr}");
+        assert!(!stderr.contains("out of range"), "{stderr}");
+    }
+    let out = spillway(["simulate", path.to_str().unwrap(), "--from", "21/06/2026"]);
+    assert!(String::from_utf8_lossy(&out.stderr).contains("not a date in the form YYYY-MM-DD"));
 }

@@ -132,12 +132,7 @@ pub fn mode_word(mode: Mode) -> &'static str {
 
 /// The reason for the inverter limit as a word.
 pub fn limit_word(reason: LimitReason) -> &'static str {
-    match reason {
-        LimitReason::None => "none",
-        LimitReason::ExportGuard => "export_guard",
-        LimitReason::Escalated => "escalated",
-        LimitReason::Failsafe => "failsafe",
-    }
+    reason.word()
 }
 
 #[cfg(test)]

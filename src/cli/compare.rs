@@ -67,7 +67,13 @@ pub fn run(
     let Some(mut a) = prepare_for(a_path, args, uses_weather)? else { return Ok(ExitCode::from(1)) };
     let Some(mut b) = prepare_for(b_path, args, uses_weather)? else { return Ok(ExitCode::from(1)) };
     let recording = match recorded {
-        Some(csv) => Some(load_recording(csv, &mut a, args)?.recorded),
+        Some(csv) => {
+            let r = load_recording(csv, &mut a, args)?;
+            for w in &r.warnings {
+                eprintln!("{}: warning: {w}", csv.display());
+            }
+            Some(r.recorded)
+        }
         None => None,
     };
     let recording = recording.as_ref();

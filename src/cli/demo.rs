@@ -47,9 +47,16 @@ pub enum Weather {
 }
 
 fn parse_time(text: &str) -> Result<Timestamp, String> {
-    chrono::DateTime::parse_from_rfc3339(text)
-        .map(|t| Timestamp::from_utc(t.with_timezone(&chrono::Utc)))
-        .map_err(|e| format!("`{text}` is not an RFC 3339 time like 2026-06-21T10:00:00+01:00 ({e})"))
+    chrono::DateTime::parse_from_rfc3339(text).map(|t| Timestamp::from_utc(t.with_timezone(&chrono::Utc))).map_err(
+        |e| match text.get(..10).map(spillway::config::values::parse_date) {
+            // chrono calls a day the calendar lacks "out of range": say which.
+            Some(Err(no_day @ spillway::config::values::DateError::NoSuchDay(_))) => format!("`{text}`: {no_day}"),
+            _ if e.kind() == chrono::format::ParseErrorKind::OutOfRange => format!(
+                "`{text}` has a field out of range: hours run 00–23, minutes and seconds 00–59, offsets up to ±23:59"
+            ),
+            _ => format!("`{text}` is not an RFC 3339 time like 2026-06-21T10:00:00+01:00 ({e})"),
+        },
+    )
 }
 
 pub fn run(args: DemoArgs, format: LogFormat) -> anyhow::Result<ExitCode> {

@@ -19,7 +19,15 @@ pub fn run(site: &Path, csv: &Path, args: &RunArgs, format: Format, chart: Optio
     if let Some(file) = chart {
         super::simulate::check_writable(file)?;
     }
-    let Recording { recorded, notices, coverage } = load_recording(csv, &mut p, args)?;
+    let Recording { recorded, notices, coverage, warnings } = load_recording(csv, &mut p, args)?;
+    // The text report's last line gives these hours with what they mean; said on stderr
+    // as well, they read twice on a terminal. A JSON report is for a program: the person
+    // running it sees them here (and the program in `replay.notices`).
+    if format == Format::Json {
+        for w in &warnings {
+            eprintln!("{}: warning: {w}", csv.display());
+        }
+    }
     let rejected = recorded.rejected();
     let progress = Progress::new(args.quiet, "replaying");
     let options = |controller: Controller| {
@@ -80,10 +88,13 @@ pub(super) struct Recording {
     pub notices: Vec<String>,
     /// What it covers of the run.
     pub coverage: Coverage,
+    /// More than an hour of the run outside the recording or in its gaps (also in
+    /// `notices`), for the caller to print once.
+    pub warnings: Vec<String>,
 }
 
 /// Reads `csv` in `p`'s time zone, prints its rejected rows and gaps (each with its line
-/// number) and a warning for more than an hour of the run it does not measure, and
+/// number), returns a warning for more than an hour of the run it does not measure, and
 /// lets it decide what the command line does not: the first day unless `--from`, the
 /// number of days unless `--days` or `--to`. Sets `p`'s weather label.
 pub(super) fn load_recording(csv: &Path, p: &mut Prepared, args: &RunArgs) -> anyhow::Result<Recording> {
@@ -94,6 +105,11 @@ pub(super) fn load_recording(csv: &Path, p: &mut Prepared, args: &RunArgs) -> an
     }
     if rejected > 0 {
         eprintln!("{}: {rejected} row(s) rejected, {} used", csv.display(), recorded.t_ms.len());
+    }
+    let array_w = p.plant.solar.as_ref().map_or(0.0, |s| s.nameplate_w());
+    let kw_suspects = recorded.kw_suspects(array_w);
+    for w in &kw_suspects {
+        eprintln!("{}: warning: {w}", csv.display());
     }
     let (first, last) = recorded.span_ms();
     let tz = p.site.timezone;
@@ -106,21 +122,13 @@ pub(super) fn load_recording(csv: &Path, p: &mut Prepared, args: &RunArgs) -> an
         p.days = recorded_days;
     }
     let mut notices: Vec<String> = recorded.notices.iter().map(|n| format!("line {}: {}", n.line, n.message)).collect();
+    notices.extend(kw_suspects);
     let coverage = coverage(&recorded, tz, p.from, p.days);
-    // An hour is noise (a recording rarely starts exactly at midnight); more is called out,
-    // since the report counts those hours as if they had been measured.
-    for (hours, what) in [
-        (coverage.outside_h, "lie outside the recording: its first and last values are held there, not measured"),
-        (coverage.bridged_h, "fall in gaps of over 15 min between rows: interpolated there, not measured"),
-    ] {
-        if hours > 1.0 {
-            let note = format!("{hours:.1} h of the run {what}");
-            eprintln!("{}: warning: {note}", csv.display());
-            notices.push(note);
-        }
-    }
+    // The report counts those hours as if they had been measured: call them out.
+    let warnings = report::coverage_warnings(coverage.outside_h, coverage.bridged_h);
+    notices.extend(warnings.iter().cloned());
     p.weather_label = format!("recorded ({})", csv.display());
-    Ok(Recording { recorded, notices, coverage })
+    Ok(Recording { recorded, notices, coverage, warnings })
 }
 
 /// How much of a run the recording does not measure.

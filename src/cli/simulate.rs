@@ -22,10 +22,10 @@ pub struct RunArgs {
     pub days: Option<u32>,
     /// First day, YYYY-MM-DD (default: the site's `simulation.from`, else today;
     /// `replay`: the recording's first day).
-    #[arg(long)]
+    #[arg(long, value_parser = parse_date)]
     pub from: Option<NaiveDate>,
     /// Last day (inclusive), YYYY-MM-DD.
-    #[arg(long, requires = "from")]
+    #[arg(long, requires = "from", value_parser = parse_date)]
     pub to: Option<NaiveDate>,
     /// Seed of the weather, household and meter noise (default: the site's, else 1).
     #[arg(long)]
@@ -40,6 +40,12 @@ pub struct RunArgs {
     /// No progress bar.
     #[arg(long)]
     pub quiet: bool,
+}
+
+/// Parses a date flag, saying whether it is not written YYYY-MM-DD or names a day that
+/// does not exist (`2026-02-30`).
+pub fn parse_date(text: &str) -> Result<NaiveDate, String> {
+    config::values::parse_date(text).map_err(|e| e.to_string())
 }
 
 /// Parses a positive duration: `1s`, `500ms`, `2min`.
@@ -120,7 +126,17 @@ pub fn prepare_for(path: &Path, args: &RunArgs, uses_weather: bool) -> anyhow::R
     anyhow::ensure!(days <= max, "a run lasts at most {max} days (ten years), not {days}");
     let seed = args.seed.or(defaults.seed).or(plant.seed).unwrap_or(1);
     let (sky, weather_label) = match args.weather.as_deref() {
-        None => (None, format!("{:?}", plant.weather.sky).to_lowercase()),
+        // The words `--weather` and the plant's `weather.sky` take, not the Rust names.
+        None => (
+            None,
+            match plant.weather.sky {
+                WeatherKind::Clear => "clear",
+                WeatherKind::Mixed => "mixed",
+                WeatherKind::Overcast => "overcast",
+                WeatherKind::Varied => "varied",
+            }
+            .to_owned(),
+        ),
         Some("clear") => (Some(WeatherKind::Clear), "clear".to_owned()),
         Some("mixed") => (Some(WeatherKind::Mixed), "mixed".to_owned()),
         Some("overcast") => (Some(WeatherKind::Overcast), "overcast".to_owned()),

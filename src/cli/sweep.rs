@@ -61,6 +61,9 @@ pub fn run(
     jobs: Option<usize>,
 ) -> anyhow::Result<ExitCode> {
     let vary = sweep::parse_vary(vary)?;
+    if let Some(w) = vary.warning() {
+        eprintln!("warning: {w}");
+    }
     if args.days.is_none() && args.to.is_none() {
         args.days = Some(365);
     }

@@ -182,34 +182,37 @@ pub fn read(node: &Node, diags: &mut Diagnostics) -> Option<Tariff> {
     let span = m.span();
     m.finish(diags);
 
-    let import_price = match (import, blocks_node) {
-        (Some(_), Some(b)) => {
-            diags.error(
-                "C0402",
-                "give either a flat `import` price or `blocks`, not both",
-                b.span.clone(),
-                "blocks replace the flat price",
-            );
-            return None;
-        }
-        (None, Some(b)) => ImportPrice::Blocks(read_blocks(b, diags)?),
-        (Some(p), None) => {
-            ImportPrice::Flat { price: p?, time_of_use: tou_node.map_or(Some(Vec::new()), |n| read_tou(n, diags))? }
-        }
-        (None, None) => {
-            diags.error("C0403", "the tariff needs an `import` price or `blocks`", span, "how is import priced?");
-            return None;
-        }
-    };
-    if let (ImportPrice::Blocks(_), Some(n)) = (&import_price, tou_node) {
+    // Every part is read whatever is wrong with the others, so that one run reports all
+    // of the section's mistakes (the loader puts them in file order).
+    let blocks = blocks_node.map(|b| read_blocks(b, diags));
+    let tou = tou_node.map(|n| read_tou(n, diags));
+    if let (Some(_), Some(b)) = (&import, blocks_node) {
+        diags.error(
+            "C0402",
+            "give either a flat `import` price or `blocks`, not both",
+            b.span.clone(),
+            "blocks replace the flat price",
+        );
+    }
+    // With a flat price as well, the windows are not the mistake: the blocks are.
+    if let (None, Some(_), Some(n)) = (&import, blocks_node, tou_node) {
         diags.error(
             "C0402",
             "time-of-use windows need a flat `import` price",
             n.span.clone(),
             "not combined with blocks",
         );
-        return None;
     }
+    let import_price = match (import, blocks) {
+        (Some(p), None) => ImportPrice::Flat { price: p?, time_of_use: tou.unwrap_or(Some(Vec::new()))? },
+        (None, Some(b)) if tou_node.is_none() => ImportPrice::Blocks(b?),
+        (None, None) => {
+            diags.error("C0403", "the tariff needs an `import` price or `blocks`", span, "how is import priced?");
+            return None;
+        }
+        // Both, or blocks with time-of-use windows: reported above.
+        _ => return None,
+    };
     Some(Tariff {
         currency,
         import: import_price,
@@ -232,25 +235,31 @@ fn read_tou(node: &Node, diags: &mut Diagnostics) -> Option<Vec<TouPeriod>> {
         );
         return None;
     };
+    // Every window is read, a bad one included, so each reports its own mistakes.
     let mut out = Vec::new();
+    let mut all_good = true;
     for item in items {
-        let mut m = MapReader::new(item, "a time-of-use window", diags)?;
+        let Some(mut m) = MapReader::new(item, "a time-of-use window", diags) else {
+            all_good = false;
+            continue;
+        };
         let window = m.require("window", diags).and_then(|n| values::window(n, "the window", diags));
         let p = m.require("price", diags).and_then(|n| price(n, "kWh", "the price", diags));
         let days =
             m.get("days").map_or(Some("all"), |n| values::choice(n, &["all", "weekdays", "weekends"], "`days`", diags));
         m.finish(diags);
-        out.push(TouPeriod {
-            window: window?,
-            price: p?,
-            days: match days? {
-                "weekdays" => DaySet::Weekdays,
-                "weekends" => DaySet::Weekends,
-                _ => DaySet::All,
-            },
-        });
+        let (Some(window), Some(price), Some(days)) = (window, p, days) else {
+            all_good = false;
+            continue;
+        };
+        let days = match days {
+            "weekdays" => DaySet::Weekdays,
+            "weekends" => DaySet::Weekends,
+            _ => DaySet::All,
+        };
+        out.push(TouPeriod { window, price, days });
     }
-    Some(out)
+    all_good.then_some(out)
 }
 
 fn read_blocks(node: &Node, diags: &mut Diagnostics) -> Option<Vec<Block>> {
@@ -263,22 +272,33 @@ fn read_blocks(node: &Node, diags: &mut Diagnostics) -> Option<Vec<Block>> {
         );
         return None;
     };
+    // Every block is read, a bad one included, so each reports its own mistakes; a bound
+    // is compared with the highest good bound before it.
     let mut out: Vec<Block> = Vec::new();
+    let mut all_good = true;
+    let mut highest: Option<f64> = None;
     for (i, item) in items.iter().enumerate() {
-        let mut m = MapReader::new(item, "a tariff block", diags)?;
+        let Some(mut m) = MapReader::new(item, "a tariff block", diags) else {
+            all_good = false;
+            continue;
+        };
         let up_to_node = m.get("up_to");
         let up_to = up_to_node.map(|n| values::positive(n, Dimension::Energy, "the block's upper bound", diags));
         let p = m.require("price", diags).and_then(|n| price(n, "kWh", "the price", diags));
         m.finish(diags);
         let up_to_kwh = match up_to {
-            Some(v) => Some(v? / 1000.0),
+            Some(Some(v)) => Some(v / 1000.0),
+            Some(None) => {
+                all_good = false;
+                continue;
+            }
             None => None,
         };
         let last = i + 1 == items.len();
         match (up_to_kwh, last) {
             (None, false) => {
                 diags.error("C0405", "only the last block may be open-ended", item.span.clone(), "add `up_to:`");
-                return None;
+                all_good = false;
             }
             (Some(_), true) => {
                 diags.error(
@@ -287,23 +307,34 @@ fn read_blocks(node: &Node, diags: &mut Diagnostics) -> Option<Vec<Block>> {
                     up_to_node.map_or(item.span.clone(), |n| n.span.clone()),
                     "remove `up_to` from the last block",
                 );
-                return None;
+                all_good = false;
             }
             _ => {}
         }
-        if let (Some(u), Some(prev)) = (up_to_kwh, out.last().and_then(|b| b.up_to_kwh))
-            && u <= prev
-        {
-            diags.error("C0405", "block bounds must increase", item.span.clone(), "not above the previous block");
-            return None;
+        if let Some(u) = up_to_kwh {
+            if let Some(prev) = highest
+                && u <= prev
+            {
+                diags.error(
+                    "C0405",
+                    "block bounds must increase",
+                    up_to_node.map_or(item.span.clone(), |n| n.span.clone()),
+                    format!("not above the previous block's {}kWh", crate::units::trim_number(prev)),
+                );
+                all_good = false;
+            }
+            highest = Some(highest.map_or(u, |h: f64| h.max(u)));
         }
-        out.push(Block { up_to_kwh, price: p? });
+        match p {
+            Some(price) => out.push(Block { up_to_kwh, price }),
+            None => all_good = false,
+        }
     }
-    if out.is_empty() {
+    if items.is_empty() {
         diags.error("C0405", "`blocks` is empty", node.span.clone(), "list at least one block");
         return None;
     }
-    Some(out)
+    all_good.then_some(out)
 }
 
 #[cfg(test)]

@@ -142,6 +142,50 @@ pub fn positive(node: &Node, dimension: Dimension, what: &str, diags: &mut Diagn
     Some(v)
 }
 
+/// Why a text is not a date: not written `YYYY-MM-DD`, or written so but naming a day
+/// the calendar does not have (`2026-02-30`), which deserves its own words — "must be
+/// YYYY-MM-DD" would tell the user to write what they did write.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub enum DateError {
+    /// Not of the form `YYYY-MM-DD`.
+    NotADate,
+    /// Of that form, but no such day: why (`February 2026 has 28 days`).
+    NoSuchDay(String),
+}
+
+impl std::fmt::Display for DateError {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            DateError::NotADate => f.write_str("not a date in the form YYYY-MM-DD, e.g. 2026-06-21"),
+            DateError::NoSuchDay(why) => write!(f, "no such date: {why}"),
+        }
+    }
+}
+
+/// Parses a local date, `YYYY-MM-DD`.
+pub fn parse_date(text: &str) -> Result<chrono::NaiveDate, DateError> {
+    let text = text.trim();
+    if let Ok(d) = chrono::NaiveDate::parse_from_str(text, "%Y-%m-%d") {
+        return Ok(d);
+    }
+    let parts: Vec<&str> = text.split('-').collect();
+    let numbers: Option<Vec<u32>> = match parts.as_slice() {
+        [y, m, d] if y.len() == 4 && (1..=2).contains(&m.len()) && (1..=2).contains(&d.len()) => {
+            parts.iter().map(|p| p.parse::<u32>().ok().filter(|_| p.bytes().all(|b| b.is_ascii_digit()))).collect()
+        }
+        _ => None,
+    };
+    let Some(&[year, month, day]) = numbers.as_deref() else { return Err(DateError::NotADate) };
+    let Some(first) = chrono::NaiveDate::from_ymd_opt(year as i32, month, 1) else {
+        return Err(DateError::NoSuchDay(format!("there is no month {month:02} (months run from 01 to 12)")));
+    };
+    let days = first.checked_add_months(chrono::Months::new(1)).map_or(31, |next| (next - first).num_days());
+    if day == 0 {
+        return Err(DateError::NoSuchDay("days of the month count from 01".to_owned()));
+    }
+    Err(DateError::NoSuchDay(format!("{} {year} has {days} days", first.format("%B"))))
+}
+
 /// Parses `HH:MM` or `HH:MM:SS`; `24:00` is the end of the day (midnight).
 pub fn parse_time_of_day(text: &str) -> Option<NaiveTime> {
     let text = text.trim();
@@ -356,4 +400,28 @@ pub fn is_name(s: &str) -> bool {
     let mut chars = s.chars();
     matches!(chars.next(), Some(c) if c.is_ascii_lowercase() || c == '_')
         && chars.all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '_')
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_date_in_the_right_form_that_does_not_exist_says_so() {
+        assert_eq!(parse_date("2026-06-21").unwrap().to_string(), "2026-06-21");
+        assert_eq!(parse_date("2026-02-30").unwrap_err().to_string(), "no such date: February 2026 has 28 days");
+        assert_eq!(parse_date("2028-02-30").unwrap_err().to_string(), "no such date: February 2028 has 29 days");
+        assert_eq!(parse_date("2026-04-31").unwrap_err().to_string(), "no such date: April 2026 has 30 days");
+        assert_eq!(
+            parse_date("2026-13-01").unwrap_err().to_string(),
+            "no such date: there is no month 13 (months run from 01 to 12)"
+        );
+        assert_eq!(
+            parse_date("2026-06-00").unwrap_err(),
+            DateError::NoSuchDay("days of the month count from 01".into())
+        );
+        for not_a_date in ["21/06/2026", "2026-06", "tomorrow", "2026-06-21T10:00"] {
+            assert_eq!(parse_date(not_a_date), Err(DateError::NotADate), "{not_a_date}");
+        }
+    }
 }

@@ -219,6 +219,25 @@ pub enum LimitReason {
     Failsafe,
 }
 
+impl LimitReason {
+    /// The word for it wherever a person or a program reads it (status page, JSON, MQTT,
+    /// `spillway test`): one spelling everywhere, never the Rust name.
+    pub fn word(self) -> &'static str {
+        match self {
+            LimitReason::None => "none",
+            LimitReason::ExportGuard => "export_guard",
+            LimitReason::Escalated => "escalated",
+            LimitReason::Failsafe => "failsafe",
+        }
+    }
+}
+
+impl fmt::Display for LimitReason {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.word())
+    }
+}
+
 /// The site-level state of the tick.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Mode {

@@ -186,11 +186,17 @@ fn read_day(node: &Node, d: &mut Diagnostics) -> (Option<String>, Option<TestDay
         // An empty date, or a list, is reported like any value of the wrong shape: a day
         // without its date is not run, and must not vanish in silence.
         let t = values::word(n, "the day's date", d)?;
-        let parsed = NaiveDate::parse_from_str(&t, "%Y-%m-%d").ok();
-        if parsed.is_none() {
-            d.error("C0601", "`date` must be YYYY-MM-DD", n.span.clone(), "e.g. 2026-06-21");
+        match values::parse_date(&t) {
+            Ok(date) => Some(date),
+            Err(values::DateError::NotADate) => {
+                d.error("C0601", "`date` must be YYYY-MM-DD", n.span.clone(), "e.g. 2026-06-21");
+                None
+            }
+            Err(values::DateError::NoSuchDay(why)) => {
+                d.error("C0601", format!("there is no date {}", t.trim()), n.span.clone(), why);
+                None
+            }
         }
-        parsed
     });
     let sky = match m.get("weather") {
         None => Some(None),
@@ -227,22 +233,20 @@ fn rule(node: &Node, site: &Site, text: &str, d: &mut Diagnostics) -> Option<Rul
     }
 }
 
-/// A volume of water in litres: `20L`, `20 L` or a bare number of litres.
+/// A volume of water in litres (`20L`, `20 L`; a bare number only for 0), read like every
+/// other quantity of the site file, so a bare `5` is refused as `rated: 1100` is.
 fn litres(node: &Node, d: &mut Diagnostics) -> Option<f64> {
-    let text = values::word(node, "`lukewarm_at_most`", d)?;
-    let number = text.trim().trim_end_matches(['L', 'l']).trim();
-    match number.parse::<f64>() {
-        Ok(v) if v.is_finite() && v >= 0.0 => Some(v),
-        _ => {
-            d.error(
-                "C0610",
-                format!("`lukewarm_at_most` takes a volume in litres, not `{text}`"),
-                node.span.clone(),
-                "e.g. `lukewarm_at_most: 20L` (0L: not a drop colder than asked for)",
-            );
-            None
-        }
+    let v = values::quantity(node, crate::units::Dimension::Volume, "`lukewarm_at_most`", d)?;
+    if v < 0.0 || v.is_nan() {
+        d.error(
+            "C0610",
+            "`lukewarm_at_most` cannot be negative",
+            node.span.clone(),
+            "e.g. `lukewarm_at_most: 20L` (0L: not a drop colder than asked for)",
+        );
+        return None;
     }
+    Some(v)
 }
 
 /// `days` are the names of every test day, those with an error of their own included.
@@ -411,7 +415,7 @@ fn reasons(engine: &Engine, site: &Site) -> String {
     }
     let d = engine.decisions();
     if let Some(l) = d.inverter_limit {
-        let _ = write!(s, "; inverter limited to {l} ({:?})", d.limit_reason);
+        let _ = write!(s, "; inverter limited to {l} ({})", d.limit_reason);
     }
     s
 }

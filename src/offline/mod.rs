@@ -316,9 +316,13 @@ pub fn simulation_defaults(loaded: &crate::config::Loaded) -> Result<SimulationD
     let mut diags = Diagnostics::default();
     if let Some(mut m) = MapReader::new(node, "the `simulation` section", &mut diags) {
         if let Some(n) = m.get("from") {
-            match n.scalar_text().and_then(|t| chrono::NaiveDate::parse_from_str(&t, "%Y-%m-%d").ok()) {
-                Some(d) => out.from = Some(d),
-                None => diags.error(
+            use crate::config::values::{DateError, parse_date};
+            match n.scalar_text().map(|t| (parse_date(&t), t)) {
+                Some((Ok(d), _)) => out.from = Some(d),
+                Some((Err(DateError::NoSuchDay(why)), t)) => {
+                    diags.error("C0501", format!("there is no date {}", t.trim()), n.span.clone(), why)
+                }
+                _ => diags.error(
                     "C0501",
                     "`from` must be a date such as 2026-06-15",
                     n.span.clone(),

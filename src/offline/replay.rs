@@ -98,6 +98,12 @@ fn parse_time_after(text: &str, tz: Tz, previous: Option<i64>) -> Result<i64, St
             };
         }
     }
+    // A day the calendar lacks (2026-02-30 12:00) is written right: say what is wrong.
+    if let Some(Err(no_day @ crate::config::values::DateError::NoSuchDay(_))) =
+        t.get(..10).map(crate::config::values::parse_date)
+    {
+        return Err(format!("time \"{t}\": {no_day}"));
+    }
     Err(format!("time \"{t}\" is not RFC 3339, YYYY-MM-DD HH:MM[:SS] or Unix seconds"))
 }
 
@@ -114,8 +120,16 @@ impl Recorded {
         let headers = reader.headers().map_err(|e| fail(format!("no header line: {e}")))?.clone();
         let col = |name: &str| headers.iter().position(|h| h == name);
         let (Some(ct), Some(cp), Some(ch)) = (col("time"), col("pv_w"), col("house_w")) else {
+            // A spreadsheet set to a decimal comma saves `;` between columns: the whole
+            // header then reads as one column, and the names in it are right.
+            let separator = [(';', "`;`"), ('\t', "tabs")]
+                .into_iter()
+                .find(|(c, _)| headers.iter().any(|h| h.contains(*c)))
+                .map_or(String::new(), |(_, name)| {
+                    format!("; this header separates them with {name}: the columns must be separated by commas")
+                });
             return Err(fail(format!(
-                "the header must name the columns time, pv_w and house_w (found: {})",
+                "the header must name the columns time, pv_w and house_w (found: {}){separator}",
                 headers.iter().collect::<Vec<_>>().join(", ")
             )));
         };
@@ -204,6 +218,33 @@ impl Recorded {
             return Err(fail(format!("only {} usable row(s): a replay needs at least two", rec.t_ms.len())));
         }
         Ok(rec)
+    }
+
+    /// A warning when a column looks written in kW although it is read in W: the largest
+    /// PV value under 50 while it would, in kW, be between a fifth and one and a half
+    /// times the site's array (`array_w`, 0 when the plant has none), or the largest
+    /// household value under 20 (a house draws more than 20 W at some moment of any
+    /// recording: a fridge alone does). Values in W that small are all but impossible,
+    /// so false alarms are too.
+    pub fn kw_suspects(&self, array_w: f64) -> Vec<String> {
+        let max = |v: &[f64]| v.iter().copied().fold(0.0, f64::max);
+        let mut out = Vec::new();
+        let pv = max(&self.pv_w);
+        if pv > 0.0 && pv < 50.0 && array_w > 0.0 && (0.2 * array_w..=1.5 * array_w).contains(&(pv * 1000.0)) {
+            out.push(format!(
+                "the largest pv_w is {}, which looks like kW (the array is {} kW): pv_w is read in W, so multiply the column by 1000",
+                crate::units::trim_number(pv),
+                crate::units::trim_number(array_w / 1000.0)
+            ));
+        }
+        let house = max(&self.house_w);
+        if house > 0.0 && house < 20.0 {
+            out.push(format!(
+                "the largest house_w is {}, which looks like kW: house_w is read in W, so multiply the column by 1000",
+                crate::units::trim_number(house)
+            ));
+        }
+        out
     }
 
     /// Rows rejected.
@@ -307,6 +348,61 @@ mod tests {
         assert_eq!(c.at(500)[0], 5.0);
         assert_eq!(c.at(2000)[0], 20.0);
         assert_eq!(c.at(5000)[0], 30.0);
+    }
+
+    fn csv(name: &str, text: &str) -> Result<Recorded, OfflineError> {
+        let dir = std::env::temp_dir().join(format!("spillway-replay-unit-{}", std::process::id()));
+        std::fs::create_dir_all(&dir).unwrap();
+        let path = dir.join(name);
+        std::fs::write(&path, text).unwrap();
+        let tz: Tz = "Europe/Lisbon".parse().unwrap();
+        let out = Recorded::from_csv(&path, tz);
+        std::fs::remove_file(&path).ok();
+        out
+    }
+
+    #[test]
+    fn a_header_split_by_semicolons_or_tabs_is_told_to_use_commas() {
+        for (text, name) in [("time;pv_w;house_w\n1,2,3\n", "`;`"), ("time\tpv_w\thouse_w\n", "tabs")] {
+            let e = csv("sep.csv", text).unwrap_err().to_string();
+            assert!(e.contains("must name the columns time, pv_w and house_w"), "{e}");
+            assert!(
+                e.contains(&format!("this header separates them with {name}: the columns must be separated by commas")),
+                "{e}"
+            );
+        }
+        // A header that is simply wrong gets no such hint.
+        let e = csv("wrong.csv", "when,pv,house\n").unwrap_err().to_string();
+        assert!(!e.contains("separated by commas"), "{e}");
+    }
+
+    #[test]
+    fn columns_that_look_like_kilowatts_are_warned_about() {
+        let rows = |pv: [f64; 3], house: [f64; 3]| {
+            let mut t = String::from("time,pv_w,house_w\n");
+            for (i, (p, h)) in pv.iter().zip(house).enumerate() {
+                t.push_str(&format!("2026-05-02 1{i}:00,{p},{h}\n"));
+            }
+            csv("kw.csv", &t).unwrap()
+        };
+        // A 4 kWp array recorded in kW.
+        let kw = rows([0.5, 3.2, 1.1], [0.4, 0.9, 2.5]);
+        let w = kw.kw_suspects(4000.0);
+        assert_eq!(w.len(), 2, "{w:?}");
+        assert!(w[0].starts_with("the largest pv_w is 3.2, which looks like kW (the array is 4 kW)"), "{w:?}");
+        assert!(w[1].starts_with("the largest house_w is 2.5, which looks like kW"), "{w:?}");
+        // In W, no warning; nor for a dark day's few watts, far below the array in kW.
+        assert!(rows([500.0, 3200.0, 1100.0], [400.0, 900.0, 2500.0]).kw_suspects(4000.0).is_empty());
+        assert!(rows([0.0, 0.3, 0.1], [400.0, 900.0, 2500.0]).kw_suspects(4000.0).is_empty());
+        // No array in the plant: nothing to compare the PV with.
+        assert!(rows([0.5, 3.2, 1.1], [400.0, 900.0, 2500.0]).kw_suspects(0.0).is_empty());
+    }
+
+    #[test]
+    fn a_row_on_a_day_the_calendar_lacks_says_so() {
+        let tz: Tz = "Europe/Lisbon".parse().unwrap();
+        let e = parse_time("2026-02-30 12:00", tz).unwrap_err();
+        assert_eq!(e, "time \"2026-02-30 12:00\": no such date: February 2026 has 28 days");
     }
 
     #[test]

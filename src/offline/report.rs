@@ -349,11 +349,15 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
             }
         })
         .collect();
-    let cost = tariff.map(|t| CostReport {
-        currency: t.currency.clone(),
-        total: r2(run.cost),
-        baseline: r2(baseline.cost),
-        savings: r2(baseline.cost - run.cost),
+    // As on a bill: each month is rounded to the cent and the total is the sum of the
+    // rounded months, so the printed months add up to the printed total (and the savings
+    // to the difference of the two printed totals).
+    let billed = |r: &RunOutput| {
+        if r.months.is_empty() { r2(r.cost) } else { r2(r.months.iter().map(|m| r2(m.cost)).sum()) }
+    };
+    let cost = tariff.map(|t| {
+        let (total, base) = (billed(run), billed(baseline));
+        CostReport { currency: t.currency.clone(), total, baseline: base, savings: r2(base - total) }
     });
     Report {
         run: info,
@@ -568,15 +572,23 @@ impl Report {
         );
         if let Some(r) = &self.replay {
             let _ = write!(o, "replayed {}: {} row(s) used, {} rejected", r.file, r.rows_used, r.rows_rejected);
-            // Hours the report counts that the recording did not measure.
-            if r.bridged_h >= 0.05 || r.outside_h >= 0.05 {
-                let _ = write!(
-                    o,
-                    "; not measured: {:.1} h in gaps over 15 min, {:.1} h outside the recording",
-                    r.bridged_h, r.outside_h
-                );
+            // Hours the report counts that the recording did not measure: a few in
+            // passing; more as a warning saying what they mean (the only one a text
+            // report's reader gets: `replay` keeps stderr quiet about them then).
+            let mut parts = Vec::new();
+            if (0.05..=COVERAGE_WARN_H).contains(&r.bridged_h) {
+                parts.push(format!("{:.1} h in gaps over 15 min", r.bridged_h));
+            }
+            if (0.05..=COVERAGE_WARN_H).contains(&r.outside_h) {
+                parts.push(format!("{:.1} h outside the recording", r.outside_h));
+            }
+            if !parts.is_empty() {
+                let _ = write!(o, "; not measured: {}", parts.join(", "));
             }
             let _ = writeln!(o);
+            for w in coverage_warnings(r.outside_h, r.bridged_h) {
+                let _ = writeln!(o, "warning: {w}");
+            }
         }
         if self.refused_writes > 0 {
             let _ = writeln!(
@@ -587,6 +599,26 @@ impl Report {
         }
         o
     }
+}
+
+/// Hours of a replay outside its recording or in its gaps beyond which they are warned
+/// about: an hour is noise (a recording rarely starts exactly at midnight).
+pub const COVERAGE_WARN_H: f64 = 1.0;
+
+/// The warnings for hours a replay counts that its recording did not measure.
+pub fn coverage_warnings(outside_h: f64, bridged_h: f64) -> Vec<String> {
+    let mut out = Vec::new();
+    if outside_h > COVERAGE_WARN_H {
+        out.push(format!(
+            "{outside_h:.1} h of the run lie outside the recording: its first and last values are held there, not measured"
+        ));
+    }
+    if bridged_h > COVERAGE_WARN_H {
+        out.push(format!(
+            "{bridged_h:.1} h of the run fall in gaps of over 15 min between rows: interpolated there, not measured"
+        ));
+    }
+    out
 }
 
 /// A guard response time for the text report: milliseconds up to 10 s, then seconds,

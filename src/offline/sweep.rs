@@ -25,12 +25,32 @@ pub struct Vary {
     pub values: Vec<f64>,
     /// The unit as written in `FROM` (may be empty).
     pub unit: String,
+    /// `TO` as written, in the unit of `FROM`.
+    pub to: f64,
 }
 
 impl Vary {
     /// Each value as text, as it will be written into the file.
     pub fn texts(&self) -> Vec<String> {
         self.values.iter().map(|v| format!("{}{}", trim_number(*v), self.unit)).collect()
+    }
+
+    /// A warning when the steps from `FROM` pass `TO` by without landing on it, so the
+    /// last value run is not the `TO` the user wrote.
+    pub fn warning(&self) -> Option<String> {
+        let last = *self.values.last()?;
+        let step = self.values.get(1).map_or(0.0, |second| second - self.values[0]);
+        ((self.to - last).abs() > 1e-9 * self.to.abs().max(1.0)).then(|| {
+            let n = |v: f64| format!("{}{}", trim_number(v), self.unit);
+            format!(
+                "--vary {}: steps of {} from {} do not reach {}; the last value run is {}",
+                self.key(),
+                n(step),
+                n(self.values[0]),
+                n(self.to),
+                n(last)
+            )
+        })
     }
 
     /// The path as written.
@@ -69,14 +89,41 @@ pub fn parse_vary(spec: &str) -> Result<Vary, OfflineError> {
     let (from_v, unit) = split_unit(from.trim()).ok_or_else(|| bad("FROM is not a number with an optional unit"))?;
     let (to_v, to_unit) = split_unit(to.trim()).ok_or_else(|| bad("TO is not a number"))?;
     let (step_v, step_unit) = split_unit(step.trim()).ok_or_else(|| bad("STEP is not a number"))?;
-    let same = |u: &str| u.is_empty() || u == unit;
-    if !same(&to_unit) || !same(&step_unit) {
-        return Err(bad("FROM, TO and STEP must use the same unit"));
+    // A part without a unit beside parts with one is not read in their unit: `500` as a
+    // step of a kW range is more likely 500 W than 500 kW, and taken as kW it would run
+    // FROM alone. Rules and site keys refuse such bare numbers too.
+    let parts = [("FROM", from.trim(), &unit), ("TO", to.trim(), &to_unit), ("STEP", step.trim(), &step_unit)];
+    if let Some(&(_, _, with)) = parts.iter().find(|(_, _, u)| !u.is_empty()) {
+        if let Some(&(name, text, _)) = parts.iter().find(|(_, _, u)| u.is_empty()) {
+            let others: Vec<&str> = parts.iter().filter(|(_, _, u)| !u.is_empty()).map(|(n, _, _)| *n).collect();
+            return Err(bad(&format!(
+                "{name} `{text}` needs a unit: {} {} in {with}, so write {name} in {with} too",
+                others.join(" and "),
+                if others.len() > 1 { "are" } else { "is" }
+            )));
+        }
+        if parts.iter().any(|(_, _, u)| u != &with) {
+            let written: Vec<String> = parts.iter().map(|(n, t, _)| format!("{n} `{t}`")).collect();
+            return Err(bad(&format!(
+                "FROM, TO and STEP must be written in one unit, found {}; write all three in {with}",
+                written.join(", ")
+            )));
+        }
     }
     if step_v <= 0.0 || to_v < from_v {
         return Err(bad("STEP must be positive and TO not below FROM"));
     }
     let n = ((to_v - from_v) / step_v + 1e-9).floor() as usize + 1;
+    // A range whose step is wider than the range runs FROM alone: surely not what a
+    // range from one value to another meant.
+    if n == 1 && to_v > from_v {
+        return Err(bad(&format!(
+            "STEP {step} is wider than the range {from}..{to}, so only FROM would run; use a smaller STEP (or FROM..FROM for one value)",
+            step = step.trim(),
+            from = from.trim(),
+            to = to.trim()
+        )));
+    }
     if n > 64 {
         return Err(bad("more than 64 values; use a larger STEP"));
     }
@@ -95,7 +142,7 @@ pub fn parse_vary(spec: &str) -> Result<Vary, OfflineError> {
     if path == "plant.seed" || path == "simulation" || path.starts_with("simulation.") {
         return Err(bad("the dates and the seed are the same for every value: use --from, --days and --seed"));
     }
-    Ok(Vary { path: path.split('.').map(str::to_owned).collect(), number, values, unit })
+    Ok(Vary { path: path.split('.').map(str::to_owned).collect(), number, values, unit, to: to_v })
 }
 
 fn find<'n>(node: &'n Node, path: &[String]) -> Option<&'n Node> {
@@ -213,6 +260,37 @@ mod tests {
         assert!(parse_vary("plant.seed=1..2:1").unwrap_err().to_string().contains("use --from, --days and --seed"));
         assert!(parse_vary("a=1..2").is_err());
         assert!(parse_vary("a=1kW..2h:1kW").is_err());
+    }
+
+    #[test]
+    fn a_range_part_without_the_unit_of_the_others_is_refused() {
+        let err = parse_vary("loads.water_heater.start#1=2kW..3kW:500").unwrap_err().to_string();
+        assert!(err.contains("STEP `500` needs a unit: FROM and TO are in kW, so write STEP in kW too"), "{err}");
+        let err = parse_vary("a=2..3kW:0.5kW").unwrap_err().to_string();
+        assert!(err.contains("FROM `2` needs a unit: TO and STEP are in kW"), "{err}");
+        let err = parse_vary("a=2kW..3:0.5kW").unwrap_err().to_string();
+        assert!(err.contains("TO `3` needs a unit"), "{err}");
+        let err = parse_vary("a=2kW..3000W:500W").unwrap_err().to_string();
+        assert!(err.contains("must be written in one unit, found FROM `2kW`, TO `3000W`, STEP `500W`"), "{err}");
+        // Bare throughout is a plain number (modules, layers).
+        assert_eq!(parse_vary("a=1..9:4").unwrap().texts(), ["1", "5", "9"]);
+    }
+
+    #[test]
+    fn a_step_wider_than_the_range_is_refused_and_a_missed_to_is_warned_about() {
+        let err = parse_vary("a=2kW..3kW:5kW").unwrap_err().to_string();
+        assert!(err.contains("STEP 5kW is wider than the range 2kW..3kW, so only FROM would run"), "{err}");
+        // One value on purpose.
+        let one = parse_vary("a=2kW..2kW:1kW").unwrap();
+        assert_eq!((one.texts(), one.warning()), (vec!["2kW".to_owned()], None));
+        let short = parse_vary("a=2kW..3kW:0.4kW").unwrap();
+        assert_eq!(short.texts(), ["2kW", "2.4kW", "2.8kW"]);
+        assert_eq!(
+            short.warning().as_deref(),
+            Some("--vary a: steps of 0.4kW from 2kW do not reach 3kW; the last value run is 2.8kW")
+        );
+        assert_eq!(parse_vary("a=2.5kW..4kW:0.5kW").unwrap().warning(), None);
+        assert_eq!(parse_vary("a=0.1..0.3:0.1").unwrap().warning(), None);
     }
 
     #[test]
