@@ -23,16 +23,22 @@ pub struct SiteCounters {
 }
 
 impl SiteCounters {
-    /// Adds one tick of grid and diverted power.
-    pub fn integrate(&mut self, grid: Power, diverted: Power, dt: Duration) {
-        if grid.0 >= 0.0 {
-            let e = grid.over(dt);
-            self.import_today += e;
-            self.import_month += e;
-        } else {
-            let e = (-grid).over(dt);
-            self.export_today += e;
-            self.export_month += e;
+    /// Adds one tick of grid power (`None`: no fresh grid reading, or no grid at all,
+    /// as off-grid) and of diverted power, which counts whether or not the grid is read:
+    /// an off-grid site's dump loads divert with no meter to show it.
+    pub fn integrate(&mut self, grid: Option<Power>, diverted: Power, dt: Duration) {
+        match grid {
+            Some(g) if g.0 >= 0.0 => {
+                let e = g.over(dt);
+                self.import_today += e;
+                self.import_month += e;
+            }
+            Some(g) => {
+                let e = (-g).over(dt);
+                self.export_today += e;
+                self.export_month += e;
+            }
+            None => {}
         }
         self.diverted_today += diverted.over(dt);
     }

@@ -525,10 +525,7 @@ impl Engine {
         };
         let site = &*self.site;
         let site_surplus = base_surplus.map(|s| s + hidden);
-        if let Some(g) = grid {
-            let dt = dt.min(MAX_INTEGRATION_GAP);
-            self.counters.integrate(g, diverted, dt);
-        }
+        self.counters.integrate(grid, diverted, dt.min(MAX_INTEGRATION_GAP));
         for (l, s) in site.loads.iter().zip(self.loads.iter_mut()) {
             let _ = l;
             let dt = dt.min(MAX_INTEGRATION_GAP);

@@ -1657,6 +1657,12 @@ loads:
     h.set("battery_current", 1.0);
     h.run(secs(31));
     assert_eq!(h.command("dump"), Command::On, "{}", h.engine.explain(LoadId(0)));
+    // What the dump load takes counts as diverted with no grid meter to show it (it
+    // stayed at 0 Wh off-grid, while the load's own counter grew).
+    let before = h.engine.counters().diverted_today;
+    h.run(secs(36));
+    let diverted = h.engine.counters().diverted_today - before;
+    assert!((diverted.0 - 5.0).abs() < 0.01, "500 W for 36 s is 5 Wh, counted {diverted}");
     // The dump load is more than the array can give: the battery discharges, voltage sags.
     h.set("battery_voltage", 53.0);
     h.set("battery_current", -20.0);
