@@ -200,7 +200,11 @@ impl Guard {
             self.export_since = None;
             self.escalated = false;
         }
-        if self.escalated {
+        // Escalating cuts to the safe limit, never up to it: where the safe limit is the
+        // export limit itself (a limited site's usual choice), the guard may already
+        // hold the inverter below it, and "escalating" gave power back into the very
+        // export it answered. Below the safe limit, the guard's own cuts go on instead.
+        if self.escalated && self.limit.is_none_or(|l| l >= inv.safe_limit) {
             self.limit = Some(inv.safe_limit);
             return (self.limit, LimitReason::Escalated);
         }

@@ -1010,6 +1010,30 @@ fn the_guard_escalates_to_the_safe_limit_when_export_outlasts_its_deadline() {
     assert_eq!(d.inverter_limit, Some(Power(0.0)));
 }
 
+/// Where the safe limit is the export limit (a limited site's usual choice) and the
+/// guard already holds the inverter below it, export that outlasts the deadline (an
+/// inverter slow to follow) never raises the limit to the safe one: escalation cuts,
+/// it does not give back (it did: "escalated" from 897 W to 1.5 kW during export).
+#[test]
+fn escalation_never_raises_a_limit_already_below_the_safe_limit() {
+    let loads = "  - name: tank\n    rated: 3kW\n    switch: { device: relays, coil: 0 }\n    start: surplus > 50kW\n";
+    let yaml = site("  export: 1.5kW", loads).replace("rated: 5kW", "rated: 5kW\n  safe_limit: 1.5kW");
+    let mut h = Harness::new(&yaml);
+    // More export than the PV gives (a battery discharging into it, say).
+    h.set("pv", 2500.0);
+    h.set("grid", -3500.0);
+    let d = h.tick();
+    let first = d.inverter_limit.expect("the guard cuts").0;
+    assert!(first < 1500.0, "cut below the safe limit: {first}");
+    // The inverter does not follow: export stays past the deadline.
+    let mut seen = Vec::new();
+    for _ in 0..20 {
+        let d = h.tick();
+        seen.push((d.inverter_limit.map(|l| l.0), d.limit_reason));
+    }
+    assert!(seen.iter().all(|(l, _)| l.is_some_and(|l| l <= first)), "the limit rose: {seen:?}");
+}
+
 /// A closed loop for a site whose export is limited to 1.5 kW: an array that could give
 /// 4 kW, a house at `house(tick)`, and a meter whose reading describes the site 1 s
 /// before it arrives with ±30 W of noise on it (a fixed pseudo-random sequence), its
