@@ -165,7 +165,7 @@ async fn every_type_and_word_order_decodes() {
         let addr = 1000 + 200 * i as u16;
         server.set_holding(1, addr, words);
         yaml.push_str(&format!(
-            "  p{i}: {{ device: meter, register: {addr}, type: {ty}, word_order: {order}, unit: W }}\n"
+            "  p{i}: {{ device: meter, register: {addr}, type: {ty}, word_order: {order}, unit: none }}\n"
         ));
         names.push(format!("p{i}"));
     }
@@ -175,6 +175,51 @@ async fn every_type_and_word_order_decodes() {
     for ((ty, order, words, want), got) in table.iter().zip(got) {
         assert_eq!(got, *want, "{ty} {order} {words:04X?}");
     }
+    b.stop().await;
+}
+
+/// A power reading pinned at its register's full scale (a meter clipping, or a fault
+/// writing all ones) is dropped as malformed, not taken in: one such spike drove a
+/// battery and cut the inverter to nothing in an installer's walk-through. Full scale
+/// is both ends of a signed register (less SunSpec's 0x8000) and all ones of an
+/// unsigned one; the same raw words on a point that is not a power still decode.
+#[tokio::test(start_paused = true)]
+async fn a_power_at_its_registers_full_scale_is_dropped_as_malformed() {
+    let server = TestServer::start().await;
+    server.set_holding(1, 100, &[0x7FFF]);
+    server.set_holding(1, 300, &[0x8001]);
+    server.set_holding(1, 500, &[0xFFFF]);
+    server.set_holding(1, 700, &[0x7FFE]);
+    server.set_holding(1, 900, &[0x7FFF]);
+    let yaml = format!(
+        "{HEAD}points:
+  high: {{ device: meter, register: 100, type: i16, unit: W }}
+  low: {{ device: meter, register: 300, type: i16, unit: W }}
+  ones: {{ device: meter, register: 500, unit: W }}
+  fine: {{ device: meter, register: 700, type: i16, unit: W }}
+  count: {{ device: meter, register: 900, type: i16, unit: none }}
+"
+    );
+    let mut b = Bench::start(server, &yaml, "meter", ActuatorOptions::default()).await;
+    let evs = drain_for(&mut b.events, Duration::from_millis(900)).await;
+    let mut dropped: Vec<&str> = evs
+        .iter()
+        .filter_map(|e| match e {
+            SourceEvent::Malformed { origin, detail, .. } if detail.contains("full scale") => Some(origin.as_str()),
+            _ => None,
+        })
+        .collect();
+    dropped.sort_unstable();
+    assert_eq!(dropped, ["high", "low", "ones"]);
+    let sampled: Vec<PointId> = evs
+        .iter()
+        .filter_map(|e| match e {
+            SourceEvent::Sample { point, .. } => Some(*point),
+            _ => None,
+        })
+        .collect();
+    assert!(sampled.contains(&b.point("fine")) && sampled.contains(&b.point("count")), "{evs:?}");
+    assert!(!sampled.contains(&b.point("high")));
     b.stop().await;
 }
 

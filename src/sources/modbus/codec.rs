@@ -85,6 +85,24 @@ pub fn decode(words: &[u16], ty: ValueType, order: WordOrder, sentinel: Sentinel
     v.is_finite().then_some(v)
 }
 
+/// Whether the words hold the largest magnitude the type can encode: a measurement
+/// pinned there is a saturated reading or a fault (a meter clipping at the register's
+/// full scale, a register of all ones), not a value (`common practice`: devices clamp
+/// what their register cannot hold). Signed types count both ends (less one at the
+/// bottom, where SunSpec keeps its "not implemented"); floats and bits never.
+pub fn at_full_scale(words: &[u16], ty: ValueType, order: WordOrder) -> bool {
+    let Some(words) = words.get(..usize::from(ty.registers())) else { return false };
+    let bits = join(words, order);
+    match ty {
+        ValueType::U16 => bits == 0xFFFF,
+        ValueType::I16 => matches!(bits as u16 as i16, i16::MAX | -32767 | i16::MIN),
+        ValueType::U32 => bits == 0xFFFF_FFFF,
+        ValueType::I32 => matches!(bits as u32 as i32, i32::MAX | -2_147_483_647 | i32::MIN),
+        ValueType::U64 => bits == u64::MAX,
+        ValueType::F32 | ValueType::Bool => false,
+    }
+}
+
 /// Encodes a register value (already divided by the target's scale) into words:
 /// integers are rounded and saturate at the type's range, so a setpoint above a
 /// register's range is written as its largest value rather than wrapping.
@@ -135,6 +153,19 @@ mod tests {
     fn sentinels_and_scale_factors() {
         assert_eq!(decode(&[0x8000], ValueType::I16, WordOrder::HighFirst, Sentinel::I16Min), None);
         assert_eq!(decode(&[0x8000], ValueType::I16, WordOrder::HighFirst, Sentinel::None), Some(-32768.0));
+        // Full scale: both ends of a signed register, all ones of an unsigned one.
+        for (w, ty, full) in [
+            (&[0x7FFF][..], ValueType::I16, true),
+            (&[0x8001], ValueType::I16, true),
+            (&[0x7FFE], ValueType::I16, false),
+            (&[0xFFFF], ValueType::U16, true),
+            (&[0xFFFE], ValueType::U16, false),
+            (&[0x7FFF, 0xFFFF], ValueType::I32, true),
+            (&[0x0000, 0x7FFF], ValueType::I32, false),
+            (&[0x7FFF, 0xFFFF], ValueType::F32, false),
+        ] {
+            assert_eq!(at_full_scale(w, ty, WordOrder::HighFirst), full, "{w:?} {ty:?}");
+        }
         assert_eq!(apply_sunssf(1234.0, -1), Some(123.4));
         assert_eq!(apply_sunssf(1234.0, i16::MIN), None);
         assert_eq!(apply_sunssf(1.0, 11), None);

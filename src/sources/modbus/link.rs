@@ -691,6 +691,20 @@ impl ModbusLink {
         let at = clock.now();
         let points = st.groups[gi].0.points.clone();
         for p in &points {
+            // A power pinned at its register's full scale is a clipped reading or a
+            // fault (a meter's spike): taken in, it drove the battery and cut the
+            // inverter to nothing, and stood in the day's export. Dropped as malformed.
+            let point = &self.site.points[p.point.0];
+            if point.dimension == crate::units::Dimension::Power && !p.boolean && plan::at_full_scale(p, &words) {
+                io.emit(SourceEvent::Malformed {
+                    device: Some(self.device),
+                    origin: point.name.clone(),
+                    detail: "the reading sits at its register's full scale (a clipped reading or a fault): dropped"
+                        .to_owned(),
+                })
+                .await?;
+                continue;
+            }
             let value = match plan::decode_point(p, &words) {
                 Decoded::Value(v) => v,
                 Decoded::Missing => f64::NAN,

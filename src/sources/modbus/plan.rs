@@ -181,6 +181,12 @@ pub enum Decoded {
     NotRead,
 }
 
+/// Whether a point's registers in this poll sit at their type's full scale (see
+/// [`codec::at_full_scale`]).
+pub fn at_full_scale(p: &PointSpec, words: &Words) -> bool {
+    words.get(p.table, p.address, p.len()).is_some_and(|w| codec::at_full_scale(&w, p.value_type, p.word_order))
+}
+
 /// Decodes one point from the words of a poll: raw × scale × unit factor.
 pub fn decode_point(p: &PointSpec, words: &Words) -> Decoded {
     let Some(w) = words.get(p.table, p.address, p.len()) else {
