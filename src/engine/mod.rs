@@ -689,6 +689,7 @@ impl Engine {
     fn cover_house(&mut self, reading: Option<(Power, Timestamp)>, held_back: Power) -> Power {
         let site = &*self.site;
         let leave = site.import_target.max(discharge::MARGIN) + held_back;
+        let pv_now = site.roles.pv.map(|p| self.values[p.0]).filter(|v| v.is_finite()).map(Power);
         let mut added = Power::ZERO;
         for (l, st) in site.loads.iter().zip(self.loads.iter_mut()) {
             let (Some(cover), LoadKind::Battery { discharge: Some(d), soc, .. }) = (&mut st.cover, &l.kind) else {
@@ -725,7 +726,7 @@ impl Engine {
                 cover.stop();
                 Power::ZERO
             } else {
-                cover.update(d, self.values[soc.0], reading, leave, self.local.seconds_of_day)
+                cover.update(d, self.values[soc.0], reading, pv_now, leave, self.local.seconds_of_day)
             };
             if p > Power::ZERO {
                 st.command = Command::Charge(-p);
@@ -749,6 +750,7 @@ impl Engine {
     fn record_cover(&mut self, now: Timestamp) {
         let site = &*self.site;
         let values = &self.values;
+        let pv = site.roles.pv.map(|p| values[p.0]).filter(|v| v.is_finite()).map(Power);
         let drawn = |l: &crate::config::model::Load, s: &LoadState| match l.power.map(|p| values[p.0]) {
             Some(v) if v.is_finite() => Power(v.max(0.0)),
             _ => s.command.power(&l.kind).max(Power::ZERO),
@@ -757,7 +759,7 @@ impl Engine {
         for (l, s) in site.loads.iter().zip(self.loads.iter_mut()) {
             let own = drawn(l, s);
             if let Some(cover) = &mut s.cover {
-                cover.record(now, own, total - own);
+                cover.record(now, own, total - own, pv);
             }
         }
     }
