@@ -9,7 +9,7 @@ use std::time::Duration;
 use anyhow::Context;
 use chrono::{DateTime, NaiveDateTime, TimeZone, Utc};
 use chrono_tz::Tz;
-use spillway_sim::plant::{Plant, PlantConfig};
+use spillway_sim::plant::{Flows, Plant, PlantConfig, Readings};
 use spillway_sim::serve::{MqttState, ServeOptions, Server, ServerHandle, parse_fault};
 use spillway_sim::site::{self, SiteOptions};
 use spillway_sim::weather::WeatherKind;
@@ -186,8 +186,14 @@ async fn serve_until_stopped(plant: Plant, mut options: ServeOptions, args: &Arg
     options.hold_at_ms = until;
     let handle = Server::start(plant, options).await?;
     let clock = handle.clock();
+    // An off-grid plant has no grid meter: unit 1 does not answer.
+    let units = if handle.with_plant(|p| p.bus().layout().off_grid) {
+        "unit 2 inverter, 3 relays, 4 sensors; no meter off-grid"
+    } else {
+        "unit 1 meter, 2 inverter, 3 relays, 4 sensors"
+    };
     println!(
-        "spillway-sim: Modbus TCP on {} (unit 1 meter, 2 inverter, 3 relays, 4 sensors), speed {}x, step {} ms, from {}",
+        "spillway-sim: Modbus TCP on {} ({units}), speed {}x, step {} ms, from {}",
         handle.modbus_addr(),
         clock.speed,
         clock.step_ms,
@@ -305,16 +311,31 @@ fn kw(w: f64) -> String {
 
 /// One line: simulated time, PV, house, grid (import +), each load, the PV limit, MQTT.
 fn status(handle: &ServerHandle, tz: Tz) -> String {
-    let (now, flows, readings, names) =
-        handle.with_plant(|p| (p.now_ms(), p.flows().clone(), p.readings().clone(), p.loads().to_vec()));
-    let grid = flows.grid_import.w - flows.grid_export.w;
-    let mut line = format!(
-        "{}  pv {}  house {}  grid {:+.2} kW",
-        local(now, tz),
-        kw(flows.pv.w),
-        kw(flows.house.w),
-        grid / 1000.0
-    );
+    let (now, flows, readings, names, off_grid) = handle.with_plant(|p| {
+        (p.now_ms(), p.flows().clone(), p.readings().clone(), p.loads().to_vec(), p.bus().layout().off_grid)
+    });
+    let mqtt_down = handle.mqtt_state() == MqttState::Disconnected && handle.mqtt_enabled();
+    status_line(&Shown { now, flows: &flows, readings: &readings, names: &names, off_grid, mqtt_down }, tz)
+}
+
+/// What one status line shows.
+struct Shown<'a> {
+    now: i64,
+    flows: &'a Flows,
+    readings: &'a Readings,
+    names: &'a [String],
+    off_grid: bool,
+    mqtt_down: bool,
+}
+
+fn status_line(s: &Shown<'_>, tz: Tz) -> String {
+    let (flows, readings, names) = (s.flows, s.readings, s.names);
+    let mut line = format!("{}  pv {}  house {}", local(s.now, tz), kw(flows.pv.w), kw(flows.house.w));
+    // An off-grid plant has no grid connection to show.
+    if !s.off_grid {
+        let grid = flows.grid_import.w - flows.grid_export.w;
+        line.push_str(&format!("  grid {:+.2} kW", grid / 1000.0));
+    }
     let loads: Vec<String> = names.iter().zip(&flows.loads).map(|(n, f)| format!("{n} {}", kw(f.w))).collect();
     if !loads.is_empty() {
         line.push_str("  loads: ");
@@ -326,7 +347,7 @@ fn status(handle: &ServerHandle, tz: Tz) -> String {
     if let Some(limit) = readings.pv.limit_w {
         line.push_str(&format!("  pv limit {}", kw(limit)));
     }
-    if handle.mqtt_state() == MqttState::Disconnected && handle.mqtt_enabled() {
+    if s.mqtt_down {
         line.push_str("  mqtt down");
     }
     line
@@ -335,6 +356,21 @@ fn status(handle: &ServerHandle, tz: Tz) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use spillway_sim::plant::Flow;
+
+    fn shown_line(flows: &Flows, readings: &Readings, names: &[&str], off_grid: bool) -> String {
+        let names: Vec<String> = names.iter().map(|n| (*n).to_owned()).collect();
+        let shown = Shown { now: 1_782_036_000_000, flows, readings, names: &names, off_grid, mqtt_down: false };
+        status_line(&shown, "America/Denver".parse().unwrap())
+    }
+
+    #[test]
+    fn an_off_grid_plant_shows_no_grid_in_its_status_line() {
+        let flows = Flows { loads: vec![Flow::default()], ..Flows::default() };
+        let line = shown_line(&flows, &Readings::default(), &["tank"], true);
+        assert!(!line.contains("grid"), "{line}");
+        assert!(shown_line(&flows, &Readings::default(), &["tank"], false).contains("grid +0.00 kW"));
+    }
 
     #[test]
     fn start_instants() {
