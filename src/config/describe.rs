@@ -271,7 +271,8 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
     }
 }
 
-fn write_text(site: &Site, w: &Write) -> String {
+/// Where a write goes, as `check` shows it: `coil 3 on relays`, `topic … via …`.
+pub fn write_text(site: &Site, w: &Write) -> String {
     let device = &site.devices[w.device().0].name;
     match w {
         Write::Coil { address, .. } => format!("coil {address} on {device}"),

@@ -564,7 +564,7 @@ impl Control {
         }
         self.dispatcher.apply_stopped(&safe);
         let commands: Vec<String> = safe.loads.iter().map(|l| l.command.to_string()).collect();
-        info!(?commands, "safe states handed to the links (each says whether its device took them)");
+        info!(commands = %commands.join(", "), "safe states handed to the links (each says whether its device took them)");
         push_recent(&mut self.recent, now, "controller stopping: safe states dispatched".to_owned());
         self.recent.make_contiguous();
         let doc = status::stopped(status::build(

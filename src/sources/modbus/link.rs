@@ -438,7 +438,8 @@ impl ModbusLink {
             addr = next;
         }
         let map = ModelMap { base, models };
-        info!(device = %self.dev().name, base, models = ?map.models.iter().map(|m| m.0).collect::<Vec<_>>(), "SunSpec map found");
+        let ids: Vec<String> = map.models.iter().map(|m| m.0.to_string()).collect();
+        info!(device = %self.dev().name, base, models = %ids.join(", "), "SunSpec map found");
         io.emit(SourceEvent::Discovered {
             device: self.device,
             base,
@@ -541,7 +542,10 @@ impl ModbusLink {
             }
         }
         let control = found.map(|c| c.with_sf(sf));
-        info!(device = %self.dev().name, ?control, "SunSpec power-limit control");
+        match &control {
+            Some(c) => info!(device = %self.dev().name, control = %c, "SunSpec power-limit control"),
+            None => info!(device = %self.dev().name, "SunSpec power-limit control not found in models 123/704"),
+        }
         let ids: Vec<u16> = map.models.iter().map(|&(id, _, _)| id).collect();
         if let Some(Err(warning)) = crate::actuators::modbus::limit_model_note(&self.site, &ids) {
             warn!(device = %self.dev().name, "{warning}");
@@ -637,7 +641,7 @@ impl ModbusLink {
         if values.is_empty() {
             return Ok(());
         }
-        info!(device = %self.dev().name, ?values, "actuator state read back");
+        info!(device = %self.dev().name, values = %crate::sources::readback_text(&values), "actuator state read back");
         io.emit(SourceEvent::Readback { device: self.device, values }).await
     }
 
