@@ -195,7 +195,7 @@ async fn serve_until_stopped(plant: Plant, mut options: ServeOptions, args: &Arg
     println!(
         "spillway-sim: Modbus TCP on {} ({units}), speed {}x, step {} ms, from {}",
         handle.modbus_addr(),
-        clock.speed,
+        speed_text(clock.speed),
         clock.step_ms,
         local(start_ms, tz)
     );
@@ -305,8 +305,26 @@ fn local(ms: i64, tz: Tz) -> String {
     }
 }
 
+/// Watts as kW to two decimals; a value that rounds to zero is `0.00`, never `-0.00`.
 fn kw(w: f64) -> String {
-    format!("{:.2} kW", w / 1000.0)
+    format!("{:.2} kW", kw_rounded(w))
+}
+
+/// As [`kw`], with a sign (`+0.91 kW`, `-1.20 kW`, `+0.00 kW`).
+fn kw_signed(w: f64) -> String {
+    format!("{:+.2} kW", kw_rounded(w))
+}
+
+fn kw_rounded(w: f64) -> f64 {
+    let k = (w / 10.0).round() / 100.0;
+    // `+ 0.0` turns a negative zero into a positive one.
+    k + 0.0
+}
+
+/// A speed-up as typed: `96`, `55.66`, without a binary fraction's tail.
+fn speed_text(speed: f64) -> String {
+    let s = format!("{speed:.2}");
+    s.trim_end_matches('0').trim_end_matches('.').to_owned()
 }
 
 /// One line: simulated time, PV, house, grid (import +), each load, the PV limit, MQTT.
@@ -334,7 +352,7 @@ fn status_line(s: &Shown<'_>, tz: Tz) -> String {
     // An off-grid plant has no grid connection to show.
     if !s.off_grid {
         let grid = flows.grid_import.w - flows.grid_export.w;
-        line.push_str(&format!("  grid {:+.2} kW", grid / 1000.0));
+        line.push_str(&format!("  grid {}", kw_signed(grid)));
     }
     let loads: Vec<String> = names.iter().zip(&flows.loads).map(|(n, f)| format!("{n} {}", kw(f.w))).collect();
     if !loads.is_empty() {
@@ -342,7 +360,7 @@ fn status_line(s: &Shown<'_>, tz: Tz) -> String {
         line.push_str(&loads.join(", "));
     }
     if let Some(b) = &readings.battery {
-        line.push_str(&format!("  battery {:.0} % {:+.2} kW", b.soc_pct, b.power_w / 1000.0));
+        line.push_str(&format!("  battery {:.0} % {}", b.soc_pct, kw_signed(b.power_w)));
     }
     if let Some(limit) = readings.pv.limit_w {
         line.push_str(&format!("  pv limit {}", kw(limit)));
@@ -362,6 +380,21 @@ mod tests {
         let names: Vec<String> = names.iter().map(|n| (*n).to_owned()).collect();
         let shown = Shown { now: 1_782_036_000_000, flows, readings, names: &names, off_grid, mqtt_down: false };
         status_line(&shown, "America/Denver".parse().unwrap())
+    }
+
+    #[test]
+    fn the_status_line_rounds_and_shows_no_negative_zero() {
+        let flows = Flows {
+            pv: Flow { w: 55_660.000_001, ..Flow::default() },
+            house: Flow { w: 96.000_000_000_01, ..Flow::default() },
+            grid_export: Flow { w: 0.4, ..Flow::default() },
+            loads: vec![Flow { w: -0.000_001, ..Flow::default() }],
+            ..Flows::default()
+        };
+        let line = shown_line(&flows, &Readings::default(), &["space_heater"], false);
+        assert!(line.ends_with("pv 55.66 kW  house 0.10 kW  grid +0.00 kW  loads: space_heater 0.00 kW"), "{line}");
+        assert_eq!(speed_text(96.000_000_000_01), "96");
+        assert_eq!(speed_text(0.1 + 0.2), "0.3");
     }
 
     #[test]
