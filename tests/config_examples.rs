@@ -71,3 +71,21 @@ fn spillway_check_exits_zero_on_examples_and_one_on_broken_files() {
         }
     }
 }
+
+/// An off-grid site has no grid meter, no export guard and (the cabin) no inverter
+/// section: what `check` and the start-up banner say of it must fit.
+#[test]
+fn an_off_grid_site_is_described_without_grid_only_terms() {
+    let path = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("config/off-grid-cabin.yaml");
+    let site = spillway::config::load_file(&path).unwrap_or_else(|e| panic!("{}", e.render(false))).site;
+    assert!(site.inverter.is_none());
+    let described = spillway::config::describe::describe(&site);
+    let banner = spillway::daemon::banner::lines(&site, "test").join("\n");
+    for text in [&described, &banner] {
+        for grid_only in ["export guard", "import target", "safe limit", "export-limitation", "export: off-grid"] {
+            assert!(!text.contains(grid_only), "`{grid_only}` on an off-grid site:\n{text}");
+        }
+    }
+    assert!(banner.contains("site: Alder Hut   off-grid   loads: 2"), "{banner}");
+    assert!(banner.contains("relays open or in their safe state."), "{banner}");
+}

@@ -360,3 +360,35 @@ async fn exception_responses_from_the_simulator_are_counted_and_ignored() {
     assert!(summary.exceptions >= 10);
     sim.handle.stop().await;
 }
+
+/// A device that restarts answers every request with exception 4 (server device failure)
+/// while the connection stays open. Once that has lasted twice its poll period the status
+/// and the metrics show it down, the exception named; the first answer brings it back.
+#[tokio::test(start_paused = true)]
+async fn a_restarting_device_is_down_on_the_status_and_the_metrics_until_it_answers() {
+    let sim = Sim::start(2000.0).await;
+    let daemon = daemon_for(&sim, &sim.site_yaml()).await;
+    status_until(&daemon, Duration::from_secs(10), "rules in charge", |s| s.mode == "normal").await;
+    let sensors = |s: &spillway::status::Status| s.devices.iter().find(|d| d.name == "sensors").unwrap().clone();
+    status_until(&daemon, Duration::from_secs(10), "sensors up", |s| sensors(s).up == Some(true)).await;
+
+    // The tank sensor polls every 5 s: down after 10 s of nothing but exceptions.
+    sim.handle.inject_spec("restart:sensors+30s").unwrap();
+    let t0 = Instant::now();
+    let s = status_until(&daemon, Duration::from_secs(20), "sensors down", |s| sensors(s).up == Some(false)).await;
+    println!("sensors down after {} ms: {:?}", t0.elapsed().as_millis(), sensors(&s).down_reason);
+    assert!(t0.elapsed() >= Duration::from_secs(10), "{:?}", t0.elapsed());
+    let reason = sensors(&s).down_reason.unwrap();
+    assert!(reason.starts_with("answers every request with exception 0x04 (server device failure) since "), "{reason}");
+    let metrics = spillway::status::metrics::render(&s).unwrap();
+    assert!(metrics.contains("spillway_device_up{site=\"Rosemead\",device=\"sensors\"} 0.0"), "{metrics}");
+
+    let s = status_until(&daemon, Duration::from_secs(30), "sensors up again", |s| sensors(s).up == Some(true)).await;
+    println!("sensors up {} ms after the restart began", t0.elapsed().as_millis());
+    assert_eq!(sensors(&s).down_reason, None);
+    let metrics = spillway::status::metrics::render(&s).unwrap();
+    assert!(metrics.contains("spillway_device_up{site=\"Rosemead\",device=\"sensors\"} 1.0"), "{metrics}");
+    daemon.shutdown();
+    daemon.wait().await;
+    sim.handle.stop().await;
+}

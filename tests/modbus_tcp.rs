@@ -286,6 +286,50 @@ async fn exception_responses_are_named_counted_and_survived() {
     b.stop().await;
 }
 
+/// A gateway answers for a device behind it that has gone quiet with exception 0x0B
+/// ("gateway target device failed to respond"; Modbus Application Protocol V1.1b3, §7):
+/// the connection stays, every request fails. After twice the poll period of nothing
+/// but exceptions the device is down, with the exception named; the first answer brings
+/// it back.
+#[tokio::test(start_paused = true)]
+async fn a_device_that_answers_only_with_exceptions_is_down_until_it_answers() {
+    let server = TestServer::start().await;
+    server.set_holding(1, 100, &[7]);
+    let yaml = format!(
+        "{HEAD}  behind: {{ modbus_tcp: 127.0.0.1:PORT, unit: 9, poll: 1s, timeout: 500ms }}
+points:
+  a: {{ device: behind, register: 100, unit: W }}
+  b: {{ device: behind, register: 300, unit: W }}
+"
+    );
+    let mut b = Bench::start(server, &yaml, "behind", ActuatorOptions::default()).await;
+    let started = tokio::time::Instant::now();
+    let evs = drain_for(&mut b.events, Duration::from_millis(1500)).await;
+    assert!(!evs.iter().any(|e| matches!(e, SourceEvent::DeviceUp { .. })), "up on exceptions alone: {evs:?}");
+    let reason = wait_for(&mut b.events, Duration::from_secs(5), |e| match e {
+        SourceEvent::DeviceDown { reason, .. } => Some(reason.clone()),
+        _ => None,
+    })
+    .await;
+    let after = started.elapsed();
+    println!("down after {} ms: {reason}", after.as_millis());
+    assert!(after >= Duration::from_secs(2) && after < Duration::from_secs(4), "{after:?}");
+    assert!(
+        reason
+            .starts_with("answers every request with exception 0x0B (gateway target device failed to respond) since "),
+        "{reason}"
+    );
+    assert!(reason.contains("check the device behind the gateway"), "{reason}");
+    assert_eq!(b.stats.counts().connects, 1, "the connection itself is fine");
+
+    // The device behind the gateway answers again.
+    b.server.set_holding(9, 100, &[8]);
+    b.server.set_holding(9, 300, &[9]);
+    wait_for(&mut b.events, Duration::from_secs(3), |e| matches!(e, SourceEvent::DeviceUp { .. }).then_some(())).await;
+    assert_eq!(b.samples(&["a", "b"]).await, vec![8.0, 9.0]);
+    b.stop().await;
+}
+
 #[tokio::test(start_paused = true)]
 async fn a_block_refused_across_a_gap_is_split_into_its_runs() {
     let server = TestServer::start().await;
@@ -330,6 +374,8 @@ async fn a_timeout_drops_the_connection_and_reconnects_with_backoff() {
     // room for at most six attempts; without backoff there would be about forty.
     let evs = drain_for(&mut b.events, Duration::from_secs(20)).await;
     assert!(!evs.iter().any(|e| matches!(e, SourceEvent::Sample { .. })), "no samples while silent");
+    // A connection that is accepted proves nothing: the device is up when it answers.
+    assert!(!evs.iter().any(|e| matches!(e, SourceEvent::DeviceUp { .. })), "up while silent: {evs:?}");
     let c = b.stats.counts();
     assert!((3..=6).contains(&c.connects), "{c}");
     assert!(c.timeouts >= 3, "{c}");
@@ -403,6 +449,7 @@ async fn reads_back_first_then_writes_only_the_configured_addresses() {
         u.coils.insert(2, true);
     });
     server.set_holding(3, 10, &[250]);
+    let (logs, _guard) = support::Logs::capture();
     let mut b = Bench::start(server, &relays_yaml(), "relays", ActuatorOptions::default()).await;
 
     let values = wait_for(&mut b.events, Duration::from_secs(5), |e| match e {
@@ -422,6 +469,12 @@ async fn reads_back_first_then_writes_only_the_configured_addresses() {
             ("coil 7".to_owned(), Some(0.0)),
             ("holding 12".to_owned(), Some(0.0)),
         ]
+    );
+    // The log line is for a person commissioning the site, not Rust's Debug text.
+    let text = logs.text();
+    assert!(
+        text.contains("actuator state read back device=relays values=coil 2 on, coil 4 off, coil 5 off, coil 6 off, holding 10 25, coil 7 off, holding 12 0"),
+        "{text}"
     );
     drain_for(&mut b.events, Duration::from_secs(3)).await;
     assert!(writes(&b.server.take_log()).is_empty(), "nothing is written before the engine has decided");

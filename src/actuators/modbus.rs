@@ -158,6 +158,20 @@ pub fn limit_model_note(site: &crate::config::model::Site, models: &[u16]) -> Op
     })
 }
 
+impl std::fmt::Display for LimitControl {
+    /// `model 123, WMaxLimPct at holding 40154, scale factor -1`.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match *self {
+            LimitControl::Immediate { pct, sf, .. } => {
+                write!(f, "model 123, WMaxLimPct at holding {pct}, scale factor {sf}")
+            }
+            LimitControl::DerControls { enable, sf } => {
+                write!(f, "model 704, WMaxLimPctEna at holding {enable}, scale factor {sf}")
+            }
+        }
+    }
+}
+
 impl LimitControl {
     /// Finds the power-limit control on a device's SunSpec map: model 704 when present
     /// (it fails safe), else model 123. Returns the control with a scale factor of 0 and

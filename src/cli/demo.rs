@@ -111,6 +111,7 @@ fn kw(w: f64) -> String {
 pub fn render(f: &Frame) -> String {
     let s = &f.status;
     let tz = f.site.timezone;
+    let off_grid = matches!(f.site.connection, spillway::config::model::Connection::OffGrid(_));
     let local = |t: Timestamp| t.to_utc().with_timezone(&tz).format("%H:%M:%S").to_string();
     let mut o = String::new();
     let mut line = |l: String| {
@@ -118,9 +119,9 @@ pub fn render(f: &Frame) -> String {
         o.push('\n');
     };
     line(format!(
-        "Spillway demo · {} · export {} · {} {}{}",
+        "Spillway demo · {} · {} · {} {}{}",
         s.site,
-        s.export_policy,
+        if off_grid { "off-grid".to_owned() } else { format!("export {}", s.export_policy) },
         f.plant.now.to_utc().with_timezone(&tz).format("%Y-%m-%d %H:%M:%S %Z"),
         if f.speed > 1.0 { format!("· {}× speed ", f.speed) } else { String::new() },
         if f.last { "· STOPPED" } else { "" }
@@ -140,21 +141,23 @@ pub fn render(f: &Frame) -> String {
     } else {
         "balanced"
     };
-    line(format!(
-        "  PV {:>9}    house {:>9}    loads {:>9}    grid {:>9} {grid_word}",
+    let flows = format!(
+        "  PV {:>9}    house {:>9}    loads {:>9}",
         kw(f.plant.pv_w),
         kw(f.plant.house_w),
         kw(s.loads.iter().map(|l| l.power_w).sum()),
-        kw(grid.abs()),
-    ));
+    );
+    // Off-grid there is no grid to show, and no inverter limit unless the site sets one.
+    line(if off_grid { flows } else { format!("{flows}    grid {:>9} {grid_word}", kw(grid.abs())) });
     let limit = match &s.inverter {
         Some(i) => match i.limit_w {
-            Some(w) => format!("{} ({})", kw(w), i.why),
-            None => "none".to_owned(),
+            Some(w) => format!(" · inverter limit {} ({})", kw(w), i.why),
+            None => " · inverter limit none".to_owned(),
         },
-        None => "no limit control".to_owned(),
+        None if off_grid => String::new(),
+        None => " · inverter limit: no limit control".to_owned(),
     };
-    line(format!("  controller: mode {} · surplus {} · inverter limit {limit}", s.mode, kw(s.surplus_w)));
+    line(format!("  controller: mode {} · surplus {}{limit}", s.mode, kw(s.surplus_w)));
     match (f.plant.tank_c, f.plant.tank_top_c) {
         (Some(t), Some(top)) => {
             line(format!("  tank {t:.1} °C at its sensor, {top:.1} °C at the top (what the taps get)"))

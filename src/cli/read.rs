@@ -1,5 +1,6 @@
 //! `spillway read SITE.yaml [--device NAME] [--record FILE]`: every point read once, raw and decoded,
-//! for an installer checking the wiring. Exit 0 when everything answered, 1 otherwise.
+//! for an installer checking the wiring. Exit 0 when everything answered, 1 otherwise; a
+//! value outside its unit's physical range gets a note, not exit 1 (see `plausibility`).
 
 use std::fmt::Write as _;
 use std::path::PathBuf;
@@ -7,9 +8,9 @@ use std::process::ExitCode;
 use std::time::Duration;
 
 use spillway::actuators::modbus::limit_model_note;
-use spillway::config::model::{DeviceId, PointId, Site, Write};
+use spillway::config::model::{DeviceId, PointId, PointRead, Scale, Site, ValueType, Write};
 use spillway::daemon::commission;
-use spillway::units::{Power, trim_number};
+use spillway::units::{Dimension, Power, trim_number};
 
 use super::logging::{self, LogFormat};
 
@@ -38,6 +39,52 @@ fn value_text(site: &Site, point: PointId, v: f64) -> String {
     let unit = p.dimension.base_unit();
     let v = (v * 1000.0).round() / 1000.0;
     if unit.is_empty() { trim_number(v) } else { format!("{} {unit}", trim_number(v)) }
+}
+
+/// A note for a value outside what its unit can physically be: a percentage outside
+/// 0–100, a temperature outside −50…150 °C (common practice for what a site's sensors
+/// see; a boiler's flue would be outside it). Mostly a missing or wrong `scale`, or an
+/// unsigned `type` on a value that went below zero. Power is judged by the daemon
+/// against the site's ratings, so not here.
+fn plausibility(site: &Site, point: PointId, v: f64) -> Option<String> {
+    let p = &site.points[point.0];
+    if p.boolean || !v.is_finite() {
+        return None;
+    }
+    let (low, high, range) = match p.dimension {
+        Dimension::Ratio => (0.0, 100.0, "0–100 %"),
+        Dimension::Temperature => (-50.0, 150.0, "−50…150 °C"),
+        _ => return None,
+    };
+    if (low..=high).contains(&v) {
+        return None;
+    }
+    let shown = value_text(site, point, v);
+    let (scale, unsigned16) = match &p.read {
+        PointRead::Modbus(m) => (
+            match m.scale {
+                Scale::Factor(f) => Some(f),
+                Scale::Register { .. } => None,
+            },
+            m.value_type == ValueType::U16,
+        ),
+        _ => (None, false),
+    };
+    // A raw word with its top bit set on an unsigned point: a negative value read as
+    // a large positive one.
+    let top_bit = |f: f64| {
+        let raw = (v / f / p.unit_factor).round();
+        unsigned16 && (32_768.0..65_536.0).contains(&raw)
+    };
+    let advice = match scale {
+        Some(f) if f != 0.0 && top_bit(f) => "check `type` (`i16` if it can be below zero)".to_owned(),
+        Some(f) if v > high && f > 0.0 => {
+            let tenths = (v / high).log10().ceil() as i32;
+            format!("check `scale` ({}?)", trim_number(f * 10f64.powi(-tenths)))
+        }
+        _ => "check `type` and `scale`".to_owned(),
+    };
+    Some(format!("{shown} is outside {range}: {advice}"))
 }
 
 /// The line about the inverter's power-limit control, for the device the site writes
@@ -128,6 +175,9 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
                         r.origin,
                         format!("[{}]", raw.join(" "))
                     );
+                    if let Some(note) = r.value.as_ref().ok().and_then(|v| plausibility(&site, r.point, *v)) {
+                        let _ = writeln!(out, "    note: {note}");
+                    }
                 }
             }
         }
@@ -152,6 +202,9 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
                 }
             };
             let _ = writeln!(out, "  {:<width$}  {topic:<40}  {shown}", p.name);
+            if let Some(note) = v.and_then(|v| plausibility(&site, *point, v)) {
+                let _ = writeln!(out, "    note: {note}");
+            }
         }
         for (topic, detail) in &m.malformed {
             let _ = writeln!(out, "  malformed on {topic}: {detail}");
@@ -205,4 +258,41 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
         return Ok(ExitCode::from(1));
     }
     Ok(ExitCode::SUCCESS)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn note(point: &str, v: f64) -> Option<String> {
+        let yaml = "
+site:
+  name: Bench
+  timezone: Europe/Lisbon
+  export: allowed
+devices:
+  bms: { modbus_tcp: 127.0.0.1:5020, unit: 4 }
+points:
+  grid: { device: bms, register: 0, type: i16, unit: W }
+  battery_soc: { device: bms, register: 10, unit: '%' }
+  tank_temp: { device: bms, register: 11, scale: 0.1, unit: °C }
+";
+        let site = spillway::config::load_str("test.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false))).site;
+        let (id, _) = site.point(point).unwrap();
+        plausibility(&site, id, v)
+    }
+
+    #[test]
+    fn values_outside_their_units_physical_range_get_a_note() {
+        assert_eq!(note("battery_soc", 965.0).as_deref(), Some("965 % is outside 0–100 %: check `scale` (0.1?)"));
+        assert_eq!(note("battery_soc", 96.5), None);
+        assert_eq!(note("tank_temp", 552.0).as_deref(), Some("552 °C is outside −50…150 °C: check `scale` (0.01?)"));
+        // A negative temperature read as u16: 0xFFF6 × 0.1.
+        assert_eq!(
+            note("tank_temp", 6552.6).as_deref(),
+            Some("6552.6 °C is outside −50…150 °C: check `type` (`i16` if it can be below zero)")
+        );
+        assert_eq!(note("tank_temp", 55.2), None);
+        assert_eq!(note("grid", 1.0e6), None, "power is judged against the site, not here");
+    }
 }

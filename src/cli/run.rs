@@ -80,7 +80,7 @@ pub fn print_banner(site: &spillway::config::model::Site, format: LogFormat) {
             eprintln!();
         }
         LogFormat::Json => info!(
-            safety = %banner::SAFETY_NOTICE.join(" "),
+            safety = %banner::notice(site).join(" "),
             site = %site.name,
             export = %spillway::status::export_policy(site),
             "spillway starting"

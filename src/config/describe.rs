@@ -24,25 +24,31 @@ pub fn describe(site: &Site) -> String {
             og.float_voltage, og.float_hysteresis, og.full_soc, og.charge_acceptance, og.float_headroom
         ),
     };
-    let _ = writeln!(
-        out,
-        "  {connection}; import target {}; engine tick {}",
-        site.import_target,
-        format_duration(site.tick)
-    );
-    // The margin matters only under a non-zero limit (a no-export site is held at its
-    // import target).
-    let margin = match site.export_limit() {
-        Some(l) if l.0 > 0.0 => format!(", holds export {} under the limit", site.guard.margin),
-        _ => String::new(),
-    };
-    let _ = writeln!(
-        out,
-        "  export guard: tolerance {}{margin}, escalates to the safe limit after {}, releases at {}/s",
-        site.guard.tolerance,
-        format_duration(site.guard.deadline),
-        site.guard.release_rate
-    );
+    // Off-grid there is no meter to hold at a target and no export to guard.
+    let off_grid = matches!(site.connection, Connection::OffGrid(_));
+    if off_grid {
+        let _ = writeln!(out, "  {connection}; engine tick {}", format_duration(site.tick));
+    } else {
+        let _ = writeln!(
+            out,
+            "  {connection}; import target {}; engine tick {}",
+            site.import_target,
+            format_duration(site.tick)
+        );
+        // The margin matters only under a non-zero limit (a no-export site is held at
+        // its import target).
+        let margin = match site.export_limit() {
+            Some(l) if l.0 > 0.0 => format!(", holds export {} under the limit", site.guard.margin),
+            _ => String::new(),
+        };
+        let _ = writeln!(
+            out,
+            "  export guard: tolerance {}{margin}, escalates to the safe limit after {}, releases at {}/s",
+            site.guard.tolerance,
+            format_duration(site.guard.deadline),
+            site.guard.release_rate
+        );
+    }
     let _ = writeln!(
         out,
         "  fail-safe: points stale after {} unless set per point; loads held {} after signals return",
@@ -265,7 +271,8 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
     }
 }
 
-fn write_text(site: &Site, w: &Write) -> String {
+/// Where a write goes, as `check` shows it: `coil 3 on relays`, `topic … via …`.
+pub fn write_text(site: &Site, w: &Write) -> String {
     let device = &site.devices[w.device().0].name;
     match w {
         Write::Coil { address, .. } => format!("coil {address} on {device}"),

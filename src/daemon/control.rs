@@ -283,7 +283,8 @@ impl Control {
             warn!(
                 lost = %lost,
                 waited_s = (d.now.0 - first.0) / 1000,
-                "no fresh readings since start: loads stay in their safe states and the inverter at its safe limit until they come; check the device links logged above"
+                "no fresh readings since start: {} until they come; check the device links logged above",
+                safe_states(&self.site)
             );
         }
         if !self.never_read_checked && d.now.0 - first.0 >= START_WAIT_WARN_MS {
@@ -563,7 +564,7 @@ impl Control {
         }
         self.dispatcher.apply_stopped(&safe);
         let commands: Vec<String> = safe.loads.iter().map(|l| l.command.to_string()).collect();
-        info!(?commands, "safe states handed to the links (each says whether its device took them)");
+        info!(commands = %commands.join(", "), "safe states handed to the links (each says whether its device took them)");
         push_recent(&mut self.recent, now, "controller stopping: safe states dispatched".to_owned());
         self.recent.make_contiguous();
         let doc = status::stopped(status::build(
@@ -649,6 +650,16 @@ fn log_limit(last: &mut (Option<Power>, LimitReason), d: &Decisions) -> Option<S
 /// How long after start a site still waiting for its guard signals says so.
 const START_WAIT_WARN_MS: i64 = 10_000;
 
+/// What fail-safe holds on this site: the inverter is named only where Spillway sets
+/// its limit (off-grid sites and sites without an `inverter:` section have none).
+fn safe_states(site: &Site) -> &'static str {
+    if site.inverter.is_some() {
+        "loads in their safe states, the inverter at its safe limit"
+    } else {
+        "loads in their safe states"
+    }
+}
+
 /// Logs a change of mode; returns whether the site just went into fail-safe.
 fn log_mode(was_normal: &mut bool, mode: Mode, engine: &Engine) -> bool {
     match mode {
@@ -659,7 +670,7 @@ fn log_mode(was_normal: &mut bool, mode: Mode, engine: &Engine) -> bool {
         Mode::Failsafe if *was_normal => {
             *was_normal = false;
             let lost = engine.lost_guard_signals().join(", ");
-            warn!(lost = %lost, "fail-safe: a guard signal is lost; loads in their safe states, inverter at its safe limit");
+            warn!(lost = %lost, "fail-safe: a guard signal is lost; {}", safe_states(engine.site()));
             return true;
         }
         Mode::Outage if *was_normal => {

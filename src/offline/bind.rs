@@ -310,7 +310,10 @@ impl Binding {
                 other => {
                     return Err(OfflineError::Binding {
                         point: "inverter limit".into(),
-                        why: format!("{other:?} cannot be simulated in-process"),
+                        why: format!(
+                            "{} cannot be simulated in-process: write the limit to a holding register or the SunSpec limit",
+                            crate::config::describe::write_text(site, other)
+                        ),
                     });
                 }
             },
@@ -346,9 +349,9 @@ impl Binding {
             for c in controls.iter().flatten() {
                 if !sim_control_exists(plant, c) {
                     return Err(fail(format!(
-                        "`simulation.bind` names `{c}`, which the simulated plant cannot be told to do (its controls: relay/<channel> for {:?}, regulator/<name> for {:?}, ev/current, battery/power)",
-                        plant.channels(),
-                        plant.regulators()
+                        "`simulation.bind` names `{c}`, which the simulated plant cannot be told to do (its controls: relay/<channel> for {}, regulator/<name> for {}, ev/current, battery/power)",
+                        names_or_none(plant.channels()),
+                        names_or_none(plant.regulators())
                     )));
                 }
             }
@@ -481,6 +484,11 @@ fn sim_unit(quantity: &str) -> u8 {
 }
 
 /// Whether the plant has the control a `simulation.bind` entry names.
+/// `tank, pump`, or `none` for an empty list (an error message's list of names).
+fn names_or_none(names: &[String]) -> String {
+    if names.is_empty() { "none".to_owned() } else { names.join(", ") }
+}
+
 fn sim_control_exists(plant: &Plant, control: &str) -> bool {
     if let Some(ch) = control.strip_prefix("relay/") {
         return plant.channels().iter().any(|c| c == ch);

@@ -119,6 +119,24 @@ pub struct Readback {
     pub value: Option<f64>,
 }
 
+impl fmt::Display for Readback {
+    /// `coil 2 on`, `holding 10 25`, `coil 3 not read`.
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self.value {
+            None => write!(f, "{} not read", self.target),
+            Some(v) if self.target.starts_with("coil") => {
+                write!(f, "{} {}", self.target, if v != 0.0 { "on" } else { "off" })
+            }
+            Some(v) => write!(f, "{} {}", self.target, crate::units::trim_number(v)),
+        }
+    }
+}
+
+/// Read-back values as one line for the log: `coil 2 on, holding 10 25`.
+pub fn readback_text(values: &[Readback]) -> String {
+    values.iter().map(ToString::to_string).collect::<Vec<_>>().join(", ")
+}
+
 /// Counters of one link, shared with whoever wants to show them.
 #[derive(Debug, Default)]
 pub struct LinkStats {

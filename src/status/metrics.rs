@@ -258,7 +258,7 @@ fn links(r: &mut Registry, s: &Status) {
     gauges(
         r,
         "device_up",
-        "1 while the device (or the MQTT broker) is connected (absent before its first report)",
+        "1 while the device answers (or the MQTT broker is connected), 0 while it is down as `down_reason` on the status page says (absent before its first report)",
         None,
         "device",
         devices().map(|d| (d.name.clone(), d.up.map(|u| f64::from(u8::from(u))))),

@@ -9,7 +9,11 @@ pub const PREFIX: &str = "sim";
 fn num(v: f64) -> String {
     if v.is_finite() {
         let s = format!("{v:.2}");
-        s.trim_end_matches('0').trim_end_matches('.').to_owned()
+        match s.trim_end_matches('0').trim_end_matches('.') {
+            // A value that rounds to zero from below: no `-0` on the wire.
+            "-0" => "0".to_owned(),
+            t => t.to_owned(),
+        }
     } else {
         "nan".to_owned()
     }

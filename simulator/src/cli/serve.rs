@@ -9,7 +9,7 @@ use std::time::Duration;
 use anyhow::Context;
 use chrono::{DateTime, NaiveDateTime, TimeZone, Utc};
 use chrono_tz::Tz;
-use spillway_sim::plant::{Plant, PlantConfig};
+use spillway_sim::plant::{Flows, Plant, PlantConfig, Readings};
 use spillway_sim::serve::{MqttState, ServeOptions, Server, ServerHandle, parse_fault};
 use spillway_sim::site::{self, SiteOptions};
 use spillway_sim::weather::WeatherKind;
@@ -186,10 +186,16 @@ async fn serve_until_stopped(plant: Plant, mut options: ServeOptions, args: &Arg
     options.hold_at_ms = until;
     let handle = Server::start(plant, options).await?;
     let clock = handle.clock();
+    // An off-grid plant has no grid meter: unit 1 does not answer.
+    let units = if handle.with_plant(|p| p.bus().layout().off_grid) {
+        "unit 2 inverter, 3 relays, 4 sensors; no meter off-grid"
+    } else {
+        "unit 1 meter, 2 inverter, 3 relays, 4 sensors"
+    };
     println!(
-        "spillway-sim: Modbus TCP on {} (unit 1 meter, 2 inverter, 3 relays, 4 sensors), speed {}x, step {} ms, from {}",
+        "spillway-sim: Modbus TCP on {} ({units}), speed {}x, step {} ms, from {}",
         handle.modbus_addr(),
-        clock.speed,
+        speed_text(clock.speed),
         clock.step_ms,
         local(start_ms, tz)
     );
@@ -299,34 +305,67 @@ fn local(ms: i64, tz: Tz) -> String {
     }
 }
 
+/// Watts as kW to two decimals; a value that rounds to zero is `0.00`, never `-0.00`.
 fn kw(w: f64) -> String {
-    format!("{:.2} kW", w / 1000.0)
+    format!("{:.2} kW", kw_rounded(w))
+}
+
+/// As [`kw`], with a sign (`+0.91 kW`, `-1.20 kW`, `+0.00 kW`).
+fn kw_signed(w: f64) -> String {
+    format!("{:+.2} kW", kw_rounded(w))
+}
+
+fn kw_rounded(w: f64) -> f64 {
+    let k = (w / 10.0).round() / 100.0;
+    // `+ 0.0` turns a negative zero into a positive one.
+    k + 0.0
+}
+
+/// A speed-up as typed: `96`, `55.66`, without a binary fraction's tail.
+fn speed_text(speed: f64) -> String {
+    let s = format!("{speed:.2}");
+    s.trim_end_matches('0').trim_end_matches('.').to_owned()
 }
 
 /// One line: simulated time, PV, house, grid (import +), each load, the PV limit, MQTT.
 fn status(handle: &ServerHandle, tz: Tz) -> String {
-    let (now, flows, readings, names) =
-        handle.with_plant(|p| (p.now_ms(), p.flows().clone(), p.readings().clone(), p.loads().to_vec()));
-    let grid = flows.grid_import.w - flows.grid_export.w;
-    let mut line = format!(
-        "{}  pv {}  house {}  grid {:+.2} kW",
-        local(now, tz),
-        kw(flows.pv.w),
-        kw(flows.house.w),
-        grid / 1000.0
-    );
+    let (now, flows, readings, names, off_grid) = handle.with_plant(|p| {
+        (p.now_ms(), p.flows().clone(), p.readings().clone(), p.loads().to_vec(), p.bus().layout().off_grid)
+    });
+    let mqtt_down = handle.mqtt_state() == MqttState::Disconnected && handle.mqtt_enabled();
+    status_line(&Shown { now, flows: &flows, readings: &readings, names: &names, off_grid, mqtt_down }, tz)
+}
+
+/// What one status line shows.
+struct Shown<'a> {
+    now: i64,
+    flows: &'a Flows,
+    readings: &'a Readings,
+    names: &'a [String],
+    off_grid: bool,
+    mqtt_down: bool,
+}
+
+fn status_line(s: &Shown<'_>, tz: Tz) -> String {
+    let (flows, readings, names) = (s.flows, s.readings, s.names);
+    let mut line = format!("{}  pv {}  house {}", local(s.now, tz), kw(flows.pv.w), kw(flows.house.w));
+    // An off-grid plant has no grid connection to show.
+    if !s.off_grid {
+        let grid = flows.grid_import.w - flows.grid_export.w;
+        line.push_str(&format!("  grid {}", kw_signed(grid)));
+    }
     let loads: Vec<String> = names.iter().zip(&flows.loads).map(|(n, f)| format!("{n} {}", kw(f.w))).collect();
     if !loads.is_empty() {
         line.push_str("  loads: ");
         line.push_str(&loads.join(", "));
     }
     if let Some(b) = &readings.battery {
-        line.push_str(&format!("  battery {:.0} % {:+.2} kW", b.soc_pct, b.power_w / 1000.0));
+        line.push_str(&format!("  battery {:.0} % {}", b.soc_pct, kw_signed(b.power_w)));
     }
     if let Some(limit) = readings.pv.limit_w {
         line.push_str(&format!("  pv limit {}", kw(limit)));
     }
-    if handle.mqtt_state() == MqttState::Disconnected && handle.mqtt_enabled() {
+    if s.mqtt_down {
         line.push_str("  mqtt down");
     }
     line
@@ -335,6 +374,36 @@ fn status(handle: &ServerHandle, tz: Tz) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use spillway_sim::plant::Flow;
+
+    fn shown_line(flows: &Flows, readings: &Readings, names: &[&str], off_grid: bool) -> String {
+        let names: Vec<String> = names.iter().map(|n| (*n).to_owned()).collect();
+        let shown = Shown { now: 1_782_036_000_000, flows, readings, names: &names, off_grid, mqtt_down: false };
+        status_line(&shown, "America/Denver".parse().unwrap())
+    }
+
+    #[test]
+    fn the_status_line_rounds_and_shows_no_negative_zero() {
+        let flows = Flows {
+            pv: Flow { w: 55_660.000_001, ..Flow::default() },
+            house: Flow { w: 96.000_000_000_01, ..Flow::default() },
+            grid_export: Flow { w: 0.4, ..Flow::default() },
+            loads: vec![Flow { w: -0.000_001, ..Flow::default() }],
+            ..Flows::default()
+        };
+        let line = shown_line(&flows, &Readings::default(), &["space_heater"], false);
+        assert!(line.ends_with("pv 55.66 kW  house 0.10 kW  grid +0.00 kW  loads: space_heater 0.00 kW"), "{line}");
+        assert_eq!(speed_text(96.000_000_000_01), "96");
+        assert_eq!(speed_text(0.1 + 0.2), "0.3");
+    }
+
+    #[test]
+    fn an_off_grid_plant_shows_no_grid_in_its_status_line() {
+        let flows = Flows { loads: vec![Flow::default()], ..Flows::default() };
+        let line = shown_line(&flows, &Readings::default(), &["tank"], true);
+        assert!(!line.contains("grid"), "{line}");
+        assert!(shown_line(&flows, &Readings::default(), &["tank"], false).contains("grid +0.00 kW"));
+    }
 
     #[test]
     fn start_instants() {

@@ -64,8 +64,22 @@ struct State {
     readback_done: bool,
     commands: Arc<DeviceCommands>,
     watching: bool,
+    /// What was last reported: `Some(true)` after an answer, `Some(false)` after a
+    /// lost connection or a run of nothing but exceptions.
     up: Option<bool>,
     answered: bool,
+    /// Since when every request of this session drew an exception.
+    refusing: Option<Refusing>,
+}
+
+/// A run of requests answered only with exceptions (a restarting device answers 0x04,
+/// a gateway whose device behind it is silent 0x0B): the connection is fine, the device
+/// is not.
+struct Refusing {
+    since: Instant,
+    at: crate::units::Timestamp,
+    latest: ExceptionName,
+    mixed: bool,
 }
 
 impl ModbusLink {
@@ -110,7 +124,7 @@ impl ModbusLink {
                 biased;
                 // Cancel-safe: dropping a pending connect just closes the socket.
                 () = cancel.cancelled() => {
-                    self.last_attempt(&mut st, &mut commands, &events).await;
+                    self.last_attempt(&mut st, &mut commands, &events, &clock).await;
                     return;
                 }
                 r = timeout(self.options.connect_timeout, self.connect()) => r,
@@ -120,6 +134,7 @@ impl ModbusLink {
                     self.stats.count(Counter::Connect);
                     info!(device = %self.dev().name, "modbus device connected");
                     st.answered = false;
+                    st.refusing = None;
                     let r = self.session(&mut ctx, &mut st, &mut commands, &events, &clock, &cancel).await;
                     // Best effort; the transport may already be gone.
                     let _ = timeout(Duration::from_millis(100), ctx.disconnect()).await;
@@ -128,7 +143,7 @@ impl ModbusLink {
                         // Stopped mid-request (a slow device): that connection is spoilt,
                         // so the safe states go out on a fresh one.
                         Fail::Cancelled => {
-                            self.last_attempt(&mut st, &mut commands, &events).await;
+                            self.last_attempt(&mut st, &mut commands, &events, &clock).await;
                             return;
                         }
                         Fail::Transport(reason) => reason,
@@ -161,7 +176,7 @@ impl ModbusLink {
                 biased;
                 // Both cancel-safe: a token and a sleep.
                 () = cancel.cancelled() => {
-                    self.last_attempt(&mut st, &mut commands, &events).await;
+                    self.last_attempt(&mut st, &mut commands, &events, &clock).await;
                     return;
                 }
                 () = sleep(delay) => {}
@@ -215,6 +230,7 @@ impl ModbusLink {
             watching: true,
             up: None,
             answered: false,
+            refusing: None,
         }
     }
 
@@ -247,17 +263,15 @@ impl ModbusLink {
         clock: &Clock,
         cancel: &CancellationToken,
     ) -> Result<std::convert::Infallible, Fail> {
-        let io = Io { link: self, events, cancel };
+        let io = Io { link: self, events, cancel, clock };
         if self.dev().sunspec && st.map.is_none() {
             self.discover(ctx, st, &io).await?;
             if let Some(limit) = &mut st.limit {
                 limit.device_seconds_per_second = clock.speed();
             }
         }
-        if st.up != Some(true) {
-            st.up = Some(true);
-            io.emit(SourceEvent::DeviceUp { device: self.device }).await?;
-        }
+        // The device is reported up by its first answer (`Io::call`), not by the
+        // connection: a gateway, or a server whose device is silent, accepts one too.
         if !st.readback_done {
             self.readback(ctx, st, &io).await?;
             st.readback_done = true;
@@ -267,6 +281,7 @@ impl ModbusLink {
         if st.watching {
             st.commands = Arc::clone(&commands.borrow_and_update());
         }
+        let mut first_pass = true;
         loop {
             self.write_due(ctx, st, &io).await?;
             let now = Instant::now();
@@ -287,12 +302,18 @@ impl ModbusLink {
                 .chain(st.tracker.next_refresh(&st.commands))
                 .min()
                 .unwrap_or_else(|| Instant::now() + Duration::from_secs(3600));
+            if std::mem::take(&mut first_pass) && st.up != Some(true) && st.refusing.is_none() {
+                // Nothing was asked of the device yet (nothing to read, nothing to
+                // write): the connection is all there is to go by.
+                st.up = Some(true);
+                io.emit(SourceEvent::DeviceUp { device: self.device }).await?;
+            }
             tokio::select! {
                 biased;
                 // All three branches are cancel-safe: nothing is lost when one of the
                 // others completes first.
                 () = cancel.cancelled() => {
-                    self.final_writes(ctx, st, commands, events).await;
+                    self.final_writes(ctx, st, commands, events, clock).await;
                     return Err(Fail::Stopped);
                 }
                 changed = commands.changed(), if st.watching => match changed {
@@ -312,6 +333,7 @@ impl ModbusLink {
         st: &mut State,
         commands: &mut watch::Receiver<Arc<DeviceCommands>>,
         events: &mpsc::Sender<SourceEvent>,
+        clock: &Clock,
     ) {
         // A device with nothing to write (a meter) has no safe state to deliver.
         let has_writes = {
@@ -323,7 +345,7 @@ impl ModbusLink {
         }
         match timeout(self.options.connect_timeout, self.connect()).await {
             Ok(Ok(mut ctx)) => {
-                self.final_writes(&mut ctx, st, commands, events).await;
+                self.final_writes(&mut ctx, st, commands, events, clock).await;
                 let _ = timeout(Duration::from_millis(100), ctx.disconnect()).await;
             }
             Ok(Err(e)) => warn!(
@@ -346,12 +368,13 @@ impl ModbusLink {
         st: &mut State,
         commands: &mut watch::Receiver<Arc<DeviceCommands>>,
         events: &mpsc::Sender<SourceEvent>,
+        clock: &Clock,
     ) {
         if st.watching {
             st.commands = Arc::clone(&commands.borrow_and_update());
         }
         let live = CancellationToken::new();
-        let io = Io { link: self, events, cancel: &live };
+        let io = Io { link: self, events, cancel: &live, clock };
         // A device with nothing to write (a meter) has no safe state to report.
         let has_writes = st.commands.commanded && !st.commands.writes.is_empty();
         // A SunSpec limit whose control was never found cannot be written at all.
@@ -415,7 +438,8 @@ impl ModbusLink {
             addr = next;
         }
         let map = ModelMap { base, models };
-        info!(device = %self.dev().name, base, models = ?map.models.iter().map(|m| m.0).collect::<Vec<_>>(), "SunSpec map found");
+        let ids: Vec<String> = map.models.iter().map(|m| m.0.to_string()).collect();
+        info!(device = %self.dev().name, base, models = %ids.join(", "), "SunSpec map found");
         io.emit(SourceEvent::Discovered {
             device: self.device,
             base,
@@ -518,7 +542,10 @@ impl ModbusLink {
             }
         }
         let control = found.map(|c| c.with_sf(sf));
-        info!(device = %self.dev().name, ?control, "SunSpec power-limit control");
+        match &control {
+            Some(c) => info!(device = %self.dev().name, control = %c, "SunSpec power-limit control"),
+            None => info!(device = %self.dev().name, "SunSpec power-limit control not found in models 123/704"),
+        }
         let ids: Vec<u16> = map.models.iter().map(|&(id, _, _)| id).collect();
         if let Some(Err(warning)) = crate::actuators::modbus::limit_model_note(&self.site, &ids) {
             warn!(device = %self.dev().name, "{warning}");
@@ -614,7 +641,7 @@ impl ModbusLink {
         if values.is_empty() {
             return Ok(());
         }
-        info!(device = %self.dev().name, ?values, "actuator state read back");
+        info!(device = %self.dev().name, values = %crate::sources::readback_text(&values), "actuator state read back");
         io.emit(SourceEvent::Readback { device: self.device, values }).await
     }
 
@@ -735,6 +762,34 @@ impl ModbusLink {
     }
 }
 
+impl ModbusLink {
+    /// How long a device may answer nothing but exceptions before it counts as down:
+    /// twice its longest poll period, so that every point was asked twice; for a device
+    /// with nothing to read, two of the actuators' default re-assertions (10 s), its
+    /// only requests then.
+    fn down_after(&self, st: &State) -> Duration {
+        st.groups.iter().map(|(g, _)| g.period).max().unwrap_or(Duration::from_secs(10)) * 2
+    }
+
+    /// `answers every request with exception 0x04 (server device failure) since …: …`
+    fn refusing_reason(&self, r: &Refusing) -> String {
+        let unit = self.dev().link.modbus_unit().unwrap_or_default();
+        let since = r.at.to_utc().with_timezone(&self.site.timezone).format("%Y-%m-%d %H:%M:%S %Z");
+        if r.mixed {
+            format!(
+                "answers every request with an exception (the latest {}) since {since}: check the device and its unit id ({unit})",
+                r.latest.phrase()
+            )
+        } else {
+            format!(
+                "answers every request with exception {} since {since}: {}",
+                r.latest.phrase(),
+                r.latest.advice(unit)
+            )
+        }
+    }
+}
+
 fn function_of(table: Table) -> u8 {
     match table {
         Table::Coil => 1,
@@ -749,6 +804,7 @@ struct Io<'a> {
     link: &'a ModbusLink,
     events: &'a mpsc::Sender<SourceEvent>,
     cancel: &'a CancellationToken,
+    clock: &'a Clock,
 }
 
 impl Io<'_> {
@@ -779,9 +835,58 @@ impl Io<'_> {
             }
             Ok(Ok(r)) => {
                 st.answered = true;
+                match &r {
+                    // Exceptions 1–3 (and 5, "acknowledge") answer the request itself:
+                    // the device looked it up, so it is there. A register it lacks
+                    // shows on that point, not on the device.
+                    Err(code) if !ExceptionName::from(*code).is_about_request() => self.refused(st, *code).await,
+                    _ => self.answered(st).await,
+                }
                 Ok(r)
             }
         }
+    }
+
+    /// A request was answered: the device is up (again).
+    async fn answered(&self, st: &mut State) {
+        st.refusing = None;
+        if st.up == Some(true) {
+            return;
+        }
+        if st.up == Some(false) {
+            info!(device = %self.link.dev().name, "modbus device answers again");
+        }
+        st.up = Some(true);
+        // A closed channel ends the session at the next `emit`.
+        let _ = self.events.send(SourceEvent::DeviceUp { device: self.link.device }).await;
+    }
+
+    /// A request drew an exception about the device (failure, busy, a gateway's
+    /// "no answer from the target"). Once every request has done so for twice the
+    /// device's longest poll period (each of its points asked at least twice), the
+    /// device is down: it answers, but gives nothing.
+    async fn refused(&self, st: &mut State, code: ExceptionCode) {
+        let code = ExceptionName::from(code);
+        let now = Instant::now();
+        let r = st.refusing.get_or_insert_with(|| Refusing {
+            since: now,
+            at: self.clock.now(),
+            latest: code,
+            mixed: false,
+        });
+        if r.latest != code {
+            r.mixed = true;
+            r.latest = code;
+        }
+        let since = r.since;
+        if st.up == Some(false) || now.duration_since(since) < self.link.down_after(st) {
+            return;
+        }
+        let Some(r) = &st.refusing else { return };
+        let reason = self.link.refusing_reason(r);
+        st.up = Some(false);
+        warn!(device = %self.link.dev().name, %reason, "modbus device down");
+        let _ = self.events.send(SourceEvent::DeviceDown { device: self.link.device, reason }).await;
     }
 
     async fn emit(&self, ev: SourceEvent) -> Result<(), Fail> {

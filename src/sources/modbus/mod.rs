@@ -65,6 +65,53 @@ impl ExceptionName {
             _ => "Unknown",
         }
     }
+
+    /// The code and its meaning as a person reads them: `0x0B (gateway target device
+    /// failed to respond)`. Same source as [`ExceptionName::name`].
+    pub fn phrase(self) -> String {
+        let meaning = match self.0 {
+            0x01 => "illegal function",
+            0x02 => "illegal data address",
+            0x03 => "illegal data value",
+            0x04 => "server device failure",
+            0x05 => "acknowledge",
+            0x06 => "server device busy",
+            0x08 => "memory parity error",
+            0x0A => "gateway path unavailable",
+            0x0B => "gateway target device failed to respond",
+            _ => "not a code the Modbus specification defines",
+        };
+        format!("0x{:02X} ({meaning})", self.0)
+    }
+
+    /// Whether the exception answers the request rather than reports on the device:
+    /// 0x01–0x03 (a function, address or value the device does not have) and 0x05
+    /// (accepted, still working). A device that sends one has looked the request up.
+    /// Common practice; the codes' meanings are the specification's (above).
+    pub fn is_about_request(self) -> bool {
+        matches!(self.0, 0x01..=0x03 | 0x05)
+    }
+
+    /// What to check when a device answers nothing but this exception, for unit `unit`.
+    /// The readings are common practice: 0x0A/0x0B come from a gateway on behalf of the
+    /// device behind it, 0x04/0x06 from a device that is up but not itself (restarting,
+    /// busy), 0x01–0x03 from a device asked for something it does not have.
+    pub fn advice(self, unit: u8) -> String {
+        match self.0 {
+            0x0B => format!(
+                "check the device behind the gateway: its power, its wiring to the gateway and its unit id ({unit})"
+            ),
+            0x0A => format!("the gateway has no path to unit {unit}: check the gateway's settings and the unit id"),
+            0x04 | 0x06 => {
+                "the device reports a failure or is busy (restarting?): check the device; Spillway keeps asking"
+                    .to_owned()
+            }
+            0x01..=0x03 => format!(
+                "check unit id {unit} and the points' registers, tables and types against the device's register map"
+            ),
+            _ => "check the device and its unit id".to_owned(),
+        }
+    }
 }
 
 impl From<tokio_modbus::ExceptionCode> for ExceptionName {

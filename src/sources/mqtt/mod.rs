@@ -344,7 +344,7 @@ impl MqttLink {
             };
             return match payload::parse_override(load, &p.payload, now) {
                 Ok(action) => {
-                    info!(load = %load.name, ?action, "override requested");
+                    info!(load = %load.name, action = %action.describe(self.site.timezone, now), "override requested");
                     send(events, SourceEvent::Override(OverrideRequest { load: id, action })).await
                 }
                 Err(detail) => self.malformed(events, &p.topic, detail).await,

@@ -42,6 +42,22 @@ pub enum OverrideAction {
     Clear,
 }
 
+impl OverrideAction {
+    /// As a person reads it, in the site's time zone: `on until 14:30:00 CEST` (with the
+    /// date when that is a day or more after `now`), `auto (back to the rules)`.
+    pub fn describe(&self, tz: chrono_tz::Tz, now: Timestamp) -> String {
+        match self {
+            OverrideAction::Set { command, until } => {
+                let local = until.to_utc().with_timezone(&tz);
+                let within_a_day = until.0.saturating_sub(now.0) < 86_400_000;
+                let at = local.format(if within_a_day { "%H:%M:%S %Z" } else { "%Y-%m-%d %H:%M:%S %Z" });
+                format!("{command} until {at}")
+            }
+            OverrideAction::Clear => "auto (back to the rules)".to_owned(),
+        }
+    }
+}
+
 /// An override request for one load.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct OverrideRequest {
