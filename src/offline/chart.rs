@@ -60,15 +60,17 @@ pub fn trace_interval(days: u32) -> std::time::Duration {
 }
 
 /// A linear f64 axis with tick marks where we put them. (plotters' own `with_key_points`
-/// wrapper loses the f64 label formatter, so `configure_mesh` refuses it.)
-struct Ticked {
+/// wrapper loses the f64 label formatter, so `configure_mesh` refuses it.) The sweep's
+/// two panels share one, so a value sits at the same x in both.
+pub struct Ticked {
     range: std::ops::Range<f64>,
     bold: Vec<f64>,
     light: Vec<f64>,
 }
 
 impl Ticked {
-    fn new(range: std::ops::Range<f64>, bold: Vec<f64>, light: Vec<f64>) -> Self {
+    /// An axis over `range` with labelled (`bold`) and unlabelled (`light`) ticks.
+    pub fn new(range: std::ops::Range<f64>, bold: Vec<f64>, light: Vec<f64>) -> Self {
         Ticked { range, bold, light }
     }
 }
