@@ -1420,6 +1420,7 @@ fn the_printed_months_add_up_to_the_printed_total() {
                 year: 2026,
                 month: i + 1,
                 cost: costs[i as usize],
+                days: [31, 28, 31][i as usize],
                 ..Default::default()
             })
             .collect(),
@@ -1445,6 +1446,19 @@ fn the_printed_months_add_up_to_the_printed_total() {
     let text = report.to_text();
     let c = &tariff.currency;
     assert!(text.contains(&format!("cost {c}60.03 against {c}60.00 without diversion: saves {c}-0.03")), "{text}");
+    assert!(!text.contains("days in the run"), "whole months need no note: {text}");
+}
+
+/// A month the run covered only in part (a run ending on 16 March) is named as such under
+/// the month table: its import is not a month's, nor is its tariff block.
+#[test]
+fn a_partial_month_is_named_under_the_month_table() {
+    let path = example("zero-export-house.yaml");
+    let out = spillway(["simulate", path.to_str().unwrap(), "--from", "2026-02-27", "--to", "2026-03-02", "--quiet"]);
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(stdout.contains("(2026-02: 2 of its 28 days in the run)"), "{stdout}");
+    assert!(stdout.contains("(2026-03: 2 of its 31 days in the run)"), "{stdout}");
 }
 
 /// A date written right that names a day the calendar lacks is told so, in the site file

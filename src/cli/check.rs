@@ -27,6 +27,9 @@ pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
     if has("plant") {
         match offline::checked_plant(&loaded) {
             Ok(p) => {
+                for note in offline::plausible::notes(&loaded, &p) {
+                    eprintln!("{}: warning: {note}", loaded.source.path);
+                }
                 let kwp = p.solar.as_ref().map_or(0.0, |s| s.nameplate_w() / 1000.0);
                 // The tank model moves the hot-water figures most, so name it.
                 let tank = match &p.tank {

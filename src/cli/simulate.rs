@@ -111,6 +111,11 @@ pub fn prepare_for(path: &Path, args: &RunArgs, uses_weather: bool) -> anyhow::R
             return Ok(None);
         }
     };
+    if !args.quiet {
+        for note in offline::plausible::notes(&loaded, &plant) {
+            eprintln!("{}: warning: {note}", loaded.source.path);
+        }
+    }
     let from = args.from.or(defaults.from).unwrap_or_else(|| chrono::Utc::now().date_naive());
     let days = match (args.to, args.days) {
         (Some(to), _) => {

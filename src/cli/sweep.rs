@@ -313,9 +313,23 @@ fn to_text(rep: &SweepReport) -> String {
     o
 }
 
+/// The lower panel's title: with the table's caveat where a payback was scaled up from a
+/// run shorter (or longer) than whole years.
+fn payback_caption(rep: &SweepReport) -> String {
+    let title = "savings per run and simple payback of the array";
+    if rep.array_cost_per_kwp.is_some()
+        && !rep.days.is_multiple_of(365)
+        && rep.points.iter().any(|p| p.payback_years.is_some())
+    {
+        format!("{title} (payback scales the savings of {} days to a year: quote one only from whole years)", rep.days)
+    } else {
+        title.to_owned()
+    }
+}
+
 fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
     use plotters::prelude::*;
-    use spillway::offline::chart::{Glyph, LEGEND_ROW_PX, draw_legend};
+    use spillway::offline::chart::{Glyph, LEGEND_ROW_PX, Ticked, draw_legend};
     let mut svg = String::new();
     {
         // Two panels, each with its legend in a row below it, where it covers no line.
@@ -328,6 +342,11 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
         let mut legend: Vec<(String, Glyph)> = Vec::new();
         let n = rep.points.len();
         let xs: Vec<f64> = (0..n).map(|i| i as f64).collect();
+        // Both panels share one x axis: the same range, a tick at each value run, and the
+        // same label areas on both sides (the lower panel's payback axis on the right),
+        // so a value sits at the same x in both.
+        let x_axis = || Ticked::new(-0.3..(n as f64 - 0.7), xs.clone(), Vec::new());
+        const RIGHT_AXIS_PX: u32 = 60;
         let labels: Vec<String> = rep.points.iter().map(|p| p.value.clone()).collect();
         let energy_max =
             rep.points.iter().flat_map(|p| [p.import_kwh, p.export_kwh, p.diverted_kwh]).fold(1.0, f64::max) * 1.15;
@@ -336,12 +355,12 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
             .margin(12)
             .x_label_area_size(44)
             .y_label_area_size(60)
-            .build_cartesian_2d(-0.3..(n as f64 - 0.7), 0.0..energy_max)
+            .right_y_label_area_size(RIGHT_AXIS_PX)
+            .build_cartesian_2d(x_axis(), 0.0..energy_max)
             .map_err(|e| anyhow::anyhow!("{e}"))?;
         // The varied setting's own name under the axis (`modules`, `min_on`, `start#1`).
         let x_desc = rep.key.rsplit('.').next().unwrap_or(&rep.key).to_owned();
         c.configure_mesh()
-            .x_labels(n)
             .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
             .x_desc(x_desc.clone())
             .y_desc("kWh")
@@ -372,16 +391,15 @@ fn chart_svg(rep: &SweepReport) -> anyhow::Result<String> {
             * 1.15;
         let payback_max = rep.points.iter().filter_map(|p| p.payback_years).fold(1.0, f64::max) * 1.2;
         let mut b = ChartBuilder::on(&bottom)
-            .caption("savings per run and simple payback of the array", ("sans-serif", 18))
+            .caption(payback_caption(rep), ("sans-serif", 18))
             .margin(12)
             .x_label_area_size(44)
             .y_label_area_size(60)
-            .right_y_label_area_size(60)
-            .build_cartesian_2d(-0.3..(n as f64 - 0.7), 0.0..money_max)
+            .right_y_label_area_size(RIGHT_AXIS_PX)
+            .build_cartesian_2d(x_axis(), 0.0..money_max)
             .map_err(|e| anyhow::anyhow!("{e}"))?
             .set_secondary_coord(-0.3..(n as f64 - 0.7), 0.0..payback_max);
         b.configure_mesh()
-            .x_labels(n)
             .x_label_formatter(&|x| labels.get(x.round() as usize).cloned().unwrap_or_default())
             .x_desc(x_desc)
             .y_desc(format!("savings ({})", rep.currency.clone().unwrap_or_default()))
@@ -500,5 +518,39 @@ mod tests {
         let second_axis = svg.rfind("\nmodules\n").unwrap();
         assert!(first_axis < at("import") && at("diverted") < at("savings per run and simple payback of the array"));
         assert!(second_axis < at("savings against no PV") && second_axis < at("payback (years, right axis)"));
+    }
+
+    /// The x of every `<text>` whose content is `label`, in document order.
+    fn text_xs(svg: &str, label: &str) -> Vec<f64> {
+        let needle = format!(">\n{label}\n</text>");
+        let mut out = Vec::new();
+        let mut from = 0;
+        while let Some(i) = svg[from..].find(&needle) {
+            let end = from + i;
+            let start = svg[..end].rfind("<text").unwrap();
+            let x = &svg[start..end][svg[start..end].find(" x=\"").unwrap() + 4..];
+            out.push(x[..x.find('"').unwrap()].parse().unwrap());
+            from = end + needle.len();
+        }
+        out
+    }
+
+    #[test]
+    fn both_panels_put_each_value_at_the_same_x() {
+        let mut rep = report(365);
+        rep.points = ["10", "12", "14", "16", "18", "20"].iter().map(|v| point(v, 2000.0)).collect();
+        let svg = chart_svg(&rep).unwrap();
+        for value in ["10", "16", "20"] {
+            let xs = text_xs(&svg, value);
+            assert_eq!(xs.len(), 2, "{value}: one label under each panel, {xs:?}");
+            assert!((xs[0] - xs[1]).abs() < 0.5, "{value} at {xs:?}");
+        }
+    }
+
+    #[test]
+    fn the_chart_says_a_payback_from_less_than_a_year_was_scaled() {
+        let note = "payback scales the savings of 30 days to a year";
+        assert!(chart_svg(&report(30)).unwrap().contains(note));
+        assert!(!chart_svg(&report(365)).unwrap().contains("payback scales"));
     }
 }

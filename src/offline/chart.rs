@@ -36,6 +36,9 @@ const LOADS: [RGBColor; 6] = [
     RGBColor(200, 170, 80),
 ];
 
+/// Width of the monthly chart's right margin, where the block thresholds are named.
+const BLOCK_LABEL_PX: u32 = 96;
+
 /// Most month labels on the monthly chart's axis (more months label every k-th).
 const MAX_MONTH_LABELS: usize = 14;
 
@@ -60,15 +63,17 @@ pub fn trace_interval(days: u32) -> std::time::Duration {
 }
 
 /// A linear f64 axis with tick marks where we put them. (plotters' own `with_key_points`
-/// wrapper loses the f64 label formatter, so `configure_mesh` refuses it.)
-struct Ticked {
+/// wrapper loses the f64 label formatter, so `configure_mesh` refuses it.) The sweep's
+/// two panels share one, so a value sits at the same x in both.
+pub struct Ticked {
     range: std::ops::Range<f64>,
     bold: Vec<f64>,
     light: Vec<f64>,
 }
 
 impl Ticked {
-    fn new(range: std::ops::Range<f64>, bold: Vec<f64>, light: Vec<f64>) -> Self {
+    /// An axis over `range` with labelled (`bold`) and unlabelled (`light`) ticks.
+    pub fn new(range: std::ops::Range<f64>, bold: Vec<f64>, light: Vec<f64>) -> Self {
         Ticked { range, bold, light }
     }
 }
@@ -432,9 +437,24 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
             .margin(14)
             .x_label_area_size(36)
             .y_label_area_size(60)
+            // The block thresholds are named in a margin right of the bars, where they
+            // cover none of them.
+            .right_y_label_area_size(if thresholds.is_empty() { 10 } else { BLOCK_LABEL_PX })
             .build_cartesian_2d(Ticked::new(0.0..n as f64, centres, Vec::new()), 0.0..y_max)
             .map_err(err)?;
-        let labels: Vec<String> = months.iter().map(|m| month_label(&m.month)).collect();
+        // A month the run covered only in part says how many days it had: its bars are
+        // not a month's.
+        let labels: Vec<String> =
+            months
+                .iter()
+                .map(|m| {
+                    if m.partial() {
+                        format!("{} ({} d)", month_label(&m.month), m.days)
+                    } else {
+                        month_label(&m.month)
+                    }
+                })
+                .collect();
         chart
             .configure_mesh()
             .disable_x_mesh()
@@ -482,15 +502,12 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
             if k == 0 {
                 legend.push(("tariff block thresholds".to_owned(), Glyph::Line(LIMIT, 1)));
             }
-            // Where the block starts, on a white patch so bars behind it do not hide it.
-            let text = format!("block {} from {t:.0} kWh", k + 2);
-            let width_px = 7 * text.chars().count() as i32 + 6;
+            // Where the block starts, in the right margin at the line's height.
+            let (x, y) = chart.backend_coord(&(n as f64, *t));
             let style =
-                TextStyle::from(("sans-serif", 12).into_font()).color(&LIMIT).pos(Pos::new(HPos::Left, VPos::Bottom));
-            let tag = EmptyElement::at((0.02, *t))
-                + Rectangle::new([(0, -16), (width_px, -2)], WHITE.mix(0.85).filled())
-                + Text::new(text, (3, -3), style);
-            chart.draw_series(std::iter::once(tag)).map_err(err)?;
+                TextStyle::from(("sans-serif", 12).into_font()).color(&LIMIT).pos(Pos::new(HPos::Left, VPos::Center));
+            plot.draw(&Text::new(format!("block {}", k + 2), (x + 6, y - 7), style.clone())).map_err(err)?;
+            plot.draw(&Text::new(format!("from {t:.0} kWh"), (x + 6, y + 7), style)).map_err(err)?;
         }
         draw_legend(&strip, &legend)?;
         root.present().map_err(err)?;
@@ -579,6 +596,7 @@ mod tests {
             diverted_wh: 300_000.0,
             pv_wh: 500_000.0,
             cost: 40.0,
+            days: 28,
         };
         let run = RunOutput { months: (1..=12).map(|m| month(m, 250_000.0, 120.0)).collect(), ..RunOutput::default() };
         let baseline =
@@ -586,12 +604,50 @@ mod tests {
         let r = report::build(site, loaded.tariff.as_ref(), info(site, 365), &run, &baseline);
         let svg = monthly(site, loaded.tariff.as_ref(), &r).unwrap();
         assert!(svg.contains("export: at most 0.1 kWh a month"), "the tiny export has no bars");
-        assert!(svg.contains("block 2 from 200 kWh") && svg.contains("block 3 from 450 kWh"));
+        assert!(svg.contains("from 200 kWh") && svg.contains("from 450 kWh"));
         assert_eq!(svg.matches("tariff block thresholds").count(), 1, "one legend entry for all blocks");
         assert!(svg.contains("Jan 2026") && svg.contains("Dec 2026"));
         // Three series of twelve bars (import, import without diversion, diverted).
         let bars = svg.matches("<rect").count();
         assert!((36..=36 + 12).contains(&bars), "{bars} rectangles");
+    }
+
+    /// The block labels stand right of the last month's bars, where they cover none, and
+    /// a month the run covered in part says how many days it had.
+    #[test]
+    fn block_labels_cover_no_bar_and_a_partial_month_says_its_days() {
+        let loaded = example();
+        let site = &loaded.site;
+        let month = |m, days| MonthFigures {
+            year: 2026,
+            month: m,
+            import_wh: 300_000.0,
+            export_wh: 0.0,
+            diverted_wh: 250_000.0,
+            pv_wh: 500_000.0,
+            cost: 40.0,
+            days,
+        };
+        let run = RunOutput { months: vec![month(1, 31), month(2, 28), month(3, 16)], ..RunOutput::default() };
+        let r = report::build(site, loaded.tariff.as_ref(), info(site, 75), &run, &run);
+        let svg = monthly(site, loaded.tariff.as_ref(), &r).unwrap();
+        assert!(svg.contains("Mar 2026 (16 d)") && svg.contains("Jan 2026") && !svg.contains("Jan 2026 ("), "{svg}");
+        // Right edges of the bars, and where the block labels start.
+        let attr = |tag: &str, name: &str| -> f64 {
+            let v = &tag[tag.find(&format!(" {name}=\"")).unwrap() + name.len() + 3..];
+            v[..v.find('"').unwrap()].parse().unwrap()
+        };
+        let bars_end = svg
+            .split("<rect")
+            .skip(1)
+            .filter(|t| t.contains("width") && attr(t, "width") < 200.0)
+            .map(|t| attr(t, "x") + attr(t, "width"))
+            .fold(0.0, f64::max);
+        for label in ["block 2", "from 200 kWh", "from 450 kWh"] {
+            let end = svg.find(&format!(">\n{label}\n</text>")).unwrap_or_else(|| panic!("no {label:?}"));
+            let start = svg[..end].rfind("<text").unwrap();
+            assert!(attr(&svg[start..end], "x") > bars_end, "{label} over the bars (they end at {bars_end})");
+        }
     }
 
     /// The flows chart of `trace` for a day of the example site.

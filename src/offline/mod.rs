@@ -11,6 +11,7 @@ pub mod bind;
 pub mod chart;
 pub mod compare;
 pub mod expect;
+pub mod plausible;
 pub mod replay;
 pub mod report;
 pub mod run;

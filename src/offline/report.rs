@@ -152,6 +152,32 @@ pub struct MonthReport {
     pub cost: f64,
     /// Import of the baseline in that month, kWh.
     pub baseline_import_kwh: f64,
+    /// Days of the month the run covered.
+    pub days: u32,
+    /// Days the calendar month has: more than `days` for a month the run only partly
+    /// covers (its figures are not a whole month's).
+    pub days_in_month: u32,
+}
+
+impl MonthReport {
+    /// Whether the run covered only part of the month.
+    pub fn partial(&self) -> bool {
+        self.days < self.days_in_month
+    }
+}
+
+/// Days in a calendar month.
+fn days_in_month(year: i32, month: u32) -> u32 {
+    let first = chrono::NaiveDate::from_ymd_opt(year, month, 1);
+    let next = if month == 12 {
+        chrono::NaiveDate::from_ymd_opt(year + 1, 1, 1)
+    } else {
+        chrono::NaiveDate::from_ymd_opt(year, month + 1, 1)
+    };
+    match (first, next) {
+        (Some(a), Some(b)) => (b - a).num_days() as u32,
+        _ => 31,
+    }
 }
 
 /// Costs under the site's tariff.
@@ -346,6 +372,8 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
                     .map_or_else(|| "flat".to_owned(), |t| t.block_label(t.block_index(m.import_wh / 1000.0))),
                 cost: r2(m.cost),
                 baseline_import_kwh: kwh(baseline_import),
+                days: m.days,
+                days_in_month: days_in_month(m.year, m.month),
             }
         })
         .collect();
@@ -505,6 +533,13 @@ impl Report {
                     "  {}  {:>10.1} {:>10.1} {:>8.1} {:>10.1}   {:<20} {:>7.2}",
                     m.month, m.import_kwh, m.baseline_import_kwh, m.export_kwh, m.diverted_kwh, m.tariff_block, m.cost
                 );
+            }
+            // A month the run covered only in part is not a month's figures (nor its
+            // tariff block): say so where there is more than one month to compare.
+            if self.months.len() > 1 {
+                for m in self.months.iter().filter(|m| m.partial()) {
+                    let _ = writeln!(o, "  ({}: {} of its {} days in the run)", m.month, m.days, m.days_in_month);
+                }
             }
         }
         if self.ev.is_some() || self.hot_water.is_some() {

@@ -115,6 +115,9 @@ pub struct MonthFigures {
     pub pv_wh: f64,
     /// Cost under the tariff (import − export credit + standing charge).
     pub cost: f64,
+    /// Local days of the month the run covered (fewer than the month's own at either
+    /// end of a run that does not start or end with it).
+    pub days: u32,
 }
 
 /// Everything one run measured.
@@ -326,6 +329,7 @@ pub fn simulate_once(
     let mut decided = false;
     let mut last_load_energy: Vec<f64> = vec![0.0; site.loads.len()];
     let mut standing_day: Option<i64> = None;
+    let mut counted_day: Option<i64> = None;
     let mut next_calendar = start_ms;
     let mut price = 0.0;
 
@@ -449,6 +453,10 @@ pub fn simulate_once(
                 month = Some((day.year, day.month));
                 month_fig = MonthFigures::default();
             }
+            if counted_day != Some(day.day) {
+                counted_day = Some(day.day);
+                month_fig.days += 1;
+            }
             if let Some(t) = tariff {
                 let month_import_kwh = (flows.grid_import.wh - month_base.grid_import.wh) / 1000.0;
                 price = t.import_price(local.seconds_of_day, local.weekday, month_import_kwh);
@@ -554,6 +562,7 @@ fn close_month(
         diverted_wh: managed_wh(flows, sides) - managed_wh(base, sides),
         pv_wh: flows.pv.wh - base.pv.wh,
         cost: fig.cost,
+        days: fig.days,
     }
 }
 
