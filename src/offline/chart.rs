@@ -438,8 +438,9 @@ pub fn monthly(_site: &Site, tariff: Option<&Tariff>, report: &Report) -> Result
             .x_label_area_size(36)
             .y_label_area_size(60)
             // The block thresholds are named in a margin right of the bars, where they
-            // cover none of them.
-            .right_y_label_area_size(if thresholds.is_empty() { 10 } else { BLOCK_LABEL_PX })
+            // cover none of them (a margin, not a label area: a right label area repeats
+            // the energy axis there, under the block names).
+            .margin_right(if thresholds.is_empty() { 14 } else { BLOCK_LABEL_PX })
             .build_cartesian_2d(Ticked::new(0.0..n as f64, centres, Vec::new()), 0.0..y_max)
             .map_err(err)?;
         // A month the run covered only in part says how many days it had: its bars are
