@@ -314,7 +314,6 @@ async fn a_broker_never_reached_is_reported_as_such_not_as_a_lost_connection() {
 
 #[tokio::test(start_paused = true)]
 async fn override_requests_are_parsed_and_bad_ones_ignored() {
-    let (logs, _guard) = support::Logs::capture();
     let broker = Broker::start().await;
     // A retained override (left by someone's dashboard) is not taken on (re)connect.
     broker.publish("bench/site/override/pump", "on", true);
@@ -327,14 +326,16 @@ async fn override_requests_are_parsed_and_bad_ones_ignored() {
     let min = |m: u64| t.plus(Duration::from_secs(60 * m));
 
     b.broker.publish("bench/site/override/pump", "on 30min", false);
+    let request = b.override_request().await;
     assert_eq!(
-        b.override_request().await,
+        request,
         OverrideRequest { load: pump, action: OverrideAction::Set { command: Command::On, until: min(30) } }
     );
-    // Logged as a person reads it, in the site's time: T0 is 20:26:40 UTC, 21:26:40 in Lisbon.
-    let text = logs.text();
-    assert!(text.contains("override requested load=pump action=on until 21:56:40 WEST"), "{text}");
-    assert!(!text.contains("Set {"), "{text}");
+    // Logged as a person reads it, in the site's time: T0 is 20:26:40 UTC, 21:26:40 in
+    // Lisbon. (Checked on the text the log line carries, not on a captured log: a
+    // callsite first reached by a test running beside this one, with no subscriber,
+    // can miss a capture, and did once in CI.)
+    assert_eq!(request.action.describe(b.site.timezone, t), "on until 21:56:40 WEST");
     b.broker.publish("bench/site/override/pump", r#"{"command": "off", "for": "2h"}"#, false);
     assert_eq!(b.override_request().await.action, OverrideAction::Set { command: Command::Off, until: min(120) });
     b.broker.publish("bench/site/override/pump", "OFF", false);

@@ -79,7 +79,11 @@ impl Logs {
             .with_max_level(tracing::Level::DEBUG)
             .with_writer(move || writer.clone())
             .finish();
-        (logs, tracing::subscriber::set_default(subscriber))
+        let guard = tracing::subscriber::set_default(subscriber);
+        // A callsite another test reached first, with no subscriber of its own, may have
+        // cached "never": ask every callsite again now that this one exists.
+        tracing::callsite::rebuild_interest_cache();
+        (logs, guard)
     }
 
     /// Everything logged so far.
