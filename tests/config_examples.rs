@@ -9,11 +9,17 @@ fn every_example_site_loads() {
         if path.extension().is_some_and(|e| e == "yaml") {
             count += 1;
             match spillway::config::load_file(&path) {
-                Ok(loaded) => assert!(
-                    loaded.warnings.is_empty(),
-                    "{}",
-                    spillway::diag::render(&loaded.source.path, &loaded.source.text, &loaded.warnings, false)
-                ),
+                Ok(loaded) => {
+                    assert!(
+                        loaded.warnings.is_empty(),
+                        "{}",
+                        spillway::diag::render(&loaded.source.path, &loaded.source.text, &loaded.warnings, false)
+                    );
+                    // Nor a warning about its offline sections (`check` counts both).
+                    let plant = spillway::offline::checked_plant(&loaded).unwrap();
+                    let notes = spillway::offline::plausible::notes(&loaded, &plant);
+                    assert!(notes.is_empty(), "{}: {notes:?}", path.display());
+                }
                 Err(e) => panic!("{}", e.render(false)),
             }
         }

@@ -755,6 +755,17 @@ fn plant_wiring_that_does_not_match_the_loads_is_refused_with_the_remedy() {
             && swapped.contains("check the order of plant.wiring"),
         "{swapped}"
     );
+    // A relay module addressed at another unit than the plant's: every command would go
+    // nowhere, and the loads count as on while drawing nothing.
+    let relays = "unit: 3 }";
+    assert!(text.contains(relays), "the example changed");
+    let loaded = config::load_str("site.yaml", &text.replacen(relays, "unit: 5 }", 1)).unwrap();
+    let err = offline::checked_plant(&loaded).expect_err("relays on unit 5").to_string();
+    assert!(
+        err.contains("water_heater")
+            && err.contains("(unit 5), but the simulated plant takes load commands only on its relay module, unit 3"),
+        "{err}"
+    );
     // The example as written binds.
     let loaded = config::load_str("site.yaml", &text).unwrap();
     assert!(offline::checked_plant(&loaded).is_ok());

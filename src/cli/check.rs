@@ -22,6 +22,8 @@ pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
         eprint!("{}", diag::render(&loaded.source.path, &loaded.source.text, &loaded.warnings, super::color()));
     }
     let mut ok = true;
+    // Warnings about the offline sections (plausibility notes), counted with the site's.
+    let mut offline_warnings = 0;
     let mut extra = Vec::new();
     let has = |key: &str| matches!(&loaded.tree.value, Value::Map(m) if m.iter().any(|(k, _)| k.name == key));
     if has("plant") {
@@ -29,6 +31,7 @@ pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
             Ok(p) => {
                 for note in offline::plausible::notes(&loaded, &p) {
                     eprintln!("{}: warning: {note}", loaded.source.path);
+                    offline_warnings += 1;
                 }
                 let kwp = p.solar.as_ref().map_or(0.0, |s| s.nameplate_w() / 1000.0);
                 // The tank model moves the hot-water figures most, so name it.
@@ -71,6 +74,6 @@ pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
         eprintln!("{}: the site is fine, but a section for offline runs is not", loaded.source.path);
         return Ok(ExitCode::from(1));
     }
-    println!("{}: ok ({} warning(s))", loaded.source.path, loaded.warnings.len());
+    println!("{}: ok ({} warning(s))", loaded.source.path, loaded.warnings.len() + offline_warnings);
     Ok(ExitCode::SUCCESS)
 }

@@ -86,6 +86,21 @@ fn unit_of(site: &Site, device: crate::config::model::DeviceId) -> Option<u8> {
 /// appliance (swapped `wiring`), and the report is wrong without a word.
 fn check_relay_wiring(site: &Site, plant: &Plant, load: &crate::config::model::Load) -> Result<(), String> {
     use crate::config::model::{LoadKind, StageCommand};
+    use spillway_sim::bus::RELAY_UNIT;
+    // Every load command the plant takes goes to its relay module (coils for relays,
+    // holding registers for setpoints): a write to another unit goes nowhere, and the
+    // load would count as on while it drew nothing.
+    for (target, _) in load_levels(load, Command::Off) {
+        let (Write::Coil { device, .. } | Write::Register { device, .. }) = target else { continue };
+        let unit = unit_of(site, *device);
+        if unit.is_some_and(|u| u != RELAY_UNIT) {
+            return Err(format!(
+                "writes to device \"{}\" (unit {}), but the simulated plant takes load commands only on its relay module, unit {RELAY_UNIT} (coils for relays, holding registers for setpoints): check the device's `unit`",
+                site.devices[device.0].name,
+                unit.unwrap_or_default()
+            ));
+        }
+    }
     let wiring = &plant.bus().layout().wiring;
     let channels = plant.channels();
     // Each relay of the load with the power it adds when it closes.
