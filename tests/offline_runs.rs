@@ -786,6 +786,35 @@ fn a_plant_in_another_time_zone_than_its_site_is_refused() {
     );
 }
 
+/// An `at:` check at a time the spring change skips on one of its days is warned about
+/// when the file is read (it would fail as never checked that day); the same check on
+/// an ordinary day is not. Lisbon goes from 01:00 WET to 02:00 WEST on 2026-03-29
+/// (Directive 2000/84/EC: the last Sunday of March at 01:00 UTC).
+#[test]
+fn a_check_at_a_time_the_spring_change_skips_is_warned_about() {
+    let text = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    let day = "    - { name: grey-december, weather: overcast, date: 2026-12-08, seed: 3 }\n";
+    let check = "    - name: hot water by five\n";
+    assert!(text.contains(day) && text.contains(check), "the example changed");
+    let yaml = text
+        .replace(day, &format!("{day}    - {{ name: spring-change, weather: clear, date: 2026-03-29, seed: 4 }}\n"))
+        .replace(
+            check,
+            &format!("    - name: small hours\n      at: \"01:30\"\n      check: tank_temp >= 20°C\n{check}"),
+        );
+    let loaded = config::load_str("site.yaml", &yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+    let exp = spillway::offline::expect::read(&loaded).unwrap_or_else(|d| panic!("{d:?}"));
+    let codes: Vec<&str> = exp.warnings.iter().map(|w| w.code).collect();
+    assert_eq!(codes, ["C0611"], "one day lacks 01:30, the others have it");
+    let shown = spillway::diag::render("site.yaml", &yaml, &exp.warnings, false);
+    assert!(
+        shown.contains("check \"small hours\" at 01:30 never comes on test day \"spring-change\" (2026-03-29)"),
+        "{shown}"
+    );
+    let plain = config::load_str("site.yaml", &text).unwrap();
+    assert!(spillway::offline::expect::read(&plain).unwrap().warnings.is_empty());
+}
+
 /// Every example carries expectations, and they pass (what an installer's CI would run).
 #[test]
 fn every_example_passes_its_own_expectations() {

@@ -55,10 +55,15 @@ pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
         ok = false;
     }
     match expect::read(&loaded) {
-        Ok(exp) if !exp.checks.is_empty() => {
-            extra.push(format!("expectations: {} check(s) on {} day(s)", exp.checks.len(), exp.days.len()))
+        Ok(exp) => {
+            if !exp.warnings.is_empty() {
+                eprint!("{}", diag::render(&loaded.source.path, &loaded.source.text, &exp.warnings, super::color()));
+                offline_warnings += exp.warnings.len();
+            }
+            if !exp.checks.is_empty() {
+                extra.push(format!("expectations: {} check(s) on {} day(s)", exp.checks.len(), exp.days.len()));
+            }
         }
-        Ok(_) => {}
         Err(diags) => {
             eprint!("{}", diag::render(&loaded.source.path, &loaded.source.text, &diags, super::color()));
             ok = false;

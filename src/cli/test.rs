@@ -22,7 +22,15 @@ pub fn run(path: &Path, step: Duration, format: Format) -> anyhow::Result<ExitCo
         Err(e) => return Err(e.into()),
     };
     let exp = match expect::read(&loaded) {
-        Ok(e) => e,
+        Ok(e) => {
+            if !e.warnings.is_empty() {
+                eprint!(
+                    "{}",
+                    spillway::diag::render(&loaded.source.path, &loaded.source.text, &e.warnings, super::color())
+                );
+            }
+            e
+        }
         Err(diags) => {
             eprint!("{}", spillway::diag::render(&loaded.source.path, &loaded.source.text, &diags, super::color()));
             return Ok(ExitCode::from(1));

@@ -112,6 +112,8 @@ pub struct Expectations {
     pub days: Vec<TestDay>,
     /// Checks.
     pub checks: Vec<Check>,
+    /// What reads but cannot work as written (a check time a test day lacks).
+    pub warnings: Vec<Diagnostic>,
 }
 
 /// Reads the `expect:` section (absent → empty). Errors are located diagnostics.
@@ -154,12 +156,43 @@ pub fn read(loaded: &Loaded) -> Result<Expectations, Vec<Diagnostic>> {
                 if let Some(c) = read_check(item, &loaded.site, text, &day_names, &mut d)
                     && unique(out.checks.iter().map(|o| &o.name), &c.name, "checks", item, &mut d)
                 {
+                    out.warnings.extend(missing_moments(&c, &out.days, loaded.site.timezone, item));
                     out.checks.push(c);
                 }
             }
         }
     }
     if d.has_errors() { Err(d.list) } else { Ok(out) }
+}
+
+/// An `at:` check on a test day whose clocks skip its time (the spring change) can
+/// never be checked there, and fails as never checked: said at load time, per day.
+fn missing_moments(c: &Check, days: &[TestDay], tz: chrono_tz::Tz, item: &Node) -> Vec<Diagnostic> {
+    use chrono::TimeZone;
+    let CheckKind::At { seconds_of_day, .. } = &c.kind else { return Vec::new() };
+    let Some(time) = chrono::NaiveTime::from_num_seconds_from_midnight_opt(*seconds_of_day, 0) else {
+        return Vec::new();
+    };
+    days.iter()
+        .filter(|day| c.days.is_empty() || c.days.contains(&day.name))
+        .filter(|day| matches!(tz.from_local_datetime(&day.date.and_time(time)), chrono::LocalResult::None))
+        .map(|day| {
+            Diagnostic::warning(
+                "C0611",
+                format!(
+                    "check \"{}\" at {} never comes on test day \"{}\" ({}): the clocks go forward over it in {}",
+                    c.name,
+                    time.format("%H:%M"),
+                    day.name,
+                    day.date,
+                    tz.name()
+                ),
+                item.span.clone(),
+            )
+            .with_label("a time that day does not have")
+            .with_note("it would fail as never checked: pick a time outside the change, or another day")
+        })
+        .collect()
 }
 
 /// Whether `name` is new among `taken`; reports the second of two items of one name.
