@@ -144,7 +144,11 @@ impl ObligationState {
                     self.forcing = match (pace, grid_window.and_then(|w| time_left_in(w, sod))) {
                         (Some(pace), Some(left)) => {
                             let left = Duration::from_secs(u64::from(left.min(deadline - sod)));
-                            left <= pace.mul_f64((target - v) * LATE_START_MARGIN) + LATE_START_SLACK
+                            // An absurd reading can ask for more than a `Duration` holds.
+                            let need =
+                                Duration::try_from_secs_f64(pace.as_secs_f64() * (target - v) * LATE_START_MARGIN)
+                                    .unwrap_or(Duration::MAX);
+                            left <= need.saturating_add(LATE_START_SLACK)
                         }
                         _ => true,
                     };
@@ -331,6 +335,21 @@ mod tests {
         assert!(!s.demand(&ob, &at(14 * 3600 + 48 * 60, 0.0, Some(45.0))).force_on, "14:48");
         assert!(s.demand(&ob, &at(14 * 3600 + 50 * 60, 0.0, Some(45.0))).force_on, "14:50: it must start");
         assert!(!s.demand(&ob, &at(15 * 3600 + 40 * 60, 0.0, Some(55.0))).force_on, "there");
+    }
+
+    /// A fresh reading that is finite but absurd (a garbled float register, a payload of
+    /// `-1e30`) asks for more time than a `Duration` holds: the top-up starts, and the
+    /// tick goes on instead of panicking the control task.
+    #[test]
+    fn an_absurd_level_with_a_known_pace_forces_the_top_up_without_panicking() {
+        let ob = Obligation::ReachBy {
+            target: Temperature(55.0),
+            by: t(16, 0),
+            grid_window: Some(Window { start: t(13, 0), end: t(16, 0) }),
+            pace: Some(Duration::from_secs_f64(250.0 * 4186.0 / 3600.0)),
+        };
+        let mut s = ObligationState::default();
+        assert!(s.demand(&ob, &at(13 * 3600, 0.0, Some(-1e30))).force_on);
     }
 
     #[test]
