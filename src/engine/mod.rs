@@ -438,6 +438,7 @@ impl Engine {
             s.override_.iter_mut().for_each(|o| shift(&mut o.until));
             for o in &mut s.obligations {
                 o.hot_since.iter_mut().for_each(shift);
+                o.last_tick.iter_mut().for_each(|t| shift(&mut t.0));
                 o.last_cycle.iter_mut().for_each(shift);
             }
             if let Some(c) = s.cover.as_mut() {

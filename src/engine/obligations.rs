@@ -17,6 +17,8 @@ pub struct ObligationState {
     pub judged_today: bool,
     /// ReachBy, ChargeBy: currently heating or charging from the grid (hysteresis).
     pub forcing: bool,
+    /// ReachBy, ChargeBy: the instant and local time of day of the last tick seen today.
+    pub last_tick: Option<(Timestamp, u32)>,
     /// Cycle: since when the temperature has been at or above the target.
     pub hot_since: Option<Timestamp>,
     /// Cycle: when the last cycle completed (`None` = never, so it is due).
@@ -121,12 +123,17 @@ impl ObligationState {
     /// A level (a temperature, a state of charge) to reach by a deadline: judged in the
     /// last minute before it; topped up from the grid inside the window while below it,
     /// with hysteresis. Returns whether to force the load on.
-    fn reach(&mut self, level: Option<f64>, goal: Goal<'_>, sod: u32) -> bool {
+    fn reach(&mut self, level: Option<f64>, goal: Goal<'_>, now: Timestamp, sod: u32) -> bool {
         let Goal { target, by, grid_window, band, pace } = goal;
         let deadline = seconds(by);
+        // The wall clock jumped over the deadline's whole last minute while less than a
+        // minute passed (clocks going forward): the level now is the level at it.
+        let skipped = self.last_tick.take().is_some_and(|(then, then_sod)| {
+            now > then && now.since(then) <= Duration::from_secs(60) && then_sod + 60 < deadline && sod > deadline
+        });
+        self.last_tick = Some((now, sod));
         if let Some(v) = level
-            && sod <= deadline
-            && sod + 60 >= deadline
+            && ((sod <= deadline && sod + 60 >= deadline) || skipped)
         {
             // Judged in the last minute before the deadline.
             self.judged_today = true;
@@ -184,12 +191,12 @@ impl ObligationState {
                     band: Band::TEMPERATURE,
                     pace: *pace,
                 };
-                Demand { force_on: self.reach(s.temperature.map(|t| t.0), goal, s.seconds_of_day) }
+                Demand { force_on: self.reach(s.temperature.map(|t| t.0), goal, s.now, s.seconds_of_day) }
             }
             Obligation::ChargeBy { soc, by, grid_window, pace } => {
                 let goal =
                     Goal { target: soc.0, by: *by, grid_window: grid_window.as_ref(), band: Band::SOC, pace: *pace };
-                Demand { force_on: self.reach(s.soc, goal, s.seconds_of_day) }
+                Demand { force_on: self.reach(s.soc, goal, s.now, s.seconds_of_day) }
             }
             Obligation::Cycle { target, hold, every, grid_window } => {
                 match s.temperature {
@@ -218,6 +225,7 @@ impl ObligationState {
             Obligation::ReachBy { .. } => self.met_today,
             Obligation::ChargeBy { .. } if !self.judged_today => {
                 self.forcing = false;
+                self.last_tick = None;
                 return None;
             }
             Obligation::ChargeBy { .. } => self.met_today,
@@ -229,6 +237,7 @@ impl ObligationState {
         self.met_today = false;
         self.judged_today = false;
         self.forcing = false;
+        self.last_tick = None;
         Some(met)
     }
 }
@@ -368,6 +377,36 @@ mod tests {
         assert!(s.demand(&ob, &at(16 * 3600 + 120, 0.0, Some(58.8))).force_on, "below the deadband");
         let _ = s.demand(&ob, &at(17 * 3600 - 30, 0.0, Some(59.1)));
         assert_eq!(s.end_of_day(&ob, Duration::ZERO, Timestamp(0)), Some(true));
+    }
+
+    /// On the day the clocks go forward the wall clock skips an hour: in Lisbon on
+    /// 2026-03-29, 01:00 WET is followed at once by 02:00 WEST (the IANA tz database via
+    /// chrono-tz). A deadline inside that hour (`by: "01:30"`) has no last minute on the
+    /// wall; the level read at the jump, a second after 00:59:59, is the level at the
+    /// deadline. A tick late in real time is still not judged.
+    #[test]
+    fn a_deadline_in_the_hour_the_clocks_skip_is_judged_at_the_jump() {
+        let ob = Obligation::ReachBy {
+            target: Temperature(60.0),
+            by: t(1, 30),
+            grid_window: Some(Window { start: t(0, 0), end: t(1, 30) }),
+            pace: None,
+        };
+        let tick = |s: &mut ObligationState, now_s: i64, sod: u32| {
+            let at = Situation { now: Timestamp(now_s * 1000), seconds_of_day: sod, ..at(sod, 0.0, Some(60.5)) };
+            s.demand(&ob, &at);
+        };
+        let mut s = ObligationState::default();
+        tick(&mut s, 10_000, 3598);
+        tick(&mut s, 10_001, 3599);
+        tick(&mut s, 10_002, 7200);
+        assert_eq!(s.end_of_day(&ob, Duration::ZERO, Timestamp(0)), Some(true));
+        // The same wall-clock jump after a real gap of two minutes (ticks stopped): not
+        // judged, as any deadline whose last minute saw no reading.
+        let mut s = ObligationState::default();
+        tick(&mut s, 10_000, 3599);
+        tick(&mut s, 10_120, 7200);
+        assert_eq!(s.end_of_day(&ob, Duration::ZERO, Timestamp(0)), Some(false));
     }
 
     #[test]
