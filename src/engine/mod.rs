@@ -403,9 +403,10 @@ impl Engine {
             };
             let s = &mut self.loads[id.0];
             if same_day {
-                // A day holds at most 24 h: a damaged file must not panic the start.
+                // A local day holds at most 25 h (the day the clocks go back): a damaged
+                // file must not panic the start.
                 s.runtime_today =
-                    Duration::try_from_secs_f64(p.runtime_today_s.clamp(0.0, 86_400.0)).unwrap_or_default();
+                    Duration::try_from_secs_f64(p.runtime_today_s.clamp(0.0, 25.0 * 3600.0)).unwrap_or_default();
                 s.energy_today = Energy(p.energy_today_wh);
             }
             for (o, last) in s.obligations.iter_mut().zip(&p.last_cycle_ms) {

@@ -1735,6 +1735,25 @@ fn energy_counters_roll_over_at_local_midnight_and_survive_a_restart() {
     assert!(c.import_month.0 > 1400.0, "{}", c.import_month);
 }
 
+/// The day the clocks go back is 25 hours long (Lisbon, 2026-10-25: 02:00 WEST back to
+/// 01:00 WET; the IANA tz database via chrono-tz). A pump on since midnight has run
+/// 24 h 30 min by 23:30, and a restart then keeps all of it.
+#[test]
+fn a_restart_late_on_a_25_hour_day_keeps_all_of_the_days_run_time() {
+    let mut h = Harness::new(&site("  export: allowed", TWO_LOADS));
+    h.now = Timestamp::from_utc(chrono::TimeZone::with_ymd_and_hms(&chrono::Utc, 2026, 10, 25, 12, 0, 0).unwrap());
+    let mut h = h.at_local(23, 30);
+    h.set("grid", 0.0);
+    h.tick();
+    let mut saved = h.engine.persisted();
+    let ran = 24.0 * 3600.0 + 30.0 * 60.0;
+    saved.loads[h.load("pump")].runtime_today_s = ran;
+    let mut restarted = Engine::new(Arc::clone(&h.site));
+    restarted.restore(&saved, h.now);
+    let (runtime, _) = restarted.load_today(LoadId(h.load("pump")));
+    assert_eq!(runtime.as_secs_f64(), ran);
+}
+
 #[test]
 fn every_load_has_a_reason_that_a_person_can_read() {
     let mut h = Harness::new(&site("  export: allowed", TWO_LOADS));
