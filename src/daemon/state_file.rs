@@ -200,6 +200,8 @@ mod tests {
                 runtime_today_s: 7200.0,
                 energy_today_wh: 2200.0,
                 last_cycle_ms: vec![None],
+                judged_today: vec![true],
+                met_today: vec![true],
             }],
             ..PersistedState::default()
         }
@@ -228,6 +230,16 @@ mod tests {
         assert_eq!(second, dir.join("home.state.json.invalid.2"));
         assert_eq!(fs::read_to_string(&aside).unwrap(), "{\"format\": \"other\"}", "the first is still there");
         fs::remove_dir_all(&dir).unwrap();
+    }
+
+    /// A file written before the obligations' daily progress was kept still reads.
+    #[test]
+    fn a_file_without_the_daily_progress_of_obligations_still_reads() {
+        let text = r#"{"day": 20625, "month": 24318, "import_today_wh": 0.0, "export_today_wh": 0.0,
+            "import_month_wh": 0.0, "export_month_wh": 0.0, "diverted_today_wh": 0.0,
+            "loads": [{"name": "tank", "runtime_today_s": 0.0, "energy_today_wh": 0.0, "last_cycle_ms": [null]}]}"#;
+        let counters: PersistedState = serde_json::from_str(text).unwrap();
+        assert!(counters.loads[0].met_today.is_empty() && counters.loads[0].judged_today.is_empty());
     }
 
     #[test]

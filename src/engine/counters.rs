@@ -87,4 +87,11 @@ pub struct PersistedLoad {
     pub energy_today_wh: f64,
     /// Milliseconds since the epoch of the last completed high-temperature cycle, per obligation.
     pub last_cycle_ms: Vec<Option<i64>>,
+    /// Per obligation: whether a `reach` duty's level was read at its deadline today
+    /// (absent in files written before it was kept: none judged).
+    #[serde(default)]
+    pub judged_today: Vec<bool>,
+    /// Per obligation: whether a `reach` duty was seen at its target at the deadline today.
+    #[serde(default)]
+    pub met_today: Vec<bool>,
 }

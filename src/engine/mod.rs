@@ -376,6 +376,8 @@ impl Engine {
                     runtime_today_s: s.runtime_today.as_secs_f64(),
                     energy_today_wh: s.energy_today.0,
                     last_cycle_ms: s.obligations.iter().map(|o| o.last_cycle.map(|t| t.0)).collect(),
+                    judged_today: s.obligations.iter().map(|o| o.judged_today).collect(),
+                    met_today: s.obligations.iter().map(|o| o.met_today).collect(),
                 })
                 .collect(),
         }
@@ -408,6 +410,11 @@ impl Engine {
                 s.runtime_today =
                     Duration::try_from_secs_f64(p.runtime_today_s.clamp(0.0, 25.0 * 3600.0)).unwrap_or_default();
                 s.energy_today = Energy(p.energy_today_wh);
+                // A deadline already judged today keeps its verdict.
+                for (i, o) in s.obligations.iter_mut().enumerate() {
+                    o.judged_today = p.judged_today.get(i).copied().unwrap_or(false);
+                    o.met_today = p.met_today.get(i).copied().unwrap_or(false);
+                }
             }
             for (o, last) in s.obligations.iter_mut().zip(&p.last_cycle_ms) {
                 o.last_cycle = last.map(Timestamp);

@@ -1348,6 +1348,37 @@ fn a_reach_by_obligation_heats_from_the_grid_in_its_window_until_the_target() {
     assert_eq!(h.command("tank"), Command::Off, "{:?}", h.reason("tank"));
 }
 
+/// A tank at its target at the deadline has met the day, and a restart that evening
+/// (an upgrade, a power cut) does not turn the day into a miss at midnight: the state
+/// file carries the obligation's progress, as it does the run time.
+#[test]
+fn a_reach_met_at_its_deadline_stays_met_across_a_restart_that_evening() {
+    let loads = r#"
+  - name: tank
+    rated: 3kW
+    switch: { device: relays, coil: 0 }
+    temperature: tank_temp
+    start: surplus > 3.1kW for 20s
+    stop: import > 300W for 10s
+    obligations:
+      - reach: 60°C
+        by: "17:00"
+        grid_window: 15:00..17:00
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads)).at_local(16, 50);
+    h.set("grid", 500.0);
+    h.set("tank_temp", 61.0);
+    h.run(secs(3600));
+    let saved = h.engine.persisted();
+    let mut restarted = Engine::new(Arc::clone(&h.site));
+    restarted.restore(&saved, h.now);
+    h.engine = restarted;
+    h.run(secs(7 * 3600 + 300));
+    let results = h.engine.take_obligation_results();
+    assert_eq!(results.len(), 1, "{results:?}");
+    assert!(results[0].met, "{results:?}");
+}
+
 /// `reach: 80%` on a battery: charged from the grid at full power inside the window
 /// while below the target, released at it, judged at the deadline.
 #[test]
