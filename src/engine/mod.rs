@@ -548,6 +548,7 @@ impl Engine {
 
         // Loads, highest priority first.
         let input_local = self.local;
+        let clock_change = self.clock.change_ahead(now);
         let pi_target = site.import_target;
         let mut u_total = match (grid, grid_for_loads) {
             (Some(real), Some(g)) if self.mode == Mode::Normal || self.mode == Mode::Outage => {
@@ -602,6 +603,7 @@ impl Engine {
                 now,
                 self.recovered_at,
                 self.outage_since,
+                clock_change,
             );
             absorbable += headroom;
             let st = &mut self.loads[i];
@@ -1034,6 +1036,7 @@ fn decide(
     now: Timestamp,
     recovered_at: Option<Timestamp>,
     outage_since: Option<Timestamp>,
+    clock_change: Option<(u32, i32)>,
 ) -> (Command, Reason, Power) {
     let l = &site.loads[i];
     // Rules are evaluated every tick so that held-for timers and windows stay current.
@@ -1113,6 +1116,7 @@ fn decide(
         runtime_today: st.runtime_today,
         temperature,
         soc,
+        clock_change,
     };
     let mut forced = None;
     for (j, (ob, os)) in l.obligations.iter().zip(st.obligations.iter_mut()).enumerate() {

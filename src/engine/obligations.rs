@@ -69,14 +69,32 @@ pub struct Situation {
     pub temperature: Option<Temperature>,
     /// The load's state of charge (%), if it has one and it is fresh.
     pub soc: Option<f64>,
+    /// A change of the wall clock still ahead today (clocks going forward or back): the
+    /// wall time just before it and the jump in seconds (+ forward).
+    pub clock_change: Option<(u32, i32)>,
+}
+
+impl Situation {
+    /// Real seconds from now to wall time `t` (seconds of day, up to 86 400) today: an
+    /// hour fewer than on the wall past a jump forward ahead, an hour more past a jump
+    /// back (a wall time in the repeated hour is taken at its first pass).
+    fn until(&self, t: u32) -> u32 {
+        let (sod, t) = (i64::from(self.seconds_of_day), i64::from(t));
+        let real = match self.clock_change {
+            Some((wall, jump)) if t >= i64::from(wall) => (t - i64::from(jump)).max(i64::from(wall)) - sod,
+            _ => t - sod,
+        };
+        u32::try_from(real.max(0)).unwrap_or(0)
+    }
 }
 
 fn seconds(t: chrono::NaiveTime) -> u32 {
     chrono::Timelike::num_seconds_from_midnight(&t)
 }
 
-/// Seconds from `now` to the end of `window` if `now` is inside it.
-fn time_left_in(window: &crate::config::model::Window, sod: u32) -> Option<u32> {
+/// Real seconds from now to the end of `window` if now is inside it.
+fn time_left_in(window: &crate::config::model::Window, s: &Situation) -> Option<u32> {
+    let sod = s.seconds_of_day;
     if !window.contains(sod) {
         return None;
     }
@@ -85,7 +103,7 @@ fn time_left_in(window: &crate::config::model::Window, sod: u32) -> Option<u32> 
     // midnight, so a window over midnight (22:00..06:00) gives today its morning and
     // its evening. Counting the next morning in the evening's time left postponed the
     // evening's start until midnight, which then reset what was missing.
-    Some(if end > sod { end - sod } else { 86_400 - sod })
+    Some(if end > sod { s.until(end) } else { s.until(86_400) })
 }
 
 /// A top-up that knows its pace starts when the time left is this many times what the
@@ -123,7 +141,8 @@ impl ObligationState {
     /// A level (a temperature, a state of charge) to reach by a deadline: judged in the
     /// last minute before it; topped up from the grid inside the window while below it,
     /// with hysteresis. Returns whether to force the load on.
-    fn reach(&mut self, level: Option<f64>, goal: Goal<'_>, now: Timestamp, sod: u32) -> bool {
+    fn reach(&mut self, level: Option<f64>, goal: Goal<'_>, s: &Situation) -> bool {
+        let (now, sod) = (s.now, s.seconds_of_day);
         let Goal { target, by, grid_window, band, pace } = goal;
         let deadline = seconds(by);
         // The wall clock jumped over the deadline's whole last minute while less than a
@@ -148,9 +167,9 @@ impl ObligationState {
                     self.forcing = false;
                 } else if !self.forcing && v < target - band.restart_below {
                     // Where the pace is known, start just late enough to get there.
-                    self.forcing = match (pace, grid_window.and_then(|w| time_left_in(w, sod))) {
+                    self.forcing = match (pace, grid_window.and_then(|w| time_left_in(w, s))) {
                         (Some(pace), Some(left)) => {
-                            let left = Duration::from_secs(u64::from(left.min(deadline - sod)));
+                            let left = Duration::from_secs(u64::from(left.min(s.until(deadline))));
                             // An absurd reading can ask for more than a `Duration` holds.
                             let need =
                                 Duration::try_from_secs_f64(pace.as_secs_f64() * (target - v) * LATE_START_MARGIN)
@@ -174,7 +193,7 @@ impl ObligationState {
         match ob {
             Obligation::RunDaily { duration, grid_window } => {
                 let missing = duration.saturating_sub(s.runtime_today);
-                let force_on = match grid_window.and_then(|w| time_left_in(&w, s.seconds_of_day)) {
+                let force_on = match grid_window.and_then(|w| time_left_in(&w, s)) {
                     // Start just late enough to need only what is missing (plus a minute of margin).
                     Some(left) => {
                         !missing.is_zero() && Duration::from_secs(u64::from(left)) <= missing + Duration::from_secs(60)
@@ -191,12 +210,12 @@ impl ObligationState {
                     band: Band::TEMPERATURE,
                     pace: *pace,
                 };
-                Demand { force_on: self.reach(s.temperature.map(|t| t.0), goal, s.now, s.seconds_of_day) }
+                Demand { force_on: self.reach(s.temperature.map(|t| t.0), goal, s) }
             }
             Obligation::ChargeBy { soc, by, grid_window, pace } => {
                 let goal =
                     Goal { target: soc.0, by: *by, grid_window: grid_window.as_ref(), band: Band::SOC, pace: *pace };
-                Demand { force_on: self.reach(s.soc, goal, s.now, s.seconds_of_day) }
+                Demand { force_on: self.reach(s.soc, goal, s) }
             }
             Obligation::Cycle { target, hold, every, grid_window } => {
                 match s.temperature {
@@ -259,6 +278,7 @@ mod tests {
             runtime_today: Duration::from_secs_f64(runtime_h * 3600.0),
             temperature: temp.map(Temperature),
             soc: None,
+            clock_change: None,
         }
     }
 

@@ -1348,6 +1348,30 @@ fn a_reach_by_obligation_heats_from_the_grid_in_its_window_until_the_target() {
     assert_eq!(h.command("tank"), Command::Off, "{:?}", h.reason("tank"));
 }
 
+/// A run duty whose window holds the hour the clocks skip (Lisbon, 2026-03-29: 01:00
+/// WET is followed by 02:00 WEST; the IANA tz database via chrono-tz) has an hour less
+/// of real time in it than on the wall: `00:00..06:00` is five hours that night. The
+/// top-up starts early enough for the real time, and four and a half hours are run.
+#[test]
+fn a_run_duty_over_the_hour_the_clocks_skip_starts_early_enough() {
+    let loads = r#"
+  - name: pump
+    rated: 1kW
+    switch: { device: relays, coil: 1 }
+    start: surplus > 1.1kW for 1min
+    stop: import > 300W for 1min
+    obligations:
+      - run: 270min
+        grid_window: 00:00..06:00
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads));
+    h.now = Timestamp::from_utc(chrono::TimeZone::with_ymd_and_hms(&chrono::Utc, 2026, 3, 29, 0, 0, 0).unwrap());
+    h.set("grid", 500.0);
+    h.run(secs(5 * 3600 + 60));
+    let (runtime, _) = h.engine.load_today(LoadId(h.load("pump")));
+    assert!(runtime >= secs(4 * 3600 + 30 * 60), "{runtime:?}");
+}
+
 /// A tank at its target at the deadline has met the day, and a restart that evening
 /// (an upgrade, a power cut) does not turn the day into a miss at midnight: the state
 /// file carries the obligation's progress, as it does the run time.
