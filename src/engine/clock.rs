@@ -112,15 +112,6 @@ impl SiteClock {
             }
         }
     }
-
-    /// The UTC instant of a local time of day on the local day of `now` (DST aware;
-    /// a time skipped by a DST jump maps to the instant after the jump).
-    pub fn instant_of(&self, now: Timestamp, seconds_of_day: u32) -> Timestamp {
-        let local = now.0 + self.offset_ms;
-        let midnight = local - local.rem_euclid(DAY_MS);
-        // Same-day offset is right except across a transition; good to within the shift.
-        Timestamp(midnight + i64::from(seconds_of_day) * 1000 - self.offset_ms)
-    }
 }
 
 #[cfg(test)]
