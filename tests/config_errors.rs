@@ -804,3 +804,32 @@ fn a_no_export_site_with_an_import_target_near_zero_is_warned_about() {
 fn every_mistake_of_a_tariff_is_reported_in_one_run() {
     check("tariff-mistakes");
 }
+
+/// Gains that make the modulating loads hunt are warned about (C0287). A walk-through
+/// with a proportional heater and a charger on a limited-export site counted 1,562
+/// switchings a week at the defaults (kp 0.1, ki 0.5) and 38,800 at kp 1.5, ki 2, with
+/// 397 s over the limit against 43 s. The check runs the loop with the grid point's
+/// latency (1.5 s here: a reading two ticks behind its command).
+#[test]
+fn loop_gains_that_make_the_modulating_loads_hunt_are_warned_about() {
+    let base = std::fs::read_to_string("config/battery-ev-limited-export.yaml").unwrap();
+    let with = |guard: &str| base.replace("  import_target: 0W\n", &format!("  import_target: 0W\n  guard: {guard}\n"));
+    assert!(!codes(&with("{ kp: 0.1, ki: 0.5 }")).contains(&"C0287"), "the defaults settle");
+    assert!(!codes(&with("{ kp: 0.3, ki: 0.3 }")).contains(&"C0287"));
+    assert!(codes(&with("{ kp: 1.5, ki: 2 }")).contains(&"C0287"));
+    assert!(codes(&with("{ kp: 0.8, ki: 0.5 }")).contains(&"C0287"));
+    assert!(!codes(&with("{ ki: 0.9 }")).contains(&"C0287"));
+    assert!(codes(&with("{ ki: 1.05 }")).contains(&"C0287"), "above 1 an integral loop two ticks behind grows");
+    // The defaults too, where the meter is slow: four ticks behind, they oscillate.
+    let slow = base.replace("latency: 1500ms", "latency: 3s, stale_after: 6s");
+    assert!(codes(&slow).contains(&"C0287"), "{:?}", codes(&slow));
+    // Without a modulating load the gains drive nothing.
+    let relays = RELAY_HOUSE.replace(
+        "site: { name: Relay House, timezone: Europe/Lisbon }",
+        "site: { name: Relay House, timezone: Europe/Lisbon, guard: { kp: 1.5, ki: 2 } }",
+    );
+    assert!(!codes(&relays).contains(&"C0287"), "{:?}", codes(&relays));
+    let loaded = spillway::config::load_str("site.yaml", &with("{ kp: 1.5, ki: 2 }")).unwrap();
+    let w = loaded.warnings.iter().find(|w| w.code == "C0287").unwrap();
+    assert!(w.message.contains("oscillate, growing"), "{}", w.message);
+}

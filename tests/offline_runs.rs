@@ -1485,7 +1485,7 @@ fn the_printed_months_add_up_to_the_printed_total() {
     assert!((printed - cost.total).abs() < 1e-9, "{printed} against {}", cost.total);
     let text = report.to_text();
     let c = &tariff.currency;
-    assert!(text.contains(&format!("cost {c}60.03 against {c}60.00 without diversion: saves {c}-0.03")), "{text}");
+    assert!(text.contains(&format!("cost {c}60.03 against {c}60.00 without diversion: costs {c}0.03 more")), "{text}");
     assert!(!text.contains("days in the run"), "whole months need no note: {text}");
 }
 

@@ -28,6 +28,11 @@ struct Point {
     savings_vs_no_diversion: Option<f64>,
     savings_vs_no_pv: Option<f64>,
     payback_years: Option<f64>,
+    /// Where export is limited: time over the limit plus the tolerance, s (a gain or a
+    /// threshold that looks harmless in energy can show here).
+    seconds_over_limit: Option<f64>,
+    /// On/off and stage changes of every load together: relay and contactor wear.
+    switchings: u32,
     /// With a simulated tank: litres that came out colder than asked for (the no-PV
     /// reference's tank sits on its thermostat, so its savings include this shortfall).
     hot_water_lukewarm_l: Option<f64>,
@@ -173,6 +178,8 @@ pub fn run(
                                 savings_vs_no_diversion: loaded.tariff.as_ref().map(|_| r(baseline.cost - run.cost, 2)),
                                 savings_vs_no_pv: None,
                                 payback_years: None,
+                                seconds_over_limit: site.export_limit().map(|_| r(run.seconds_over_limit, 0)),
+                                switchings: run.loads.iter().map(|l| l.switchings).sum(),
                                 hot_water_lukewarm_l: run.hot_water_short.map(|(l, _)| r(l, 0)),
                                 ev_short_kwh: run.ev_departures.map(|(_, wh)| r(wh / 1000.0, 1)),
                             })
@@ -245,9 +252,11 @@ fn to_text(rep: &SweepReport) -> String {
     let ev = rep.points.iter().any(|p| p.ev_short_kwh.is_some());
     let lukewarm_head = if lukewarm { "  lukewarm L" } else { "" };
     let ev_head = if ev { "    EV short" } else { "" };
+    let over = rep.points.iter().any(|p| p.seconds_over_limit.is_some());
+    let over_head = if over { "  over limit" } else { "" };
     let _ = writeln!(
         o,
-        "\n{:>10} {:>7} {:>9} {:>9} {:>8} {:>9} {:>7} {:>10} {:>11} {:>11} {:>8}{lukewarm_head}{ev_head}",
+        "\n{:>10} {:>7} {:>9} {:>9} {:>8} {:>9} {:>7} {:>10} {:>11} {:>11} {:>8}{over_head} {:>10}{lukewarm_head}{ev_head}",
         "value",
         "kWp",
         "PV kWh",
@@ -258,7 +267,8 @@ fn to_text(rep: &SweepReport) -> String {
         "cost",
         "saves/div",
         "saves/noPV",
-        "payback"
+        "payback",
+        "switchings"
     );
     let money = |v: Option<f64>| v.map_or("-".to_owned(), |v| format!("{cur}{v:.0}"));
     for p in &rep.points {
@@ -277,6 +287,10 @@ fn to_text(rep: &SweepReport) -> String {
             money(p.savings_vs_no_pv),
             p.payback_years.map_or("-".to_owned(), |y| format!("{y:.1} y"))
         );
+        if over {
+            let _ = write!(o, " {:>11}", p.seconds_over_limit.map_or("-".to_owned(), |s| format!("{s:.0} s")));
+        }
+        let _ = write!(o, " {:>10}", p.switchings);
         if lukewarm {
             let _ = write!(o, " {:>11}", p.hot_water_lukewarm_l.map_or("-".to_owned(), |l| format!("{l:.0}")));
         }
@@ -461,6 +475,8 @@ mod tests {
             savings_vs_no_diversion: Some(80.0),
             savings_vs_no_pv: Some(300.0),
             payback_years: Some(5.5),
+            seconds_over_limit: None,
+            switchings: 40,
             hot_water_lukewarm_l: None,
             ev_short_kwh: None,
         }
@@ -491,6 +507,29 @@ mod tests {
         assert!(text.contains("lukewarm L") && !text.contains("EV short"), "{text}");
         let row = text.lines().find(|l| l.trim_start().starts_with("4 ")).unwrap();
         assert!(row.trim_end().ends_with("120"), "{row}");
+    }
+
+    /// A gain that looks harmless in energy can wear the relays or leak export: both
+    /// have their column, the time over the limit only where export is limited.
+    #[test]
+    fn switchings_and_time_over_the_export_limit_have_their_columns() {
+        let plain = to_text(&report(365));
+        assert!(plain.contains("switchings") && !plain.contains("over limit"), "{plain}");
+        let mut rep = report(365);
+        rep.points[0].seconds_over_limit = Some(397.0);
+        rep.points[0].switchings = 38_800;
+        let text = to_text(&rep);
+        let head = text.lines().find(|l| l.contains("payback")).unwrap();
+        let row = text.lines().find(|l| l.trim_start().starts_with("4 ")).unwrap();
+        assert!(head.trim_end().ends_with("over limit switchings"), "{head}");
+        assert!(row.trim_end().ends_with("397 s      38800"), "{row}");
+        // Each column ends where its heading does (counted in characters: `€` is three
+        // bytes).
+        let row: Vec<char> = row.chars().collect();
+        for word in ["over limit", "switchings"] {
+            let end = head[..head.find(word).unwrap()].chars().count() + word.chars().count();
+            assert!(row[end - 1] != ' ' && row.get(end).is_none_or(|c| *c == ' '), "{word}:\n{head}\n{row:?}");
+        }
     }
 
     #[test]

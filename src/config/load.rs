@@ -290,6 +290,7 @@ impl Builder<'_, '_> {
             mqtt,
         };
         self.site_checks(&site, &header.spans, inverter_node);
+        self.check_loop_gains(&site, &header.spans);
         self.import_rules_beside_a_self_run_battery(&site, &load_nodes, &load_names);
         Some(site)
     }
@@ -312,7 +313,15 @@ impl Builder<'_, '_> {
             .get("tick")
             .map(|n| values::duration(n, "the engine tick", self.diags))
             .unwrap_or(Some(Duration::from_secs(1)));
-        let guard = self.guard(m.get("guard"));
+        let guard_node = m.get("guard");
+        let guard = self.guard(guard_node);
+        // Where the loop's gains are written, for C0287.
+        let gains_span = guard_node.and_then(|n| match &n.value {
+            Value::Map(entries) => {
+                entries.iter().find(|(k, _)| k.name == "kp" || k.name == "ki").map(|(k, _)| k.span.clone())
+            }
+            _ => None,
+        });
         let failsafe = self.failsafe(m.get("failsafe"));
         let off_grid_node = m.get("off_grid");
         let backup_node = m.get("backup");
@@ -397,6 +406,7 @@ impl Builder<'_, '_> {
                 site: site_span,
                 export: export_node.map(|n| n.span.clone()),
                 import_target: import_target_node.map(|n| n.span.clone()),
+                gains: gains_span,
             },
         })
     }
@@ -404,6 +414,44 @@ impl Builder<'_, '_> {
     /// A battery that runs itself pays for a load before the meter shows import, so a rule
     /// that waits for `import` never sees a load running on the battery; `surplus` does
     /// (its discharge counts there).
+    /// Gains written into `guard` that make the modulating loads ring or oscillate (C0287).
+    /// The loop acts on a meter reading that describes the plant `latency` ago: a
+    /// command takes effect at the next tick and is seen `floor(latency / tick) + 1`
+    /// ticks after it was issued. The velocity-form PI is run on that linear loop
+    /// against a step of export; gains whose error has not died down to 5 % of the step
+    /// 60 ticks later are warned about, the defaults too where the meter is slow. (A pure
+    /// integral loop whose reading is `n + 1` ticks behind, `z^(n+1) − z^n + K = 0`, is
+    /// stable only for K < 2·sin(π / (2(2n + 1))): 2 for a reading one tick behind, 1
+    /// for two, 0.62 for three — the roots of that polynomial, checked numerically.)
+    fn check_loop_gains(&mut self, site: &Site, spans: &HeaderSpans) {
+        let span = spans.gains.clone().unwrap_or(spans.site.clone());
+        if !site.loads.iter().any(|l| l.kind.is_modulating()) {
+            return;
+        }
+        let latency = site.roles.grid.map_or(Duration::ZERO, |g| site.points[g.0].latency);
+        let tick_s = site.tick.as_secs_f64();
+        let late = (latency.as_secs_f64() / tick_s).floor() as usize + 1;
+        let (kp, k) = (site.guard.kp, site.guard.ki * tick_s);
+        let residual = loop_residual(kp, k, late);
+        if residual > 0.05 {
+            let how = if residual > 1.0 { "oscillate, growing" } else { "ring for more than a minute of ticks" };
+            let which = if spans.gains.is_some() { "these gains" } else { "the default gains" };
+            let remedy = if spans.gains.is_some() && latency < Duration::from_secs(2) {
+                "the defaults (kp 0.1, ki 0.5) settle; lower kp first, then ki"
+            } else {
+                "lower `guard.kp` first, then `guard.ki` (halving ki for each further tick of the meter's latency), or give the grid point a faster meter"
+            };
+            self.diags.push(
+                Diagnostic::warning("C0287", format!("with {which} the modulating loads {how}"), span)
+                    .with_label(format!("kp {kp}, ki {} per second, the meter {} ms late", site.guard.ki, latency.as_millis()))
+                    .with_note(format!(
+                        "the meter shows a change {late} tick(s) after it is commanded; after a step of export the loop leaves {}% of it 60 ticks later: {remedy}",
+                        if residual > 9.99 { ">999 ".to_owned() } else { format!("{:.0} ", residual * 100.0) }
+                    )),
+            );
+        }
+    }
+
     fn import_rules_beside_a_self_run_battery(
         &mut self,
         site: &Site,
@@ -2878,6 +2926,33 @@ struct HeaderSpans {
     site: Range<usize>,
     export: Option<Range<usize>>,
     import_target: Option<Range<usize>>,
+    /// The first of `guard.kp` and `guard.ki` written in the file.
+    gains: Option<Range<usize>>,
+}
+
+/// The largest error, as a share of a step of export, between 60 and 120 ticks after
+/// the step, of the velocity-form PI (`u += kp·Δe + k·e`, as the engine's modulation
+/// loop) acting on a reading `late` ticks behind its commands. Clamps and load limits
+/// are left out: they keep a real site from running away, not from hunting.
+fn loop_residual(kp: f64, k: f64, late: usize) -> f64 {
+    let mut u = vec![0.0; late];
+    let mut last_error = None;
+    let mut worst: f64 = 0.0;
+    for tick in 0..120 {
+        // The export seen: the step of 1, less what the loads took `late` ticks ago.
+        let error = 1.0 - u[u.len() - late];
+        let change = last_error.map_or(0.0, |l| error - l);
+        let next = u[u.len() - 1] + kp * change + k * error;
+        u.push(next);
+        last_error = Some(error);
+        if tick >= 60 {
+            worst = worst.max(error.abs());
+        }
+        if !worst.is_finite() || worst > 1e6 {
+            return f64::INFINITY;
+        }
+    }
+    worst
 }
 
 fn window_len(w: &Window) -> Duration {

@@ -568,10 +568,19 @@ impl Report {
             );
         }
         if let Some(c) = &self.cost {
+            // Rules that top up from the grid can cost more than no diversion at all;
+            // "saves €-1.83" reads as a typo, so a loss is worded as one.
+            let verdict = if c.savings < -0.005 { "costs" } else { "saves" };
+            let more = if c.savings < -0.005 { " more" } else { "" };
             let _ = writeln!(
                 o,
-                "\ncost {}{:.2} against {}{:.2} without diversion: saves {}{:.2}",
-                c.currency, c.total, c.currency, c.baseline, c.currency, c.savings
+                "\ncost {}{:.2} against {}{:.2} without diversion: {verdict} {}{:.2}{more}",
+                c.currency,
+                c.total,
+                c.currency,
+                c.baseline,
+                c.currency,
+                c.savings.abs()
             );
             // The baseline charges the car whenever it is plugged in; rules that charge
             // it only from surplus send it away emptier, and that energy is bought

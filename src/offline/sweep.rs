@@ -163,6 +163,39 @@ fn find<'n>(node: &'n Node, path: &[String]) -> Option<&'n Node> {
     find(next, rest)
 }
 
+/// Whole paths (dotted, a list item by its `name` or index) of the nodes whose path ends
+/// in `tail`: what a `--vary` path written without its section (`guard.kp` for
+/// `site.guard.kp`) meant.
+fn paths_ending_in(node: &Node, at: &mut Vec<String>, tail: &[String], found: &mut Vec<String>) {
+    if at.len() > tail.len() && at.ends_with(tail) {
+        found.push(at.join("."));
+    }
+    match &node.value {
+        Value::Map(entries) => {
+            for (k, v) in entries {
+                at.push(k.name.clone());
+                paths_ending_in(v, at, tail, found);
+                at.pop();
+            }
+        }
+        Value::Seq(items) => {
+            for (i, item) in items.iter().enumerate() {
+                let name = match &item.value {
+                    Value::Map(e) => e.iter().find_map(|(k, v)| match &v.value {
+                        Value::Str(s) if k.name == "name" => Some(s.clone()),
+                        _ => None,
+                    }),
+                    _ => None,
+                };
+                at.push(name.unwrap_or_else(|| i.to_string()));
+                paths_ending_in(item, at, tail, found);
+                at.pop();
+            }
+        }
+        _ => {}
+    }
+}
+
 /// Byte range of the n-th number (with its unit) inside a rule's text.
 fn nth_number(text: &str, n: usize) -> Option<Range<usize>> {
     let bytes = text.as_bytes();
@@ -210,13 +243,21 @@ fn nth_number(text: &str, n: usize) -> Option<Range<usize>> {
 /// The site file's text with the varied setting set to `value`.
 pub fn substitute(text: &str, vary: &Vary, value: &str) -> Result<String, OfflineError> {
     let tree = yaml::parse(text).map_err(|d| OfflineError::Options(d.message.clone()))?;
-    let node = find(&tree, &vary.path)
-        .ok_or_else(|| {
-            OfflineError::Options(format!(
-                "--vary: the site file has no `{}`; a setting left at its default must be written into the file (at any value) before it can be varied",
-                vary.path.join(".")
-            ))
-        })?;
+    let node = find(&tree, &vary.path).ok_or_else(|| {
+        let wanted = vary.path.join(".");
+        let mut found = Vec::new();
+        paths_ending_in(&tree, &mut Vec::new(), &vary.path, &mut found);
+        OfflineError::Options(match found.as_slice() {
+            [] => format!(
+                "--vary: the site file has no `{wanted}`; a setting left at its default must be written into the file (at any value) before it can be varied"
+            ),
+            [one] => format!("--vary: the site file has no `{wanted}` at its top level; did you mean `{one}`?"),
+            more => format!(
+                "--vary: the site file has no `{wanted}` at its top level; it has {}: name one by its whole path",
+                more.iter().map(|p| format!("`{p}`")).collect::<Vec<_>>().join(", ")
+            ),
+        })
+    })?;
     let range = match vary.number {
         None => {
             if matches!(node.value, Value::Map(_) | Value::Seq(_)) {
@@ -308,5 +349,17 @@ mod tests {
         let unwritten = parse_vary("loads.tank.min_off=1min..2min:1min").unwrap();
         let err = substitute(text, &unwritten, "1min").unwrap_err().to_string();
         assert!(err.contains("must be written into the file"), "{err}");
+    }
+
+    /// `guard.kp` is a setting of the `site` section: the path written without its
+    /// section is answered with the whole one, the README's tables naming keys within
+    /// their section.
+    #[test]
+    fn a_path_without_its_section_is_answered_with_the_whole_path() {
+        let text = "site:\n  name: A\n  guard: { kp: 0.1, ki: 0.5 }\nloads:\n  - name: tank\n    min_on: 5min\n  - name: pump\n    min_on: 1h\n";
+        let err = substitute(text, &parse_vary("guard.kp=0..1:0.5").unwrap(), "0.5").unwrap_err().to_string();
+        assert!(err.contains("did you mean `site.guard.kp`?"), "{err}");
+        let err = substitute(text, &parse_vary("min_on=1h..2h:1h").unwrap(), "1h").unwrap_err().to_string();
+        assert!(err.contains("it has `loads.tank.min_on`, `loads.pump.min_on`: name one by its whole path"), "{err}");
     }
 }
