@@ -171,7 +171,9 @@ pub struct ObligationStatus {
     pub what: String,
     /// Progress as a phrase (`3.2 h of 5 h`, `54.1 °C of 60 °C`, `last cycle 2026-…`).
     pub progress: String,
-    /// Progress as a fraction 0–1 where that makes sense (`null` for cycles).
+    /// Progress as a fraction 0–1 where that makes sense: run time and state of charge.
+    /// `null` for temperatures (45 °C of 55 °C is not 82 % of the way from cold water)
+    /// and cycles.
     pub fraction: Option<f64>,
 }
 
@@ -429,7 +431,7 @@ fn obligation(
             Some(t) => ObligationStatus {
                 what,
                 progress: format!("{} °C of {target}", trim_number((t * 10.0).round() / 10.0)),
-                fraction: Some(if target.0 > 0.0 { (t / target.0).clamp(0.0, 1.0) } else { 1.0 }),
+                fraction: None,
             },
             None => ObligationStatus { what, progress: "temperature unknown".to_owned(), fraction: None },
         },
