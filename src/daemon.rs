@@ -327,6 +327,16 @@ fn restore(engine: &mut Engine, path: &std::path::Path, clock: &Clock) -> Result
                     "the state file was written by another site name: its counters are restored for loads of the same name; check --state if this is not a renamed site"
                 );
             }
+            if doc.stopped_cleanly == Some(false) {
+                // Between the last save and this start nothing held the loads: relays
+                // kept whatever they had, and an inverter without a reversion timer
+                // its last limit.
+                warn!(
+                    path = %path.display(),
+                    saved_at = %doc.saved_at,
+                    "the controller did not stop in order last time (killed, crashed or its power failed; up to 30 s of run time since the last save is lost): the relays held their last state and the inverter its last limit until now; every load starts in its safe state"
+                );
+            }
             engine.restore(&doc.counters, clock.now());
             let site = Arc::clone(engine.site());
             for (i, l) in site.loads.iter().enumerate() {

@@ -130,8 +130,47 @@ async fn the_state_file_is_written_at_start() {
     let daemon = start(&plant.site_yaml(PUMP_ONLY, ""), opts).await;
     let doc = state_file::read(&path).unwrap().expect("written at start");
     assert_eq!(doc.site, "Bench");
+    assert_eq!(doc.stopped_cleanly, Some(false), "a save while running");
     daemon.shutdown();
     daemon.wait().await;
+    let doc = state_file::read(&path).unwrap().unwrap();
+    assert_eq!(doc.stopped_cleanly, Some(true), "the last save of a stop in order");
+    let _ = std::fs::remove_dir_all(path.parent().unwrap());
+}
+
+/// A controller killed (`kill -9`, a crash, a power cut) leaves a state file whose last
+/// save was made while running: the next start says so, since nothing held the loads
+/// in between. A stop in order, and a file from before this was kept, say nothing.
+#[tokio::test(start_paused = true)]
+async fn a_start_after_a_controller_that_did_not_stop_in_order_says_so() {
+    let plant = Plant::start(0.0).await;
+    let path = state_path("unclean-stop");
+    let yaml = plant.site_yaml(PUMP_ONLY, "");
+    let mut opts = options(T0);
+    opts.state_file = Some(path.clone());
+    let daemon = start(&yaml, opts).await;
+    daemon.shutdown();
+    daemon.wait().await;
+    let clean = std::fs::read(&path).unwrap();
+    let mut killed: serde_json::Value = serde_json::from_slice(&clean).unwrap();
+    killed["stopped_cleanly"] = false.into();
+    let mut old: serde_json::Value = serde_json::from_slice(&clean).unwrap();
+    old.as_object_mut().unwrap().remove("stopped_cleanly");
+    for (file, warned) in [(killed, true), (serde_json::from_slice(&clean).unwrap(), false), (old, false)] {
+        std::fs::write(&path, serde_json::to_vec(&file).unwrap()).unwrap();
+        let (logs, _guard) = support::Logs::capture();
+        let mut opts = options(T0.plus(Duration::from_secs(600)));
+        opts.state_file = Some(path.clone());
+        let daemon = start(&yaml, opts).await;
+        daemon.shutdown();
+        daemon.wait().await;
+        let text = logs.text();
+        let line = text.lines().find(|l| l.contains("did not stop in order"));
+        assert_eq!(line.is_some(), warned, "{file}\n{text}");
+        if let Some(line) = line {
+            assert!(line.contains("WARN") && line.contains("every load starts in its safe state"), "{line}");
+        }
+    }
     let _ = std::fs::remove_dir_all(path.parent().unwrap());
 }
 

@@ -198,7 +198,7 @@ impl Control {
                 }
                 // Cancel-safe: as above. The save itself is awaited outside `select!`.
                 _ = persist.tick() => {
-                    self.persist().await;
+                    self.persist(false).await;
                 }
                 // Cancel-safe: an mpsc receive.
                 ev = events.recv(), if events_open => match ev {
@@ -514,14 +514,14 @@ impl Control {
 
     /// Saves the counters; a failure is logged and retried at the next period. Returns
     /// whether they were saved (`None`: there is no state file).
-    async fn persist(&mut self) -> Option<bool> {
+    async fn persist(&mut self, stopping: bool) -> Option<bool> {
         let path = self.state_file.clone()?;
         let counters = self.engine.persisted();
         let site = self.site.name.clone();
         let now = self.clock.now();
         let p = path.clone();
         // fsync can take long on an SD card: keep it off the control task's thread.
-        match tokio::task::spawn_blocking(move || state_file::write(&p, &site, &counters, now)).await {
+        match tokio::task::spawn_blocking(move || state_file::write(&p, &site, &counters, now, stopping)).await {
             Ok(Ok(())) => {
                 self.summary.saves += 1;
                 debug!(path = %path.display(), "counters saved");
@@ -577,7 +577,7 @@ impl Control {
         let mut doc = with_safe(doc, &safe, &self.site);
         doc.replay_log = self.replay_log.as_ref().map(ReplayLog::status);
         self.status.send_replace(Arc::new(doc));
-        match self.persist().await {
+        match self.persist(true).await {
             Some(true) => info!(saves = self.summary.saves, "counters saved: stopping the links"),
             Some(false) => error!(
                 saves = self.summary.saves,

@@ -4,7 +4,8 @@
 //! Format (JSON, one document):
 //! ```json
 //! {"format": "spillway-state", "version": 1, "site": "Rosemead",
-//!  "saved_at": "2026-06-21T11:02:03.000Z", "counters": { ...PersistedState... }}
+//!  "saved_at": "2026-06-21T11:02:03.000Z", "counters": { ...PersistedState... },
+//!  "stopped_cleanly": false}
 //! ```
 //! Atomic write: the document goes to `<file>.tmp` in the same directory, is flushed
 //! to disk (fsync), renamed over the file, and the directory is synced, so a power cut
@@ -37,6 +38,12 @@ pub struct StateDocument {
     pub saved_at: String,
     /// The engine's counters.
     pub counters: PersistedState,
+    /// Whether this was the last save of a controller stopping in order (SIGTERM,
+    /// Ctrl-C). `false` in every other save, so a file left with `false` tells the next
+    /// start that the controller was killed, crashed or lost its power; absent (`null`)
+    /// in files written before it was kept.
+    #[serde(default)]
+    pub stopped_cleanly: Option<bool>,
 }
 
 /// Why the state file could not be read or written.
@@ -107,7 +114,7 @@ pub fn write_at_start(
     counters: &PersistedState,
     now: Timestamp,
 ) -> Result<(), StateFileError> {
-    write(path, site, counters, now).map_err(|e| match e {
+    write(path, site, counters, now, false).map_err(|e| match e {
         StateFileError::Io { source, .. } => {
             let dir = path.parent().filter(|d| !d.as_os_str().is_empty()).unwrap_or(Path::new("."));
             let advice = if dir.is_dir() {
@@ -144,14 +151,22 @@ pub fn set_aside(path: &Path) -> Result<PathBuf, StateFileError> {
     Ok(aside)
 }
 
-/// Writes the counters atomically (temporary file, fsync, rename, directory sync).
-pub fn write(path: &Path, site: &str, counters: &PersistedState, now: Timestamp) -> Result<(), StateFileError> {
+/// Writes the counters atomically (temporary file, fsync, rename, directory sync);
+/// `stopping` on the last save of a controller that stops in order.
+pub fn write(
+    path: &Path,
+    site: &str,
+    counters: &PersistedState,
+    now: Timestamp,
+    stopping: bool,
+) -> Result<(), StateFileError> {
     let doc = StateDocument {
         format: FORMAT.to_owned(),
         version: VERSION,
         site: site.to_owned(),
         saved_at: now.to_string(),
         counters: counters.clone(),
+        stopped_cleanly: Some(stopping),
     };
     let io = |p: &Path| {
         let p = p.display().to_string();
@@ -213,7 +228,7 @@ mod tests {
         fs::create_dir_all(&dir).unwrap();
         let path = dir.join("home.state.json");
         assert_eq!(read(&path).unwrap(), None, "no file yet");
-        write(&path, "Home", &counters(), Timestamp(1_782_000_000_000)).unwrap();
+        write(&path, "Home", &counters(), Timestamp(1_782_000_000_000), false).unwrap();
         let doc = read(&path).unwrap().unwrap();
         assert_eq!(doc.counters, counters());
         assert_eq!((doc.format.as_str(), doc.version, doc.site.as_str()), (FORMAT, VERSION, "Home"));
