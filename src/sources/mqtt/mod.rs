@@ -356,7 +356,8 @@ impl MqttLink {
                 continue;
             }
             let point = &self.site.points[id.0];
-            match payload::parse_value(&p.payload, &read.payload) {
+            let switch_words = point.boolean || point.dimension == crate::units::Dimension::Scalar;
+            match payload::parse_value(&p.payload, &read.payload, switch_words) {
                 Ok(v) => {
                     let value = if point.boolean { f64::from(u8::from(v != 0.0)) } else { v * point.unit_factor };
                     self.stats.count(Counter::Sample);

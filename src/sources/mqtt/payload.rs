@@ -68,18 +68,27 @@ pub struct OverrideRequest {
 }
 
 /// Decodes a signal payload into the number the point's configuration describes
-/// (before the unit factor).
-pub fn parse_value(payload: &[u8], format: &Payload) -> Result<f64, String> {
+/// (before the unit factor). `switch_words`: whether `ON`/`OFF`/`true`/`false` (and a
+/// JSON boolean) are readings of this point — for a boolean or unitless point; on a
+/// point in watts or degrees they are refused, since a grid point subscribed to a
+/// plug's state topic by mistake would otherwise read a fresh 1 W forever and never
+/// fail safe.
+pub fn parse_value(payload: &[u8], format: &Payload, switch_words: bool) -> Result<f64, String> {
     let text = std::str::from_utf8(payload).map_err(|_| "payload is not UTF-8".to_owned())?;
+    let switch_state = |what: &str| {
+        format!("{what} is a switch state, not a measurement: check that the topic is the device's reading, not its on/off state")
+    };
     match format {
-        Payload::Plain => plain_value(text),
+        Payload::Plain => plain_value(text, switch_words).map_err(|e| e.unwrap_or_else(|| switch_state(&format!("\"{}\"", text.trim())))),
         Payload::Json(pointer) => {
             let doc: Value = serde_json::from_str(text).map_err(|e| format!("payload is not JSON: {e}"))?;
             let v = doc.pointer(pointer).ok_or_else(|| format!("JSON has nothing at {pointer}"))?;
             match v {
                 Value::Number(n) => n.as_f64().ok_or_else(|| format!("number at {pointer} is out of range")),
-                Value::Bool(b) => Ok(f64::from(u8::from(*b))),
-                Value::String(s) => plain_value(s),
+                Value::Bool(b) if switch_words => Ok(f64::from(u8::from(*b))),
+                Value::Bool(b) => Err(switch_state(&format!("JSON {b} at {pointer}"))),
+                Value::String(s) => plain_value(s, switch_words)
+                    .map_err(|e| e.unwrap_or_else(|| switch_state(&format!("\"{s}\" at {pointer}")))),
                 other => Err(format!("JSON at {pointer} is {}, not a number", json_kind(other))),
             }
         }
@@ -97,16 +106,27 @@ fn json_kind(v: &Value) -> &'static str {
     }
 }
 
-fn plain_value(text: &str) -> Result<f64, String> {
+/// A plain number, or a switch word where `switch_words`; `Err(None)` for a switch word
+/// where it is not a reading.
+fn plain_value(text: &str, switch_words: bool) -> Result<f64, Option<String>> {
     let t = text.trim();
-    match t.to_ascii_lowercase().as_str() {
-        "on" | "true" => return Ok(1.0),
-        "off" | "false" => return Ok(0.0),
-        _ => {}
+    let word = match t.to_ascii_lowercase().as_str() {
+        "on" | "true" => Some(1.0),
+        "off" | "false" => Some(0.0),
+        _ => None,
+    };
+    match word {
+        Some(v) if switch_words => return Ok(v),
+        Some(_) => return Err(None),
+        None => {}
     }
     match t.parse::<f64>() {
         Ok(v) if v.is_finite() => Ok(v),
-        _ => Err(format!("\"{}\" is not a number or ON/OFF", t.chars().take(40).collect::<String>())),
+        _ => Err(Some(if switch_words {
+            format!("\"{}\" is not a number or ON/OFF", t.chars().take(40).collect::<String>())
+        } else {
+            format!("\"{}\" is not a number", t.chars().take(40).collect::<String>())
+        })),
     }
 }
 
@@ -242,17 +262,36 @@ mod tests {
     #[test]
     fn signal_payloads() {
         let j = |p: &str| Payload::Json(p.to_owned());
-        assert_eq!(parse_value(b" 21.5\n", &Payload::Plain), Ok(21.5));
-        assert_eq!(parse_value(b"ON", &Payload::Plain), Ok(1.0));
-        assert_eq!(parse_value(b"false", &Payload::Plain), Ok(0.0));
-        assert_eq!(parse_value(br#"{"ENERGY":{"Power":512}}"#, &j("/ENERGY/Power")), Ok(512.0));
-        assert_eq!(parse_value(br#"{"on":true}"#, &j("/on")), Ok(1.0));
-        assert_eq!(parse_value(br#"{"t":"19.5"}"#, &j("/t")), Ok(19.5));
-        assert!(parse_value(b"warm", &Payload::Plain).is_err());
-        assert!(parse_value(b"NaN", &Payload::Plain).is_err());
-        assert!(parse_value(br#"{"t":null}"#, &j("/t")).is_err());
-        assert!(parse_value(br#"{"t":1}"#, &j("/u")).is_err());
-        assert!(parse_value(b"{", &j("/u")).is_err());
+        let any = |payload: &[u8], format: &Payload| parse_value(payload, format, true);
+        assert_eq!(any(b" 21.5\n", &Payload::Plain), Ok(21.5));
+        assert_eq!(any(b"ON", &Payload::Plain), Ok(1.0));
+        assert_eq!(any(b"false", &Payload::Plain), Ok(0.0));
+        assert_eq!(any(br#"{"ENERGY":{"Power":512}}"#, &j("/ENERGY/Power")), Ok(512.0));
+        assert_eq!(any(br#"{"on":true}"#, &j("/on")), Ok(1.0));
+        assert_eq!(any(br#"{"t":"19.5"}"#, &j("/t")), Ok(19.5));
+        assert!(any(b"warm", &Payload::Plain).is_err());
+        assert!(any(b"NaN", &Payload::Plain).is_err());
+        assert!(any(br#"{"t":null}"#, &j("/t")).is_err());
+        assert!(any(br#"{"t":1}"#, &j("/u")).is_err());
+        assert!(any(b"{", &j("/u")).is_err());
+    }
+
+    /// A point in watts or degrees takes numbers only: a grid point subscribed to a
+    /// plug's state topic by mistake (`ON`) read a fresh 1 W, and a no-export site
+    /// whose meter had gone silent never failed safe.
+    #[test]
+    fn a_measurement_refuses_a_switch_state() {
+        let j = |p: &str| Payload::Json(p.to_owned());
+        let measured = |payload: &[u8], format: &Payload| parse_value(payload, format, false);
+        assert_eq!(measured(b"-1500", &Payload::Plain), Ok(-1500.0));
+        assert_eq!(measured(br#"{"p":"512"}"#, &j("/p")), Ok(512.0));
+        for (payload, format) in
+            [(&b"ON"[..], Payload::Plain), (b" true ", Payload::Plain), (br#"{"p":true}"#, j("/p")), (br#"{"p":"off"}"#, j("/p"))]
+        {
+            let err = measured(payload, &format).unwrap_err();
+            assert!(err.contains("is a switch state, not a measurement"), "{err}");
+        }
+        assert_eq!(measured(b"warm", &Payload::Plain), Err("\"warm\" is not a number".to_owned()));
     }
 
     #[test]
