@@ -833,3 +833,32 @@ fn loop_gains_that_make_the_modulating_loads_hunt_are_warned_about() {
     let w = loaded.warnings.iter().find(|w| w.code == "C0287").unwrap();
     assert!(w.message.contains("oscillate, growing"), "{}", w.message);
 }
+
+/// The topic prefix starts every topic Spillway publishes: a wildcard in it made the
+/// broker drop the connection, reported as a broker that cannot be reached; an MQTT
+/// password without a user name was ignored (MQTT 3.1.1 §3.1.2.9 sends a password only
+/// with a user name).
+#[test]
+fn a_wildcard_topic_prefix_and_a_password_without_a_user_are_refused() {
+    let yaml = |mqtt: &str| {
+        format!(
+            "
+site: {{ name: Plug House, timezone: Europe/Dublin, export: allowed }}
+mqtt: {{ broker: 127.0.0.1:1883{mqtt} }}
+devices:
+  home: {{ mqtt: true }}
+points:
+  grid: {{ device: home, topic: home/meter, unit: W }}
+loads:
+  - {{ name: pump, priority: 1, rated: 750W, switch: {{ device: home, topic: home/plug/set }}, start: surplus > 800W for 1min, stop: import > 200W for 1min }}
+"
+        )
+    };
+    assert_eq!(codes(&yaml(", topic_prefix: plug/house")), Vec::<&str>::new());
+    for prefix in ["spillway/+/x", "spillway/#", "a+b", "\"/\""] {
+        assert_eq!(codes(&yaml(&format!(", topic_prefix: {prefix}"))), ["C0218"], "{prefix}");
+    }
+    assert_eq!(codes(&yaml(", password_env: PLUG_PW")), ["C0209"]);
+    assert_eq!(codes(&yaml(", password_file: /etc/spillway/pw")), ["C0209"]);
+    assert_eq!(codes(&yaml(", username: plug, password_file: /etc/spillway/pw")), Vec::<&str>::new());
+}

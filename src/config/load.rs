@@ -754,10 +754,27 @@ impl Builder<'_, '_> {
         };
         let slug: String =
             site_name.to_lowercase().chars().map(|c| if c.is_ascii_alphanumeric() { c } else { '-' }).collect();
-        let topic_prefix = m
-            .get("topic_prefix")
+        let prefix_node = m.get("topic_prefix");
+        let topic_prefix = prefix_node
             .and_then(|n| values::text(n, "the topic prefix", self.diags))
             .map_or_else(|| format!("spillway/{slug}"), |s| s.trim_end_matches('/').to_owned());
+        // The prefix begins topics Spillway publishes and subscribes to: a wildcard
+        // in it makes the broker refuse the publishes and drop the connection, which
+        // looked like a broker that cannot be reached.
+        if let Some(n) = prefix_node
+            && (topic_prefix.is_empty() || topic_prefix.contains(['+', '#']))
+        {
+            self.diags.error(
+                "C0218",
+                if topic_prefix.is_empty() {
+                    "the topic prefix is empty".to_owned()
+                } else {
+                    format!("the topic prefix \"{topic_prefix}\" contains a wildcard")
+                },
+                n.span.clone(),
+                format!("the topics Spillway publishes start with it: name one, e.g. spillway/{slug}"),
+            );
+        }
         let qos = m.get("qos").map_or(Some(Qos::AtLeastOnce), |n| self.qos(n));
         let keep_alive = m
             .get("keep_alive")
@@ -780,6 +797,14 @@ impl Builder<'_, '_> {
                 return None;
             }
         };
+        if username.is_none() && (password_env.is_some() || password_file.is_some()) {
+            self.diags.error(
+                "C0209",
+                "an MQTT password without a `username`",
+                node.span.clone(),
+                "the broker is sent a password only with a user name: add `username`, or remove the password",
+            );
+        }
         if password_env.is_some() && password_file.is_some() {
             self.diags.error(
                 "C0209",
