@@ -211,3 +211,45 @@ async fn the_metrics_endpoint_serves_the_status_as_openmetrics_text() {
     daemon.shutdown();
     daemon.wait().await;
 }
+
+/// Export past the limit that the guard cannot clear — here a no-export site with no
+/// inverter to curtail and a load that will not start — is warned about once it
+/// outlasts what the guard needs (10 s at the default 2 s deadline), with its cause,
+/// and shown in the status while it lasts; its end is logged. It used to be silent.
+#[tokio::test(start_paused = true)]
+async fn export_over_the_limit_the_guard_cannot_clear_is_warned_about_with_its_cause() {
+    let plant = Plant::start(2500.0).await;
+    let reluctant = "
+  - name: pool_pump
+    priority: 1
+    rated: 1.1kW
+    switch: { device: relays, coil: 1 }
+    start: surplus > 50kW for 10s
+    stop: import > 400W for 10s
+";
+    let with_inverter = plant.site_yaml(reluctant, "");
+    let at = with_inverter.find("inverter:\n  rated").unwrap();
+    let end = with_inverter.find("loads:").unwrap();
+    let yaml = format!("{}{}", &with_inverter[..at], &with_inverter[end..]);
+    let (logs, _guard) = support::Logs::capture();
+    let daemon = start(&yaml, options(T0)).await;
+    let s = status_until(&daemon, Duration::from_secs(60), "a long stretch over the limit", |s| {
+        s.totals.over_limit_now_s.is_some_and(|t| t >= 12.0)
+    })
+    .await;
+    assert!(s.totals.export_over_limit_s >= 12.0, "{:?}", s.totals);
+    plant.set_pv(0.0);
+    status_until(&daemon, Duration::from_secs(30), "export within the limit", |s| s.totals.over_limit_now_s.is_none())
+        .await;
+    daemon.shutdown();
+    daemon.wait().await;
+    let text = logs.text();
+    let warnings: Vec<_> = text.lines().filter(|l| l.contains("longer than the guard needs")).collect();
+    assert_eq!(warnings.len(), 1, "once per stretch: {text}");
+    assert!(
+        warnings[0].contains("WARN") && warnings[0].contains("no inverter the guard may curtail"),
+        "{}",
+        warnings[0]
+    );
+    assert!(text.contains("export back within the limit"), "{text}");
+}

@@ -107,6 +107,9 @@ pub(super) struct Control {
     replay_log: Option<ReplayLog>,
     /// The largest power reading taken as real, W (see [`power_bound`]).
     power_bound: f64,
+    /// The current stretch of export above the limit: since when, its peak (W), and
+    /// whether it has been warned about.
+    over_limit: Option<(crate::units::Timestamp, f64, bool)>,
 }
 
 /// The largest power a reading of this site may show: ten times its largest rating
@@ -153,6 +156,7 @@ impl Control {
             last_counters: None,
             replay_log,
             power_bound: power_bound(&site),
+            over_limit: None,
             site,
         }
     }
@@ -363,14 +367,64 @@ impl Control {
             self.totals.export_wh += grown(c.export_today, before.export_today);
             self.totals.diverted_wh += grown(c.diverted_today, before.diverted_today);
             let d = self.engine.decisions();
-            if let (Some(grid), Some(limit)) = (d.grid, self.site.export_limit())
-                && -grid.0 > limit.0 + self.site.guard.tolerance.0
-            {
+            let over = match (d.grid, self.site.export_limit()) {
+                (Some(grid), Some(limit)) if -grid.0 > limit.0 + self.site.guard.tolerance.0 => Some(-grid.0),
+                _ => None,
+            };
+            if over.is_some() {
                 // Capped like the engine's integration: a stopped clock is not export.
                 self.totals.export_over_limit_s += now.since(at).min(Duration::from_secs(60)).as_secs_f64();
             }
+            self.watch_over_limit(now, over);
         }
         self.last_counters = Some((c, now));
+    }
+
+    /// Export past the limit for longer than the guard takes to clear it is warned
+    /// about once per stretch, with what the site can and cannot do about it (no
+    /// inverter to curtail, the inverter already at its floor, the loads waiting on
+    /// their timers), and its end is logged. Without this a site whose loads were full
+    /// and which had no inverter to curtail exported for minutes with nothing in the log.
+    fn watch_over_limit(&mut self, now: crate::units::Timestamp, export_w: Option<f64>) {
+        let Some(export_w) = export_w else {
+            if let Some((since, peak, warned)) = self.over_limit.take()
+                && warned
+            {
+                info!(
+                    lasted = %crate::units::format_duration(now.since(since)),
+                    peak = %Power(peak),
+                    "export back within the limit"
+                );
+            }
+            self.totals.over_limit_now_s = None;
+            return;
+        };
+        let (since, peak, warned) = self.over_limit.get_or_insert((now, export_w, false));
+        *peak = peak.max(export_w);
+        let lasted = now.since(*since);
+        self.totals.over_limit_now_s = Some(lasted.as_secs_f64());
+        // The guard's own reaction (its deadline, then an escalation, then a meter
+        // reading) stays well under this; anything longer is something it cannot fix.
+        let patience = (self.site.guard.deadline * 3).max(Duration::from_secs(10));
+        if *warned || lasted < patience {
+            return;
+        }
+        *warned = true;
+        let d = self.engine.decisions();
+        let cause = match (&self.site.inverter, d.inverter_limit) {
+            (None, _) => "no inverter the guard may curtail (C0254): only the loads can take it, and they are full or waiting on their timers".to_owned(),
+            (Some(_), Some(limit)) if limit.0 <= 0.0 => {
+                "the inverter is already held at 0 W: export comes from elsewhere (a second inverter or a battery Spillway does not command, or an inverter ignoring its limit)".to_owned()
+            }
+            (Some(_), Some(limit)) => format!("the inverter is held at {limit} and the export stays: check that it obeys its limit"),
+            (Some(_), None) => "the inverter holds no limit: check that the limit is written and obeyed (the status page's inverter row)".to_owned(),
+        };
+        warn!(
+            export = %Power(export_w),
+            limit = %self.site.export_limit().unwrap_or(Power::ZERO),
+            lasted = %crate::units::format_duration(lasted),
+            "export above the limit for longer than the guard needs to clear it: {cause}"
+        );
     }
 
     fn event(&mut self, ev: SourceEvent) {

@@ -87,6 +87,10 @@ pub struct Totals {
     /// Seconds the grid reading showed export above the limit plus the guard's
     /// tolerance (0 on a site whose export is allowed).
     pub export_over_limit_s: f64,
+    /// How long export has been above the limit plus tolerance without a break, s;
+    /// `null` while it is within the limit. Logged as a warning once it outlasts what
+    /// the guard needs to clear it.
+    pub over_limit_now_s: Option<f64>,
     /// Imported, by the engine's counters.
     pub import_wh: f64,
     /// Exported, by the engine's counters.

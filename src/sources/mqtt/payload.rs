@@ -76,10 +76,13 @@ pub struct OverrideRequest {
 pub fn parse_value(payload: &[u8], format: &Payload, switch_words: bool) -> Result<f64, String> {
     let text = std::str::from_utf8(payload).map_err(|_| "payload is not UTF-8".to_owned())?;
     let switch_state = |what: &str| {
-        format!("{what} is a switch state, not a measurement: check that the topic is the device's reading, not its on/off state")
+        format!(
+            "{what} is a switch state, not a measurement: check that the topic is the device's reading, not its on/off state"
+        )
     };
     match format {
-        Payload::Plain => plain_value(text, switch_words).map_err(|e| e.unwrap_or_else(|| switch_state(&format!("\"{}\"", text.trim())))),
+        Payload::Plain => plain_value(text, switch_words)
+            .map_err(|e| e.unwrap_or_else(|| switch_state(&format!("\"{}\"", text.trim())))),
         Payload::Json(pointer) => {
             let doc: Value = serde_json::from_str(text).map_err(|e| format!("payload is not JSON: {e}"))?;
             let v = doc.pointer(pointer).ok_or_else(|| format!("JSON has nothing at {pointer}"))?;
@@ -285,9 +288,12 @@ mod tests {
         let measured = |payload: &[u8], format: &Payload| parse_value(payload, format, false);
         assert_eq!(measured(b"-1500", &Payload::Plain), Ok(-1500.0));
         assert_eq!(measured(br#"{"p":"512"}"#, &j("/p")), Ok(512.0));
-        for (payload, format) in
-            [(&b"ON"[..], Payload::Plain), (b" true ", Payload::Plain), (br#"{"p":true}"#, j("/p")), (br#"{"p":"off"}"#, j("/p"))]
-        {
+        for (payload, format) in [
+            (&b"ON"[..], Payload::Plain),
+            (b" true ", Payload::Plain),
+            (br#"{"p":true}"#, j("/p")),
+            (br#"{"p":"off"}"#, j("/p")),
+        ] {
             let err = measured(payload, &format).unwrap_err();
             assert!(err.contains("is a switch state, not a measurement"), "{err}");
         }
