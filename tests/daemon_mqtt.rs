@@ -569,3 +569,33 @@ async fn through_the_broker_on_1883() {
     }
     scenario::<fn() -> std::future::Ready<()>, _>("1883", 1883, None).await;
 }
+
+/// A point published less often than its `stale_after` goes stale between every two
+/// readings (a meter reporting every 5 s against the default 2.5 s made the site flap
+/// in and out of fail-safe with one line in the log): three such gaps in a row are
+/// warned about once, naming the point, the period seen and the setting to change.
+#[tokio::test]
+async fn a_point_published_less_often_than_its_stale_after_is_warned_about() {
+    let broker = Broker::start().await;
+    let port = broker.addr.port();
+    let prefix = unique_prefix("gaps");
+    let plant = MqttPlant::start(port, &prefix).await;
+    let yaml = site_yaml(port, &prefix).replace(
+        "\nloads:",
+        &format!("\n  slow: {{ device: home, topic: {prefix}/dev/slow, unit: W, stale_after: 1500ms }}\nloads:"),
+    );
+    let (logs, _guard) = support::Logs::capture();
+    let daemon = Daemon::start(support::site(&yaml), Options::default()).await.unwrap();
+    until(&daemon, "rules in charge", |s| s.mode == "normal").await;
+    for _ in 0..5 {
+        plant.publish("dev/slow", "120").await;
+        tokio::time::sleep(Duration::from_millis(2000)).await;
+    }
+    daemon.shutdown();
+    daemon.wait().await;
+    let text = logs.text();
+    let warned: Vec<_> = text.lines().filter(|l| l.contains("further apart than the point's stale_after")).collect();
+    assert_eq!(warned.len(), 1, "once: {text}");
+    assert!(warned[0].contains("slow") && warned[0].contains("every=2 s"), "{}", warned[0]);
+    assert!(!text.lines().any(|l| l.contains("further apart") && l.contains("point=grid")), "{text}");
+}

@@ -152,9 +152,15 @@ pub fn describe(site: &Site) -> String {
         let role = if ROLE_NAMES.iter().any(|(n, _)| *n == p.name) { "  (site role)" } else { "" };
         let frozen =
             p.frozen_after.map_or(String::new(), |f| format!(", frozen after {} unchanged", format_duration(f)));
+        // An MQTT point is published, not polled: its `poll` is the period it is
+        // expected at, which sets its default stale_after.
+        let every = match &p.read {
+            PointRead::Mqtt(_) => "expected every",
+            _ => "every",
+        };
         let _ = writeln!(
             out,
-            "  {:<16} {device}: {source}; {what}, every {}, stale after {}{frozen}{role}",
+            "  {:<16} {device}: {source}; {what}, {every} {}, stale after {}{frozen}{role}",
             p.name,
             format_duration(p.poll),
             format_duration(p.stale_after)

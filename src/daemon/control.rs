@@ -110,6 +110,8 @@ pub(super) struct Control {
     /// The current stretch of export above the limit: since when, its peak (W), and
     /// whether it has been warned about.
     over_limit: Option<(crate::units::Timestamp, f64, bool)>,
+    /// Per point: gaps longer than its `stale_after` in a row, and whether warned.
+    reading_gaps: Vec<(u32, bool)>,
 }
 
 /// The largest power a reading of this site may show: ten times its largest rating
@@ -157,6 +159,7 @@ impl Control {
             replay_log,
             power_bound: power_bound(&site),
             over_limit: None,
+            reading_gaps: vec![(0, false); site.points.len()],
             site,
         }
     }
@@ -380,6 +383,35 @@ impl Control {
         self.last_counters = Some((c, now));
     }
 
+    /// A point whose readings keep arriving further apart than its `stale_after` (an
+    /// MQTT meter publishing every 5 s against the default 2.5 s) goes stale between
+    /// every two of them, and a site that needs it flaps in and out of fail-safe with
+    /// one line in the log. Three such gaps in a row are warned about once, with the
+    /// period seen and the setting that fixes it.
+    fn watch_reading_gaps(&mut self, point: crate::config::model::PointId, at: crate::units::Timestamp) {
+        let Some(p) = self.site.points.get(point.0) else { return };
+        let previous = self.snapshot.get(point).at;
+        let Some(gaps) = self.reading_gaps.get_mut(point.0) else { return };
+        if previous == crate::units::Timestamp::NEVER || at <= previous {
+            return;
+        }
+        let gap = at.since(previous);
+        if gap <= p.stale_after {
+            gaps.0 = 0;
+            return;
+        }
+        gaps.0 += 1;
+        if gaps.0 >= 3 && !gaps.1 {
+            gaps.1 = true;
+            warn!(
+                point = %p.name,
+                every = %crate::units::format_duration(Duration::from_secs_f64(gap.as_secs_f64().round())),
+                stale_after = %crate::units::format_duration(p.stale_after),
+                "readings arrive further apart than the point's stale_after: it goes stale between them (and the site fails safe each time if it needs the point); give the point `poll:` set to its reporting period (its stale_after is then twice that) or a `stale_after` above it"
+            );
+        }
+    }
+
     /// Export past the limit for longer than the guard takes to clear it is warned
     /// about once per stretch, with what the site can and cannot do about it (no
     /// inverter to curtail, the inverter already at its floor, the loads waiting on
@@ -449,6 +481,7 @@ impl Control {
                     self.event(SourceEvent::Malformed { device: Some(p.device), origin: p.name.clone(), detail });
                     return;
                 }
+                self.watch_reading_gaps(point, at);
                 self.snapshot.set(point, value, at);
             }
             SourceEvent::DeviceUp { device } => {
