@@ -599,3 +599,29 @@ async fn a_point_published_less_often_than_its_stale_after_is_warned_about() {
     assert!(warned[0].contains("slow") && warned[0].contains("every=2 s"), "{}", warned[0]);
     assert!(!text.lines().any(|l| l.contains("further apart") && l.contains("point=grid")), "{text}");
 }
+
+/// Each different mistake on an override topic is answered in the log (a person trying
+/// forms got one line a minute, the rest silently counted), against the broker, not the
+/// meter's device; a retained reading is ignored with one line saying so.
+#[tokio::test]
+async fn every_different_override_mistake_is_logged_and_a_retained_reading_is_noted() {
+    let broker = Broker::start().await;
+    let port = broker.addr.port();
+    let prefix = unique_prefix("mistakes");
+    broker.publish(&format!("{prefix}/dev/meter"), "-3000", true);
+    let plant = MqttPlant::start(port, &prefix).await;
+    let (logs, _guard) = support::Logs::capture();
+    let daemon = Daemon::start(support::site(&site_yaml(port, &prefix)), Options::default()).await.unwrap();
+    until(&daemon, "rules in charge", |s| s.mode == "normal").await;
+    for bad in ["boost", "on 25h", "on 0s", "boost"] {
+        plant.publish("ctl/override/water_heater", bad).await;
+    }
+    let s = until(&daemon, "four mistakes counted", |s| s.broker.as_ref().is_some_and(|b| b.malformed >= 4)).await;
+    assert_eq!(s.devices[0].malformed, 0, "not the meter's: {:?}", s.devices[0]);
+    daemon.shutdown();
+    daemon.wait().await;
+    let text = logs.text();
+    let logged = text.lines().filter(|l| l.contains("malformed input ignored")).count();
+    assert_eq!(logged, 3, "each different mistake once: {text}");
+    assert_eq!(text.lines().filter(|l| l.contains("a retained reading was ignored")).count(), 1, "{text}");
+}

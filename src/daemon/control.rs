@@ -315,7 +315,7 @@ impl Control {
                 warn!(
                     points = %list,
                     waited_s = (d.now.0 - first.0) / 1000,
-                    "no reading at all since start from these points: check their topics or addresses (and the device links logged above); rules read them as unknown"
+                    "no reading at all since start from these points: check their topics or addresses (and the device links logged above; a retained MQTT message is not taken as a reading); rules read them as unknown"
                 );
             }
         }
@@ -536,7 +536,15 @@ impl Control {
                     h.malformed += 1;
                     h.malformed
                 });
-                if let Some(repeated) = self.should_log(format!("mal/{origin}")) {
+                // A device's garbage is logged once a minute per topic; each different
+                // mistake on an override topic (a person or an automation trying forms)
+                // is logged, so that every correction gets its answer.
+                let key = if origin.contains("/override/") {
+                    format!("mal/{origin}/{detail}")
+                } else {
+                    format!("mal/{origin}")
+                };
+                if let Some(repeated) = self.should_log(key) {
                     warn!(
                         device = %device.map_or("-", |d| self.device_name(d)),
                         %origin,
@@ -580,6 +588,11 @@ impl Control {
     /// Whether to log a repeated problem now; the count of repeats since the last line.
     fn should_log(&mut self, key: String) -> Option<u64> {
         let now = Instant::now();
+        // Keys are topics, devices and override mistakes: bounded in practice, but a
+        // flood of distinct override payloads must not grow the map for ever.
+        if self.repeats.len() >= 4096 {
+            self.repeats.clear();
+        }
         match self.repeats.get_mut(&key) {
             None => {
                 self.repeats.insert(key, (now, 0));

@@ -99,6 +99,8 @@ pub struct MqttLink {
     points: Vec<(PointId, MqttRead)>,
     devices: Vec<DeviceId>,
     discovery: Vec<discovery::DiscoveryDoc>,
+    /// Topics whose retained message has been ignored and said so (once each).
+    retained_noted: std::sync::Mutex<std::collections::HashSet<String>>,
 }
 
 /// What the event-loop half tells the publishing half.
@@ -146,7 +148,17 @@ impl MqttLink {
             Some(d) => discovery::documents(&site, &settings, d),
             None => Vec::new(),
         };
-        Ok(MqttLink { site, settings, options, rumqtt: o, stats: LinkStats::shared(), points, devices, discovery })
+        Ok(MqttLink {
+            site,
+            settings,
+            options,
+            rumqtt: o,
+            stats: LinkStats::shared(),
+            points,
+            devices,
+            discovery,
+            retained_noted: std::sync::Mutex::default(),
+        })
     }
 
     /// The link's counters.
@@ -336,7 +348,9 @@ impl MqttLink {
         if let Some(name) = p.topic.strip_prefix(&self.settings.topic_prefix).and_then(|t| t.strip_prefix("/override/"))
         {
             if p.retain {
-                debug!(topic = %p.topic, "retained override ignored");
+                if self.first_retained(&p.topic) {
+                    info!(topic = %p.topic, "a retained override was ignored: it would come back after every reconnect; publish overrides without retain (and clear this one with an empty retained message)");
+                }
                 return Ok(());
             }
             let Some((id, load)) = self.site.load(name) else {
@@ -352,7 +366,9 @@ impl MqttLink {
         }
         for (id, read) in self.points.iter().filter(|(_, r)| r.topic == p.topic) {
             if p.retain {
-                debug!(topic = %p.topic, "retained reading ignored");
+                if self.first_retained(&p.topic) {
+                    info!(topic = %p.topic, "a retained reading was ignored: it may be hours old; the point waits for the device's next message");
+                }
                 continue;
             }
             let point = &self.site.points[id.0];
@@ -369,12 +385,20 @@ impl MqttLink {
         Ok(())
     }
 
+    /// Whether this is the first retained message ignored on `topic` since start.
+    fn first_retained(&self, topic: &str) -> bool {
+        self.retained_noted.lock().is_ok_and(|mut seen| seen.len() < 256 && seen.insert(topic.to_owned()))
+    }
+
     async fn malformed(&self, events: &mpsc::Sender<SourceEvent>, topic: &str, detail: String) -> Result<(), ()> {
         self.stats.count(Counter::Malformed);
         // The control task logs it, a minute apart per topic: a device that publishes
         // garbage every second must not flood the log from here.
         debug!(topic, %detail, "malformed mqtt payload ignored");
-        let device = self.devices.first().copied();
+        // A bad override is a person's or an automation's mistake, not the device's:
+        // it counts against the broker.
+        let is_override = topic.strip_prefix(&self.settings.topic_prefix).is_some_and(|t| t.starts_with("/override/"));
+        let device = if is_override { None } else { self.devices.first().copied() };
         send(events, SourceEvent::Malformed { device, origin: topic.to_owned(), detail }).await
     }
 
