@@ -224,16 +224,23 @@ impl Dispatcher {
     /// Hands a tick's decisions to the links; a channel is only touched when its
     /// content changes, so links wake on change, not on every tick.
     pub fn apply(&self, decisions: &Decisions) {
-        self.apply_as(decisions, false);
+        self.apply_as(decisions, false, &[]);
+    }
+
+    /// As [`Dispatcher::apply`], with the guard signals that are lost (the engine's
+    /// `lost_guard_signals`), so a load's MQTT state document in fail-safe names the
+    /// point as the log and the status page do.
+    pub fn apply_explained(&self, decisions: &Decisions, lost: &[String]) {
+        self.apply_as(decisions, false, lost);
     }
 
     /// The safe states at shutdown: as [`Dispatcher::apply`], and the retained site
     /// state says `stopped` (with no live numbers) rather than the last tick's.
     pub fn apply_stopped(&self, safe: &Decisions) {
-        self.apply_as(safe, true);
+        self.apply_as(safe, true, &[]);
     }
 
-    fn apply_as(&self, decisions: &Decisions, stopped: bool) {
+    fn apply_as(&self, decisions: &Decisions, stopped: bool, lost: &[String]) {
         let planned = plan(&self.site, decisions, self.options);
         let mut mqtt = DeviceCommands { commanded: true, writes: Vec::new() };
         for ((device, commands), tx) in self.site.devices.iter().zip(planned).zip(&self.devices) {
@@ -248,7 +255,7 @@ impl Dispatcher {
                 changed
             });
         }
-        let mut state = state_topics(&self.site, decisions);
+        let mut state = state_topics(&self.site, decisions, lost);
         if stopped {
             mqtt::mark_stopped(&mut state, decisions);
         }

@@ -43,24 +43,28 @@ pub fn command_payload(target: &Write, level: Level) -> Option<(&str, String, bo
     Some((topic.as_str(), payload, *retain, *qos))
 }
 
-/// The state documents for one set of decisions.
-pub fn state_topics(site: &Site, decisions: &Decisions) -> Vec<StateTopic> {
+/// The state documents for one set of decisions; `lost`: the guard signals lost, in
+/// words, for a load held in its safe state by the fail-safe.
+pub fn state_topics(site: &Site, decisions: &Decisions, lost: &[String]) -> Vec<StateTopic> {
     let mut out = Vec::with_capacity(site.loads.len() + 1);
     for (load, d) in site.loads.iter().zip(&decisions.loads) {
         let command = d.command.to_string();
         let power = d.command.power(&load.kind).0;
+        let why = why(site, d.reason, lost);
         let doc = json!({
             "command": command,
             "on": d.command.is_on(),
             "reason": d.reason.code(),
-            "why": why(site, d.reason),
+            "why": why,
             "power": power.round(),
         });
-        out.push(StateTopic {
-            suffix: format!("state/{}", load.name),
-            payload: doc.to_string(),
-            key: format!("{command}|{}", d.reason.code()),
-        });
+        // The fail-safe's sentence names the lost point: a point going from stale to
+        // frozen changes it, and the document is sent again.
+        let key = match d.reason {
+            crate::engine::Reason::Failsafe => format!("{command}|failsafe|{why}"),
+            _ => format!("{command}|{}", d.reason.code()),
+        };
+        out.push(StateTopic { suffix: format!("state/{}", load.name), payload: doc.to_string(), key });
     }
     let mode = mode_word(decisions.mode);
     let limit_reason = limit_word(decisions.limit_reason);
@@ -82,8 +86,9 @@ pub fn state_topics(site: &Site, decisions: &Decisions) -> Vec<StateTopic> {
 
 /// The reason as a sentence, a lost signal by its point's name (the reason itself
 /// knows only the point's index).
-fn why(site: &Site, reason: crate::engine::Reason) -> String {
+fn why(site: &Site, reason: crate::engine::Reason, lost: &[String]) -> String {
     match reason {
+        crate::engine::Reason::Failsafe if !lost.is_empty() => format!("safe state: {}", lost.join(", ")),
         crate::engine::Reason::SignalLost { point } => match site.points.get(point) {
             Some(p) => format!("safe state: point \"{}\" is stale, missing or frozen", p.name),
             None => reason.to_string(),
@@ -170,9 +175,19 @@ loads:
             grid: None,
             switchings: Vec::new(),
         };
-        let state = state_topics(&site, &d);
+        let state = state_topics(&site, &d, &[]);
         let doc: serde_json::Value = serde_json::from_str(&state[0].payload).unwrap();
         assert_eq!(doc["why"], "safe state: point \"pump_power\" is stale, missing or frozen", "{doc}");
         assert_eq!(doc["reason"], "signal_lost");
+        // The fail-safe names the guard signal that is lost, as the log does, and a
+        // change of what is wrong with it sends the document again.
+        let failsafe =
+            Decisions { loads: vec![LoadDecision { command: Command::Off, reason: Reason::Failsafe }], ..d.clone() };
+        let frozen = ["point \"grid\" is frozen (the same reading for over 20 s)".to_owned()];
+        let state = state_topics(&site, &failsafe, &frozen);
+        let doc: serde_json::Value = serde_json::from_str(&state[0].payload).unwrap();
+        assert_eq!(doc["why"], "safe state: point \"grid\" is frozen (the same reading for over 20 s)", "{doc}");
+        let stale = state_topics(&site, &failsafe, &["point \"grid\" is stale".to_owned()]);
+        assert_ne!(state[0].key, stale[0].key);
     }
 }

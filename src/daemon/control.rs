@@ -327,7 +327,7 @@ impl Control {
             commands = ?d.loads.iter().map(|l| l.command.to_string()).collect::<Vec<_>>(),
             "tick"
         );
-        self.dispatcher.apply(d);
+        self.dispatcher.apply_explained(d, &self.engine.lost_guard_signals());
         for r in self.engine.take_obligation_results() {
             let load = self.site.loads.get(r.load.0);
             let what = load.and_then(|l| l.obligations.get(r.index)).map(|o| o.describe()).unwrap_or_default();
