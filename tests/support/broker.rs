@@ -1,6 +1,7 @@
 //! A small in-process MQTT 3.1.1 broker on rumqttc's packet codec, for fault injection:
 //! CONNECT (with an optional login check), SUBSCRIBE with wildcards (`rumqttc::matches`),
-//! PUBLISH QoS 0/1, retained messages, last wills on unclean drops, PINGREQ, and
+//! PUBLISH QoS 0/1, retained messages, last wills on unclean drops, PINGREQ, session
+//! takeover (a second CONNECT with a client id in use closes the first), and
 //! `stop()`/`restart()` that drop every connection (a restart also forgets retained
 //! messages, like a broker without persistence).
 
@@ -31,6 +32,9 @@ pub struct Received {
 
 struct Client {
     id: String,
+    /// Closes this connection: a later CONNECT with the same client id takes the
+    /// session over (MQTT 3.1.1 §3.1.4: the server disconnects the existing client).
+    kick: CancellationToken,
     tx: mpsc::UnboundedSender<Packet>,
     subs: Vec<(String, QoS)>,
     next_pkid: u16,
@@ -188,9 +192,11 @@ impl Broker {
         let mut me: Option<u64> = None;
         let mut will: Option<LastWill> = None;
         let mut clean = false;
+        let kick = CancellationToken::new();
         'conn: loop {
             let n = tokio::select! {
                 () = stop.cancelled() => { will = None; break 'conn; }
+                () = kick.cancelled() => break 'conn,
                 n = rd.read_buf(&mut buf) => n,
             };
             match n {
@@ -217,11 +223,20 @@ impl Broker {
                             break 'conn;
                         }
                         s.connects += 1;
+                        for other in s.clients.values().filter(|o| o.id == c.client_id) {
+                            other.kick.cancel();
+                        }
                         let id = s.next;
                         s.next += 1;
                         s.clients.insert(
                             id,
-                            Client { id: c.client_id.clone(), tx: tx.clone(), subs: Vec::new(), next_pkid: 1 },
+                            Client {
+                                id: c.client_id.clone(),
+                                kick: kick.clone(),
+                                tx: tx.clone(),
+                                subs: Vec::new(),
+                                next_pkid: 1,
+                            },
                         );
                         me = Some(id);
                         will = c.last_will.clone();

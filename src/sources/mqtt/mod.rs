@@ -88,6 +88,10 @@ pub enum MqttError {
     NoTlsSupport,
 }
 
+/// A connection dropped sooner than this after its acknowledgement counts towards the
+/// warning about a shared client id.
+const SHORT_LIVED: Duration = Duration::from_secs(5);
+
 /// The MQTT link of a site.
 #[derive(Debug)]
 pub struct MqttLink {
@@ -204,6 +208,13 @@ impl MqttLink {
         let mut deadline: Option<Instant> = None;
         let mut disconnect_sent = false;
         let mut up: Option<bool> = None;
+        // When the current connection was acknowledged, and how many connections in a
+        // row the broker dropped within seconds: two clients with one client id (a
+        // second copy of the site file running) take the session from each other over
+        // and over, and each reconnect re-sends the commands.
+        let mut connected_at: Option<Instant> = None;
+        let mut short_lived = 0u32;
+        let mut told_short_lived = false;
         loop {
             // One poll of the event loop, kept alive across the cancel: a poll is not
             // cancel-safe (it may hold a request taken from the queue but not yet
@@ -246,6 +257,7 @@ impl MqttLink {
                         continue;
                     }
                     self.stats.count(Counter::Connect);
+                    connected_at = Some(Instant::now());
                     backoff.reset();
                     info!(broker = %self.broker(), "mqtt connected");
                     let _ = notes.send(Note::Connected).await;
@@ -292,6 +304,19 @@ impl MqttLink {
                     }
                     self.stats.count(Counter::TransportError);
                     let _ = notes.send(Note::Disconnected).await;
+                    match connected_at.take() {
+                        Some(at) if at.elapsed() < SHORT_LIVED => short_lived += 1,
+                        Some(_) => short_lived = 0,
+                        None => {}
+                    }
+                    if short_lived >= 3 && !told_short_lived {
+                        told_short_lived = true;
+                        warn!(
+                            broker = %self.broker(),
+                            client_id = %self.settings.client_id,
+                            "the broker dropped {short_lived} connections in a row within seconds of accepting them: most often another client uses the same client id (a second copy of this site running, or `mqtt.client_id` shared with another program); each reconnect re-sends the commands"
+                        );
+                    }
                     let delay = backoff.next_delay();
                     let reason = e.to_string();
                     if up != Some(false) {
