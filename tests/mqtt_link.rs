@@ -365,7 +365,7 @@ async fn override_requests_are_parsed_and_bad_ones_ignored() {
         ("bench/site/override/pump", "on 100000000000000000000s", "at most 24 h"),
         ("bench/site/override/pump", r#"{"command": "on", "level": "50%"}"#, "takes no level"),
         ("bench/site/override/dimmer", r#"{"command": "on", "level": "3kW"}"#, "a percentage"),
-        ("bench/site/override/sauna", "on", "no load called \"sauna\""),
+        ("bench/site/override/sauna", "on", "no load called \"sauna\" (the site's loads: pump, dimmer"),
         ("bench/site/override/pump", r#"{"command": "on", "until": "17:00"}"#, "unknown key"),
     ] {
         b.broker.publish(topic, payload, false);

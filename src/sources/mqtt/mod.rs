@@ -379,7 +379,9 @@ impl MqttLink {
                 return Ok(());
             }
             let Some((id, load)) = self.site.load(name) else {
-                return self.malformed(events, &p.topic, format!("no load called \"{name}\"")).await;
+                let names: Vec<&str> = self.site.loads.iter().map(|l| l.name.as_str()).collect();
+                let detail = format!("no load called \"{name}\" (the site's loads: {})", names.join(", "));
+                return self.malformed(events, &p.topic, detail).await;
             };
             return match payload::parse_override(load, &p.payload, now) {
                 Ok(action) => {
