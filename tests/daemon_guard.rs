@@ -253,3 +253,27 @@ async fn export_over_the_limit_the_guard_cannot_clear_is_warned_about_with_its_c
     );
     assert!(text.contains("export back within the limit"), "{text}");
 }
+
+/// A load whose relay module stops answering may still be doing what it was last told:
+/// the status says its command is not delivered and why, until the module answers
+/// again. (The fail-safe's "off" sent to a dead module used to show as done.)
+#[tokio::test(start_paused = true)]
+async fn a_load_whose_relay_module_is_down_is_shown_as_not_delivered() {
+    let plant = Plant::start(2500.0).await;
+    let (logs, _guard) = support::Logs::capture();
+    let daemon = start(&plant.site_yaml(LOADS, ""), options(T0)).await;
+    status_until(&daemon, Duration::from_secs(120), "pump on", |s| load(s, "pool_pump").on).await;
+    assert!(load(&daemon.status().borrow(), "pool_pump").delivered);
+    plant.devices.set_silent(true);
+    let s = status_until(&daemon, Duration::from_secs(120), "not delivered", |s| !load(s, "pool_pump").delivered).await;
+    let why = &load(&s, "pool_pump").why;
+    assert!(why.contains("not delivered: device \"relays\" is down"), "{why}");
+    plant.devices.set_silent(false);
+    status_until(&daemon, Duration::from_secs(120), "delivered again", |s| load(s, "pool_pump").delivered).await;
+    daemon.shutdown();
+    daemon.wait().await;
+    let text = logs.text();
+    let warned: Vec<_> = text.lines().filter(|l| l.contains("command does not reach it")).collect();
+    assert!(!warned.is_empty() && warned.iter().all(|l| l.contains("WARN")), "{text}");
+    assert!(text.contains("commands reach the load again"), "{text}");
+}

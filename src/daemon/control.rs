@@ -112,6 +112,8 @@ pub(super) struct Control {
     over_limit: Option<(crate::units::Timestamp, f64, bool)>,
     /// Per point: gaps longer than its `stale_after` in a row, and whether warned.
     reading_gaps: Vec<(u32, bool)>,
+    /// Per load: whether its command reached it at the last tick (see `watch_delivery`).
+    delivered: Vec<bool>,
 }
 
 /// The largest power a reading of this site may show: ten times its largest rating
@@ -160,6 +162,7 @@ impl Control {
             power_bound: power_bound(&site),
             over_limit: None,
             reading_gaps: vec![(0, false); site.points.len()],
+            delivered: vec![true; site.loads.len()],
             site,
         }
     }
@@ -341,6 +344,7 @@ impl Control {
         self.count(now);
         self.recent.make_contiguous();
         let doc = status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0, &self.totals);
+        self.watch_delivery(&doc);
         if let Some(log) = &mut self.replay_log {
             let d = self.engine.decisions();
             let available = self.site.roles.pv_available.and_then(|id| {
@@ -381,6 +385,32 @@ impl Control {
             self.watch_over_limit(now, over);
         }
         self.last_counters = Some((c, now));
+    }
+
+    /// A load whose command cannot reach it (a device it is written through is down:
+    /// a relay module that does not answer, the MQTT broker lost) may still be doing
+    /// what it was last told — a fail-safe "off" included. Said once when it starts and
+    /// once when commands reach it again; the status shows it while it lasts.
+    fn watch_delivery(&mut self, doc: &Status) {
+        let now = self.engine.decisions().now;
+        for (i, l) in doc.loads.iter().enumerate() {
+            let Some(was) = self.delivered.get_mut(i) else { continue };
+            if *was == l.delivered {
+                continue;
+            }
+            *was = l.delivered;
+            if l.delivered {
+                info!(load = %l.name, command = %l.command, "commands reach the load again: its command is written");
+            } else {
+                let cause = l.why.split(" — not delivered: ").nth(1).unwrap_or("a device is down");
+                warn!(
+                    load = %l.name,
+                    command = %l.command,
+                    "the load's command does not reach it ({cause}): it may still be doing what it was last told until the device is back"
+                );
+                push_recent(&mut self.recent, now, format!("{}: command not delivered ({cause})", l.name));
+            }
+        }
     }
 
     /// A point whose readings keep arriving further apart than its `stale_after` (an

@@ -14,8 +14,8 @@ use std::time::Duration;
 use serde::Serialize;
 
 use crate::actuators::mqtt::{limit_word, mode_word};
-use crate::config::model::{Connection, ExportPolicy, LoadId, Obligation, PointId, Site};
-use crate::engine::{Engine, LimitReason, Quality, Snapshot};
+use crate::config::model::{Connection, ExportPolicy, Load, LoadId, Obligation, PointId, Site};
+use crate::engine::{Command, Engine, LimitReason, Quality, Snapshot};
 use crate::units::{Power, Timestamp, format_duration, trim_number};
 
 /// The whole document.
@@ -145,8 +145,13 @@ pub struct LoadStatus {
     pub power_measured: bool,
     /// Stable reason code (`start_rule`, `min_on`, `failsafe`, ...).
     pub reason: String,
-    /// The engine's explanation with the rule's current values.
+    /// The engine's explanation with the rule's current values; while the command
+    /// cannot reach the load, followed by why (` — not delivered: …`).
     pub why: String,
+    /// Whether the command can reach the load: `false` while a device it is written
+    /// through is down (a relay module that does not answer, the MQTT broker lost), so
+    /// the load may still be doing what it was last told.
+    pub delivered: bool,
     /// An active override.
     pub r#override: Option<OverrideStatus>,
     /// Run time since local midnight, seconds.
@@ -264,6 +269,22 @@ pub fn house_power(pv: Option<f64>, grid: Option<f64>, managed: f64, battery: Op
     Some((pv? + grid? - managed - battery).max(0.0).round())
 }
 
+/// Why a load's command cannot reach it, if it cannot: the first device it is written
+/// through that is down, with the reason the link gave.
+pub fn not_delivered(site: &Site, load: &Load, command: Command, health: &[DeviceHealth]) -> Option<String> {
+    crate::actuators::load_levels(load, command).into_iter().find_map(|(target, _)| {
+        let device = target.device();
+        let h = health.get(device.0)?;
+        (h.up == Some(false)).then(|| {
+            let name = site.devices.get(device.0).map_or("?", |d| d.name.as_str());
+            match &h.down_reason {
+                Some(reason) => format!("device \"{name}\" is down ({reason})"),
+                None => format!("device \"{name}\" is down"),
+            }
+        })
+    })
+}
+
 /// The document after a tick.
 pub fn build(
     engine: &Engine,
@@ -296,6 +317,12 @@ pub fn build(
             let temperature = fresh(l.temperature);
             let soc = fresh(l.kind.soc_point());
             let last_cycles = persisted.loads.get(i).map(|p| p.last_cycle_ms.as_slice()).unwrap_or(&[]);
+            let undelivered = not_delivered(site, l, command.unwrap_or(Command::Off), health);
+            let mut why = engine.explain(id);
+            if let Some(cause) = &undelivered {
+                why.push_str(" — not delivered: ");
+                why.push_str(cause);
+            }
             LoadStatus {
                 name: l.name.clone(),
                 priority: l.priority,
@@ -305,7 +332,8 @@ pub fn build(
                 power_w: measured.unwrap_or(implied).round(),
                 power_measured: measured.is_some(),
                 reason: ld.map_or("waiting", |x| x.reason.code()).to_owned(),
-                why: engine.explain(id),
+                why,
+                delivered: undelivered.is_none(),
                 r#override: engine
                     .override_of(id)
                     .map(|o| OverrideStatus { command: o.command.to_string(), until: o.until.to_string() }),
