@@ -428,3 +428,43 @@ async fn an_interrupted_step_test_switches_the_load_off_again() {
     }
     let _ = std::fs::remove_dir_all(path.parent().unwrap());
 }
+
+/// `read` on an MQTT site leaves nothing on the broker: its link's `online`/`offline`
+/// status under `<prefix>/read/status` is not retained and it has no last will (a
+/// walk-through found `offline` retained there after every `read` and `step-test`).
+#[tokio::test]
+async fn read_over_mqtt_leaves_no_retained_status_behind() {
+    let broker = support::broker::Broker::start().await;
+    let port = broker.addr.port();
+    let dir = std::env::temp_dir().join(format!("spillway-read-mqtt-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let file = dir.join("plug.yaml");
+    std::fs::write(
+        &file,
+        format!(
+            "
+site: {{ name: Plug House, timezone: Europe/Dublin, export: allowed }}
+mqtt: {{ broker: 127.0.0.1:{port}, topic_prefix: plughouse }}
+devices:
+  home: {{ mqtt: true }}
+points:
+  grid: {{ device: home, topic: home/meter, unit: W }}
+"
+        ),
+    )
+    .unwrap();
+    let publisher = {
+        let broker = broker.clone();
+        tokio::spawn(async move {
+            loop {
+                broker.publish("home/meter", "420", false);
+                tokio::time::sleep(Duration::from_millis(200)).await;
+            }
+        })
+    };
+    let (code, out, err) = spillway(&["read", file.to_str().unwrap()]).await;
+    publisher.abort();
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert_eq!(broker.retained("plughouse/read/status"), None, "{out}");
+    let _ = std::fs::remove_dir_all(&dir);
+}

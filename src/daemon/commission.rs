@@ -95,7 +95,7 @@ async fn listen_mqtt(site: &Site, devices: &[DeviceId], listen: Duration) -> Mqt
     let points: Vec<PointId> =
         (0..site.points.len()).map(PointId).filter(|p| devices.contains(&site.points[p.0].device)).collect();
     let mut out = MqttRead { samples: points.iter().map(|p| (*p, None)).collect(), ..MqttRead::default() };
-    let link = match MqttLink::new(Arc::clone(&site), MqttOptions::default()) {
+    let link = match MqttLink::new(Arc::clone(&site), MqttOptions { transient: true, ..MqttOptions::default() }) {
         Ok(l) => l,
         Err(e) => {
             out.error = Some(e.to_string());
@@ -286,8 +286,8 @@ pub fn step_test(
             tracker.spawn(link.run(wrx, tx.clone(), Clock::System, cancel.clone()));
         }
         let mqtt_tx = if site.mqtt.is_some() {
-            let link =
-                MqttLink::new(Arc::clone(&site), MqttOptions::default()).map_err(|e| StepError::Daemon(e.into()))?;
+            let link = MqttLink::new(Arc::clone(&site), MqttOptions { transient: true, ..MqttOptions::default() })
+                .map_err(|e| StepError::Daemon(e.into()))?;
             let (mtx, mrx) = watch::channel(Arc::new(MqttOutputs::default()));
             tracker.spawn(link.run(mrx, tx.clone(), Clock::System, cancel.clone()));
             Some(mtx)

@@ -50,6 +50,9 @@ pub struct MqttOptions {
     pub site_state_interval: Duration,
     /// How long a clean shutdown may take to flush `offline` and DISCONNECT.
     pub shutdown_grace: Duration,
+    /// A short-lived link (`read`, `step-test`): its `online`/`offline` status is not
+    /// retained and it leaves no last will, so nothing stays on the broker after it.
+    pub transient: bool,
 }
 
 impl Default for MqttOptions {
@@ -58,6 +61,7 @@ impl Default for MqttOptions {
             backoff: BackoffPolicy::default(),
             site_state_interval: Duration::from_secs(5),
             shutdown_grace: Duration::from_secs(1),
+            transient: false,
         }
     }
 }
@@ -121,7 +125,9 @@ impl MqttLink {
         let mut o = RumqttOptions::new(&settings.client_id, &settings.host, settings.port);
         o.set_keep_alive(settings.keep_alive.max(Duration::from_secs(1)));
         o.set_clean_session(true);
-        o.set_last_will(LastWill::new(status_topic(&settings), "offline", QoS::AtLeastOnce, true));
+        if !options.transient {
+            o.set_last_will(LastWill::new(status_topic(&settings), "offline", QoS::AtLeastOnce, true));
+        }
         if let Some(user) = &settings.username {
             let password = match &settings.password {
                 None => String::new(),
@@ -462,7 +468,8 @@ impl MqttLink {
                             }
                         }
                         self.publish_due(&client, &current, &mut sent);
-                        let _ = client.try_publish(status_topic(&self.settings), QoS::AtLeastOnce, true, "offline");
+                        let retain = !self.options.transient;
+                        let _ = client.try_publish(status_topic(&self.settings), QoS::AtLeastOnce, retain, "offline");
                         if has_commands {
                             let queued = self.stats.counts().writes - queued_before;
                             info!(broker = %self.broker(), queued, "safe states sent to the broker at shutdown");
@@ -505,7 +512,8 @@ impl MqttLink {
         if let Err(e) = client.try_subscribe_many(filters) {
             warn!(error = %e, "mqtt subscribe could not be queued");
         }
-        if let Err(e) = client.try_publish(status_topic(&self.settings), QoS::AtLeastOnce, true, "online") {
+        let retain = !self.options.transient;
+        if let Err(e) = client.try_publish(status_topic(&self.settings), QoS::AtLeastOnce, retain, "online") {
             warn!(error = %e, "mqtt status could not be queued");
         }
         self.stats.count(Counter::Request);
@@ -564,7 +572,7 @@ impl MqttLink {
                     now >= next
                 }
             };
-            if due && self.queue(client, &topic, &s.payload, true, qos(self.settings.qos)) {
+            if due && self.queue(client, &topic, &s.payload, !self.options.transient, qos(self.settings.qos)) {
                 debug!(topic, key = %s.key, "mqtt state");
                 sent.insert(topic, (s.payload.clone(), now, s.key.clone()));
             }
