@@ -20,8 +20,9 @@ use tracing::{debug, info, warn};
 
 use super::codec::{self, Sentinel};
 use super::plan::{self, Block, Decoded, Group, PointSpec, ScaleSpec, Words};
+use super::serial::LineFault;
 use super::sunspec::{self, ModelMap};
-use super::{ModbusError, ModbusOptions};
+use super::{ModbusError, ModbusOptions, SerialLines};
 use crate::actuators::modbus::{LimitContext, LimitControl, WriteOp, WriteTracker};
 use crate::actuators::{DeviceCommands, targets_of};
 use crate::config::model::{
@@ -36,6 +37,8 @@ pub struct ModbusLink {
     device: DeviceId,
     options: ModbusOptions,
     stats: Arc<LinkStats>,
+    /// The serial lines of the site: devices on one port share its line.
+    lines: Arc<SerialLines>,
 }
 
 /// Why a session ended.
@@ -83,13 +86,25 @@ struct Refusing {
 }
 
 impl ModbusLink {
-    /// A link for one Modbus device of the site.
+    /// A link for one Modbus device of the site, alone on its serial line if it has
+    /// one. Devices that share a port need [`ModbusLink::sharing`].
     pub fn new(site: Arc<Site>, device: DeviceId, options: ModbusOptions) -> Result<Self, ModbusError> {
+        Self::sharing(site, device, options, &SerialLines::new())
+    }
+
+    /// A link for one Modbus device of the site; an RTU device takes its place on the
+    /// line of its port in `lines`, shared with the other devices there.
+    pub fn sharing(
+        site: Arc<Site>,
+        device: DeviceId,
+        options: ModbusOptions,
+        lines: &Arc<SerialLines>,
+    ) -> Result<Self, ModbusError> {
         let d = site.devices.get(device.0).ok_or(ModbusError::NoSuchDevice(device.0))?;
         if matches!(d.link, Link::Mqtt) {
             return Err(ModbusError::NotModbus(d.name.clone()));
         }
-        Ok(ModbusLink { site, device, options, stats: LinkStats::shared() })
+        Ok(ModbusLink { site, device, options, stats: LinkStats::shared(), lines: Arc::clone(lines) })
     }
 
     /// The device this link serves.
@@ -235,7 +250,13 @@ impl ModbusLink {
     }
 
     async fn connect(&self) -> io::Result<Context> {
-        super::connect(&self.dev().link).await
+        super::connect(&self.dev().link, &self.lines, self.dev().timeout).await
+    }
+
+    /// Whether the device is on a serial line, which times each exchange itself (the
+    /// wait for the line, while the other devices on it are asked, is not the device's).
+    fn on_line(&self) -> bool {
+        matches!(self.dev().link, Link::ModbusRtu { .. })
     }
 
     /// One connection's life. Returns why it ended.
@@ -818,21 +839,41 @@ impl Io<'_> {
         let link = self.link;
         link.stats.count(Counter::Request);
         let limit = link.dev().timeout;
+        let timed = async {
+            if link.on_line() {
+                // The line times the exchange itself (`serial.rs`).
+                Ok(request.await)
+            } else {
+                timeout(limit, request).await
+            }
+        };
         let r = tokio::select! {
             biased;
             // Dropping a request mid-flight poisons the connection; we are leaving anyway.
             () = self.cancel.cancelled() => return Err(Fail::Cancelled),
-            r = timeout(limit, request) => r,
+            r = timed => r,
         };
         match r {
             Err(_) => {
                 link.stats.count(Counter::Timeout);
                 Err(Fail::Transport(format!("no answer within {}", crate::units::format_duration(limit))))
             }
-            Ok(Err(e)) => {
-                link.stats.count(Counter::TransportError);
-                Err(Fail::Transport(format!("transport error: {e}")))
-            }
+            Ok(Err(e)) => match LineFault::of(&e) {
+                Some(f @ LineFault::NoAnswer(_)) => {
+                    link.stats.count(Counter::Timeout);
+                    Err(Fail::Transport(f.to_string()))
+                }
+                // Bytes came back, but no valid frame: the line, not the device's
+                // silence. Counted as malformed, with what to check.
+                Some(f @ LineFault::Garbled { .. }) => {
+                    link.stats.count(Counter::Malformed);
+                    Err(Fail::Transport(f.to_string()))
+                }
+                _ => {
+                    link.stats.count(Counter::TransportError);
+                    Err(Fail::Transport(format!("transport error: {e}")))
+                }
+            },
             Ok(Ok(r)) => {
                 st.answered = true;
                 match &r {

@@ -65,7 +65,8 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
         Link::ModbusRtu { path, unit, .. } => format!("{path} unit {unit}"),
         Link::Mqtt => return Err(ProbeError::NotModbus(device.0)),
     };
-    let mut ctx = match timeout(connect_timeout, super::connect(&dev.link)).await {
+    let lines = super::SerialLines::new();
+    let mut ctx = match timeout(connect_timeout, super::connect(&dev.link, &lines, dev.timeout)).await {
         Ok(Ok(ctx)) => ctx,
         Ok(Err(e)) => return Err(ProbeError::Connect { target, reason: e.to_string() }),
         Err(_) => return Err(ProbeError::Connect { target, reason: "no connection within the timeout".to_owned() }),
