@@ -237,3 +237,46 @@ loads:
     drop(slave_end);
     responder.abort();
 }
+
+#[tokio::test]
+async fn answers_with_bad_checksums_are_reported_as_such_not_as_silence() {
+    // A device whose answers arrive with a checksum that does not match them, as a
+    // line at the wrong baud rate or parity or with swapped A/B wires delivers them.
+    // The link counts them as malformed and says what to check; `spillway read`'s
+    // probe says the same.
+    let (master, slave_end) = SerialStream::pair().unwrap();
+    let path = slave_end.name().unwrap();
+    let meter = Arc::new(Mutex::new(Slave { unit: 1, corrupt_answers: true, ..Slave::default() }));
+    meter.lock().unwrap().holding.insert(100, 1234);
+    let responder = tokio::spawn(respond_all(master, vec![meter.clone()]));
+    let site = site(&format!(
+        "
+site:
+  name: Bench
+  timezone: Europe/Lisbon
+  export: allowed
+devices:
+  meter: {{ modbus_rtu: {{ port: {path}, baud: 19200 }}, unit: 1, poll: 1s, timeout: 200ms }}
+points:
+  meter_w: {{ device: meter, register: 100, unit: W }}
+"
+    ));
+    let advice = "answers with bad checksums: check baud, parity, stop bits, the A/B polarity and termination";
+    let meter_id = site.device("meter").unwrap().0;
+    let probed = spillway::sources::modbus::probe::probe(&site, meter_id, Duration::from_secs(3)).await.unwrap();
+    assert_eq!(probed.points[0].value, Err(advice.to_owned()));
+
+    let mut run = Running::start(&site);
+    let reason = wait_for(&mut run.events, Duration::from_secs(20), |e| match e {
+        SourceEvent::DeviceDown { reason, .. } => Some(reason.clone()),
+        _ => None,
+    })
+    .await;
+    assert_eq!(reason, advice);
+    let counts = run.stats[0].1.counts();
+    assert!(counts.malformed >= 1, "{counts}");
+    assert_eq!(counts.timeouts, 0, "a garbled answer is not silence: {counts}");
+    run.stop().await;
+    drop(slave_end);
+    responder.abort();
+}

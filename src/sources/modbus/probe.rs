@@ -15,6 +15,7 @@ use tokio_modbus::client::{Context, Reader};
 use super::ExceptionName;
 use super::codec::Sentinel;
 use super::plan::{self, Decoded, PointSpec, ScaleSpec, Words};
+use super::serial::LineFault;
 use super::sunspec::{self, ModelMap};
 use crate::config::model::{DeviceId, Link, PointId, PointRead, Scale, Site, Table, WordOrder};
 
@@ -71,7 +72,11 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
         Ok(Err(e)) => return Err(ProbeError::Connect { target, reason: e.to_string() }),
         Err(_) => return Err(ProbeError::Connect { target, reason: "no connection within the timeout".to_owned() }),
     };
-    let mut p = Prober { ctx: &mut ctx, limit: dev.timeout, dead: None };
+    // On a serial line the line times each exchange itself (`serial.rs`) and tells
+    // silence from a garbled answer; the outer timeout here is only a backstop.
+    let outer =
+        if matches!(dev.link, Link::ModbusRtu { .. }) { dev.timeout * 2 + Duration::from_secs(1) } else { dev.timeout };
+    let mut p = Prober { ctx: &mut ctx, limit: dev.timeout, outer, dead: None };
     let map = if dev.sunspec { p.discover().await } else { Ok(None) };
     let models = match &map {
         Ok(Some(m)) => m.models.iter().map(|&(id, start, _)| (id, start)).collect(),
@@ -135,6 +140,9 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
 struct Prober<'a> {
     ctx: &'a mut Context,
     limit: Duration,
+    /// The wait for one request: `limit`, longer on a serial line (which applies
+    /// `limit` itself).
+    outer: Duration,
     /// Set after a timeout or transport error: the connection cannot be trusted.
     dead: Option<String>,
 }
@@ -154,32 +162,34 @@ impl Prober<'_> {
             r.map(|v| v.iter().take(usize::from(count)).map(|b| u16::from(*b)).collect())
         };
         let ctx = &mut *self.ctx;
+        let limit = self.outer;
         let r = match table {
-            Table::Coil => timeout(self.limit, ctx.read_coils(address, count)).await.map(|r| r.map(bits)),
-            Table::DiscreteInput => {
-                timeout(self.limit, ctx.read_discrete_inputs(address, count)).await.map(|r| r.map(bits))
-            }
-            Table::HoldingRegister => timeout(self.limit, ctx.read_holding_registers(address, count)).await,
-            Table::InputRegister => timeout(self.limit, ctx.read_input_registers(address, count)).await,
+            Table::Coil => timeout(limit, ctx.read_coils(address, count)).await.map(|r| r.map(bits)),
+            Table::DiscreteInput => timeout(limit, ctx.read_discrete_inputs(address, count)).await.map(|r| r.map(bits)),
+            Table::HoldingRegister => timeout(limit, ctx.read_holding_registers(address, count)).await,
+            Table::InputRegister => timeout(limit, ctx.read_input_registers(address, count)).await,
         };
-        match r {
-            Ok(Ok(r)) => Ok(r),
-            Ok(Err(e)) => {
-                let why = format!("transport error: {e}");
-                self.dead = Some(why.clone());
-                Err(why)
-            }
-            Err(_) => {
-                // Connected, and silent: a gateway asked for a unit id it does not have
-                // often says nothing at all, so that is the first thing to check.
-                let why = format!(
-                    "no answer within {}: check the device's `unit` id (a gateway often stays silent for a unit it does not have), then its wiring and `timeout`",
-                    crate::units::format_duration(self.limit)
-                );
-                self.dead = Some(why.clone());
-                Err(why)
-            }
-        }
+        let why = match r {
+            Ok(Ok(r)) => return Ok(r),
+            // Connected, and silent: a gateway asked for a unit id it does not have
+            // often says nothing at all, so that is the first thing to check.
+            Err(_) => self.silent(),
+            Ok(Err(e)) => match LineFault::of(&e) {
+                Some(LineFault::NoAnswer(_)) => self.silent(),
+                // Bytes came back but no valid frame: baud, parity or wiring.
+                Some(f) => f.to_string(),
+                None => format!("transport error: {e}"),
+            },
+        };
+        self.dead = Some(why.clone());
+        Err(why)
+    }
+
+    fn silent(&self) -> String {
+        format!(
+            "no answer within {}: check the device's `unit` id (a gateway often stays silent for a unit it does not have), then its wiring and `timeout`",
+            crate::units::format_duration(self.limit)
+        )
     }
 
     /// Finds the SunSpec model chain (`Ok(None)`: no marker at any base).
