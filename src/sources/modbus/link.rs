@@ -147,7 +147,13 @@ impl ModbusLink {
             let reason = match connected {
                 Ok(Ok(mut ctx)) => {
                     self.stats.count(Counter::Connect);
-                    info!(device = %self.dev().name, "modbus device connected");
+                    if self.on_line() {
+                        // The port is the line's: it logs its opening, once (`serial.rs`).
+                        // Attaching to it says nothing about the device.
+                        debug!(device = %self.dev().name, "on its serial line");
+                    } else {
+                        info!(device = %self.dev().name, "modbus device connected");
+                    }
                     st.answered = false;
                     st.refusing = None;
                     let r = self.session(&mut ctx, &mut st, &mut commands, &events, &clock, &cancel).await;
