@@ -329,3 +329,34 @@ points:
     drop(slave_end);
     responder.abort();
 }
+
+#[tokio::test]
+async fn a_port_held_by_another_process_is_named_as_in_use() {
+    // `spillway read` while the controller runs: the port is held (here by an open of
+    // our own, which takes the same exclusive lock). The reason says what holds it
+    // most likely, and how to stop it.
+    let (_master, slave_end) = SerialStream::pair().unwrap();
+    let path = slave_end.name().unwrap();
+    let held = SerialStream::open(&tokio_serial::new(&path, 19200)).unwrap();
+    let site = site(&format!(
+        "
+site:
+  name: Bench
+  timezone: Europe/Lisbon
+  export: allowed
+devices:
+  meter: {{ modbus_rtu: {{ port: {path}, baud: 19200 }}, unit: 1 }}
+points:
+  meter_w: {{ device: meter, register: 100, unit: W }}
+"
+    ));
+    let meter = site.device("meter").unwrap().0;
+    let err = spillway::sources::modbus::probe::probe(&site, meter, Duration::from_secs(3)).await.unwrap_err();
+    assert_eq!(
+        err.to_string(),
+        format!(
+            "cannot connect to {path} unit 1: the serial port is in use — is the controller running? (`systemctl stop spillway`)"
+        )
+    );
+    drop(held);
+}

@@ -214,7 +214,7 @@ impl Line {
             Ok(p) => p,
             Err(e) => {
                 st.failing = true;
-                return Err(io::Error::from(e));
+                return Err(if held_elsewhere(&e) { LineFault::InUse.into_io() } else { io::Error::from(e) });
             }
         };
         // Bytes left in the input from before (a late answer) would be read as the
@@ -335,6 +335,15 @@ impl Client for UnitClient {
         // The port is the line's, shared with the other devices on it: it stays open.
         Ok(())
     }
+}
+
+/// Whether opening a port failed because another process holds it: the serial crate
+/// takes an exclusive `flock` (its message: "Unable to acquire exclusive lock on serial
+/// port") after setting `TIOCEXCL`, which makes a second open fail with EBUSY.
+fn held_elsewhere(e: &tokio_serial::Error) -> bool {
+    e.description.contains("exclusive lock")
+        || matches!(e.kind, tokio_serial::ErrorKind::Io(io::ErrorKind::ResourceBusy))
+        || e.description.contains("resource busy")
 }
 
 /// Whether `bytes`, taken as one frame, end in a CRC-16/MODBUS that does not match the
