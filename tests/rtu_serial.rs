@@ -360,3 +360,31 @@ points:
     );
     drop(held);
 }
+
+#[test]
+fn check_and_the_record_show_each_serial_device_with_its_parity_and_stop_bits() {
+    // The commissioning record (`read --record`) embeds the same description.
+    let site = site(
+        "
+site:
+  name: Bench
+  timezone: Europe/Lisbon
+  export: allowed
+devices:
+  meter: { modbus_rtu: { port: /dev/ttyUSB0, baud: 19200, parity: even }, unit: 1 }
+  relays: { modbus_rtu: { port: /dev/ttyUSB1, stop_bits: 2 }, unit: 3 }
+points:
+  meter_w: { device: meter, register: 100, unit: W }
+loads:
+  - name: heater
+    priority: 1
+    rated: 1kW
+    switch: { device: relays, coil: 0 }
+    start: meter_w > 0W
+    stop: meter_w < 0W
+",
+    );
+    let text = spillway::config::describe::describe(&site);
+    assert!(text.contains("Modbus RTU /dev/ttyUSB0 19200 Bd, even parity, 1 stop bit, unit 1"), "{text}");
+    assert!(text.contains("Modbus RTU /dev/ttyUSB1 9600 Bd, no parity, 2 stop bits, unit 3"), "{text}");
+}
