@@ -792,8 +792,8 @@ impl ModbusLink {
 impl ModbusLink {
     /// How long a device may answer nothing but exceptions before it counts as down:
     /// twice its longest poll period, so that every point was asked twice; for a device
-    /// with nothing to read, two of the actuators' default re-assertions (10 s), its
-    /// only requests then.
+    /// with nothing to read, 20 s: two of the actuators' default re-assertions (10 s,
+    /// `ActuatorOptions`), its only requests then.
     fn down_after(&self, st: &State) -> Duration {
         st.groups.iter().map(|(g, _)| g.period).max().unwrap_or(Duration::from_secs(10)) * 2
     }
