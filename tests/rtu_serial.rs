@@ -16,7 +16,7 @@ use spillway::engine::{Command, Decisions, LimitReason, LoadDecision, Mode, Reas
 use spillway::sources::{Clock, ModbusLink, ModbusOptions, SerialLines, SourceEvent};
 use spillway::units::{Power, Timestamp};
 use support::rtu::{Slave, crc16_modbus, respond, respond_all};
-use support::{Logs, site, wait_for};
+use support::{site, wait_for};
 use tokio::sync::mpsc;
 use tokio_serial::{SerialPort, SerialStream};
 use tokio_util::sync::CancellationToken;
@@ -281,51 +281,6 @@ points:
     assert!(counts.malformed >= 1, "{counts}");
     assert_eq!(counts.timeouts, 0, "a garbled answer is not silence: {counts}");
     run.stop().await;
-    drop(slave_end);
-    responder.abort();
-}
-
-#[tokio::test]
-async fn a_silent_serial_device_logs_the_port_opening_once_not_a_connection_per_retry() {
-    // The meter is set to unit 2; the only device on the line is unit 1: every request
-    // goes unanswered and the link retries. Opening a serial port says nothing about
-    // the device, so it is logged as the port opening, once, not as a connection.
-    let (logs, _guard) = Logs::capture();
-    let (master, slave_end) = SerialStream::pair().unwrap();
-    let path = slave_end.name().unwrap();
-    let other = Arc::new(Mutex::new(Slave { unit: 1, ..Slave::default() }));
-    let responder = tokio::spawn(respond_all(master, vec![other]));
-    let site = site(&format!(
-        "
-site:
-  name: Bench
-  timezone: Europe/Lisbon
-  export: allowed
-devices:
-  meter: {{ modbus_rtu: {{ port: {path}, baud: 19200 }}, unit: 2, poll: 1s, timeout: 50ms }}
-points:
-  meter_w: {{ device: meter, register: 100, unit: W }}
-"
-    ));
-    let fast = ModbusOptions {
-        backoff: spillway::sources::BackoffPolicy {
-            initial: Duration::from_millis(20),
-            max: Duration::from_millis(40),
-        },
-        ..ModbusOptions::default()
-    };
-    let run = Running::with(&site, fast);
-    let stats = run.stats[0].1.clone();
-    let deadline = tokio::time::Instant::now() + Duration::from_secs(20);
-    while stats.counts().timeouts < 4 {
-        assert!(tokio::time::Instant::now() < deadline, "the link never retried: {}", stats.counts());
-        tokio::time::sleep(Duration::from_millis(20)).await;
-    }
-    run.stop().await;
-    let text = logs.text();
-    let opened = text.lines().filter(|l| l.contains(" INFO ") && l.contains("serial port opened")).count();
-    assert_eq!(opened, 1, "{text}");
-    assert!(!text.contains("modbus device connected"), "{text}");
     drop(slave_end);
     responder.abort();
 }
