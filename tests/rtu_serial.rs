@@ -343,3 +343,47 @@ loads:
     assert!(text.contains("Modbus RTU /dev/ttyUSB0 19200 Bd, even parity, 1 stop bit, unit 1"), "{text}");
     assert!(text.contains("Modbus RTU /dev/ttyUSB1 9600 Bd, no parity, 2 stop bits, unit 3"), "{text}");
 }
+
+#[tokio::test]
+async fn read_names_the_exception_a_device_answers_and_what_to_check() {
+    // A gateway whose device behind it is silent answers exception 0x0B to every
+    // request, SunSpec discovery's included; a busy device answers 0x06. `read` names
+    // the exception with the daemon's advice instead of "no SunSpec marker".
+    // Codes and meanings: Modbus Application Protocol Specification V1.1b3, §7.
+    let (master, slave_end) = SerialStream::pair().unwrap();
+    let path = slave_end.name().unwrap();
+    let gateway = Arc::new(Mutex::new(Slave { unit: 1, refuse_all: Some(0x0B), ..Slave::default() }));
+    let busy = Arc::new(Mutex::new(Slave { unit: 2, refuse_all: Some(0x06), ..Slave::default() }));
+    let responder = tokio::spawn(respond_all(master, vec![gateway, busy]));
+    let site = site(&format!(
+        "
+site:
+  name: Bench
+  timezone: Europe/Lisbon
+  export: allowed
+devices:
+  meter: {{ modbus_rtu: {{ port: {path}, baud: 19200 }}, unit: 1, sunspec: true }}
+  sensor: {{ modbus_rtu: {{ port: {path}, baud: 19200 }}, unit: 2 }}
+points:
+  meter_w: {{ device: meter, sunspec: 201.W }}
+  temp: {{ device: sensor, register: 0, unit: °C }}
+"
+    ));
+    let probe = |name: &str| {
+        let id = site.device(name).unwrap().0;
+        let site = site.clone();
+        async move { spillway::sources::modbus::probe::probe(&site, id, Duration::from_secs(3)).await.unwrap() }
+    };
+    let meter = probe("meter").await;
+    assert_eq!(
+        meter.points[0].value,
+        Err("answers every request with exception 0x0B (gateway target device failed to respond): check the device behind the gateway: its power, its wiring to the gateway and its unit id (1)".to_owned())
+    );
+    let sensor = probe("sensor").await;
+    assert_eq!(
+        sensor.points[0].value,
+        Err("exception ServerDeviceBusy 0x06 (server device busy): the device reports a failure or is busy (restarting?): check the device; Spillway keeps asking".to_owned())
+    );
+    drop(slave_end);
+    responder.abort();
+}

@@ -34,6 +34,9 @@ pub struct Slave {
     /// Answer with the checksum's bytes inverted (a line at the wrong baud rate or
     /// parity garbles answers like this, as far as the master can tell).
     pub corrupt_answers: bool,
+    /// Answer every request with this exception code (a gateway whose device behind it
+    /// is silent answers 0x0B; a busy device 0x06).
+    pub refuse_all: Option<u8>,
 }
 
 fn with_crc(mut v: Vec<u8>) -> Vec<u8> {
@@ -43,7 +46,6 @@ fn with_crc(mut v: Vec<u8>) -> Vec<u8> {
 }
 
 /// Answers fc 1, 3, 4, 5 and 6 for `slave.unit` until the port closes.
-#[allow(dead_code)] // not every test binary uses both
 pub async fn respond(port: SerialStream, slave: Arc<Mutex<Slave>>) {
     respond_all(port, vec![slave]).await;
 }
@@ -95,6 +97,7 @@ pub async fn respond_all(mut port: SerialStream, slaves: Vec<Arc<Mutex<Slave>>>)
                 let addr = u16::from_be_bytes([body[2], body[3]]);
                 let val = u16::from_be_bytes([body[4], body[5]]);
                 let reply = match body[1] {
+                    f if s.refuse_all.is_some() => vec![s.unit, f | 0x80, s.refuse_all.unwrap_or_default()],
                     // Input registers come from the same table here.
                     3 | 4 => {
                         let words: Option<Vec<u16>> = (0..val).map(|i| s.holding.get(&(addr + i)).copied()).collect();

@@ -431,20 +431,34 @@ impl ModbusLink {
 
     async fn discover(&self, ctx: &mut Context, st: &mut State, io: &Io<'_>) -> Result<(), Fail> {
         let mut base = None;
+        // As in `probe.rs`: every base refused with an exception about the device (a
+        // gateway's 0x0B) is reported as that exception, not as a missing marker.
+        let mut refused: Option<ExceptionName> = None;
+        let mut all_refused = true;
         for b in sunspec::BASES {
             match io.call(ctx.read_holding_registers(b, 2), st).await? {
                 Ok(w) if w == sunspec::MARKER => {
                     base = Some(b);
                     break;
                 }
-                Ok(_) => {}
+                Ok(_) => all_refused = false,
                 Err(code) => {
-                    debug!(device = %self.dev().name, base = b, code = %ExceptionName::from(code), "no SunSpec marker here")
+                    let e = ExceptionName::from(code);
+                    debug!(device = %self.dev().name, base = b, code = %e, "no SunSpec marker here");
+                    if e.is_about_request() {
+                        all_refused = false;
+                    } else {
+                        refused = Some(e);
+                    }
                 }
             }
         }
         let Some(base) = base else {
-            return Err(Fail::Transport("no SunSpec marker (SunS) at holding register 40000, 50000 or 0".to_owned()));
+            let unit = self.dev().link.modbus_unit().unwrap_or_default();
+            return Err(Fail::Transport(match refused {
+                Some(e) if all_refused => e.every_request(unit),
+                _ => "no SunSpec marker (SunS) at holding register 40000, 50000 or 0".to_owned(),
+            }));
         };
         let mut models = Vec::new();
         let mut addr = base.checked_add(2);

@@ -116,6 +116,25 @@ impl ExceptionName {
     }
 }
 
+impl ExceptionName {
+    /// What a device that answers every request with this exception is told, the same
+    /// words in the daemon's down reason and in `spillway read`: `answers every request
+    /// with exception 0x0B (gateway target device failed to respond): check …`.
+    pub fn every_request(self, unit: u8) -> String {
+        format!("answers every request with exception {}: {}", self.phrase(), self.advice(unit))
+    }
+
+    /// One answer's exception as `read` shows it: by name, and for an exception about
+    /// the device rather than the request, with what to check.
+    pub fn answer(self, unit: u8) -> String {
+        if self.is_about_request() {
+            format!("exception {self}")
+        } else {
+            format!("exception {self} {}: {}", self.phrase(), self.advice(unit))
+        }
+    }
+}
+
 impl From<tokio_modbus::ExceptionCode> for ExceptionName {
     fn from(code: tokio_modbus::ExceptionCode) -> Self {
         ExceptionName(u8::from(code))

@@ -76,7 +76,8 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
     // silence from a garbled answer; the outer timeout here is only a backstop.
     let outer =
         if matches!(dev.link, Link::ModbusRtu { .. }) { dev.timeout * 2 + Duration::from_secs(1) } else { dev.timeout };
-    let mut p = Prober { ctx: &mut ctx, limit: dev.timeout, outer, dead: None };
+    let unit = dev.link.modbus_unit().unwrap_or_default();
+    let mut p = Prober { ctx: &mut ctx, limit: dev.timeout, outer, unit, dead: None };
     let map = if dev.sunspec { p.discover().await } else { Ok(None) };
     let models = match &map {
         Ok(Some(m)) => m.models.iter().map(|&(id, start, _)| (id, start)).collect(),
@@ -143,6 +144,8 @@ struct Prober<'a> {
     /// The wait for one request: `limit`, longer on a serial line (which applies
     /// `limit` itself).
     outer: Duration,
+    /// The device's unit id, for the advice on an exception.
+    unit: u8,
     /// Set after a timeout or transport error: the connection cannot be trusted.
     dead: Option<String>,
 }
@@ -195,16 +198,26 @@ impl Prober<'_> {
     /// Finds the SunSpec model chain (`Ok(None)`: no marker at any base).
     async fn discover(&mut self) -> Result<Option<ModelMap>, String> {
         let mut base = None;
+        // The exception every base drew, if each drew one about the device (a gateway
+        // whose device is silent answers 0x0B to everything): that, not a missing
+        // marker, is what to report.
+        let mut refused: Option<ExceptionName> = None;
+        let mut all_refused = true;
         for b in sunspec::BASES {
-            if let Ok(w) = self.read(Table::HoldingRegister, b, 2).await?
-                && w == sunspec::MARKER
-            {
-                base = Some(b);
-                break;
+            match self.read(Table::HoldingRegister, b, 2).await? {
+                Ok(w) if w == sunspec::MARKER => {
+                    base = Some(b);
+                    break;
+                }
+                Err(code) if !ExceptionName::from(code).is_about_request() => refused = Some(code.into()),
+                _ => all_refused = false,
             }
         }
         let Some(base) = base else {
-            return Err("no SunSpec marker (SunS) at holding register 40000, 50000 or 0".to_owned());
+            return Err(match refused {
+                Some(e) if all_refused => e.every_request(self.unit),
+                _ => "no SunSpec marker (SunS) at holding register 40000, 50000 or 0".to_owned(),
+            });
         };
         let mut models = Vec::new();
         let mut addr = base.checked_add(2);
@@ -239,7 +252,7 @@ impl Prober<'_> {
         };
         let mut raw = match self.read(spec.table, spec.address, count).await {
             Ok(Ok(w)) => w,
-            Ok(Err(code)) => return fail(origin, Vec::new(), format!("exception {}", ExceptionName::from(code))),
+            Ok(Err(code)) => return fail(origin, Vec::new(), ExceptionName::from(code).answer(self.unit)),
             Err(why) => return fail(origin, Vec::new(), why),
         };
         let mut words = Words::default();
@@ -256,7 +269,7 @@ impl Prober<'_> {
                     return fail(
                         origin,
                         raw,
-                        format!("scale factor at {address}: exception {}", ExceptionName::from(code)),
+                        format!("scale factor at {address}: {}", ExceptionName::from(code).answer(self.unit)),
                     );
                 }
                 Err(why) => return fail(origin, raw, why),
