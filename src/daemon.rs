@@ -41,7 +41,9 @@ use crate::config::model::{DeviceId, Link, LoadId, Site};
 use crate::engine::{Engine, Snapshot};
 use crate::sources::modbus::ModbusError;
 use crate::sources::mqtt::MqttError;
-use crate::sources::{Clock, LinkCounts, LinkStats, ModbusLink, ModbusOptions, MqttLink, MqttOptions, SourceEvent};
+use crate::sources::{
+    Clock, LinkCounts, LinkStats, ModbusLink, ModbusOptions, MqttLink, MqttOptions, SerialLines, SourceEvent,
+};
 use crate::status::{self, Status};
 use crate::units::format_duration;
 
@@ -173,12 +175,14 @@ impl Daemon {
         // Build every link before spawning any, so a configuration problem stops the
         // start-up with nothing left running.
         let mut modbus = Vec::new();
+        // Devices on one serial port share its line (one open port, polled in turn).
+        let lines = SerialLines::new();
         for (i, d) in site.devices.iter().enumerate() {
             if matches!(d.link, Link::Mqtt) {
                 continue;
             }
             let id = DeviceId(i);
-            let link = ModbusLink::new(Arc::clone(&site), id, options.modbus)?;
+            let link = ModbusLink::sharing(Arc::clone(&site), id, options.modbus, &lines)?;
             links.push((d.name.clone(), link.stats()));
             let Some(rx) = dispatcher.device(id) else { continue };
             modbus.push((link, rx));

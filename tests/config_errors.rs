@@ -54,6 +54,13 @@ fn impossible_settings_are_reported() {
     check("impossible-settings");
 }
 
+/// Devices on one serial port share its line: one baud rate, parity and stop bits
+/// (C0288), and a unit id each (C0289); another port is another line.
+#[test]
+fn devices_sharing_a_serial_port_must_agree_and_have_their_own_units() {
+    check("shared-serial-port");
+}
+
 #[test]
 fn limiting_export_without_a_grid_meter_is_an_error() {
     check("no-grid-meter");

@@ -119,6 +119,11 @@ async fn the_shipped_systemd_unit_runs_and_stops_the_controller() {
     let state_dir = format!("/var/lib/{}", one("StateDirectory"));
     assert_eq!(one("KillSignal"), "SIGTERM");
     assert_eq!(one("Restart"), "on-failure");
+    // Serial sites: the user can open the adapters, the comments say how to name
+    // them stably; no watchdog, since the daemon does not notify systemd.
+    assert!(key("SupplementaryGroups").iter().any(|g| g.split_whitespace().any(|g| g == "dialout")));
+    assert!(unit.contains("/dev/serial/by-id/"), "the unit's comments advise stable serial paths");
+    assert!(key("WatchdogSec").is_empty() && one("Type") == "exec", "a watchdog needs sd_notify");
     let no_restart: Vec<i32> = one("RestartPreventExitStatus").split_whitespace().map(|c| c.parse().unwrap()).collect();
     let stop_within = Duration::from_secs(one("TimeoutStopSec").parse().unwrap());
 

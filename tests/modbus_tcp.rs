@@ -509,7 +509,8 @@ async fn reads_back_first_then_writes_only_the_configured_addresses() {
 async fn a_rebooted_relay_module_gets_its_state_back() {
     let server = TestServer::start().await;
     relays_server(&server);
-    let options = ActuatorOptions { reassert: Duration::from_secs(10) };
+    // The daemon's own default: the README promises a re-write every 10 s.
+    let options = ActuatorOptions::default();
     let mut b = Bench::start(server, &relays_yaml(), "relays", options).await;
     b.command(&[Command::On, Command::Stage(3), Command::Off, Command::Off]);
     drain_for(&mut b.events, Duration::from_secs(1)).await;
@@ -524,7 +525,7 @@ async fn a_rebooted_relay_module_gets_its_state_back() {
     assert_eq!([2, 4, 5, 6].map(|c| b.server.coil(3, c).unwrap()), [true, true, true, true]);
 
     // A module behind a gateway that rebooted without dropping TCP: the periodic
-    // re-assert (10 s here) restores it.
+    // re-assert (10 s by default) restores it.
     b.server.unit(3, |u| u.coils.values_mut().for_each(|c| *c = false));
     b.server.take_log();
     drain_for(&mut b.events, Duration::from_secs(11)).await;

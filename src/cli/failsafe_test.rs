@@ -179,7 +179,7 @@ pub fn describe(site: &Site, grid: &str, r: &FailsafeReport) -> String {
         row(&format!("{name} off"), off.map_or_else(|| "not seen".to_owned(), at));
     }
     if r.loads_off.is_empty() {
-        row("(no load was on when the link dropped)", String::new());
+        row("loads", "NOT tested: no load was on when the link dropped".to_owned());
     }
     row("rules in charge again", at(r.back_at));
     let _ = writeln!(
@@ -201,7 +201,15 @@ pub fn describe(site: &Site, grid: &str, r: &FailsafeReport) -> String {
             );
         }
     }
-    let _ = writeln!(out, "result: {}", if r.passed() { "PASS" } else { "FAIL" });
+    let verdict = match (r.passed(), r.loads_off.is_empty(), site.inverter.is_some()) {
+        (false, _, _) => "FAIL",
+        // A pass that showed no load switching off proves only the inverter's side:
+        // the record must not read as if the loads had been tested.
+        (true, true, true) => "PASS (inverter only; no load was on, so no load was shown to switch off)",
+        (true, true, false) => "PASS (no load was on, so no load was shown to switch off)",
+        (true, false, _) => "PASS",
+    };
+    let _ = writeln!(out, "result: {verdict}");
     out
 }
 
@@ -236,6 +244,22 @@ mod tests {
         assert!(text.contains("the inverter's own reading at it   +4.0 s"), "{text}");
         assert!(text.contains("time to the safe state: 4.0 s (bound 5 s)"), "{text}");
         assert!(text.ends_with("result: PASS\n"), "{text}");
+    }
+
+    #[test]
+    fn a_pass_with_no_load_on_says_the_loads_were_not_tested() {
+        let mut r = report();
+        r.loads_off.clear();
+        let text = describe(&site(), "grid", &r);
+        assert!(
+            text.contains("  loads                              NOT tested: no load was on when the link dropped\n"),
+            "{text}"
+        );
+        assert!(
+            text.ends_with("result: PASS (inverter only; no load was on, so no load was shown to switch off)\n"),
+            "{text}"
+        );
+        assert!(text.lines().all(|l| l == l.trim_end()), "no line ends in spaces: {text:?}");
     }
 
     #[test]

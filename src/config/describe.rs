@@ -96,7 +96,9 @@ pub fn describe(site: &Site) -> String {
     for d in &site.devices {
         let link = match &d.link {
             Link::ModbusTcp { host, port, unit } => format!("Modbus TCP {host}:{port} unit {unit}"),
-            Link::ModbusRtu { path, baud, unit, .. } => format!("Modbus RTU {path} {baud} Bd unit {unit}"),
+            Link::ModbusRtu { path, unit, .. } => {
+                format!("Modbus RTU {path} {}, unit {unit}", d.link.serial_framing().unwrap_or_default())
+            }
             Link::Mqtt => "MQTT".to_owned(),
         };
         if matches!(d.link, Link::Mqtt) {

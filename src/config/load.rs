@@ -19,6 +19,12 @@ use crate::diag::{self, Diagnostic, did_you_mean};
 use crate::rules::{self, Scope, Slot, Type};
 use crate::units::{self, Current, Dimension, Energy, Power, Ratio, Temperature, Voltage};
 
+/// Where a serial device's port settings and unit id are written, for C0288 and C0289.
+struct SerialSpans {
+    link: Range<usize>,
+    unit: Range<usize>,
+}
+
 /// Specific heat of water, J/(kg·K): 4.186 kJ/(kg·K) near 15 °C (CRC Handbook of
 /// Chemistry and Physics; from memory), as the simulator's tank uses.
 const WATER_J_PER_KG_K: f64 = 4186.0;
@@ -890,6 +896,7 @@ impl Builder<'_, '_> {
             return Vec::new();
         };
         let mut devices = Vec::new();
+        let mut serial = Vec::new();
         for (key, dnode) in m.into_named_entries() {
             if !is_name(&key.name) {
                 self.diags.error(
@@ -902,14 +909,78 @@ impl Builder<'_, '_> {
                 continue;
             }
             match self.device(&key.name, dnode, have_mqtt) {
-                Some(d) => devices.push(d),
+                Some((d, spans)) => {
+                    if let Some(spans) = spans {
+                        serial.push((devices.len(), spans));
+                    }
+                    devices.push(d);
+                }
                 None => self.broken_devices.push(key.name.clone()),
             }
         }
+        self.shared_ports(&devices, &serial);
         devices
     }
 
-    fn device(&mut self, name: &str, node: &Node, have_mqtt: bool) -> Option<Device> {
+    /// Devices on one serial port share its line: they must agree on its framing (C0288)
+    /// and each needs a unit id of its own there (C0289). `serial` holds, for each RTU
+    /// device, its index and the spans of its `modbus_rtu` value and of its `unit`.
+    fn shared_ports(&mut self, devices: &[Device], serial: &[(usize, SerialSpans)]) {
+        for (k, (i, spans)) in serial.iter().enumerate() {
+            let Link::ModbusRtu { path, unit, .. } = &devices[*i].link else { continue };
+            // The first earlier device on the same port is the one to compare with.
+            let Some((j, first)) = serial[..k].iter().find(|(j, _)| {
+                matches!(&devices[*j].link, Link::ModbusRtu { path: p, .. } if crate::config::model::same_port(p, path))
+            }) else {
+                continue;
+            };
+            let (a, b) = (&devices[*j], &devices[*i]);
+            let (fa, fb) = (a.link.serial_framing(), b.link.serial_framing());
+            if fa != fb {
+                self.diags.push(
+                    Diagnostic::error(
+                        "C0288",
+                        format!(
+                            "device \"{}\" is on serial port {path} with {}, but device \"{}\" on the same port has {}",
+                            b.name,
+                            fb.unwrap_or_default(),
+                            a.name,
+                            fa.unwrap_or_default()
+                        ),
+                        spans.link.clone(),
+                    )
+                    .with_label("settings differ from the port's first device")
+                    .with_secondary(first.link.clone(), format!("\"{}\" sets the port up like this", a.name))
+                    .with_note(
+                        "the devices of one RS-485 line share it and must all be set to one baud rate, parity and stop bits: set the devices alike and write the same `modbus_rtu` for each",
+                    ),
+                );
+            }
+            let twin = serial[..k].iter().find(|(j, _)| {
+                matches!(&devices[*j].link, Link::ModbusRtu { path: p, unit: u, .. }
+                    if crate::config::model::same_port(p, path) && u == unit)
+            });
+            if let Some((j, other)) = twin {
+                self.diags.push(
+                    Diagnostic::error(
+                        "C0289",
+                        format!(
+                            "devices \"{}\" and \"{}\" are both unit {unit} on serial port {path}",
+                            devices[*j].name, b.name
+                        ),
+                        spans.unit.clone(),
+                    )
+                    .with_label(format!("unit {unit} again"))
+                    .with_secondary(other.unit.clone(), format!("\"{}\" is unit {unit}", devices[*j].name))
+                    .with_note(
+                        "both would answer one request and garble the line: give each device on a line its own unit id (set on the device itself) and write it as its `unit`",
+                    ),
+                );
+            }
+        }
+    }
+
+    fn device(&mut self, name: &str, node: &Node, have_mqtt: bool) -> Option<(Device, Option<SerialSpans>)> {
         let what = format!("device \"{name}\"");
         let mut m = MapReader::new(node, &what, self.diags)?;
         let tcp = m.get("modbus_tcp");
@@ -933,6 +1004,8 @@ impl Builder<'_, '_> {
         });
         let sunspec = m.get("sunspec").map_or(Some(false), |n| values::boolean(n, "`sunspec`", self.diags));
         let span = m.span();
+        let serial_spans = rtu
+            .map(|n| SerialSpans { link: n.span.clone(), unit: m.key_span("unit").unwrap_or_else(|| n.span.clone()) });
         m.finish(self.diags);
         let mqtt = mqtt?;
         let given = [tcp.is_some(), rtu.is_some(), mqtt].iter().filter(|b| **b).count();
@@ -989,7 +1062,8 @@ impl Builder<'_, '_> {
                 "remove `sunspec` or use modbus_tcp/modbus_rtu",
             );
         }
-        Some(Device { name: name.to_owned(), link, poll: poll?, timeout: timeout?, sunspec: sunspec? })
+        let device = Device { name: name.to_owned(), link, poll: poll?, timeout: timeout?, sunspec: sunspec? };
+        Some((device, serial_spans))
     }
 
     fn rtu(&mut self, node: &Node, unit: u8) -> Option<Link> {

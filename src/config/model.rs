@@ -255,12 +255,42 @@ pub enum Link {
 }
 
 impl Link {
+    /// A serial link's settings as a person reads them: `19200 Bd, even parity, 1 stop
+    /// bit` (Modbus RTU always sends 8 data bits). `None` for other links.
+    pub fn serial_framing(&self) -> Option<String> {
+        match self {
+            Link::ModbusRtu { baud, parity, stop_bits, .. } => {
+                let p = match parity {
+                    Parity::None => "no",
+                    Parity::Even => "even",
+                    Parity::Odd => "odd",
+                };
+                let s = if *stop_bits == 1 { "" } else { "s" };
+                Some(format!("{baud} Bd, {p} parity, {stop_bits} stop bit{s}"))
+            }
+            _ => None,
+        }
+    }
+
     /// The Modbus unit identifier, for Modbus links.
     pub fn modbus_unit(&self) -> Option<u8> {
         match self {
             Link::ModbusTcp { unit, .. } | Link::ModbusRtu { unit, .. } => Some(*unit),
             Link::Mqtt => None,
         }
+    }
+}
+
+/// Whether two serial port paths name one port: the same text, or two paths (a
+/// `/dev/serial/by-id/…` link and the `/dev/ttyUSB0` it points to) that resolve to the
+/// same file where both exist.
+pub fn same_port(a: &str, b: &str) -> bool {
+    if a == b {
+        return true;
+    }
+    match (std::fs::canonicalize(a), std::fs::canonicalize(b)) {
+        (Ok(x), Ok(y)) => x == y,
+        _ => false,
     }
 }
 

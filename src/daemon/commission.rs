@@ -19,7 +19,7 @@ use crate::actuators::{DesiredWrite, DeviceCommands, MqttOutputs, load_levels};
 use crate::config::model::{DeviceId, Link, LoadId, PointId, Site};
 use crate::engine::Command;
 use crate::sources::modbus::probe::{self, DeviceProbe};
-use crate::sources::{Clock, ModbusLink, ModbusOptions, MqttLink, MqttOptions, SourceEvent};
+use crate::sources::{Clock, ModbusLink, ModbusOptions, MqttLink, MqttOptions, SerialLines, SourceEvent};
 
 /// What `read` found on one device.
 #[derive(Debug)]
@@ -274,12 +274,13 @@ pub fn step_test(
         needed.push(site.points[grid.0].device);
         needed.sort();
         needed.dedup();
+        let lines = SerialLines::new();
         for (i, d) in site.devices.iter().enumerate() {
             let id = DeviceId(i);
             if matches!(d.link, Link::Mqtt) {
                 continue;
             }
-            let link = ModbusLink::new(Arc::clone(&site), id, ModbusOptions::default())
+            let link = ModbusLink::sharing(Arc::clone(&site), id, ModbusOptions::default(), &lines)
                 .map_err(|e| StepError::Daemon(e.into()))?;
             let (wtx, wrx) = watch::channel(Arc::new(DeviceCommands::default()));
             senders.push((id, wtx));

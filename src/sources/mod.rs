@@ -24,7 +24,7 @@ use crate::units::Timestamp;
 
 pub use backoff::{Backoff, BackoffPolicy};
 pub use clock::Clock;
-pub use modbus::{ExceptionName, ModbusLink, ModbusOptions};
+pub use modbus::{ExceptionName, ModbusLink, ModbusOptions, SerialLines};
 pub use mqtt::{MqttLink, MqttOptions, OverrideAction, OverrideRequest};
 
 /// Everything a link reports. One closed set, so the daemon's event loop is one `match`.

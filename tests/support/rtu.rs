@@ -31,6 +31,12 @@ pub struct Slave {
     pub frames: Vec<Vec<u8>>,
     /// Frames dropped for a bad CRC.
     pub bad_crc: usize,
+    /// Answer with the checksum's bytes inverted (a line at the wrong baud rate or
+    /// parity garbles answers like this, as far as the master can tell).
+    pub corrupt_answers: bool,
+    /// Answer every request with this exception code (a gateway whose device behind it
+    /// is silent answers 0x0B; a busy device 0x06).
+    pub refuse_all: Option<u8>,
 }
 
 fn with_crc(mut v: Vec<u8>) -> Vec<u8> {
@@ -39,8 +45,14 @@ fn with_crc(mut v: Vec<u8>) -> Vec<u8> {
     v
 }
 
-/// Answers fc 1, 3, 5 and 6 for `slave.unit` until the port closes.
-pub async fn respond(mut port: SerialStream, slave: Arc<Mutex<Slave>>) {
+/// Answers fc 1, 3, 4, 5 and 6 for `slave.unit` until the port closes.
+pub async fn respond(port: SerialStream, slave: Arc<Mutex<Slave>>) {
+    respond_all(port, vec![slave]).await;
+}
+
+/// Several devices on one line: each frame is heard by all of them (every one records
+/// it) and answered by the one whose unit it names; a unit nobody has stays silent.
+pub async fn respond_all(mut port: SerialStream, slaves: Vec<Arc<Mutex<Slave>>>) {
     let mut buf: Vec<u8> = Vec::new();
     let mut chunk = [0u8; 256];
     loop {
@@ -66,30 +78,38 @@ pub async fn respond(mut port: SerialStream, slave: Arc<Mutex<Slave>>) {
             }
             let frame: Vec<u8> = buf.drain(..len).collect();
             let (body, crc) = frame.split_at(len - 2);
-            let reply = {
+            let crc_ok = crc16_modbus(body) == u16::from_le_bytes([crc[0], crc[1]]);
+            let mut answering = None;
+            for slave in &slaves {
                 let mut s = slave.lock().unwrap();
-                if crc16_modbus(body) != u16::from_le_bytes([crc[0], crc[1]]) {
+                if !crc_ok {
                     s.bad_crc += 1;
                     continue;
                 }
                 s.frames.push(body.to_vec());
-                if body[0] != s.unit {
-                    continue;
+                if body[0] == s.unit {
+                    answering = Some(Arc::clone(slave));
                 }
+            }
+            let Some(slave) = answering else { continue };
+            let (reply, corrupt) = {
+                let mut s = slave.lock().unwrap();
                 let addr = u16::from_be_bytes([body[2], body[3]]);
                 let val = u16::from_be_bytes([body[4], body[5]]);
-                match body[1] {
-                    3 => {
+                let reply = match body[1] {
+                    f if s.refuse_all.is_some() => vec![s.unit, f | 0x80, s.refuse_all.unwrap_or_default()],
+                    // Input registers come from the same table here.
+                    3 | 4 => {
                         let words: Option<Vec<u16>> = (0..val).map(|i| s.holding.get(&(addr + i)).copied()).collect();
                         match words {
                             Some(w) => {
-                                let mut r = vec![s.unit, 3, (w.len() * 2) as u8];
+                                let mut r = vec![s.unit, body[1], (w.len() * 2) as u8];
                                 for x in w {
                                     r.extend_from_slice(&x.to_be_bytes());
                                 }
                                 r
                             }
-                            None => vec![s.unit, 0x83, 0x02],
+                            None => vec![s.unit, body[1] | 0x80, 0x02],
                         }
                     }
                     1 => {
@@ -114,9 +134,16 @@ pub async fn respond(mut port: SerialStream, slave: Arc<Mutex<Slave>>) {
                         body.to_vec()
                     }
                     f => vec![s.unit, f | 0x80, 0x01],
-                }
+                };
+                (reply, s.corrupt_answers)
             };
-            if port.write_all(&with_crc(reply)).await.is_err() {
+            let mut reply = with_crc(reply);
+            if corrupt {
+                let n = reply.len();
+                reply[n - 2] ^= 0xFF;
+                reply[n - 1] ^= 0xFF;
+            }
+            if port.write_all(&reply).await.is_err() {
                 return;
             }
         }

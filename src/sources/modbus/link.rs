@@ -20,8 +20,9 @@ use tracing::{debug, info, warn};
 
 use super::codec::{self, Sentinel};
 use super::plan::{self, Block, Decoded, Group, PointSpec, ScaleSpec, Words};
+use super::serial::LineFault;
 use super::sunspec::{self, ModelMap};
-use super::{ModbusError, ModbusOptions};
+use super::{ModbusError, ModbusOptions, SerialLines};
 use crate::actuators::modbus::{LimitContext, LimitControl, WriteOp, WriteTracker};
 use crate::actuators::{DeviceCommands, targets_of};
 use crate::config::model::{
@@ -36,6 +37,8 @@ pub struct ModbusLink {
     device: DeviceId,
     options: ModbusOptions,
     stats: Arc<LinkStats>,
+    /// The serial lines of the site: devices on one port share its line.
+    lines: Arc<SerialLines>,
 }
 
 /// Why a session ended.
@@ -83,13 +86,25 @@ struct Refusing {
 }
 
 impl ModbusLink {
-    /// A link for one Modbus device of the site.
+    /// A link for one Modbus device of the site, alone on its serial line if it has
+    /// one. Devices that share a port need [`ModbusLink::sharing`].
     pub fn new(site: Arc<Site>, device: DeviceId, options: ModbusOptions) -> Result<Self, ModbusError> {
+        Self::sharing(site, device, options, &SerialLines::new())
+    }
+
+    /// A link for one Modbus device of the site; an RTU device takes its place on the
+    /// line of its port in `lines`, shared with the other devices there.
+    pub fn sharing(
+        site: Arc<Site>,
+        device: DeviceId,
+        options: ModbusOptions,
+        lines: &Arc<SerialLines>,
+    ) -> Result<Self, ModbusError> {
         let d = site.devices.get(device.0).ok_or(ModbusError::NoSuchDevice(device.0))?;
         if matches!(d.link, Link::Mqtt) {
             return Err(ModbusError::NotModbus(d.name.clone()));
         }
-        Ok(ModbusLink { site, device, options, stats: LinkStats::shared() })
+        Ok(ModbusLink { site, device, options, stats: LinkStats::shared(), lines: Arc::clone(lines) })
     }
 
     /// The device this link serves.
@@ -132,7 +147,13 @@ impl ModbusLink {
             let reason = match connected {
                 Ok(Ok(mut ctx)) => {
                     self.stats.count(Counter::Connect);
-                    info!(device = %self.dev().name, "modbus device connected");
+                    if self.on_line() {
+                        // The port is the line's: it logs its opening, once (`serial.rs`).
+                        // Attaching to it says nothing about the device.
+                        debug!(device = %self.dev().name, "on its serial line");
+                    } else {
+                        info!(device = %self.dev().name, "modbus device connected");
+                    }
                     st.answered = false;
                     st.refusing = None;
                     let r = self.session(&mut ctx, &mut st, &mut commands, &events, &clock, &cancel).await;
@@ -235,7 +256,13 @@ impl ModbusLink {
     }
 
     async fn connect(&self) -> io::Result<Context> {
-        super::connect(&self.dev().link).await
+        super::connect(&self.dev().link, &self.lines, self.dev().timeout).await
+    }
+
+    /// Whether the device is on a serial line, which times each exchange itself (the
+    /// wait for the line, while the other devices on it are asked, is not the device's).
+    fn on_line(&self) -> bool {
+        matches!(self.dev().link, Link::ModbusRtu { .. })
     }
 
     /// One connection's life. Returns why it ended.
@@ -404,20 +431,34 @@ impl ModbusLink {
 
     async fn discover(&self, ctx: &mut Context, st: &mut State, io: &Io<'_>) -> Result<(), Fail> {
         let mut base = None;
+        // As in `probe.rs`: every base refused with an exception about the device (a
+        // gateway's 0x0B) is reported as that exception, not as a missing marker.
+        let mut refused: Option<ExceptionName> = None;
+        let mut all_refused = true;
         for b in sunspec::BASES {
             match io.call(ctx.read_holding_registers(b, 2), st).await? {
                 Ok(w) if w == sunspec::MARKER => {
                     base = Some(b);
                     break;
                 }
-                Ok(_) => {}
+                Ok(_) => all_refused = false,
                 Err(code) => {
-                    debug!(device = %self.dev().name, base = b, code = %ExceptionName::from(code), "no SunSpec marker here")
+                    let e = ExceptionName::from(code);
+                    debug!(device = %self.dev().name, base = b, code = %e, "no SunSpec marker here");
+                    if e.is_about_request() {
+                        all_refused = false;
+                    } else {
+                        refused = Some(e);
+                    }
                 }
             }
         }
         let Some(base) = base else {
-            return Err(Fail::Transport("no SunSpec marker (SunS) at holding register 40000, 50000 or 0".to_owned()));
+            let unit = self.dev().link.modbus_unit().unwrap_or_default();
+            return Err(Fail::Transport(match refused {
+                Some(e) if all_refused => e.every_request(unit),
+                _ => "no SunSpec marker (SunS) at holding register 40000, 50000 or 0".to_owned(),
+            }));
         };
         let mut models = Vec::new();
         let mut addr = base.checked_add(2);
@@ -765,8 +806,8 @@ impl ModbusLink {
 impl ModbusLink {
     /// How long a device may answer nothing but exceptions before it counts as down:
     /// twice its longest poll period, so that every point was asked twice; for a device
-    /// with nothing to read, two of the actuators' default re-assertions (10 s), its
-    /// only requests then.
+    /// with nothing to read, 20 s: two of the actuators' default re-assertions (10 s,
+    /// `ActuatorOptions`), its only requests then.
     fn down_after(&self, st: &State) -> Duration {
         st.groups.iter().map(|(g, _)| g.period).max().unwrap_or(Duration::from_secs(10)) * 2
     }
@@ -818,21 +859,41 @@ impl Io<'_> {
         let link = self.link;
         link.stats.count(Counter::Request);
         let limit = link.dev().timeout;
+        let timed = async {
+            if link.on_line() {
+                // The line times the exchange itself (`serial.rs`).
+                Ok(request.await)
+            } else {
+                timeout(limit, request).await
+            }
+        };
         let r = tokio::select! {
             biased;
             // Dropping a request mid-flight poisons the connection; we are leaving anyway.
             () = self.cancel.cancelled() => return Err(Fail::Cancelled),
-            r = timeout(limit, request) => r,
+            r = timed => r,
         };
         match r {
             Err(_) => {
                 link.stats.count(Counter::Timeout);
                 Err(Fail::Transport(format!("no answer within {}", crate::units::format_duration(limit))))
             }
-            Ok(Err(e)) => {
-                link.stats.count(Counter::TransportError);
-                Err(Fail::Transport(format!("transport error: {e}")))
-            }
+            Ok(Err(e)) => match LineFault::of(&e) {
+                Some(f @ LineFault::NoAnswer(_)) => {
+                    link.stats.count(Counter::Timeout);
+                    Err(Fail::Transport(f.to_string()))
+                }
+                // Bytes came back, but no valid frame: the line, not the device's
+                // silence. Counted as malformed, with what to check.
+                Some(f @ LineFault::Garbled { .. }) => {
+                    link.stats.count(Counter::Malformed);
+                    Err(Fail::Transport(f.to_string()))
+                }
+                _ => {
+                    link.stats.count(Counter::TransportError);
+                    Err(Fail::Transport(format!("transport error: {e}")))
+                }
+            },
             Ok(Ok(r)) => {
                 st.answered = true;
                 match &r {

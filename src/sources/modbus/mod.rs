@@ -5,6 +5,7 @@ pub mod codec;
 mod link;
 pub mod plan;
 pub mod probe;
+pub mod serial;
 pub mod sunspec;
 
 use std::fmt;
@@ -14,9 +15,10 @@ use std::time::Duration;
 use tokio_modbus::client::Context;
 
 pub use link::ModbusLink;
+pub use serial::SerialLines;
 
 use super::BackoffPolicy;
-use crate::config::model::{Link, Parity};
+use crate::config::model::Link;
 
 /// Tuning of a Modbus link.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -114,6 +116,25 @@ impl ExceptionName {
     }
 }
 
+impl ExceptionName {
+    /// What a device that answers every request with this exception is told, the same
+    /// words in the daemon's down reason and in `spillway read`: `answers every request
+    /// with exception 0x0B (gateway target device failed to respond): check …`.
+    pub fn every_request(self, unit: u8) -> String {
+        format!("answers every request with exception {}: {}", self.phrase(), self.advice(unit))
+    }
+
+    /// One answer's exception as `read` shows it: by name, and for an exception about
+    /// the device rather than the request, with what to check.
+    pub fn answer(self, unit: u8) -> String {
+        if self.is_about_request() {
+            format!("exception {self}")
+        } else {
+            format!("exception {self} {}: {}", self.phrase(), self.advice(unit))
+        }
+    }
+}
+
 impl From<tokio_modbus::ExceptionCode> for ExceptionName {
     fn from(code: tokio_modbus::ExceptionCode) -> Self {
         ExceptionName(u8::from(code))
@@ -129,9 +150,10 @@ impl fmt::Display for ExceptionName {
     }
 }
 
-/// Opens a device's Modbus transport (TCP or RTU) for its unit; the callers bound the
-/// wait with their own connect timeout.
-async fn connect(link: &Link) -> io::Result<Context> {
+/// Opens a device's Modbus transport for its unit: a TCP connection, or the device's
+/// place on its serial line (shared with the other devices on the port, each request
+/// then under `limit`); the callers bound the wait with their own connect timeout.
+async fn connect(link: &Link, lines: &SerialLines, limit: Duration) -> io::Result<Context> {
     match link {
         Link::ModbusTcp { host, port, unit } => {
             let addr = tokio::net::lookup_host((host.as_str(), *port))
@@ -143,18 +165,10 @@ async fn connect(link: &Link) -> io::Result<Context> {
             stream.set_nodelay(true)?;
             Ok(tokio_modbus::client::tcp::attach_slave(stream, tokio_modbus::Slave(*unit)))
         }
-        Link::ModbusRtu { path, baud, parity, stop_bits, unit } => {
-            let builder = tokio_serial::new(path, *baud)
-                .data_bits(tokio_serial::DataBits::Eight)
-                .parity(match parity {
-                    Parity::None => tokio_serial::Parity::None,
-                    Parity::Even => tokio_serial::Parity::Even,
-                    Parity::Odd => tokio_serial::Parity::Odd,
-                })
-                .stop_bits(if *stop_bits == 2 { tokio_serial::StopBits::Two } else { tokio_serial::StopBits::One });
-            let port = tokio_serial::SerialStream::open(&builder).map_err(io::Error::from)?;
-            Ok(tokio_modbus::client::rtu::attach_slave(port, tokio_modbus::Slave(*unit)))
-        }
+        Link::ModbusRtu { unit, .. } => match lines.line(link) {
+            Some(line) => line.attach(*unit, limit).await,
+            None => Err(io::Error::other("not a serial link")),
+        },
         Link::Mqtt => Err(io::Error::other("not a Modbus device")),
     }
 }

@@ -15,6 +15,7 @@ use tokio_modbus::client::{Context, Reader};
 use super::ExceptionName;
 use super::codec::Sentinel;
 use super::plan::{self, Decoded, PointSpec, ScaleSpec, Words};
+use super::serial::LineFault;
 use super::sunspec::{self, ModelMap};
 use crate::config::model::{DeviceId, Link, PointId, PointRead, Scale, Site, Table, WordOrder};
 
@@ -65,12 +66,18 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
         Link::ModbusRtu { path, unit, .. } => format!("{path} unit {unit}"),
         Link::Mqtt => return Err(ProbeError::NotModbus(device.0)),
     };
-    let mut ctx = match timeout(connect_timeout, super::connect(&dev.link)).await {
+    let lines = super::SerialLines::new();
+    let mut ctx = match timeout(connect_timeout, super::connect(&dev.link, &lines, dev.timeout)).await {
         Ok(Ok(ctx)) => ctx,
         Ok(Err(e)) => return Err(ProbeError::Connect { target, reason: e.to_string() }),
         Err(_) => return Err(ProbeError::Connect { target, reason: "no connection within the timeout".to_owned() }),
     };
-    let mut p = Prober { ctx: &mut ctx, limit: dev.timeout, dead: None };
+    // On a serial line the line times each exchange itself (`serial.rs`) and tells
+    // silence from a garbled answer; the outer timeout here is only a backstop.
+    let outer =
+        if matches!(dev.link, Link::ModbusRtu { .. }) { dev.timeout * 2 + Duration::from_secs(1) } else { dev.timeout };
+    let unit = dev.link.modbus_unit().unwrap_or_default();
+    let mut p = Prober { ctx: &mut ctx, limit: dev.timeout, outer, unit, dead: None };
     let map = if dev.sunspec { p.discover().await } else { Ok(None) };
     let models = match &map {
         Ok(Some(m)) => m.models.iter().map(|&(id, start, _)| (id, start)).collect(),
@@ -134,6 +141,11 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
 struct Prober<'a> {
     ctx: &'a mut Context,
     limit: Duration,
+    /// The wait for one request: `limit`, longer on a serial line (which applies
+    /// `limit` itself).
+    outer: Duration,
+    /// The device's unit id, for the advice on an exception.
+    unit: u8,
     /// Set after a timeout or transport error: the connection cannot be trusted.
     dead: Option<String>,
 }
@@ -153,47 +165,59 @@ impl Prober<'_> {
             r.map(|v| v.iter().take(usize::from(count)).map(|b| u16::from(*b)).collect())
         };
         let ctx = &mut *self.ctx;
+        let limit = self.outer;
         let r = match table {
-            Table::Coil => timeout(self.limit, ctx.read_coils(address, count)).await.map(|r| r.map(bits)),
-            Table::DiscreteInput => {
-                timeout(self.limit, ctx.read_discrete_inputs(address, count)).await.map(|r| r.map(bits))
-            }
-            Table::HoldingRegister => timeout(self.limit, ctx.read_holding_registers(address, count)).await,
-            Table::InputRegister => timeout(self.limit, ctx.read_input_registers(address, count)).await,
+            Table::Coil => timeout(limit, ctx.read_coils(address, count)).await.map(|r| r.map(bits)),
+            Table::DiscreteInput => timeout(limit, ctx.read_discrete_inputs(address, count)).await.map(|r| r.map(bits)),
+            Table::HoldingRegister => timeout(limit, ctx.read_holding_registers(address, count)).await,
+            Table::InputRegister => timeout(limit, ctx.read_input_registers(address, count)).await,
         };
-        match r {
-            Ok(Ok(r)) => Ok(r),
-            Ok(Err(e)) => {
-                let why = format!("transport error: {e}");
-                self.dead = Some(why.clone());
-                Err(why)
-            }
-            Err(_) => {
-                // Connected, and silent: a gateway asked for a unit id it does not have
-                // often says nothing at all, so that is the first thing to check.
-                let why = format!(
-                    "no answer within {}: check the device's `unit` id (a gateway often stays silent for a unit it does not have), then its wiring and `timeout`",
-                    crate::units::format_duration(self.limit)
-                );
-                self.dead = Some(why.clone());
-                Err(why)
-            }
-        }
+        let why = match r {
+            Ok(Ok(r)) => return Ok(r),
+            // Connected, and silent: a gateway asked for a unit id it does not have
+            // often says nothing at all, so that is the first thing to check.
+            Err(_) => self.silent(),
+            Ok(Err(e)) => match LineFault::of(&e) {
+                Some(LineFault::NoAnswer(_)) => self.silent(),
+                // Bytes came back but no valid frame: baud, parity or wiring.
+                Some(f) => f.to_string(),
+                None => format!("transport error: {e}"),
+            },
+        };
+        self.dead = Some(why.clone());
+        Err(why)
+    }
+
+    fn silent(&self) -> String {
+        format!(
+            "no answer within {}: check the device's `unit` id (a gateway often stays silent for a unit it does not have), then its wiring and `timeout`",
+            crate::units::format_duration(self.limit)
+        )
     }
 
     /// Finds the SunSpec model chain (`Ok(None)`: no marker at any base).
     async fn discover(&mut self) -> Result<Option<ModelMap>, String> {
         let mut base = None;
+        // The exception every base drew, if each drew one about the device (a gateway
+        // whose device is silent answers 0x0B to everything): that, not a missing
+        // marker, is what to report.
+        let mut refused: Option<ExceptionName> = None;
+        let mut all_refused = true;
         for b in sunspec::BASES {
-            if let Ok(w) = self.read(Table::HoldingRegister, b, 2).await?
-                && w == sunspec::MARKER
-            {
-                base = Some(b);
-                break;
+            match self.read(Table::HoldingRegister, b, 2).await? {
+                Ok(w) if w == sunspec::MARKER => {
+                    base = Some(b);
+                    break;
+                }
+                Err(code) if !ExceptionName::from(code).is_about_request() => refused = Some(code.into()),
+                _ => all_refused = false,
             }
         }
         let Some(base) = base else {
-            return Err("no SunSpec marker (SunS) at holding register 40000, 50000 or 0".to_owned());
+            return Err(match refused {
+                Some(e) if all_refused => e.every_request(self.unit),
+                _ => "no SunSpec marker (SunS) at holding register 40000, 50000 or 0".to_owned(),
+            });
         };
         let mut models = Vec::new();
         let mut addr = base.checked_add(2);
@@ -228,7 +252,7 @@ impl Prober<'_> {
         };
         let mut raw = match self.read(spec.table, spec.address, count).await {
             Ok(Ok(w)) => w,
-            Ok(Err(code)) => return fail(origin, Vec::new(), format!("exception {}", ExceptionName::from(code))),
+            Ok(Err(code)) => return fail(origin, Vec::new(), ExceptionName::from(code).answer(self.unit)),
             Err(why) => return fail(origin, Vec::new(), why),
         };
         let mut words = Words::default();
@@ -245,7 +269,7 @@ impl Prober<'_> {
                     return fail(
                         origin,
                         raw,
-                        format!("scale factor at {address}: exception {}", ExceptionName::from(code)),
+                        format!("scale factor at {address}: {}", ExceptionName::from(code).answer(self.unit)),
                     );
                 }
                 Err(why) => return fail(origin, raw, why),
