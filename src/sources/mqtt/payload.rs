@@ -288,10 +288,12 @@ fn on_command(load: &Load, level: Option<&str>, stage: Option<u8>) -> Result<(Co
                 }
             }
         }
-        LoadKind::Proportional { .. } => match want(Dimension::Ratio, "60%")? {
+        LoadKind::Proportional { min, .. } => match want(Dimension::Ratio, "60%")? {
             None => (Command::Setpoint(Ratio(100.0)), None),
             Some(q) => {
-                let (pct, note) = bounded(q, 0.0, 100.0);
+                // `min` is the lowest non-zero setpoint the load takes: an `on` below it
+                // runs at it, as a charger's current below its minimum does.
+                let (pct, note) = bounded(q, min.0, 100.0);
                 (Command::Setpoint(Ratio(pct)), note)
             }
         },
@@ -392,6 +394,18 @@ loads:
         let load = site.load("heater").unwrap().1;
         let both = parse_override(load, br#"{"command":"on","stage":1,"level":"2kW"}"#, Timestamp(0));
         assert_eq!(both.unwrap_err(), "load \"heater\" takes a stage or a level, not both");
+    }
+
+    /// A proportional load's `min` (10 % here) is its lowest non-zero setpoint: an `on`
+    /// below it runs at it, and the log says so. 5 % was once commanded as 5 %.
+    #[test]
+    fn a_percentage_below_a_proportional_loads_min_runs_at_its_min() {
+        let site = every_kind();
+        let on = |level: &str| on_level(&site, "immersion", level);
+        assert_eq!(on("5%").as_deref(), Ok("10 % (asked 5 %: raised to its minimum)"));
+        assert_eq!(on("0%").as_deref(), Ok("10 % (asked 0 %: raised to its minimum)"));
+        assert_eq!(on("10%").as_deref(), Ok("10 %"));
+        assert_eq!(on("60%").as_deref(), Ok("60 %"));
     }
 
     /// Every form of level on every kind: the one form a kind takes works (brought into
