@@ -135,6 +135,16 @@ pub enum Reason {
         /// Power it needs to run at all.
         minimum: Power,
     },
+    /// A modulating load kept at its minimum with less than that available: a running
+    /// charger until its stop rule ends the session (or from the grid with
+    /// `below_min: hold`). The minimum on-time, where it is what holds the load, is
+    /// [`Reason::MinOn`] instead.
+    AtMinimum {
+        /// Power it could have.
+        available: Power,
+        /// Power it draws at its minimum.
+        minimum: Power,
+    },
     /// A battery at its upper state-of-charge limit.
     Full,
     /// A battery discharging to cover the house's own import.
@@ -171,6 +181,7 @@ impl Reason {
             Reason::Settling => "settling",
             Reason::Following { .. } => "following_surplus",
             Reason::BelowMinimum { .. } => "below_minimum",
+            Reason::AtMinimum { .. } => "at_minimum",
             Reason::Full => "full",
             Reason::CoveringHouse { .. } => "covering_house",
             Reason::KeepingForDuty { .. } => "keeping_for_duty",
@@ -297,6 +308,9 @@ impl fmt::Display for Reason {
             Reason::Following { power } => write!(f, "following the surplus at {power}"),
             Reason::BelowMinimum { available, minimum } => {
                 write!(f, "paused: {available} available, needs {minimum}")
+            }
+            Reason::AtMinimum { available, minimum } => {
+                write!(f, "held at its minimum, {minimum}: {available} available, stop rule not true")
             }
             Reason::Full => f.write_str("off: at its upper state of charge"),
             Reason::CoveringHouse { power } => write!(f, "discharging {power} to cover the house's own import"),

@@ -1177,7 +1177,12 @@ fn decide(
             let stage = step_stage(stages, st, surplus, now);
             (Command::Stage(stage), if is_on { Reason::Running } else { Reason::Started }, Power::ZERO)
         }
-        (kind, Ok(enabled)) => modulate(kind, st, enabled, input, u_total, is_on),
+        (kind, Ok(enabled)) => {
+            // What holds a running load at its minimum, when the share does not: the
+            // minimum on-time while it lasts (worded as for a switched load).
+            let min_on_left = if is_on { time_left(now, st.changed_at, l.min_on) } else { None };
+            modulate(kind, st, enabled, input, u_total, is_on, min_on_left)
+        }
     }
 }
 
@@ -1257,6 +1262,7 @@ fn step_stage(stages: &[crate::units::Power], st: &mut LoadState, surplus: Optio
 
 /// Proportional loads, chargers and batteries take their share of the PI controller's
 /// total in priority order. Returns the command, reason and remaining headroom.
+/// `min_on_left` is what is left of a running load's minimum on-time.
 fn modulate(
     kind: &LoadKind,
     st: &mut LoadState,
@@ -1264,7 +1270,13 @@ fn modulate(
     input: &EvalInput<'_>,
     u_total: &mut Power,
     is_on: bool,
+    min_on_left: Option<Duration>,
 ) -> (Command, Reason, Power) {
+    // Why a load draws its minimum although its share is less.
+    let held = |available: Power, minimum: Power| match min_on_left {
+        Some(left) => Reason::MinOn { left },
+        None => Reason::AtMinimum { available, minimum },
+    };
     let max = kind.max_power();
     if !enabled {
         return (Command::Off, if is_on { Reason::Stopped } else { Reason::Waiting }, Power::ZERO);
@@ -1311,7 +1323,7 @@ fn modulate(
             } else if is_on || *hold_min_from_grid {
                 // Running chargers hold their minimum until the stop rule ends the session,
                 // so a passing cloud does not cycle the contactor.
-                (Command::Current(*min), min_power, Reason::Following { power: min_power })
+                (Command::Current(*min), min_power, held(share, min_power))
             } else {
                 (Command::Off, Power::ZERO, Reason::BelowMinimum { available: share, minimum: min_power })
             }

@@ -1614,6 +1614,60 @@ fn an_override_expires_by_itself_and_never_defeats_the_inhibit_rule() {
     assert_eq!(h.engine.override_of(LoadId(0)), None);
 }
 
+/// A charger an override started, back on its rules while the site imports: what holds
+/// it at its minimum current is its minimum on-time, and its reason says so in the words
+/// a switched load's does. It once said "following the surplus at 1.38 kW" while the
+/// site imported 1 kW.
+#[test]
+fn a_charger_held_at_its_minimum_by_min_on_says_so() {
+    let loads = r#"
+  - name: car
+    kind: charger
+    voltage: 230V
+    min_current: 6A
+    max_current: 16A
+    setpoint: { device: relays, register: 300, scale: 0.1 }
+    start: surplus > 1.5kW for 1min
+    stop: surplus < 1kW for 3min
+    min_on: 10min
+    min_off: 5min
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads));
+    h.set("grid", 0.0);
+    h.tick();
+    h.engine.set_override(LoadId(0), Command::Current(Current(6.0)), h.now.plus(secs(3600)));
+    h.run(secs(60));
+    assert_eq!(h.command("car"), Command::Current(Current(6.0)));
+    h.engine.clear_override(LoadId(0));
+    // The car draws 1.38 kW and the site imports 1 kW of it.
+    h.set("grid", 1000.0);
+    for _ in 0..8 * 60 {
+        h.tick();
+        assert_eq!(h.command("car"), Command::Current(Current(6.0)));
+        let reason = h.reason("car");
+        assert!(matches!(reason, Reason::MinOn { .. }), "{reason}");
+        assert!(reason.to_string().starts_with("held on: minimum on-time ("), "{reason}");
+    }
+    // Past its minimum on-time, with the stop rule long true, it stops.
+    h.run(secs(120));
+    assert_eq!(h.command("car"), Command::Off, "{}", h.reason("car"));
+
+    // Without a minimum on-time, what holds it is the session (the stop rule not yet
+    // true), and the reason says that, not "following".
+    let mut h = Harness::new(&site("  export: allowed", &loads.replace("    min_on: 10min\n", "")));
+    h.set("grid", 0.0);
+    h.tick();
+    h.engine.set_override(LoadId(0), Command::Current(Current(6.0)), h.now.plus(secs(3600)));
+    h.run(secs(60));
+    h.engine.clear_override(LoadId(0));
+    h.set("grid", 1000.0);
+    h.run(secs(60));
+    let reason = h.reason("car");
+    assert_eq!(h.command("car"), Command::Current(Current(6.0)));
+    assert!(matches!(reason, Reason::AtMinimum { .. }), "{reason}");
+    assert!(reason.to_string().starts_with("held at its minimum, 1.38 kW: "), "{reason}");
+}
+
 /// An automation toggling a pump's override every few seconds cannot chatter it: `off`
 /// is obeyed at once, `on` waits out `min_off` and the starts cap, and then takes effect.
 #[test]
