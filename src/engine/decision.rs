@@ -137,8 +137,8 @@ pub enum Reason {
     },
     /// A modulating load kept at its minimum with less than that available: a running
     /// charger until its stop rule ends the session (or from the grid with
-    /// `below_min: hold`). The minimum on-time, where it is what holds the load, is
-    /// [`Reason::MinOn`] instead.
+    /// `below_min: hold`), a proportional load inside its band. The minimum on-time,
+    /// where it is what holds the load, is [`Reason::MinOn`] instead.
     AtMinimum {
         /// Power it could have.
         available: Power,
@@ -310,7 +310,7 @@ impl fmt::Display for Reason {
                 write!(f, "paused: {available} available, needs {minimum}")
             }
             Reason::AtMinimum { available, minimum } => {
-                write!(f, "held at its minimum, {minimum}: {available} available, stop rule not true")
+                write!(f, "held at its minimum, {minimum}: {available} available")
             }
             Reason::Full => f.write_str("off: at its upper state of charge"),
             Reason::CoveringHouse { power } => write!(f, "discharging {power} to cover the house's own import"),

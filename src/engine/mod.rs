@@ -85,6 +85,9 @@ struct LoadState {
     switched_because: Option<String>,
     /// Batteries: reached the upper state of charge, waiting for the resume level.
     full: bool,
+    /// Modulating loads: what the last command draws beyond the controller's share (a
+    /// minimum held inside its band), which the site imports on purpose.
+    held: Power,
     /// Batteries allowed to discharge: their cover of the house's own import.
     /// (Boxed: most loads have none, and the tick walks these states.)
     cover: Option<Box<discharge::Cover>>,
@@ -163,6 +166,7 @@ impl Engine {
                 stage_changed_at: Timestamp::NEVER,
                 switched_because: None,
                 full: false,
+                held: Power::ZERO,
                 cover: matches!(l.kind, LoadKind::Battery { discharge: Some(_), .. }).then(Box::default),
                 settled: true,
                 override_: None,
@@ -560,7 +564,12 @@ impl Engine {
                     .map(|(_, s)| s.power)
                     .sum();
                 let cap: Power = site.loads.iter().filter(|l| l.kind.is_modulating()).map(|l| l.kind.max_power()).sum();
-                let u = self.pi.update(pi_target - g, modulating_now, cap, dt);
+                // Import that loads held at their minimum cause on purpose is not an error
+                // to wind the total down by: with it counted, the total keeps measuring the
+                // power the loads could have, so a load inside its band pauses when that
+                // falls below the band, not whenever the import has lasted a few seconds.
+                let held: Power = self.loads.iter().map(|s| s.held).sum();
+                let u = self.pi.update(pi_target - g + held, modulating_now, cap, dt);
                 // Export beyond the limit: the loads take all they can at once (the guard
                 // curtails only the rest), rather than ramping while export persists.
                 match site.export_limit() {
@@ -1039,6 +1048,8 @@ fn decide(
     clock_change: Option<(u32, i32)>,
 ) -> (Command, Reason, Power) {
     let l = &site.loads[i];
+    // Set again by `modulate` for a load it keeps above its share this tick.
+    st.held = Power::ZERO;
     // Rules are evaluated every tick so that held-for timers and windows stay current.
     // Only the rule that can act is evaluated: the start rule while off, the stop rule
     // while on. The other one's state is reset whenever the load switches, so skipping
@@ -1297,18 +1308,21 @@ fn modulate(
     let (command, drawn, reason) = match kind {
         LoadKind::Proportional { rated, min, step, .. } => {
             let pct = quantize(share.0 / rated.0 * 100.0, step.0).min(100.0);
-            if pct < min.0.max(f64::EPSILON) {
-                (
-                    Command::Off,
-                    Power::ZERO,
-                    Reason::BelowMinimum { available: share, minimum: *rated * (min.0 / 100.0) },
-                )
-            } else {
+            // The lowest setpoint it runs at: its `min`, else one step.
+            let lowest = if min.0 > 0.0 { min.0 } else { step.0 }.max(f64::EPSILON);
+            let minimum = *rated * (lowest / 100.0);
+            if pct >= lowest {
                 (
                     Command::Setpoint(Ratio(pct)),
                     *rated * (pct / 100.0),
                     Reason::Following { power: *rated * (pct / 100.0) },
                 )
+            } else if is_on && share >= run_floor(minimum, true) && lowest > f64::EPSILON {
+                // Inside its band: it cannot run below its minimum, so it stays there,
+                // importing at most half of it, rather than pause on every dip.
+                (Command::Setpoint(Ratio(lowest)), minimum, held(share, minimum))
+            } else {
+                (Command::Off, Power::ZERO, Reason::BelowMinimum { available: share, minimum })
             }
         }
         LoadKind::Charger { watts_per_amp, min, max: max_a, step, hold_min_from_grid, .. } => {
@@ -1333,7 +1347,7 @@ fn modulate(
             // Start at the minimum, go on down to half of it: around zero surplus the
             // share follows the meter's noise, and a setpoint of a few watts toggled the
             // battery on and off every few seconds.
-            let floor = if is_on { *min_charge * 0.5 } else { *min_charge };
+            let floor = run_floor(*min_charge, is_on);
             if p.0 < 1.0 {
                 (Command::Charge(Power::ZERO), Power::ZERO, Reason::Following { power: Power::ZERO })
             } else if p < floor {
@@ -1345,10 +1359,23 @@ fn modulate(
         LoadKind::Switched { .. } | LoadKind::Stepped { .. } => (Command::Off, Power::ZERO, Reason::Waiting),
     };
     // What was taken beyond the share (a held minimum) is not left for others.
+    st.held = (drawn - share).max(Power::ZERO);
     if drawn > share {
         *u_total = (*u_total - (drawn - share)).max(Power::ZERO);
     }
     (command, reason, (max - drawn).max(Power::ZERO))
+}
+
+/// What share of its minimum a running modulating load goes on down to before it
+/// pauses: it starts at its minimum and runs on down to half of it, so meter noise
+/// around the minimum does not pause and start it every few seconds (`common practice`:
+/// hysteresis; the half was first the battery's, whose inverter regulates down there).
+const RUN_BAND: f64 = 0.5;
+
+/// The least share a modulating load with minimum `minimum` runs on: the minimum to
+/// start, [`RUN_BAND`] of it once running.
+fn run_floor(minimum: Power, is_on: bool) -> Power {
+    if is_on { minimum * RUN_BAND } else { minimum }
 }
 
 /// Rounds down to the resolution `step` (rounding down never over-absorbs into import).

@@ -412,6 +412,70 @@ fn a_proportional_load_holds_the_grid_at_the_import_target() {
     assert_eq!(h.engine.decisions().inverter_limit, None, "the load absorbed it: no curtailment");
 }
 
+/// A proportional load with a minimum (10 % of 3 kW: 300 W) under a surplus hovering at
+/// that minimum, with meter noise and a reading one tick late: it starts once the power
+/// it could have reaches its minimum and pauses only below half of it, as a battery
+/// does. Without the band it paused and started with the noise (probe3: 1562 switchings
+/// in a June week, up to 74 starts an hour). Returns the starts in an hour and the
+/// highest import seen while it ran.
+fn proportional_at_its_minimum(surplus: f64) -> (usize, f64, Harness) {
+    let loads = r#"
+  - name: immersion
+    kind: proportional
+    rated: 3kW
+    min: 10%
+    step: 1%
+    setpoint: { device: relays, register: 200 }
+"#;
+    let mut h = Harness::new(&site("  export: allowed\n  import_target: 50W", loads));
+    let mut last_grid = -surplus;
+    let mut rng: u64 = 0x9e37_79b9_7f4a_7c15;
+    let (mut starts, mut was_on, mut worst_import) = (0, false, f64::MIN);
+    for _ in 0..3600 {
+        // xorshift: deterministic uniform noise of ±30 W on the meter.
+        rng ^= rng << 13;
+        rng ^= rng >> 7;
+        rng ^= rng << 17;
+        let noise = (rng % 61) as f64 - 30.0;
+        h.set("grid", last_grid + noise);
+        let d = h.tick();
+        let on = d.loads[0].command.is_on();
+        starts += usize::from(on && !was_on);
+        was_on = on;
+        let drawn = d.loads[0].command.power(&h.site.loads[0].kind).0;
+        last_grid = -surplus + drawn;
+        if on {
+            worst_import = worst_import.max(last_grid);
+        }
+    }
+    (starts, worst_import, h)
+}
+
+#[test]
+fn a_proportional_load_starts_at_its_minimum_and_runs_on_down_to_half_of_it() {
+    // The power it could have (surplus + the 50 W import target) at its minimum, 300 W.
+    let (starts, worst_import, h) = proportional_at_its_minimum(250.0);
+    assert!(starts <= 2, "{starts} starts in an hour at its minimum");
+    assert!(worst_import <= 50.0 + 150.0 + 30.0, "imports at most half its minimum beyond the target: {worst_import}");
+    assert!(
+        matches!(h.reason("immersion"), Reason::Following { .. } | Reason::AtMinimum { .. }),
+        "{}",
+        h.reason("immersion")
+    );
+    // Inside the band (200 W could be had): held at its minimum, and the reason says so.
+    let (starts, _, h) = proportional_at_its_minimum(150.0);
+    assert!(starts <= 2, "{starts}");
+    if h.command("immersion").is_on() {
+        assert_eq!(h.command("immersion"), Command::Setpoint(Ratio(10.0)));
+        assert!(matches!(h.reason("immersion"), Reason::AtMinimum { .. }), "{}", h.reason("immersion"));
+    }
+    // Below the band (100 W could be had): paused, whatever the noise.
+    let (starts, _, h) = proportional_at_its_minimum(50.0);
+    assert_eq!(starts, 0);
+    assert_eq!(h.command("immersion"), Command::Off);
+    assert!(matches!(h.reason("immersion"), Reason::BelowMinimum { .. }), "{}", h.reason("immersion"));
+}
+
 #[test]
 fn a_charger_never_charges_below_its_minimum_current() {
     let loads = r#"
