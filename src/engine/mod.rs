@@ -587,6 +587,8 @@ impl Engine {
                 Power::ZERO
             }
         };
+        // Export beyond the limit now: no deadband delays a load taking more of it.
+        let over_limit = matches!((site.export_limit(), grid), (Some(limit), Some(g)) if -g > limit);
         self.reserved_lower(now);
         let site = &*self.site;
         let reserved = std::mem::take(&mut self.reserved);
@@ -613,6 +615,7 @@ impl Engine {
                 self.recovered_at,
                 self.outage_since,
                 clock_change,
+                over_limit,
             );
             absorbable += headroom;
             let st = &mut self.loads[i];
@@ -1046,6 +1049,7 @@ fn decide(
     recovered_at: Option<Timestamp>,
     outage_since: Option<Timestamp>,
     clock_change: Option<(u32, i32)>,
+    over_limit: bool,
 ) -> (Command, Reason, Power) {
     let l = &site.loads[i];
     // Set again by `modulate` for a load it keeps above its share this tick.
@@ -1192,7 +1196,7 @@ fn decide(
             // What holds a running load at its minimum, when the share does not: the
             // minimum on-time while it lasts (worded as for a switched load).
             let min_on_left = if is_on { time_left(now, st.changed_at, l.min_on) } else { None };
-            modulate(kind, st, enabled, input, u_total, is_on, min_on_left)
+            modulate(kind, st, enabled, input, u_total, Running { is_on, min_on_left, over_limit })
         }
     }
 }
@@ -1271,18 +1275,28 @@ fn step_stage(stages: &[crate::units::Power], st: &mut LoadState, surplus: Optio
     }
 }
 
+/// Where a modulating load stands, beyond its share, when it is decided.
+#[derive(Debug, Clone, Copy)]
+struct Running {
+    /// It is on.
+    is_on: bool,
+    /// What is left of its minimum on-time, while on.
+    min_on_left: Option<Duration>,
+    /// The site exports beyond its limit now.
+    over_limit: bool,
+}
+
 /// Proportional loads, chargers and batteries take their share of the PI controller's
 /// total in priority order. Returns the command, reason and remaining headroom.
-/// `min_on_left` is what is left of a running load's minimum on-time.
 fn modulate(
     kind: &LoadKind,
     st: &mut LoadState,
     enabled: bool,
     input: &EvalInput<'_>,
     u_total: &mut Power,
-    is_on: bool,
-    min_on_left: Option<Duration>,
+    at: Running,
 ) -> (Command, Reason, Power) {
+    let Running { is_on, min_on_left, over_limit } = at;
     // Why a load draws its minimum although its share is less.
     let held = |available: Power, minimum: Power| match min_on_left {
         Some(left) => Reason::MinOn { left },
@@ -1326,7 +1340,16 @@ fn modulate(
             }
         }
         LoadKind::Charger { watts_per_amp, min, max: max_a, step, hold_min_from_grid, .. } => {
-            let amps = quantize(share.0 / watts_per_amp, step.0).min(max_a.0);
+            let demand = share.0 / watts_per_amp;
+            let amps = match st.command {
+                // Running: a step is taken only once the demand has passed it by a margin,
+                // except upwards while the site exports beyond its limit.
+                Command::Current(now) if now.0 >= min.0 => {
+                    hold_step(now.0, demand, step.0, over_limit).unwrap_or_else(|| quantize(demand, step.0))
+                }
+                _ => quantize(demand, step.0),
+            }
+            .min(max_a.0);
             let min_power = Power(min.0 * watts_per_amp);
             if amps >= min.0 {
                 (
@@ -1376,6 +1399,28 @@ const RUN_BAND: f64 = 0.5;
 /// start, [`RUN_BAND`] of it once running.
 fn run_floor(minimum: Power, is_on: bool) -> Power {
     if is_on { minimum * RUN_BAND } else { minimum }
+}
+
+/// How far past a step, in steps, the demand of a running charger must go before it
+/// moves off its current step: it holds step `c` while the demand stays within
+/// `c − STEP_MARGIN … c + 1 + STEP_MARGIN` steps, ±(½ + `STEP_MARGIN`) of a step around
+/// the middle of the step. A 1 A step of a 230 V charger is 230 W, too coarse to hold a
+/// 50 W import target: without the margin it hunted between two steps every few
+/// seconds in a steady surplus, each change a setpoint write (`common practice`:
+/// deadband on a quantised output).
+const STEP_MARGIN: f64 = 0.25;
+
+/// The step a running quantised setpoint keeps, if it keeps it: `current` while the
+/// continuous `demand` stays inside its deadband. Never while the site exports beyond
+/// its limit and the demand is above the step (`raise_now`): export there is taken at
+/// once.
+fn hold_step(current: f64, demand: f64, step: f64, raise_now: bool) -> Option<f64> {
+    if step <= 0.0 {
+        return None;
+    }
+    let low = current - STEP_MARGIN * step;
+    let high = if raise_now { current + step } else { current + (1.0 + STEP_MARGIN) * step };
+    (demand >= low && demand < high).then_some(current)
 }
 
 /// Rounds down to the resolution `step` (rounding down never over-absorbs into import).

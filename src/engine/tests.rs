@@ -476,6 +476,72 @@ fn a_proportional_load_starts_at_its_minimum_and_runs_on_down_to_half_of_it() {
     assert!(matches!(h.reason("immersion"), Reason::BelowMinimum { .. }), "{}", h.reason("immersion"));
 }
 
+/// A charger of 1 A steps at 230 V (230 W a step) under a steady surplus between two
+/// steps, the meter ±30 W of noise and a reading two ticks late. Returns how often its
+/// setpoint changed after the first three minutes (its start and the ramp to its step).
+fn charger_setpoint_changes(header: &str, surplus: impl Fn(usize) -> f64, ticks: usize) -> (usize, Harness) {
+    let loads = r#"
+  - name: car
+    kind: charger
+    voltage: 230V
+    min_current: 6A
+    max_current: 16A
+    step: 1A
+    setpoint: { device: relays, register: 300, scale: 0.1 }
+"#;
+    let mut h = Harness::new(&site(header, loads));
+    h.set("pv", 5000.0);
+    let mut grid = std::collections::VecDeque::from([-surplus(0); 2]);
+    let mut rng: u64 = 0x2545_f491_4f6c_dd1d;
+    let (mut changes, mut last) = (0, Command::Off);
+    for t in 0..ticks {
+        // xorshift: deterministic uniform noise of ±30 W on the meter.
+        rng ^= rng << 13;
+        rng ^= rng >> 7;
+        rng ^= rng << 17;
+        let noise = (rng % 61) as f64 - 30.0;
+        h.set("grid", grid.pop_front().unwrap_or_default() + noise);
+        let d = h.tick();
+        let c = d.loads[0].command;
+        if t >= 180 && c != last {
+            changes += 1;
+        }
+        last = c;
+        grid.push_back(-surplus(t) + c.power(&h.site.loads[0].kind).0);
+    }
+    (changes, h)
+}
+
+/// Steady surplus between two steps settles on one step: a setpoint write a few times
+/// an hour at most, not every few seconds (7 A ↔ 8 A every 2–4 s on a site before the
+/// deadband; 19 changes in this hour at 7.9 A).
+#[test]
+fn a_chargers_setpoint_settles_on_one_step_under_a_steady_surplus() {
+    // 7.5 steps' worth, and near each edge of a step.
+    for amps in [7.5, 7.9, 8.1, 7.2, 12.6] {
+        let (changes, h) = charger_setpoint_changes("  export: allowed\n  import_target: 50W", |_| amps * 230.0, 3780);
+        assert!(changes <= 2, "{amps} A of surplus: {changes} setpoint changes in an hour ({:?})", h.command("car"));
+    }
+}
+
+/// Where export is limited, export beyond the limit is still taken at once: the
+/// deadband never holds a charger a step low while the site exports past its limit.
+#[test]
+fn a_chargers_deadband_never_delays_taking_export_beyond_the_limit() {
+    // Settled at 7 A on 7.6 A of surplus (~140 W of export), then 62 W more at t = 120 s:
+    // 200 W of export at 7 A, past the limit of 150 W, while the demand (8.09 A with the
+    // 50 W import target) is inside the deadband above 7 A.
+    let surplus = |t: usize| if t < 120 { 7.6 * 230.0 } else { 7.6 * 230.0 + 62.0 };
+    let (_, h) = charger_setpoint_changes("  export: 150W\n  import_target: 50W", surplus, 118);
+    assert_eq!(h.command("car"), Command::Current(Current(7.0)));
+    let (_, h) = charger_setpoint_changes("  export: 150W\n  import_target: 50W", surplus, 124);
+    assert!(
+        matches!(h.command("car"), Command::Current(a) if a.0 >= 8.0),
+        "the reading after the rise (two ticks late) must step it up: {:?}",
+        h.command("car")
+    );
+}
+
 #[test]
 fn a_charger_never_charges_below_its_minimum_current() {
     let loads = r#"
