@@ -1798,6 +1798,21 @@ fn a_charger_held_at_its_minimum_by_min_on_says_so() {
     assert!(reason.to_string().starts_with("held at its minimum, 1.38 kW: "), "{reason}");
 }
 
+/// Countdowns in reasons read to the whole second, in one form, and shares to the watt.
+#[test]
+fn reasons_count_down_in_whole_seconds() {
+    let left = Duration::from_millis(190_001);
+    assert_eq!(Reason::MinOn { left }.to_string(), "held on: minimum on-time (3 min 11 s left)");
+    assert_eq!(Reason::MinOff { left: secs(179) }.to_string(), "held off: minimum off-time (2 min 59 s left)");
+    assert_eq!(
+        Reason::Recovering { left: Duration::from_millis(29_200) }.to_string(),
+        "held in safe state after signals returned (30 s left)"
+    );
+    // The share available, to the watt.
+    let paused = Reason::BelowMinimum { available: Power(288.08), minimum: Power(300.0) };
+    assert_eq!(paused.to_string(), "paused: 288 W available, needs 300 W");
+}
+
 /// An automation toggling a pump's override every few seconds cannot chatter it: `off`
 /// is obeyed at once, `on` waits out `min_off` and the starts cap, and then takes effect.
 #[test]
