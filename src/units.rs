@@ -156,6 +156,11 @@ fn format_quantity(f: &mut fmt::Formatter<'_>, value: f64, dimension: Dimension)
         Dimension::Duration if value != 0.0 && value % 3600.0 == 0.0 => (value / 3600.0, "h"),
         Dimension::Duration if value != 0.0 && value % 60.0 == 0.0 => (value / 60.0, "min"),
         Dimension::Duration if value != 0.0 && value.abs() < 1.0 => (value * 1e3, "ms"),
+        // Whole seconds past a minute: minutes and seconds, so a countdown does not turn
+        // from `3 min` into `179 s`.
+        Dimension::Duration if value > 60.0 && value.fract() == 0.0 => {
+            return write!(f, "{} min {} s", (value / 60.0).floor(), value % 60.0);
+        }
         other => (value, other.base_unit()),
     };
     let text = trim_number(scaled);
@@ -388,9 +393,18 @@ impl fmt::Display for Timestamp {
     }
 }
 
-/// Writes a duration the way a person reads it: `90 s` → `1.5 min`, `7200 s` → `2 h`.
+/// Writes a duration the way a person reads it: `7200 s` → `2 h`, `300 s` → `5 min`,
+/// `179 s` → `2 min 59 s`, `0.25 s` → `250 ms`.
 pub fn format_duration(d: Duration) -> String {
     Quantity::new(d.as_secs_f64(), Dimension::Duration).to_string()
+}
+
+/// [`format_duration`] of a countdown or a time held, to the whole second (up to the
+/// next one, so a hold still running never reads `0 s left`): reasons change every tick,
+/// and `190.001 s left` is noise to a person.
+pub fn format_whole_seconds(d: Duration) -> String {
+    let secs = d.as_secs() + u64::from(d.subsec_nanos() > 0);
+    format_duration(Duration::from_secs(secs))
 }
 
 #[cfg(test)]
@@ -401,6 +415,24 @@ mod tests {
         let q = parse_quantity(text).unwrap();
         assert_eq!(q.dimension, dimension, "{text}");
         assert!((q.value - value).abs() < 1e-9, "{text}: {} != {value}", q.value);
+    }
+
+    /// Reasons read durations to the whole second, in one form: a countdown once went
+    /// from `(3 min left)` to `(179 s left)`, and printed `190.001 s left`.
+    #[test]
+    fn durations_are_written_in_one_form_and_countdowns_to_the_whole_second() {
+        let s = Duration::from_secs;
+        assert_eq!(format_duration(s(180)), "3 min");
+        assert_eq!(format_duration(s(179)), "2 min 59 s");
+        assert_eq!(format_duration(s(59)), "59 s");
+        assert_eq!(format_duration(s(5400)), "90 min");
+        assert_eq!(format_duration(s(7200)), "2 h");
+        assert_eq!(format_duration(Duration::from_millis(250)), "250 ms");
+        assert_eq!(format_duration(Duration::from_millis(1500)), "1.5 s");
+        assert_eq!(format_whole_seconds(Duration::from_millis(190_001)), "3 min 11 s");
+        assert_eq!(format_whole_seconds(Duration::from_millis(179_400)), "3 min");
+        assert_eq!(format_whole_seconds(Duration::from_millis(200)), "1 s");
+        assert_eq!(format_whole_seconds(Duration::ZERO), "0 s");
     }
 
     #[test]

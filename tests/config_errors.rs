@@ -253,7 +253,7 @@ loads: []
     ));
     let shown = spillway::diag::render("slow.yaml", yaml, &loaded.warnings, false);
     assert!(shown.contains("[C0263] Warning: slower than 5 s"), "{shown}");
-    assert!(shown.contains("a lost grid meter is noticed after 3601 s"), "{shown}");
+    assert!(shown.contains("a lost grid meter is noticed after 60 min 1 s"), "{shown}");
     assert!(shown.contains("escalated to the safe limit after 1 h"), "{shown}");
     // The defaults are inside the 5 s.
     let quick = spillway::config::load_str(

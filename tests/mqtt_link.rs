@@ -329,7 +329,10 @@ async fn override_requests_are_parsed_and_bad_ones_ignored() {
     let request = b.override_request().await;
     assert_eq!(
         request,
-        OverrideRequest { load: pump, action: OverrideAction::Set { command: Command::On, until: min(30) } }
+        OverrideRequest {
+            load: pump,
+            action: OverrideAction::Set { command: Command::On, until: min(30), adjusted: None }
+        }
     );
     // Logged as a person reads it, in the site's time: T0 is 20:26:40 UTC, 21:26:40 in
     // Lisbon. (Checked on the text the log line carries, not on a captured log: a
@@ -337,11 +340,14 @@ async fn override_requests_are_parsed_and_bad_ones_ignored() {
     // can miss a capture, and did once in CI.)
     assert_eq!(request.action.describe(b.site.timezone, t), "on until 21:56:40 WEST");
     b.broker.publish("bench/site/override/pump", r#"{"command": "off", "for": "2h"}"#, false);
-    assert_eq!(b.override_request().await.action, OverrideAction::Set { command: Command::Off, until: min(120) });
+    assert_eq!(
+        b.override_request().await.action,
+        OverrideAction::Set { command: Command::Off, until: min(120), adjusted: None }
+    );
     b.broker.publish("bench/site/override/pump", "OFF", false);
     assert_eq!(
         b.override_request().await.action,
-        OverrideAction::Set { command: Command::Off, until: min(60) },
+        OverrideAction::Set { command: Command::Off, until: min(60), adjusted: None },
         "one hour when the payload does not say"
     );
     b.broker.publish("bench/site/override/dimmer", r#"{"command": "on", "level": "60%", "for": "45min"}"#, false);
@@ -349,7 +355,7 @@ async fn override_requests_are_parsed_and_bad_ones_ignored() {
         b.override_request().await,
         OverrideRequest {
             load: dimmer,
-            action: OverrideAction::Set { command: Command::Setpoint(Ratio(60.0)), until: min(45) }
+            action: OverrideAction::Set { command: Command::Setpoint(Ratio(60.0)), until: min(45), adjusted: None }
         }
     );
     b.broker.publish("bench/site/override/pump", "auto", false);
@@ -416,7 +422,10 @@ async fn home_assistant_discovery_is_retained_and_a_button_press_is_an_override(
     b.broker.publish(boost["command_topic"].as_str().unwrap(), boost["payload_press"].as_str().unwrap(), false);
     let r = b.override_request().await;
     assert_eq!(r.load, b.site.load("pump").unwrap().0);
-    assert_eq!(r.action, OverrideAction::Set { command: Command::On, until: t.plus(Duration::from_secs(7200)) });
+    assert_eq!(
+        r.action,
+        OverrideAction::Set { command: Command::On, until: t.plus(Duration::from_secs(7200)), adjusted: None }
+    );
     b.cancel.cancel();
     (&mut b.task).await.unwrap();
 }

@@ -589,7 +589,7 @@ impl Control {
                 self.summary.overrides += 1;
                 let name = self.site.loads.get(req.load.0).map_or("?", |l| l.name.as_str()).to_owned();
                 match req.action {
-                    OverrideAction::Set { command, until } => {
+                    OverrideAction::Set { command, until, .. } => {
                         info!(load = %name, command = %command, %until, "override set");
                         self.engine.set_override(req.load, command, until);
                     }

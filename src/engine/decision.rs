@@ -5,7 +5,7 @@ use std::fmt;
 use std::time::Duration;
 
 use crate::config::model::{LoadId, LoadKind};
-use crate::units::{Current, Power, Ratio, Timestamp, format_duration};
+use crate::units::{Current, Power, Ratio, Timestamp, format_whole_seconds};
 
 /// A command for one load.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -135,6 +135,16 @@ pub enum Reason {
         /// Power it needs to run at all.
         minimum: Power,
     },
+    /// A modulating load kept at its minimum with less than that available: a running
+    /// charger until its stop rule ends the session (or from the grid with
+    /// `below_min: hold`), a proportional load inside its band. The minimum on-time,
+    /// where it is what holds the load, is [`Reason::MinOn`] instead.
+    AtMinimum {
+        /// Power it could have.
+        available: Power,
+        /// Power it draws at its minimum.
+        minimum: Power,
+    },
     /// A battery at its upper state-of-charge limit.
     Full,
     /// A battery discharging to cover the house's own import.
@@ -171,6 +181,7 @@ impl Reason {
             Reason::Settling => "settling",
             Reason::Following { .. } => "following_surplus",
             Reason::BelowMinimum { .. } => "below_minimum",
+            Reason::AtMinimum { .. } => "at_minimum",
             Reason::Full => "full",
             Reason::CoveringHouse { .. } => "covering_house",
             Reason::KeepingForDuty { .. } => "keeping_for_duty",
@@ -272,13 +283,19 @@ pub struct Decisions {
     pub switchings: Vec<Switching>,
 }
 
+/// A share of the controller's total to the watt: it is a controller's output, and
+/// `288.08 W available` reads as more precise than any meter behind it.
+fn whole_watts(p: Power) -> Power {
+    Power(p.0.round())
+}
+
 impl fmt::Display for Reason {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
             Reason::SignalLost { point } => write!(f, "safe state: signal #{point} is stale"),
             Reason::Failsafe => f.write_str("safe state: a guard signal is lost (stale, missing or frozen)"),
             Reason::Recovering { left } => {
-                write!(f, "held in safe state after signals returned ({} left)", format_duration(*left))
+                write!(f, "held in safe state after signals returned ({} left)", format_whole_seconds(*left))
             }
             Reason::Inhibited => f.write_str("off: inhibit rule is true"),
             Reason::Shed => f.write_str("off: shed during a grid outage"),
@@ -290,13 +307,16 @@ impl fmt::Display for Reason {
             Reason::Stopped => f.write_str("stopped: stop rule is true"),
             Reason::Running => f.write_str("on: stop rule not true"),
             Reason::Waiting => f.write_str("off: start rule not true"),
-            Reason::MinOn { left } => write!(f, "held on: minimum on-time ({} left)", format_duration(*left)),
-            Reason::MinOff { left } => write!(f, "held off: minimum off-time ({} left)", format_duration(*left)),
+            Reason::MinOn { left } => write!(f, "held on: minimum on-time ({} left)", format_whole_seconds(*left)),
+            Reason::MinOff { left } => write!(f, "held off: minimum off-time ({} left)", format_whole_seconds(*left)),
             Reason::StartsCapped { cap } => write!(f, "held off: {cap} starts in the last hour"),
             Reason::Settling => f.write_str("held: settling after signals returned"),
             Reason::Following { power } => write!(f, "following the surplus at {power}"),
             Reason::BelowMinimum { available, minimum } => {
-                write!(f, "paused: {available} available, needs {minimum}")
+                write!(f, "paused: {} available, needs {minimum}", whole_watts(*available))
+            }
+            Reason::AtMinimum { available, minimum } => {
+                write!(f, "held at its minimum, {minimum}: {} available", whole_watts(*available))
             }
             Reason::Full => f.write_str("off: at its upper state of charge"),
             Reason::CoveringHouse { power } => write!(f, "discharging {power} to cover the house's own import"),

@@ -85,6 +85,9 @@ struct LoadState {
     switched_because: Option<String>,
     /// Batteries: reached the upper state of charge, waiting for the resume level.
     full: bool,
+    /// Modulating loads: what the last command draws beyond the controller's share (a
+    /// minimum held inside its band), which the site imports on purpose.
+    held: Power,
     /// Batteries allowed to discharge: their cover of the house's own import.
     /// (Boxed: most loads have none, and the tick walks these states.)
     cover: Option<Box<discharge::Cover>>,
@@ -163,6 +166,7 @@ impl Engine {
                 stage_changed_at: Timestamp::NEVER,
                 switched_because: None,
                 full: false,
+                held: Power::ZERO,
                 cover: matches!(l.kind, LoadKind::Battery { discharge: Some(_), .. }).then(Box::default),
                 settled: true,
                 override_: None,
@@ -560,7 +564,12 @@ impl Engine {
                     .map(|(_, s)| s.power)
                     .sum();
                 let cap: Power = site.loads.iter().filter(|l| l.kind.is_modulating()).map(|l| l.kind.max_power()).sum();
-                let u = self.pi.update(pi_target - g, modulating_now, cap, dt);
+                // Import that loads held at their minimum cause on purpose is not an error
+                // to wind the total down by: with it counted, the total keeps measuring the
+                // power the loads could have, so a load inside its band pauses when that
+                // falls below the band, not whenever the import has lasted a few seconds.
+                let held: Power = self.loads.iter().map(|s| s.held).sum();
+                let u = self.pi.update(pi_target - g + held, modulating_now, cap, dt);
                 // Export beyond the limit: the loads take all they can at once (the guard
                 // curtails only the rest), rather than ramping while export persists.
                 match site.export_limit() {
@@ -578,6 +587,8 @@ impl Engine {
                 Power::ZERO
             }
         };
+        // Export beyond the limit now: no deadband delays a load taking more of it.
+        let over_limit = matches!((site.export_limit(), grid), (Some(limit), Some(g)) if -g > limit);
         self.reserved_lower(now);
         let site = &*self.site;
         let reserved = std::mem::take(&mut self.reserved);
@@ -604,6 +615,7 @@ impl Engine {
                 self.recovered_at,
                 self.outage_since,
                 clock_change,
+                over_limit,
             );
             absorbable += headroom;
             let st = &mut self.loads[i];
@@ -1037,8 +1049,11 @@ fn decide(
     recovered_at: Option<Timestamp>,
     outage_since: Option<Timestamp>,
     clock_change: Option<(u32, i32)>,
+    over_limit: bool,
 ) -> (Command, Reason, Power) {
     let l = &site.loads[i];
+    // Set again by `modulate` for a load it keeps above its share this tick.
+    st.held = Power::ZERO;
     // Rules are evaluated every tick so that held-for timers and windows stay current.
     // Only the rule that can act is evaluated: the start rule while off, the stop rule
     // while on. The other one's state is reset whenever the load switches, so skipping
@@ -1177,7 +1192,12 @@ fn decide(
             let stage = step_stage(stages, st, surplus, now);
             (Command::Stage(stage), if is_on { Reason::Running } else { Reason::Started }, Power::ZERO)
         }
-        (kind, Ok(enabled)) => modulate(kind, st, enabled, input, u_total, is_on),
+        (kind, Ok(enabled)) => {
+            // What holds a running load at its minimum, when the share does not: the
+            // minimum on-time while it lasts (worded as for a switched load).
+            let min_on_left = if is_on { time_left(now, st.changed_at, l.min_on) } else { None };
+            modulate(kind, st, enabled, input, u_total, Running { is_on, min_on_left, over_limit })
+        }
     }
 }
 
@@ -1255,6 +1275,17 @@ fn step_stage(stages: &[crate::units::Power], st: &mut LoadState, surplus: Optio
     }
 }
 
+/// Where a modulating load stands, beyond its share, when it is decided.
+#[derive(Debug, Clone, Copy)]
+struct Running {
+    /// It is on.
+    is_on: bool,
+    /// What is left of its minimum on-time, while on.
+    min_on_left: Option<Duration>,
+    /// The site exports beyond its limit now.
+    over_limit: bool,
+}
+
 /// Proportional loads, chargers and batteries take their share of the PI controller's
 /// total in priority order. Returns the command, reason and remaining headroom.
 fn modulate(
@@ -1263,8 +1294,14 @@ fn modulate(
     enabled: bool,
     input: &EvalInput<'_>,
     u_total: &mut Power,
-    is_on: bool,
+    at: Running,
 ) -> (Command, Reason, Power) {
+    let Running { is_on, min_on_left, over_limit } = at;
+    // Why a load draws its minimum although its share is less.
+    let held = |available: Power, minimum: Power| match min_on_left {
+        Some(left) => Reason::MinOn { left },
+        None => Reason::AtMinimum { available, minimum },
+    };
     let max = kind.max_power();
     if !enabled {
         return (Command::Off, if is_on { Reason::Stopped } else { Reason::Waiting }, Power::ZERO);
@@ -1285,22 +1322,34 @@ fn modulate(
     let (command, drawn, reason) = match kind {
         LoadKind::Proportional { rated, min, step, .. } => {
             let pct = quantize(share.0 / rated.0 * 100.0, step.0).min(100.0);
-            if pct < min.0.max(f64::EPSILON) {
-                (
-                    Command::Off,
-                    Power::ZERO,
-                    Reason::BelowMinimum { available: share, minimum: *rated * (min.0 / 100.0) },
-                )
-            } else {
+            // The lowest setpoint it runs at: its `min`, else one step.
+            let lowest = if min.0 > 0.0 { min.0 } else { step.0 }.max(f64::EPSILON);
+            let minimum = *rated * (lowest / 100.0);
+            if pct >= lowest {
                 (
                     Command::Setpoint(Ratio(pct)),
                     *rated * (pct / 100.0),
                     Reason::Following { power: *rated * (pct / 100.0) },
                 )
+            } else if is_on && share >= run_floor(minimum, true) && lowest > f64::EPSILON {
+                // Inside its band: it cannot run below its minimum, so it stays there,
+                // importing at most half of it, rather than pause on every dip.
+                (Command::Setpoint(Ratio(lowest)), minimum, held(share, minimum))
+            } else {
+                (Command::Off, Power::ZERO, Reason::BelowMinimum { available: share, minimum })
             }
         }
         LoadKind::Charger { watts_per_amp, min, max: max_a, step, hold_min_from_grid, .. } => {
-            let amps = quantize(share.0 / watts_per_amp, step.0).min(max_a.0);
+            let demand = share.0 / watts_per_amp;
+            let amps = match st.command {
+                // Running: a step is taken only once the demand has passed it by a margin,
+                // except upwards while the site exports beyond its limit.
+                Command::Current(now) if now.0 >= min.0 => {
+                    hold_step(now.0, demand, step.0, over_limit).unwrap_or_else(|| quantize(demand, step.0))
+                }
+                _ => quantize(demand, step.0),
+            }
+            .min(max_a.0);
             let min_power = Power(min.0 * watts_per_amp);
             if amps >= min.0 {
                 (
@@ -1311,7 +1360,7 @@ fn modulate(
             } else if is_on || *hold_min_from_grid {
                 // Running chargers hold their minimum until the stop rule ends the session,
                 // so a passing cloud does not cycle the contactor.
-                (Command::Current(*min), min_power, Reason::Following { power: min_power })
+                (Command::Current(*min), min_power, held(share, min_power))
             } else {
                 (Command::Off, Power::ZERO, Reason::BelowMinimum { available: share, minimum: min_power })
             }
@@ -1321,7 +1370,7 @@ fn modulate(
             // Start at the minimum, go on down to half of it: around zero surplus the
             // share follows the meter's noise, and a setpoint of a few watts toggled the
             // battery on and off every few seconds.
-            let floor = if is_on { *min_charge * 0.5 } else { *min_charge };
+            let floor = run_floor(*min_charge, is_on);
             if p.0 < 1.0 {
                 (Command::Charge(Power::ZERO), Power::ZERO, Reason::Following { power: Power::ZERO })
             } else if p < floor {
@@ -1333,10 +1382,45 @@ fn modulate(
         LoadKind::Switched { .. } | LoadKind::Stepped { .. } => (Command::Off, Power::ZERO, Reason::Waiting),
     };
     // What was taken beyond the share (a held minimum) is not left for others.
+    st.held = (drawn - share).max(Power::ZERO);
     if drawn > share {
         *u_total = (*u_total - (drawn - share)).max(Power::ZERO);
     }
     (command, reason, (max - drawn).max(Power::ZERO))
+}
+
+/// What share of its minimum a running modulating load goes on down to before it
+/// pauses: it starts at its minimum and runs on down to half of it, so meter noise
+/// around the minimum does not pause and start it every few seconds (`common practice`:
+/// hysteresis; the half was first the battery's, whose inverter regulates down there).
+const RUN_BAND: f64 = 0.5;
+
+/// The least share a modulating load with minimum `minimum` runs on: the minimum to
+/// start, [`RUN_BAND`] of it once running.
+fn run_floor(minimum: Power, is_on: bool) -> Power {
+    if is_on { minimum * RUN_BAND } else { minimum }
+}
+
+/// How far past a step, in steps, the demand of a running charger must go before it
+/// moves off its current step: it holds step `c` while the demand stays within
+/// `c − STEP_MARGIN … c + 1 + STEP_MARGIN` steps, ±(½ + `STEP_MARGIN`) of a step around
+/// the middle of the step. A 1 A step of a 230 V charger is 230 W, too coarse to hold a
+/// 50 W import target: without the margin it hunted between two steps every few
+/// seconds in a steady surplus, each change a setpoint write (`common practice`:
+/// deadband on a quantised output).
+const STEP_MARGIN: f64 = 0.25;
+
+/// The step a running quantised setpoint keeps, if it keeps it: `current` while the
+/// continuous `demand` stays inside its deadband. Never while the site exports beyond
+/// its limit and the demand is above the step (`raise_now`): export there is taken at
+/// once.
+fn hold_step(current: f64, demand: f64, step: f64, raise_now: bool) -> Option<f64> {
+    if step <= 0.0 {
+        return None;
+    }
+    let low = current - STEP_MARGIN * step;
+    let high = if raise_now { current + step } else { current + (1.0 + STEP_MARGIN) * step };
+    (demand >= low && demand < high).then_some(current)
 }
 
 /// Rounds down to the resolution `step` (rounding down never over-absorbs into import).

@@ -412,6 +412,136 @@ fn a_proportional_load_holds_the_grid_at_the_import_target() {
     assert_eq!(h.engine.decisions().inverter_limit, None, "the load absorbed it: no curtailment");
 }
 
+/// A proportional load with a minimum (10 % of 3 kW: 300 W) under a surplus hovering at
+/// that minimum, with meter noise and a reading one tick late: it starts once the power
+/// it could have reaches its minimum and pauses only below half of it, as a battery
+/// does. Without the band it paused and started with the noise (probe3: 1562 switchings
+/// in a June week, up to 74 starts an hour). Returns the starts in an hour and the
+/// highest import seen while it ran.
+fn proportional_at_its_minimum(surplus: f64) -> (usize, f64, Harness) {
+    let loads = r#"
+  - name: immersion
+    kind: proportional
+    rated: 3kW
+    min: 10%
+    step: 1%
+    setpoint: { device: relays, register: 200 }
+"#;
+    let mut h = Harness::new(&site("  export: allowed\n  import_target: 50W", loads));
+    let mut last_grid = -surplus;
+    let mut rng: u64 = 0x9e37_79b9_7f4a_7c15;
+    let (mut starts, mut was_on, mut worst_import) = (0, false, f64::MIN);
+    for _ in 0..3600 {
+        // xorshift: deterministic uniform noise of ±30 W on the meter.
+        rng ^= rng << 13;
+        rng ^= rng >> 7;
+        rng ^= rng << 17;
+        let noise = (rng % 61) as f64 - 30.0;
+        h.set("grid", last_grid + noise);
+        let d = h.tick();
+        let on = d.loads[0].command.is_on();
+        starts += usize::from(on && !was_on);
+        was_on = on;
+        let drawn = d.loads[0].command.power(&h.site.loads[0].kind).0;
+        last_grid = -surplus + drawn;
+        if on {
+            worst_import = worst_import.max(last_grid);
+        }
+    }
+    (starts, worst_import, h)
+}
+
+#[test]
+fn a_proportional_load_starts_at_its_minimum_and_runs_on_down_to_half_of_it() {
+    // The power it could have (surplus + the 50 W import target) at its minimum, 300 W.
+    let (starts, worst_import, h) = proportional_at_its_minimum(250.0);
+    assert!(starts <= 2, "{starts} starts in an hour at its minimum");
+    assert!(worst_import <= 50.0 + 150.0 + 30.0, "imports at most half its minimum beyond the target: {worst_import}");
+    assert!(
+        matches!(h.reason("immersion"), Reason::Following { .. } | Reason::AtMinimum { .. }),
+        "{}",
+        h.reason("immersion")
+    );
+    // Inside the band (200 W could be had): held at its minimum, and the reason says so.
+    let (starts, _, h) = proportional_at_its_minimum(150.0);
+    assert!(starts <= 2, "{starts}");
+    if h.command("immersion").is_on() {
+        assert_eq!(h.command("immersion"), Command::Setpoint(Ratio(10.0)));
+        assert!(matches!(h.reason("immersion"), Reason::AtMinimum { .. }), "{}", h.reason("immersion"));
+    }
+    // Below the band (100 W could be had): paused, whatever the noise.
+    let (starts, _, h) = proportional_at_its_minimum(50.0);
+    assert_eq!(starts, 0);
+    assert_eq!(h.command("immersion"), Command::Off);
+    assert!(matches!(h.reason("immersion"), Reason::BelowMinimum { .. }), "{}", h.reason("immersion"));
+}
+
+/// A charger of 1 A steps at 230 V (230 W a step) under a steady surplus between two
+/// steps, the meter ±30 W of noise and a reading two ticks late. Returns how often its
+/// setpoint changed after the first three minutes (its start and the ramp to its step).
+fn charger_setpoint_changes(header: &str, surplus: impl Fn(usize) -> f64, ticks: usize) -> (usize, Harness) {
+    let loads = r#"
+  - name: car
+    kind: charger
+    voltage: 230V
+    min_current: 6A
+    max_current: 16A
+    step: 1A
+    setpoint: { device: relays, register: 300, scale: 0.1 }
+"#;
+    let mut h = Harness::new(&site(header, loads));
+    h.set("pv", 5000.0);
+    let mut grid = std::collections::VecDeque::from([-surplus(0); 2]);
+    let mut rng: u64 = 0x2545_f491_4f6c_dd1d;
+    let (mut changes, mut last) = (0, Command::Off);
+    for t in 0..ticks {
+        // xorshift: deterministic uniform noise of ±30 W on the meter.
+        rng ^= rng << 13;
+        rng ^= rng >> 7;
+        rng ^= rng << 17;
+        let noise = (rng % 61) as f64 - 30.0;
+        h.set("grid", grid.pop_front().unwrap_or_default() + noise);
+        let d = h.tick();
+        let c = d.loads[0].command;
+        if t >= 180 && c != last {
+            changes += 1;
+        }
+        last = c;
+        grid.push_back(-surplus(t) + c.power(&h.site.loads[0].kind).0);
+    }
+    (changes, h)
+}
+
+/// Steady surplus between two steps settles on one step: a setpoint write a few times
+/// an hour at most, not every few seconds (7 A ↔ 8 A every 2–4 s on a site before the
+/// deadband; 19 changes in this hour at 7.9 A).
+#[test]
+fn a_chargers_setpoint_settles_on_one_step_under_a_steady_surplus() {
+    // 7.5 steps' worth, and near each edge of a step.
+    for amps in [7.5, 7.9, 8.1, 7.2, 12.6] {
+        let (changes, h) = charger_setpoint_changes("  export: allowed\n  import_target: 50W", |_| amps * 230.0, 3780);
+        assert!(changes <= 2, "{amps} A of surplus: {changes} setpoint changes in an hour ({:?})", h.command("car"));
+    }
+}
+
+/// Where export is limited, export beyond the limit is still taken at once: the
+/// deadband never holds a charger a step low while the site exports past its limit.
+#[test]
+fn a_chargers_deadband_never_delays_taking_export_beyond_the_limit() {
+    // Settled at 7 A on 7.6 A of surplus (~140 W of export), then 62 W more at t = 120 s:
+    // 200 W of export at 7 A, past the limit of 150 W, while the demand (8.09 A with the
+    // 50 W import target) is inside the deadband above 7 A.
+    let surplus = |t: usize| if t < 120 { 7.6 * 230.0 } else { 7.6 * 230.0 + 62.0 };
+    let (_, h) = charger_setpoint_changes("  export: 150W\n  import_target: 50W", surplus, 118);
+    assert_eq!(h.command("car"), Command::Current(Current(7.0)));
+    let (_, h) = charger_setpoint_changes("  export: 150W\n  import_target: 50W", surplus, 124);
+    assert!(
+        matches!(h.command("car"), Command::Current(a) if a.0 >= 8.0),
+        "the reading after the rise (two ticks late) must step it up: {:?}",
+        h.command("car")
+    );
+}
+
 #[test]
 fn a_charger_never_charges_below_its_minimum_current() {
     let loads = r#"
@@ -1612,6 +1742,75 @@ fn an_override_expires_by_itself_and_never_defeats_the_inhibit_rule() {
     h.run(secs(600));
     assert_eq!(h.command("tank"), Command::Off, "expired");
     assert_eq!(h.engine.override_of(LoadId(0)), None);
+}
+
+/// A charger an override started, back on its rules while the site imports: what holds
+/// it at its minimum current is its minimum on-time, and its reason says so in the words
+/// a switched load's does. It once said "following the surplus at 1.38 kW" while the
+/// site imported 1 kW.
+#[test]
+fn a_charger_held_at_its_minimum_by_min_on_says_so() {
+    let loads = r#"
+  - name: car
+    kind: charger
+    voltage: 230V
+    min_current: 6A
+    max_current: 16A
+    setpoint: { device: relays, register: 300, scale: 0.1 }
+    start: surplus > 1.5kW for 1min
+    stop: surplus < 1kW for 3min
+    min_on: 10min
+    min_off: 5min
+"#;
+    let mut h = Harness::new(&site("  export: allowed", loads));
+    h.set("grid", 0.0);
+    h.tick();
+    h.engine.set_override(LoadId(0), Command::Current(Current(6.0)), h.now.plus(secs(3600)));
+    h.run(secs(60));
+    assert_eq!(h.command("car"), Command::Current(Current(6.0)));
+    h.engine.clear_override(LoadId(0));
+    // The car draws 1.38 kW and the site imports 1 kW of it.
+    h.set("grid", 1000.0);
+    for _ in 0..8 * 60 {
+        h.tick();
+        assert_eq!(h.command("car"), Command::Current(Current(6.0)));
+        let reason = h.reason("car");
+        assert!(matches!(reason, Reason::MinOn { .. }), "{reason}");
+        assert!(reason.to_string().starts_with("held on: minimum on-time ("), "{reason}");
+    }
+    // Past its minimum on-time, with the stop rule long true, it stops.
+    h.run(secs(120));
+    assert_eq!(h.command("car"), Command::Off, "{}", h.reason("car"));
+
+    // Without a minimum on-time, what holds it is the session (the stop rule not yet
+    // true), and the reason says that, not "following".
+    let mut h = Harness::new(&site("  export: allowed", &loads.replace("    min_on: 10min\n", "")));
+    h.set("grid", 0.0);
+    h.tick();
+    h.engine.set_override(LoadId(0), Command::Current(Current(6.0)), h.now.plus(secs(3600)));
+    h.run(secs(60));
+    h.engine.clear_override(LoadId(0));
+    h.set("grid", 1000.0);
+    h.run(secs(60));
+    let reason = h.reason("car");
+    assert_eq!(h.command("car"), Command::Current(Current(6.0)));
+    assert!(matches!(reason, Reason::AtMinimum { .. }), "{reason}");
+    assert!(reason.to_string().starts_with("held at its minimum, 1.38 kW: "), "{reason}");
+}
+
+/// Countdowns in reasons read to the whole second, in one form, and shares to the watt.
+#[test]
+fn reasons_count_down_in_whole_seconds() {
+    let left = Duration::from_millis(190_001);
+    assert_eq!(Reason::MinOn { left }.to_string(), "held on: minimum on-time (3 min 11 s left)");
+    assert_eq!(Reason::MinOff { left: secs(179) }.to_string(), "held off: minimum off-time (2 min 59 s left)");
+    assert_eq!(
+        Reason::Recovering { left: Duration::from_millis(29_200) }.to_string(),
+        "held in safe state after signals returned (30 s left)"
+    );
+    // The share available, to the watt.
+    let paused = Reason::BelowMinimum { available: Power(288.08), minimum: Power(300.0) };
+    assert_eq!(paused.to_string(), "paused: 288 W available, needs 300 W");
 }
 
 /// An automation toggling a pump's override every few seconds cannot chatter it: `off`

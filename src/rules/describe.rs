@@ -268,7 +268,7 @@ impl Explainer<'_> {
                     out,
                     "{} held {} of {}",
                     self.grouped(input),
-                    format::duration_ms(held),
+                    format::whole_seconds_ms(held),
                     format::duration_ms(ms)
                 );
             }
@@ -317,7 +317,7 @@ impl Explainer<'_> {
                 return format!(
                     "{} is unknown: {} of {} of history so far",
                     describe(p, i),
-                    format::duration_ms(have),
+                    format::whole_seconds_ms(have),
                     format::duration_ms(ms)
                 );
             }

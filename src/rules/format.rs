@@ -104,6 +104,12 @@ pub(crate) fn duration_ms(ms: i64) -> String {
     units::format_duration(std::time::Duration::from_millis(u64::try_from(ms).unwrap_or(0)))
 }
 
+/// A time held or gathered so far, in milliseconds, to the whole second.
+pub(crate) fn whole_seconds_ms(ms: i64) -> String {
+    let secs = u64::try_from(ms.saturating_add(500) / 1000).unwrap_or(0);
+    units::format_duration(std::time::Duration::from_secs(secs))
+}
+
 /// A duration in milliseconds as an exact literal.
 pub(crate) fn duration_literal(ms: i64) -> String {
     // Durations are stored in whole milliseconds, exact in f64 far beyond any window.

@@ -23,7 +23,7 @@ mod analysis;
 mod check;
 mod describe;
 mod diagnostic;
-mod format;
+pub(crate) mod format;
 mod lexer;
 mod parser;
 mod program;

@@ -340,6 +340,9 @@ fn explain_says_why_with_current_values() {
     r.at(1.0);
     r.at(13.0);
     assert_eq!(r.explain(), "surplus > 3.2 kW held 12 s of 30 s");
+    // To the whole second: once "held 30.999 s of 1 min".
+    r.at(26.999);
+    assert_eq!(r.explain(), "surplus > 3.2 kW held 26 s of 30 s");
     r.at(40.0);
     assert_eq!(r.explain(), "surplus > 3.2 kW held 39 s of 30 s and tank_temp 50 °C < 58 °C");
     r.set("tank_temp", NAN);

@@ -59,7 +59,10 @@ pub fn documents(site: &Site, mqtt: &MqttSettings, d: &Discovery) -> Vec<Discove
         out.push(DiscoveryDoc { topic: format!("{}/{component}/{object}/config", d.prefix), payload: doc.to_string() });
     };
     let boost = format_duration(d.boost);
-    let spoken = boost.replace(' ', "");
+    // The payload must read back as a duration: an exact literal (`150s`), never a
+    // person's `2 min 30 s`.
+    let ms = i64::try_from(d.boost.as_millis()).unwrap_or(i64::MAX);
+    let spoken = crate::rules::format::duration_literal(ms).replace(' ', "");
     for load in &site.loads {
         let l = object_id(&load.name);
         let state = format!("{}/state/{}", mqtt.topic_prefix, load.name);
@@ -250,6 +253,16 @@ loads:
             assert!(action.is_ok(), "{payload}: {action:?}");
         }
         assert!(presses.iter().any(|(_, p)| p == "on 90min"), "{presses:?}");
+        // A boost a person reads as minutes and seconds is still sent as one duration.
+        let s = site(", discovery: { prefix: ha, boost: 150s }");
+        let mqtt = s.mqtt.as_ref().unwrap();
+        let docs = documents(&s, mqtt, mqtt.discovery.as_ref().unwrap());
+        let press = docs.iter().find(|d| d.topic.ends_with("_boost/config")).unwrap();
+        let v: Value = serde_json::from_str(&press.payload).unwrap();
+        assert_eq!(v["payload_press"], "on 150s");
+        assert!(v["name"].as_str().unwrap().ends_with("boost 2 min 30 s"), "{}", v["name"]);
+        let load = s.loads.first().unwrap();
+        assert!(super::super::payload::parse_override(load, b"on 150s", now).is_ok());
     }
 
     #[test]

@@ -9,8 +9,11 @@
 //! - plain words: `on`, `off` or `auto`, optionally followed by a duration
 //!   (`on 30min`, `off 2h`); without one an override lasts one hour;
 //! - JSON: `{"command": "on", "for": "30min"}`, `{"command": "off"}`,
-//!   `{"command": "auto"}`; for a stepped load `"stage": 2`, for a modulating load
-//!   `"level": "60%"` (proportional), `"16A"` (charger) or `"1.5kW"` (battery).
+//!   `{"command": "auto"}`; with a `"level"` in the one form each kind takes: a
+//!   percentage for a proportional load (`"60%"`), a current for a charger (`"16A"`), a
+//!   power for a battery (`"1.5kW"`) or a stepped load (`"2kW"`: the highest stage at or
+//!   below it; or `"stage": 2`). A switched load takes no level. A level outside the
+//!   load's range is brought into it, and the request says so when it is logged.
 //!
 //! `auto` removes the override. An override never lasts more than 24 hours (a
 //! forgotten boost must not run for a week) and never defeats a safety guard (the
@@ -22,7 +25,7 @@ use serde_json::Value;
 
 use crate::config::model::{Load, LoadId, LoadKind, Payload};
 use crate::engine::Command;
-use crate::units::{Current, Dimension, Power, Ratio, Timestamp, parse_quantity};
+use crate::units::{Current, Dimension, Power, Quantity, Ratio, Timestamp, parse_quantity};
 
 /// How long an override lasts when the payload does not say.
 pub const DEFAULT_OVERRIDE: Duration = Duration::from_secs(3600);
@@ -37,9 +40,21 @@ pub enum OverrideAction {
         command: Command,
         /// When the override ends by itself.
         until: Timestamp,
+        /// The level asked for, where the command is not that level (brought into the
+        /// load's range, or a power turned into a stage).
+        adjusted: Option<Adjustment>,
     },
     /// Back to the rules (hand to `Engine::clear_override`).
     Clear,
+}
+
+/// A level the payload asked for that the command does not take as it is.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Adjustment {
+    /// The level in the payload.
+    pub asked: Quantity,
+    /// What was done with it, as a person reads it: `raised to its minimum`.
+    pub what: &'static str,
 }
 
 impl OverrideAction {
@@ -47,11 +62,14 @@ impl OverrideAction {
     /// date when that is a day or more after `now`), `auto (back to the rules)`.
     pub fn describe(&self, tz: chrono_tz::Tz, now: Timestamp) -> String {
         match self {
-            OverrideAction::Set { command, until } => {
+            OverrideAction::Set { command, until, adjusted } => {
                 let local = until.to_utc().with_timezone(&tz);
                 let within_a_day = until.0.saturating_sub(now.0) < 86_400_000;
                 let at = local.format(if within_a_day { "%H:%M:%S %Z" } else { "%Y-%m-%d %H:%M:%S %Z" });
-                format!("{command} until {at}")
+                match adjusted {
+                    Some(a) => format!("{command} until {at} (asked {}: {})", a.asked, a.what),
+                    None => format!("{command} until {at}"),
+                }
             }
             OverrideAction::Clear => "auto (back to the rules)".to_owned(),
         }
@@ -188,13 +206,14 @@ pub fn parse_override(load: &Load, payload: &[u8], now: Timestamp) -> Result<Ove
         }
     };
     let command = match word.as_str() {
-        "off" => Command::Off,
+        "off" => (Command::Off, None),
         "on" => on_command(load, level.as_deref(), stage)?,
         other => {
             return Err(format!("\"{}\" is not on, off or auto", other.chars().take(20).collect::<String>()));
         }
     };
-    Ok(OverrideAction::Set { command, until: now.plus(duration) })
+    let (command, adjusted) = command;
+    Ok(OverrideAction::Set { command, until: now.plus(duration), adjusted })
 }
 
 /// Why an override's duration was refused, in the words of the payload's own form
@@ -211,50 +230,110 @@ fn not_a_duration(text: &str) -> String {
     format!("\"{t}\" is not a duration{hint}: write a number and ms, s, min, h or d, such as 30min or 2h")
 }
 
-/// The command "on" means for a kind of load, with an optional level or stage.
-fn on_command(load: &Load, level: Option<&str>, stage: Option<u8>) -> Result<Command, String> {
+/// The command "on" means for a kind of load, with an optional level or stage, and
+/// what was done to the level where the command does not take it as it is.
+///
+/// Each kind takes its level in one form (the README's "MQTT topics" says which); any
+/// other form is refused with a message naming the form the load takes, so a request
+/// is never read as something else (a power on a stepped load once ran it at full
+/// power).
+fn on_command(load: &Load, level: Option<&str>, stage: Option<u8>) -> Result<(Command, Option<Adjustment>), String> {
+    let name = &load.name;
     let level = match level {
         None => None,
         Some(text) => Some(parse_quantity(text).map_err(|e| format!("\"level\": {e}"))?),
     };
-    let want = |dim: Dimension, example: &str| -> Result<Option<f64>, String> {
+    if let Some(q) = level
+        && q.value < 0.0
+    {
+        return Err(format!("\"level\": {q} is negative: a level is 0 or more"));
+    }
+    // The level in the form `dim`, or a message naming the form the load takes.
+    let want = |dim: Dimension, example: &str| -> Result<Option<Quantity>, String> {
         match level {
-            None => Ok(None),
-            Some(q) if q.dimension == dim && q.value >= 0.0 => Ok(Some(q.value)),
-            Some(_) => Err(format!("load \"{}\" takes {} as its level (e.g. {example})", load.name, dim.describe())),
+            Some(q) if q.dimension != dim => Err(format!(
+                "load \"{name}\" takes {} as its level (e.g. \"{example}\"), not {}",
+                dim.describe(),
+                q.dimension.describe()
+            )),
+            other => Ok(other),
         }
     };
     if stage.is_some() && !matches!(load.kind, LoadKind::Stepped { .. }) {
-        return Err(format!("load \"{}\" has no stages", load.name));
+        return Err(format!("load \"{name}\" has no stages"));
     }
+    // A level brought into `lo..=hi`, noted when it was moved.
+    let bounded = |q: Quantity, lo: f64, hi: f64| -> (f64, Option<Adjustment>) {
+        if q.value < lo {
+            (lo, Some(Adjustment { asked: q, what: "raised to its minimum" }))
+        } else if q.value > hi {
+            (hi, Some(Adjustment { asked: q, what: "lowered to its maximum" }))
+        } else {
+            (q.value, None)
+        }
+    };
     Ok(match &load.kind {
         LoadKind::Switched { .. } => {
             if level.is_some() {
-                return Err(format!("load \"{}\" is on/off: it takes no level", load.name));
+                return Err(format!("load \"{name}\" is on/off: it takes no level"));
             }
-            Command::On
+            (Command::On, None)
         }
         LoadKind::Stepped { stages, .. } => {
             let top = stages.len().min(255) as u8;
-            match stage {
-                Some(n) if n > top => {
-                    return Err(format!("load \"{}\" has {top} stages", load.name));
+            let form = "a stage (\"stage\": 2) or a power as its level (e.g. \"2kW\")";
+            match (stage, level) {
+                (Some(_), Some(_)) => {
+                    return Err(format!("load \"{name}\" takes a stage or a level, not both"));
                 }
-                Some(n) => Command::Stage(n),
-                None => Command::Stage(top),
+                (Some(n), None) if n > top => {
+                    return Err(format!("load \"{name}\" has {top} stages"));
+                }
+                (Some(n), None) => (Command::Stage(n), None),
+                (None, None) => (Command::Stage(top), None),
+                (None, Some(q)) if q.dimension != Dimension::Power => {
+                    return Err(format!("load \"{name}\" takes {form}, not {}", q.dimension.describe()));
+                }
+                (None, Some(q)) => {
+                    // The highest stage that draws no more than was asked: a level is a
+                    // ceiling, never exceeded.
+                    let n = stages.iter().take_while(|s| s.0 <= q.value + 1e-9).count().min(255) as u8;
+                    if n == 0 {
+                        let list: Vec<String> = stages.iter().map(ToString::to_string).collect();
+                        return Err(format!(
+                            "load \"{name}\" has stages of {}: {q} is below its first stage, so the request is refused (send \"off\" to turn it off)",
+                            list.join(", ")
+                        ));
+                    }
+                    let exact = stages.get(usize::from(n) - 1).is_some_and(|s| (s.0 - q.value).abs() < 1e-9);
+                    let note = (!exact).then_some(Adjustment { asked: q, what: "the highest stage at or below it" });
+                    (Command::Stage(n), note)
+                }
             }
         }
-        LoadKind::Proportional { .. } => {
-            Command::Setpoint(Ratio(want(Dimension::Ratio, "60%")?.unwrap_or(100.0).min(100.0)))
-        }
-        LoadKind::Charger { min, max, .. } => {
-            let a = want(Dimension::Current, "16A")?.unwrap_or(max.0);
-            Command::Current(Current(a.clamp(min.0, max.0)))
-        }
-        LoadKind::Battery { max_charge, .. } => {
-            let w = want(Dimension::Power, "1.5kW")?.unwrap_or(max_charge.0);
-            Command::Charge(Power(w.min(max_charge.0)))
-        }
+        LoadKind::Proportional { min, .. } => match want(Dimension::Ratio, "60%")? {
+            None => (Command::Setpoint(Ratio(100.0)), None),
+            Some(q) => {
+                // `min` is the lowest non-zero setpoint the load takes: an `on` below it
+                // runs at it, as a charger's current below its minimum does.
+                let (pct, note) = bounded(q, min.0, 100.0);
+                (Command::Setpoint(Ratio(pct)), note)
+            }
+        },
+        LoadKind::Charger { min, max, .. } => match want(Dimension::Current, "16A")? {
+            None => (Command::Current(*max), None),
+            Some(q) => {
+                let (a, note) = bounded(q, min.0, max.0);
+                (Command::Current(Current(a)), note)
+            }
+        },
+        LoadKind::Battery { max_charge, .. } => match want(Dimension::Power, "1.5kW")? {
+            None => (Command::Charge(*max_charge), None),
+            Some(q) => {
+                let (w, note) = bounded(q, 0.0, max_charge.0);
+                (Command::Charge(Power(w)), note)
+            }
+        },
     })
 }
 
@@ -298,6 +377,118 @@ mod tests {
             assert!(err.contains("is a switch state, not a measurement"), "{err}");
         }
         assert_eq!(measured(b"warm", &Payload::Plain), Err("\"warm\" is not a number".to_owned()));
+    }
+
+    /// One load of every kind, for the level tests.
+    fn every_kind() -> crate::config::model::Site {
+        let yaml = r#"site: { name: Test, timezone: UTC }
+devices:
+  relays: { modbus_tcp: 127.0.0.1:5020, unit: 1 }
+points:
+  soc: { device: relays, register: 30, unit: "%" }
+loads:
+  - { name: pump, rated: 1kW, switch: { device: relays, coil: 0 } }
+  - name: heater
+    kind: stepped
+    stages: [1kW, 2kW, 3kW]
+    switch: [{ device: relays, coil: 1 }, { device: relays, coil: 2 }, { device: relays, coil: 3 }]
+  - { name: immersion, kind: proportional, rated: 3kW, min: 10%, setpoint: { device: relays, register: 10 } }
+  - { name: car, kind: charger, min_current: 6A, max_current: 16A, setpoint: { device: relays, register: 11 } }
+  - { name: battery, kind: battery, max_charge: 3kW, soc: soc, setpoint: { device: relays, register: 12 } }
+"#;
+        match crate::config::load_str("t.yaml", yaml) {
+            Ok(l) => l.site,
+            Err(e) => panic!("{}", e.render(false)),
+        }
+    }
+
+    /// What `{"command":"on","level":LEVEL}` does on `load`: the command and the logged
+    /// words, or the refusal.
+    fn on_level(site: &crate::config::model::Site, load: &str, level: &str) -> Result<String, String> {
+        let load = site.load(load).unwrap().1;
+        let now = Timestamp(1_781_481_600_000);
+        let payload = format!(r#"{{"command":"on","level":"{level}","for":"3min"}}"#);
+        let action = parse_override(load, payload.as_bytes(), now)?;
+        let text = action.describe(chrono_tz::UTC, now);
+        Ok(text.replace(" until 00:03:00 UTC", ""))
+    }
+
+    /// A power on a stepped load picks the highest stage at or below it; it once ran
+    /// the load at its top stage whatever was asked (500 W ran 3 kW).
+    #[test]
+    fn a_power_level_on_a_stepped_load_picks_the_highest_stage_at_or_below_it() {
+        let site = every_kind();
+        let on = |level: &str| on_level(&site, "heater", level);
+        assert_eq!(on("1kW").as_deref(), Ok("stage 1"));
+        assert_eq!(on("1.5kW").as_deref(), Ok("stage 1 (asked 1.5 kW: the highest stage at or below it)"));
+        assert_eq!(on("2kW").as_deref(), Ok("stage 2"));
+        assert_eq!(on("2.5kW").as_deref(), Ok("stage 2 (asked 2.5 kW: the highest stage at or below it)"));
+        assert_eq!(on("3000W").as_deref(), Ok("stage 3"));
+        assert_eq!(on("9kW").as_deref(), Ok("stage 3 (asked 9 kW: the highest stage at or below it)"));
+        let refused = on("500W").unwrap_err();
+        assert_eq!(
+            refused,
+            "load \"heater\" has stages of 1 kW, 2 kW, 3 kW: 500 W is below its first stage, so the request is refused (send \"off\" to turn it off)"
+        );
+        assert!(
+            on("60%").unwrap_err().contains("takes a stage (\"stage\": 2) or a power as its level"),
+            "{:?}",
+            on("60%")
+        );
+        assert!(on("16A").unwrap_err().contains("not a current"), "{:?}", on("16A"));
+        let load = site.load("heater").unwrap().1;
+        let both = parse_override(load, br#"{"command":"on","stage":1,"level":"2kW"}"#, Timestamp(0));
+        assert_eq!(both.unwrap_err(), "load \"heater\" takes a stage or a level, not both");
+    }
+
+    /// A proportional load's `min` (10 % here) is its lowest non-zero setpoint: an `on`
+    /// below it runs at it, and the log says so. 5 % was once commanded as 5 %.
+    #[test]
+    fn a_percentage_below_a_proportional_loads_min_runs_at_its_min() {
+        let site = every_kind();
+        let on = |level: &str| on_level(&site, "immersion", level);
+        assert_eq!(on("5%").as_deref(), Ok("10 % (asked 5 %: raised to its minimum)"));
+        assert_eq!(on("0%").as_deref(), Ok("10 % (asked 0 %: raised to its minimum)"));
+        assert_eq!(on("10%").as_deref(), Ok("10 %"));
+        assert_eq!(on("60%").as_deref(), Ok("60 %"));
+    }
+
+    /// Every form of level on every kind: the one form a kind takes works (brought into
+    /// its range, and the log says so), every other form is refused naming that form.
+    #[test]
+    fn each_kind_takes_its_level_in_one_form_and_refuses_the_others() {
+        let site = every_kind();
+        let on = |load: &str, level: &str| on_level(&site, load, level);
+        // Switched: no level at all.
+        for level in ["60%", "16A", "1.5kW"] {
+            assert_eq!(on("pump", level).unwrap_err(), "load \"pump\" is on/off: it takes no level");
+        }
+        // Proportional: a percentage.
+        assert_eq!(on("immersion", "60%").as_deref(), Ok("60 %"));
+        assert_eq!(on("immersion", "150%").as_deref(), Ok("100 % (asked 150 %: lowered to its maximum)"));
+        assert_eq!(
+            on("immersion", "1.5kW").unwrap_err(),
+            "load \"immersion\" takes a percentage as its level (e.g. \"60%\"), not a power"
+        );
+        assert!(on("immersion", "16A").unwrap_err().contains("takes a percentage"));
+        // Charger: a current, brought into min_current..max_current.
+        assert_eq!(on("car", "10A").as_deref(), Ok("10 A"));
+        assert_eq!(on("car", "4A").as_deref(), Ok("6 A (asked 4 A: raised to its minimum)"));
+        assert_eq!(on("car", "32A").as_deref(), Ok("16 A (asked 32 A: lowered to its maximum)"));
+        assert_eq!(
+            on("car", "60%").unwrap_err(),
+            "load \"car\" takes a current as its level (e.g. \"16A\"), not a percentage"
+        );
+        assert!(on("car", "3kW").unwrap_err().contains("takes a current"));
+        // Battery: a power, a charge up to max_charge.
+        assert_eq!(on("battery", "1.5kW").as_deref(), Ok("charge 1.5 kW"));
+        assert_eq!(on("battery", "5kW").as_deref(), Ok("charge 3 kW (asked 5 kW: lowered to its maximum)"));
+        assert!(on("battery", "60%").unwrap_err().contains("takes a power as its level"));
+        assert!(on("battery", "16A").unwrap_err().contains("takes a power as its level"));
+        // Negative levels are refused on every kind that takes one.
+        for load in ["heater", "immersion", "car", "battery"] {
+            assert!(on(load, "-1kW").unwrap_err().contains("is negative"), "{load}");
+        }
     }
 
     #[test]
