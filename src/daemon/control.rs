@@ -250,6 +250,13 @@ impl Control {
             panic!("fail point: tick {}", self.summary.ticks + 1);
         }
         let now = self.clock.now();
+        // A load written through a device that is down is not counted as drawing its
+        // command (see `Engine::set_reachable`).
+        for (i, l) in self.site.loads.iter().enumerate() {
+            let command = self.engine.decisions().loads.get(i).map_or(crate::engine::Command::Off, |d| d.command);
+            let reachable = status::not_delivered(&self.site, l, command, &self.health).is_none();
+            self.engine.set_reachable(crate::config::model::LoadId(i), reachable);
+        }
         self.engine.step(now, &self.snapshot);
         self.summary.ticks += 1;
         let d = self.engine.decisions();

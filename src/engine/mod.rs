@@ -93,6 +93,9 @@ struct LoadState {
     cover: Option<Box<discharge::Cover>>,
     /// Settling after recovery: whether this load has used its one switching.
     settled: bool,
+    /// Its command cannot reach it (a device it is written through is down): what it
+    /// draws is unknown, and it is not counted as drawing its command.
+    unreachable: bool,
     override_: Option<Override>,
     /// Points whose staleness sends this load to its safe state.
     deps: Vec<PointId>,
@@ -167,6 +170,7 @@ impl Engine {
                 switched_because: None,
                 full: false,
                 held: Power::ZERO,
+                unreachable: false,
                 cover: matches!(l.kind, LoadKind::Battery { discharge: Some(_), .. }).then(Box::default),
                 settled: true,
                 override_: None,
@@ -214,6 +218,14 @@ impl Engine {
     /// The site this engine runs.
     pub fn site(&self) -> &Arc<Site> {
         &self.site
+    }
+
+    /// Whether a load's command can reach it (its devices are up); the daemon says so
+    /// before each tick. See the `unreachable` field for what it changes.
+    pub fn set_reachable(&mut self, load: LoadId, reachable: bool) {
+        if let Some(l) = self.loads.get_mut(load.0) {
+            l.unreachable = !reachable;
+        }
     }
 
     /// Sets a manual override; it expires by itself at `until` and never defeats an
@@ -511,6 +523,11 @@ impl Engine {
         for (l, s) in site.loads.iter().zip(self.loads.iter_mut()) {
             s.power = match l.power.map(|p| self.values[p.0]) {
                 Some(v) if v.is_finite() => Power(v.max(0.0)),
+                // A load the command cannot reach may be on or off: counting it as
+                // drawing its command would hand that power to the loads below it as
+                // surplus that may not exist (a relay module that stopped answering
+                // with its load off). Counted as drawing nothing, the surplus errs low.
+                _ if s.unreachable => Power::ZERO,
                 _ => s.command.power(&l.kind),
             };
             managed += s.power;

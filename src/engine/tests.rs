@@ -154,6 +154,25 @@ fn surplus_is_export_plus_the_power_of_managed_loads_that_are_on() {
     assert!((d2.surplus.0 - 1500.0).abs() < 1e-6, "{} then {}", d.surplus, d2.surplus);
 }
 
+/// A load whose relay module stopped answering may be on or off: it is not counted as
+/// drawing its command, so its power is not handed to the loads below it as surplus
+/// that may not exist.
+#[test]
+fn a_load_the_command_cannot_reach_is_not_counted_as_drawing_it() {
+    let mut h = Harness::new(&site("  export: allowed", TWO_LOADS));
+    h.set("grid", -1500.0);
+    h.run(secs(30));
+    assert_eq!(h.command("pump"), Command::On);
+    h.set("grid", -500.0);
+    assert!((h.tick().surplus.0 - 1500.0).abs() < 1e-6);
+    let pump = LoadId(h.load("pump"));
+    h.engine.set_reachable(pump, false);
+    let d = h.tick();
+    assert!((d.surplus.0 - 500.0).abs() < 1e-6, "only the export the meter shows: {}", d.surplus);
+    h.engine.set_reachable(pump, true);
+    assert!((h.tick().surplus.0 - 1500.0).abs() < 1e-6);
+}
+
 /// The test site with a battery's power read (`battery_power`, charging +).
 fn with_battery_power(yaml: &str) -> String {
     yaml.replace("points:\n", "points:\n  battery_power: { device: meter, register: 50, type: i16, unit: W }\n")
