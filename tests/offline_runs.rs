@@ -702,7 +702,7 @@ fn simulation_bind_mistakes_are_refused_with_the_remedy() {
         ("    colour: blue\n", "colour"),
         ("    points: { tank_temp: tank/temprature }\n", "does not report"),
         ("    loads: { water_heater: relay/heater }\n", "cannot be told to do"),
-        ("    loads: { water_heater: [relay/tank, relay/pump] }\n", "2 control(s) for 1 actuator(s)"),
+        ("    loads: { water_heater: [relay/tank, relay/pump] }\n", "[C0504]"),
     ] {
         let loaded = config::load_str("site.yaml", &with(bind)).unwrap_or_else(|e| panic!("{}", e.render(false)));
         let err = offline::checked_plant(&loaded).expect_err(bind).to_string();
@@ -1529,4 +1529,178 @@ fn a_date_that_does_not_exist_is_named_as_such() {
     }
     let out = spillway(["simulate", path.to_str().unwrap(), "--from", "21/06/2026"]);
     assert!(String::from_utf8_lossy(&out.stderr).contains("not a date in the form YYYY-MM-DD"));
+}
+
+/// The zero-export example with its water heater a proportional (burst-fire) immersion
+/// on the simulated relay module's regulator 0, and `plant_load` as the plant's
+/// regulated load: the most common diverter of the trade.
+fn proportional_immersion(plant_load: &str) -> String {
+    let mut out = std::fs::read_to_string(example("zero-export-house.yaml")).unwrap();
+    for (from, to) in [
+        (
+            "    rated: 3kW\n    switch: { device: relays, coil: 0 }\n",
+            "    kind: proportional\n    rated: 3kW\n    setpoint: { device: relays, register: 10, scale: 0.1 }\n",
+        ),
+        ("    start: surplus > 3.1kW for 30s and tank_temp < 60°C\n", "    start: tank_temp < 60°C\n"),
+        ("    stop: surplus < 2.5kW for 1min or tank_temp >= 65°C\n", "    stop: tank_temp >= 65°C\n"),
+        ("  pump: { rated: 1.1kW }\n", &format!("  pump: {{ rated: 1.1kW }}\n  loads: [{plant_load}]\n")),
+    ] {
+        assert!(out.contains(from), "the example changed: {from}");
+        out = out.replace(from, to);
+    }
+    out
+}
+
+/// A proportional immersion whose regulator is the simulated tank's element
+/// (`heats: tank`) heats the water: its `reach: 60°C by 17:00` duty is met every day of a
+/// mixed week, the books balance (PV + import = house + loads + export, the report's
+/// balance, with no battery), and its energy is what the tank took. The same site whose
+/// regulator heats nothing (the plant load without `heats`) misses every day, and
+/// `check` warns of it beforehand (C0701).
+#[test]
+fn a_proportional_immersion_heats_the_simulated_tank_and_meets_its_duty() {
+    let heats = proportional_immersion("{ name: immersion, kind: regulated, rated: 3kW, heats: tank }");
+    let (loaded, out) = run_text(&heats, 7, None);
+    let plant = offline::checked_plant(&loaded).unwrap();
+    assert!(offline::plausible::notes(&loaded, &plant).is_empty());
+    assert_eq!(out.refused_writes, 0);
+    let heater = &out.loads[0];
+    assert_eq!(heater.obligations[0], (7, 0), "reach 60 °C by 17:00 on each of 7 mixed days");
+    let f = &out.flows;
+    let loads: f64 = f.loads.iter().map(|l| l.wh).sum();
+    let sources = f.pv.wh + f.grid_import.wh;
+    let sinks = f.house.wh + loads + f.grid_export.wh;
+    assert!((sources - sinks).abs() / sources < 1e-9, "sources {sources:.1} Wh, sinks {sinks:.1} Wh");
+    // The site's heater is the plant's regulated load (tank, pump, immersion: load 2),
+    // and the tank's relay channel, which no load drives, stayed open.
+    assert!(heater.energy_wh > 5_000.0, "{} Wh in a week", heater.energy_wh);
+    assert!((heater.energy_wh - f.loads[2].wh).abs() < 1e-6);
+    assert_eq!(f.loads[0].wh, 0.0);
+
+    // The same regulator heating nothing: warned of, and every duty missed.
+    let nothing = proportional_immersion("{ name: immersion, kind: regulated, rated: 3kW }");
+    let (loaded, out) = run_text(&nothing, 2, None);
+    let plant = offline::checked_plant(&loaded).unwrap();
+    let notes = offline::plausible::notes(&loaded, &plant);
+    assert_eq!(notes.len(), 1, "{notes:?}");
+    assert_eq!(notes[0].code, Some("C0701"));
+    assert!(
+        notes[0].to_string().starts_with("warning[C0701]: load \"water_heater\" reads the simulated tank's temperature (point \"tank_temp\") but drives nothing that heats the tank")
+            && notes[0].text.contains("give plant.loads a regulated load with `heats: tank`"),
+        "{}",
+        notes[0]
+    );
+    assert_eq!(out.loads[0].obligations[0], (0, 2));
+}
+
+/// The baseline keeps a proportional water heater whose regulator heats the tank on its
+/// thermostat (100 %), as it does a relay-switched one: the tank stays hot without
+/// Spillway too, and the savings are not inflated by a cold tank.
+#[test]
+fn the_baseline_runs_a_proportional_tank_heater_on_its_thermostat() {
+    let heats = proportional_immersion("{ name: immersion, kind: regulated, rated: 3kW, heats: tank }");
+    let loaded = config::load_str("site.yaml", &heats).unwrap();
+    let out = run(&loaded, date("2026-06-15"), 2, Some(WeatherKind::Mixed), Controller::Baseline);
+    assert!(out.flows.loads[2].wh > 1_000.0, "{:?}", out.flows.loads);
+    // A regulator that heats nothing stays idle in the baseline, as before.
+    let nothing = proportional_immersion("{ name: immersion, kind: regulated, rated: 3kW }");
+    let loaded = config::load_str("site.yaml", &nothing).unwrap();
+    let out = run(&loaded, date("2026-06-15"), 2, Some(WeatherKind::Mixed), Controller::Baseline);
+    assert_eq!(out.flows.loads[2].wh, 0.0);
+}
+
+/// Every write a load's actuators would make is checked against the simulated plant
+/// before a run, with the remedy: a proportional setpoint on a regulator the plant lacks,
+/// in the wrong scale, or on another load's register; an enable relay the plant cannot
+/// have; a charger's current where there is no EV. (Refused during the run instead, each
+/// write was only counted, and the report showed a heater on for 21 h that drew nothing.)
+#[test]
+fn a_load_write_the_simulated_plant_would_refuse_is_refused_before_the_run() {
+    let err_of = |yaml: &str| {
+        let loaded = config::load_str("site.yaml", yaml).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        offline::checked_plant(&loaded).map(|_| ()).expect_err("refused").to_string()
+    };
+    let ok = proportional_immersion("{ name: immersion, kind: regulated, rated: 3kW, heats: tank }");
+    let no_regulator = ok.replace("  loads: [{ name: immersion, kind: regulated, rated: 3kW, heats: tank }]\n", "");
+    let e = err_of(&no_regulator);
+    assert!(
+        e.contains("water_heater")
+            && e.contains("writes its setpoint to holding register 10 of the simulated relay module, the setpoint of regulator 0, but the plant has no regulated load")
+            && e.contains("add `{ name: water_heater, kind: regulated, rated: 3kW, heats: tank }` (without `heats` if it is not the tank's element) to plant.loads"),
+        "{e}"
+    );
+    let e = err_of(&ok.replace("register: 10, scale: 0.1 }", "register: 10 }"));
+    assert!(
+        e.contains("writes 100 % to register 10 as [100]")
+            && e.contains("give the setpoint `type: u16` and `scale: 0.1`"),
+        "{e}"
+    );
+    let e = err_of(&ok.replace("register: 10, scale: 0.1 }", "register: 0, scale: 0.1 }"));
+    assert!(e.contains("the EV charger's current setpoint, not a regulator's"), "{e}");
+    let e = err_of(&ok.replace("rated: 3kW, heats: tank }", "rated: 900W, heats: tank }"));
+    assert!(e.contains("the plant's \"immersion\" (900 W), but the load is rated 3 kW"), "{e}");
+    // An enable relay: on an unwired coil, and on a coil wired to another appliance.
+    let enable = |coil: u16| {
+        ok.replace(
+            "    setpoint: { device: relays, register: 10, scale: 0.1 }\n",
+            &format!("    setpoint: {{ device: relays, register: 10, scale: 0.1 }}\n    enable: {{ device: relays, coil: {coil} }}\n"),
+        )
+    };
+    let e = err_of(&enable(3));
+    assert!(
+        e.contains("has its enable relay on coil 3 of the simulated relay module, but plant.wiring wires 2 coil(s): [tank, pump]")
+            && e.contains("add `simulation.bind: { loads: { water_heater: [regulator/immersion, none] } }`"),
+        "{e}"
+    );
+    let e = err_of(&enable(0));
+    assert!(
+        e.contains(
+            "has its enable relay on coil 0, which plant.wiring wires to the plant's \"tank\", another appliance"
+        ),
+        "{e}"
+    );
+    // … and the remedy runs.
+    let bound = enable(3)
+        .replace("simulation:\n", "simulation:\n  bind:\n    loads: { water_heater: [regulator/immersion, none] }\n");
+    let (_, out) = run_text(&bound, 1, None);
+    assert_eq!(out.refused_writes, 0);
+    assert!(out.loads[0].energy_wh > 0.0);
+    // `check` shows the enable relay in the load's description.
+    let dir = std::env::temp_dir().join(format!("spillway-enable-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let file = dir.join("site.yaml");
+    std::fs::write(&file, &bound).unwrap();
+    let o = spillway(["check".as_ref(), file.as_os_str()]);
+    let stdout = String::from_utf8_lossy(&o.stdout);
+    std::fs::remove_dir_all(&dir).unwrap();
+    assert!(o.status.success(), "{stdout}{}", String::from_utf8_lossy(&o.stderr));
+    assert!(stdout.contains("setpoint to register 10 (u16 ÷ 0.1) on relays, enabled by coil 3 on relays"), "{stdout}");
+}
+
+/// `simulation.bind` giving a load's actuator a control of another kind (a relay for a
+/// proportional load's setpoint, whose every write the relay would refuse) is C0504.
+#[test]
+fn a_bound_control_of_the_wrong_kind_is_c0504() {
+    let ok = proportional_immersion("{ name: immersion, kind: regulated, rated: 3kW, heats: tank }");
+    let with = |bind: &str| ok.replace("simulation:\n", &format!("simulation:\n  bind:\n    loads: {{ {bind} }}\n"));
+    for (bind, expected) in [
+        (
+            "water_heater: relay/tank",
+            "`relay/tank` cannot drive its setpoint in % (actuator 1 of load `water_heater`): this one takes `regulator/<name>`",
+        ),
+        (
+            "pool_pump: regulator/immersion",
+            "`regulator/immersion` cannot drive a relay (actuator 1 of load `pool_pump`)",
+        ),
+        (
+            "water_heater: [regulator/immersion, relay/pump]",
+            "load `water_heater` has 1 actuator(s), so this control has none to drive",
+        ),
+    ] {
+        let loaded = config::load_str("site.yaml", &with(bind)).unwrap_or_else(|e| panic!("{}", e.render(false)));
+        let err = offline::checked_plant(&loaded).map(|_| ()).expect_err(bind).to_string();
+        assert!(err.contains("[C0504]") && err.contains(expected), "{bind}: {err}");
+    }
+    let loaded = config::load_str("site.yaml", &with("water_heater: regulator/immersion")).unwrap();
+    assert!(offline::checked_plant(&loaded).is_ok());
 }

@@ -286,3 +286,90 @@ fn a_layered_tank_reports_the_temperature_at_its_sensor() {
     assert!(top > 59.0 && low < 30.0, "top {top}, beside the element {low}");
     assert_eq!((top, low), (top_reading, low_reading));
 }
+
+/// A tank whose element is driven by a burst-fire regulator (`heats: tank`), its own
+/// relay channel left open, at `pct` %.
+fn regulated_tank(tank: &str, pct: f64) -> spillway_sim::plant::Plant {
+    let yaml =
+        format!("{QUIET}tank:\n{tank}\nloads: [{{ name: immersion, kind: regulated, rated: 3kW, heats: tank }}]\n");
+    let mut p = plant(&yaml, Constant(0.0));
+    let k = p.regulator("immersion").unwrap();
+    p.controls_mut().regulators[k] = pct;
+    p
+}
+
+#[test]
+fn a_regulated_element_heats_the_tank_by_m_c_delta_t() {
+    // 150 L from 20 to 60 °C at half power (a burst-fire regulator at 50 % of 3 kW).
+    let mut p = regulated_tank(
+        "  volume: 150L\n  element: 3kW\n  ua: 0W/K\n  initial: 20°C\n  draws: []\n  thermostat: { setpoint: 60°C, deadband: 5°C }\n  cutout: 90°C",
+        50.0,
+    );
+    let heater = p.load("immersion").unwrap();
+    let mut seconds = 0;
+    while p.readings().tank.unwrap().heating || seconds == 0 {
+        p.step(1.0);
+        seconds += 1;
+        assert!(seconds < 40_000, "thermostat never opened");
+    }
+    // Source: Q = m·c·ΔT (calorimetry; c from the handbook value above): 6976.7 Wh,
+    // drawn by the regulated load, none by the tank's own (relay-switched) element.
+    let expected_wh = 150.0 * C_WATER * 40.0 / 3600.0;
+    let heater_wh = p.flows().loads[heater].wh;
+    assert!((heater_wh - expected_wh).abs() / expected_wh < 1e-3, "{heater_wh} vs {expected_wh}");
+    assert_eq!(p.flows().loads[0].wh, 0.0, "the relay channel stayed open");
+    // t = m·c·ΔT / P at 1.5 kW = 16 744 s.
+    let expected_s = 150.0 * C_WATER * 40.0 / 1500.0;
+    assert!((f64::from(seconds) - expected_s).abs() <= 2.0, "{seconds} s vs {expected_s} s");
+    assert!(p.heats_tank(heater));
+}
+
+#[test]
+fn the_thermostat_opens_a_regulated_elements_circuit() {
+    // At the setpoint the thermostat is open: the regulator at 80 % draws nothing, and
+    // draws again once the water has cooled below setpoint − deadband.
+    let mut p = regulated_tank(
+        "  volume: 100L\n  element: 3kW\n  ua: 5W/K\n  ambient: 20°C\n  initial: 60°C\n  draws: []\n  thermostat: { setpoint: 60°C, deadband: 2°C }\n  cutout: 90°C",
+        80.0,
+    );
+    let heater = p.load("immersion").unwrap();
+    p.step(1.0);
+    assert_eq!(p.flows().loads[heater].w, 0.0, "drew with the thermostat open");
+    assert!(!p.readings().tank.unwrap().heating);
+    let (mut seconds, mut before) = (0, f64::NAN);
+    while p.flows().loads[heater].w == 0.0 {
+        before = p.tank_temp_c().unwrap();
+        p.step(1.0);
+        seconds += 1;
+        assert!(seconds < 86_400, "never called for heat");
+    }
+    // It closed at the band's floor: the step that drew started at or below 58 °C.
+    assert!(before <= 58.0 + 1e-9 && before > 57.9, "{before}");
+    assert!((p.flows().loads[heater].w - 2400.0).abs() < 1e-9, "80 % of 3 kW");
+    assert!(p.readings().tank.unwrap().heating);
+    // A tripped cut-out opens it for good.
+    let mut q = regulated_tank("  volume: 100L\n  element: 3kW\n  initial: 90°C\n  draws: []\n  cutout: 85°C", 100.0);
+    run(&mut q, 3600 * 24, 60.0);
+    assert!(q.readings().tank.unwrap().cutout_tripped);
+    assert_eq!(q.flows().loads[q.load("immersion").unwrap()].wh, 0.0);
+}
+
+#[test]
+fn heats_is_refused_where_it_heats_nothing() {
+    let build = |yaml: &str| spillway_sim::plant::PlantConfig::from_yaml(yaml).map(|_| ()).map_err(|e| e.to_string());
+    // Parsing succeeds; building says what is wrong.
+    let err = |yaml: &str| {
+        let cfg = spillway_sim::plant::PlantConfig::from_yaml(yaml).unwrap();
+        match spillway_sim::plant::Plant::new(&cfg, Box::new(Constant(0.0)), 0, 1) {
+            Ok(_) => String::new(),
+            Err(e) => e.to_string(),
+        }
+    };
+    assert!(build("loads: [{ name: h, kind: regulated, rated: 3kW, heats: tank }]").is_ok());
+    assert!(err("loads: [{ name: h, kind: regulated, rated: 3kW, heats: tank }]").contains("the plant has no `tank`"));
+    let e =
+        err("tank: { volume: 150L, element: 3kW }\nloads: [{ name: h, kind: regulated, rated: 3kW, heats: geyser }]");
+    assert!(e.contains("`heats: geyser` names no tank: the plant's tank is \"tank\""), "{e}");
+    let e = err("tank: { volume: 150L, element: 3kW }\nloads: [{ name: h, kind: switched, rated: 3kW, heats: tank }]");
+    assert!(e.contains("`heats` is only for kind: regulated"), "{e}");
+}

@@ -30,7 +30,7 @@ pub fn run(path: &Path, quiet: bool) -> anyhow::Result<ExitCode> {
         match offline::checked_plant(&loaded) {
             Ok(p) => {
                 for note in offline::plausible::notes(&loaded, &p) {
-                    eprintln!("{}: warning: {note}", loaded.source.path);
+                    eprintln!("{}: {note}", loaded.source.path);
                     offline_warnings += 1;
                 }
                 let kwp = p.solar.as_ref().map_or(0.0, |s| s.nameplate_w() / 1000.0);

@@ -91,12 +91,10 @@ pub fn run(
     let progress = Progress::new(args.quiet, "comparing");
     let (ra, rb, base) = std::thread::scope(|s| {
         let hb = s.spawn(|| {
-            offline::simulate_once(
-                &b.site,
-                b.loaded.tariff.as_ref(),
-                &b.plant,
-                options(&b, args, Controller::Spillway, recording),
-            )
+            // B's loads may find nothing to drive on A's plant (warned of above).
+            let mut o = options(&b, args, Controller::Spillway, recording);
+            o.foreign_plant = true;
+            offline::simulate_once(&b.site, b.loaded.tariff.as_ref(), &b.plant, o)
         });
         let ra = offline::simulate_once(
             &a.site,

@@ -113,7 +113,7 @@ pub fn prepare_for(path: &Path, args: &RunArgs, uses_weather: bool) -> anyhow::R
     };
     if !args.quiet {
         for note in offline::plausible::notes(&loaded, &plant) {
-            eprintln!("{}: warning: {note}", loaded.source.path);
+            eprintln!("{}: {note}", loaded.source.path);
         }
     }
     let from = args.from.or(defaults.from).unwrap_or_else(|| chrono::Utc::now().date_naive());

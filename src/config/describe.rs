@@ -244,15 +244,27 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
             };
             format!("stepped {}, {how}", stages.join(" → "))
         }
-        LoadKind::Proportional { rated, min, step, setpoint, .. } => {
-            format!("proportional up to {rated} (min {min}, step {step}), setpoint to {}", write_text(site, setpoint))
-        }
+        LoadKind::Proportional { rated, min, step, setpoint, enable } => format!(
+            "proportional up to {rated} (min {min}, step {step}), setpoint to {}{}",
+            write_text(site, setpoint),
+            enable_text(site, enable.as_ref())
+        ),
         LoadKind::Charger {
-            watts_per_amp, min, max, step, setpoint, hold_min_from_grid, soc, car_capacity, ..
+            watts_per_amp,
+            min,
+            max,
+            step,
+            setpoint,
+            enable,
+            hold_min_from_grid,
+            soc,
+            car_capacity,
+            ..
         } => format!(
-            "charger {min}–{max} in steps of {step} ({} W per A), current to {}; {}{}{}",
+            "charger {min}–{max} in steps of {step} ({} W per A), current to {}{}; {}{}{}",
             trim_number(*watts_per_amp),
             write_text(site, setpoint),
+            enable_text(site, enable.as_ref()),
             if *hold_min_from_grid { "holds its minimum from the grid" } else { "pauses below its minimum" },
             soc.map_or_else(String::new, |p| format!("; the car's state of charge on {}", site.points[p.0].name)),
             car_capacity.map_or_else(String::new, |c| format!(" (a car of {c})"))
@@ -277,6 +289,12 @@ fn kind_text(site: &Site, kind: &LoadKind) -> String {
             )
         }
     }
+}
+
+/// A proportional load's or a charger's enable relay, as `check` shows it after the
+/// setpoint: `, enabled by coil 3 on relays` (nothing without one).
+fn enable_text(site: &Site, enable: Option<&Write>) -> String {
+    enable.map_or_else(String::new, |e| format!(", enabled by {}", write_text(site, e)))
 }
 
 /// Where a write goes, as `check` shows it: `coil 3 on relays`, `topic … via …`.

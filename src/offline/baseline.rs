@@ -1,6 +1,7 @@
 //! The no-diversion baseline a run is compared with: the same house on the same weather,
 //! as it would run without Spillway. Water heaters (loads with a temperature point) sit
-//! on their own thermostats with the relay closed; loads with a daily run obligation run
+//! on their own thermostats with the relay closed (a proportional one whose regulator
+//! heats the simulated tank at 100 %); loads with a daily run obligation run
 //! on a fixed timer from 10:00; chargers charge at full current whenever a car is
 //! plugged in; batteries, regulators and dump loads stay idle. Where the site limits
 //! export and has a curtailable inverter, the inverter keeps to the limit with its own
@@ -19,12 +20,17 @@ const TIMER_START_S: u32 = 10 * 3600;
 /// The baseline controller.
 pub struct Baseline {
     decisions: Decisions,
+    /// Per load: a proportional load whose regulator heats the simulated tank.
+    tank_heaters: Vec<bool>,
 }
 
 impl Baseline {
-    /// A baseline for a site; everything off until the first decision.
-    pub fn new(site: &Site) -> Self {
+    /// A baseline for a site; everything off until the first decision. `tank_heaters`
+    /// marks the proportional loads whose regulator heats the simulated tank (per load,
+    /// in site order; missing entries count as `false`).
+    pub fn new(site: &Site, tank_heaters: &[bool]) -> Self {
         Baseline {
+            tank_heaters: tank_heaters.to_vec(),
             decisions: Decisions {
                 now: Timestamp(0),
                 loads: vec![LoadDecision { command: Command::Off, reason: Reason::Waiting }; site.loads.len()],
@@ -54,8 +60,10 @@ impl Baseline {
                 Obligation::RunDaily { duration, .. } => Some(*duration),
                 _ => None,
             });
+            let heats_tank = self.tank_heaters.get(i).copied().unwrap_or(false);
             let command = match (&load.kind, load.temperature, timer) {
                 (LoadKind::Switched { .. }, Some(_), _) => Command::On,
+                (LoadKind::Proportional { .. }, Some(_), _) if heats_tank => Command::On,
                 (LoadKind::Switched { .. }, None, Some(run)) => {
                     if on_timer(local.seconds_of_day, run) {
                         Command::On

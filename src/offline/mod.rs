@@ -175,8 +175,19 @@ pub fn sim_bind(loaded: &crate::config::Loaded) -> Result<SimBind, OfflineError>
                     Value::Seq(list) => list.iter().collect(),
                     _ => vec![v],
                 };
-                let controls =
-                    items.into_iter().filter_map(|i| text(i, &mut diags)).map(|t| (t != "none").then_some(t)).collect();
+                let mut controls = Vec::with_capacity(items.len());
+                for (i, item) in items.into_iter().enumerate() {
+                    let Some(t) = text(item, &mut diags) else { continue };
+                    // A control of the wrong kind for its actuator (a relay for a
+                    // setpoint) would have every write refused during the run.
+                    if t != "none"
+                        && let Some((_, load)) = site.load(name)
+                        && let Some(why) = bind::bound_control_misfit(load, i, &t)
+                    {
+                        diags.error("C0504", why, item.span.clone(), "one control per actuator, of its kind");
+                    }
+                    controls.push((t != "none").then_some(t));
+                }
                 out.loads.push((name.to_owned(), controls));
             }
         }
@@ -264,7 +275,7 @@ pub fn checked_plant(loaded: &crate::config::Loaded) -> Result<PlantSection, Off
     check_plant_timezone(loaded, &p)?;
     let options = spillway_sim::site::SiteOptions { start_ms: 0, seed: 1, sky: None };
     let built = spillway_sim::site::build(&p, &options)?;
-    bind::Binding::new(&loaded.site, &built, &p.bind)?;
+    bind::Binding::new(&loaded.site, &built, &p.bind, true)?;
     Ok(p)
 }
 

@@ -58,6 +58,10 @@ pub struct RunOptions<'a> {
     pub observer: Option<&'a mut Observer<'a>>,
     /// A recorded PV and household series in place of the modelled ones.
     pub recorded: Option<&'a super::replay::Recorded>,
+    /// The plant is another site's (`compare` runs B's rules on A's plant): a load whose
+    /// writes that plant would refuse still runs, each refused write counted, rather than
+    /// refusing the run (`compare` warns of loads without a namesake instead).
+    pub foreign_plant: bool,
 }
 
 impl<'a> RunOptions<'a> {
@@ -75,6 +79,7 @@ impl<'a> RunOptions<'a> {
             progress: None,
             observer: None,
             recorded: None,
+            foreign_plant: false,
         }
     }
 }
@@ -301,13 +306,17 @@ pub fn simulate_once(
         let own = plant.export_limiter().map_or(allowed.0, |own| own.min(allowed.0));
         plant.set_export_limiter(Some(own));
     }
-    let mut binding = Binding::new(site, &plant, &plant_cfg.bind)?;
+    let mut binding = Binding::new(site, &plant, &plant_cfg.bind, !options.foreign_plant)?;
     let mut engine = Engine::new(Arc::clone(site));
-    let mut baseline = Baseline::new(site);
     let mut snapshot = Snapshot::empty(site);
     let ev_name = plant_cfg.ev.as_ref().map(|e| e.name.as_str());
     let sides: Vec<PlantSide> =
         site.loads.iter().map(|l| plant_side(site, &plant, &plant_cfg.bind, ev_name, l)).collect();
+    // A proportional load driving a regulator that heats the tank is its water heater: the
+    // baseline leaves it on its thermostat, as it does a relay-switched one.
+    let tank_heaters: Vec<bool> =
+        sides.iter().map(|s| matches!(s, PlantSide::Load(k) if plant.heats_tank(*k))).collect();
+    let mut baseline = Baseline::new(site, &tank_heaters);
 
     let step_ms = i64::try_from(options.step.as_millis()).unwrap_or(1000).max(1);
     let tick_ms = i64::try_from(site.tick.as_millis()).unwrap_or(1000).max(step_ms);

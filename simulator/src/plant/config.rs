@@ -403,6 +403,12 @@ pub struct LoadConfig {
     /// Stage powers (stepped loads); stage `n` is relay channel `<name>.<n>` (from 1).
     #[serde(default)]
     pub stages: Vec<Watts>,
+    /// The tank (by its `tank.name`) whose water this regulated load heats: its power goes
+    /// into the tank at the element's height, and the tank's thermostat and cut-out open
+    /// its circuit as they do the relay-driven element's. `None`: it heats nothing the
+    /// plant models.
+    #[serde(default)]
+    pub heats: Option<String>,
 }
 
 /// Open-circuit voltage curve family.

@@ -282,10 +282,25 @@ impl Flows {
 /// How one load is driven.
 #[derive(Debug)]
 enum Drive {
-    Tank { channel: usize, rated: f64 },
-    Switched { channel: usize, rated: f64 },
-    Stepped { first: usize, stages: Vec<f64> },
-    Regulated { index: usize, rated: f64 },
+    Tank {
+        channel: usize,
+        rated: f64,
+    },
+    Switched {
+        channel: usize,
+        rated: f64,
+    },
+    Stepped {
+        first: usize,
+        stages: Vec<f64>,
+    },
+    /// `heats_tank`: its power goes into the tank, and only while the tank's thermostat
+    /// and cut-out let the element heat (`plant.loads[].heats`).
+    Regulated {
+        index: usize,
+        rated: f64,
+        heats_tank: bool,
+    },
     Ev,
 }
 
@@ -334,6 +349,9 @@ pub struct Plant {
     ev: Option<Ev>,
     drives: Vec<Drive>,
     load_names: Vec<String>,
+    /// Loads besides the tank's own element whose power heats the tank (regulated loads
+    /// with `heats`), by index in [`Plant::loads`] order; usually none.
+    tank_heaters: Vec<usize>,
     meter: Meter,
     grid: Option<Grid>,
     off_grid: Option<OffGrid>,
@@ -461,9 +479,29 @@ impl Plant {
             drives.push(Drive::Switched { channel: channels.len(), rated: p.rated.max(0.0) });
             channels.push(p.name.clone());
         }
+        let mut tank_heaters = Vec::new();
         for l in &cfg.loads {
             add_name(&mut load_names, &l.name)?;
             let what = format!("load \"{}\"", l.name);
+            let heats_tank = match (&l.heats, l.kind, &cfg.tank) {
+                (None, _, _) => false,
+                (Some(_), LoadKind::Switched | LoadKind::Stepped, _) => {
+                    return Err(invalid(
+                        &what,
+                        "`heats` is only for kind: regulated (a relay-switched element is the tank's own, switched on its channel `tank.name`)",
+                    ));
+                }
+                (Some(t), LoadKind::Regulated, Some(tank)) if *t == tank.name => true,
+                (Some(t), LoadKind::Regulated, Some(tank)) => {
+                    return Err(invalid(
+                        &what,
+                        &format!("`heats: {t}` names no tank: the plant's tank is \"{}\" (`tank.name`)", tank.name),
+                    ));
+                }
+                (Some(t), LoadKind::Regulated, None) => {
+                    return Err(invalid(&what, &format!("`heats: {t}`, but the plant has no `tank`")));
+                }
+            };
             match l.kind {
                 LoadKind::Switched | LoadKind::Regulated => {
                     let rated = l.rated.filter(|r| *r >= 0.0).ok_or_else(|| invalid(&what, "needs `rated` (≥ 0)"))?;
@@ -474,7 +512,10 @@ impl Plant {
                         drives.push(Drive::Switched { channel: channels.len(), rated });
                         channels.push(l.name.clone());
                     } else {
-                        drives.push(Drive::Regulated { index: regulators.len(), rated });
+                        if heats_tank {
+                            tank_heaters.push(drives.len());
+                        }
+                        drives.push(Drive::Regulated { index: regulators.len(), rated, heats_tank });
                         regulators.push(l.name.clone());
                     }
                 }
@@ -593,6 +634,7 @@ impl Plant {
             ev,
             drives,
             load_names,
+            tank_heaters,
             meter: Meter::new(&cfg.meter, Stream::new(seed, 4), start_ms),
             grid,
             off_grid,
@@ -828,9 +870,15 @@ impl Plant {
             }
             self.load_flows_quiet = self.loads_off;
         }
-        // The tank is always the first load and the EV the last.
+        // The tank is always the first load and the EV the last. A regulated load that
+        // heats the tank adds its power to the element's (on the same element: the relay
+        // bypasses the regulator, or one of them drives it).
         if let Some(tank) = &mut self.tank {
-            tank.step(self.load_w[0] * served, dt, sec);
+            let heat_w = match self.tank_heaters.as_slice() {
+                [] => self.load_w[0],
+                heaters => heaters.iter().fold(self.load_w[0], |w, &k| w + self.load_w[k]),
+            };
+            tank.step(heat_w * served, dt, sec);
         }
         if let Some(ev) = &mut self.ev {
             ev.charge(self.load_w[self.load_w.len() - 1] * served, dt);
@@ -941,10 +989,15 @@ impl Plant {
                 Drive::Stepped { first, stages } => {
                     stages.iter().enumerate().filter(|(k, _)| contacts[first + k]).map(|(_, p)| p).sum()
                 }
-                Drive::Regulated { index, rated } => {
+                Drive::Regulated { index, rated, heats_tank } => {
                     let pct = if relays_down { 0.0 } else { controls.regulators[*index] };
                     let pct = if pct.is_finite() { pct.clamp(0.0, 100.0) } else { 0.0 };
-                    rated * pct / 100.0
+                    // The tank's thermostat and cut-out sit in the element's circuit: open,
+                    // the regulator passes no current whatever its setpoint.
+                    match (&self.tank, heats_tank) {
+                        (Some(tank), true) if !tank.calls_for_heat() => 0.0,
+                        _ => rated * pct / 100.0,
+                    }
                 }
                 Drive::Ev => match &mut self.ev {
                     Some(ev) => {
@@ -970,8 +1023,8 @@ impl Plant {
         r.pv.energy_wh = f.pv.wh;
         if let (Some(t), Some(tr)) = (&self.tank, &mut r.tank) {
             tr.temp_c = t.temp_c;
-            // The tank is always load 0.
-            tr.heating = f.loads[0].w > 0.0;
+            // The tank is always load 0; a regulated load may heat it too.
+            tr.heating = f.loads[0].w > 0.0 || self.tank_heaters.iter().any(|&k| f.loads[k].w > 0.0);
             tr.cutout_tripped = t.tripped;
         }
         if let (Some(b), Some(br)) = (&self.battery, &mut r.battery) {
@@ -1100,6 +1153,21 @@ impl Plant {
             }
             Drive::Stepped { first, stages } => channel.checked_sub(*first).and_then(|k| stages.get(k)).copied(),
             Drive::Regulated { .. } | Drive::Ev => None,
+        })
+    }
+
+    /// Whether a load (by index in [`Plant::loads`] order) is a regulated load that heats
+    /// the tank (`heats`).
+    pub fn heats_tank(&self, load: usize) -> bool {
+        self.tank_heaters.contains(&load)
+    }
+
+    /// A regulator's power at 100 %, W, and whether it heats the tank (`heats`); `None`
+    /// for no such regulator.
+    pub fn regulator_rated_w(&self, regulator: usize) -> Option<(f64, bool)> {
+        self.drives.iter().find_map(|d| match d {
+            Drive::Regulated { index, rated, heats_tank } => (*index == regulator).then_some((*rated, *heats_tank)),
+            _ => None,
         })
     }
 
