@@ -217,6 +217,9 @@ mod tests {
                 last_cycle_ms: vec![None],
                 judged_today: vec![true],
                 met_today: vec![true],
+                on: true,
+                changed_ms: Some(1_782_000_000_000),
+                starts_ms: vec![1_781_999_000_000, 1_782_000_000_000],
             }],
             ..PersistedState::default()
         }

@@ -94,4 +94,14 @@ pub struct PersistedLoad {
     /// Per obligation: whether a `reach` duty was seen at its target at the deadline today.
     #[serde(default)]
     pub met_today: Vec<bool>,
+    /// Whether its command drew power when saved (every load is in its safe state
+    /// after a start, so one that was on has just been switched off).
+    #[serde(default)]
+    pub on: bool,
+    /// Milliseconds since the epoch of its last switch on or off, if any.
+    #[serde(default)]
+    pub changed_ms: Option<i64>,
+    /// Its starts in the hour before the save (the `max_starts_per_hour` window), ms.
+    #[serde(default)]
+    pub starts_ms: Vec<i64>,
 }

@@ -394,6 +394,9 @@ impl Engine {
                     last_cycle_ms: s.obligations.iter().map(|o| o.last_cycle.map(|t| t.0)).collect(),
                     judged_today: s.obligations.iter().map(|o| o.judged_today).collect(),
                     met_today: s.obligations.iter().map(|o| o.met_today).collect(),
+                    on: s.command.is_on(),
+                    changed_ms: (s.changed_at != Timestamp::NEVER).then_some(s.changed_at.0),
+                    starts_ms: s.starts.iter().map(|t| t.0).collect(),
                 })
                 .collect(),
         }
@@ -435,6 +438,18 @@ impl Engine {
             for (o, last) in s.obligations.iter_mut().zip(&p.last_cycle_ms) {
                 o.last_cycle = last.map(Timestamp);
             }
+            // A restart must not let a contactor cycle faster than its settings allow
+            // (a service restarting in a loop, an automation restarting it): the starts
+            // of the last hour count against `max_starts_per_hour`, and `min_off` runs
+            // from the last switch — from now for a load that was on, since the stop or
+            // the start has just switched it off.
+            let hour = Duration::from_secs(3600);
+            s.starts = p.starts_ms.iter().map(|&t| Timestamp(t)).filter(|&t| t <= now && now.since(t) < hour).collect();
+            s.changed_at = match p.changed_ms.map(Timestamp) {
+                _ if p.on => now,
+                Some(t) if t <= now => t,
+                _ => s.changed_at,
+            };
         }
     }
 

@@ -1402,6 +1402,64 @@ fn fresh_data_returning_causes_at_most_one_switching_per_load_in_the_next_minute
     assert!(counts.iter().all(|&c| c <= 1), "{counts:?}");
 }
 
+/// A restart does not reset a contactor's protection: the starts of the last hour count
+/// against `max_starts_per_hour` after it, and `min_off` runs from the restart for a
+/// load that was on (the stop or the start switched it off). A walk-through started a
+/// pump for the seventh time in an hour, capped at six, by restarting the daemon.
+#[test]
+fn a_restart_keeps_the_starts_of_the_last_hour_and_the_minimum_off_time() {
+    let loads = r#"
+  - name: pump
+    rated: 1kW
+    switch: { device: relays, coil: 1 }
+    start: surplus > 1.1kW for 5s
+    stop: import > 300W for 5s
+    min_off: 2min
+    max_starts_per_hour: 2
+"#;
+    let yaml = site("  export: allowed", loads);
+    let mut h = Harness::new(&yaml);
+    for _ in 0..2 {
+        h.set("grid", -1500.0);
+        h.run(secs(10));
+        assert_eq!(h.command("pump"), Command::On);
+        h.set("grid", 800.0);
+        h.run(secs(10));
+        assert_eq!(h.command("pump"), Command::Off);
+        h.run(secs(150));
+    }
+    // On when saved: the third start of the hour, allowed after the second's min_off.
+    h.set("grid", -1500.0);
+    h.run(secs(10));
+    assert_eq!(h.command("pump"), Command::Off, "capped at two an hour");
+    let saved = h.engine.persisted();
+    assert_eq!(saved.loads[0].starts_ms.len(), 2);
+
+    let mut after = Harness::new(&yaml);
+    after.now = h.now.plus(secs(5));
+    after.engine.restore(&saved, after.now);
+    after.set("grid", -1500.0);
+    after.run(secs(60));
+    assert_eq!(after.command("pump"), Command::Off, "still capped after the restart");
+    assert!(matches!(after.reason("pump"), Reason::StartsCapped { .. }), "{:?}", after.reason("pump"));
+
+    // A load that was on when saved waits its min_off from the restart.
+    let mut on = Harness::new(&yaml);
+    on.set("grid", -1500.0);
+    on.run(secs(10));
+    assert_eq!(on.command("pump"), Command::On);
+    let saved = on.engine.persisted();
+    assert!(saved.loads[0].on);
+    let mut restarted = Harness::new(&yaml);
+    restarted.now = on.now.plus(secs(5));
+    restarted.engine.restore(&saved, restarted.now);
+    restarted.set("grid", -1500.0);
+    restarted.run(secs(90));
+    assert_eq!(restarted.command("pump"), Command::Off, "min_off from the restart");
+    restarted.run(secs(60));
+    assert_eq!(restarted.command("pump"), Command::On, "after it");
+}
+
 #[test]
 fn safe_decisions_put_every_load_in_its_safe_state_and_the_inverter_at_its_safe_limit() {
     let mut h = Harness::new(&site("  export: forbidden\n  import_target: 40W", TWO_LOADS));
