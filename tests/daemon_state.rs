@@ -63,7 +63,11 @@ async fn a_restart_mid_day_keeps_the_pumps_hours_and_another_day_starts_afresh()
     let restored = load(&s, "pool_pump").runtime_today_s;
     assert!((restored - pump.runtime_today_s).abs() < 1.0, "{restored} vs {}", pump.runtime_today_s);
     assert!(load(&s, "pool_pump").obligations[0].progress.ends_with("of 5 h"));
-    status_until(&daemon, Duration::from_secs(60), "pump on", |s| load(s, "pool_pump").on).await;
+    // It was on when the first run stopped (which switched it off): its `min_off` of
+    // 2 min runs from this start.
+    let started = tokio::time::Instant::now();
+    status_until(&daemon, Duration::from_secs(180), "pump on", |s| load(s, "pool_pump").on).await;
+    assert!(started.elapsed() >= Duration::from_secs(119), "min_off from the start: {:?}", started.elapsed());
     tokio::time::sleep(Duration::from_secs(300)).await;
     let s = daemon.status().borrow().clone();
     let now = load(&s, "pool_pump").runtime_today_s;
