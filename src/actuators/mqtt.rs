@@ -71,7 +71,7 @@ pub fn state_topics(site: &Site, decisions: &Decisions, lost: &[String]) -> Vec<
     let limit = decisions.inverter_limit.map(|p| p.0.round());
     let doc = json!({
         "mode": mode,
-        "surplus": decisions.surplus.0.round(),
+        "surplus": crate::status::surplus_known(site, decisions).then(|| decisions.surplus.0.round()),
         "grid": decisions.grid.map(|g| g.0.round()),
         "inverter_limit": limit,
         "limit_reason": limit_reason,
@@ -189,5 +189,12 @@ loads:
         assert_eq!(doc["why"], "safe state: point \"grid\" is frozen (the same reading for over 20 s)", "{doc}");
         let stale = state_topics(&site, &failsafe, &["point \"grid\" is stale".to_owned()]);
         assert_ne!(state[0].key, stale[0].key);
+        // With no fresh grid reading the surplus is unknown, not 0 W.
+        let site_doc: serde_json::Value = serde_json::from_str(&stale.last().unwrap().payload).unwrap();
+        assert!(site_doc["surplus"].is_null() && site_doc["grid"].is_null(), "{site_doc}");
+        let known =
+            state_topics(&site, &Decisions { grid: Some(Power(-300.0)), surplus: Power(300.0), ..d.clone() }, &[]);
+        let site_doc: serde_json::Value = serde_json::from_str(&known.last().unwrap().payload).unwrap();
+        assert_eq!(site_doc["surplus"], 300.0, "{site_doc}");
     }
 }

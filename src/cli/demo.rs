@@ -157,7 +157,8 @@ pub fn render(f: &Frame) -> String {
         None if off_grid => String::new(),
         None => " · inverter limit: no limit control".to_owned(),
     };
-    line(format!("  controller: mode {} · surplus {}{limit}", s.mode, kw(s.surplus_w)));
+    let surplus = s.surplus_w.map_or_else(|| "unknown".to_owned(), kw);
+    line(format!("  controller: mode {} · surplus {surplus}{limit}", s.mode));
     match (f.plant.tank_c, f.plant.tank_top_c) {
         (Some(t), Some(top)) => {
             line(format!("  tank {t:.1} °C at its sensor, {top:.1} °C at the top (what the taps get)"))

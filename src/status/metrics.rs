@@ -147,12 +147,7 @@ fn site(r: &mut Registry, s: &Status) {
         "the rest of the household: PV + grid − managed loads − a self-run battery's charging (absent unless all are fresh)",
         s.house_w,
     );
-    watts(
-        r,
-        "surplus",
-        "surplus the engine saw: export + managed loads on + PV held back by curtailment",
-        Some(s.surplus_w),
-    );
+    watts(r, "surplus", "surplus the engine saw: export + managed loads on + PV held back by curtailment", s.surplus_w);
     if let Some(inv) = &s.inverter {
         watts(r, "inverter_rated", "the inverter's rated AC power (100 % of a limit)", Some(inv.rated_w));
         watts(r, "inverter_limit", "the inverter's active-power limit (absent while unlimited)", inv.limit_w);

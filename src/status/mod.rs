@@ -40,7 +40,7 @@ pub struct Status {
     pub house_w: Option<f64>,
     /// Surplus the engine saw: export plus what the managed loads draw plus the
     /// headroom hidden by curtailment.
-    pub surplus_w: f64,
+    pub surplus_w: Option<f64>,
     /// The inverter's power limit; `null` when the site has no limit control.
     pub inverter: Option<InverterStatus>,
     /// Managed loads in priority order.
@@ -269,6 +269,16 @@ pub fn house_power(pv: Option<f64>, grid: Option<f64>, managed: f64, battery: Op
     Some((pv? + grid? - managed - battery).max(0.0).round())
 }
 
+/// Whether the engine's surplus rests on fresh readings: the grid meter on a grid-tied
+/// site, the battery's signals off-grid (lost ones put the site in fail-safe). While
+/// it does not, the surplus is unknown (`null`), not 0 W.
+pub fn surplus_known(site: &Site, d: &crate::engine::Decisions) -> bool {
+    match site.connection {
+        Connection::Grid { .. } => d.grid.is_some(),
+        Connection::OffGrid(_) => d.mode != crate::engine::Mode::Failsafe,
+    }
+}
+
 /// Why a load's command cannot reach it, if it cannot: the first device it is written
 /// through that is down, with the reason the link gave.
 pub fn not_delivered(site: &Site, load: &Load, command: Command, health: &[DeviceHealth]) -> Option<String> {
@@ -361,7 +371,7 @@ pub fn build(
         grid_w: d.grid.map(|g| g.0.round()),
         pv_w: pv.map(f64::round),
         house_w: house,
-        surplus_w: d.surplus.0.round(),
+        surplus_w: surplus_known(site, d).then(|| d.surplus.0.round()),
         inverter: site.inverter.as_ref().map(|ic| InverterStatus {
             limit_w: d.inverter_limit.map(|p| p.0.round()),
             rated_w: ic.rated.0,
