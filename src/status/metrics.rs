@@ -291,7 +291,9 @@ mod tests {
         let text = render(&status).unwrap();
         assert!(text.contains(r#"site="Rose \"Mead\"\\\nEast""#), "{text}");
         assert!(!text.contains("spillway_grid_watts{"), "unknown grid power is left out:\n{text}");
-        assert!(text.contains("spillway_surplus_watts{"), "{text}");
+        assert!(!text.contains("spillway_surplus_watts{"), "an unknown surplus is left out:\n{text}");
+        let known = render(&Status { surplus_w: Some(250.0), ..status.clone() }).unwrap();
+        assert!(known.contains("spillway_surplus_watts{"), "{known}");
         assert!(text.ends_with("# EOF\n"));
         assert!(!text.contains("replay_log"), "no replay log, no replay-log metrics:\n{text}");
         let logging = Status {
