@@ -468,3 +468,58 @@ points:
     assert_eq!(broker.retained("plughouse/read/status"), None, "{out}");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// A relay module that refuses a switching order (a coil address it does not have, as
+/// a module at another address or of another make answers): the controller's warning
+/// says the write was refused, not "ignored", names the load it was for and what to
+/// check. Reads keep their own wording. (Modbus exception 0x02, Illegal Data Address:
+/// Modbus Application Protocol Specification V1.1b3, section 7.)
+#[tokio::test]
+async fn a_refused_switching_order_names_its_load_and_what_to_check() {
+    use tokio::io::{AsyncBufReadExt, BufReader};
+    let plant = Plant::start(0.0).await;
+    plant.devices.with(|s| {
+        s.exceptions.insert((5, 0), ExceptionCode::IllegalDataAddress);
+        s.exceptions.insert((15, 0), ExceptionCode::IllegalDataAddress);
+    });
+    let dir = std::env::temp_dir().join(format!("spillway-commission-refused-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let site = dir.join("bench.yaml");
+    std::fs::write(&site, plant.site_yaml(LOADS, "")).unwrap();
+    let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .arg("run")
+        .arg(&site)
+        .arg("--state")
+        .arg(dir.join("bench.state.json"))
+        .env_remove("RUST_LOG")
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::piped())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let mut lines = BufReader::new(child.stderr.take().unwrap()).lines();
+    let mut log = String::new();
+    let found = tokio::time::timeout(Duration::from_secs(30), async {
+        while let Some(line) = lines.next_line().await.unwrap() {
+            log.push_str(&line);
+            log.push('\n');
+            if line.contains("write refused by the device") {
+                return line;
+            }
+        }
+        String::new()
+    })
+    .await;
+    let _ = child.start_kill();
+    let _ = child.wait().await;
+    let line = found.unwrap_or_else(|_| panic!("no refused write logged within 30 s:\n{log}"));
+    assert!(line.contains("device=relays") && line.contains("address=0"), "{line}");
+    assert!(line.contains("written_for=water_heater"), "the load the coil switches: {line}");
+    assert!(
+        line.contains("the coil address 0 and the `unit` of device \\\"relays\\\" in the site file")
+            || line.contains("the coil address 0 and the `unit` of device \"relays\" in the site file"),
+        "{line}"
+    );
+    assert!(!log.contains("exception response ignored"), "{log}");
+    let _ = std::fs::remove_dir_all(&dir);
+}
