@@ -523,3 +523,60 @@ async fn a_refused_switching_order_names_its_load_and_what_to_check() {
     assert!(!log.contains("exception response ignored"), "{log}");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// A relay module has no points, only the coils the loads switch: `read` reads those
+/// back (it writes nothing), so a module that is unplugged behind its gateway or set to
+/// another unit id shows as not answering — exit 1, FAIL in the record — instead of
+/// `(no points configured)` and a PASS. (Read-back of a coil with function 1, Read
+/// Coils: Modbus Application Protocol Specification V1.1b3, section 6.1; a gateway's
+/// 0x0B for a unit it cannot reach: section 7.)
+#[tokio::test]
+async fn read_asks_a_relay_module_with_no_points_for_its_coils() {
+    let plant = Plant::start(0.0).await;
+    let dir = std::env::temp_dir().join(format!("spillway-commission-relays-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("bench.yaml");
+    let yaml = plant.site_yaml(LOADS, "");
+    std::fs::write(&path, &yaml).unwrap();
+    let site = path.display().to_string();
+    let record = dir.join("record.md").display().to_string();
+
+    // Present: its coils, decoded, and nothing written.
+    plant.devices.unit(3, |u| {
+        u.coils.insert(1, true);
+    });
+    plant.devices.take_log();
+    let (code, out, err) = spillway(&["read", &site, "--device", "relays", "--record", &record]).await;
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert!(out.contains("  coil 0 (water_heater) off\n"), "{out}");
+    assert!(out.contains("  coil 1 (pool_pump) on\n"), "{out}");
+    assert!(!out.contains("no points configured"), "{out}");
+    let log = plant.devices.take_log();
+    assert!(log.iter().any(|r| r.unit == 3 && r.function == 1), "the coils were read: {log:?}");
+    assert!(log.iter().all(|r| matches!(r.function, 1..=4)), "read only, never a write: {log:?}");
+    assert_eq!(plant.devices.coil(3, 1), Some(true), "left as found");
+
+    // Silent (unplugged behind its gateway): not answering.
+    plant.devices.set_silent(true);
+    let (code, out, _) = spillway(&["read", &site, "--device", "relays", "--record", &record]).await;
+    plant.devices.set_silent(false);
+    assert_eq!(code, 1, "{out}");
+    assert!(out.contains("error: the device does not answer: no answer within 500 ms"), "{out}");
+    let text = std::fs::read_to_string(&record).unwrap();
+    assert_eq!(text.matches("- result: **PASS**").count(), 1, "{text}");
+    assert_eq!(text.matches("- result: **FAIL**").count(), 1, "{text}");
+
+    // Another unit id: the gateway answers only exceptions, which is no answer either.
+    std::fs::write(&path, yaml.replace("unit: 3,", "unit: 9,")).unwrap();
+    let (code, out, _) = spillway(&["read", &site, "--device", "relays"]).await;
+    assert_eq!(code, 1, "{out}");
+    assert!(out.contains("coil 0 (water_heater) not read: exception"), "{out}");
+    assert!(out.contains("error: the device does not answer: exception"), "{out}");
+
+    // A device with points lists the targets it carries too: the inverter's limit.
+    std::fs::write(&path, &yaml).unwrap();
+    let (code, out, err) = spillway(&["read", &site, "--device", "inverter"]).await;
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert!(out.contains("  holding 10 (inverter limit) 5000.0 W  [0x1388]"), "{out}");
+    let _ = std::fs::remove_dir_all(&dir);
+}
