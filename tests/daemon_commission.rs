@@ -580,3 +580,58 @@ async fn read_asks_a_relay_module_with_no_points_for_its_coils() {
     assert!(out.contains("  holding 10 (inverter limit) 5000.0 W  [0x1388]"), "{out}");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// A no-export site with no inverter Spillway may curtail (warning C0254): in fail-safe
+/// the loads go off and the PV's surplus is exported. `failsafe-test` judges that export
+/// in the safe state (from the meter's readings once its link returns, while the
+/// recovery hold keeps the safe state) and fails, saying why; the bound is ENA EREC
+/// G100 Issue 1's 5 s.
+#[tokio::test]
+async fn failsafe_test_fails_a_safe_state_that_exports_with_nothing_to_curtail() {
+    use tokio::io::{AsyncBufReadExt, BufReader};
+    let plant = Plant::start(4500.0).await;
+    let dir = std::env::temp_dir().join(format!("spillway-commission-nocurtail-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("bench.yaml");
+    let yaml = plant.site_yaml(LOADS, "");
+    let inverter =
+        "inverter:\n  rated: 5kW\n  limit: { device: inverter, register: 10 }\n  limit_unit: W\n  safe_limit: 0W\n";
+    assert!(yaml.contains(inverter), "{yaml}");
+    std::fs::write(&path, yaml.replace(inverter, "")).unwrap();
+    let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(["failsafe-test", &path.display().to_string(), "--yes", "--watch", "3s", "--wait", "30s"])
+        .env_remove("RUST_LOG")
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::null())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
+    let mut out = String::new();
+    let run = async {
+        while let Some(line) = lines.next_line().await.unwrap() {
+            if line.starts_with("DISCONNECT") {
+                plant.meter.set_silent(true);
+            } else if line.contains("RECONNECT") {
+                plant.meter.set_silent(false);
+            }
+            out.push_str(&line);
+            out.push('\n');
+        }
+        child.wait().await.unwrap()
+    };
+    let status = tokio::time::timeout(Duration::from_secs(120), run).await.expect("the test ends");
+    println!("{out}");
+    assert_eq!(status.code(), Some(1), "{out}");
+    let line = out.lines().find(|l| l.starts_with("export in fail-safe:")).unwrap_or_default();
+    assert!(line.contains("above the limit (0 W) for "), "{out}");
+    assert!(line.contains("from the safe state on: nothing could curtail it"), "{out}");
+    assert!(line.contains("in the meter's readings after its return, the safe state still held"), "{out}");
+    assert!(out.contains("but the safe state exported: see below"), "{out}");
+    assert!(
+        out.contains("note: this site has no inverter Spillway may curtail (warning C0254): in fail-safe, with its loads off, all surplus is exported; limit export in hardware or give Spillway the inverter's limit"),
+        "{out}"
+    );
+    assert!(out.contains("result: FAIL"), "{out}");
+    let _ = std::fs::remove_dir_all(&dir);
+}
