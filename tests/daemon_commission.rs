@@ -468,3 +468,170 @@ points:
     assert_eq!(broker.retained("plughouse/read/status"), None, "{out}");
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// A relay module that refuses a switching order (a coil address it does not have, as
+/// a module at another address or of another make answers): the controller's warning
+/// says the write was refused, not "ignored", names the load it was for and what to
+/// check. Reads keep their own wording. (Modbus exception 0x02, Illegal Data Address:
+/// Modbus Application Protocol Specification V1.1b3, section 7.)
+#[tokio::test]
+async fn a_refused_switching_order_names_its_load_and_what_to_check() {
+    use tokio::io::{AsyncBufReadExt, BufReader};
+    let plant = Plant::start(0.0).await;
+    plant.devices.with(|s| {
+        s.exceptions.insert((5, 0), ExceptionCode::IllegalDataAddress);
+        s.exceptions.insert((15, 0), ExceptionCode::IllegalDataAddress);
+    });
+    let dir = std::env::temp_dir().join(format!("spillway-commission-refused-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let site = dir.join("bench.yaml");
+    std::fs::write(&site, plant.site_yaml(LOADS, "")).unwrap();
+    let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .arg("run")
+        .arg(&site)
+        .arg("--state")
+        .arg(dir.join("bench.state.json"))
+        .env_remove("RUST_LOG")
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::piped())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let mut lines = BufReader::new(child.stderr.take().unwrap()).lines();
+    let mut log = String::new();
+    let found = tokio::time::timeout(Duration::from_secs(30), async {
+        while let Some(line) = lines.next_line().await.unwrap() {
+            log.push_str(&line);
+            log.push('\n');
+            if line.contains("write refused by the device") {
+                return line;
+            }
+        }
+        String::new()
+    })
+    .await;
+    let _ = child.start_kill();
+    let _ = child.wait().await;
+    let line = found.unwrap_or_else(|_| panic!("no refused write logged within 30 s:\n{log}"));
+    assert!(line.contains("device=relays") && line.contains("address=0"), "{line}");
+    assert!(line.contains("written_for=water_heater"), "the load the coil switches: {line}");
+    assert!(
+        line.contains("the coil address 0 and the `unit` of device \\\"relays\\\" in the site file")
+            || line.contains("the coil address 0 and the `unit` of device \"relays\" in the site file"),
+        "{line}"
+    );
+    assert!(!log.contains("exception response ignored"), "{log}");
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+/// A relay module has no points, only the coils the loads switch: `read` reads those
+/// back (it writes nothing), so a module that is unplugged behind its gateway or set to
+/// another unit id shows as not answering — exit 1, FAIL in the record — instead of
+/// `(no points configured)` and a PASS. (Read-back of a coil with function 1, Read
+/// Coils: Modbus Application Protocol Specification V1.1b3, section 6.1; a gateway's
+/// 0x0B for a unit it cannot reach: section 7.)
+#[tokio::test]
+async fn read_asks_a_relay_module_with_no_points_for_its_coils() {
+    let plant = Plant::start(0.0).await;
+    let dir = std::env::temp_dir().join(format!("spillway-commission-relays-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("bench.yaml");
+    let yaml = plant.site_yaml(LOADS, "");
+    std::fs::write(&path, &yaml).unwrap();
+    let site = path.display().to_string();
+    let record = dir.join("record.md").display().to_string();
+
+    // Present: its coils, decoded, and nothing written.
+    plant.devices.unit(3, |u| {
+        u.coils.insert(1, true);
+    });
+    plant.devices.take_log();
+    let (code, out, err) = spillway(&["read", &site, "--device", "relays", "--record", &record]).await;
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert!(out.contains("  coil 0 (water_heater) off\n"), "{out}");
+    assert!(out.contains("  coil 1 (pool_pump) on\n"), "{out}");
+    assert!(!out.contains("no points configured"), "{out}");
+    let log = plant.devices.take_log();
+    assert!(log.iter().any(|r| r.unit == 3 && r.function == 1), "the coils were read: {log:?}");
+    assert!(log.iter().all(|r| matches!(r.function, 1..=4)), "read only, never a write: {log:?}");
+    assert_eq!(plant.devices.coil(3, 1), Some(true), "left as found");
+
+    // Silent (unplugged behind its gateway): not answering.
+    plant.devices.set_silent(true);
+    let (code, out, _) = spillway(&["read", &site, "--device", "relays", "--record", &record]).await;
+    plant.devices.set_silent(false);
+    assert_eq!(code, 1, "{out}");
+    assert!(out.contains("error: the device does not answer: no answer within 500 ms"), "{out}");
+    let text = std::fs::read_to_string(&record).unwrap();
+    assert_eq!(text.matches("- result: **PASS**").count(), 1, "{text}");
+    assert_eq!(text.matches("- result: **FAIL**").count(), 1, "{text}");
+
+    // Another unit id: the gateway answers only exceptions, which is no answer either.
+    std::fs::write(&path, yaml.replace("unit: 3,", "unit: 9,")).unwrap();
+    let (code, out, _) = spillway(&["read", &site, "--device", "relays"]).await;
+    assert_eq!(code, 1, "{out}");
+    assert!(out.contains("coil 0 (water_heater) not read: exception"), "{out}");
+    assert!(out.contains("error: the device does not answer: exception"), "{out}");
+
+    // A device with points lists the targets it carries too: the inverter's limit.
+    std::fs::write(&path, &yaml).unwrap();
+    let (code, out, err) = spillway(&["read", &site, "--device", "inverter"]).await;
+    assert_eq!(code, 0, "{out}\n{err}");
+    assert!(out.contains("  holding 10 (inverter limit) 5000.0 W  [0x1388]"), "{out}");
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
+/// A no-export site with no inverter Spillway may curtail (warning C0254): in fail-safe
+/// the loads go off and the PV's surplus is exported. `failsafe-test` judges that export
+/// in the safe state (from the meter's readings once its link returns, while the
+/// recovery hold keeps the safe state) and fails, saying why; the bound is ENA EREC
+/// G100 Issue 1's 5 s.
+#[tokio::test]
+async fn failsafe_test_fails_a_safe_state_that_exports_with_nothing_to_curtail() {
+    use tokio::io::{AsyncBufReadExt, BufReader};
+    let plant = Plant::start(4500.0).await;
+    let dir = std::env::temp_dir().join(format!("spillway-commission-nocurtail-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("bench.yaml");
+    let yaml = plant.site_yaml(LOADS, "");
+    let inverter =
+        "inverter:\n  rated: 5kW\n  limit: { device: inverter, register: 10 }\n  limit_unit: W\n  safe_limit: 0W\n";
+    assert!(yaml.contains(inverter), "{yaml}");
+    std::fs::write(&path, yaml.replace(inverter, "")).unwrap();
+    let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(["failsafe-test", &path.display().to_string(), "--yes", "--watch", "3s", "--wait", "30s"])
+        .env_remove("RUST_LOG")
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::null())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
+    let mut out = String::new();
+    let run = async {
+        while let Some(line) = lines.next_line().await.unwrap() {
+            if line.starts_with("DISCONNECT") {
+                plant.meter.set_silent(true);
+            } else if line.contains("RECONNECT") {
+                plant.meter.set_silent(false);
+            }
+            out.push_str(&line);
+            out.push('\n');
+        }
+        child.wait().await.unwrap()
+    };
+    let status = tokio::time::timeout(Duration::from_secs(120), run).await.expect("the test ends");
+    println!("{out}");
+    assert_eq!(status.code(), Some(1), "{out}");
+    let line = out.lines().find(|l| l.starts_with("export in fail-safe:")).unwrap_or_default();
+    assert!(line.contains("above the limit (0 W) for "), "{out}");
+    assert!(line.contains("from the safe state on: nothing could curtail it"), "{out}");
+    assert!(line.contains("in the meter's readings after its return, the safe state still held"), "{out}");
+    assert!(out.contains("but the safe state exported: see below"), "{out}");
+    assert!(
+        out.contains("note: this site has no inverter Spillway may curtail (warning C0254): in fail-safe, with its loads off, all surplus is exported; limit export in hardware or give Spillway the inverter's limit"),
+        "{out}"
+    );
+    assert!(out.contains("result: FAIL"), "{out}");
+    let _ = std::fs::remove_dir_all(&dir);
+}

@@ -2,7 +2,9 @@
 //! the controller runs on the live site; the installer disconnects the grid meter's
 //! data link when told and reconnects it when told; the way to the safe state and the
 //! return are timed, for the commissioning record. Exit 0 when the site reached its safe
-//! state within the bound and returned without lasting export, 1 otherwise.
+//! state within the bound, did not export above its limit for that long in it (on a site
+//! with no inverter to curtail, the loads off leave the surplus to the grid), and
+//! returned without lasting export; 1 otherwise.
 
 use std::fmt::Write as _;
 use std::io::{BufRead, IsTerminal, Write};
@@ -13,6 +15,8 @@ use std::time::Duration;
 
 use spillway::config::model::Site;
 use spillway::daemon::failsafe_test::{self, FailsafePhase, FailsafeReport, FailsafeTestOptions};
+#[cfg(test)]
+use spillway::daemon::failsafe_test::{ExportSeen, FailsafeExport};
 use spillway::daemon::{self, Daemon, Options};
 use spillway::units::{Power, Timestamp, format_duration};
 
@@ -76,10 +80,13 @@ pub fn run(args: FailsafeTestArgs, format: LogFormat) -> anyhow::Result<ExitCode
         return Ok(ExitCode::from(2));
     }
     println!(
-        "fail-safe test: {} (export {}). Spillway will run the site as `spillway run` does. When told, disconnect the grid meter's data link (point \"{grid}\": unplug its cable or power off its gateway); the site must reach its safe state — loads in their safe states, the inverter at {} — within {}. Then reconnect it when told.",
+        "fail-safe test: {} (export {}). Spillway will run the site as `spillway run` does. When told, disconnect the grid meter's data link (point \"{grid}\": unplug its cable or power off its gateway); the site must reach its safe state — loads in their safe states, {} — within {}. Then reconnect it when told.",
         site.name,
         spillway::status::export_policy(&site),
-        site.inverter.as_ref().map_or_else(|| "its safe limit".to_owned(), |i| i.safe_limit.to_string()),
+        site.inverter.as_ref().map_or_else(
+            || "no inverter Spillway may curtail (C0254), so the surplus is exported meanwhile".to_owned(),
+            |i| format!("the inverter at {}", i.safe_limit)
+        ),
         format_duration(args.within)
     );
     if !args.yes {
@@ -182,24 +189,76 @@ pub fn describe(site: &Site, grid: &str, r: &FailsafeReport) -> String {
         row("loads", "NOT tested: no load was on when the link dropped".to_owned());
     }
     row("rules in charge again", at(r.back_at));
+    let failsafe_export_fails = r.export_in_failsafe.is_some_and(|e| e.lasted >= r.within);
     let _ = writeln!(
         out,
-        "time to the safe state: {:.1} s (bound {})",
+        "time to the safe state: {:.1} s (bound {}){}",
         r.time_to_safe().as_secs_f64(),
-        format_duration(r.within)
+        format_duration(r.within),
+        if failsafe_export_fails { ", but the safe state exported: see below" } else { "" }
     );
-    match r.export_after {
+    let limit = Power(r.limit_w);
+    match (&r.export_in_failsafe, r.safe_state_readings) {
+        (Some(e), _) => {
+            let how = if e.measured {
+                "in the meter's readings after its return, the safe state still held"
+            } else {
+                "estimated: the last reading before the loss less the loads switched off (no reading came while the safe state held)"
+            };
+            // Nothing could curtail it on such a site, so it stood from the safe state on.
+            let since = if r.curtailable { "" } else { ", from the safe state on: nothing could curtail it" };
+            let _ = writeln!(
+                out,
+                "export in fail-safe: {} above the limit ({limit}) for {:.1} s (bound {}){since}; {how}",
+                Power(e.peak_w.round()),
+                e.lasted.as_secs_f64(),
+                format_duration(r.within)
+            );
+        }
+        (None, 0) if r.curtailable => {
+            let _ = writeln!(
+                out,
+                "export in fail-safe: not measured (no reading came while the safe state held); the inverter was ordered to its safe limit"
+            );
+        }
+        (None, 0) => {
+            let _ = writeln!(
+                out,
+                "export in fail-safe: none above the limit expected from the last reading before the loss less the loads switched off (no reading came while the safe state held)"
+            );
+        }
+        (None, _) => {
+            let _ = writeln!(out, "export in fail-safe: none above the limit in the readings after the meter's return");
+        }
+    }
+    match &r.export_after {
         None => {
             let _ = writeln!(out, "export after the return: none above the limit while watched");
         }
-        Some((peak, longest)) => {
+        Some(e) => {
+            let watched = format_duration(e.watched);
+            let how_long = if e.whole {
+                format!("for the whole {watched} watched")
+            } else if e.to_the_end {
+                format!(
+                    "for the last {:.1} s of the {watched} watched, still exporting at its end",
+                    e.longest.as_secs_f64()
+                )
+            } else {
+                format!("for {:.1} s at the longest, of the {watched} watched", e.longest.as_secs_f64())
+            };
             let _ = writeln!(
                 out,
-                "export after the return: up to {} for {:.1} s at most",
-                Power(peak.round()),
-                longest.as_secs_f64()
+                "export after the return: up to {} above the limit ({limit}), {how_long}",
+                Power(e.peak_w.round())
             );
         }
+    }
+    if !r.curtailable && (r.export_in_failsafe.is_some() || r.export_after.is_some()) {
+        let _ = writeln!(
+            out,
+            "note: this site has no inverter Spillway may curtail (warning C0254): in fail-safe, with its loads off, all surplus is exported; limit export in hardware or give Spillway the inverter's limit"
+        );
     }
     let verdict = match (r.passed(), r.loads_off.is_empty(), site.inverter.is_some()) {
         (false, _, _) => "FAIL",
@@ -228,6 +287,10 @@ mod tests {
             loads_off: vec![("water_heater".to_owned(), Some(t(3)))],
             back_at: t(41),
             export_after: None,
+            export_in_failsafe: None,
+            safe_state_readings: 8,
+            curtailable: true,
+            limit_w: 0.0,
             within: Duration::from_secs(5),
         }
     }
@@ -271,10 +334,100 @@ mod tests {
         unseen.loads_off[0].1 = None;
         assert!(!unseen.passed(), "a load never seen off");
         let mut exported = report();
-        exported.export_after = Some((800.0, Duration::from_secs(6)));
+        let seen = |longest: u64| ExportSeen {
+            peak_w: 800.0,
+            longest: Duration::from_secs(longest),
+            watched: Duration::from_secs(60),
+            whole: false,
+            to_the_end: false,
+        };
+        exported.export_after = Some(seen(6));
         assert!(!exported.passed(), "export outlasting the bound after the return");
-        exported.export_after = Some((800.0, Duration::from_secs(2)));
+        exported.export_after = Some(seen(2));
         assert!(exported.passed(), "a blip shorter than the bound is reported, not failed");
-        assert!(describe(&site(), "grid", &exported).contains("up to 800 W for 2.0 s at most"));
+        assert!(
+            describe(&site(), "grid", &exported)
+                .contains("export after the return: up to 800 W above the limit (0 W), for 2.0 s at the longest, of the 1 min watched\n"),
+            "{}",
+            describe(&site(), "grid", &exported)
+        );
+    }
+
+    /// A no-export site with no inverter Spillway may curtail (warning C0254): in
+    /// fail-safe its loads go off and the PV's whole surplus is exported. That is judged
+    /// as export in the safe state (ENA EREC G100 Issue 1: export above the limit must
+    /// stop within 5 s), says why, and the export that lasted the whole watch says so
+    /// rather than "at most".
+    #[test]
+    fn a_safe_state_that_exports_with_nothing_to_curtail_fails_and_says_why() {
+        let mut site = site();
+        site.inverter = None;
+        let t = |ms: i64| Timestamp(1_782_036_000_000 + ms);
+        let r = FailsafeReport {
+            last_reading: t(0),
+            failsafe_at: t(3000),
+            limit_at: None,
+            pv_safe_at: None,
+            pv_watched: false,
+            loads_off: vec![("water_heater".to_owned(), Some(t(3500)))],
+            back_at: t(41_000),
+            export_after: Some(ExportSeen {
+                peak_w: 3101.0,
+                longest: Duration::from_secs(20),
+                watched: Duration::from_secs(20),
+                whole: true,
+                to_the_end: true,
+            }),
+            export_in_failsafe: Some(FailsafeExport {
+                peak_w: 3080.0,
+                lasted: Duration::from_millis(37_500),
+                measured: true,
+            }),
+            safe_state_readings: 10,
+            curtailable: false,
+            limit_w: 0.0,
+            within: Duration::from_secs(5),
+        };
+        assert!(!r.passed());
+        let text = describe(&site, "grid", &r);
+        assert!(
+            text.contains("time to the safe state: 3.5 s (bound 5 s), but the safe state exported: see below\n"),
+            "{text}"
+        );
+        assert!(
+            text.contains("export in fail-safe: 3.08 kW above the limit (0 W) for 37.5 s (bound 5 s), from the safe state on: nothing could curtail it; in the meter's readings after its return, the safe state still held\n"),
+            "{text}"
+        );
+        assert!(
+            text.contains(
+                "export after the return: up to 3.101 kW above the limit (0 W), for the whole 20 s watched\n"
+            ),
+            "{text}"
+        );
+        assert!(
+            text.contains("note: this site has no inverter Spillway may curtail (warning C0254): in fail-safe, with its loads off, all surplus is exported; limit export in hardware or give Spillway the inverter's limit\n"),
+            "{text}"
+        );
+        assert!(text.ends_with("result: FAIL\n"), "{text}");
+
+        // The same site when the loads that went off left no surplus to export: no
+        // inverter limit to see ordered, and a pass.
+        let calm = FailsafeReport { export_after: None, export_in_failsafe: None, ..r };
+        assert!(calm.passed(), "a site without an inverter has no limit to order");
+        let text = describe(&site, "grid", &calm);
+        assert!(
+            text.contains("export in fail-safe: none above the limit in the readings after the meter's return\n"),
+            "{text}"
+        );
+        assert!(!text.contains("C0254"), "{text}");
+        assert!(text.ends_with("result: PASS\n"), "{text}");
+
+        // A short export in the safe state is reported, not failed.
+        let blip = FailsafeReport {
+            export_in_failsafe: Some(FailsafeExport { peak_w: 300.0, lasted: Duration::from_secs(2), measured: true }),
+            export_after: None,
+            ..calm
+        };
+        assert!(blip.passed());
     }
 }

@@ -1,6 +1,9 @@
 //! `spillway read SITE.yaml [--device NAME] [--record FILE]`: every point read once, raw and decoded,
-//! for an installer checking the wiring. Exit 0 when everything answered, 1 otherwise; a
-//! value outside its unit's physical range gets a note, not exit 1 (see `plausibility`).
+//! for an installer checking the wiring, and the coils and registers the site's loads
+//! write read back (never written). Exit 0 when everything answered, 1 otherwise (a
+//! device with only actuators counts as answering when a read-back drew a normal
+//! answer); a value outside its unit's physical range gets a note, not exit 1 (see
+//! `plausibility`).
 
 use std::fmt::Write as _;
 use std::path::PathBuf;
@@ -10,6 +13,7 @@ use std::time::Duration;
 use spillway::actuators::modbus::limit_model_note;
 use spillway::config::model::{DeviceId, PointId, PointRead, Scale, Site, ValueType, Write};
 use spillway::daemon::commission;
+use spillway::sources::modbus::probe::TargetReading;
 use spillway::units::{Dimension, Power, trim_number};
 
 use super::logging::{self, LogFormat};
@@ -39,6 +43,21 @@ fn value_text(site: &Site, point: PointId, v: f64) -> String {
     let unit = p.dimension.base_unit();
     let v = (v * 1000.0).round() / 1000.0;
     if unit.is_empty() { trim_number(v) } else { format!("{} {unit}", trim_number(v)) }
+}
+
+/// A read-back actuator target: a coil `on`/`off`, a register in the unit it is
+/// written in (`0.0 %`, `16.0 A`; a stage number bare) with its raw words.
+fn target_text(t: &TargetReading, unit: &str) -> String {
+    let v = match &t.value {
+        Ok(v) => *v,
+        Err(e) => return format!("not read: {e}"),
+    };
+    if matches!(t.write, Write::Coil { .. }) {
+        return if v != 0.0 { "on".to_owned() } else { "off".to_owned() };
+    }
+    let raw: Vec<String> = t.raw.iter().map(|w| format!("0x{w:04X}")).collect();
+    let shown = if unit.is_empty() { trim_number(v) } else { format!("{v:.1} {unit}") };
+    format!("{shown}  [{}]", raw.join(" "))
 }
 
 /// A note for a value outside what its unit can physically be: a percentage outside
@@ -155,8 +174,11 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
                 if let Some(note) = limit_note(&site, d.device, &probe.models) {
                     let _ = writeln!(out, "  {note}");
                 }
-                if probe.points.is_empty() {
+                let actuators = commission::actuator_targets(&site, d.device);
+                if probe.points.is_empty() && probe.targets.is_empty() {
                     let _ = writeln!(out, "  (no points configured)");
+                } else if probe.points.is_empty() {
+                    let _ = writeln!(out, "  (no points; the site's actuators on it read back, nothing written)");
                 }
                 let origin_width = probe.points.iter().map(|r| r.origin.chars().count()).max().unwrap_or(0).max(18);
                 for r in &probe.points {
@@ -178,6 +200,22 @@ pub fn run(args: ReadArgs, format: LogFormat) -> anyhow::Result<ExitCode> {
                     if let Some(note) = r.value.as_ref().ok().and_then(|v| plausibility(&site, r.point, *v)) {
                         let _ = writeln!(out, "    note: {note}");
                     }
+                }
+                if !probe.points.is_empty() && !probe.targets.is_empty() {
+                    let _ = writeln!(out, "  actuators, read back (nothing written):");
+                }
+                for t in &probe.targets {
+                    let label = actuators.iter().find(|a| a.write == t.write);
+                    let what = label.map_or("", |a| a.what.as_str());
+                    let _ = writeln!(out, "  {} ({what}) {}", t.origin, target_text(t, label.map_or("", |a| a.unit)));
+                }
+                // A device with nothing but actuators is judged by whether it answers
+                // their read-back: silence, or nothing but exceptions, is a device not
+                // answering (a module unplugged behind a gateway, a wrong unit id).
+                if probe.points.is_empty() && !probe.targets.is_empty() && !probe.answered {
+                    problems += 1;
+                    let why = probe.targets.iter().find_map(|t| t.value.as_ref().err()).map_or("", String::as_str);
+                    let _ = writeln!(out, "  error: the device does not answer: {why}");
                 }
             }
         }

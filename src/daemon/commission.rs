@@ -16,7 +16,7 @@ use tokio_util::task::TaskTracker;
 
 use super::{DaemonError, runtime};
 use crate::actuators::{DesiredWrite, DeviceCommands, MqttOutputs, load_levels};
-use crate::config::model::{DeviceId, Link, LoadId, PointId, Site};
+use crate::config::model::{DeviceId, LimitUnit, Link, LoadId, LoadKind, PointId, Site, StageCommand, Write};
 use crate::engine::Command;
 use crate::sources::modbus::probe::{self, DeviceProbe};
 use crate::sources::{Clock, ModbusLink, ModbusOptions, MqttLink, MqttOptions, SerialLines, SourceEvent};
@@ -74,6 +74,77 @@ pub fn read(
         };
         Ok((devices, mqtt))
     })
+}
+
+/// One Modbus target the site writes on a device, with what it is for.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ActuatorTarget {
+    /// The target.
+    pub write: Write,
+    /// What writes it: the load's name (`water_heater`), with the role where the load
+    /// has several (`immersion setpoint`, `heater stage 2`), or `inverter limit`.
+    pub what: String,
+    /// The unit of the value written (`%`, `A`, `W`); empty for a relay or a stage.
+    pub unit: &'static str,
+}
+
+/// Every coil and holding register the site's loads and inverter limit write on
+/// `device`, in the site file's order (each once). MQTT targets are left out: they are
+/// published, not read back.
+pub fn actuator_targets(site: &Site, device: DeviceId) -> Vec<ActuatorTarget> {
+    let mut all: Vec<(&Write, String, &'static str)> = Vec::new();
+    for l in &site.loads {
+        let n = &l.name;
+        match &l.kind {
+            LoadKind::Switched { switch, .. } => all.push((switch, n.clone(), "")),
+            LoadKind::Stepped { command: StageCommand::Relays(relays), .. } => {
+                for (i, w) in relays.iter().enumerate() {
+                    all.push((w, format!("{n} stage {}", i + 1), ""));
+                }
+            }
+            LoadKind::Stepped { command: StageCommand::Register(w), .. } => all.push((w, format!("{n} stage"), "")),
+            LoadKind::Proportional { setpoint, enable, .. } => {
+                all.push((setpoint, format!("{n} setpoint"), "%"));
+                all.extend(enable.iter().map(|e| (e, format!("{n} enable"), "")));
+            }
+            LoadKind::Charger { setpoint, enable, .. } => {
+                all.push((setpoint, format!("{n} current"), "A"));
+                all.extend(enable.iter().map(|e| (e, format!("{n} enable"), "")));
+            }
+            LoadKind::Battery { setpoint, .. } => all.push((setpoint, format!("{n} charge power"), "W")),
+        }
+    }
+    if let Some(ic) = &site.inverter {
+        let unit = match (&ic.limit, ic.limit_unit) {
+            (Write::SunSpecLimit { .. }, _) | (_, LimitUnit::Percent) => "%",
+            (_, LimitUnit::Watts) => "W",
+        };
+        all.push((&ic.limit, "inverter limit".to_owned(), unit));
+    }
+    let mut out: Vec<ActuatorTarget> = Vec::new();
+    for (w, what, unit) in all {
+        if w.device() != device || matches!(w, Write::Mqtt { .. }) || out.iter().any(|t| t.write == *w) {
+            continue;
+        }
+        out.push(ActuatorTarget { write: w.clone(), what, unit });
+    }
+    out
+}
+
+/// What a write the device refused was for: the target a load (or the inverter limit)
+/// writes at `address` with Modbus function `function` (5 and 15 coils, 6 and 16
+/// holding registers; the first address of a multiple write). `None` for a read, or
+/// an address no load writes.
+pub fn refused_write(site: &Site, device: DeviceId, function: u8, address: u16) -> Option<ActuatorTarget> {
+    let targets = actuator_targets(site, device);
+    let at = |t: &&ActuatorTarget| match (&t.write, function) {
+        (Write::Coil { address: a, .. }, 5 | 15) | (Write::Register { address: a, .. }, 6 | 16) => *a == address,
+        _ => false,
+    };
+    // A SunSpec limit's register is found on the device, not in the site file: a
+    // refused register write on its device with no other owner is the limit's.
+    let sunspec = |t: &&ActuatorTarget| matches!((&t.write, function), (Write::SunSpecLimit { .. }, 6 | 16));
+    targets.iter().find(at).or_else(|| targets.iter().find(sunspec)).cloned()
 }
 
 /// A copy of the site whose MQTT identity cannot clash with a running daemon's.

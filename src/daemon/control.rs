@@ -553,15 +553,45 @@ impl Control {
                 });
                 let key = format!("exc/{}/{function}/{address}/{}", device.0, code.0);
                 if let Some(repeated) = self.should_log(key) {
-                    warn!(
-                        device = %self.device_name(device),
-                        function,
-                        address,
-                        code = %code,
-                        exceptions_total = total,
-                        repeated,
-                        "exception response ignored"
-                    );
+                    // A refused write is a switching order not carried out: not something
+                    // ignored. Say what it was for and where the mistake usually is.
+                    if matches!(function, 5 | 6 | 15 | 16) {
+                        let table = if matches!(function, 5 | 15) { "coil" } else { "register" };
+                        let name = self.device_name(device).to_owned();
+                        let target = super::commission::refused_write(&self.site, device, function, address);
+                        let check = match target.as_ref().map(|t| &t.write) {
+                            // The limit's register comes from the device's SunSpec map,
+                            // not from the site file.
+                            Some(crate::config::model::Write::SunSpecLimit { .. }) => format!(
+                                "that the inverter takes limit writes (its SunSpec model 123 or 704 controls, often enabled in its own settings) and the `unit` of device \"{name}\""
+                            ),
+                            _ => format!(
+                                "the {table} address {address} and the `unit` of device \"{name}\" in the site file, against the device's documentation"
+                            ),
+                        };
+                        let what = target.map_or_else(|| "no load of the site file".to_owned(), |t| t.what);
+                        warn!(
+                            device = %name,
+                            function,
+                            address,
+                            code = %code,
+                            written_for = %what,
+                            exceptions_total = total,
+                            repeated,
+                            %check,
+                            "write refused by the device"
+                        );
+                    } else {
+                        warn!(
+                            device = %self.device_name(device),
+                            function,
+                            address,
+                            code = %code,
+                            exceptions_total = total,
+                            repeated,
+                            "exception response ignored"
+                        );
+                    }
                 }
             }
             SourceEvent::Malformed { device, origin, detail } => {

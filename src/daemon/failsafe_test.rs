@@ -9,6 +9,12 @@
 //! inverter limit was ordered to its safe value, when the inverter's own PV reading fell
 //! to it, when each load that was on was switched off; then, with the link back, how
 //! long until the rules are in charge again and whether export showed on the way back.
+//! Export in the safe state itself is judged too: the meter's readings after its link
+//! returns, while the safe state still holds (the recovery hold), show what the safe
+//! state exports; on a site with no inverter to curtail, the safe state is the loads off
+//! and the PV free, so that export stood from the safe state on, and where no such
+//! reading came it is estimated from the last reading before the loss less the loads
+//! switched off.
 //!
 //! Times come from the engine's clock at one tick's resolution. The PV reading is the
 //! physical proof that the inverter obeyed; without a PV point only the command is seen.
@@ -79,11 +85,49 @@ pub struct FailsafeReport {
     pub loads_off: Vec<(String, Option<Timestamp>)>,
     /// When the rules were in charge again after the reconnection.
     pub back_at: Timestamp,
-    /// Export above the limit plus tolerance seen while watching after the return: the
-    /// highest (W) and the longest stretch.
-    pub export_after: Option<(f64, Duration)>,
+    /// Export above the limit plus tolerance seen while watching after the return.
+    pub export_after: Option<ExportSeen>,
+    /// Export above the limit plus tolerance while the site was in its safe state.
+    pub export_in_failsafe: Option<FailsafeExport>,
+    /// Grid readings that arrived while the safe state still held (after the link's
+    /// return, before the rules were in charge): what the safe state was judged on.
+    pub safe_state_readings: usize,
+    /// Whether the site has an inverter limit the fail-safe orders down; without one
+    /// (warning C0254) nothing curtails the PV in fail-safe.
+    pub curtailable: bool,
+    /// The site's export limit (W).
+    pub limit_w: f64,
     /// The verdict's bound.
     pub within: Duration,
+}
+
+/// Export above the limit plus tolerance over a watched stretch.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct ExportSeen {
+    /// The highest export (W).
+    pub peak_w: f64,
+    /// The longest stretch above the limit.
+    pub longest: Duration,
+    /// How long was watched.
+    pub watched: Duration,
+    /// The export stood from the first status watched to the last: the whole watch.
+    pub whole: bool,
+    /// Still exporting when the watch ended.
+    pub to_the_end: bool,
+}
+
+/// Export while the site was in its safe state.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct FailsafeExport {
+    /// The highest export (W): measured, or estimated (see `measured`).
+    pub peak_w: f64,
+    /// How long it lasted: on a site with nothing to curtail, from the safe state to
+    /// the last reading above the limit before the rules took charge (nothing changed
+    /// the PV's way out meanwhile); else the stretch the readings showed.
+    pub lasted: Duration,
+    /// Seen in the meter's readings after its return, while the safe state held; else
+    /// estimated from the last reading before the loss less the loads switched off.
+    pub measured: bool,
 }
 
 impl FailsafeReport {
@@ -102,11 +146,23 @@ impl FailsafeReport {
 
     /// Every safe-state event was seen, within the bound, and no export outlasted the
     /// bound after the return.
+    ///
+    /// Export above the limit in the safe state for the bound or longer fails too: a
+    /// no-export site must stop exporting within it (ENA EREC G100 Issue 1: 5 s), and a
+    /// safe state that exports has not.
     pub fn passed(&self) -> bool {
         let all_seen = self.loads_off.iter().all(|(_, t)| t.is_some())
             && (!self.pv_watched || self.pv_safe_at.is_some())
-            && self.limit_at.is_some();
-        all_seen && self.time_to_safe() <= self.within && self.export_after.is_none_or(|(_, d)| d < self.within)
+            && (!self.curtailable || self.limit_at.is_some());
+        all_seen
+            && self.time_to_safe() <= self.within
+            && self.export_in_failsafe.is_none_or(|e| e.lasted < self.within)
+            && self.export_after.is_none_or(|e| e.longest < self.within)
+    }
+
+    /// The moment the safe state was complete.
+    pub fn safe_at(&self) -> Timestamp {
+        self.last_reading.plus(self.time_to_safe())
     }
 }
 
@@ -226,20 +282,71 @@ pub async fn run(
         return Err(FailsafeTestError::NotDisconnected(options.wait));
     };
 
-    // 3. The reconnection: the rules in charge again, then a watch for export.
+    // 3. The reconnection: the rules in charge again, then a watch for export. The
+    // readings that come before the rules take charge are the safe state's own.
     phase(FailsafePhase::Reconnect);
     let mut back_at = None;
+    let mut safe_readings = 0usize;
+    let mut safe_peak: Option<f64> = None;
+    let mut safe_over: Option<(Timestamp, Timestamp)> = None;
     next_until(&mut rx, options.wait, FailsafeTestError::NotReconnected(options.wait), |s| {
         if s.mode == "normal" {
             back_at = time(s);
+            return true;
         }
-        back_at.is_some()
+        if let (Some(now), Some(g)) = (time(s), s.grid_w) {
+            safe_readings += 1;
+            if -g > over_limit {
+                safe_peak = Some(safe_peak.map_or(-g, |p: f64| p.max(-g)));
+                let first = safe_over.map_or(now, |(f, _)| f);
+                safe_over = Some((first, now));
+            }
+        }
+        false
     })
     .await?;
     let back_at = back_at.ok_or(FailsafeTestError::NotReconnected(options.wait))?;
+    let curtailable = safe_limit.is_some();
+    let mut report = FailsafeReport {
+        last_reading,
+        failsafe_at,
+        limit_at,
+        pv_safe_at,
+        pv_watched,
+        loads_off,
+        back_at,
+        export_after: None,
+        export_in_failsafe: None,
+        safe_state_readings: safe_readings,
+        curtailable,
+        limit_w: limit.0,
+        within: options.within,
+    };
+    let safe_at = report.safe_at();
+    report.export_in_failsafe = match (safe_peak, safe_over) {
+        (Some(peak_w), Some((first, last))) => Some(FailsafeExport {
+            peak_w,
+            // Nothing on the site could curtail the PV: the export found at the
+            // return is the safe state's, and stood since it was reached.
+            lasted: if curtailable { last.since(first) } else { last.since(safe_at) },
+            measured: true,
+        }),
+        _ if safe_readings > 0 || curtailable => None,
+        // No reading while the safe state held: what the loads that went off were
+        // taking from the PV is what the grid got instead.
+        _ => {
+            let taken: f64 = before.loads.iter().filter(|l| l.on).map(|l| l.power_w.max(0.0)).sum();
+            before.grid_w.map(|g| taken - g).filter(|e| *e > over_limit).map(|peak_w| FailsafeExport {
+                peak_w,
+                lasted: back_at.since(safe_at),
+                measured: false,
+            })
+        }
+    };
     let mut peak: Option<f64> = None;
     let mut longest = Duration::ZERO;
     let mut since: Option<Timestamp> = None;
+    let mut below = false;
     let watch_end = back_at.plus(options.watch_after);
     let watching = next_until(&mut rx, options.watch_after + Duration::from_secs(5), FailsafeTestError::Stopped, |s| {
         let Some(now) = time(s) else { return false };
@@ -249,7 +356,10 @@ pub async fn run(
                 let start = *since.get_or_insert(now);
                 longest = longest.max(now.since(start));
             }
-            _ => since = None,
+            _ => {
+                since = None;
+                below = true;
+            }
         }
         now >= watch_end
     })
@@ -259,17 +369,14 @@ pub async fn run(
     {
         return Err(FailsafeTestError::Stopped);
     }
-    Ok(FailsafeReport {
-        last_reading,
-        failsafe_at,
-        limit_at,
-        pv_safe_at,
-        pv_watched,
-        loads_off,
-        back_at,
-        export_after: peak.map(|p| (p, longest)),
-        within: options.within,
-    })
+    report.export_after = peak.map(|peak_w| ExportSeen {
+        peak_w,
+        longest,
+        watched: options.watch_after,
+        whole: !below,
+        to_the_end: since.is_some(),
+    });
+    Ok(report)
 }
 
 /// Waits for status documents until `done` says so; `err` when `limit` (tokio time)

@@ -3,6 +3,10 @@
 //! (`spillway read`). One request per point, so a wrong address shows up on the point
 //! that has it; SunSpec points are found by walking the device's model chain first.
 //!
+//! The coils and holding registers the site's loads write on the device (its
+//! actuators) are read back too, so a relay module with no points of its own is still
+//! asked something: whether it answers is what `read` reports on it.
+//!
 //! It writes nothing. Every request runs under the device's timeout; a transport error
 //! ends the probe of that device (the points not yet read say so).
 
@@ -13,11 +17,12 @@ use tokio_modbus::ExceptionCode;
 use tokio_modbus::client::{Context, Reader};
 
 use super::ExceptionName;
-use super::codec::Sentinel;
+use super::codec::{self, Sentinel};
 use super::plan::{self, Decoded, PointSpec, ScaleSpec, Words};
 use super::serial::LineFault;
 use super::sunspec::{self, ModelMap};
-use crate::config::model::{DeviceId, Link, PointId, PointRead, Scale, Site, Table, WordOrder};
+use crate::actuators::targets_of;
+use crate::config::model::{DeviceId, Link, PointId, PointRead, Scale, Site, Table, WordOrder, Write};
 
 /// One point as read.
 #[derive(Debug, Clone, PartialEq)]
@@ -40,6 +45,25 @@ pub struct DeviceProbe {
     pub models: Vec<(u16, u16)>,
     /// Each of the device's points, in file order.
     pub points: Vec<PointReading>,
+    /// Each coil and holding register the site writes on the device, read back (a
+    /// SunSpec limit, found through the model chain, and MQTT targets are not).
+    pub targets: Vec<TargetReading>,
+    /// Whether any request drew a normal answer (not an exception, not silence).
+    pub answered: bool,
+}
+
+/// An actuator target as read back.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TargetReading {
+    /// The target, as the site file gives it.
+    pub write: Write,
+    /// Where it was read: `coil 0`, `holding 10 ×2`.
+    pub origin: String,
+    /// The words read (a coil as 0/1).
+    pub raw: Vec<u16>,
+    /// What it holds in the unit it is written in (a coil 1.0/0.0; a register decoded
+    /// with the target's type and multiplied by its scale), or why there is nothing.
+    pub value: Result<f64, String>,
 }
 
 /// Why a device could not be probed at all.
@@ -77,7 +101,7 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
     let outer =
         if matches!(dev.link, Link::ModbusRtu { .. }) { dev.timeout * 2 + Duration::from_secs(1) } else { dev.timeout };
     let unit = dev.link.modbus_unit().unwrap_or_default();
-    let mut p = Prober { ctx: &mut ctx, limit: dev.timeout, outer, unit, dead: None };
+    let mut p = Prober { ctx: &mut ctx, limit: dev.timeout, outer, unit, dead: None, answered: false };
     let map = if dev.sunspec { p.discover().await } else { Ok(None) };
     let models = match &map {
         Ok(Some(m)) => m.models.iter().map(|&(id, start, _)| (id, start)).collect(),
@@ -133,9 +157,39 @@ pub async fn probe(site: &Site, device: DeviceId, connect_timeout: Duration) -> 
             }
         });
     }
+    let mut targets = Vec::new();
+    for t in targets_of(site, device) {
+        let (table, address, count) = match &t {
+            Write::Coil { address, .. } => (Table::Coil, *address, 1),
+            Write::Register { address, value_type, .. } => (Table::HoldingRegister, *address, value_type.registers()),
+            Write::SunSpecLimit { .. } | Write::Mqtt { .. } => continue,
+        };
+        let origin = match table {
+            Table::Coil => format!("coil {address}"),
+            _ if count > 1 => format!("holding {address} ×{count}"),
+            _ => format!("holding {address}"),
+        };
+        let (raw, value) = match p.read(table, address, count).await {
+            Ok(Ok(w)) => {
+                let value = match &t {
+                    Write::Register { value_type, word_order, scale, .. } => {
+                        codec::decode(&w, *value_type, *word_order, Sentinel::None)
+                            .map(|v| v * scale)
+                            .ok_or_else(|| "not a number".to_owned())
+                    }
+                    _ => w.first().map(|b| f64::from(*b)).ok_or_else(|| "no bit in the answer".to_owned()),
+                };
+                (w, value)
+            }
+            Ok(Err(code)) => (Vec::new(), Err(ExceptionName::from(code).answer(p.unit))),
+            Err(why) => (Vec::new(), Err(why)),
+        };
+        targets.push(TargetReading { write: t, origin, raw, value });
+    }
+    let answered = p.answered;
     // Best effort; the transport may already be gone.
     let _ = timeout(Duration::from_millis(100), tokio_modbus::client::Client::disconnect(&mut ctx)).await;
-    Ok(DeviceProbe { models, points })
+    Ok(DeviceProbe { models, points, targets, answered })
 }
 
 struct Prober<'a> {
@@ -148,6 +202,8 @@ struct Prober<'a> {
     unit: u8,
     /// Set after a timeout or transport error: the connection cannot be trusted.
     dead: Option<String>,
+    /// Set by the first normal answer.
+    answered: bool,
 }
 
 impl Prober<'_> {
@@ -173,7 +229,10 @@ impl Prober<'_> {
             Table::InputRegister => timeout(limit, ctx.read_input_registers(address, count)).await,
         };
         let why = match r {
-            Ok(Ok(r)) => return Ok(r),
+            Ok(Ok(r)) => {
+                self.answered |= r.is_ok();
+                return Ok(r);
+            }
             // Connected, and silent: a gateway asked for a unit id it does not have
             // often says nothing at all, so that is the first thing to check.
             Err(_) => self.silent(),
