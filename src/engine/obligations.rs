@@ -348,17 +348,23 @@ mod tests {
         assert!(ObligationState::default().demand(&bare, &at_soc(10 * 3600, 55.0)).force_on);
     }
 
+    /// A 250 L tank on a 3.6 kW element (1 K in 250 × 4186 / 3600 s) to be at 55 °C by
+    /// 16:00, from the grid from 13:00.
+    fn tank_250_l_at_55_by_four() -> Obligation {
+        Obligation::ReachBy {
+            target: Temperature(55.0),
+            by: t(16, 0),
+            grid_window: Some(Window { start: t(13, 0), end: t(16, 0) }),
+            pace: Some(Duration::from_secs_f64(250.0 * 4186.0 / 3600.0)),
+        }
+    }
+
     /// A 250 L tank with a 3.6 kW element heats 1 K in 250 × 4186 / 3600 = 290.7 s. From
     /// 45 °C to 55 °C by 16:00: 48.4 min, 70.6 with the margin and the slack, so the
     /// top-up starts at 14:49 rather than when the window opens at 13:00.
     #[test]
     fn a_tank_top_up_with_a_known_volume_starts_just_late_enough() {
-        let ob = Obligation::ReachBy {
-            target: Temperature(55.0),
-            by: t(16, 0),
-            grid_window: Some(Window { start: t(13, 0), end: t(16, 0) }),
-            pace: Some(Duration::from_secs_f64(250.0 * 4186.0 / 3600.0)),
-        };
+        let ob = tank_250_l_at_55_by_four();
         let mut s = ObligationState::default();
         assert!(!s.demand(&ob, &at(13 * 3600, 0.0, Some(45.0))).force_on, "13:00: time enough");
         assert!(!s.demand(&ob, &at(14 * 3600 + 48 * 60, 0.0, Some(45.0))).force_on, "14:48");
@@ -371,12 +377,7 @@ mod tests {
     /// tick goes on instead of panicking the control task.
     #[test]
     fn an_absurd_level_with_a_known_pace_forces_the_top_up_without_panicking() {
-        let ob = Obligation::ReachBy {
-            target: Temperature(55.0),
-            by: t(16, 0),
-            grid_window: Some(Window { start: t(13, 0), end: t(16, 0) }),
-            pace: Some(Duration::from_secs_f64(250.0 * 4186.0 / 3600.0)),
-        };
+        let ob = tank_250_l_at_55_by_four();
         let mut s = ObligationState::default();
         assert!(s.demand(&ob, &at(13 * 3600, 0.0, Some(-1e30))).force_on);
     }

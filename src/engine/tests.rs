@@ -1529,9 +1529,8 @@ fn a_daily_run_obligation_tops_up_from_the_grid_late_in_its_window_and_is_report
     assert!(results[0].met);
 }
 
-#[test]
-fn a_reach_by_obligation_heats_from_the_grid_in_its_window_until_the_target() {
-    let loads = r#"
+/// A tank heater that must be at 60 °C by 17:00, from the grid from 15:00 if need be.
+const TANK_AT_60_BY_FIVE: &str = r#"
   - name: tank
     rated: 3kW
     switch: { device: relays, coil: 0 }
@@ -1543,6 +1542,10 @@ fn a_reach_by_obligation_heats_from_the_grid_in_its_window_until_the_target() {
         by: "17:00"
         grid_window: 15:00..17:00
 "#;
+
+#[test]
+fn a_reach_by_obligation_heats_from_the_grid_in_its_window_until_the_target() {
+    let loads = TANK_AT_60_BY_FIVE;
     let mut h = Harness::new(&site("  export: allowed", loads)).at_local(14, 0);
     h.set("grid", 500.0);
     h.set("tank_temp", 45.0);
@@ -1584,18 +1587,7 @@ fn a_run_duty_over_the_hour_the_clocks_skip_starts_early_enough() {
 /// file carries the obligation's progress, as it does the run time.
 #[test]
 fn a_reach_met_at_its_deadline_stays_met_across_a_restart_that_evening() {
-    let loads = r#"
-  - name: tank
-    rated: 3kW
-    switch: { device: relays, coil: 0 }
-    temperature: tank_temp
-    start: surplus > 3.1kW for 20s
-    stop: import > 300W for 10s
-    obligations:
-      - reach: 60°C
-        by: "17:00"
-        grid_window: 15:00..17:00
-"#;
+    let loads = TANK_AT_60_BY_FIVE;
     let mut h = Harness::new(&site("  export: allowed", loads)).at_local(16, 50);
     h.set("grid", 500.0);
     h.set("tank_temp", 61.0);
