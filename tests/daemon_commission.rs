@@ -13,6 +13,38 @@ use daemon_support::{BATTERY_REGISTER, LOADS, Plant};
 use tokio::process::Command;
 use tokio_modbus::ExceptionCode;
 
+/// Runs `spillway failsafe-test` with `args`, silencing the plant's meter when it says
+/// DISCONNECT and giving it back at RECONNECT, as the installer would pull and replug
+/// the cable; its exit status and what it printed.
+async fn failsafe_test(plant: &Plant, args: &[&str]) -> (std::process::ExitStatus, String) {
+    use tokio::io::{AsyncBufReadExt, BufReader};
+    let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))
+        .args(args)
+        .env_remove("RUST_LOG")
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::null())
+        .kill_on_drop(true)
+        .spawn()
+        .unwrap();
+    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
+    let mut out = String::new();
+    let run = async {
+        while let Some(line) = lines.next_line().await.unwrap() {
+            if line.starts_with("DISCONNECT") {
+                plant.meter.set_silent(true);
+            } else if line.contains("RECONNECT") {
+                plant.meter.set_silent(false);
+            }
+            out.push_str(&line);
+            out.push('\n');
+        }
+        child.wait().await.unwrap()
+    };
+    let status = tokio::time::timeout(Duration::from_secs(120), run).await.expect("the test ends");
+    println!("{out}");
+    (status, out)
+}
+
 async fn spillway(args: &[&str]) -> (i32, String, String) {
     let out = tokio::time::timeout(
         Duration::from_secs(60),
@@ -248,7 +280,6 @@ async fn step_test_steps_a_battery_both_ways_and_catches_a_reversed_sign() {
 /// the record. Real time, about half a minute (10 s of settling, the recovery hold).
 #[tokio::test]
 async fn failsafe_test_times_the_safe_state_and_writes_a_record() {
-    use tokio::io::{AsyncBufReadExt, BufReader};
     let plant = Plant::start(4500.0).await;
     let (path, site) = write_site(&plant, "failsafe");
     let record = path.with_file_name("record.md");
@@ -270,31 +301,12 @@ async fn failsafe_test_times_the_safe_state_and_writes_a_record() {
     let (code, out, err) = step_recorded(record.display().to_string()).await;
     assert_eq!(code, 0, "{out}\n{err}");
     assert!(out.contains("result appended to the record"), "{out}");
-    let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))
-        .args(["failsafe-test", &site, "--yes", "--watch", "3s", "--wait", "30s", "--record"])
-        .arg(&record)
-        .env_remove("RUST_LOG")
-        .stdout(std::process::Stdio::piped())
-        .stderr(std::process::Stdio::null())
-        .kill_on_drop(true)
-        .spawn()
-        .unwrap();
-    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
-    let mut out = String::new();
-    let run = async {
-        while let Some(line) = lines.next_line().await.unwrap() {
-            if line.starts_with("DISCONNECT") {
-                plant.meter.set_silent(true);
-            } else if line.contains("RECONNECT") {
-                plant.meter.set_silent(false);
-            }
-            out.push_str(&line);
-            out.push('\n');
-        }
-        child.wait().await.unwrap()
-    };
-    let status = tokio::time::timeout(Duration::from_secs(120), run).await.expect("the test ends");
-    println!("{out}");
+    let record_arg = record.display().to_string();
+    let (status, out) = failsafe_test(
+        &plant,
+        &["failsafe-test", &site, "--yes", "--watch", "3s", "--wait", "30s", "--record", &record_arg],
+    )
+    .await;
     assert_eq!(status.code(), Some(0), "{out}");
     assert!(out.contains("result: PASS"), "{out}");
     let safe = out.lines().find(|l| l.starts_with("time to the safe state:")).unwrap();
@@ -588,7 +600,6 @@ async fn read_asks_a_relay_module_with_no_points_for_its_coils() {
 /// G100 Issue 1's 5 s.
 #[tokio::test]
 async fn failsafe_test_fails_a_safe_state_that_exports_with_nothing_to_curtail() {
-    use tokio::io::{AsyncBufReadExt, BufReader};
     let plant = Plant::start(4500.0).await;
     let dir = std::env::temp_dir().join(format!("spillway-commission-nocurtail-{}", std::process::id()));
     std::fs::create_dir_all(&dir).unwrap();
@@ -598,30 +609,9 @@ async fn failsafe_test_fails_a_safe_state_that_exports_with_nothing_to_curtail()
         "inverter:\n  rated: 5kW\n  limit: { device: inverter, register: 10 }\n  limit_unit: W\n  safe_limit: 0W\n";
     assert!(yaml.contains(inverter), "{yaml}");
     std::fs::write(&path, yaml.replace(inverter, "")).unwrap();
-    let mut child = Command::new(env!("CARGO_BIN_EXE_spillway"))
-        .args(["failsafe-test", &path.display().to_string(), "--yes", "--watch", "3s", "--wait", "30s"])
-        .env_remove("RUST_LOG")
-        .stdout(std::process::Stdio::piped())
-        .stderr(std::process::Stdio::null())
-        .kill_on_drop(true)
-        .spawn()
-        .unwrap();
-    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
-    let mut out = String::new();
-    let run = async {
-        while let Some(line) = lines.next_line().await.unwrap() {
-            if line.starts_with("DISCONNECT") {
-                plant.meter.set_silent(true);
-            } else if line.contains("RECONNECT") {
-                plant.meter.set_silent(false);
-            }
-            out.push_str(&line);
-            out.push('\n');
-        }
-        child.wait().await.unwrap()
-    };
-    let status = tokio::time::timeout(Duration::from_secs(120), run).await.expect("the test ends");
-    println!("{out}");
+    let site_arg = path.display().to_string();
+    let (status, out) =
+        failsafe_test(&plant, &["failsafe-test", &site_arg, "--yes", "--watch", "3s", "--wait", "30s"]).await;
     assert_eq!(status.code(), Some(1), "{out}");
     let line = out.lines().find(|l| l.starts_with("export in fail-safe:")).unwrap_or_default();
     assert!(line.contains("above the limit (0 W) for "), "{out}");
