@@ -355,6 +355,12 @@ impl Engine {
                     l.obligations.get(index).map_or(String::new(), |o| o.describe())
                 )
             }
+            // In the site's local time, as the log says it (`until 19:45:40 WET`), not
+            // as an RFC 3339 instant in UTC.
+            Reason::Override { until } => {
+                let local = until.to_utc().with_timezone(&self.site.timezone);
+                format!("override until {}", local.format("%H:%M:%S %Z"))
+            }
             other => other.to_string(),
         };
         let detail = match state.reason {

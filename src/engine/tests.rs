@@ -173,6 +173,20 @@ fn a_load_the_command_cannot_reach_is_not_counted_as_drawing_it() {
     assert!((h.tick().surplus.0 - 1500.0).abs() < 1e-6);
 }
 
+/// An override's end is said in the site's local time, as the log says it, not as a UTC
+/// instant with milliseconds.
+#[test]
+fn an_overrides_end_is_said_in_local_time() {
+    let mut h = Harness::new(&site("  export: allowed", TWO_LOADS)).at_local(14, 0);
+    h.set("grid", 500.0);
+    h.tick();
+    let pump = LoadId(h.load("pump"));
+    h.engine.set_override(pump, Command::On, h.now.plus(secs(30 * 60)));
+    h.tick();
+    let why = h.engine.explain(pump);
+    assert!(why.contains("override until 14:30:01 WEST"), "{why}");
+}
+
 /// The test site with a battery's power read (`battery_power`, charging +).
 fn with_battery_power(yaml: &str) -> String {
     yaml.replace("points:\n", "points:\n  battery_power: { device: meter, register: 50, type: i16, unit: W }\n")
