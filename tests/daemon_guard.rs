@@ -277,3 +277,28 @@ async fn a_load_whose_relay_module_is_down_is_shown_as_not_delivered() {
     assert!(!warned.is_empty() && warned.iter().all(|l| l.contains("WARN")), "{text}");
     assert!(text.contains("commands reach the load again"), "{text}");
 }
+
+/// A relay module that is up but refuses the write (a wrong coil address, answered with
+/// exception 2) has not carried the command out: the load shows as not delivered, and
+/// is not counted as drawing its power, until a re-write goes through.
+#[tokio::test(start_paused = true)]
+async fn a_load_whose_write_the_module_refuses_is_shown_as_not_delivered() {
+    let plant = Plant::start(4500.0).await;
+    plant.devices.with(|s| {
+        s.exceptions.insert((5, 0), tokio_modbus::ExceptionCode::IllegalDataAddress);
+        s.exceptions.insert((15, 0), tokio_modbus::ExceptionCode::IllegalDataAddress);
+    });
+    let daemon = start(&plant.site_yaml(LOADS, ""), options(T0)).await;
+    let s = status_until(&daemon, Duration::from_secs(120), "refused", |s| {
+        load(s, "water_heater").on && !load(s, "water_heater").delivered
+    })
+    .await;
+    let why = &load(&s, "water_heater").why;
+    assert!(why.contains("not delivered: device \"relays\" refused the write"), "{why}");
+    plant.devices.with(|s| s.exceptions.clear());
+    status_until(&daemon, Duration::from_secs(60), "delivered after a re-write", |s| load(s, "water_heater").delivered)
+        .await;
+    assert_eq!(plant.devices.coil(3, 0), Some(true), "the re-write went through");
+    daemon.shutdown();
+    daemon.wait().await;
+}

@@ -114,6 +114,29 @@ pub(super) struct Control {
     reading_gaps: Vec<(u32, bool)>,
     /// Per load: whether its command reached it at the last tick (see `watch_delivery`).
     delivered: Vec<bool>,
+    /// Per load: a write its device refused, and until when that counts (see
+    /// [`REFUSAL_HOLD`]).
+    refused: Vec<Option<(crate::units::Timestamp, String)>>,
+}
+
+/// How long a refused write counts as a command not delivered: the load targets'
+/// re-write period (10 s) and a little for its answer. A refusal of the re-write
+/// renews it; a re-write that goes through lets it lapse.
+const REFUSAL_HOLD: Duration = Duration::from_secs(12);
+
+/// The load that writes `address` on `device` with a write of `function` (5, 15: a
+/// coil; 6, 16: a holding register), if any.
+fn load_writing(site: &Site, device: DeviceId, function: u8, address: u16) -> Option<usize> {
+    use crate::config::model::Write;
+    site.loads.iter().position(|l| {
+        [crate::engine::Command::On, crate::engine::Command::Off].into_iter().any(|c| {
+            crate::actuators::load_levels(l, c).into_iter().any(|(w, _)| match (w, function) {
+                (Write::Coil { device: d, address: a }, 5 | 15)
+                | (Write::Register { device: d, address: a, .. }, 6 | 16) => *d == device && *a == address,
+                _ => false,
+            })
+        })
+    })
 }
 
 /// The largest power a reading of this site may show: ten times its largest rating
@@ -163,6 +186,7 @@ impl Control {
             over_limit: None,
             reading_gaps: vec![(0, false); site.points.len()],
             delivered: vec![true; site.loads.len()],
+            refused: vec![None; site.loads.len()],
             site,
         }
     }
@@ -254,7 +278,8 @@ impl Control {
         // command (see `Engine::set_reachable`).
         for (i, l) in self.site.loads.iter().enumerate() {
             let command = self.engine.decisions().loads.get(i).map_or(crate::engine::Command::Off, |d| d.command);
-            let reachable = status::not_delivered(&self.site, l, command, &self.health).is_none();
+            let refused = self.refused.get(i).and_then(Option::as_ref).is_some_and(|(until, _)| now < *until);
+            let reachable = !refused && status::not_delivered(&self.site, l, command, &self.health).is_none();
             self.engine.set_reachable(crate::config::model::LoadId(i), reachable);
         }
         self.engine.step(now, &self.snapshot);
@@ -350,7 +375,20 @@ impl Control {
         }
         self.count(now);
         self.recent.make_contiguous();
-        let doc = status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0, &self.totals);
+        let mut doc =
+            status::build(&self.engine, &self.snapshot, &self.health, self.recent.as_slices().0, &self.totals);
+        // A write the device refused (the device otherwise up) is a command not carried
+        // out until a re-write goes through: said as a device down is.
+        for (l, refused) in doc.loads.iter_mut().zip(&self.refused) {
+            if let Some((until, why)) = refused
+                && now < *until
+                && l.delivered
+            {
+                l.delivered = false;
+                l.why.push_str(" — not delivered: ");
+                l.why.push_str(why);
+            }
+        }
         self.watch_delivery(&doc);
         if let Some(log) = &mut self.replay_log {
             let d = self.engine.decisions();
@@ -569,6 +607,14 @@ impl Control {
                                 "the {table} address {address} and the `unit` of device \"{name}\" in the site file, against the device's documentation"
                             ),
                         };
+                        if let Some(load) = load_writing(&self.site, device, function, address)
+                            && let Some(slot) = self.refused.get_mut(load)
+                        {
+                            // Until the next re-write has had its answer: a refusal again
+                            // renews it, a write that goes through lets it lapse.
+                            let until = self.engine.decisions().now.plus(REFUSAL_HOLD);
+                            *slot = Some((until, format!("device \"{name}\" refused the write ({code})")));
+                        }
                         let what = target.map_or_else(|| "no load of the site file".to_owned(), |t| t.what);
                         warn!(
                             device = %name,
