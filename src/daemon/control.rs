@@ -400,7 +400,6 @@ impl Control {
             let curtailed = d.limit_reason != LimitReason::None;
             log.sample(d.now, doc.pv_w, doc.house_w, available, curtailed, !d.switchings.is_empty());
         }
-        let mut doc = doc;
         doc.replay_log = self.replay_log.as_ref().map(ReplayLog::status);
         self.status.send_replace(Arc::new(doc));
     }
