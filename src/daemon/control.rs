@@ -119,6 +119,13 @@ pub(super) struct Control {
     refused: Vec<Option<(crate::units::Timestamp, String)>>,
 }
 
+/// The key a malformed input is rate-limited under: a device's garbage once a minute
+/// per topic or point; each different mistake on an override topic (a person or an
+/// automation trying forms) on its own, so that every correction gets its answer.
+fn malformed_log_key(origin: &str, detail: &str) -> String {
+    if origin.contains("/override/") { format!("mal/{origin}/{detail}") } else { format!("mal/{origin}") }
+}
+
 /// How long a refused write counts as a command not delivered: the load targets'
 /// re-write period (10 s) and a little for its answer. A refusal of the re-write
 /// renews it; a re-write that goes through lets it lapse.
@@ -445,6 +452,7 @@ impl Control {
             *was = l.delivered;
             if l.delivered {
                 info!(load = %l.name, command = %l.command, "commands reach the load again: its command is written");
+                push_recent(&mut self.recent, now, format!("{}: commands reach it again", l.name));
             } else {
                 let cause = l.why.split(" — not delivered: ").nth(1).unwrap_or("a device is down");
                 warn!(
@@ -530,6 +538,11 @@ impl Control {
             limit = %self.site.export_limit().unwrap_or(Power::ZERO),
             lasted = %crate::units::format_duration(lasted),
             "export above the limit for longer than the guard needs to clear it: {cause}"
+        );
+        push_recent(
+            &mut self.recent,
+            now,
+            format!("export above the limit for {}: {cause}", crate::units::format_duration(lasted)),
         );
     }
 
@@ -651,12 +664,7 @@ impl Control {
                 // A device's garbage is logged once a minute per topic; each different
                 // mistake on an override topic (a person or an automation trying forms)
                 // is logged, so that every correction gets its answer.
-                let key = if origin.contains("/override/") {
-                    format!("mal/{origin}/{detail}")
-                } else {
-                    format!("mal/{origin}")
-                };
-                if let Some(repeated) = self.should_log(key) {
+                if let Some(repeated) = self.should_log(malformed_log_key(&origin, &detail)) {
                     warn!(
                         device = %device.map_or("-", |d| self.device_name(d)),
                         %origin,
@@ -899,4 +907,20 @@ fn push_recent(recent: &mut VecDeque<RecentEvent>, at: crate::units::Timestamp, 
         recent.pop_front();
     }
     recent.push_back(RecentEvent { time: at.to_string(), text });
+}
+
+#[cfg(test)]
+mod tests {
+    use super::malformed_log_key;
+
+    /// A device's garbage shares one key per topic (logged once a minute); each
+    /// different mistake on an override topic has its own (each answered).
+    #[test]
+    fn each_different_override_mistake_has_its_own_log_key() {
+        let meter = |d: &str| malformed_log_key("home/meter", d);
+        assert_eq!(meter("\"abc\" is not a number"), meter("\"1.5kW\" is not a number"));
+        let o = |d: &str| malformed_log_key("spillway/home/override/pump", d);
+        assert_ne!(o("\"boost\" is not on, off or auto"), o("an override lasts at most 24 h"));
+        assert_eq!(o("an override lasts at most 24 h"), o("an override lasts at most 24 h"));
+    }
 }
