@@ -76,13 +76,14 @@ pub(super) struct Control {
     site: Arc<Site>,
     engine: Engine,
     snapshot: Snapshot,
-    dispatcher: Dispatcher,
+    dispatcher: Arc<Dispatcher>,
     status: watch::Sender<Arc<Status>>,
     health: Vec<DeviceHealth>,
     clock: Clock,
     state_file: Option<PathBuf>,
     persist_every: Duration,
     fail_at_tick: Option<u64>,
+    fail_at_sample: Option<u64>,
     /// Last log time and count since, per repeated-problem key.
     repeats: HashMap<String, (Instant, u64)>,
     last_limit: (Option<Power>, LimitReason),
@@ -129,7 +130,7 @@ impl Control {
     pub(super) fn new(
         engine: Engine,
         snapshot: Snapshot,
-        dispatcher: Dispatcher,
+        dispatcher: Arc<Dispatcher>,
         status: watch::Sender<Arc<Status>>,
         replay_log: Option<ReplayLog>,
         options: &Options,
@@ -147,6 +148,7 @@ impl Control {
             state_file: options.state_file.clone(),
             persist_every: options.persist_every,
             fail_at_tick: options.fail_at_tick,
+            fail_at_sample: options.fail_at_sample,
             repeats: HashMap::new(),
             last_limit: (None, LimitReason::None),
             was_normal: false,
@@ -500,6 +502,9 @@ impl Control {
         match ev {
             SourceEvent::Sample { point, value, at } => {
                 self.summary.samples += 1;
+                if self.fail_at_sample == Some(self.summary.samples) {
+                    panic!("fail point: sample {}", self.summary.samples);
+                }
                 trace!(point = point.0, value, "sample");
                 if let Some(p) = self.site.points.get(point.0)
                     && p.dimension == crate::units::Dimension::Power
