@@ -12,11 +12,12 @@
 //! - the status page's HTTP server when `--http` is given.
 //!
 //! Shutdown order matters and is owned by the control task: a shutdown request (SIGINT,
-//! SIGTERM, [`Daemon::shutdown`]) makes it dispatch [`Engine::safe_decisions`], save the
-//! counters, and only then cancel the token; the links see the cancellation, make one
-//! last pass over their (now safe) commands and return; every task is awaited. A control
-//! task that dies instead (a panic) has the safe states sent for it before the links are
-//! cancelled.
+//! SIGTERM, [`Daemon::shutdown`]) makes it dispatch [`Engine::safe_decisions`] and then
+//! cancel the token; the links see the cancellation, make one last pass over their (now
+//! safe) commands and return, while the control task saves the counters (given up after
+//! a grace, so a hung disk cannot hold the stop) and takes their events; every task is
+//! awaited. A control task that dies instead (a panic) has the safe states sent for it
+//! before the links are cancelled.
 
 pub mod banner;
 pub mod commission;
@@ -401,7 +402,7 @@ fn event_capacity(site: &Site) -> usize {
 /// order. `on_start` sees the running daemon (to print where the page is).
 pub fn run(site: Arc<Site>, options: Options, on_start: impl FnOnce(&Daemon)) -> Result<Summary, DaemonError> {
     let runtime = runtime()?;
-    runtime.block_on(async move {
+    let stopped = runtime.block_on(async move {
         let mut term = signal_terminate().map_err(DaemonError::Runtime)?;
         let daemon = Daemon::start(site, options).await?;
         on_start(&daemon);
@@ -420,7 +421,11 @@ pub fn run(site: Arc<Site>, options: Options, on_start: impl FnOnce(&Daemon)) ->
             Some(why) => Err(DaemonError::EngineFailed(why)),
             None => Ok(summary),
         }
-    })
+    });
+    // Dropping the runtime would wait for every blocking task, a save of the state
+    // file that hangs on its disk included: the stop has given up on it already.
+    runtime.shutdown_timeout(Duration::from_secs(1));
+    stopped
 }
 
 /// The runtime the daemon and the commissioning verbs run on: one thread is plenty
