@@ -12,9 +12,12 @@
 //! - the status page's HTTP server when `--http` is given.
 //!
 //! Shutdown order matters and is owned by the control task: a shutdown request (SIGINT,
-//! SIGTERM, [`Daemon::shutdown`]) makes it dispatch [`Engine::safe_decisions`], save the
-//! counters, and only then cancel the token; the links see the cancellation, make one
-//! last pass over their (now safe) commands and return; every task is awaited.
+//! SIGTERM, [`Daemon::shutdown`]) makes it dispatch [`Engine::safe_decisions`] and then
+//! cancel the token; the links see the cancellation, make one last pass over their (now
+//! safe) commands and return, while the control task saves the counters (given up after
+//! a grace, so a hung disk cannot hold the stop) and takes their events; every task is
+//! awaited. A control task that dies instead (a panic) has the safe states sent for it
+//! before the links are cancelled.
 
 pub mod banner;
 pub mod commission;
@@ -37,15 +40,15 @@ use tokio_util::task::TaskTracker;
 use tracing::{error, info, warn};
 
 use crate::actuators::{ActuatorOptions, Dispatcher};
-use crate::config::model::{DeviceId, Link, LoadId, Site};
-use crate::engine::{Engine, Snapshot};
+use crate::config::model::{DeviceId, Link, LoadId, SafeState, Site};
+use crate::engine::{Command, Decisions, Engine, Snapshot};
 use crate::sources::modbus::ModbusError;
 use crate::sources::mqtt::MqttError;
 use crate::sources::{
     Clock, LinkCounts, LinkStats, ModbusLink, ModbusOptions, MqttLink, MqttOptions, SerialLines, SourceEvent,
 };
 use crate::status::{self, Status};
-use crate::units::format_duration;
+use crate::units::{Timestamp, format_duration};
 
 pub use control::Summary;
 use control::{Control, Request};
@@ -76,6 +79,10 @@ pub struct Options {
     /// (counted from 1). Never set on a site.
     #[doc(hidden)]
     pub fail_at_tick: Option<u64>,
+    /// A fail point for tests of a control task that dies outside the engine's tick: it
+    /// panics while taking in this sample (counted from 1). Never set on a site.
+    #[doc(hidden)]
+    pub fail_at_sample: Option<u64>,
     /// A fail point for tests of a dying link: the named device's link panics this long
     /// after the start. Never set on a site.
     #[doc(hidden)]
@@ -94,6 +101,7 @@ impl Default for Options {
             actuators: ActuatorOptions::default(),
             replay_log: None,
             fail_at_tick: None,
+            fail_at_sample: None,
             fail_link_after: None,
         }
     }
@@ -166,7 +174,11 @@ impl Daemon {
             }
             None => None,
         };
-        let dispatcher = Dispatcher::new(Arc::clone(&site), options.actuators);
+        let dispatcher = Arc::new(Dispatcher::new(Arc::clone(&site), options.actuators));
+        // What the daemon sends by itself if the control task dies (a panic outside the
+        // engine's guarded tick): every load in its safe state, the inverter at its safe
+        // limit. A load whose safe state is `hold` keeps its last command (filled in then).
+        let fallback = engine.safe_decisions(options.clock.now());
         let (events_tx, events_rx) = mpsc::channel::<SourceEvent>(event_capacity(&site));
         let cancel = CancellationToken::new();
         let tracker = TaskTracker::new();
@@ -249,16 +261,20 @@ impl Daemon {
             });
         }
 
-        let control = Control::new(engine, snapshot, dispatcher, status_tx, replay_log, &options);
-        // The control task normally cancels the links itself after its shutdown; if it
-        // dies some other way, this stops them too, so the process cannot hang on with
-        // links and a status page but no controller.
+        let control = Control::new(engine, snapshot, Arc::clone(&dispatcher), status_tx, replay_log, &options);
+        // The control task normally sends the safe states and cancels the links itself;
+        // if it dies some other way (a panic anywhere in it), this sends them and stops
+        // the links, so the process can neither hang on with links and no controller nor
+        // let the links' last pass write the last tick's commands as if they were safe.
         let inner = tokio::spawn(control.run(events_rx, req_rx, cancel.clone()));
         let stop = cancel.clone();
+        let (fallback_site, clock) = (Arc::clone(&site), options.clock);
         let handle = tracker.spawn(async move {
             let r = inner.await;
             if let Err(e) = &r {
-                error!(error = %e, "the control task died: stopping the links");
+                error!(error = %e, "the control task died: sending the safe states and stopping the links");
+                let safe = fallback_safe(&fallback_site, fallback, &dispatcher.last_commands(), clock.now());
+                dispatcher.apply_stopped(&safe);
             }
             stop.cancel();
             r
@@ -365,6 +381,18 @@ fn restore(engine: &mut Engine, path: &std::path::Path, clock: &Clock) -> Result
     }
 }
 
+/// The safe decisions computed at start, stamped `now`, with each load whose safe state
+/// is `hold` keeping the command it was last given.
+fn fallback_safe(site: &Site, mut safe: Decisions, last: &[Command], now: Timestamp) -> Decisions {
+    safe.now = now;
+    for ((d, l), was) in safe.loads.iter_mut().zip(&site.loads).zip(last) {
+        if l.safe_state == SafeState::Hold {
+            d.command = *was;
+        }
+    }
+    safe
+}
+
 /// Room for a burst of samples from every point plus link reports.
 fn event_capacity(site: &Site) -> usize {
     (64 + 4 * site.points.len()).min(4096)
@@ -374,7 +402,7 @@ fn event_capacity(site: &Site) -> usize {
 /// order. `on_start` sees the running daemon (to print where the page is).
 pub fn run(site: Arc<Site>, options: Options, on_start: impl FnOnce(&Daemon)) -> Result<Summary, DaemonError> {
     let runtime = runtime()?;
-    runtime.block_on(async move {
+    let stopped = runtime.block_on(async move {
         let mut term = signal_terminate().map_err(DaemonError::Runtime)?;
         let daemon = Daemon::start(site, options).await?;
         on_start(&daemon);
@@ -393,7 +421,11 @@ pub fn run(site: Arc<Site>, options: Options, on_start: impl FnOnce(&Daemon)) ->
             Some(why) => Err(DaemonError::EngineFailed(why)),
             None => Ok(summary),
         }
-    })
+    });
+    // Dropping the runtime would wait for every blocking task, a save of the state
+    // file that hangs on its disk included: the stop has given up on it already.
+    runtime.shutdown_timeout(Duration::from_secs(1));
+    stopped
 }
 
 /// The runtime the daemon and the commissioning verbs run on: one thread is plenty

@@ -298,3 +298,29 @@ async fn a_link_that_dies_stops_the_daemon_with_safe_states_and_an_error() {
     })
     .await;
 }
+
+/// A panic in the control task outside the engine's tick (here while it takes in a
+/// sample: a bug anywhere in the task) kills the task itself, not just one tick. The
+/// loads must still go to their safe states and the inverter to its safe limit before
+/// the links stop: before, the links were cancelled with the last tick's commands still
+/// in their channels, wrote those again (the heater on, the limit raised) and logged
+/// them as "safe state written at shutdown". Triggered by a test-only fail point.
+#[tokio::test(start_paused = true)]
+async fn a_control_task_that_dies_outside_the_tick_still_sends_the_safe_states() {
+    let plant = Plant::start(4200.0).await;
+    let mut opts = options(T0);
+    // Three points read every second: about 150 s in, after the heater has started.
+    opts.fail_at_sample = Some(450);
+    let daemon = start(&plant.site_yaml(LOADS, ""), opts).await;
+    settle(&plant, &daemon).await;
+    assert!(plant.last().unwrap().heater, "the heater runs before the failure");
+    let summary =
+        tokio::time::timeout(Duration::from_secs(300), daemon.wait()).await.expect("the daemon stops by itself");
+    let why = summary.engine_failed.expect("the failure is reported");
+    assert!(why.contains("panic"), "{why}");
+    let safe = plant_until(&plant, Duration::from_secs(10), "heater off, inverter at its safe limit", |s| {
+        !s.heater && !s.pump && s.limit == 0.0
+    })
+    .await;
+    println!("after the control task died: heater {}, pump {}, limit {} W", safe.heater, safe.pump, safe.limit);
+}

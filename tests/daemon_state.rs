@@ -211,3 +211,95 @@ async fn a_state_file_of_another_site_name_is_restored_with_a_warning() {
     assert!(restored > 250.0, "the pump's minutes come back: {restored} s");
     let _ = std::fs::remove_dir_all(path.parent().unwrap());
 }
+
+/// A save of the state file that hangs (a dying SD card, a stalled network file system:
+/// here a FIFO where the temporary file goes, which blocks its opening until something
+/// reads it) must not hold up the controller. Before, the control task awaited every
+/// save: while one hung no tick ran, so a meter that fell silent meanwhile sent nothing
+/// to its safe state and the inverter was not curtailed; and a stop waited on the save
+/// before it let the links make their last pass, so it hung until systemd killed it.
+/// A blocking task in flight stops the paused clock's auto-advance, so the test moves
+/// the clock itself; the disk is released after 20 s of real time at the latest, so the
+/// test cannot hang.
+#[cfg(unix)]
+#[tokio::test(start_paused = true)]
+async fn a_hanging_state_file_save_holds_up_neither_the_ticks_nor_the_stop() {
+    use std::sync::Arc;
+    use std::sync::atomic::{AtomicBool, Ordering};
+
+    let plant = Plant::start(4200.0).await;
+    let path = state_path("hanging-save");
+    let mut opts = options(T0);
+    opts.state_file = Some(path.clone());
+    let daemon = start(&plant.site_yaml(daemon_support::LOADS, ""), opts).await;
+    status_until(&daemon, Duration::from_secs(60), "heater on", |s| load(s, "water_heater").on).await;
+
+    // From now on every save blocks in opening `<state>.tmp`.
+    let fifo = path.with_file_name("bench.state.json.tmp");
+    let _ = std::fs::remove_file(&fifo);
+    let made = std::process::Command::new("mkfifo").arg(&fifo).status().expect("mkfifo runs");
+    assert!(made.success(), "mkfifo failed");
+    let released = Arc::new(AtomicBool::new(false));
+    let (release, wait) = std::sync::mpsc::channel::<()>();
+    let valve = {
+        let (fifo, released) = (fifo.clone(), Arc::clone(&released));
+        std::thread::spawn(move || {
+            let _ = wait.recv_timeout(Duration::from_secs(20));
+            released.store(true, Ordering::SeqCst);
+            // Opening the read end lets the blocked writer through.
+            let _ = std::fs::read(&fifo);
+        })
+    };
+    let (logs, _guard) = support::Logs::capture();
+
+    // Past the next periodic save (every 30 s): it hangs from here.
+    advance_until(Duration::from_secs(40), "40 s", || false).await;
+    plant.meter.set_silent(true);
+    let started = tokio::time::Instant::now();
+    advance_until(Duration::from_secs(10), "heater off and the inverter at its safe limit", || {
+        plant.last().is_some_and(|s| !s.heater && s.limit == 0.0)
+    })
+    .await;
+    println!("fail-safe {:?} after the meter fell silent, the save hanging", started.elapsed());
+    assert!(!released.load(Ordering::SeqCst), "the fail-safe waited for the disk");
+
+    // A stop with the save still hanging: safe states written, the daemon gone within
+    // the unit's TimeoutStopSec (30 s), and the log says the counters were not saved.
+    plant.meter.set_silent(false);
+    advance_until(Duration::from_secs(180), "heater on again", || plant.last().is_some_and(|s| s.heater)).await;
+    let stop = tokio::time::Instant::now();
+    daemon.shutdown();
+    let waiting = tokio::spawn(daemon.wait());
+    advance_until(Duration::from_secs(30), "the daemon stopped", || waiting.is_finished()).await;
+    println!("stopped {:?} after the request, the save still hanging", stop.elapsed());
+    assert!(!released.load(Ordering::SeqCst), "the stop waited for the disk");
+    waiting.await.unwrap();
+    advance_until(Duration::from_secs(1), "heater off and the inverter at its safe limit", || {
+        plant.last().is_some_and(|s| !s.heater && s.limit == 0.0)
+    })
+    .await;
+    let text = logs.text();
+    assert!(text.lines().any(|l| l.contains("counters NOT saved at shutdown")), "{text}");
+
+    let _ = release.send(());
+    valve.join().unwrap();
+    let _ = std::fs::remove_file(&fifo);
+}
+
+/// Moves the paused clock by hand, 50 ms at a time, until `cond` holds; panics once
+/// `limit` has passed (`|| false` just moves it by `limit`).
+async fn advance_until(limit: Duration, what: &str, mut cond: impl FnMut() -> bool) {
+    let end = tokio::time::Instant::now() + limit;
+    while !cond() {
+        if tokio::time::Instant::now() >= end {
+            assert!(what == "40 s", "not within {limit:?}: {what}");
+            return;
+        }
+        tokio::time::advance(Duration::from_millis(50)).await;
+        // Loopback bytes are real: give them a moment, then let the tasks take them.
+        std::thread::sleep(Duration::from_micros(200));
+        for _ in 0..4 {
+            tokio::task::yield_now().await;
+        }
+    }
+}

@@ -197,6 +197,9 @@ pub struct Dispatcher {
     options: ActuatorOptions,
     devices: Vec<watch::Sender<Arc<DeviceCommands>>>,
     mqtt: watch::Sender<Arc<MqttOutputs>>,
+    /// Each load's command as last handed out, for a safe state of `hold` when the
+    /// control task dies and the daemon sends the safe states without it.
+    last: std::sync::Mutex<Vec<Command>>,
 }
 
 /// What the MQTT link publishes.
@@ -212,7 +215,13 @@ impl Dispatcher {
     /// A dispatcher for a site; every channel starts with nothing commanded.
     pub fn new(site: Arc<Site>, options: ActuatorOptions) -> Self {
         let devices = site.devices.iter().map(|_| watch::Sender::new(Arc::new(DeviceCommands::default()))).collect();
-        Dispatcher { site, options, devices, mqtt: watch::Sender::new(Arc::new(MqttOutputs::default())) }
+        let last = std::sync::Mutex::new(vec![Command::Off; site.loads.len()]);
+        Dispatcher { site, options, devices, mqtt: watch::Sender::new(Arc::new(MqttOutputs::default())), last }
+    }
+
+    /// Each load's command as last handed to the links (`off` before the first tick).
+    pub fn last_commands(&self) -> Vec<Command> {
+        self.last.lock().unwrap_or_else(std::sync::PoisonError::into_inner).clone()
     }
 
     /// The desired state of one Modbus device, for its link.
@@ -245,6 +254,12 @@ impl Dispatcher {
     }
 
     fn apply_as(&self, decisions: &Decisions, stopped: bool, lost: &[String]) {
+        {
+            // No allocation per tick: the vector keeps its capacity.
+            let mut last = self.last.lock().unwrap_or_else(std::sync::PoisonError::into_inner);
+            last.clear();
+            last.extend(decisions.loads.iter().map(|l| l.command));
+        }
         let planned = plan(&self.site, decisions, self.options);
         let mut mqtt = DeviceCommands { commanded: true, writes: Vec::new() };
         for ((device, commands), tx) in self.site.devices.iter().zip(planned).zip(&self.devices) {

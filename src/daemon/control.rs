@@ -29,6 +29,25 @@ use crate::units::Power;
 const REPEAT_LOG: Duration = Duration::from_secs(60);
 /// How many switchings and limit changes the status document keeps.
 const RECENT: usize = 12;
+/// How long a stop waits for the counters to be saved (an earlier save still running
+/// included) before it gives up on them.
+const SAVE_GRACE: Duration = Duration::from_secs(10);
+/// How long a stop then waits for the links to end their last pass, taking their
+/// events meanwhile. Each of their requests has its own timeout; with the save's grace
+/// this stays under the service's `TimeoutStopSec` (30 s).
+const LINKS_GRACE: Duration = Duration::from_secs(10);
+
+/// A save of the counters in progress, on the blocking pool.
+type Saving = tokio::task::JoinHandle<Result<(), String>>;
+
+/// The result of the save in progress; pending for ever when there is none (the
+/// `select!` branches that use it are disabled then).
+async fn pending_save(saving: &mut Option<Saving>) -> Result<Result<(), String>, tokio::task::JoinError> {
+    match saving {
+        Some(rx) => rx.await,
+        None => std::future::pending().await,
+    }
+}
 
 /// What can be asked of the control task.
 #[derive(Debug)]
@@ -76,13 +95,14 @@ pub(super) struct Control {
     site: Arc<Site>,
     engine: Engine,
     snapshot: Snapshot,
-    dispatcher: Dispatcher,
+    dispatcher: Arc<Dispatcher>,
     status: watch::Sender<Arc<Status>>,
     health: Vec<DeviceHealth>,
     clock: Clock,
     state_file: Option<PathBuf>,
     persist_every: Duration,
     fail_at_tick: Option<u64>,
+    fail_at_sample: Option<u64>,
     /// Last log time and count since, per repeated-problem key.
     repeats: HashMap<String, (Instant, u64)>,
     last_limit: (Option<Power>, LimitReason),
@@ -159,7 +179,7 @@ impl Control {
     pub(super) fn new(
         engine: Engine,
         snapshot: Snapshot,
-        dispatcher: Dispatcher,
+        dispatcher: Arc<Dispatcher>,
         status: watch::Sender<Arc<Status>>,
         replay_log: Option<ReplayLog>,
         options: &Options,
@@ -177,6 +197,7 @@ impl Control {
             state_file: options.state_file.clone(),
             persist_every: options.persist_every,
             fail_at_tick: options.fail_at_tick,
+            fail_at_sample: options.fail_at_sample,
             repeats: HashMap::new(),
             last_limit: (None, LimitReason::None),
             was_normal: false,
@@ -211,6 +232,8 @@ impl Control {
         let mut persist = interval_at(Instant::now() + self.persist_every, self.persist_every);
         persist.set_missed_tick_behavior(MissedTickBehavior::Delay);
         let mut events_open = true;
+        // A save of the counters in progress: its result arrives here.
+        let mut saving: Option<Saving> = None;
         loop {
             tokio::select! {
                 biased;
@@ -237,9 +260,20 @@ impl Control {
                         break;
                     }
                 }
-                // Cancel-safe: as above. The save itself is awaited outside `select!`.
-                _ = persist.tick() => {
-                    self.persist(false).await;
+                // Cancel-safe: as above. The save runs on the blocking pool and is never
+                // awaited here: a disk that hangs must not hold up the ticks.
+                _ = persist.tick() => match saving {
+                    None => saving = self.start_save(false),
+                    Some(_) => {
+                        if let Some(repeated) = self.should_log("save-pending".to_owned()) {
+                            warn!(repeated, "the last save of the counters has not finished (a slow or failing disk): this one is skipped");
+                        }
+                    }
+                },
+                // Cancel-safe: a join handle, polled through a reference.
+                r = pending_save(&mut saving), if saving.is_some() => {
+                    saving = None;
+                    self.saved(r);
                 }
                 // Cancel-safe: an mpsc receive.
                 ev = events.recv(), if events_open => match ev {
@@ -248,8 +282,7 @@ impl Control {
                 },
             }
         }
-        self.shut_down().await;
-        cancel.cancel();
+        self.shut_down(&cancel, &mut events, saving).await;
         // What an installer watching a commissioning run wants at the end.
         self.summary.failsafe_entries = self.totals.failsafe_entries;
         self.summary.export_over_limit_s = self.totals.export_over_limit_s;
@@ -550,6 +583,9 @@ impl Control {
         match ev {
             SourceEvent::Sample { point, value, at } => {
                 self.summary.samples += 1;
+                if self.fail_at_sample == Some(self.summary.samples) {
+                    panic!("fail point: sample {}", self.summary.samples);
+                }
                 trace!(point = point.0, value, "sample");
                 if let Some(p) = self.site.points.get(point.0)
                     && p.dimension == crate::units::Dimension::Power
@@ -732,35 +768,49 @@ impl Control {
         }
     }
 
-    /// Saves the counters; a failure is logged and retried at the next period. Returns
-    /// whether they were saved (`None`: there is no state file).
-    async fn persist(&mut self, stopping: bool) -> Option<bool> {
+    /// Starts a save of the counters on the blocking pool (fsync can take seconds on
+    /// an SD card, and a failing one may never answer: neither the ticks nor a stop
+    /// wait on it beyond a grace). `None` when there is no state file.
+    fn start_save(&self, stopping: bool) -> Option<Saving> {
         let path = self.state_file.clone()?;
         let counters = self.engine.persisted();
         let site = self.site.name.clone();
         let now = self.clock.now();
-        let p = path.clone();
-        // fsync can take long on an SD card: keep it off the control task's thread.
-        match tokio::task::spawn_blocking(move || state_file::write(&p, &site, &counters, now, stopping)).await {
+        Some(tokio::task::spawn_blocking(move || {
+            state_file::write(&path, &site, &counters, now, stopping).map_err(|e| e.to_string())
+        }))
+    }
+
+    /// Logs and counts a save's result; returns whether the counters were saved.
+    fn saved(&mut self, r: Result<Result<(), String>, tokio::task::JoinError>) -> bool {
+        match r {
             Ok(Ok(())) => {
                 self.summary.saves += 1;
-                debug!(path = %path.display(), "counters saved");
-                Some(true)
+                debug!("counters saved");
+                true
             }
             Ok(Err(e)) => {
                 warn!(error = %e, "counters not saved; will retry");
-                Some(false)
+                false
             }
             Err(e) => {
                 warn!(error = %e, "counters not saved; will retry");
-                Some(false)
+                false
             }
         }
     }
 
-    /// Safe states to every actuator, counters saved. The caller cancels the links
-    /// afterwards, so their last pass writes what is dispatched here.
-    async fn shut_down(&mut self) {
+    /// Safe states to every actuator, then the links cancelled (their last pass writes
+    /// what is dispatched here), then the counters saved. The links' events are drained
+    /// meanwhile, so none of them waits on a full channel instead of making its last
+    /// pass; a save that hangs is given up after [`SAVE_GRACE`], so the stop ends well
+    /// within the service's `TimeoutStopSec` (30 s) whatever the disk does.
+    async fn shut_down(
+        &mut self,
+        cancel: &CancellationToken,
+        events: &mut mpsc::Receiver<SourceEvent>,
+        mut saving: Option<Saving>,
+    ) {
         let now = self.clock.now();
         let safe = self.engine.safe_decisions(now);
         let current = self.engine.decisions();
@@ -797,13 +847,66 @@ impl Control {
         let mut doc = with_safe(doc, &safe, &self.site);
         doc.replay_log = self.replay_log.as_ref().map(ReplayLog::status);
         self.status.send_replace(Arc::new(doc));
-        match self.persist(true).await {
-            Some(true) => info!(saves = self.summary.saves, "counters saved: stopping the links"),
-            Some(false) => error!(
+        cancel.cancel();
+        let deadline = Instant::now() + SAVE_GRACE;
+        let mut links_done = false;
+        let mut hung = false;
+        // An earlier save still running: the last one waits for it (two on the same
+        // temporary file would race), and is not started if it never ends.
+        if saving.is_some() {
+            loop {
+                tokio::select! {
+                    // Cancel-safe: all three (a join handle by reference, an mpsc receive, a sleep).
+                    r = pending_save(&mut saving) => {
+                        self.saved(r);
+                        break;
+                    }
+                    ev = events.recv(), if !links_done => links_done = ev.is_none(),
+                    () = tokio::time::sleep_until(deadline) => {
+                        hung = true;
+                        break;
+                    }
+                }
+            }
+        }
+        let mut last = if hung { None } else { self.start_save(true) };
+        let had_file = self.state_file.is_some();
+        let mut result = None;
+        while last.is_some() {
+            tokio::select! {
+                r = pending_save(&mut last) => {
+                    last = None;
+                    result = Some(self.saved(r));
+                }
+                ev = events.recv(), if !links_done => links_done = ev.is_none(),
+                () = tokio::time::sleep_until(deadline) => {
+                    hung = true;
+                    break;
+                }
+            }
+        }
+        match result {
+            Some(true) => info!(saves = self.summary.saves, "counters saved"),
+            _ if hung => error!(
                 saves = self.summary.saves,
-                "counters NOT saved at shutdown (see the warning above): today's run times since the last save are lost; stopping the links"
+                waited_s = SAVE_GRACE.as_secs(),
+                "counters NOT saved at shutdown: the state file's disk did not finish a save within the grace; today's run times since the last save are lost"
             ),
-            None => info!("no state file: stopping the links"),
+            Some(false) | None if had_file => error!(
+                saves = self.summary.saves,
+                "counters NOT saved at shutdown (see the warning above): today's run times since the last save are lost"
+            ),
+            _ => info!("no state file"),
+        }
+        // The links end after their last pass; until then their events are taken, so
+        // none is held up on a full channel (one that found it closed would end without
+        // its last pass).
+        let deadline = Instant::now().max(deadline) + LINKS_GRACE;
+        while !links_done {
+            tokio::select! {
+                ev = events.recv() => links_done = ev.is_none(),
+                () = tokio::time::sleep_until(deadline) => break,
+            }
         }
     }
 }
