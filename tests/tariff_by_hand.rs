@@ -118,6 +118,23 @@ fn the_step_that_opens_a_month_counts_in_that_month() {
     }
 }
 
+/// An import that crosses a block bound pays the lower block's price up to the bound and
+/// the next block's beyond it. The block was once looked up once a minute, so a step (or
+/// the rest of a minute) that crossed it was priced wholly at one block.
+#[test]
+fn an_import_that_crosses_a_block_bound_pays_each_block_its_share() {
+    let tariff = "  blocks:\n    - { up_to: 10.01kWh, price: 0.10/kWh }\n    - { price: 0.30/kWh }\n";
+    let loaded = load(&flat_site("UTC", tariff, 1000));
+    // 1 kW for one day: 24 kWh, the bound reached at 10:00:36.
+    // 10.01 kWh × 0.10 + 13.99 kWh × 0.30 = 1.001 + 4.197 = 5.198
+    // (it was 5.200 at 1-minute steps: the step 10:00–10:01 all at 0.30; 5.19667 at 1 s
+    // steps: the minute 10:00 all at 0.10).
+    for step_s in [1, 60] {
+        let out = run(&loaded, date(2026, 6, 1), 1, step_s, None);
+        assert!(close(out.cost, 5.198, 1e-6), "step {step_s} s: {}", out.cost);
+    }
+}
+
 /// Blocks start again with each calendar month, and a month the run covers in part gets
 /// the whole of its first block: the README's "its import is not a month's, nor its
 /// tariff block" (a judgement, stated). The standing charge counts the days covered.

@@ -410,7 +410,7 @@ pub fn simulate_once(
         // closes on the flows as they stand at its last instant, so the step that opens
         // the next month is the next month's, in energy as in money. The calendar and the
         // price are looked up once a simulated minute (time-of-use prices change on minute
-        // boundaries at the finest).
+        // boundaries at the finest; block prices follow the month's import step by step).
         if now >= next_calendar {
             next_calendar = now - now.rem_euclid(60_000) + 60_000;
             let local = clock.at(Timestamp(now));
@@ -430,8 +430,7 @@ pub fn simulate_once(
                 month_fig.days += 1;
             }
             if let Some(t) = tariff {
-                let month_import_kwh = (plant.flows().grid_import.wh - month_base.grid_import.wh) / 1000.0;
-                price = t.import_price(local.seconds_of_day, local.weekday, month_import_kwh);
+                price = t.import_price(local.seconds_of_day, local.weekday, 0.0);
                 if standing_day != Some(day.day) {
                     standing_day = Some(day.day);
                     month_fig.cost += t.standing_per_day;
@@ -439,6 +438,7 @@ pub fn simulate_once(
                 }
             }
         }
+        let import_before_wh = plant.flows().grid_import.wh;
 
         // Physics over [now, now + step) with the commands just written.
         plant.step(step_s);
@@ -480,8 +480,12 @@ pub fn simulate_once(
             }
         }
 
+        // Money: this step's import, priced from where the month's import stood before it
+        // (under blocks, the part of a step that crosses a bound at each block's price).
         if let Some(t) = tariff {
-            let cost = (flows.grid_import.w * price - export * t.export_credit) * step_h / 1000.0;
+            let import_kwh = flows.grid_import.w * step_h / 1000.0;
+            let month_import_kwh = (import_before_wh - month_base.grid_import.wh) / 1000.0;
+            let cost = t.import_cost(price, month_import_kwh, import_kwh) - export * t.export_credit * step_h / 1000.0;
             month_fig.cost += cost;
             out.cost += cost;
         }
