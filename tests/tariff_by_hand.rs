@@ -190,3 +190,43 @@ fn a_constant_surplus_is_credited_and_the_energies_balance() {
     assert_eq!(r.cost.as_ref().unwrap().total, -1.90);
     let _ = std::fs::remove_dir_all(&dir);
 }
+
+/// Runs the `spillway` binary with `args` and reads its JSON report.
+fn spillway_json(args: &[&str]) -> serde_json::Value {
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_spillway")).args(args).output().unwrap();
+    assert!(out.status.success(), "{args:?}: {}", String::from_utf8_lossy(&out.stderr));
+    serde_json::from_slice(&out.stdout).unwrap_or_else(|e| panic!("{e}: {}", String::from_utf8_lossy(&out.stdout)))
+}
+
+/// `sweep` prints the same cost as `simulate` for the same site and days: the sum of the
+/// months each rounded to the cent, as on a bill. It once printed the unrounded total,
+/// a cent or more off what `simulate` printed for the same run.
+#[test]
+fn sweep_prints_the_cost_simulate_prints() {
+    let dir = std::env::temp_dir().join(format!("spillway-tariff-sweep-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let path = dir.join("flat.yaml");
+    // 1 kW at 0.100025/kWh, January to March 2026 (UTC, 90 days):
+    //   January 744 kWh → 74.4186 → 74.42; February 672 kWh → 67.2168 → 67.22;
+    //   March 744 kWh → 74.42. Billed 216.06; unrounded 216.0540 → 216.05.
+    let tariff = "  currency: \"€\"\n  import: 0.100025/kWh\n  array_cost: 1000/kWp\n";
+    std::fs::write(&path, flat_site("UTC", tariff, 1000)).unwrap();
+    let file = path.to_str().unwrap();
+    let common = ["--from", "2026-01-01", "--days", "90", "--step", "60s", "--quiet", "--report", "json"];
+    let simulate: Vec<&str> = ["simulate", file].into_iter().chain(common).collect();
+    let sim = spillway_json(&simulate);
+    assert_eq!(sim["cost"]["total"], 216.06, "{}", sim["cost"]);
+    let sweep: Vec<&str> = ["sweep", file, "--vary", "plant.house.standby=1000W..1000W:1W", "--jobs", "1"]
+        .into_iter()
+        .chain(common)
+        .collect();
+    let swept = spillway_json(&sweep);
+    let point = &swept["points"][0];
+    assert_eq!(point["cost"], sim["cost"]["total"], "{point}");
+    assert_eq!(point["savings_vs_no_diversion"], sim["cost"]["savings"], "{point}");
+    // Without PV, the no-PV reference is the same house: it costs the same, saves nothing.
+    assert_eq!((&swept["no_pv_cost"], &point["savings_vs_no_pv"]), (&sim["cost"]["total"], &serde_json::json!(0.0)));
+    // Nor has it an array to pay back (a rounding cent once gave it a payback of 0.0 y).
+    assert!(point["payback_years"].is_null(), "{point}");
+    let _ = std::fs::remove_dir_all(&dir);
+}
