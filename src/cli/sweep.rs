@@ -141,7 +141,7 @@ pub fn run(
                             options(Controller::Baseline),
                         );
                         if let Ok(mut g) = no_pv.lock() {
-                            *g = Some(out.map(|o| o.cost));
+                            *g = Some(out.map(|o| offline::report::billed(&o)));
                         }
                     } else {
                         let (value, loaded) = &variants[i];
@@ -174,8 +174,12 @@ pub fn run(
                                 } else {
                                     0.0
                                 },
-                                cost: loaded.tariff.as_ref().map(|_| r(run.cost, 2)),
-                                savings_vs_no_diversion: loaded.tariff.as_ref().map(|_| r(baseline.cost - run.cost, 2)),
+                                // As `simulate` prints them: months rounded to the cent, summed.
+                                cost: loaded.tariff.as_ref().map(|_| offline::report::billed(&run)),
+                                savings_vs_no_diversion: loaded
+                                    .tariff
+                                    .as_ref()
+                                    .map(|_| r(offline::report::billed(&baseline) - offline::report::billed(&run), 2)),
                                 savings_vs_no_pv: None,
                                 payback_years: None,
                                 seconds_over_limit: site.export_limit().map(|_| r(run.seconds_over_limit, 0)),
@@ -209,10 +213,11 @@ pub fn run(
     let cost_per_kwp = tariff.as_ref().and_then(|t| t.array_cost_per_kwp);
     for p in &mut points {
         if let (Some(c), Some(n)) = (p.cost, no_pv_cost) {
-            let saved = n - c;
-            p.savings_vs_no_pv = Some(r(saved, 2));
+            let saved = r(n - c, 2);
+            p.savings_vs_no_pv = Some(saved);
             if let Some(cpk) = cost_per_kwp
                 && saved > 0.0
+                && p.pv_kwp > 0.0
             {
                 p.payback_years = Some(r(p.pv_kwp * cpk / (saved * year_factor), 1));
             }

@@ -106,6 +106,25 @@ impl Tariff {
         }
     }
 
+    /// Cost of `kwh` imported at once, the month's import before it being
+    /// `month_import_kwh` and the flat (or time-of-use) price then `price`. Under blocks
+    /// each part is priced by the block it falls in, so an import that crosses a bound
+    /// pays the lower block's price up to the bound and the next block's beyond it, as
+    /// the month's import read off the meter would be billed.
+    pub fn import_cost(&self, price: f64, month_import_kwh: f64, kwh: f64) -> f64 {
+        let ImportPrice::Blocks(blocks) = &self.import else { return price * kwh };
+        let end = month_import_kwh + kwh;
+        let (mut at, mut cost) = (month_import_kwh, 0.0);
+        for b in blocks {
+            let top = b.up_to_kwh.unwrap_or(f64::INFINITY).min(end);
+            if top > at {
+                cost += (top - at) * b.price;
+                at = top;
+            }
+        }
+        cost
+    }
+
     /// Index of the block a month's import lands in (0 for non-block tariffs).
     pub fn block_index(&self, month_import_kwh: f64) -> usize {
         match &self.import {
@@ -359,6 +378,22 @@ mod tests {
         assert_eq!(t.import_price(0, chrono::Weekday::Mon, 350.0), 0.26);
         assert_eq!(t.import_price(0, chrono::Weekday::Mon, 900.0), 0.34);
         assert_eq!(t.block_label(1), "block 2: 350–600 kWh");
+    }
+
+    /// Constructed: 30 kWh at once from 340 kWh into the month crosses the 350 kWh bound:
+    /// 10 × 0.18 + 20 × 0.26 = 1.80 + 5.20 = 7.00; from 590 kWh, 20 kWh crosses 600:
+    /// 10 × 0.26 + 10 × 0.34 = 6.00.
+    #[test]
+    fn an_import_across_a_block_bound_pays_each_block_its_share() {
+        let t = tariff(
+            "blocks:\n  - { up_to: 350kWh, price: 0.18/kWh }\n  - { up_to: 600kWh, price: 0.26 }\n  - { price: 0.34/kWh }\n",
+        );
+        assert!((t.import_cost(0.0, 340.0, 30.0) - 7.00).abs() < 1e-9);
+        assert!((t.import_cost(0.0, 590.0, 20.0) - 6.00).abs() < 1e-9);
+        assert!((t.import_cost(0.0, 100.0, 300.0) - (250.0 * 0.18 + 50.0 * 0.26)).abs() < 1e-9);
+        assert_eq!(t.import_cost(0.0, 100.0, 0.0), 0.0);
+        let flat = tariff("import: 0.24/kWh\n");
+        assert!((flat.import_cost(0.24, 1000.0, 2.0) - 0.48).abs() < 1e-12);
     }
 
     #[test]

@@ -302,6 +302,13 @@ fn percentiles(values: &[f64]) -> Percentiles {
     Percentiles { p50: r1(at(0.5)), p95: r1(at(0.95)), max: r1(v[v.len() - 1]) }
 }
 
+/// A run's cost as on a bill: each month rounded to the cent and the total the sum of the
+/// rounded months, so the printed months add up to the printed total (and the savings to
+/// the difference of two printed totals). `simulate`, `compare` and `sweep` all print it.
+pub fn billed(r: &RunOutput) -> f64 {
+    if r.months.is_empty() { r2(r.cost) } else { r2(r.months.iter().map(|m| r2(m.cost)).sum()) }
+}
+
 /// Builds the report of a run and its baseline.
 pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutput, baseline: &RunOutput) -> Report {
     let f = &run.flows;
@@ -377,12 +384,6 @@ pub fn build(site: &Site, tariff: Option<&Tariff>, info: RunInfo, run: &RunOutpu
             }
         })
         .collect();
-    // As on a bill: each month is rounded to the cent and the total is the sum of the
-    // rounded months, so the printed months add up to the printed total (and the savings
-    // to the difference of the two printed totals).
-    let billed = |r: &RunOutput| {
-        if r.months.is_empty() { r2(r.cost) } else { r2(r.months.iter().map(|m| r2(m.cost)).sum()) }
-    };
     let cost = tariff.map(|t| {
         let (total, base) = (billed(run), billed(baseline));
         CostReport { currency: t.currency.clone(), total, baseline: base, savings: r2(base - total) }

@@ -406,6 +406,40 @@ pub fn simulate_once(
             (true, Controller::Baseline) => Some(baseline.decisions()),
         };
 
+        // Months, days and prices, in local time, before the step they cover: a month
+        // closes on the flows as they stand at its last instant, so the step that opens
+        // the next month is the next month's, in energy as in money. The calendar and the
+        // price are looked up once a simulated minute (time-of-use prices change on minute
+        // boundaries at the finest; block prices follow the month's import step by step).
+        if now >= next_calendar {
+            next_calendar = now - now.rem_euclid(60_000) + 60_000;
+            let local = clock.at(Timestamp(now));
+            let (day, _) = clock.day(Timestamp(now));
+            if month != Some((day.year, day.month)) {
+                // The first month counts from the run's start (zero flows); later ones
+                // from where the previous one closed.
+                if let Some((y, m)) = month {
+                    out.months.push(close_month(y, m, &month_fig, plant.flows(), &month_base, &sides));
+                    month_base = plant.flows().clone();
+                }
+                month = Some((day.year, day.month));
+                month_fig = MonthFigures::default();
+            }
+            if counted_day != Some(day.day) {
+                counted_day = Some(day.day);
+                month_fig.days += 1;
+            }
+            if let Some(t) = tariff {
+                price = t.import_price(local.seconds_of_day, local.weekday, 0.0);
+                if standing_day != Some(day.day) {
+                    standing_day = Some(day.day);
+                    month_fig.cost += t.standing_per_day;
+                    out.cost += t.standing_per_day;
+                }
+            }
+        }
+        let import_before_wh = plant.flows().grid_import.wh;
+
         // Physics over [now, now + step) with the commands just written.
         plant.step(step_s);
         let flows = plant.flows();
@@ -446,38 +480,12 @@ pub fn simulate_once(
             }
         }
 
-        // Money and months, in local time. The calendar and the price are looked up once
-        // a simulated minute (prices change on minute boundaries at the finest).
-        if now >= next_calendar {
-            next_calendar = now - now.rem_euclid(60_000) + 60_000;
-            let local = clock.at(Timestamp(now));
-            let (day, _) = clock.day(Timestamp(now));
-            if month != Some((day.year, day.month)) {
-                // The first month counts from the run's start (zero flows), not from
-                // after its first step; later ones from where the previous one closed.
-                if let Some((y, m)) = month {
-                    out.months.push(close_month(y, m, &month_fig, flows, &month_base, &sides));
-                    month_base = flows.clone();
-                }
-                month = Some((day.year, day.month));
-                month_fig = MonthFigures::default();
-            }
-            if counted_day != Some(day.day) {
-                counted_day = Some(day.day);
-                month_fig.days += 1;
-            }
-            if let Some(t) = tariff {
-                let month_import_kwh = (flows.grid_import.wh - month_base.grid_import.wh) / 1000.0;
-                price = t.import_price(local.seconds_of_day, local.weekday, month_import_kwh);
-                if standing_day != Some(day.day) {
-                    standing_day = Some(day.day);
-                    month_fig.cost += t.standing_per_day;
-                    out.cost += t.standing_per_day;
-                }
-            }
-        }
+        // Money: this step's import, priced from where the month's import stood before it
+        // (under blocks, the part of a step that crosses a bound at each block's price).
         if let Some(t) = tariff {
-            let cost = (flows.grid_import.w * price - export * t.export_credit) * step_h / 1000.0;
+            let import_kwh = flows.grid_import.w * step_h / 1000.0;
+            let month_import_kwh = (import_before_wh - month_base.grid_import.wh) / 1000.0;
+            let cost = t.import_cost(price, month_import_kwh, import_kwh) - export * t.export_credit * step_h / 1000.0;
             month_fig.cost += cost;
             out.cost += cost;
         }
