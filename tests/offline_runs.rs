@@ -339,6 +339,45 @@ fn compare_says_where_b_does_not_fit_as_plant() {
     assert!(err.contains("their rows show B's side only"), "{err}");
 }
 
+/// `compare` prices both sides with A's tariff, the baseline's: B's own tariff would
+/// set its costs against a baseline priced otherwise (a walk-through found B's savings
+/// reckoned across two tariffs). A different tariff in B is warned about and not used.
+#[test]
+fn compare_prices_both_sides_with_as_tariff() {
+    let a = example("zero-export-house.yaml");
+    let text = std::fs::read_to_string(&a).unwrap();
+    let dearer = text.replace("{ up_to: 200kWh, price: 0.16/kWh }", "{ up_to: 200kWh, price: 0.96/kWh }");
+    assert_ne!(dearer, text, "the example's first block moved");
+    let dir = std::env::temp_dir().join(format!("spillway-compare-tariff-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    let b = dir.join("dearer.yaml");
+    std::fs::write(&b, dearer).unwrap();
+    let cost = |a: &Path, b: &Path| {
+        let out = spillway([
+            "compare",
+            a.to_str().unwrap(),
+            b.to_str().unwrap(),
+            "--days",
+            "1",
+            "--quiet",
+            "--report",
+            "json",
+        ]);
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        let err = String::from_utf8_lossy(&out.stderr).into_owned();
+        let json: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+        (json.to_string(), err)
+    };
+    let (same, quiet) = cost(&a, &a);
+    let (priced, warned) = cost(&a, &b);
+    assert!(!quiet.contains("tariff"), "{quiet}");
+    assert!(warned.contains("B's tariff differs from A's and is not used"), "{warned}");
+    // Identical rules, the same plant and A's prices: the same figures on both sides.
+    let strip = |s: &str| s.replace(b.to_str().unwrap(), "B").replace(a.to_str().unwrap(), "B");
+    assert_eq!(strip(&same), strip(&priced));
+    let _ = std::fs::remove_dir_all(&dir);
+}
+
 /// The text report and `compare` speak of the export guard only where export has a limit
 /// to hold, and of export not at all off-grid.
 #[test]

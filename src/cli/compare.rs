@@ -37,6 +37,12 @@ fn mismatches(a: &Prepared, b: &Prepared) -> Vec<String> {
             only_a.join(", ")
         ));
     }
+    if b.loaded.tariff.is_some() && b.loaded.tariff != a.loaded.tariff {
+        out.push(
+            "B's tariff differs from A's and is not used: both sides and the baseline are priced with A's, so the table compares rules, not tariffs (run `simulate` on each file to price each with its own)"
+                .to_owned(),
+        );
+    }
     out
 }
 
@@ -94,7 +100,8 @@ pub fn run(
             // B's loads may find nothing to drive on A's plant (warned of above).
             let mut o = options(&b, args, Controller::Spillway, recording);
             o.foreign_plant = true;
-            offline::simulate_once(&b.site, b.loaded.tariff.as_ref(), &b.plant, o)
+            // Priced as A is: the savings are reckoned against A's baseline.
+            offline::simulate_once(&b.site, a.loaded.tariff.as_ref(), &b.plant, o)
         });
         let ra = offline::simulate_once(
             &a.site,
@@ -126,7 +133,7 @@ pub fn run(
         step_s: args.step.as_secs_f64(),
     };
     let rep_a = report::build(&a.site, a.loaded.tariff.as_ref(), info(&a), &ra, &base);
-    let rep_b = report::build(&b.site, b.loaded.tariff.as_ref(), info(&b), &rb, &base);
+    let rep_b = report::build(&b.site, a.loaded.tariff.as_ref(), info(&b), &rb, &base);
     let cmp = compare::compare(&a_path.display().to_string(), &rep_a, &b_path.display().to_string(), &rep_b);
     match format {
         Format::Json => println!("{}", cmp.to_json()),
