@@ -1420,7 +1420,14 @@ fn modulate(
         LoadKind::Switched { .. } | LoadKind::Stepped { .. } => (Command::Off, Power::ZERO, Reason::Waiting),
     };
     // What was taken beyond the share (a held minimum) is not left for others.
-    st.held = (drawn - share).max(Power::ZERO);
+    // Only a proportional load's held minimum is fed back to the controller: fed back
+    // for a charger held at its 6 A too, it let the loads below it (a battery) take
+    // power that was import, and the battery/EV example's 30 days spent 3,775 s over its
+    // export limit instead of 2,097.
+    st.held = match kind {
+        LoadKind::Proportional { .. } => (drawn - share).max(Power::ZERO),
+        _ => Power::ZERO,
+    };
     if drawn > share {
         *u_total = (*u_total - (drawn - share)).max(Power::ZERO);
     }
