@@ -1515,18 +1515,25 @@ fn a_load_whose_own_signal_goes_stale_takes_its_safe_state_while_others_run() {
 
 // ---------------------------------------------------------------- obligations
 
-#[test]
-fn a_daily_run_obligation_tops_up_from_the_grid_late_in_its_window_and_is_reported() {
-    let loads = r#"
+/// A 1 kW pump on surplus with a daily run duty topped up from the grid in `window`.
+fn pump_with_run_duty(run: &str, window: &str) -> String {
+    format!(
+        "
   - name: pump
     rated: 1kW
-    switch: { device: relays, coil: 1 }
+    switch: {{ device: relays, coil: 1 }}
     start: surplus > 1.1kW for 1min
     stop: import > 300W for 1min
     obligations:
-      - run: 2h
-        grid_window: 18:00..21:00
-"#;
+      - run: {run}
+        grid_window: {window}
+"
+    )
+}
+
+#[test]
+fn a_daily_run_obligation_tops_up_from_the_grid_late_in_its_window_and_is_reported() {
+    let loads = &pump_with_run_duty("2h", "18:00..21:00");
     let mut h = Harness::new(&site("  export: allowed", loads)).at_local(17, 0);
     h.set("grid", 500.0);
     h.run(secs(3600));
@@ -1578,16 +1585,7 @@ fn a_reach_by_obligation_heats_from_the_grid_in_its_window_until_the_target() {
 /// top-up starts early enough for the real time, and four and a half hours are run.
 #[test]
 fn a_run_duty_over_the_hour_the_clocks_skip_starts_early_enough() {
-    let loads = r#"
-  - name: pump
-    rated: 1kW
-    switch: { device: relays, coil: 1 }
-    start: surplus > 1.1kW for 1min
-    stop: import > 300W for 1min
-    obligations:
-      - run: 270min
-        grid_window: 00:00..06:00
-"#;
+    let loads = &pump_with_run_duty("270min", "00:00..06:00");
     let mut h = Harness::new(&site("  export: allowed", loads));
     h.now = Timestamp::from_utc(chrono::TimeZone::with_ymd_and_hms(&chrono::Utc, 2026, 3, 29, 0, 0, 0).unwrap());
     h.set("grid", 500.0);
