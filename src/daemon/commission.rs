@@ -86,47 +86,52 @@ pub struct ActuatorTarget {
     pub what: String,
     /// The unit of the value written (`%`, `A`, `W`); empty for a relay or a stage.
     pub unit: &'static str,
+    /// The load that writes it (its index in the site's loads); `None` for the
+    /// inverter limit.
+    pub load: Option<usize>,
 }
 
 /// Every coil and holding register the site's loads and inverter limit write on
 /// `device`, in the site file's order (each once). MQTT targets are left out: they are
 /// published, not read back.
 pub fn actuator_targets(site: &Site, device: DeviceId) -> Vec<ActuatorTarget> {
-    let mut all: Vec<(&Write, String, &'static str)> = Vec::new();
-    for l in &site.loads {
+    let mut all: Vec<(&Write, String, &'static str, Option<usize>)> = Vec::new();
+    for (i, l) in site.loads.iter().enumerate() {
         let n = &l.name;
+        let mut mine: Vec<(&Write, String, &'static str)> = Vec::new();
         match &l.kind {
-            LoadKind::Switched { switch, .. } => all.push((switch, n.clone(), "")),
+            LoadKind::Switched { switch, .. } => mine.push((switch, n.clone(), "")),
             LoadKind::Stepped { command: StageCommand::Relays(relays), .. } => {
-                for (i, w) in relays.iter().enumerate() {
-                    all.push((w, format!("{n} stage {}", i + 1), ""));
+                for (k, w) in relays.iter().enumerate() {
+                    mine.push((w, format!("{n} stage {}", k + 1), ""));
                 }
             }
-            LoadKind::Stepped { command: StageCommand::Register(w), .. } => all.push((w, format!("{n} stage"), "")),
+            LoadKind::Stepped { command: StageCommand::Register(w), .. } => mine.push((w, format!("{n} stage"), "")),
             LoadKind::Proportional { setpoint, enable, .. } => {
-                all.push((setpoint, format!("{n} setpoint"), "%"));
-                all.extend(enable.iter().map(|e| (e, format!("{n} enable"), "")));
+                mine.push((setpoint, format!("{n} setpoint"), "%"));
+                mine.extend(enable.iter().map(|e| (e, format!("{n} enable"), "")));
             }
             LoadKind::Charger { setpoint, enable, .. } => {
-                all.push((setpoint, format!("{n} current"), "A"));
-                all.extend(enable.iter().map(|e| (e, format!("{n} enable"), "")));
+                mine.push((setpoint, format!("{n} current"), "A"));
+                mine.extend(enable.iter().map(|e| (e, format!("{n} enable"), "")));
             }
-            LoadKind::Battery { setpoint, .. } => all.push((setpoint, format!("{n} charge power"), "W")),
+            LoadKind::Battery { setpoint, .. } => mine.push((setpoint, format!("{n} charge power"), "W")),
         }
+        all.extend(mine.into_iter().map(|(w, what, unit)| (w, what, unit, Some(i))));
     }
     if let Some(ic) = &site.inverter {
         let unit = match (&ic.limit, ic.limit_unit) {
             (Write::SunSpecLimit { .. }, _) | (_, LimitUnit::Percent) => "%",
             (_, LimitUnit::Watts) => "W",
         };
-        all.push((&ic.limit, "inverter limit".to_owned(), unit));
+        all.push((&ic.limit, "inverter limit".to_owned(), unit, None));
     }
     let mut out: Vec<ActuatorTarget> = Vec::new();
-    for (w, what, unit) in all {
+    for (w, what, unit, load) in all {
         if w.device() != device || matches!(w, Write::Mqtt { .. }) || out.iter().any(|t| t.write == *w) {
             continue;
         }
-        out.push(ActuatorTarget { write: w.clone(), what, unit });
+        out.push(ActuatorTarget { write: w.clone(), what, unit, load });
     }
     out
 }

@@ -151,21 +151,6 @@ fn malformed_log_key(origin: &str, detail: &str) -> String {
 /// renews it; a re-write that goes through lets it lapse.
 const REFUSAL_HOLD: Duration = Duration::from_secs(12);
 
-/// The load that writes `address` on `device` with a write of `function` (5, 15: a
-/// coil; 6, 16: a holding register), if any.
-fn load_writing(site: &Site, device: DeviceId, function: u8, address: u16) -> Option<usize> {
-    use crate::config::model::Write;
-    site.loads.iter().position(|l| {
-        [crate::engine::Command::On, crate::engine::Command::Off].into_iter().any(|c| {
-            crate::actuators::load_levels(l, c).into_iter().any(|(w, _)| match (w, function) {
-                (Write::Coil { device: d, address: a }, 5 | 15)
-                | (Write::Register { device: d, address: a, .. }, 6 | 16) => *d == device && *a == address,
-                _ => false,
-            })
-        })
-    })
-}
-
 /// The largest power a reading of this site may show: ten times its largest rating
 /// (the inverter, a load, all loads together), and at least 100 kW, so that a house on
 /// a large three-phase supply is never cut short.
@@ -655,7 +640,7 @@ impl Control {
                                 "the {table} address {address} and the `unit` of device \"{name}\" in the site file, against the device's documentation"
                             ),
                         };
-                        if let Some(load) = load_writing(&self.site, device, function, address)
+                        if let Some(load) = target.as_ref().and_then(|t| t.load)
                             && let Some(slot) = self.refused.get_mut(load)
                         {
                             // Until the next re-write has had its answer: a refusal again
